@@ -1,0 +1,104 @@
+"""The ``cwsearch`` command line: a thin dispatcher over the stage commands.
+
+Each command lives in ``cwsearch/commands/<name>.py`` and provides
+``DESCRIPTION`` and ``EXAMPLE`` strings, ``add_arguments(parser)`` and
+``run(args) -> int``. Only the chosen command's module is imported, and
+command modules import numerical code inside ``run`` only, so
+``cwsearch --help`` stays fast (no numba, no matplotlib).
+
+Exit status: 0 success, 2 user error (one line on stderr, no traceback),
+1 internal error.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import sys
+
+from . import __version__
+
+#: command name -> one-line summary (the module is cwsearch.commands.<name>)
+COMMANDS = {
+    "demo": "run the whole job on the bundled invented demo data",
+    "run": "run the whole job from a TOML run file",
+    "simulate": "write an invented dataset (noise, background, injected binaries)",
+    "inspect": "validate a dataset and print a summary per pulsar",
+    "scan": "all-sky F-statistic scan over frequency x sky",
+    "followup": "parallel-tempered MCMC fit of candidates (Earth + pulsar term)",
+    "limits": "95% strain upper limits vs frequency and sky; chirp-mass limits for galaxies",
+    "hosts": "rank catalogue galaxies as possible hosts of a candidate",
+}
+
+
+def _top_parser() -> argparse.ArgumentParser:
+    lines = "\n".join(f"  {name:<10} {summary}" for name, summary in COMMANDS.items())
+    parser = argparse.ArgumentParser(
+        prog="cwsearch",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description="Search pulsar-timing residuals for individual supermassive black-hole binaries.",
+        epilog=f"commands:\n{lines}\n\nexample:\n  cwsearch demo\n  cwsearch scan mydata --out runs/first\n\n"
+        "Run 'cwsearch COMMAND --help' for a command's options and an example.",
+    )
+    parser.add_argument("--version", action="version", version=f"cwsearch {__version__}")
+    parser.add_argument("command", nargs="?", help=argparse.SUPPRESS)
+    return parser
+
+
+def _command_parser(name: str, module) -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog=f"cwsearch {name}",
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+        description=getattr(module, "DESCRIPTION", COMMANDS[name]),
+        epilog="example:\n" + getattr(module, "EXAMPLE", f"  cwsearch {name}"),
+    )
+    module.add_arguments(parser)
+    return parser
+
+
+def main(argv=None) -> int:
+    """Entry point of the ``cwsearch`` console script."""
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if not argv or argv[0] in ("-h", "--help", "--version") or argv[0] not in COMMANDS:
+        parser = _top_parser()
+        if argv and not argv[0].startswith("-") and argv[0] not in COMMANDS:
+            parser.print_usage(sys.stderr)
+            print(f"cwsearch: error: unknown command '{argv[0]}' (choose from {', '.join(COMMANDS)})", file=sys.stderr)
+            return 2
+        try:
+            parser.parse_args(argv or ["--help"])
+        except SystemExit as exc:
+            return int(exc.code or 0)
+        return 0
+    name = argv[0]
+    module = importlib.import_module(f"cwsearch.commands.{name}")
+    parser = _command_parser(name, module)
+    try:
+        args = parser.parse_args(argv[1:])
+    except SystemExit as exc:  # argparse: --help gives 0, bad options give 2
+        return int(exc.code or 0)
+    return run_command(module.run, args)
+
+
+def run_command(func, args) -> int:
+    """Run ``func(args)``, mapping user errors to exit 2 and crashes to exit 1."""
+    from .errors import InputError
+
+    try:
+        return int(func(args) or 0)
+    except InputError as exc:
+        print(f"cwsearch: error: {exc}", file=sys.stderr)
+        return 2
+    except KeyboardInterrupt:
+        print("cwsearch: interrupted; finished outputs are kept, nothing half-written", file=sys.stderr)
+        return 130
+    except Exception:  # an internal error: show the traceback, exit 1
+        import traceback
+
+        traceback.print_exc()
+        print("cwsearch: internal error (please report it with the traceback above)", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())
