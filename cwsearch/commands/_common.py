@@ -1,0 +1,43 @@
+"""Options shared by the stage commands: dataset, output folder, seed, quiet, noise model."""
+
+from __future__ import annotations
+
+
+def add_dataset_arguments(parser, out_required=True):
+    """Positional dataset folder, ``--out``, ``--seed``, ``--quiet``, ``--json``."""
+    parser.add_argument("dataset", help="dataset folder (pulsars.ecsv, residuals/, optional noise.ecsv)")
+    parser.add_argument("--out", required=out_required, metavar="RUN_DIR",
+                        help="run folder to write into (created if missing)")
+    parser.add_argument("--seed", type=int, default=0, help="random seed for the whole run (default 0)")
+    parser.add_argument("--quiet", action="store_true", help="no progress bars or tables")
+    parser.add_argument("--json", action="store_true", help="print the summary as JSON")
+
+
+def add_noise_arguments(parser):
+    """Noise-model options (DESIGN.md §5)."""
+    g = parser.add_argument_group("noise model")
+    g.add_argument("--red-components", type=int, default=30, metavar="K",
+                   help="Fourier frequencies k/T_span, k=1..K, for red processes (default 30)")
+    g.add_argument("--no-pulsar-red-noise", action="store_true",
+                   help="ignore per-pulsar red noise given in the dataset")
+    g.add_argument("--common-log10-amplitude", type=float, default=None, metavar="LOG10A",
+                   help="add a common red process with this log10 amplitude (default: none)")
+    g.add_argument("--common-index", type=float, default=13 / 3, metavar="GAMMA",
+                   help="spectral index of the common process (default 13/3)")
+
+
+def noise_settings(args):
+    """:class:`~cwsearch.noise.NoiseSettings` from parsed noise options."""
+    from ..noise import NoiseSettings
+
+    return NoiseSettings(red_components=args.red_components,
+                         pulsar_red_noise=not args.no_pulsar_red_noise,
+                         common_log10_amplitude=args.common_log10_amplitude,
+                         common_index=args.common_index)
+
+
+def load_array(args):
+    """Read and validate the dataset named on the command line."""
+    from ..dataset import read_dataset
+
+    return read_dataset(args.dataset)
