@@ -577,7 +577,7 @@ def write_dataset(array, path, injection=None, *, overwrite=False) -> None:
             raise InputError("exists and is not a folder", file=target)
         if any(target.iterdir()):
             if not overwrite:
-                raise InputError("folder exists and is not empty (choose another name, or allow overwriting)",
+                raise InputError("folder exists and is not empty (choose another name, or allow overwriting: --overwrite)",
                                  file=target)
             if not (target / PULSARS_FILE).is_file():
                 raise InputError(f"refusing to overwrite a folder that is not a dataset (no {PULSARS_FILE})",
