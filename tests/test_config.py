@@ -1,0 +1,254 @@
+"""Run-file validation and the TOML writer.
+
+External checks: the TOML reader is Python's standard ``tomllib`` (a TOML 1.0
+parser we did not write); every written file must read back through it to
+the same values. Error cases follow the issue text (unknown key, wrong type,
+missing dataset, bad engine): common practice, no source.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import math
+import tomllib
+from pathlib import Path
+
+import pytest
+
+from cwsearch.config import (STAGES, load_config, parse_config, section_keys, stage_options_class, to_toml,
+                             toml_value)
+from cwsearch.errors import InputError
+
+REPO = Path(__file__).resolve().parents[1]
+
+
+@pytest.fixture
+def dataset_dir(tmp_path):
+    d = tmp_path / "data"
+    d.mkdir()
+    return d
+
+
+def _parse(text, tmp_path):
+    return parse_config(text, path=tmp_path / "myrun.toml")
+
+
+def test_minimal_file_gets_defaults(tmp_path, dataset_dir):
+    cfg = _parse('dataset = "data"\n', tmp_path)
+    assert cfg.dataset == dataset_dir.resolve()
+    assert cfg.out == (tmp_path / "runs" / "myrun").resolve()
+    assert cfg.seed == 0
+    assert cfg.stages == STAGES
+    assert cfg.engine == {"kind": "local", "workers": 0, "address": ""}
+    from cwsearch.noise import NoiseSettings
+
+    assert cfg.noise == NoiseSettings()
+
+
+def test_relative_paths_are_relative_to_the_run_file(tmp_path, dataset_dir, monkeypatch):
+    monkeypatch.chdir("/")
+    cfg = _parse('dataset = "data"\nout = "results/a"\n', tmp_path)
+    assert cfg.dataset == dataset_dir.resolve()
+    assert cfg.out == (tmp_path / "results" / "a").resolve()
+
+
+def test_unknown_top_level_key_names_key_and_line(tmp_path, dataset_dir):
+    with pytest.raises(InputError) as err:
+        _parse('dataset = "data"\n\nsed = 3\n', tmp_path)
+    msg = str(err.value)
+    assert "myrun.toml" in msg and "line 3" in msg and "sed" in msg and "unknown key" in msg
+
+
+def test_unknown_key_in_section(tmp_path, dataset_dir):
+    with pytest.raises(InputError) as err:
+        _parse('dataset = "data"\n[noise]\nred_components = 10\nred_component = 3\n', tmp_path)
+    msg = str(err.value)
+    assert "line 4" in msg and "[noise] red_component" in msg and "red_components" in msg  # lists known keys
+
+
+def test_unknown_section(tmp_path, dataset_dir):
+    with pytest.raises(InputError, match=r"line 2: \[skan\]: unknown section"):
+        _parse('dataset = "data"\n[skan]\nnside = 4\n', tmp_path)
+
+
+@pytest.mark.parametrize("line, expected", [
+    ('red_components = "ten"', "expected an integer, got string 'ten'"),
+    ("red_components = 10.5", "expected an integer, got number 10.5"),
+    ("red_components = true", "expected an integer, got boolean true"),   # a bool is not a number
+    ('pulsar_red_noise = "yes"', "expected true or false"),
+    ('common_index = "13/3"', "expected a number"),
+])
+def test_wrong_types(tmp_path, dataset_dir, line, expected):
+    with pytest.raises(InputError) as err:
+        _parse(f'dataset = "data"\n[noise]\n{line}\n', tmp_path)
+    assert expected in str(err.value) and "line 3" in str(err.value)
+
+
+def test_integer_accepted_where_a_number_is_expected(tmp_path, dataset_dir):
+    cfg = _parse('dataset = "data"\n[noise]\ncommon_index = 4\ncommon_log10_amplitude = -15\n', tmp_path)
+    assert cfg.noise.common_index == 4.0 and isinstance(cfg.noise.common_index, float)
+    assert cfg.noise.common_log10_amplitude == -15.0
+
+
+def test_missing_dataset_key(tmp_path):
+    with pytest.raises(InputError, match="must name a dataset"):
+        _parse("seed = 1\n", tmp_path)
+
+
+def test_dataset_folder_not_found(tmp_path):
+    with pytest.raises(InputError, match="dataset folder not found"):
+        _parse('dataset = "nowhere"\n', tmp_path)
+
+
+def test_dataset_must_be_a_folder(tmp_path):
+    (tmp_path / "file.txt").write_text("x")
+    with pytest.raises(InputError, match="must be a folder"):
+        _parse('dataset = "file.txt"\n', tmp_path)
+
+
+@pytest.mark.parametrize("engine, expected", [
+    ('kind = "cluster"', "'cluster' is not one of 'local', 'dask'"),
+    ('kind = "dask"', "needs the scheduler address"),
+    ("workers = -1", "must be >= 0"),
+    ('workers = "two"', "expected an integer"),
+    ('adress = "tcp://x:1"', "unknown key"),
+])
+def test_bad_engine(tmp_path, dataset_dir, engine, expected):
+    with pytest.raises(InputError) as err:
+        _parse(f'dataset = "data"\n[engine]\n{engine}\n', tmp_path)
+    assert expected in str(err.value) and "[engine]" in str(err.value)
+
+
+def test_dask_engine_with_address(tmp_path, dataset_dir):
+    cfg = _parse('dataset = "data"\n[engine]\nkind = "dask"\naddress = "tcp://10.0.0.5:8786"\n', tmp_path)
+    assert cfg.engine["kind"] == "dask" and cfg.engine["address"] == "tcp://10.0.0.5:8786"
+
+
+def test_bad_stage_list(tmp_path, dataset_dir):
+    with pytest.raises(InputError, match="stages: 'scna' is not one of 'scan'"):
+        _parse('dataset = "data"\nstages = ["scna"]\n', tmp_path)
+    cfg = _parse('dataset = "data"\nstages = ["limits", "scan"]\n', tmp_path)
+    assert cfg.stages == ("scan", "limits")  # always pipeline order
+
+
+def test_toml_syntax_error_is_an_input_error(tmp_path, dataset_dir):
+    with pytest.raises(InputError, match="not valid TOML"):
+        _parse('dataset = "data\n', tmp_path)
+
+
+def test_missing_run_file(tmp_path):
+    with pytest.raises(InputError, match="run file not found"):
+        load_config(tmp_path / "none.toml")
+
+
+def test_negative_seed(tmp_path, dataset_dir):
+    with pytest.raises(InputError, match="seed: must be >= 0"):
+        _parse('dataset = "data"\nseed = -4\n', tmp_path)
+
+
+def test_nan_refused(tmp_path, dataset_dir):
+    with pytest.raises(InputError, match="finite"):
+        _parse('dataset = "data"\n[noise]\ncommon_index = nan\n', tmp_path)
+
+
+@pytest.mark.parametrize("stage", STAGES)
+def test_stage_section_schema_is_the_options_dataclass(stage):
+    """One source of truth: the [stage] keys are the fields of <Stage>Options."""
+    cls = stage_options_class(stage)
+    if cls is None:
+        pytest.skip(f"cwsearch.{stage} not installed yet")
+    keys = section_keys(stage)
+    from cwsearch.config import PIPELINE_SET
+
+    fields = {f.name for f in dataclasses.fields(cls) if f.init and f.name not in PIPELINE_SET[stage]}
+    assert fields <= set(keys)
+    for f in dataclasses.fields(cls):
+        if f.name in keys and f.default is not dataclasses.MISSING:
+            assert keys[f.name].default == f.default
+
+
+@pytest.mark.parametrize("stage", STAGES)
+def test_stage_section_rejects_unknown_key(tmp_path, dataset_dir, stage):
+    if stage_options_class(stage) is None:
+        pytest.skip(f"cwsearch.{stage} not installed yet")
+    with pytest.raises(InputError, match=rf"\[{stage}\] no_such_option: unknown key"):
+        _parse(f'dataset = "data"\n[{stage}]\nno_such_option = 1\n', tmp_path)
+
+
+def test_resolved_config_reads_back_identically(tmp_path, dataset_dir):
+    cfg = _parse('dataset = "data"\nseed = 5\ntitle = "A \\"quoted\\" title"\n[noise]\ncommon_log10_amplitude = -14.5\n',
+                 tmp_path)
+    text = cfg.to_toml()
+    tomllib.loads(text)  # valid TOML (stdlib parser)
+    again = parse_config(text, path=tmp_path / "elsewhere" / "run.toml")
+    assert again.to_dict() == cfg.to_dict()
+
+
+def test_example_run_file_validates():
+    example = REPO / "runs" / "example.toml"
+    if not example.is_file():
+        pytest.skip("runs/example.toml not written yet")
+    cfg = load_config(example)
+    assert cfg.dataset.is_dir()
+    # every key of every installed section is documented in the example (by name, in a comment or as a key)
+    text = example.read_text()
+    for section in ("engine", "noise") + STAGES:
+        keys = section_keys(section)
+        if keys is None:
+            continue
+        assert f"[{section}]" in text
+        for name in keys:
+            assert name in text, f"[{section}] {name} is not documented in runs/example.toml"
+
+
+# ---------------------------------------------------------------- TOML writer, checked by tomllib
+def test_writer_round_trips_through_tomllib():
+    data = {
+        "dataset": "C:\\data\\my \"set\"",
+        "unicode": "Ωμέγα\ttab\nnewline\x01",
+        "seed": 12345678901234,
+        "neg": -3,
+        "tiny": 1.2356e-14,
+        "third": 1 / 3,
+        "big": 1e300,
+        "whole": 3.0,
+        "flag": False,
+        "list": [1.5, 2, -0.0],
+        "empty": [],
+        "strs": ["a", "b c"],
+        "not set": None,
+        "section": {"a": 1, "nested": {"b": "x", "deep": {"c": [True, False]}}, "none": None},
+        "weird key.with dot": {"k": 1},
+    }
+    back = tomllib.loads(to_toml(data))
+
+    def drop_none(d):
+        return {k: drop_none(v) if isinstance(v, dict) else v for k, v in d.items() if v is not None}
+
+    assert back == drop_none(data)
+    assert math.copysign(1, back["list"][2]) == -1  # -0.0 keeps its sign
+
+
+def test_writer_special_floats():
+    assert tomllib.loads("x = " + toml_value(float("inf")))["x"] == math.inf
+    assert math.isnan(tomllib.loads("x = " + toml_value(float("nan")))["x"])
+
+
+def test_writer_property_based():
+    """Random nested data round-trips exactly (hypothesis; reference parser: tomllib)."""
+    hypothesis = pytest.importorskip("hypothesis")
+    from hypothesis import given, settings, strategies as st
+
+    scalars = (st.booleans() | st.integers(min_value=-2**63, max_value=2**63 - 1)
+               | st.floats(allow_nan=False) | st.text(max_size=12))
+    values = scalars | st.lists(scalars, max_size=4)
+    keys = st.text(min_size=1, max_size=8)
+    tables = st.dictionaries(keys, values | st.dictionaries(keys, values, max_size=3), max_size=5)
+
+    @settings(max_examples=150, deadline=None)
+    @given(tables)
+    def check(data):
+        assert tomllib.loads(to_toml(data)) == data
+
+    check()
+    assert hypothesis is not None
