@@ -1,0 +1,296 @@
+"""Pipeline machinery: stage skipping by input hash, --force, resume after an interrupted or killed stage,
+provenance, run-folder lock; and the reduced demo end to end.
+
+The stage-machinery tests use tiny dummy stages (fast, deterministic) so that they check the bookkeeping
+only; the end-to-end test at the bottom runs the real stages on the reduced demo (same code path as
+``cwsearch demo``). Expectations are common practice, no source: a build/pipeline tool reruns a step
+exactly when one of its inputs changed.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import pytest
+
+from cwsearch.config import STAGES, RunConfig
+from cwsearch.errors import InputError
+from cwsearch.noise import NoiseSettings
+from cwsearch.pipeline import (NothingToDo, RunLock, StageSpec, folder_hash, read_record, run_pipeline,
+                               run_stages, stage_seed)
+
+REPO = Path(__file__).resolve().parents[1]
+
+
+# ---------------------------------------------------------------- dummy stages
+class Calls:
+    def __init__(self):
+        self.log = []
+
+    def count(self, name):
+        return self.log.count(name)
+
+
+def _dummy_specs(calls, *, interrupt=None, empty=None):
+    """Four dummy stages with the real names and dependencies; each writes a file derived from its inputs."""
+
+    def make(name):
+        def run(ctx):
+            calls.log.append(name)
+            if interrupt is not None and interrupt.get(name):
+                interrupt[name] -= 1
+                (ctx.stage_dir / "partial.txt").write_text("half")
+                raise KeyboardInterrupt
+            if empty and name in empty:
+                raise NothingToDo("no candidate above the threshold")
+            if any(rec.get("status") == "empty" for rec in ctx.upstream.values()):
+                raise NothingToDo("nothing upstream")
+            upstream = "".join(sorted((ctx.run_dir / u / "out.txt").read_text() for u in ctx.upstream))
+            opts = json.dumps(ctx.config.stage_config(name), sort_keys=True)
+            (ctx.stage_dir / "out.txt").write_text(f"{name}:{opts}:{ctx.seed}:{upstream}\n")
+            return {"value": len(upstream), "stage": name}
+        return run
+
+    return [StageSpec("scan", make("scan")),
+            StageSpec("followup", make("followup"), upstream=("scan",)),
+            StageSpec("hosts", make("hosts"), upstream=("followup",)),
+            StageSpec("limits", make("limits"))]
+
+
+def _config(tmp_path, **raw):
+    data = tmp_path / "data"
+    data.mkdir(exist_ok=True)
+    return RunConfig(path=None, dataset=data, out=tmp_path / "run", seed=3, noise=NoiseSettings(),
+                     options={s: None for s in STAGES},
+                     raw={s: dict(raw.get(s, {})) for s in STAGES})
+
+
+def _run(cfg, specs, **kw):
+    return {r.name: r.status for r in run_stages(cfg, specs, dataset_checksum="abc", load_array=lambda: None, **kw)}
+
+
+def test_second_run_skips_everything(tmp_path):
+    calls = Calls()
+    cfg = _config(tmp_path)
+    assert _run(cfg, _dummy_specs(calls)) == dict.fromkeys(STAGES, "ran")
+    before = {s: folder_hash(cfg.out / s) for s in STAGES}
+    assert _run(cfg, _dummy_specs(calls)) == dict.fromkeys(STAGES, "skipped")
+    assert len(calls.log) == 4
+    assert {s: folder_hash(cfg.out / s) for s in STAGES} == before
+    rec = read_record(cfg.out / "scan")
+    assert rec["status"] == "complete" and rec["summary"]["stage"] == "scan" and rec["seed"] == stage_seed(3, "scan")
+
+
+def test_changed_option_reruns_that_stage_and_its_dependants(tmp_path):
+    calls = Calls()
+    _run(_config(tmp_path), _dummy_specs(calls))
+    calls.log.clear()
+    status = _run(_config(tmp_path, followup={"fap_threshold": 0.05}), _dummy_specs(calls))
+    assert status == {"scan": "skipped", "followup": "ran", "hosts": "ran", "limits": "skipped"}
+
+
+def test_changed_dataset_or_seed_reruns_everything(tmp_path):
+    calls = Calls()
+    cfg = _config(tmp_path)
+    _run(cfg, _dummy_specs(calls))
+    status = {r.name: r.status for r in run_stages(cfg, _dummy_specs(calls), dataset_checksum="other",
+                                                   load_array=lambda: None)}
+    assert set(status.values()) == {"ran"}
+    cfg.seed = 4
+    assert set(_run(cfg, _dummy_specs(calls)).values()) == {"ran"}
+
+
+def test_changed_noise_settings_rerun(tmp_path):
+    calls = Calls()
+    cfg = _config(tmp_path)
+    _run(cfg, _dummy_specs(calls))
+    cfg.noise = NoiseSettings(red_components=10)
+    assert set(_run(cfg, _dummy_specs(calls)).values()) == {"ran"}
+
+
+def test_force_one_stage(tmp_path):
+    calls = Calls()
+    cfg = _config(tmp_path)
+    _run(cfg, _dummy_specs(calls))
+    (cfg.out / "scan" / "stray.txt").write_text("old file from an earlier version")
+    calls.log.clear()
+    status = _run(cfg, _dummy_specs(calls), force=["scan"])
+    # scan reruns from an empty folder; it writes the same file, so its dependants stay valid
+    assert status == {"scan": "ran", "followup": "skipped", "hosts": "skipped", "limits": "skipped"}
+    assert not (cfg.out / "scan" / "stray.txt").exists()
+    assert calls.log == ["scan"]
+
+
+def test_force_all_and_bad_force(tmp_path):
+    calls = Calls()
+    cfg = _config(tmp_path)
+    _run(cfg, _dummy_specs(calls))
+    assert set(_run(cfg, _dummy_specs(calls), force=["all"]).values()) == {"ran"}
+    with pytest.raises(InputError, match="unknown stage 'skan'"):
+        _run(cfg, _dummy_specs(calls), force=["skan"])
+
+
+def test_edited_output_file_triggers_a_rerun(tmp_path):
+    calls = Calls()
+    cfg = _config(tmp_path)
+    _run(cfg, _dummy_specs(calls))
+    (cfg.out / "limits" / "out.txt").write_text("tampered")
+    assert _run(cfg, _dummy_specs(calls))["limits"] == "ran"
+
+
+def test_resume_after_interrupted_stage(tmp_path):
+    calls = Calls()
+    cfg = _config(tmp_path)
+    with pytest.raises(KeyboardInterrupt):
+        _run(cfg, _dummy_specs(calls, interrupt={"followup": 1}))
+    assert read_record(cfg.out / "scan")["status"] == "complete"
+    assert read_record(cfg.out / "followup")["status"] == "running"  # not marked done
+    calls.log.clear()
+    status = _run(cfg, _dummy_specs(calls))
+    assert status == {"scan": "skipped", "followup": "ran", "hosts": "ran", "limits": "ran"}
+    assert calls.log == ["followup", "hosts", "limits"]
+
+
+def test_resume_after_kill_9(tmp_path):
+    """A process killed with SIGKILL in the middle of a stage: the next run redoes only that stage on."""
+    cfg = _config(tmp_path)
+    marker = tmp_path / "in_followup"
+    script = textwrap.dedent(f"""
+        import sys, time, pathlib
+        sys.path.insert(0, {str(REPO)!r})
+        sys.path.insert(0, {str(Path(__file__).parent)!r})
+        from test_pipeline import _config, _dummy_specs, Calls
+        from cwsearch.pipeline import run_stages, StageSpec
+        cfg = _config(pathlib.Path({str(tmp_path)!r}))
+        specs = _dummy_specs(Calls())
+        def slow(ctx):
+            (ctx.stage_dir / "partial.bin").write_bytes(b"x" * 100)
+            pathlib.Path({str(marker)!r}).write_text("now")
+            time.sleep(120)
+        specs[1] = StageSpec("followup", slow, upstream=("scan",))
+        run_stages(cfg, specs, dataset_checksum="abc", load_array=lambda: None)
+    """)
+    proc = subprocess.Popen([sys.executable, "-c", script])
+    try:
+        for _ in range(600):
+            if marker.exists() or proc.poll() is not None:
+                break
+            time.sleep(0.05)
+        assert marker.exists(), "the child never reached the follow-up stage"
+        os.kill(proc.pid, signal.SIGKILL)
+        proc.wait(timeout=10)
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+    assert proc.returncode == -signal.SIGKILL
+    calls = Calls()
+    status = _run(cfg, _dummy_specs(calls))
+    assert status == {"scan": "skipped", "followup": "ran", "hosts": "ran", "limits": "ran"}
+
+
+def test_empty_stage_is_done_and_propagates(tmp_path):
+    calls = Calls()
+    cfg = _config(tmp_path)
+    status = _run(cfg, _dummy_specs(calls, empty={"followup"}))
+    assert status == {"scan": "ran", "followup": "empty", "hosts": "empty", "limits": "ran"}
+    assert read_record(cfg.out / "followup")["reason"] == "no candidate above the threshold"
+    calls.log.clear()
+    assert set(_run(cfg, _dummy_specs(calls, empty={"followup"})).values()) == {"skipped"}
+
+
+def test_stage_left_out_of_the_run(tmp_path):
+    calls = Calls()
+    cfg = _config(tmp_path)
+    cfg.stages = ("followup", "limits")
+    status = _run(cfg, _dummy_specs(calls))
+    assert status == {"scan": "off", "followup": "blocked", "hosts": "off", "limits": "ran"}
+    cfg.stages = STAGES
+    _run(cfg, _dummy_specs(calls))
+    cfg.stages = ("hosts",)  # earlier results of upstream stages stay usable
+    assert _run(cfg, _dummy_specs(calls))["hosts"] == "skipped"
+
+
+def test_stage_seeds_are_distinct_and_stable():
+    seeds = [stage_seed(0, s) for s in STAGES]
+    assert len(set(seeds)) == 4
+    assert seeds == [stage_seed(0, s) for s in STAGES]
+    assert stage_seed(1, "scan") != stage_seed(0, "scan")
+
+
+def test_run_lock(tmp_path):
+    with RunLock(tmp_path):
+        with pytest.raises(InputError, match="another cwsearch run"):
+            with RunLock(tmp_path):
+                pass
+    assert not (tmp_path / ".lock").exists()
+    # a lock left by a killed process is taken over
+    proc = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True)
+    import socket
+
+    (tmp_path / ".lock").write_text(f"{socket.gethostname()} {int(proc.stdout)}\n")
+    with RunLock(tmp_path):
+        pass
+
+
+# ---------------------------------------------------------------- run_pipeline with dummy stages
+@pytest.fixture
+def tiny_dataset(tmp_path):
+    from cwsearch.dataset import write_dataset
+    from cwsearch.simulate import invented_array, simulated_array
+
+    arr = simulated_array(invented_array(n_pulsars=3, years=5, seed=1, toas_per_pulsar=40), seed=2)
+    folder = tmp_path / "data"
+    write_dataset(arr, folder)
+    return folder
+
+
+def test_run_pipeline_writes_the_run_folder(tmp_path, tiny_dataset):
+    from cwsearch.config import parse_config
+
+    cfg = parse_config(f'dataset = "{tiny_dataset}"\nseed = 9\nout = "run"\n', path=tmp_path / "my.toml")
+    calls = Calls()
+    result = run_pipeline(cfg, specs=_dummy_specs(calls), quiet=True)
+    run = tmp_path / "run"
+    for name in ("run.toml", "provenance.json", "summary.json", "dataset.json", "report.html"):
+        assert (run / name).is_file(), name
+    prov = json.loads((run / "provenance.json").read_text())
+    for key in ("versions", "seed", "dataset_checksum", "started", "finished", "host", "cpu_count"):
+        assert prov[key] is not None, key
+    assert prov["seed"] == 9 and prov["status"] == "complete"
+    assert prov["versions"]["numpy"] and prov["versions"]["cwsearch"]
+    from cwsearch.dataset import dataset_checksum
+
+    assert prov["dataset_checksum"] == dataset_checksum(tiny_dataset)
+    assert [s["status"] for s in prov["stages"]] == ["ran"] * 4
+    # the resolved run file repeats the run: everything is skipped
+    from cwsearch.config import load_config
+
+    again = run_pipeline(load_config(run / "run.toml"), specs=_dummy_specs(calls), quiet=True)
+    assert [s.status for s in again.stages] == ["skipped"] * 4
+    prov = json.loads((run / "provenance.json").read_text())
+    assert len(prov["history"]) == 1
+    assert result.headline["candidate_found"] is False
+
+
+def test_unavailable_stage_is_reported(tmp_path, tiny_dataset):
+    from cwsearch.config import parse_config
+    from cwsearch.pipeline import StageUnavailable
+
+    def missing(ctx):
+        raise StageUnavailable("stage not available: cwsearch.followup is not installed in this copy")
+
+    specs = _dummy_specs(Calls())
+    specs[1] = StageSpec("followup", missing, upstream=("scan",))
+    cfg = parse_config(f'dataset = "{tiny_dataset}"\nout = "run"\n', path=tmp_path / "my.toml")
+    result = run_pipeline(cfg, specs=specs, quiet=True)
+    status = {r.name: (r.status, r.reason) for r in result.stages}
+    assert status["followup"][0] == "unavailable" and "not available" in status["followup"][1]
+    assert status["hosts"][0] == "blocked"
+    assert "stage not available" in (tmp_path / "run" / "report.html").read_text()
