@@ -1,0 +1,186 @@
+"""The self-contained HTML report.
+
+Checks: the page parses with Python's standard ``html.parser``; every section
+is present; every PNG of every stage folder is embedded as a base64 data URI
+whose bytes are exactly the file (PNG signature from the PNG specification,
+W3C/ISO 15948); nothing refers to the network. If Chromium is installed the
+page is also rendered headless (skipped cleanly otherwise).
+"""
+
+from __future__ import annotations
+
+import base64
+import json
+import shutil
+import subprocess
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from cwsearch.report import SECTIONS, build_report
+
+PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), section 5.2
+
+
+class PageParser(HTMLParser):
+    """Collects section ids, images, links and text."""
+
+    def __init__(self):
+        super().__init__()
+        self.sections, self.images, self.links, self.scripts, self.text = [], [], [], [], []
+        self.alts = []
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        if tag == "section":
+            self.sections.append(a.get("id"))
+        if tag == "img":
+            self.images.append(a.get("src", ""))
+            self.alts.append(a.get("alt", ""))
+        if tag in ("a", "link") and "href" in a:
+            self.links.append(a["href"])
+        if tag in ("script", "iframe", "object", "embed"):
+            self.scripts.append(a)
+        for key, value in a.items():
+            if key in ("src", "href", "srcset", "data") and value and "://" in value.split(",")[0]:
+                self.links.append(value)
+
+    def handle_data(self, data):
+        self.text.append(data)
+
+
+def parse(path):
+    parser = PageParser()
+    parser.feed(Path(path).read_text(encoding="utf-8"))
+    parser.close()
+    parser.joined = " ".join(parser.text)
+    return parser
+
+
+def _png(path, seed):
+    from cwsearch.plots import pyplot, save_figure
+
+    plt = pyplot()
+    fig, ax = plt.subplots(figsize=(2, 1.5))
+    ax.plot(np.random.default_rng(seed).standard_normal(10))
+    save_figure(fig, path)
+
+
+def _table(path, **cols):
+    from astropy.table import Table
+
+    from cwsearch.fileio import write_table_atomic
+
+    write_table_atomic(path, Table(cols))
+
+
+@pytest.fixture
+def run_folder(tmp_path):
+    """A complete invented run folder (dummy numbers, real file formats of DESIGN.md §11)."""
+    run = tmp_path / "run"
+    for stage in ("scan", "followup", "hosts", "limits"):
+        (run / stage).mkdir(parents=True)
+    _png(run / "scan" / "spectrum.png", 1)
+    _png(run / "scan" / "sky_map.png", 2)
+    (run / "followup" / "candidate_1").mkdir()
+    _png(run / "followup" / "candidate_1" / "corner.png", 3)
+    _png(run / "followup" / "candidate_1" / "trace.png", 4)
+    _png(run / "hosts" / "hosts_sky.png", 5)
+    _png(run / "limits" / "frequency_limits.png", 6)
+    _png(run / "limits" / "sky_limits.png", 7)
+    _png(run / "dataset.png", 8)
+    _png(run / "scan" / ".hidden.png", 9)  # hidden files are not part of the results
+    _table(run / "scan" / "candidates.ecsv", frequency=[1.2e-8, 3e-8], ra=[141.0, 20.0], dec=[-27.5, 5.0],
+           fe=[60.0, 9.0], fap=[1e-9, 0.4])
+    _table(run / "scan" / "spectrum.ecsv", frequency=[1e-8, 2e-8], fe_max=[3.0, 4.0], fp=[40.0, 41.0])
+    _table(run / "hosts" / "ranking.ecsv", name=["GALX0001", "GALX0002"], ra=[141.1, 140.0], dec=[-27.4, -26.0],
+           probability=[0.2, 0.7])
+    _table(run / "limits" / "frequency_limits.ecsv", frequency=[5e-9, 1e-8, 2e-8], strain_95=[3e-14, 1e-14, 2e-14])
+    (run / "followup" / "summary.json").write_text(json.dumps({"log_bayes_factor": 55.2, "log_bayes_factor_err": 1.8,
+                                                              "ess": 600, "acceptance": 0.3}))
+    for stage, summary in {"scan": {"n_frequencies": 40, "nside": 4}, "followup": {"candidates": 1},
+                           "hosts": {"galaxies": 2}, "limits": {"n_frequencies": 3}}.items():
+        (run / stage / ".stage.json").write_text(json.dumps({"stage": stage, "status": "complete",
+                                                             "summary": summary}))
+    (run / "dataset.json").write_text(json.dumps({
+        "path": "/x/cwsearch/data/demo", "checksum": "0" * 64, "n_pulsars": 1, "n_toas": 10, "span_yr": 12.5,
+        "pulsars": [{"name": "SIMPSR01", "ra_deg": 10.0, "dec_deg": -5.0, "distance_kpc": 1.0,
+                     "distance_err_kpc": 0.1, "n_toas": 10, "span_yr": 12.5, "backends": ["RCVR1"],
+                     "median_sigma_ns": 100.0, "red_noise": {"log10_amplitude": -14.0, "index": 3.0}}]}))
+    (run / "provenance.json").write_text(json.dumps({"seed": 1, "started": "2026-01-01T00:00:00+00:00",
+                                                     "versions": {"numpy": "2.0"}, "host": "h", "cpu_count": 2}))
+    from cwsearch.pipeline import headline_result
+
+    (run / "summary.json").write_text(json.dumps({"headline": headline_result(run), "stages": [
+        {"stage": s, "status": "ran", "seconds": 1.0, "reason": ""} for s in ("scan", "followup", "hosts", "limits")]}))
+    (run / "run.toml").write_text('title = "Test <run> & co"\n[followup]\nfap_threshold = 0.01\n')
+    return run
+
+
+def test_every_section_and_every_image(run_folder):
+    path = build_report(run_folder)
+    page = parse(path)
+    assert page.sections == [sid for sid, _ in SECTIONS]
+    pngs = sorted(p for p in run_folder.rglob("*.png") if not p.name.startswith("."))
+    assert len(page.images) == len(pngs) == 8
+    embedded = []
+    for src in page.images:
+        assert src.startswith("data:image/png;base64,")
+        data = base64.b64decode(src.split(",", 1)[1], validate=True)
+        assert data.startswith(PNG_SIGNATURE)
+        embedded.append(data)
+    assert sorted(embedded) == sorted(p.read_bytes() for p in pngs)  # byte-exact, each once
+
+
+def test_page_is_self_contained(run_folder):
+    page = parse(build_report(run_folder))
+    assert page.scripts == []
+    assert all(link.startswith("#") for link in page.links), page.links
+    text = (run_folder / "report.html").read_text()
+    assert "http://" not in text and "https://" not in text and "@import" not in text
+
+
+def test_content_of_the_sections(run_folder):
+    page = parse(build_report(run_folder))
+    text = page.joined
+    assert "Test <run> & co" in text  # title escaped in the source, shown as written
+    assert "<run>" not in (run_folder / "report.html").read_text()
+    assert "SIMPSR01" in text and "GALX0002" in text
+    assert "55.2" in text and "± 1.8" in text  # Bayes factor and its error
+    assert "Candidate found" in text and "1.2e-08 Hz" in text
+    assert "Best host: GALX0002 with probability 0.70" in text
+    assert "1e-14" in text and "1e-08 Hz" in text  # most sensitive frequency and its limit
+    # run-specific cautions: invented demo data, large evidence error, few effective samples
+    assert "invented" in text and "thermodynamic-integration error" in text and "600 effective" in text
+
+
+def test_missing_stages_are_explained(tmp_path):
+    run = tmp_path / "empty_run"
+    run.mkdir()
+    (run / "summary.json").write_text(json.dumps({"headline": {}, "stages": [
+        {"stage": "followup", "status": "unavailable", "reason": "stage not available: cwsearch.followup"}]}))
+    page = parse(build_report(run))
+    assert page.sections == [sid for sid, _ in SECTIONS]
+    assert "stage not available: cwsearch.followup" in page.joined
+    assert page.images == []
+
+
+def test_renders_in_headless_chromium(run_folder, tmp_path):
+    exe = next((shutil.which(n) for n in ("chromium", "chromium-browser", "google-chrome")
+                if shutil.which(n)), None)
+    if exe is None and Path("/usr/bin/chromium").exists():
+        exe = "/usr/bin/chromium"
+    if exe is None:
+        pytest.skip("Chromium not installed: the HTML checks above still ran")
+    path = build_report(run_folder)
+    shot = tmp_path / "shot.png"
+    proc = subprocess.run([exe, "--headless", "--no-sandbox", "--disable-gpu", "--disable-network-access",
+                           f"--screenshot={shot}", "--window-size=1200,3000", path.as_uri()],
+                          capture_output=True, timeout=120)
+    assert proc.returncode == 0, proc.stderr[-2000:]
+    assert shot.read_bytes().startswith(PNG_SIGNATURE)
+    dom = subprocess.run([exe, "--headless", "--no-sandbox", "--disable-gpu", "--dump-dom", path.as_uri()],
+                         capture_output=True, timeout=120, text=True)
+    assert 'id="cautions"' in dom.stdout and dom.stdout.count("<img") == 8
