@@ -171,7 +171,9 @@ def _read_table(file: Path):
         msg = " ".join(str(exc).split()) or type(exc).__name__
         if len(msg) > 300:
             msg = msg[:300] + "..."
-        raise InputError(f"cannot parse ECSV table ({msg})", file=file) from None
+        line = re.search(r"at data line (\d+)", msg)
+        raise InputError(f"cannot parse ECSV table ({msg})", file=file,
+                         row=int(line.group(1)) + 1 if line else None) from None
     for name in table.colnames:
         col = table[name]
         if not isinstance(col, Column) or col.ndim != 1:
@@ -222,7 +224,7 @@ def _numeric(table, name, unit, file, *, allow_masked=False):
     bad = ~np.isfinite(values) & ~mask
     if bad.any():
         row = _first_bad(bad)
-        raise InputError(f"value {values[row - 1]} is not finite (NaN or infinity)", file=file, row=row, column=name)
+        raise InputError(f"value {float(values[row - 1])} is not finite (NaN or infinity)", file=file, row=row, column=name)
     return values, mask
 
 
@@ -296,7 +298,7 @@ def _read_pulsar_table(file):
     for values, bad, column, message in checks:
         if bad.any():
             row = _first_bad(bad)
-            raise InputError(f"{message} (got {values[row - 1]!r})", file=file, row=row, column=column)
+            raise InputError(f"{message} (got {float(values[row - 1])!r})", file=file, row=row, column=column)
 
     present = [c for c in _RED_COLUMNS if c in table.colnames]
     if len(present) == 1:
@@ -347,15 +349,15 @@ def _read_residual_table(file):
     backend = _text(table, "backend", file)
     if (sigma <= 0).any():
         row = _first_bad(sigma <= 0)
-        raise InputError(f"sigma must be > 0 (got {sigma[row - 1]!r})", file=file, row=row, column="sigma")
+        raise InputError(f"sigma must be > 0 (got {float(sigma[row - 1])!r})", file=file, row=row, column="sigma")
     step = np.diff(mjd)
     if (step < 0).any():
         row = _first_bad(step < 0) + 1
-        raise InputError(f"TOAs are not sorted by time (mjd {mjd[row - 1]!r} comes after {mjd[row - 2]!r}); "
+        raise InputError(f"TOAs are not sorted by time (mjd {float(mjd[row - 1])!r} comes after {float(mjd[row - 2])!r}); "
                          "sort the rows by mjd", file=file, row=row, column="mjd")
     if (step == 0).any():
         row = _first_bad(step == 0) + 1
-        raise InputError(f"duplicate TOA (mjd {mjd[row - 1]!r} repeats the previous row)",
+        raise InputError(f"duplicate TOA (mjd {float(mjd[row - 1])!r} repeats the previous row)",
                          file=file, row=row, column="mjd")
     design_names = [c for c in table.colnames if c.startswith(DESIGN_PREFIXES)]
     design = np.empty((len(table), len(design_names)))
@@ -421,9 +423,9 @@ def _read_noise_table(file, noise, residual_data):
                              file=file, row=row, column="backend")
         seen[psr, backend] = row
         if scale[i] <= 0:
-            raise InputError(f"sigma_scale must be > 0 (got {scale[i]!r})", file=file, row=row, column="sigma_scale")
+            raise InputError(f"sigma_scale must be > 0 (got {float(scale[i])!r})", file=file, row=row, column="sigma_scale")
         if added[i] < 0:
-            raise InputError(f"sigma_added must be >= 0 (got {added[i]!r})", file=file, row=row, column="sigma_added")
+            raise InputError(f"sigma_added must be >= 0 (got {float(added[i])!r})", file=file, row=row, column="sigma_added")
         noise[psr].sigma_scale[backend] = float(scale[i])
         noise[psr].sigma_added[backend] = float(added[i])
 
