@@ -575,13 +575,27 @@ def _check_section(section, given, keys, fail) -> dict:
     return values
 
 
+_OPTION_IN_MESSAGE = re.compile(r"^(?:option\s+)?--([a-z0-9][a-z0-9-]*)\s*:?\s*")
+
+
 def _build(cls, values, section, fail):
-    """Instantiate an options dataclass; its own checks (``__post_init__``) become InputErrors."""
+    """Instantiate an options dataclass and run its own checks (``__post_init__``, ``validate()``).
+
+    Their errors become InputErrors naming the run-file key (an option name
+    ``--some-option`` in a stage's message is mapped to the key ``some_option``).
+    """
     try:
-        return cls(**values)
+        obj = cls(**values)
+        if callable(getattr(obj, "validate", None)):
+            obj.validate()
+        return obj
     except InputError as exc:
-        key = exc.column if exc.column in values else None
-        fail(exc.message, section, key)
+        message, key = exc.message, exc.column if exc.column in values else None
+        m = _OPTION_IN_MESSAGE.match(message)
+        if m and m.group(1).replace("-", "_") in values:
+            key = m.group(1).replace("-", "_")
+            message = message[m.end():]
+        fail(message, section, key)
     except (TypeError, ValueError) as exc:
         fail(str(exc), section)
 
@@ -591,7 +605,7 @@ _BARE_KEY = re.compile(r"^[A-Za-z0-9_-]+$")
 
 
 def _toml_key(key: str) -> str:
-    return key if _BARE_KEY.match(key) else _toml_string(key)
+    return key if _BARE_KEY.fullmatch(key) else _toml_string(key)
 
 
 def _toml_string(s: str) -> str:

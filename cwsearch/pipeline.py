@@ -441,6 +441,10 @@ def run_pipeline(config: RunConfig, *, force=(), progress=True, quiet=False, spe
         provenance = _provenance(config, checksum, started, previous=_read_json(run_dir / "provenance.json"))
         write_json_atomic(run_dir / "provenance.json", provenance)
         write_json_atomic(run_dir / "dataset.json", dataset_summary(array, config.dataset, checksum))
+        if write_report:
+            from .plots.dataset import dataset_overview
+
+            dataset_overview(array, run_dir / "dataset.png")
         log(f"cwsearch: run folder {run_dir}")
         status = "interrupted"
         try:

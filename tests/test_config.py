@@ -252,3 +252,12 @@ def test_writer_property_based():
 
     check()
     assert hypothesis is not None
+
+
+def test_stage_own_checks_become_run_file_errors(tmp_path, dataset_dir):
+    """A value of the right type that the stage refuses is reported against its run-file key."""
+    if stage_options_class("scan") is None:
+        pytest.skip("cwsearch.scan not installed yet")
+    with pytest.raises(InputError) as err:
+        _parse('dataset = "data"\n[scan]\nnside = 6\n', tmp_path)
+    assert "line 3: [scan] nside" in str(err.value) and "power of two" in str(err.value)
