@@ -61,7 +61,7 @@ STAGES = tuple(STAGE_OPTIONS)
 PIPELINE_SET = {
     "scan": frozenset(),
     "followup": frozenset({"candidate", "candidates", "fap_threshold_override"}),
-    "hosts": frozenset({"catalog", "catalogue"}),
+    "hosts": frozenset({"candidate"}),
     "limits": frozenset(),
 }
 
@@ -108,10 +108,10 @@ PIPELINE_KEYS = {
                              "follow up every scan candidate whose false-alarm probability is below this"),
         "max_candidates": Key("max_candidates", int, 3, "follow up at most this many candidates (best first)"),
     },
-    "hosts": {
-        "catalog": Key("catalog", str, None, "galaxy catalogue (ECSV or CSV); without one the host stage is skipped"),
-    },
 }
+
+#: keys holding file paths (relative paths are relative to the run file's folder)
+PATH_KEYS = {"hosts": ("catalog", "sky_map"), "limits": ("catalog", "galaxies", "galaxy_catalog")}
 
 ENGINE_KEYS = {
     "kind": Key("kind", str, "local", "'local' (worker processes on this machine) or 'dask' (a running scheduler)",
@@ -506,6 +506,12 @@ def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunC
             raw[stage] = dict(given)
             continue
         checked = _check_section(stage, given, keys, fail)
+        for name in PATH_KEYS.get(stage, ()):
+            if isinstance(checked.get(name), (str, Path)) and str(checked[name]):
+                path_value = _resolve(base, checked[name])
+                if stage in stages and not path_value.is_file():
+                    fail(f"file not found: {path_value}", stage, name)
+                checked[name] = str(path_value) if isinstance(checked[name], str) else path_value
         pipeline_names = set(PIPELINE_KEYS.get(stage, {})) - _field_names(stage)
         extra[stage] = {k: checked.pop(k) for k in list(checked) if k in pipeline_names}
         cls = stage_options_class(stage)
@@ -516,11 +522,6 @@ def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunC
             fail("must be in (0, 1]", "followup", "fap_threshold")
         if extra["followup"].get("max_candidates", 1) < 1:
             fail("must be >= 1", "followup", "max_candidates")
-    if "hosts" in extra and extra["hosts"].get("catalog"):
-        catalog = _resolve(base, extra["hosts"]["catalog"])
-        if "hosts" in stages and not catalog.is_file():
-            fail(f"catalogue file not found: {catalog}", "hosts", "catalog")
-        extra["hosts"]["catalog"] = str(catalog)
 
     return RunConfig(path=path, dataset=dataset, out=out, seed=values["seed"], title=values["title"],
                      stages=stages, engine=engine, noise=noise, options=options, extra=extra, raw=raw)

@@ -93,6 +93,7 @@ class StageSpec:
     run: Callable
     upstream: tuple = ()
     extra_inputs: Callable | None = None
+    available: Callable | None = None  # () -> None, or the reason the stage cannot run here
 
 
 @dataclass
@@ -329,6 +330,11 @@ def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: C
                 records[spec.name] = rec  # earlier results stay usable downstream
             reports.append(StageReport(spec.name, "off", reason="not in this run's stages"))
             log(f"{label}: off (not in this run's stages)")
+            continue
+        reason = spec.available() if spec.available is not None else None
+        if reason:
+            reports.append(StageReport(spec.name, "unavailable", reason=reason))
+            log(f"{label}: {reason}")
             continue
         missing = [u for u in spec.upstream if u not in records]
         if missing:
@@ -645,11 +651,30 @@ def format_headline(head: dict) -> str:
 def default_stages():
     """The four stages of the job, wired to the stage modules."""
     return [
-        StageSpec("scan", _run_scan),
-        StageSpec("followup", _run_followup, upstream=("scan",)),
-        StageSpec("hosts", _run_hosts, upstream=("followup",), extra_inputs=_hosts_inputs),
-        StageSpec("limits", _run_limits),
+        StageSpec("scan", _run_scan, available=_availability("scan")),
+        StageSpec("followup", _run_followup, upstream=("scan",), available=_availability("followup")),
+        StageSpec("hosts", _run_hosts, upstream=("followup",), extra_inputs=_hosts_inputs,
+                  available=_availability("hosts")),
+        StageSpec("limits", _run_limits, available=_availability("limits")),
     ]
+
+
+#: the function each stage module must provide
+_ENTRY = {"scan": "run_scan", "followup": "run_followup", "hosts": "run_hosts", "limits": "run_limits"}
+
+
+def _availability(name):
+    def check():
+        from .config import stage_options_class
+
+        try:
+            module = _stage_module(name)
+        except StageUnavailable as exc:
+            return str(exc)
+        if stage_options_class(name) is None or not hasattr(module, _ENTRY[name]):
+            return f"stage not available: cwsearch.{name} has no {_ENTRY[name]}() with its options class yet"
+        return None
+    return check
 
 
 def _stage_module(name):
@@ -677,12 +702,20 @@ def _run_followup(ctx):
 
 
 def _hosts_inputs(ctx):
-    catalog = ctx.extra.get("catalog")
-    return {"catalog": file_checksum(catalog) if catalog else None}
+    catalog = getattr(ctx.options, "catalog", None)
+    return {"catalog": file_checksum(catalog) if catalog and Path(catalog).is_file() else None}
 
 
 def _run_hosts(ctx):
-    raise StageUnavailable("stage not available: cwsearch.hosts is not wired yet")
+    """Rank catalogue galaxies for every followed-up candidate (reads run_dir/followup/)."""
+    if ctx.upstream.get("followup", {}).get("status") == "empty":
+        raise NothingToDo("no candidate was followed up, so there is no source to match")
+    if not getattr(ctx.options, "catalog", None):
+        raise NothingToDo("no galaxy catalogue given ([hosts] catalog)")
+    mod = _stage_module("hosts")
+    result = mod.run_hosts(ctx.array, ctx.run_dir, ctx.options, noise=ctx.config.noise, seed=ctx.seed,
+                           progress=ctx.progress)
+    return dict(getattr(result, "summary", {}) or {})
 
 
 def _run_limits(ctx):
