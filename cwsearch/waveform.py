@@ -33,6 +33,8 @@ Examples
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 from numba import njit
 
@@ -167,6 +169,21 @@ def _phase_since(omega_start, omega_end, chirp_mass_time):
 
 
 @njit(cache=True)
+def _phase_at(dt, chirp_mass_time, omega0):
+    """Orbital phase Φ(t0 + dt) − Φ0 (leading-order chirp), free of cancellation for small chirp masses.
+
+    Same value as ``_phase_since(omega0, ω(t0 + dt))``, written as
+    ``−ω0^(−5/3) expm1(⅝ log1p(−k dt)) / (32 M^(5/3))`` with
+    ``k = (256/5) M^(5/3) ω0^(8/3)``; tends to ``ω0 dt`` as M → 0.
+    """
+    m53 = chirp_mass_time ** (5 / 3)
+    kdt = 256.0 / 5.0 * m53 * omega0 ** (8 / 3) * dt
+    if kdt >= 1.0:
+        return np.nan
+    return -omega0 ** (-5 / 3) * math.expm1(0.625 * math.log1p(-kdt)) / (32.0 * m53)
+
+
+@njit(cache=True)
 def _basis_kernel(times, reference_time, chirp_mass_time, omega0, light_time, omega_dot_p, mode, out):
     """Fill ``out`` (n, 4) with the Earth and pulsar basis series; return the pulsar term's
     coherent phase offset ΔΦ_p0 = Φ(t0 − L(1+Ω·p)) − Φ0."""
@@ -174,7 +191,7 @@ def _basis_kernel(times, reference_time, chirp_mass_time, omega0, light_time, om
     chirping = chirp_mass_time > 0.0 and mode != 2
     if chirping:
         omega_p0 = _orbital_frequency(-delay, chirp_mass_time, omega0)
-        pulsar_phase0 = _phase_since(omega0, omega_p0, chirp_mass_time)
+        pulsar_phase0 = _phase_at(-delay, chirp_mass_time, omega0)
     else:
         omega_p0 = omega0
         pulsar_phase0 = -omega0 * delay
@@ -184,10 +201,10 @@ def _basis_kernel(times, reference_time, chirp_mass_time, omega0, light_time, om
         dt = times[i] - reference_time
         if mode == 0 and chirping:
             w = _orbital_frequency(dt, chirp_mass_time, omega0)
-            dphi = _phase_since(omega0, w, chirp_mass_time)
+            dphi = _phase_at(dt, chirp_mass_time, omega0)
             env = amp0 * (omega0 / w) ** (1.0 / 3.0)
             wp = _orbital_frequency(dt - delay, chirp_mass_time, omega0)
-            dphi_p = _phase_since(omega_p0, wp, chirp_mass_time)
+            dphi_p = _phase_at(dt - delay, chirp_mass_time, omega0) - pulsar_phase0
             env_p = amp0 * (omega0 / wp) ** (1.0 / 3.0)
         else:
             dphi = omega0 * dt
