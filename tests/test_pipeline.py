@@ -294,3 +294,40 @@ def test_unavailable_stage_is_reported(tmp_path, tiny_dataset):
     assert status["followup"][0] == "unavailable" and "not available" in status["followup"][1]
     assert status["hosts"][0] == "blocked"
     assert "stage not available" in (tmp_path / "run" / "report.html").read_text()
+
+
+# ---------------------------------------------------------------- command line
+def test_run_command_help_has_an_example(capsys):
+    from cwsearch.cli import main
+
+    assert main(["run", "--help"]) == 0
+    out = capsys.readouterr().out
+    assert "example:" in out and "cwsearch run runs/" in out and "--force" in out
+    assert main(["demo", "--help"]) == 0
+    out = capsys.readouterr().out
+    assert "example:" in out and "cwsearch demo" in out and "--quick" in out
+
+
+def test_bad_run_file_exits_2_with_one_line(tmp_path, capsys):
+    from cwsearch.cli import main
+
+    bad = tmp_path / "bad.toml"
+    bad.write_text('dataset = "."\n[scan]\nnsidee = 4\n')
+    assert main(["run", str(bad)]) == 2
+    err = capsys.readouterr().err.strip().splitlines()
+    assert len(err) == 1 and "line 3: [scan] nsidee: unknown key" in err[0]
+    assert main(["run", str(tmp_path / "missing.toml")]) == 2
+    assert main(["run", str(bad), "--force", "nothing"]) == 2  # argparse refuses the stage name
+
+
+def test_check_prints_the_resolved_file(tmp_path, capsys):
+    import tomllib
+
+    from cwsearch.cli import main
+
+    (tmp_path / "data").mkdir()
+    (tmp_path / "r.toml").write_text('dataset = "data"\nseed = 11\n')
+    assert main(["run", str(tmp_path / "r.toml"), "--check"]) == 0
+    resolved = tomllib.loads(capsys.readouterr().out)
+    assert resolved["seed"] == 11 and resolved["dataset"] == str((tmp_path / "data").resolve())
+    assert not (tmp_path / "runs").exists()  # --check does no work
