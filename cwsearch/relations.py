@@ -212,3 +212,50 @@ def redshift_at_distance(luminosity_distance_mpc):
     out = np.exp(np.interp(np.log(np.maximum(d, 1e-12)), np.log(dt[1:]), np.log(zt[1:])))
     out = np.where(d < dt[1], zt[1] * d / dt[1], out)
     return out if out.ndim else float(out)
+
+
+def chirp_mass_offset_table(sigma_dex, mass_ratio=MassRatioPrior()):
+    """Tabulated density of ``u = ln Mc − ln M̄`` on a uniform grid: ``(grid, density)``.
+
+    ``M̄`` is the median total mass (``ln M_total ~ Normal(ln M̄, σ)``).
+    :func:`chirp_mass_log_density` interpolates this table.
+    """
+    return _offset_table(round(float(sigma_dex) * LN10, 12), float(mass_ratio.q_min), int(mass_ratio.n_grid))
+
+
+def population_chirp_mass_table(log10_total_mass, sigma_dex, mass_ratio=MassRatioPrior(), step=0.01):
+    """Density of source-frame ``ln Mc`` for a galaxy drawn at random from a population.
+
+    ``log10_total_mass`` and ``sigma_dex``: per-galaxy mean and scatter of
+    log10 total black-hole mass (e.g. a whole catalogue). Each galaxy
+    contributes its own chirp-mass prior (:func:`chirp_mass_log_density`);
+    the mixture is built by histogramming the means on a uniform grid of
+    ``step`` in ln Mc and convolving with each scatter's kernel, so it is
+    fast for millions of galaxies. Returns ``(grid, density)``.
+
+    >>> import numpy as np
+    >>> x, p = population_chirp_mass_table(np.array([8.0, 9.0]), np.array([0.34, 0.34]))
+    >>> round(float(np.trapezoid(p, x)), 3)
+    1.0
+    """
+    mu_ln = np.asarray(log10_total_mass, dtype=float) * LN10
+    sig = np.asarray(sigma_dex, dtype=float)
+    grids = {float(s): chirp_mass_offset_table(s, mass_ratio) for s in np.unique(sig)}
+    lo = mu_ln.min() + min(g[0][0] for g in grids.values())
+    hi = mu_ln.max() + max(g[0][-1] for g in grids.values())
+    n = int(np.ceil((hi - lo) / step)) + 1
+    grid = lo + step * np.arange(n)
+    total = np.zeros(n)
+    for s, (kx, kd) in grids.items():
+        sel = sig == s
+        counts = np.bincount(np.clip(np.rint((mu_ln[sel] - mu_ln.min()) / step).astype(np.int64), 0, None),
+                             minlength=1).astype(float)
+        k0 = int(np.floor(kx[0] / step))
+        kgrid = step * np.arange(k0, int(np.ceil(kx[-1] / step)) + 1)
+        kern = np.interp(kgrid, kx, kd, left=0.0, right=0.0)
+        conv = np.convolve(counts, kern)            # index j <-> mu_min + step*(j + k0)
+        start = int(np.rint((mu_ln.min() + step * k0 - lo) / step))
+        end = min(start + conv.size, n)
+        total[max(start, 0):end] += conv[max(-start, 0):end - start]
+    total /= mu_ln.size
+    return grid, total
