@@ -46,6 +46,11 @@ class Projections:
     """Per-pulsar, per-frequency data projections (the scan's sufficient statistics).
 
     ``x``, ``y``: (P, F); ``z``: (P, F, 3) holding (sin|sin), (sin|cos), (cos|cos).
+    From :func:`project_batch`, ``x`` and ``y`` have a leading batch axis (B, P, F)
+    (one row per residual set, e.g. null simulations) sharing one ``z``.
+    ``z_scale`` (P,) is each pulsar's white-noise scale ``½ Σ 1/σ²``, the size of
+    Z without timing model or red noise; directions of Z below
+    :data:`Z_RELATIVE_TOLERANCE` times it are dropped (see :func:`project`).
     """
 
     frequencies: np.ndarray
@@ -53,6 +58,16 @@ class Projections:
     y: np.ndarray
     z: np.ndarray
     positions: np.ndarray
+    z_scale: np.ndarray | None = None
+
+
+#: directions of a pulsar's 2×2 Z smaller than this times its white-noise
+#: scale are treated as absent (frequencies the timing model absorbs, such as
+#: exactly 1/yr, where Z is pure rounding noise)
+Z_RELATIVE_TOLERANCE = 1e-10
+
+#: the rotation-stepped sines and cosines are re-anchored with exact values every this many bins
+ANCHOR_EVERY = 100
 
 
 def sine_cosine_basis(toas, reference_time, frequencies):
@@ -61,30 +76,181 @@ def sine_cosine_basis(toas, reference_time, frequencies):
     return np.sin(arg), np.cos(arg)
 
 
-def project(engine, frequencies, residuals=None) -> Projections:
+@njit(cache=True, parallel=True)
+def _rotation_trig(times, first_frequency, step, n_freq, anchor_every, out):
+    """Fill ``out`` (n, 2F) with sin (columns :F) and cos (columns F:) of 2π f_k t,
+    f_k = first_frequency + k·step, by complex rotation exp(i 2π step t) per bin."""
+    n = times.shape[0]
+    two_pi = 2.0 * np.pi
+    for i in prange(n):
+        t = times[i]
+        rot_c = np.cos(two_pi * step * t)
+        rot_s = np.sin(two_pi * step * t)
+        c = 1.0
+        s = 0.0
+        for k in range(n_freq):
+            if k % anchor_every == 0:
+                arg = two_pi * (first_frequency + k * step) * t
+                c = np.cos(arg)
+                s = np.sin(arg)
+            else:
+                c, s = c * rot_c - s * rot_s, s * rot_c + c * rot_s
+            out[i, k] = s
+            out[i, n_freq + k] = c
+
+
+@njit(cache=True, parallel=True)
+def _exact_trig(times, frequencies, out):
+    n = times.shape[0]
+    n_freq = frequencies.shape[0]
+    for i in prange(n):
+        for k in range(n_freq):
+            arg = 2.0 * np.pi * frequencies[k] * times[i]
+            out[i, k] = np.sin(arg)
+            out[i, n_freq + k] = np.cos(arg)
+
+
+def uniform_step(frequencies):
+    """The spacing of ``frequencies`` if they form a uniform grid (relative 1e-9), else None."""
+    f = np.asarray(frequencies, dtype=float)
+    if f.size < 3:
+        return None
+    d = np.diff(f)
+    step = (f[-1] - f[0]) / (f.size - 1)
+    if step > 0 and np.all(np.abs(d - step) <= 1e-9 * step):
+        return step
+    return None
+
+
+def sine_cosine_matrix(toas, reference_time, frequencies, anchor_every=ANCHOR_EVERY):
+    """``[sin | cos]`` of ``2π f (t − t0)``: one (n, 2F) array, sines first.
+
+    On a uniform grid each bin is reached from the previous one by one
+    complex rotation ``exp(i 2π Δf t)`` (a multiply instead of a sine and a
+    cosine), re-anchored with exact values every ``anchor_every`` bins so the
+    rounding error stays ~1e-13; other grids use exact sines and cosines.
+
+    >>> import numpy as np
+    >>> t = np.linspace(0, 4.7e8, 50)
+    >>> f = 2e-9 + 1e-9 * np.arange(300)
+    >>> sc = sine_cosine_matrix(t, 0.0, f)
+    >>> s, c = sine_cosine_basis(t, 0.0, f)
+    >>> bool(np.abs(sc[:, :300] - s).max() < 1e-10 and np.abs(sc[:, 300:] - c).max() < 1e-10)
+    True
+    """
+    times = np.ascontiguousarray(np.asarray(toas, dtype=float) - reference_time)
+    frequencies = np.ascontiguousarray(frequencies, dtype=float)
+    out = np.empty((times.size, 2 * frequencies.size))
+    step = uniform_step(frequencies)
+    if step is None:
+        _exact_trig(times, frequencies, out)
+    else:
+        _rotation_trig(times, float(frequencies[0]), float(step), frequencies.size, int(anchor_every), out)
+    return out
+
+
+@njit(cache=True, parallel=True)
+def _z_columns(w, u, n_freq, z):
+    """z[k] = ((s_k|s_k), (s_k|c_k), (c_k|c_k)) from whitened w (n, 2F), u (r, 2F)."""
+    n = w.shape[0]
+    r = u.shape[0]
+    block = 32
+    n_blocks = (n_freq + block - 1) // block
+    for b in prange(n_blocks):
+        k0 = b * block
+        k1 = min(n_freq, k0 + block)
+        acc = np.zeros((k1 - k0, 3))
+        for i in range(n):
+            for k in range(k0, k1):
+                s = w[i, k]
+                c = w[i, n_freq + k]
+                acc[k - k0, 0] += s * s
+                acc[k - k0, 1] += s * c
+                acc[k - k0, 2] += c * c
+        for i in range(r):
+            for k in range(k0, k1):
+                s = u[i, k]
+                c = u[i, n_freq + k]
+                acc[k - k0, 0] -= s * s
+                acc[k - k0, 1] -= s * c
+                acc[k - k0, 2] -= c * c
+        for k in range(k0, k1):
+            for j in range(3):
+                z[k, j] = acc[k - k0, j]
+
+
+def _drop_null_directions(x, y, z, z_scale):
+    """Zero the directions of Z below tolerance (and the X, Y components along them), in place."""
+    tol = Z_RELATIVE_TOLERANCE * z_scale[:, None]
+    zss, zsc, zcc = z[..., 0], z[..., 1], z[..., 2]
+    half_trace = 0.5 * (zss + zcc)
+    radius = np.hypot(0.5 * (zss - zcc), zsc)
+    small = half_trace - radius < tol
+    for p, f in zip(*np.nonzero(small)):
+        mat = np.array([[zss[p, f], zsc[p, f]], [zsc[p, f], zcc[p, f]]])
+        vals, vecs = np.linalg.eigh(mat)
+        keep = vals > tol[p, 0]
+        vecs = vecs[:, keep]
+        vals = vals[keep]
+        kept = (vecs * vals) @ vecs.T
+        z[p, f] = (kept[0, 0], kept[0, 1], kept[1, 1])
+        proj = vecs @ vecs.T
+        xy = np.stack([x[..., p, f], y[..., p, f]], axis=-1) @ proj.T
+        x[..., p, f], y[..., p, f] = xy[..., 0], xy[..., 1]
+
+
+def _project_core(engine, frequencies, residual_sets, on_pulsar=None):
+    frequencies = np.ascontiguousarray(frequencies, dtype=float)
+    n_psr, n_freq = len(engine), frequencies.size
+    n_sets = residual_sets[0].shape[1]
+    x = np.empty((n_sets, n_psr, n_freq))
+    y = np.empty((n_sets, n_psr, n_freq))
+    z = np.empty((n_psr, n_freq, 3))
+    z_scale = np.empty(n_psr)
+    t0 = engine.array.reference_time
+    for i, w in enumerate(engine):
+        basis = sine_cosine_matrix(w.pulsar.toas, t0, frequencies)
+        wb, ub = w.whiten(basis)                  # the one whitening GEMM for all frequencies
+        wr, ur = w.whiten(residual_sets[i])       # (n, B), (r, B)
+        xy = wr.T @ wb - ur.T @ ub                # (B, 2F)
+        x[:, i] = xy[:, :n_freq]
+        y[:, i] = xy[:, n_freq:]
+        _z_columns(wb, np.ascontiguousarray(ub), n_freq, z[i])
+        z_scale[i] = 0.5 * float(np.sum(wb[:, 0] ** 2 + wb[:, n_freq] ** 2))
+        if on_pulsar is not None:
+            on_pulsar(i)
+    _drop_null_directions(x, y, z, z_scale)
+    return frequencies, x, y, z, z_scale
+
+
+def project(engine, frequencies, residuals=None, *, on_pulsar=None) -> Projections:
     """Compute X, Y, Z for every pulsar and frequency through the noise-weighting engine.
 
     ``residuals`` (list of arrays) replaces the dataset residuals, e.g. for
-    null simulations with the same TOAs and noise model.
+    null simulations with the same TOAs and noise model. Per pulsar, the
+    sines and cosines of all frequencies are whitened in one matrix product
+    (:meth:`~cwsearch.noise.PulsarWeighting.whiten`); on a uniform grid they
+    are generated by rotation (:func:`sine_cosine_matrix`). Directions of
+    a pulsar's Z that the timing model removes entirely (Z at rounding
+    level, e.g. exactly 1/yr) are dropped together with the matching X, Y
+    part, so they neither divide by zero nor add noise. ``on_pulsar(i)`` is
+    called after each pulsar (progress bars).
     """
-    frequencies = np.asarray(frequencies, dtype=float)
-    n_psr, n_freq = len(engine), frequencies.size
-    x = np.empty((n_psr, n_freq))
-    y = np.empty((n_psr, n_freq))
-    z = np.empty((n_psr, n_freq, 3))
-    t0 = engine.array.reference_time
-    for i, w in enumerate(engine):
-        r = w.pulsar.residuals if residuals is None else residuals[i]
-        sin, cos = sine_cosine_basis(w.pulsar.toas, t0, frequencies)
-        wr, ur = w.whiten(r)
-        ws, us = w.whiten(sin)
-        wc, uc = w.whiten(cos)
-        x[i] = wr @ ws - ur @ us
-        y[i] = wr @ wc - ur @ uc
-        z[i, :, 0] = np.einsum("ij,ij->j", ws, ws) - np.einsum("ij,ij->j", us, us)
-        z[i, :, 1] = np.einsum("ij,ij->j", ws, wc) - np.einsum("ij,ij->j", us, uc)
-        z[i, :, 2] = np.einsum("ij,ij->j", wc, wc) - np.einsum("ij,ij->j", uc, uc)
-    return Projections(frequencies, x, y, z, engine.array.positions)
+    sets = [np.asarray(w.pulsar.residuals if residuals is None else residuals[i], dtype=float)[:, None]
+            for i, w in enumerate(engine)]
+    freqs, x, y, z, z_scale = _project_core(engine, frequencies, sets, on_pulsar)
+    return Projections(freqs, x[0], y[0], z, engine.array.positions, z_scale)
+
+
+def project_batch(engine, frequencies, residual_sets, *, on_pulsar=None) -> Projections:
+    """Projections of B residual sets at once: ``residual_sets[p]`` is an (n_p, B) array.
+
+    Z is shared; ``x`` and ``y`` have shape (B, P, F). Used by null
+    simulations (same TOAs and noise model, new residuals).
+    """
+    sets = [np.asarray(r, dtype=float).reshape(w.n_toas, -1) for w, r in zip(engine, residual_sets)]
+    freqs, x, y, z, z_scale = _project_core(engine, frequencies, sets, on_pulsar)
+    return Projections(freqs, x, y, z, engine.array.positions, z_scale)
 
 
 @njit(cache=True)
@@ -192,9 +358,141 @@ def _run_kernel(proj, fplus, fcross, want_amp=False, want_nm=False):
     return fe, amp, nvec, mmat
 
 
+@njit(cache=True)
+def _ldl4(m, lower, diag):
+    """LDLᵀ of a symmetric PSD 4×4 ``m`` with tiny pivots dropped (as in :func:`_solve_psd`)."""
+    n = 4
+    scale = 0.0
+    for i in range(n):
+        scale = max(scale, m[i, i])
+    tol = 1e-10 * scale
+    for j in range(n):
+        s = m[j, j]
+        for k in range(j):
+            s -= lower[j, k] ** 2 * diag[k]
+        diag[j] = s if s > tol else 0.0
+        lower[j, j] = 1.0
+        for i in range(j + 1, n):
+            s = m[i, j]
+            for k in range(j):
+                s -= lower[i, k] * lower[j, k] * diag[k]
+            lower[i, j] = s / diag[j] if diag[j] > 0 else 0.0
+
+
+@njit(cache=True)
+def _ldl4_quad(lower, diag, v, tmp):
+    """``vᵀ m⁺ v`` from the factors of :func:`_ldl4` (Σ y_i²/d_i with L y = v)."""
+    q = 0.0
+    for i in range(4):
+        s = v[i]
+        for k in range(i):
+            s -= lower[i, k] * tmp[k]
+        tmp[i] = s
+        if diag[i] > 0:
+            q += s * s / diag[i]
+    return q
+
+
+@njit(cache=True, parallel=True)
+def _fe_from_products(nq, mq, n_sky, n_chunk, n_sets, fe_out):
+    """Fe for every sky pixel, frequency of the chunk and residual set from the GEMM products.
+
+    ``nq`` (2S, 2·B·Fc): rows (F+ | Fx) × pixel, columns (set, X|Y, frequency);
+    ``mq`` (3S, 3·Fc): rows (F+² | F+Fx | Fx²) × pixel, columns (ss|sc|cc, frequency).
+    """
+    for s in prange(n_sky):
+        m = np.zeros((4, 4))
+        lower = np.zeros((4, 4))
+        diag = np.zeros(4)
+        v = np.zeros(4)
+        tmp = np.zeros(4)
+        for f in range(n_chunk):
+            m[0, 0] = mq[s, f]
+            m[0, 1] = mq[s, n_chunk + f]
+            m[1, 1] = mq[s, 2 * n_chunk + f]
+            m[0, 2] = mq[n_sky + s, f]
+            m[0, 3] = mq[n_sky + s, n_chunk + f]
+            m[1, 2] = m[0, 3]
+            m[1, 3] = mq[n_sky + s, 2 * n_chunk + f]
+            m[2, 2] = mq[2 * n_sky + s, f]
+            m[2, 3] = mq[2 * n_sky + s, n_chunk + f]
+            m[3, 3] = mq[2 * n_sky + s, 2 * n_chunk + f]
+            for i in range(4):
+                for j in range(i):
+                    m[i, j] = m[j, i]
+            _ldl4(m, lower, diag)
+            for b in range(n_sets):
+                cx = 2 * b * n_chunk + f
+                cy = cx + n_chunk
+                v[0] = nq[s, cx]
+                v[1] = nq[s, cy]
+                v[2] = nq[n_sky + s, cx]
+                v[3] = nq[n_sky + s, cy]
+                fe_out[b, s, f] = 0.5 * _ldl4_quad(lower, diag, v, tmp)
+
+
+@dataclass
+class SkyScan:
+    """Result of :func:`fe_sky`.
+
+    ``fe_map`` (S, F) or None; ``fe_max`` and ``best_pixel`` (B, F): the
+    maximum of Fe over the sky and the pixel (row of the patterns) where it occurs.
+    """
+
+    fe_map: np.ndarray | None
+    fe_max: np.ndarray
+    best_pixel: np.ndarray
+
+
+def fe_sky(proj: Projections, fplus, fcross, *, keep_map=True, map_dtype=np.float64, on_chunk=None,
+           chunk_elements=4_000_000) -> SkyScan:
+    """Fe over sky × frequency (and over residual sets of :func:`project_batch`).
+
+    The sums over pulsars for N (4 numbers) and M (9 distinct numbers) are
+    two matrix products per chunk of frequencies (pattern products (S, P)
+    times per-pulsar X, Y, Z (P, ·)); a parallel numba kernel then factors
+    each 4×4 M once and evaluates ``Fe = ½ Nᵀ M⁺ N`` for every residual set.
+    ``keep_map`` returns the full (S, F) map (single residual set only);
+    ``on_chunk(n)`` is called with the number of frequencies finished.
+    """
+    fplus = np.ascontiguousarray(np.atleast_2d(fplus), dtype=float)
+    fcross = np.ascontiguousarray(np.atleast_2d(fcross), dtype=float)
+    n_sky, n_psr = fplus.shape
+    x, y = proj.x, proj.y
+    if x.ndim == 2:
+        x, y = x[None], y[None]
+    n_sets, _, n_freq = x.shape
+    if keep_map and n_sets != 1:
+        raise ValueError("keep_map needs a single residual set")
+    pn = np.vstack([fplus, fcross])
+    pm = np.vstack([fplus * fplus, fplus * fcross, fcross * fcross])
+    n_chunk = int(max(1, min(n_freq, chunk_elements // (n_sky * (4 * n_sets + 9)))))
+    fe_map = np.empty((n_sky, n_freq), dtype=map_dtype) if keep_map else None
+    fe_max = np.empty((n_sets, n_freq))
+    best = np.empty((n_sets, n_freq), dtype=np.int64)
+    for f0 in range(0, n_freq, n_chunk):
+        f1 = min(n_freq, f0 + n_chunk)
+        fc = f1 - f0
+        data = np.stack([x[:, :, f0:f1], y[:, :, f0:f1]], axis=1)          # (B, 2, P, Fc)
+        data = np.ascontiguousarray(data.transpose(2, 0, 1, 3)).reshape(n_psr, 2 * n_sets * fc)
+        zc = np.ascontiguousarray(proj.z[:, f0:f1, :].transpose(0, 2, 1)).reshape(n_psr, 3 * fc)
+        nq = pn @ data
+        mq = pm @ zc
+        fe = np.empty((n_sets, n_sky, fc))
+        _fe_from_products(nq, mq, n_sky, fc, n_sets, fe)
+        idx = np.argmax(fe, axis=1)
+        best[:, f0:f1] = idx
+        fe_max[:, f0:f1] = np.take_along_axis(fe, idx[:, None, :], axis=1)[:, 0, :]
+        if keep_map:
+            fe_map[:, f0:f1] = fe[0]
+        if on_chunk is not None:
+            on_chunk(fc)
+    return SkyScan(fe_map, fe_max, best)
+
+
 def fe_statistic(proj: Projections, fplus, fcross):
     """Fe for each sky position (rows of ``fplus``/``fcross``, shape (S, P)) and frequency: (S, F)."""
-    return _run_kernel(proj, fplus, fcross)[0]
+    return fe_sky(proj, fplus, fcross).fe_map
 
 
 def fe_with_amplitudes(proj: Projections, fplus, fcross):
@@ -215,12 +513,35 @@ def sky_patterns(proj: Projections, ra, dec):
     return fplus, fcross
 
 
-def fp_statistic(proj: Projections):
-    """Fp per frequency: ``½ Σ_p [X Y] Z_p⁻¹ [X Y]ᵀ`` (F,)."""
-    zss, zsc, zcc = proj.z[..., 0], proj.z[..., 1], proj.z[..., 2]
+def _z_rank(z):
+    """Rank (0, 1 or 2) of each 2×2 Z (..., 3) after :func:`project` dropped null directions."""
+    zss, zsc, zcc = z[..., 0], z[..., 1], z[..., 2]
+    trace = zss + zcc
     det = zss * zcc - zsc**2
-    quad = (zcc * proj.x**2 - 2 * zsc * proj.x * proj.y + zss * proj.y**2) / det
-    return 0.5 * quad.sum(axis=0)
+    return np.where(trace <= 0, 0, np.where(det <= 1e-12 * trace**2, 1, 2))
+
+
+def fp_statistic(proj: Projections):
+    """Fp per frequency: ``½ Σ_p [X Y] Z_p⁻¹ [X Y]ᵀ`` (F,), or (B, F) for a batch.
+
+    Where a pulsar's Z has rank < 2 (directions removed by the timing model)
+    the pseudo-inverse is used, and :func:`fp_degrees_of_freedom` counts
+    only the remaining directions.
+    """
+    zss, zsc, zcc = proj.z[..., 0], proj.z[..., 1], proj.z[..., 2]
+    rank = _z_rank(proj.z)
+    det = np.where(rank == 2, zss * zcc - zsc**2, 1.0)
+    trace = np.where(rank >= 1, zss + zcc, 1.0)
+    x, y = proj.x, proj.y
+    full = (zcc * x**2 - 2 * zsc * x * y + zss * y**2) / det
+    single = (x**2 + y**2) / trace
+    quad = np.where(rank == 2, full, np.where(rank == 1, single, 0.0))
+    return 0.5 * quad.sum(axis=-2)
+
+
+def fp_degrees_of_freedom(proj: Projections):
+    """Degrees of freedom of 2Fp per frequency (F,): ``2 N_psr`` minus directions the timing model removed."""
+    return _z_rank(proj.z).sum(axis=0)
 
 
 def amplitudes_to_parameters(amplitudes, gw_frequency):

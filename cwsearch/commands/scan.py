@@ -1,0 +1,117 @@
+"""``cwsearch scan``: all-sky F-statistic scan over frequency × sky (thin wrapper over :func:`cwsearch.scan.run_scan`)."""
+
+from __future__ import annotations
+
+from ._common import add_dataset_arguments, add_noise_arguments
+
+DESCRIPTION = """\
+Scan every GW frequency from 1/T_span (spacing 1/(oversample*T_span)) up to
+--fmax on a HEALPix sky grid with the Earth-term Fe-statistic and/or the
+pulsar-term Fp-statistic, and write RUN_DIR/scan/: candidates.ecsv (distinct
+peaks, best first, with false-alarm probabilities and maximum-likelihood
+strain, inclination, polarization, phase), spectrum.ecsv (Fe sky maximum and
+Fp per frequency), scan_summary.json and PNG plots.
+
+Two false-alarm probabilities are given: 'fap' is analytic, (1+Fe)exp(-Fe)
+corrected for an effective number of independent templates (stated in the
+summary); 'fap_empirical' (only with --null-sims N) is the fraction of N
+noise-only scans of the same array and noise model whose maximum reaches the
+candidate's value - prefer it when available."""
+
+EXAMPLE = """\
+  cwsearch scan mydata --out runs/first
+  cwsearch scan mydata --out runs/deep --fmax 2e-7 --oversample 4 --nside 32 --null-sims 100
+  cwsearch scan mydata --out runs/fp --statistic fp --common-log10-amplitude -14.6"""
+
+#: defaults (equal to cwsearch.scan.ScanOptions; a test checks they agree)
+_DEFAULTS = {"oversample": 2, "nside": 16, "statistic": "both", "null_sims": 0, "fap_threshold": 0.5,
+             "max_candidates": 20, "merge_angle": 180.0}
+
+
+def add_arguments(parser):
+    add_dataset_arguments(parser)
+    d = _DEFAULTS
+    g = parser.add_argument_group("scan")
+    g.add_argument("--fmin", type=float, default=None, metavar="HZ", help="lowest GW frequency (default 1/T_span)")
+    g.add_argument("--fmax", type=float, default=None, metavar="HZ",
+                   help="highest GW frequency (default 1/(2 x median TOA spacing), at most 1e-6)")
+    g.add_argument("--oversample", type=int, default=d["oversample"], metavar="N",
+                   help=f"frequency spacing 1/(N*T_span) (default {d['oversample']})")
+    g.add_argument("--nside", type=int, default=d["nside"],
+                   help=f"HEALPix resolution, a power of two; 12*nside^2 pixels (default {d['nside']})")
+    g.add_argument("--statistic", choices=("fe", "fp", "both"), default=d["statistic"],
+                   help="fe: Earth-term sky scan; fp: pulsar-term (no sky); both (default)")
+    g.add_argument("--null-sims", type=int, default=d["null_sims"], metavar="N",
+                   help="noise-only scans of the same array for the empirical FAP (default 0: none)")
+    g.add_argument("--fap-threshold", type=float, default=d["fap_threshold"], metavar="P",
+                   help=f"list candidates with analytic FAP below P; the loudest is always listed "
+                        f"(default {d['fap_threshold']})")
+    g.add_argument("--max-candidates", type=int, default=d["max_candidates"], metavar="N",
+                   help=f"at most N candidates (default {d['max_candidates']})")
+    g.add_argument("--merge-angle", type=float, default=d["merge_angle"], metavar="DEG",
+                   help=f"peaks within DEG degrees and one frequency bin 1/T_span are one candidate "
+                        f"(default {d['merge_angle']:g})")
+    g.add_argument("--no-plots", action="store_true", help="do not draw the PNG plots")
+    add_noise_arguments(parser)
+
+
+def options_from_args(args):
+    """:class:`cwsearch.scan.ScanOptions` from parsed arguments."""
+    from ..scan import ScanOptions
+
+    return ScanOptions(fmin=args.fmin, fmax=args.fmax, oversample=args.oversample, nside=args.nside,
+                       statistic=args.statistic, null_sims=args.null_sims, fap_threshold=args.fap_threshold,
+                       max_candidates=args.max_candidates, merge_angle=args.merge_angle, no_plots=args.no_plots)
+
+
+def format_candidates(table, n=10):
+    """The top candidates as a plain-text table."""
+    import math
+
+    lines = [f"{'#':>3} {'f_gw [Hz]':>11} {'ra[deg]':>8} {'dec[deg]':>8} {'Fe':>8} {'SNR':>6} "
+             f"{'fap':>9} {'fap_emp':>9} {'Fp':>8} {'h0':>9}"]
+
+    def num(v, fmt):
+        v = float(v)
+        return format(v, fmt) if math.isfinite(v) else "-"
+
+    for row in table[:n]:
+        lines.append(f"{int(row['rank']):>3} {float(row['frequency']):>11.4e} {num(row['ra'], '8.1f')} "
+                     f"{num(row['dec'], '8.1f')} {num(row['fe'], '8.2f')} {num(row['snr'], '6.2f')} "
+                     f"{num(row['fap'], '9.2e')} {num(row['fap_empirical'], '9.2e')} {num(row['fp'], '8.2f')} "
+                     f"{num(row['strain'], '9.2e')}")
+    return "\n".join(lines)
+
+
+def run(args) -> int:
+    import json
+
+    from ._common import load_array, noise_settings
+    from ..scan import run_scan
+
+    options = options_from_args(args).validate()
+    array = load_array(args)
+    result = run_scan(array, args.out, options, noise=noise_settings(args), seed=args.seed,
+                      progress=not args.quiet)
+    summary = result.summary
+    if args.json:
+        print(json.dumps(summary, indent=2))
+        return 0
+    if not args.quiet:
+        print(f"scanned {summary['n_frequencies']} frequencies {summary['fmin']:.3e}-{summary['fmax']:.3e} Hz"
+              + (f" x {summary['n_pixels']} sky pixels (nside {summary['nside']})" if summary["n_pixels"] else "")
+              + f" with {summary['n_pulsars']} pulsars in {summary['seconds']:.1f} s")
+        print(f"effective independent templates N_eff = {summary['n_eff']:.0f} "
+              f"({summary['n_eff_frequency']:.0f} frequencies x {summary['n_eff_sky']:.1f} sky)")
+        print()
+        print(format_candidates(result.candidates))
+        print()
+        print("fap     = analytic: single-template (1+Fe)exp(-Fe) corrected for N_eff independent templates"
+              + (" (Fp: chi-squared, corrected for the frequency bins)" if options.statistic == "fp" else ""))
+        if options.null_sims:
+            print(f"fap_emp = empirical: fraction (1+k)/(1+N) of N = {options.null_sims} noise-only scans whose "
+                  "maximum reaches the candidate's value (prefer this one)")
+        else:
+            print("fap_emp = empirical FAP, not computed (use --null-sims N)")
+        print(f"outputs in {result.files['candidates'].parent}")
+    return 0
