@@ -171,6 +171,12 @@ def _read_table(file: Path):
         msg = " ".join(str(exc).split()) or type(exc).__name__
         if len(msg) > 300:
             msg = msg[:300] + "..."
+        bad = re.search(r"column '([^']+)' failed to convert", msg)
+        located = _locate_unconvertible(lines, bad.group(1)) if bad else None
+        if located is not None:
+            row, value = located
+            raise InputError(f"value {value[:40]!r} is not a number (the header declares a numeric column)",
+                             file=file, row=row, column=bad.group(1)) from None
         line = re.search(r"at data line (\d+)", msg)
         raise InputError(f"cannot parse ECSV table ({msg})", file=file,
                          row=int(line.group(1)) + 1 if line else None) from None
@@ -180,6 +186,31 @@ def _read_table(file: Path):
             raise InputError("only plain one-dimensional columns are allowed "
                              f"(found {type(col).__name__} with shape {col.shape})", file=file, column=name)
     return table
+
+
+def _locate_unconvertible(lines, column):
+    """(data row from 1, text) of the first value of ``column`` that is not a number, or None.
+
+    Used only to name the row when astropy refuses a numeric column; the
+    data lines are re-read as text with the ECSV header's delimiter.
+    """
+    from astropy.io import ascii as astropy_ascii
+
+    try:
+        delimiter = "," if any(re.match(r"#\s*delimiter:\s*['\"]?,", ln) for ln in lines) else " "
+        body = [ln for ln in lines if not ln.startswith("#")]
+        table = astropy_ascii.read(body, format="basic", delimiter=delimiter, guess=False, fast_reader=False,
+                                   converters={"*": [astropy_ascii.convert_numpy(str)]})
+        for i, value in enumerate(table[column]):
+            if np.ma.is_masked(value):
+                continue
+            try:
+                float(value)
+            except ValueError:
+                return i + 1, str(value)
+    except Exception:  # only a better message is lost
+        return None
+    return None
 
 
 def _require_columns(table, required, file):
