@@ -170,6 +170,13 @@ def frequency_grid(array, fmin=None, fmax=None, oversample=2):
     span = array.span
     fmin = 1.0 / span if fmin is None else float(fmin)
     fmax = default_max_frequency(array) if fmax is None else float(fmax)
+    if fmin < (1.0 - 1e-9) / span:
+        raise InputError(f"option --fmin: {fmin:.4g} Hz is below 1/T_span = {1.0 / span:.4g} Hz "
+                         "(less than one GW period fits in the data span)")
+    spacing = np.median([np.median(np.diff(p.toas)) for p in array if p.n_toas > 1])
+    if fmax > (1.0 + 1e-9) * 0.5 / spacing:
+        raise InputError(f"option --fmax: {fmax:.4g} Hz is above the Nyquist-like limit 1/(2 x median TOA "
+                         f"spacing) = {0.5 / spacing:.4g} Hz")
     if not fmax > fmin:
         raise InputError(f"option --fmax: the band is empty ({fmax:.4g} Hz <= fmin {fmin:.4g} Hz)")
     step = 1.0 / (oversample * span)
