@@ -1,0 +1,282 @@
+"""Property-based fuzzing of every reader of user files, and a check that nothing is executed or unpickled.
+
+Property (issue 8; common practice for input validation, no source): any byte
+string given as ``pulsars.ecsv``, ``residuals/NAME.ecsv``, ``noise.ecsv``, a
+galaxy catalogue (ECSV or CSV) or a TOML run file either loads or raises
+:class:`cwsearch.errors.InputError` — never any other exception. Inputs are
+drawn three ways: arbitrary bytes, a valid file with random byte edits, and
+a valid file with random lines replaced by tokens that readers find hard
+(NaN, inf, quotes, YAML tags, huge numbers, separators). Hypothesis
+(``max_examples`` modest, no deadline) shrinks any failure to a small case.
+
+YAML in ECSV headers: astropy reads the header with a safe YAML loader
+(only plain data types); a ``!!python/...`` tag must be refused with an
+InputError and must not run anything (PyYAML documentation: ``safe_load``
+does not construct arbitrary Python objects).
+"""
+
+from __future__ import annotations
+
+import re
+import shutil
+import warnings
+from pathlib import Path
+
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from cwsearch.errors import InputError
+
+_HEALTH = [HealthCheck.too_slow, HealthCheck.function_scoped_fixture, HealthCheck.data_too_large]
+FUZZ = settings(max_examples=30, deadline=None, derandomize=True, suppress_health_check=_HEALTH)
+#: a dataset read validates every file of the folder, so fewer examples there
+FUZZ_DATASET = settings(max_examples=20, deadline=None, derandomize=True, suppress_health_check=_HEALTH)
+
+HARD_TOKENS = ["nan", "-inf", "inf", "1e999", "-0", '""', "'", '"', "!!python/object/apply:os.system ['true']",
+               "{", "}", "[", ",", "#", "# %ECSV 1.0", "# ---", "\t", "\\", "../x", "SIMPSR01", "1e-320",
+               "# - {name: ra, unit: deg, datatype: float64}", "# delimiter: ','", "0x10", "True", "null",
+               "\u00e9", "\ufeff", "9" * 400]
+
+
+@pytest.fixture(scope="module")
+def valid(tmp_path_factory):
+    """Valid files to start from: a tiny dataset folder, a catalogue in ECSV and CSV, a run file."""
+    from astropy.table import Table
+
+    from cwsearch.dataset import write_dataset
+    from tests.conftest import make_tiny_array
+
+    root = tmp_path_factory.mktemp("fuzz_valid")
+    write_dataset(make_tiny_array(), root / "data")
+    (root / "galaxies.csv").write_text("name,ra,dec,distance,k_abs_mag\nGAL001,10.0,20.0,40.0,-24.1\n"
+                                       "GAL002,200.0,-30.0,80.0,-25.0\n")
+    table = Table({"name": ["GAL001", "GAL002"], "ra": [10.0, 200.0], "dec": [20.0, -30.0],
+                   "redshift": [0.01, 0.02]})
+    table["ra"].unit = "deg"
+    table["dec"].unit = "deg"
+    table.write(root / "galaxies.ecsv", format="ascii.ecsv")
+    (root / "run.toml").write_text('dataset = "data"\nout = "run"\nseed = 3\nstages = ["scan"]\n\n'
+                                   "[scan]\nnside = 2\nfmax = 3e-8\n\n[noise]\nred_components = 5\n")
+    return root
+
+
+def _mutations(base: bytes):
+    """Strategies for inputs derived from ``base`` (valid bytes)."""
+    lines = base.split(b"\n")
+
+    @st.composite
+    def byte_edits(draw):
+        data = bytearray(base)
+        for _ in range(draw(st.integers(1, 6))):
+            kind = draw(st.sampled_from(["flip", "insert", "delete", "truncate"]))
+            pos = draw(st.integers(0, max(len(data) - 1, 0)))
+            if kind == "flip" and data:
+                data[pos] = draw(st.integers(0, 255))
+            elif kind == "insert":
+                data[pos:pos] = draw(st.binary(min_size=1, max_size=8))
+            elif kind == "delete" and data:
+                del data[pos:pos + draw(st.integers(1, 20))]
+            elif kind == "truncate":
+                del data[pos:]
+        return bytes(data)
+
+    @st.composite
+    def token_edits(draw):
+        new = list(lines)
+        for _ in range(draw(st.integers(1, 3))):
+            i = draw(st.integers(0, len(new) - 1))
+            fields = new[i].split(b" ")
+            j = draw(st.integers(0, len(fields) - 1))
+            fields[j] = draw(st.sampled_from(HARD_TOKENS)).encode("utf-8")
+            new[i] = b" ".join(fields)
+        return b"\n".join(new)
+
+    return st.one_of(st.binary(max_size=600), byte_edits(), token_edits())
+
+
+def _loads_or_input_error(call):
+    """The property: ``call()`` returns, or raises InputError; anything else fails the test."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        try:
+            call()
+        except InputError as exc:
+            assert str(exc).strip() and "\n" not in str(exc).strip()  # one line
+
+
+def _dataset_copy(valid, tmp):
+    target = tmp / "data"
+    if target.exists():
+        shutil.rmtree(target)
+    shutil.copytree(valid / "data", target)
+    return target
+
+
+def _first_residual(folder):
+    return sorted((folder / "residuals").glob("*.ecsv"))[0]
+
+
+@pytest.mark.parametrize("which", ["pulsars.ecsv", "residuals/NAME.ecsv", "noise.ecsv"])
+def test_dataset_reader_fuzz(valid, tmp_path, which):
+    from cwsearch.dataset import read_dataset
+
+    source = {"pulsars.ecsv": valid / "data" / "pulsars.ecsv", "noise.ecsv": valid / "data" / "noise.ecsv",
+              "residuals/NAME.ecsv": _first_residual(valid / "data")}[which]
+    folder = _dataset_copy(valid, tmp_path)
+    target = folder / source.relative_to(valid / "data")
+
+    @FUZZ_DATASET
+    @given(data=_mutations(source.read_bytes()))
+    def check(data):
+        target.write_bytes(data)
+        _loads_or_input_error(lambda: read_dataset(folder))
+
+    check()
+
+
+@pytest.mark.parametrize("suffix", ["csv", "ecsv"])
+def test_catalog_reader_fuzz(valid, tmp_path, suffix):
+    from cwsearch.catalog import read_catalog
+
+    source = valid / f"galaxies.{suffix}"
+    target = tmp_path / f"fuzzed.{suffix}"
+
+    @FUZZ
+    @given(data=_mutations(source.read_bytes()))
+    def check(data):
+        target.write_bytes(data)
+        _loads_or_input_error(lambda: read_catalog(target))
+
+    check()
+
+
+def test_run_file_fuzz(valid, tmp_path):
+    from cwsearch.config import load_config
+
+    shutil.copytree(valid / "data", tmp_path / "data")
+    target = tmp_path / "run.toml"
+
+    @FUZZ
+    @given(data=_mutations((valid / "run.toml").read_bytes()))
+    def check(data):
+        target.write_bytes(data)
+        _loads_or_input_error(lambda: load_config(target))
+
+    check()
+
+
+# ------------------------------------------------------------------ nothing executed, nothing unpickled
+
+YAML_ATTACKS = [
+    "# meta: !!python/object/apply:os.system ['touch {marker}']",
+    "# meta: !!python/object/apply:subprocess.call [['touch', '{marker}']]",
+    "# meta: {{x: !!python/name:os.system }}",
+    "# meta: !!python/object/new:pathlib.Path ['{marker}']",
+]
+
+
+def _inject_yaml(path: Path, line: str):
+    text = path.read_text(encoding="utf-8")
+    path.write_text(text.replace("# schema: astropy-2.0", line + "\n# schema: astropy-2.0"), encoding="utf-8")
+
+
+@pytest.mark.parametrize("attack", YAML_ATTACKS, ids=["os.system", "subprocess", "python-name", "object-new"])
+@pytest.mark.parametrize("which", ["pulsars", "residuals", "noise", "catalog"])
+def test_yaml_python_tags_rejected_not_executed(valid, tmp_path, which, attack):
+    from cwsearch.catalog import read_catalog
+    from cwsearch.dataset import read_dataset
+
+    marker = tmp_path / "EXECUTED"
+    folder = _dataset_copy(valid, tmp_path)
+    if which == "catalog":
+        target = tmp_path / "galaxies.ecsv"
+        shutil.copy(valid / "galaxies.ecsv", target)
+        if "# schema: astropy-2.0" not in target.read_text():
+            pytest.skip("catalogue ECSV written without a schema line")
+        _inject_yaml(target, attack.format(marker=marker))
+        load = lambda: read_catalog(target)  # noqa: E731
+    else:
+        target = {"pulsars": folder / "pulsars.ecsv", "noise": folder / "noise.ecsv",
+                  "residuals": _first_residual(folder)}[which]
+        _inject_yaml(target, attack.format(marker=marker))
+        load = lambda: read_dataset(folder)  # noqa: E731
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with pytest.raises(InputError) as info:
+            load()
+    assert target.name in str(info.value)
+    assert not marker.exists()
+
+
+# Calls that run or unpickle data: the readers of user files (and everything else in the package) must not
+# use them on anything read from disk. Python documentation: pickle "is not secure", eval/exec run code;
+# numpy.load(allow_pickle=True) unpickles object arrays; yaml.load without a safe loader builds objects.
+FORBIDDEN = [
+    (r"\bimport\s+pickle\b|\bfrom\s+pickle\b|\bpickle\.load", "pickle"),
+    (r"\bcloudpickle\.load|\bdill\.load|\bmarshal\.load|\bshelve\.open", "unpickling"),
+    (r"(?<![.\w])eval\s*\(", "eval"),
+    (r"(?<![.\w])exec\s*\(", "exec"),
+    (r"allow_pickle\s*=\s*True", "np.load(allow_pickle=True)"),
+    (r"yaml\.(unsafe_load|load\s*\((?![^)]*SafeLoader))|yaml\.full_load|UnsafeLoader|FullLoader", "unsafe YAML"),
+    (r"\bcompile\s*\([^)]*['\"]exec['\"]", "compile(..., 'exec')"),
+    (r"__import__\s*\(|importlib\.import_module\s*\((?!f?['\"])", "dynamic import of a name from data"),
+]
+#: reviewed exceptions: (file, code fragment, why it is safe; a test below checks the why)
+ALLOWED = {
+    ("config.py", "importlib.import_module(module_name)"):
+        "module_name comes from the fixed table config.STAGE_OPTIONS, never from the run file",
+}
+
+
+def _package_sources():
+    import cwsearch
+
+    root = Path(cwsearch.__file__).resolve().parent
+    return sorted(root.rglob("*.py"))
+
+
+def test_no_code_execution_or_unpickling_in_package():
+    sources = _package_sources()
+    assert len(sources) > 10
+    hits = []
+    for path in sources:
+        for lineno, line in enumerate(path.read_text(encoding="utf-8").splitlines(), 1):
+            code = line.split("#", 1)[0]
+            for pattern, what in FORBIDDEN:
+                if re.search(pattern, code) and not any(
+                        path.name == f and frag in code for f, frag in ALLOWED):
+                    hits.append(f"{path.name}:{lineno}: {what}: {line.strip()}")
+    assert not hits, "\n".join(hits)
+
+
+def test_allowed_dynamic_import_is_a_fixed_table():
+    from cwsearch import config
+
+    assert all(module.startswith("cwsearch.") for module, _ in config.STAGE_OPTIONS.values())
+    assert all(isinstance(v, tuple) for v in config.STAGE_OPTIONS.values())
+
+
+def test_numpy_loads_refuse_pickles():
+    """Every np.load in the package passes allow_pickle=False explicitly (checkpoints are our own files,
+    but a run folder is user-writable)."""
+    hits = []
+    for path in _package_sources():
+        text = path.read_text(encoding="utf-8")
+        for m in re.finditer(r"np\.load\(([^)]*)\)", text):
+            if "allow_pickle=False" not in m.group(1):
+                hits.append(f"{path.name}: np.load({m.group(1)})")
+    assert not hits, hits
+
+
+def test_forbidden_patterns_do_catch_offenders():
+    """The grep above is not vacuous: it flags each kind of offending line (common practice, no source)."""
+    offenders = ["import pickle", "obj = pickle.loads(data)", "value = eval(text)", "exec(code)",
+                 "np.load(path, allow_pickle=True)", "yaml.load(stream)", "yaml.unsafe_load(s)",
+                 "__import__(name)"]
+    for line in offenders:
+        assert any(re.search(p, line) for p, _ in FORBIDDEN), line
+    harmless = ["table.meta.get('x')", "x = evaluate(y)", "yaml.load(s, Loader=yaml.SafeLoader)",
+                "importlib.import_module(f'cwsearch.commands.{name}')"]
+    for line in harmless:
+        assert not any(re.search(p, line) for p, _ in FORBIDDEN), line
