@@ -71,6 +71,9 @@ _G0, _G1, _G2, _G3, _G4, _G5, _G6, _G7 = _series(5 / 8, True)
 _E0, _E1, _E2, _E3, _E4, _E5, _E6, _E7 = _series(1 / 8, False)
 _CHIRP_SERIES = np.array([_G0, _G1, _G2, _G3, _G4, _G5, _G6, _G7])
 _SERIES_LIMIT = 1e-3
+# batches smaller than these (walkers × TOAs, walkers × pulsars) run on one thread
+_PARALLEL_BASIS = 200_000
+_PARALLEL_PROJECTIONS = 20_000
 
 _PIO2_HI = 1.57079632673412561417e+00   # π/2 split in two parts (Cody & Waite range reduction)
 _PIO2_LO = 6.07710050650619224932e-11
@@ -112,7 +115,7 @@ def sincos(x):
 
 
 @njit(cache=True, inline="always", error_model="numpy")
-def _fill_term(dt, omega, kappa, amplitude, series, coef, out_s, out_c):
+def _fill_term(dt, omega, kappa, amplitude, series, out_s, out_c):
     """One term's two basis series: env·sin(2ωΔt·g(u)), env·cos(...), u = κΔt,
     env = A (1−u)^(1/8), g(u) = (1 − (1−u)^(5/8)) / (5u/8) (series for small u)."""
     n = dt.shape[0]
@@ -136,48 +139,67 @@ def _fill_term(dt, omega, kappa, amplitude, series, coef, out_s, out_c):
             out_c[i] = amplitude * y * c
 
 
-@njit(cache=True, parallel=True, error_model="numpy")
-def _basis_batch(dt, omega_e, kappa_e, amp_e, omega_p, kappa_p, amp_p, t_max, coef, out):
-    """out[w, j, i]: basis series j of walker w at TOA i (2 columns: Earth only; 4: with pulsar term)."""
-    n_w = out.shape[0]
-    ncol = out.shape[1]
-    for w in prange(n_w):
-        _fill_term(dt, omega_e[w], kappa_e[w], amp_e[w], abs(kappa_e[w] * t_max) < 1e-3, coef,
-                   out[w, 0], out[w, 1])
-        if ncol == 4:
-            _fill_term(dt, omega_p[w], kappa_p[w], amp_p[w], abs(kappa_p[w] * t_max) < 1e-3, coef,
-                       out[w, 2], out[w, 3])
+@njit(cache=True, error_model="numpy")
+def _basis_one(w, dt, omega_e, kappa_e, amp_e, omega_p, kappa_p, amp_p, t_max, out):
+    """Basis series of walker w: out[w, j, i] (2 columns: Earth only; 4: with pulsar term)."""
+    _fill_term(dt, omega_e[w], kappa_e[w], amp_e[w], abs(kappa_e[w] * t_max) < _SERIES_LIMIT, out[w, 0], out[w, 1])
+    if out.shape[1] == 4:
+        _fill_term(dt, omega_p[w], kappa_p[w], amp_p[w], abs(kappa_p[w] * t_max) < _SERIES_LIMIT,
+                   out[w, 2], out[w, 3])
 
 
-@njit(cache=True, parallel=True, fastmath=True)
-def _gram(basis, inv_var, whitened, out):
+@njit(cache=True, parallel=True)
+def _basis_parallel(dt, omega_e, kappa_e, amp_e, omega_p, kappa_p, amp_p, t_max, out):
+    for w in prange(out.shape[0]):
+        _basis_one(w, dt, omega_e, kappa_e, amp_e, omega_p, kappa_p, amp_p, t_max, out)
+
+
+@njit(cache=True)
+def _basis_serial(dt, omega_e, kappa_e, amp_e, omega_p, kappa_p, amp_p, t_max, out):
+    for w in range(out.shape[0]):
+        _basis_one(w, dt, omega_e, kappa_e, amp_e, omega_p, kappa_p, amp_p, t_max, out)
+
+
+@njit(cache=True, fastmath=True)
+def _gram_one(w, basis, inv_var, whitened, out):
     """out[w] = B_w diag(1/σ²) B_wᵀ − U_w U_wᵀ: the matrix (b_i|b_j) of walker w."""
     n_w, ncol, n = basis.shape
     k = whitened.shape[2]
-    for w in prange(n_w):
-        acc = np.zeros((4, 4))
-        for i in range(n):
-            iv = inv_var[i]
-            b0 = basis[w, 0, i] * iv
-            b1 = basis[w, 1, i] * iv
-            acc[0, 0] += b0 * basis[w, 0, i]
-            acc[0, 1] += b0 * basis[w, 1, i]
-            acc[1, 1] += b1 * basis[w, 1, i]
-            if ncol == 4:
-                acc[0, 2] += b0 * basis[w, 2, i]
-                acc[0, 3] += b0 * basis[w, 3, i]
-                acc[1, 2] += b1 * basis[w, 2, i]
-                acc[1, 3] += b1 * basis[w, 3, i]
-                acc[2, 2] += basis[w, 2, i] * basis[w, 2, i] * iv
-                acc[2, 3] += basis[w, 2, i] * basis[w, 3, i] * iv
-                acc[3, 3] += basis[w, 3, i] * basis[w, 3, i] * iv
-        for a in range(ncol):
-            for b in range(a, ncol):
-                v = acc[a, b]
-                for m in range(k):
-                    v -= whitened[w, a, m] * whitened[w, b, m]
-                out[w, a, b] = v
-                out[w, b, a] = v
+    acc = np.zeros((4, 4))
+    for i in range(n):
+        iv = inv_var[i]
+        b0 = basis[w, 0, i] * iv
+        b1 = basis[w, 1, i] * iv
+        acc[0, 0] += b0 * basis[w, 0, i]
+        acc[0, 1] += b0 * basis[w, 1, i]
+        acc[1, 1] += b1 * basis[w, 1, i]
+        if ncol == 4:
+            acc[0, 2] += b0 * basis[w, 2, i]
+            acc[0, 3] += b0 * basis[w, 3, i]
+            acc[1, 2] += b1 * basis[w, 2, i]
+            acc[1, 3] += b1 * basis[w, 3, i]
+            acc[2, 2] += basis[w, 2, i] * basis[w, 2, i] * iv
+            acc[2, 3] += basis[w, 2, i] * basis[w, 3, i] * iv
+            acc[3, 3] += basis[w, 3, i] * basis[w, 3, i] * iv
+    for a in range(ncol):
+        for b in range(a, ncol):
+            v = acc[a, b]
+            for m in range(k):
+                v -= whitened[w, a, m] * whitened[w, b, m]
+            out[w, a, b] = v
+            out[w, b, a] = v
+
+
+@njit(cache=True, parallel=True)
+def _gram_parallel(basis, inv_var, whitened, out):
+    for w in prange(basis.shape[0]):
+        _gram_one(w, basis, inv_var, whitened, out)
+
+
+@njit(cache=True)
+def _gram_serial(basis, inv_var, whitened, out):
+    for w in range(basis.shape[0]):
+        _gram_one(w, basis, inv_var, whitened, out)
 
 
 @njit(cache=True, inline="always")
@@ -220,38 +242,55 @@ def marginal_log_factor(a, b, c, d, e, n_grid):
     return e + shift + np.log(total / k)
 
 
+@njit(cache=True)
+def _projection_one(w, fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, pulsar_term, n_grid, out):
+    """ln Λ of walker w with pulsar phases marginalised (or Earth term only)."""
+    n_p = fplus.shape[1]
+    ci = cos_inc[w]
+    c2p, s2p = np.cos(2 * psi[w]), np.sin(2 * psi[w])
+    c0, s0 = np.cos(2 * phase[w]), np.sin(2 * phase[w])
+    h = strain[w]
+    total = 0.0
+    for p in range(n_p):
+        fp, fx = fplus[w, p], fcross[w, p]
+        pa = (1 + ci * ci) * (fp * c2p + fx * s2p)
+        qa = 2 * ci * (fp * s2p - fx * c2p)
+        e1 = h * (pa * c0 - qa * s0)
+        e2 = h * (pa * s0 + qa * c0)
+        g = gmat[w, p]
+        dv = dvec[w, p]
+        earth = e1 * dv[0] + e2 * dv[1] - 0.5 * (e1 * e1 * g[0, 0] + 2 * e1 * e2 * g[0, 1] + e2 * e2 * g[1, 1])
+        if not pulsar_term:
+            total += earth
+            continue
+        amp = h * np.sqrt(pa * pa + qa * qa)
+        v3 = e1 * g[0, 2] + e2 * g[1, 2]
+        v4 = e1 * g[0, 3] + e2 * g[1, 3]
+        a = amp * (v3 - dv[2])
+        b = amp * (v4 - dv[3])
+        c = -0.25 * amp * amp * (g[2, 2] - g[3, 3])
+        d = -0.5 * amp * amp * g[2, 3]
+        e = earth - 0.25 * amp * amp * (g[2, 2] + g[3, 3])
+        total += marginal_log_factor(a, b, c, d, e, n_grid)
+    out[w] = total
+
+
 @njit(cache=True, parallel=True)
-def _projection_batch(fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, pulsar_term, n_grid, out):
-    """ln Λ per walker with pulsar phases marginalised (or Earth term only)."""
-    n_w, n_p = fplus.shape
-    for w in prange(n_w):
-        ci = cos_inc[w]
-        c2p, s2p = np.cos(2 * psi[w]), np.sin(2 * psi[w])
-        c0, s0 = np.cos(2 * phase[w]), np.sin(2 * phase[w])
-        h = strain[w]
-        total = 0.0
-        for p in range(n_p):
-            fp, fx = fplus[w, p], fcross[w, p]
-            pa = (1 + ci * ci) * (fp * c2p + fx * s2p)
-            qa = 2 * ci * (fp * s2p - fx * c2p)
-            e1 = h * (pa * c0 - qa * s0)
-            e2 = h * (pa * s0 + qa * c0)
-            g = gmat[w, p]
-            dv = dvec[w, p]
-            earth = e1 * dv[0] + e2 * dv[1] - 0.5 * (e1 * e1 * g[0, 0] + 2 * e1 * e2 * g[0, 1] + e2 * e2 * g[1, 1])
-            if not pulsar_term:
-                total += earth
-                continue
-            amp = h * np.sqrt(pa * pa + qa * qa)
-            v3 = e1 * g[0, 2] + e2 * g[1, 2]
-            v4 = e1 * g[0, 3] + e2 * g[1, 3]
-            a = amp * (v3 - dv[2])
-            b = amp * (v4 - dv[3])
-            c = -0.25 * amp * amp * (g[2, 2] - g[3, 3])
-            d = -0.5 * amp * amp * g[2, 3]
-            e = earth - 0.25 * amp * amp * (g[2, 2] + g[3, 3])
-            total += marginal_log_factor(a, b, c, d, e, n_grid)
-        out[w] = total
+def _projection_parallel(fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, pulsar_term, n_grid, out):
+    for w in prange(fplus.shape[0]):
+        _projection_one(w, fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, pulsar_term, n_grid, out)
+
+
+@njit(cache=True)
+def _projection_serial(fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, pulsar_term, n_grid, out):
+    for w in range(fplus.shape[0]):
+        _projection_one(w, fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, pulsar_term, n_grid, out)
+
+
+def _projection_batch(fplus, *args):
+    """Serial for small batches (thread start-up would dominate), parallel over walkers otherwise."""
+    kernel = _projection_parallel if fplus.size >= _PARALLEL_PROJECTIONS else _projection_serial
+    kernel(fplus, *args)
 
 
 # ---------------------------------------------------------------- public API
@@ -316,6 +355,8 @@ class Likelihood:
             self._weighted_data.append(np.ascontiguousarray(wd * np.diag(white) - operator.T @ ud))
             self._operator.append(np.ascontiguousarray(operator))
         self.n_pulsars = len(array)
+        self._t_max = [float(np.max(np.abs(dt))) for dt in self._dt]
+        self._mean_toas = float(np.mean([dt.shape[0] for dt in self._dt]))
 
     # -------------------------------------------------------------- exact path
     def shape_cache(self, ra, dec, gw_frequency, chirp_mass) -> ShapeCache:
@@ -384,16 +425,19 @@ class Likelihood:
         dvec = np.zeros((n_w, self.n_pulsars, 4))
         gmat = np.zeros((n_w, self.n_pulsars, 4, 4))
         g = np.empty((n_w, ncol, ncol))
+        parallel = n_w * self._mean_toas >= _PARALLEL_BASIS
+        basis_kernel = _basis_parallel if parallel else _basis_serial
+        gram_kernel = _gram_parallel if parallel else _gram_serial
         for p in range(self.n_pulsars):
             dt = self._dt[p]
             basis = np.empty((n_w, ncol, dt.shape[0]))
-            _basis_batch(dt, omega0, kappa_e, amp0, np.ascontiguousarray(omega_p[:, p]),
+            basis_kernel(dt, omega0, kappa_e, amp0, np.ascontiguousarray(omega_p[:, p]),
                          np.ascontiguousarray(kappa_p[:, p]), np.ascontiguousarray(amp_p[:, p]),
-                         float(np.max(np.abs(dt))), _CHIRP_SERIES, basis)
+                         self._t_max[p], basis)
             flat = basis.reshape(n_w * ncol, -1)
             dvec[:, p, :ncol] = (flat @ self._weighted_data[p]).reshape(n_w, ncol)
             whitened = (flat @ self._operator[p].T).reshape(n_w, ncol, -1)
-            _gram(basis, self._inv_var[p], whitened, g)
+            gram_kernel(basis, self._inv_var[p], whitened, g)
             gmat[:, p, :ncol, :ncol] = g
         if same and self.pulsar_term:
             dvec[:, :, 2:] = dvec[:, :, :2]
