@@ -60,7 +60,7 @@ STAGES = tuple(STAGE_OPTIONS)
 #: options the pipeline fills in itself (never run-file keys), per stage
 PIPELINE_SET = {
     "scan": frozenset(),
-    "followup": frozenset({"candidate", "candidates", "fap_threshold_override"}),
+    "followup": frozenset({"candidate", "top", "frequency", "ra", "dec", "all_sky", "resume"}),
     "hosts": frozenset({"candidate"}),
     "limits": frozenset(),
 }
@@ -587,8 +587,9 @@ def _build(cls, values, section, fail):
     """
     try:
         obj = cls(**values)
-        if callable(getattr(obj, "validate", None)):
-            obj.validate()
+        for method in ("validate", "check"):
+            if callable(getattr(obj, method, None)):
+                getattr(obj, method)()
         return obj
     except InputError as exc:
         message, key = exc.message, exc.column if exc.column in values else None

@@ -107,6 +107,7 @@ class StageContext:
     seed: int
     progress: bool
     upstream: dict
+    resuming: bool = False  # the same stage, same inputs, was interrupted before: continue its checkpoint
     _array_loader: Callable = field(repr=False, default=None)
 
     @property
@@ -374,7 +375,9 @@ def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: C
         previous = read_record(stage_dir)
         stage_dir.mkdir(parents=True, exist_ok=True)
         started, t0 = _now(), time.perf_counter()
-        if previous and previous.get("status") == "running" and previous.get("input_hash") == input_hash:
+        ctx.resuming = bool(previous and previous.get("status") == "running"
+                            and previous.get("input_hash") == input_hash)
+        if ctx.resuming:
             log(f"{label}: resuming (interrupted earlier) ...")
         else:
             log(f"{label}: running ...")
@@ -573,10 +576,15 @@ def headline_result(run_dir, reports=None) -> dict:
         threshold = _threshold(run_dir)
         cand["fap_threshold"] = threshold
         head["candidate_found"] = bool("fap" in cand and threshold is not None and cand["fap"] < threshold)
-        if isinstance(fol, dict) and "log_bayes_factor" in fol:
-            cand["log_bayes_factor"] = _num(fol["log_bayes_factor"])
-            if "log_bayes_factor_err" in fol:
-                cand["log_bayes_factor_err"] = _num(fol["log_bayes_factor_err"])
+        if isinstance(fol, dict) and fol.get("log_bayes_factor") is not None:
+            bf = fol["log_bayes_factor"]
+            err = fol.get("log_bayes_factor_error", fol.get("log_bayes_factor_err"))
+            if isinstance(bf, list):  # several candidates followed: the first is the best
+                bf = bf[0] if bf else None
+                err = err[0] if isinstance(err, list) and err else None
+            cand["log_bayes_factor"] = _num(bf)
+            if err is not None:
+                cand["log_bayes_factor_err"] = _num(err)
         for key in ("log_bayes_factor", "log_bayes_factor_err"):
             if key not in cand and key in followed:
                 cand[key] = _num(followed[key])
@@ -697,8 +705,84 @@ def _run_scan(ctx):
     return dict(getattr(result, "summary", {}) or {})
 
 
+def followup_rows(candidates, fap_threshold, max_candidates, span):
+    """Rows (0-based, best first) of the scan candidates to follow up.
+
+    Every candidate whose trials-corrected analytic false-alarm probability
+    (column ``fap``) is below ``fap_threshold``, best first, except those
+    within one frequency bin (1/T_span) of a better chosen one (the same
+    source seen at another sky position: the follow-up fits the whole sky
+    anyway), at most ``max_candidates``.
+    """
+    import numpy as np
+
+    if candidates is None or len(candidates) == 0 or "fap" not in candidates.colnames:
+        return []
+    fap = np.asarray(candidates["fap"], dtype=float)
+    order = np.argsort(fap, kind="stable")
+    chosen = []
+    for r in order:
+        if not fap[r] < fap_threshold:
+            break
+        f = float(candidates["frequency"][r])
+        if any(abs(f - float(candidates["frequency"][c])) <= 1.0 / span * (1 + 1e-9) for c in chosen):
+            continue
+        chosen.append(int(r))
+        if len(chosen) >= max_candidates:
+            break
+    return chosen
+
+
 def _run_followup(ctx):
-    raise StageUnavailable("stage not available: cwsearch.followup is not wired yet")
+    """Follow up every scan candidate below the false-alarm threshold (reads run_dir/scan/candidates.ecsv)."""
+    from dataclasses import asdict, replace
+
+    import numpy as np
+
+    mod = _stage_module("followup")
+    threshold = float(ctx.extra.get("fap_threshold", 0.01))
+    max_candidates = int(ctx.extra.get("max_candidates", 3))
+    cands = _read_table(ctx.run_dir / "scan" / "candidates.ecsv")
+    rows = followup_rows(cands, threshold, max_candidates, ctx.array.span)
+    if not rows:
+        best = float(np.min(cands["fap"])) if cands is not None and len(cands) and "fap" in cands.colnames \
+            else None
+        raise NothingToDo(f"no scan candidate has a false-alarm probability below {threshold:g}"
+                          + (f" (best {best:.2g})" if best is not None else ""))
+    if rows == list(range(len(rows))):
+        # the chosen candidates are the best ones: one call (one sub-folder each when there are several)
+        options = replace(ctx.options, top=len(rows), candidate=None, resume=ctx.resuming)
+        result = mod.run_followup(ctx.array, ctx.run_dir, options, noise=ctx.config.noise, seed=ctx.seed,
+                                  progress=ctx.progress)
+        summary = dict(getattr(result, "summary", {}) or {})
+    else:
+        # candidates skipped in between (same source at another sky position): one call per chosen row, each
+        # in a scratch run folder, moved to followup/candidate_ROW/
+        seeds = np.random.SeedSequence(ctx.seed).generate_state(len(rows))
+        parts = []
+        for row, seed in zip(rows, seeds):
+            scratch = ctx.stage_dir / f".work_{row + 1}"
+            (scratch / "scan").mkdir(parents=True, exist_ok=True)
+            shutil.copy2(ctx.run_dir / "scan" / "candidates.ecsv", scratch / "scan" / "candidates.ecsv")
+            options = replace(ctx.options, top=1, candidate=row + 1, resume=ctx.resuming)
+            result = mod.run_followup(ctx.array, scratch, options, noise=ctx.config.noise, seed=int(seed),
+                                      progress=ctx.progress)
+            final = ctx.stage_dir / f"candidate_{row + 1}"
+            if final.exists():
+                shutil.rmtree(final)
+            os.replace(scratch / "followup", final)
+            shutil.rmtree(scratch)
+            parts.append(dict(getattr(result, "summary", {}) or {}))
+        summary = {"targets": [f"candidate_{r + 1}" for r in rows],
+                   "log_bayes_factor": [p.get("log_bayes_factor") for p in parts],
+                   "log_bayes_factor_error": [p.get("log_bayes_factor_error") for p in parts],
+                   "effective_sample_size": [p.get("effective_sample_size") for p in parts],
+                   "folders": [str(ctx.stage_dir / f"candidate_{r + 1}") for r in rows],
+                   "seed": ctx.seed, "options": asdict(ctx.options)}
+        write_json_atomic(ctx.stage_dir / "summary.json", summary)
+    summary["followed_rows"] = [r + 1 for r in rows]
+    summary["fap_threshold"] = threshold
+    return summary
 
 
 def _hosts_inputs(ctx):

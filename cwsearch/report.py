@@ -123,9 +123,7 @@ def _fmt(v) -> str:
     if isinstance(v, float):
         if v != v:
             return "–"
-        if v == 0 or 1e-3 <= abs(v) < 1e5:
-            return f"{v:.4g}"
-        return f"{v:.3e}"
+        return f"{v:.4g}"
     if isinstance(v, (list, tuple)):
         return ", ".join(_fmt(x) for x in v)
     return str(v)
@@ -304,18 +302,64 @@ def _candidates(run: _Run) -> str:
     return intro + html_table(table, max_rows, sort, desc)
 
 
+def _followup_targets(run: _Run):
+    """(name, summary dict, folder) per followed-up candidate."""
+    folder = run.dir / "followup"
+    top = _read_json(folder / "summary.json")
+    if not isinstance(top, dict):
+        summary = run.stage_summary("followup")
+        return [("candidate", summary, folder)] if summary.get("log_bayes_factor") is not None else []
+    if isinstance(top.get("targets"), list) and isinstance(top.get("log_bayes_factor"), list):
+        out = []
+        for name in top["targets"]:
+            sub = folder / str(name)
+            out.append((str(name), _read_json(sub / "summary.json") or {}, sub))
+        return out
+    return [(str(top.get("target", "candidate")), top, folder)]
+
+
+def _bayes_line(summary) -> str:
+    bf = summary.get("log_bayes_factor")
+    if bf is None:
+        return ""
+    err = summary.get("log_bayes_factor_error", summary.get("log_bayes_factor_err"))
+    text = f"ln Bayes factor (signal vs noise) = {_fmt(bf)}" + (f" ± {_fmt(err)}" if err is not None else "")
+    return f"<p><b>{_e(text)}</b></p>"
+
+
+def _parameter_table(summary) -> str:
+    params = summary.get("parameters")
+    if not isinstance(params, dict) or not params:
+        return ""
+    rows = []
+    for name, p in params.items():
+        if not isinstance(p, dict):
+            continue
+        lo, hi = (p.get("interval_90") or [None, None])[:2]
+        rows.append({"parameter": name, "median": p.get("median"), "5 %": lo, "95 %": hi,
+                     "unit": p.get("unit", "")})
+    return "<p>Posterior medians and 90 % intervals:</p>" + html_table(rows)
+
+
+_FOLLOWUP_SKIP = ("log_bayes_factor", "log_bayes_factor_error", "log_bayes_factor_err", "target", "seed",
+                  "parameters", "options", "folders", "targets")
+
+
 def _followup(run: _Run) -> str:
     parts = [run.status_note("followup")]
-    fol = _read_json(run.dir / "followup" / "summary.json")
-    summary = fol if isinstance(fol, dict) else run.stage_summary("followup")
-    if summary:
-        bf = summary.get("log_bayes_factor")
-        if bf is not None:
-            err = summary.get("log_bayes_factor_err")
-            text = f"ln Bayes factor (signal vs noise) = {_fmt(bf)}" + (f" ± {_fmt(err)}" if err is not None else "")
-            parts.append(f"<p><b>{_e(text)}</b></p>")
-        parts.append(_dl(_summary_items(summary, skip=("log_bayes_factor", "log_bayes_factor_err"))))
-    parts.append(_figures(run.dir / "followup"))
+    targets = _followup_targets(run)
+    stage = run.dir / "followup"
+    shown = set()
+    for name, summary, folder in targets:
+        if len(targets) > 1:
+            parts.append(f"<h3>{_e(name)}</h3>")
+        parts.append(_bayes_line(summary))
+        parts.append(_parameter_table(summary))
+        parts.append(_dl(_summary_items(summary, skip=_FOLLOWUP_SKIP)))
+        imgs = sorted(folder.glob("*.png")) if folder != stage or len(targets) > 1 else _images(folder)
+        parts.extend(embed_png(p) for p in imgs)
+        shown.update(imgs)
+    parts.extend(embed_png(p) for p in _images(stage) if p not in shown)
     return "\n".join(p for p in parts if p)
 
 
@@ -354,17 +398,18 @@ def run_cautions(run: _Run) -> list:
     for stage, info in run.stages.items():
         if info.get("status") in ("unavailable", "blocked", "failed"):
             out.append(f"The {stage} stage did not run ({info.get('reason')}); its section is empty.")
-    fol = _read_json(run.dir / "followup" / "summary.json")
-    fol = fol if isinstance(fol, dict) else run.stage_summary("followup")
-    if fol:
-        err = fol.get("log_bayes_factor_err")
+    for name, fol, _ in _followup_targets(run):
+        err = fol.get("log_bayes_factor_error", fol.get("log_bayes_factor_err"))
         if isinstance(err, (int, float)) and err > 1:
-            out.append(f"The Bayes factor's thermodynamic-integration error (±{err:.1f} in ln) is large; "
-                       "raise the number of temperatures in [followup] for a firmer value.")
-        ess = fol.get("ess", fol.get("effective_samples"))
+            out.append(f"{name}: the Bayes factor's thermodynamic-integration error (±{err:.1f} in ln) is large; "
+                       "raise [followup] temperatures for a firmer value.")
+        ess = fol.get("effective_sample_size", fol.get("ess"))
         if isinstance(ess, (int, float)) and ess < 1000:
-            out.append(f"Only {ess:.0f} effective posterior samples: posterior tails and the host "
-                       "probabilities are rough; run the follow-up longer.")
+            out.append(f"{name}: only {ess:.0f} effective posterior samples; posterior tails and the host "
+                       "probabilities are rough; raise [followup] ess.")
+        if fol.get("stopped_by") not in (None, "ess"):
+            out.append(f"{name}: the sampler stopped by {fol.get('stopped_by')}, not by reaching its "
+                       "effective-sample target.")
     scan = run.stage_summary("scan")
     if scan and not any("empirical" in k for k in scan):
         out.append("False-alarm probabilities are analytic (effective number of templates) only; "

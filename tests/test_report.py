@@ -98,8 +98,14 @@ def run_folder(tmp_path):
     _table(run / "hosts" / "ranking.ecsv", name=["GALX0001", "GALX0002"], ra=[141.1, 140.0], dec=[-27.4, -26.0],
            probability=[0.2, 0.7])
     _table(run / "limits" / "frequency_limits.ecsv", frequency=[5e-9, 1e-8, 2e-8], strain_95=[3e-14, 1e-14, 2e-14])
-    (run / "followup" / "summary.json").write_text(json.dumps({"log_bayes_factor": 55.2, "log_bayes_factor_err": 1.8,
-                                                              "ess": 600, "acceptance": 0.3}))
+    # follow-up of several candidates: a top summary with lists, one sub-folder per candidate
+    (run / "followup" / "summary.json").write_text(json.dumps({
+        "targets": ["candidate_1"], "log_bayes_factor": [55.2], "log_bayes_factor_error": [1.8],
+        "effective_sample_size": [600.0], "folders": [str(run / "followup" / "candidate_1")]}))
+    (run / "followup" / "candidate_1" / "summary.json").write_text(json.dumps({
+        "target": "candidate_1", "log_bayes_factor": 55.2, "log_bayes_factor_error": 1.8,
+        "effective_sample_size": 600.0, "stopped_by": "ess", "iterations": 3000,
+        "parameters": {"frequency": {"median": 1.2e-8, "interval_90": [1.19e-8, 1.21e-8], "unit": "Hz"}}}))
     for stage, summary in {"scan": {"n_frequencies": 40, "nside": 4}, "followup": {"candidates": 1},
                            "hosts": {"galaxies": 2}, "limits": {"n_frequencies": 3}}.items():
         (run / stage / ".stage.json").write_text(json.dumps({"stage": stage, "status": "complete",
@@ -149,6 +155,7 @@ def test_content_of_the_sections(run_folder):
     assert "<run>" not in (run_folder / "report.html").read_text()
     assert "SIMPSR01" in text and "GALX0002" in text
     assert "55.2" in text and "± 1.8" in text  # Bayes factor and its error
+    assert "1.19e-08" in text and "1.21e-08" in text  # posterior interval table
     assert "Candidate found" in text and "1.2e-08 Hz" in text
     assert "Best host: GALX0002 with probability 0.70" in text
     assert "1e-14" in text and "1e-08 Hz" in text  # most sensitive frequency and its limit

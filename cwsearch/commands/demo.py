@@ -22,14 +22,14 @@ EXAMPLE = """\
 #: demo settings per section (keys are the stage options; see runs/example.toml)
 DEMO = {
     "scan": {"nside": 8, "oversample": 2, "fmax": 1.0e-7, "null_sims": 20},
-    "followup": {"fap_threshold": 0.01, "max_candidates": 1},
+    "followup": {"fap_threshold": 0.01, "max_candidates": 1, "ess": 400.0, "temperatures": 8, "walkers": 24},
     "hosts": {},
     "limits": {},
 }
 #: --quick overrides
 QUICK = {
     "scan": {"nside": 4, "fmax": 5.0e-8, "null_sims": 0},
-    "followup": {},
+    "followup": {"ess": 100.0, "temperatures": 6, "walkers": 20, "adapt_iterations": 200},
     "hosts": {},
     "limits": {},
 }
