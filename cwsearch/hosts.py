@@ -116,6 +116,7 @@ class HostsOptions:
     candidate: str | None = _opt(None, "follow-up sub-folder name or scan candidate row (1 = best)")
     observed_span: float | None = _opt(None, "observed span [yr] (default: from the dataset, else 15)")
     max_samples: int = _opt(20000, "use at most this many posterior samples (random subset)")
+    plots: bool = _opt(True, "write the PNG plots")
 
 
 @dataclass
@@ -442,8 +443,27 @@ def _read_fe_map(path: Path, candidate_row: int, frequency: float):
     return int(nside), pixels[good], fe[good]
 
 
-def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000):
-    """Coarse pseudo-posterior from a scan candidate alone (see the module docstring)."""
+def fe_sky_map(array, frequency, noise=None, nside=32):
+    """Earth-term Fe on a HEALPix grid at one frequency [Hz], from the dataset (cwsearch.fstat)."""
+    from . import fstat
+    from .noise import NoiseWeighting
+    from .sky import pixel_centres
+
+    engine = NoiseWeighting(array, noise)
+    proj = fstat.project(engine, np.array([float(frequency)]))
+    ra, dec = pixel_centres(nside)
+    fplus, fcross = fstat.sky_patterns(proj, ra, dec)
+    return np.asarray(fstat.fe_statistic(proj, fplus, fcross))[:, 0]
+
+
+def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000, *, array=None, noise=None):
+    """Coarse pseudo-posterior from a scan candidate alone (see the module docstring).
+
+    Sky, in order of preference: ``options.sky_map``; an Fe map table
+    (``pixel``, ``fe``) in ``run_dir/scan/``; an Fe map computed here at the
+    candidate's frequency from ``array`` (nside 32); a Fisher blob of
+    ``options.resolution`` degrees around the candidate.
+    """
     from astropy.table import Table
 
     scan_dir = Path(run_dir) / "scan"
@@ -481,8 +501,12 @@ def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000):
     for p in _find_sky_map(scan_dir, options):
         fe_map = _read_fe_map(p, row, f0)
         if fe_map is not None:
-            map_path = p
+            map_label = p.name
             break
+    if fe_map is None and array is not None:
+        nside = 32
+        fe_map = (nside, np.arange(12 * nside**2), fe_sky_map(array, f0, noise, nside))
+        map_label = f"computed from the dataset at {f0:.4g} Hz"
     if fe_map is not None:
         from .sky import _healpix
 
@@ -494,8 +518,8 @@ def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000):
                                                      dy=rng.uniform(size=n_samples))
         ra, dec = np.asarray(lon.to_value("rad")), np.asarray(lat.to_value("rad"))
         kind = "scan-fe-map"
-        desc = (f"scan candidate {row} alone (no follow-up posterior): sky from the Fe map "
-                f"{map_path.name} (nside {nside}, density exp(Fe - Fe_max))")
+        desc = (f"scan candidate {row} alone (no follow-up posterior): sky from the Fe sky map "
+                f"{map_label} (nside {nside}, density exp(Fe - Fe_max))")
     else:
         ra, dec = sample_fisher(ra0, dec0, math.radians(options.resolution), n_samples, rng)
         kind = "scan-fisher-blob"
@@ -511,7 +535,7 @@ def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000):
     return Localisation(f"scan-{row}", kind, desc, str(path), ra, dec, frequency, chirp_mass, strain)
 
 
-def find_localisations(run_dir, options, span_seconds, rng):
+def find_localisations(run_dir, options, span_seconds, rng, *, array=None, noise=None):
     """Follow-up posteriors of the run (one per candidate folder), else one scan candidate."""
     run_dir = Path(run_dir)
     follow = run_dir / "followup"
@@ -529,7 +553,7 @@ def find_localisations(run_dir, options, span_seconds, rng):
                 raise InputError(f"--candidate {options.candidate}: no follow-up folder of that name", file=follow)
         return [read_posterior(p, label) for p, label in found]
     if (run_dir / "scan" / "candidates.ecsv").is_file():
-        return [scan_localisation(run_dir, options, span_seconds, rng)]
+        return [scan_localisation(run_dir, options, span_seconds, rng, array=array, noise=noise)]
     raise InputError("no follow-up posterior (followup/posterior.ecsv) and no scan candidates "
                      "(scan/candidates.ecsv) in the run folder; run 'cwsearch followup' or 'cwsearch scan' first",
                      file=run_dir)
@@ -595,7 +619,8 @@ def not_catalogued_terms(terms, model: HostModel):
     """
     from .relations import redshift_at_distance
 
-    ln_range_h = math.log(model.strain_range[1] / model.strain_range[0])
+    # ln of 1/prior density of the log-uniform search priors (ln h0, ln Mc, ln f): ln(ln(hi/lo))
+    ln_range_h = math.log(math.log(model.strain_range[1] / model.strain_range[0]))
     lnd = terms["ln_distance"]
     ln_dmax = math.log(model.distance_limit)
     with np.errstate(divide="ignore"):
@@ -603,7 +628,7 @@ def not_catalogued_terms(terms, model: HostModel):
         if model.population is None:
             log_mass = np.zeros_like(lnd)
         else:
-            ln_range_mc = math.log(model.chirp_mass_range[1] / model.chirp_mass_range[0])
+            ln_range_mc = math.log(math.log(model.chirp_mass_range[1] / model.chirp_mass_range[0]))
             ln_zf = np.log1p(redshift_at_distance(np.exp(np.minimum(lnd, 30.0))))
             grid, dens = model.population
             log_mass = np.log(np.interp(terms["ln_chirp_mass"] - ln_zf, grid, dens, left=0.0, right=0.0)) \
@@ -664,9 +689,10 @@ def score_galaxies(loc, kde, galaxies, model):
     ln_beta_d = _logmeanexp(out_d)
     ln_beta_dm = _logmeanexp(out_d + out_m)
     ln_b_out = _logmeanexp(out_d + out_m + out_c)
-    ln_range_h = math.log(model.strain_range[1] / model.strain_range[0])
-    ln_range_mc = math.log(model.chirp_mass_range[1] / model.chirp_mass_range[0])
-    ln_range_f = math.log(model.frequency_band[1] / model.frequency_band[0])
+    # ln of 1/prior density of the log-uniform search priors (ln h0, ln Mc, ln f): ln(ln(hi/lo))
+    ln_range_h = math.log(math.log(model.strain_range[1] / model.strain_range[0]))
+    ln_range_mc = math.log(math.log(model.chirp_mass_range[1] / model.chirp_mass_range[0]))
+    ln_range_f = math.log(math.log(model.frequency_band[1] / model.frequency_band[0]))
     tab, shift, x0, dx, vals, lens = _mass_tables(galaxies, model)
     g = len(galaxies)
     raw = np.full((g, 6), -np.inf)
@@ -839,9 +865,9 @@ def rank_candidate(loc, catalog, model, options, rng, *, n_catalogue, progress=F
 def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, progress=True) -> HostsResult:
     """Rank catalogue galaxies as hosts of the run's candidate(s); writes ``run_dir/hosts/``.
 
-    ``array`` (optional, may be ``None``) only supplies the observed span for
-    the coalescence check and the bottom of the frequency band; ``noise`` is
-    unused (kept for the stage API).
+    ``array`` (optional, may be ``None``) supplies the observed span for the
+    coalescence check and the bottom of the frequency band, and, with
+    ``noise``, the Fe sky map for a scan candidate without a posterior.
 
     Writes ``ranking.ecsv`` (all candidates, with a ``candidate`` column),
     ``hosts_summary.json`` and plots; with several follow-up candidates also
@@ -866,7 +892,7 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
         raise InputError(f"no catalogue galaxy lies within the distance limit {d_max:g} Mpc", file=options.catalog)
     catalog = catalog.subset(np.flatnonzero(within)) if not within.all() else catalog
     model = build_host_model(catalog, options, span, d_max)
-    locs = find_localisations(run_dir, options, span, rng)
+    locs = find_localisations(run_dir, options, span, rng, array=array, noise=noise)
     out_dir = run_dir / "hosts"
     results = []
     for loc in locs:
@@ -875,14 +901,15 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
         results.append(rank_candidate(loc, catalog, model, options, loc_rng, n_catalogue=len(catalog),
                                       progress=progress))
     several = len(results) > 1
-    from .plots import hosts as host_plots
+    if options.plots:
+        from .plots import hosts as host_plots
 
     for res in results:
         folder = out_dir / res.localisation.label if several else out_dir
         if several:
             write_table_atomic(folder / "ranking.ecsv", res.ranking)
             write_json_atomic(folder / "hosts_summary.json", res.summary)
-        res.plots = host_plots.make_plots(folder, res, model, options)
+        res.plots = host_plots.make_plots(folder, res, model, options) if options.plots else []
     ranking = vstack([r.ranking for r in results], metadata_conflicts="silent") if several else results[0].ranking
     write_table_atomic(out_dir / "ranking.ecsv", ranking)
     first = results[0].summary

@@ -50,6 +50,7 @@ def add_arguments(parser):
                    help="Fe sky map (ECSV with pixel, fe) for a scan candidate (default: looked for in scan/)")
     g.add_argument("--max-samples", type=int, default=20000, metavar="N",
                    help="use at most N posterior samples (default 20000)")
+    parser.add_argument("--no-plots", action="store_true", help="skip the PNG plots")
     parser.add_argument("--seed", type=int, default=0, help="random seed (default 0)")
     parser.add_argument("--quiet", action="store_true", help="no progress bar or table")
     parser.add_argument("--json", action="store_true", help="print the summary as JSON")
@@ -63,7 +64,8 @@ def run(args) -> int:
                            distance_error=args.distance_error, mass_ratio_min=args.mass_ratio_min,
                            period_factor=args.period_factor, sky_bandwidth=args.sky_bandwidth,
                            resolution=args.resolution, sky_map=args.sky_map, candidate=args.candidate,
-                           observed_span=args.observed_span, max_samples=args.max_samples)
+                           observed_span=args.observed_span, max_samples=args.max_samples,
+                           plots=not args.no_plots)
     result = run_hosts(None, args.run_dir, options, seed=args.seed, progress=not (args.quiet or args.json))
     if args.json:
         print(summary_json(result))
