@@ -71,5 +71,5 @@ def run(args) -> int:
         print(summary_json(result))
     elif not args.quiet:
         print(format_table(result, args.top))
-        print(f"wrote {result.out_dir}/ranking.ecsv, hosts_summary.json and plots")
+        print(f"wrote {result.out_dir}/ranking.ecsv, hosts_summary.json" + ("" if args.no_plots else " and plots"))
     return 0
