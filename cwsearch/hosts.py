@@ -31,25 +31,29 @@ evaluated by reweighting the posterior samples θ_i = (sky, f, Mc, h0):
   (:func:`cwsearch.waveform.time_to_coalescence`) is shorter than the
   observed span get weight 0.
 
-The five reported factors are a chain of conditional averages that
-multiply to the Bayes factor against the "not catalogued" hypothesis:
-``sky_density`` (posterior/prior sky density at the galaxy),
-``distance_consistency`` (sky-weighted distance factor, divided by the
-not-catalogued hypothesis' Bayes factor), ``mass_consistency``,
-``period_consistency`` and ``coalescence_ok`` (each conditional on the
-ones before it). ``log_bayes_factor = ln`` of their product.
+The five reported factors are a chain of conditional averages (each
+conditional on the ones before it) that multiply to the Bayes factor
+against an uncatalogued host (up to that host's coalescence fraction,
+normally 1): ``sky_density`` (posterior/prior sky density at the galaxy),
+``distance_consistency`` and ``mass_consistency`` (each relative to the same
+factor for an uncatalogued host, so > 1 favours the galaxy),
+``period_consistency`` and ``coalescence_ok``.
 
 Normalisation: the host is a catalogue galaxy with prior probability
 ``completeness`` (spread evenly over the galaxies within the distance
 limit), or an uncatalogued galaxy with ``1 − completeness``. An
 uncatalogued host is isotropic on the sky, uniform in volume out to the
-catalogue's distance limit, and has the search prior in chirp mass and
-frequency. Prior-range constants of the search prior (h0, Mc) cancel.
+catalogue's distance limit, draws its black-hole mass from the catalogue's
+own mass distribution (also used for catalogue galaxies without a mass
+proxy), and has the search prior in frequency. The range constants of the
+log-uniform strain and chirp-mass search priors cancel in the
+probabilities.
 
 Localisation: the follow-up posterior (``run_dir/followup/posterior.ecsv``
 or one per candidate sub-folder) when there is one; otherwise a scan
-candidate alone, with a coarse pseudo-posterior: sky from the Fe sky map
-(``exp(Fe − Fe_max)``) when the scan left one, else a Fisher (vMF) blob of
+candidate alone, with a coarse pseudo-posterior: sky from an Fe sky map
+(``exp(Fe − Fe_max)``; a map file, or computed from the dataset at the
+candidate frequency when the array is given), else a Fisher (vMF) blob of
 ``resolution`` degrees around the candidate; frequency uniform within one
 bin 1/T; ln h0 normal around the maximum-likelihood strain with
 σ = 1/ρ, ρ² = max(2Fe − 4, 1); chirp mass from the search prior. The
@@ -116,7 +120,7 @@ class HostsOptions:
     candidate: str | None = _opt(None, "follow-up sub-folder name or scan candidate row (1 = best)")
     observed_span: float | None = _opt(None, "observed span [yr] (default: from the dataset, else 15)")
     max_samples: int = _opt(20000, "use at most this many posterior samples (random subset)")
-    plots: bool = _opt(True, "write the PNG plots")
+    no_plots: bool = _opt(False, "skip the PNG plots")
 
 
 @dataclass
@@ -155,6 +159,9 @@ class CandidateHosts:
     kde: object = None
     galaxies: object = None  # Catalog of the scored galaxies
     scores: dict = None
+    p_gal: object = None     # probability of each scored galaxy
+    sky_map: tuple = None    # (nside, density map [1/sr], 90 % level, 99 % level)
+    plots: list = field(default_factory=list)
 
 
 @dataclass
@@ -782,7 +789,7 @@ def _check_options(options):
         raise InputError("--observed-span must be > 0 yr")
 
 
-def rank_candidate(loc, catalog, model, options, rng, *, n_catalogue, progress=False):
+def rank_candidate(loc, catalog, model, options, rng, *, n_catalogue):
     """Score the galaxies near one localisation; returns a :class:`CandidateHosts`."""
     from astropy.table import Table
 
@@ -856,10 +863,19 @@ def rank_candidate(loc, catalog, model, options, rng, *, n_catalogue, progress=F
     if best is not None and best["n_effective"] < 20:
         summary["warning"] = (f"the best host rests on only {best['n_effective']:.0f} effective samples; "
                               "its probability is noisy (more posterior samples would help)")
-    result = CandidateHosts(loc, table, summary, kde, galaxies, scores)
-    result.sky_map = (nside, dens_map, t90, t99)
-    result.p_gal = p_gal
-    return result
+    return CandidateHosts(loc, table, _finite_or_none(summary), kde, galaxies, scores, p_gal,
+                          (nside, dens_map, t90, t99))
+
+
+def _finite_or_none(obj):
+    """NaN/inf -> None throughout a summary (strict JSON)."""
+    if isinstance(obj, dict):
+        return {k: _finite_or_none(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_finite_or_none(v) for v in obj]
+    if isinstance(obj, (float, np.floating)):
+        return float(obj) if math.isfinite(obj) else None
+    return obj
 
 
 def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, progress=True) -> HostsResult:
@@ -883,7 +899,8 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
     run_dir = Path(run_dir)
     if not run_dir.is_dir():
         raise InputError("run folder not found", file=run_dir)
-    rng = np.random.default_rng(seed)
+    seeds = np.random.SeedSequence(seed)
+    rng = np.random.default_rng(seeds.spawn(1)[0])
     span, span_source = _span_seconds(array, options)
     catalog = read_catalog(options.catalog, options.columns, distance_error=options.distance_error)
     d_max = float(options.distance_limit) if options.distance_limit else float(np.max(catalog.distance))
@@ -895,13 +912,12 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
     locs = find_localisations(run_dir, options, span, rng, array=array, noise=noise)
     out_dir = run_dir / "hosts"
     results = []
-    for loc in locs:
-        loc_rng = np.random.default_rng(rng.integers(2**63))
+    for loc, child in zip(locs, seeds.spawn(len(locs))):
+        loc_rng = np.random.default_rng(child)
         loc = loc.subsample(options.max_samples, loc_rng)
-        results.append(rank_candidate(loc, catalog, model, options, loc_rng, n_catalogue=len(catalog),
-                                      progress=progress))
+        results.append(rank_candidate(loc, catalog, model, options, loc_rng, n_catalogue=len(catalog)))
     several = len(results) > 1
-    if options.plots:
+    if not options.no_plots:
         from .plots import hosts as host_plots
 
     for res in results:
@@ -909,7 +925,7 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
         if several:
             write_table_atomic(folder / "ranking.ecsv", res.ranking)
             write_json_atomic(folder / "hosts_summary.json", res.summary)
-        res.plots = host_plots.make_plots(folder, res, model, options) if options.plots else []
+        res.plots = host_plots.make_plots(folder, res, model, options) if not options.no_plots else []
     ranking = vstack([r.ranking for r in results], metadata_conflicts="silent") if several else results[0].ranking
     write_table_atomic(out_dir / "ranking.ecsv", ranking)
     first = results[0].summary
@@ -927,6 +943,8 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
         "localisation": first["localisation"],
         "localisation_description": first["localisation_description"],
         "probability_not_in_catalogue": first["probability_not_in_catalogue"],
+        "probability_note": ("probabilities cover the catalogue galaxies within the distance limit plus an "
+                             "uncatalogued host; galaxies far outside the sky region have negligible probability"),
         "best_host": first["best_host"],
         "candidates": [r.summary for r in results],
         "seed": seed,

@@ -254,7 +254,7 @@ def test_scan_candidate_alone_uses_coarse_localisation_and_says_so(tmp_path):
     (tmp_path / "run" / "scan").mkdir(parents=True)
     t.write(tmp_path / "run" / "scan" / "candidates.ecsv", format="ascii.ecsv")
     res = run_hosts(None, tmp_path / "run", HostsOptions(catalog=str(cat), resolution=5.0, max_samples=4000,
-                                                           plots=False),
+                                                           no_plots=True),
                     progress=False)
     assert res.summary["localisation"] == "scan-fisher-blob"
     assert "scan candidate 1 alone" in res.summary["localisation_description"]
@@ -268,7 +268,7 @@ def test_scan_candidate_alone_uses_coarse_localisation_and_says_so(tmp_path):
     m = Table({"pixel": np.arange(pra.size), "fe": 60.0 - 0.5 * (sep / math.radians(5)) ** 2})
     m.meta["nside"] = 8
     m.write(tmp_path / "run" / "scan" / "fe_map.ecsv", format="ascii.ecsv")
-    res = run_hosts(None, tmp_path / "run", HostsOptions(catalog=str(cat), max_samples=4000, plots=False),
+    res = run_hosts(None, tmp_path / "run", HostsOptions(catalog=str(cat), max_samples=4000, no_plots=True),
                     progress=False)
     assert res.summary["localisation"] == "scan-fe-map"
     assert "fe_map.ecsv" in res.summary["localisation_description"]
@@ -277,7 +277,7 @@ def test_scan_candidate_alone_uses_coarse_localisation_and_says_so(tmp_path):
 
     (tmp_path / "run" / "scan" / "fe_map.ecsv").unlink()
     array = simulated_array(invented_array(n_pulsars=5, years=10, seed=2, toas_per_pulsar=60), seed=3)
-    res = run_hosts(array, tmp_path / "run", HostsOptions(catalog=str(cat), max_samples=2000, plots=False),
+    res = run_hosts(array, tmp_path / "run", HostsOptions(catalog=str(cat), max_samples=2000, no_plots=True),
                     progress=False)
     assert res.summary["localisation"] == "scan-fe-map"
     assert "computed from the dataset" in res.summary["localisation_description"]
@@ -289,8 +289,8 @@ def test_several_followup_candidates_get_subfolders(tmp_path):
     cat = write_catalogue(tmp_path / "c.csv", rng, n_population=50)
     for name in ("cand1", "cand2"):
         write_posterior(tmp_path / "run" / "followup" / name / "posterior.ecsv", synthetic_posterior(rng, n=1000))
-    res = run_hosts(None, tmp_path / "run", HostsOptions(catalog=str(cat), relation="kormendy-ho", plots=False),
-                    progress=False)
+    options = HostsOptions(catalog=str(cat), relation="kormendy-ho", no_plots=True)
+    res = run_hosts(None, tmp_path / "run", options, progress=False)
     assert (tmp_path / "run" / "hosts" / "cand1" / "ranking.ecsv").is_file()
     assert (tmp_path / "run" / "hosts" / "cand2" / "hosts_summary.json").is_file()
     assert set(res.ranking["candidate"]) == {"cand1", "cand2"}
@@ -340,3 +340,15 @@ def test_million_row_catalogue_preselection(tmp_path):
     differ = near != brute
     assert np.all(np.abs(max_cos[differ] - math.cos(math.radians(5.0))) < 1e-9)
     assert brute.sum() > 100
+
+
+def test_same_seed_same_numbers(tmp_path):
+    # reproducibility rule of the project: same seed -> same numbers (common practice, no source)
+    rng = np.random.default_rng(12)
+    cat = write_catalogue(tmp_path / "c.csv", rng, n_population=50)
+    write_posterior(tmp_path / "run" / "followup" / "posterior.ecsv", synthetic_posterior(rng, n=3000))
+    options = HostsOptions(catalog=str(cat), no_plots=True, max_samples=1000)
+    a = run_hosts(None, tmp_path / "run", options, seed=4, progress=False)
+    b = run_hosts(None, tmp_path / "run", options, seed=4, progress=False)
+    assert list(a.ranking["name"]) == list(b.ranking["name"])
+    assert np.array_equal(np.asarray(a.ranking["probability"]), np.asarray(b.ranking["probability"]))

@@ -65,7 +65,7 @@ def run(args) -> int:
                            period_factor=args.period_factor, sky_bandwidth=args.sky_bandwidth,
                            resolution=args.resolution, sky_map=args.sky_map, candidate=args.candidate,
                            observed_span=args.observed_span, max_samples=args.max_samples,
-                           plots=not args.no_plots)
+                           no_plots=args.no_plots)
     result = run_hosts(None, args.run_dir, options, seed=args.seed, progress=not (args.quiet or args.json))
     if args.json:
         print(summary_json(result))
