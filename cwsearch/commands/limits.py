@@ -1,0 +1,124 @@
+"""``cwsearch limits``: 95 % strain upper limits versus frequency and sky, chirp-mass limits for galaxies
+(thin wrapper over :func:`cwsearch.limits.run_limits`)."""
+
+from __future__ import annotations
+
+from ._common import add_dataset_arguments, add_noise_arguments
+
+DESCRIPTION = """\
+Compute 95 % upper limits on the strain amplitude h0 of a circular binary at
+every GW frequency from 1/T_span (spacing 1/(oversample*T_span)) to --fmax
+and every HEALPix sky pixel, and write RUN_DIR/limits/:
+frequency_limits.ecsv (sky-averaged limit, best and worst sky position per
+frequency), sky_limits.ecsv (per-pixel limit at --sky-frequency, default the
+most sensitive bin), galaxy_limits.ecsv (chirp-mass limits at each galaxy's
+position and distance, with --galaxy or --catalog/--select),
+limits_summary.json and PNG plots.
+
+Methods: 'bayes' (default) integrates the posterior of h0 (uniform prior)
+over cos(inclination), polarization and phase by deterministic quadrature
+and takes its 95 % point; 'frequentist' finds the h0 at which 95 % of
+randomly oriented signals give 2Fe above the observed value; 'both' reports
+both. Pixel x frequency work runs in local worker processes (--workers) or on
+a running Dask cluster (--scheduler); the numbers do not depend on either."""
+
+EXAMPLE = """\
+  cwsearch limits mydata --out runs/first
+  cwsearch limits mydata --out runs/first --method both --nside 16 --fmax 5e-8
+  cwsearch limits mydata --out runs/first --galaxy GAL0001 187.7 12.4 16.5 --galaxy GAL0002 10.7 41.3 0.8
+  cwsearch limits mydata --out runs/first --catalog galaxies.ecsv --select GAL0001,GAL0007
+  cwsearch limits mydata --out runs/first --scheduler tcp://10.0.0.5:8786
+  cwsearch limits mydata --out runs/first --mcmc-check 300"""
+
+#: defaults (equal to cwsearch.limits.LimitsOptions; a test checks they agree)
+_DEFAULTS = {"oversample": 1, "nside": 8, "method": "bayes", "quadrature": "standard"}
+
+
+def add_arguments(parser):
+    add_dataset_arguments(parser)
+    d = _DEFAULTS
+    g = parser.add_argument_group("limits")
+    g.add_argument("--fmin", type=float, default=None, metavar="HZ", help="lowest GW frequency (default 1/T_span)")
+    g.add_argument("--fmax", type=float, default=None, metavar="HZ",
+                   help="highest GW frequency (default 1e-7, at most 1/(2 x median TOA spacing))")
+    g.add_argument("--oversample", type=int, default=d["oversample"], metavar="N",
+                   help=f"frequency spacing 1/(N*T_span) (default {d['oversample']})")
+    g.add_argument("--nside", type=int, default=d["nside"],
+                   help=f"HEALPix resolution, a power of two; 12*nside^2 pixels (default {d['nside']})")
+    g.add_argument("--sky-frequency", type=float, default=None, metavar="HZ",
+                   help="frequency of sky_limits.ecsv and the sky map (default: the most sensitive bin)")
+    g.add_argument("--method", choices=("bayes", "frequentist", "both"), default=d["method"],
+                   help="bayes (default): quadrature posterior, uniform strain prior; frequentist: "
+                        "Fe-based; both")
+    g.add_argument("--quadrature", choices=("fast", "standard", "fine"), default=d["quadrature"],
+                   help="angle-grid size of the Bayesian quadrature (default standard, ~0.3 %% worst case)")
+    g.add_argument("--galaxy", nargs=4, action="append", default=None,
+                   metavar=("NAME", "RA", "DEC", "DISTANCE_MPC"),
+                   help="chirp-mass limits for a galaxy at RA, DEC [deg] and luminosity distance [Mpc] "
+                        "(repeatable)")
+    g.add_argument("--catalog", default=None, metavar="FILE",
+                   help="galaxy catalogue (ECSV or CSV: name, ra, dec, distance [Mpc] or redshift)")
+    g.add_argument("--select", action="append", default=None, metavar="NAME[,NAME..]",
+                   help="galaxies of --catalog to compute chirp-mass limits for (repeatable)")
+    g.add_argument("--mcmc-check", type=int, default=None, metavar="PIXEL",
+                   help="also sample the posterior at PIXEL (sky frequency) and print both limits")
+    g.add_argument("--no-plots", action="store_true", help="do not draw the PNG plots")
+    e = parser.add_argument_group("execution")
+    e.add_argument("--workers", type=int, default=None, metavar="N",
+                   help="local worker processes (default: one per CPU; 1 = no extra processes)")
+    e.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                   help="run the pixel x frequency tasks on a running Dask cluster, e.g. tcp://10.0.0.5:8786")
+    add_noise_arguments(parser)
+
+
+def options_from_args(args):
+    """:class:`cwsearch.limits.LimitsOptions` from parsed arguments."""
+    from ..limits import LimitsOptions
+
+    galaxy = tuple((str(n), ra, dec, dist) for n, ra, dec, dist in (args.galaxy or ()))
+    return LimitsOptions(fmin=args.fmin, fmax=args.fmax, oversample=args.oversample, nside=args.nside,
+                         sky_frequency=args.sky_frequency, method=args.method, workers=args.workers,
+                         scheduler=args.scheduler, galaxy=galaxy, catalog=args.catalog,
+                         select=tuple(args.select or ()), mcmc_check=args.mcmc_check,
+                         quadrature=args.quadrature, no_plots=args.no_plots)
+
+
+def _fmt(v):
+    return "-" if v is None else f"{v:.3e}"
+
+
+def run(args) -> int:
+    import json
+
+    from ._common import load_array, noise_settings
+    from ..limits import parse_galaxies, run_limits
+
+    options = options_from_args(args)
+    parse_galaxies(options.galaxy)  # number errors before the dataset is read
+    options.validate()
+    array = load_array(args)
+    result = run_limits(array, args.out, options, noise=noise_settings(args), seed=args.seed,
+                        progress=not args.quiet)
+    summary = result.summary
+    if args.json:
+        print(json.dumps(summary, indent=2))
+        return 0
+    lo, hi = summary["frequency_range"]
+    print(f"95 % strain upper limits at {summary['n_frequencies']} frequencies {lo:.3e}-{hi:.3e} Hz x "
+          f"{summary['n_pixels']} sky pixels (nside {summary['nside']}) in {summary['wall_time']:.1f} s "
+          f"on {summary['engine']}")
+    for method in ("bayes", "frequentist"):
+        if method in summary:
+            s = summary[method]
+            print(f"  {method:<11} sky-averaged h95 = {_fmt(s['strain_95_at_best_frequency'])} at "
+                  f"{summary['best_frequency']:.3e} Hz (best sky position {_fmt(s['best_pixel_strain_95'])})")
+    for name, g in summary.get("galaxies", {}).items():
+        print(f"  galaxy {name} ({g['distance']:.3g} Mpc): chirp mass < {_fmt(g['chirp_mass_95_min'])} Msun "
+              f"at {g['at_frequency']:.3e} Hz")
+    check = summary.get("mcmc_check")
+    if check:
+        print(f"  check at pixel {check['pixel']}, {check['frequency']:.3e} Hz: quadrature h95 = "
+              f"{check['quadrature']:.4e}, {check['sampler']} h95 = {check['sampled']:.4e} "
+              f"+- {check['sampled_error']:.1e} ({check['difference_in_errors']:+.1f} sigma)")
+    print(f"outputs in {result.files['frequency_limits'].rsplit('/', 1)[0]}")
+    return 0
