@@ -99,9 +99,12 @@ def scan_calibration(n_sims=200, n_null=1000, seed=1, progress=True):
     seconds = time.time() - t0
     fap_emp = scan.empirical_fap(trial_fe, null_fe)
     fap_ana = scan.trials_fap(scan.fe_single_fap(trial_fe), n_eff)
+    from scipy import stats
+
     rows = []
     for p in LEVELS:
-        err, _ = _binomial(p, p, n_sims)
+        # binomial error of the fraction, plus the spread of the reference set's own quantile
+        err = math.sqrt(p * (1 - p) / n_sims + p * (1 - p) / n_null)
         fe_, fa_ = float(np.mean(fap_emp < p)), float(np.mean(fap_ana < p))
         rows.append({"p": p, "empirical_fraction": fe_, "analytic_fraction": fa_, "binomial_error": err,
                      "empirical_z": (fe_ - p) / err, "analytic_z": (fa_ - p) / err,
@@ -113,7 +116,9 @@ def scan_calibration(n_sims=200, n_null=1000, seed=1, progress=True):
     return {"n_scans": n_sims, "n_reference_null_scans": n_null, "n_frequencies": int(frequencies.size),
             "n_pixels": int(fplus.shape[0]), "n_sky_eff": n_sky_eff, "n_eff": n_eff,
             "n_eff_fitted_from_null": scan.fitted_effective_trials(null_fe), "rows": rows,
-            "analytic_on_reference_set": ref, "seconds": seconds}
+            "analytic_on_reference_set": ref, "seconds": seconds,
+            "ks_2samp_pvalue_trial_vs_reference": float(stats.ks_2samp(trial_fe, null_fe).pvalue),
+            "trial_max_fe": trial_fe.tolist(), "reference_max_fe": null_fe.tolist()}
 
 
 def print_scan(res):
@@ -122,6 +127,9 @@ def print_scan(res):
           f"{res['n_reference_null_scans']} independent null scans; {res['seconds']:.0f} s")
     print(f"   analytic N_eff = {res['n_eff']:.0f} (N_sky_eff = {res['n_sky_eff']:.1f}); "
           f"N_eff fitted to the null maxima = {res['n_eff_fitted_from_null']:.0f}")
+    print(f"   two-sample KS p-value, calibration vs reference maxima (same distribution expected): "
+          f"{res['ks_2samp_pvalue_trial_vs_reference']:.3f}")
+    print("   error = sqrt(p(1-p)/n_scans + p(1-p)/n_reference) (binomial, plus the reference quantile's spread)")
     print("      p   frac(FAP_emp<p)   frac(FAP_analytic<p)   binomial err   z_emp   z_analytic   analytic bias")
     for r in res["rows"]:
         print(f"   {r['p']:5.2f}   {r['empirical_fraction']:14.3f}   {r['analytic_fraction']:19.3f}   "
@@ -273,9 +281,121 @@ def print_limits(res):
 
 
 # ------------------------------------------------------------------ posterior coverage
-def posterior_calibration(n_injections=50, seed=3, settings=None, progress=True):
+#: prior of the coverage test in sampler coordinates (ra, sin dec, log10 f, log10 Mc, log10 h0, cos i, psi, phi0):
+#: the follow-up prior (cwsearch.followup.Prior) with the frequency limited to a window of +-5 bins of
+#: 1/T_span around 2.5e-8 Hz (the follow-up's own window) and the strain to the decade where the demo array
+#: goes from blind to clear detection, so that the test covers the regime a scientist meets
+POSTERIOR_WINDOW_HZ = 2.5e-8
+POSTERIOR_LOG10_STRAIN = (-14.7, -13.7)
+
+
+def _sky_level(nside, sample_ra, sample_dec, ra, dec):
+    """Credible level of the true sky position: posterior mass in pixels more probable than the truth's
+    (ties split evenly), from a HEALPix histogram of the samples."""
+    from cwsearch import sky
+
+    counts = np.bincount(sky.pixel_of(nside, sample_ra, sample_dec), minlength=sky.n_pixels(nside)).astype(float)
+    counts /= counts.sum()
+    c = counts[int(sky.pixel_of(nside, np.array([ra]), np.array([dec]))[0])]
+    return float(counts[counts > c].sum() + 0.5 * counts[counts == c].sum())
+
+
+def posterior_calibration(n_injections=50, seed=3, *, ess=300.0, walkers=32, temperatures=6, progress=True,
+                          max_time=90.0, partial=None):
     """P-P test of the follow-up posterior (see the module docstring)."""
-    raise NotImplementedError
+    from scipy import stats
+
+    from cwsearch import followup, sampling
+    from cwsearch.likelihood import Likelihood
+    from cwsearch.noise import NoiseSettings, NoiseWeighting
+    from cwsearch.simulate import Binary, simulate_residuals
+
+    array = demo_array()
+    noise = NoiseSettings()
+    engine = NoiseWeighting(array, noise)
+    span = array.span
+    band = (np.log10(POSTERIOR_WINDOW_HZ - 5 / span), np.log10(POSTERIOR_WINDOW_HZ + 5 / span))
+    root = np.random.SeedSequence(seed)
+    levels = {"frequency": [], "sky": [], "strain": []}
+    diagnostics = []
+    t0 = time.time()
+    for i, child in enumerate(root.spawn(n_injections)):
+        draw_seq, sim_seq, init_seq, run_seq = child.spawn(4)
+        like_template = Likelihood(array, engine)
+        prior = followup.Prior(like_template, band)
+        prior.lower[4], prior.upper[4] = POSTERIOR_LOG10_STRAIN
+        truth = prior.draw(np.random.default_rng(draw_seq), 1)[0]
+        ra, dec = float(truth[0]), float(np.arcsin(truth[1]))
+        binary = Binary(ra=ra, dec=dec, gw_frequency=10 ** truth[2], chirp_mass=10 ** truth[3],
+                        strain=10 ** truth[4], inclination=float(np.arccos(truth[5])), polarization=float(truth[6]),
+                        phase=float(truth[7]))
+        data = array.with_residuals(simulate_residuals(array, np.random.default_rng(sim_seq), binaries=(binary,)))
+        likelihood = Likelihood(data, noise)
+        prior = followup.Prior(likelihood, band)
+        prior.lower[4], prior.upper[4] = POSTERIOR_LOG10_STRAIN
+        settings = sampling.SamplerSettings(walkers=walkers, temperatures=temperatures, ess=ess, max_time=max_time,
+                                            max_iterations=20000, adapt_iterations=300)
+        initial = prior.draw(np.random.default_rng(init_seq), walkers * temperatures).reshape(temperatures, walkers, 8)
+        result = sampling.run_sampler(prior, likelihood.batch, initial, settings, seed=run_seq, progress=False)
+        samples = result.samples()
+        levels["frequency"].append(float(np.mean(samples[:, 2] < truth[2])))
+        levels["strain"].append(float(np.mean(samples[:, 4] < truth[4])))
+        levels["sky"].append(_sky_level(4, samples[:, 0], np.arcsin(samples[:, 1]), ra, dec))
+        diagnostics.append({"ess": float(result.ess), "iterations": int(result.iterations),
+                            "stopped_by": result.stopped_by, "seconds": float(result.wall_time)})
+        if partial is not None:  # figures so far, in case a long run is stopped
+            Path(partial).parent.mkdir(parents=True, exist_ok=True)
+            Path(partial).write_text(json.dumps({"levels": levels, "diagnostics": diagnostics}))
+        if progress:
+            print(f"   injection {i + 1}/{n_injections}: log10 h0 = {truth[4]:.2f}, ESS = {result.ess:.0f}, "
+                  f"{result.wall_time:.0f} s, levels f/sky/h0 = {levels['frequency'][-1]:.2f}/"
+                  f"{levels['sky'][-1]:.2f}/{levels['strain'][-1]:.2f}", flush=True)
+    ks = {k: float(stats.kstest(v, "uniform").pvalue) for k, v in levels.items()}
+    plot = OUTPUT / "pp_plot.png"
+    _pp_plot(levels, ks, plot)
+    return {"n_injections": n_injections, "levels": levels, "ks_pvalues": ks, "plot": str(plot),
+            "diagnostics": diagnostics, "band_hz": [10 ** band[0], 10 ** band[1]],
+            "log10_strain_range": list(POSTERIOR_LOG10_STRAIN), "seconds": time.time() - t0,
+            "ess_target": ess, "stopped_by_time": sum(d["stopped_by"] != "ess" for d in diagnostics)}
+
+
+def _pp_plot(levels, ks, path):
+    from scipy import stats
+
+    from cwsearch.plots import pyplot, save_figure
+
+    plt = pyplot()
+    fig, ax = plt.subplots(figsize=(5, 5))
+    n = len(next(iter(levels.values())))
+    grid = np.linspace(0, 1, 201)
+    # 95 % band of the empirical CDF of n uniform draws (binomial quantiles; scipy.stats)
+    lo = stats.binom.ppf(0.025, n, grid) / n
+    hi = stats.binom.ppf(0.975, n, grid) / n
+    ax.fill_between(grid, lo, hi, color="0.85", label="95 % band for n draws")
+    for name, values in levels.items():
+        x = np.sort(values)
+        ax.step(np.concatenate([[0], x, [1]]), np.concatenate([[0], np.arange(1, n + 1) / n, [1]]), where="post",
+                label=f"{name} (KS p = {ks[name]:.2f})")
+    ax.plot([0, 1], [0, 1], "k--", lw=0.8)
+    ax.set_xlabel("credible level of the true value")
+    ax.set_ylabel("fraction of injections")
+    ax.set_title(f"Follow-up posterior P-P plot, {n} injections")
+    ax.legend(loc="upper left", fontsize=8)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    save_figure(fig, path)
+
+
+def print_posterior(res):
+    print(f"\n== Posterior coverage: {res['n_injections']} injections drawn from the prior (f in "
+          f"{res['band_hz'][0]:.3g}-{res['band_hz'][1]:.3g} Hz, log10 h0 in {res['log10_strain_range']}); "
+          f"{res['seconds']:.0f} s; {res['stopped_by_time']} runs stopped before the ESS target {res['ess_target']:g}")
+    for name, p in res["ks_pvalues"].items():
+        v = np.array(res["levels"][name])
+        print(f"   {name:9s}: KS p-value vs uniform = {p:.3f}; fraction of truths inside the 90 % central "
+              f"interval = {np.mean((v > 0.05) & (v < 0.95)):.2f}" if name != "sky" else
+              f"   {name:9s}: KS p-value vs uniform = {p:.3f}; truth inside the 90 % credible region in "
+              f"{np.mean(v < 0.9):.2f} of injections")
+    print(f"   P-P plot: {res['plot']}")
 
 
 # ------------------------------------------------------------------ main
@@ -285,6 +405,8 @@ def main(argv=None):
     parser.add_argument("--null-sims", type=int, default=1000,
                         help="independent null scans for the empirical FAP (default 1000)")
     parser.add_argument("--posterior-injections", type=int, default=50, help="injections for the P-P test (default 50)")
+    parser.add_argument("--sampler-seconds", type=float, default=90.0,
+                        help="time cap per follow-up run in the posterior test (default 90)")
     parser.add_argument("--limit-cases", type=int, default=200, help="cases per upper-limit test (default 200)")
     parser.add_argument("--only", choices=("scan", "posterior", "limits"), action="append",
                         help="run only these parts (repeatable)")
@@ -303,16 +425,14 @@ def main(argv=None):
         out["limits"] = limit_calibration(args.limit_cases, seed=int(seeds[1]), progress=progress)
         print_limits(out["limits"])
     if "posterior" in parts and args.posterior_injections > 0:
-        out["posterior"] = posterior_calibration(args.posterior_injections, int(seeds[2]), progress=progress)
+        out["posterior"] = posterior_calibration(args.posterior_injections, int(seeds[2]), progress=progress,
+                                                 max_time=args.sampler_seconds,
+                                                 partial=OUTPUT / "posterior_partial.json")
         print_posterior(out["posterior"])
     if args.json:
         Path(args.json).parent.mkdir(parents=True, exist_ok=True)
         Path(args.json).write_text(json.dumps(out, indent=1))
     return 0
-
-
-def print_posterior(res):
-    raise NotImplementedError
 
 
 if __name__ == "__main__":
