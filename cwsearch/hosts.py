@@ -71,6 +71,7 @@ Examples
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 from dataclasses import asdict, dataclass, field
@@ -136,6 +137,7 @@ class Localisation:
     frequency: np.ndarray   # Hz, observed
     chirp_mass: np.ndarray  # Msun, observed frame
     strain: np.ndarray
+    prior: dict | None = None  # search prior of the follow-up (from its summary.json), if known
 
     def __len__(self):
         return int(self.ra.size)
@@ -146,7 +148,7 @@ class Localisation:
         idx = np.sort(rng.choice(len(self), size=n, replace=False))
         return Localisation(self.label, self.kind, self.description + f"; random subset of {n} samples",
                             self.source, self.ra[idx], self.dec[idx], self.frequency[idx],
-                            self.chirp_mass[idx], self.strain[idx])
+                            self.chirp_mass[idx], self.strain[idx], self.prior)
 
 
 @dataclass
@@ -194,8 +196,8 @@ def _kernels():
                 out[q] = acc
 
         @njit(cache=True, parallel=True)
-        def score(samples, s_lnd, s_lnmc, s_period, s_logc, gal, g_lnd, g_sig, g_tab, g_shift, g_per, g_perr,
-                  log_norm, kappa, ln_range_h, ln_range_mc, ln_range_f, period_factor,
+        def score(samples, s_lnd, s_lnmc, s_period, s_logc, s_inv_h, s_inv_mc, s_inv_f, gal, g_lnd, g_sig,
+                  g_tab, g_shift, g_per, g_perr, log_norm, kappa, period_factor,
                   tab_x0, tab_dx, tab_vals, tab_len, out):
             n = samples.shape[0]
             half_ln_2pi = 0.5 * math.log(2.0 * math.pi)
@@ -203,13 +205,13 @@ def _kernels():
                 m = np.full(6, -np.inf)
                 acc = np.zeros(6)
                 v = np.empty(6)
-                ld0 = -math.log(g_sig[g]) - half_ln_2pi + ln_range_h
+                ld0 = -math.log(g_sig[g]) - half_ln_2pi
                 t = g_tab[g]
                 for i in range(n):
                     dot = gal[g, 0] * samples[i, 0] + gal[g, 1] * samples[i, 1] + gal[g, 2] * samples[i, 2]
                     lk = log_norm + kappa * (dot - 1.0)
                     z = (s_lnd[i] - g_lnd[g]) / g_sig[g]
-                    ld = ld0 - 0.5 * z * z
+                    ld = ld0 - 0.5 * z * z + s_inv_h[i]
                     lm = 0.0
                     if t >= 0:
                         u = (s_lnmc[i] - g_shift[g] - tab_x0[t]) / tab_dx[t]
@@ -219,12 +221,12 @@ def _kernels():
                         else:
                             fr = u - j
                             dens = tab_vals[t, j] * (1.0 - fr) + tab_vals[t, j + 1] * fr
-                            lm = math.log(dens) + ln_range_mc if dens > 0 else -np.inf
+                            lm = math.log(dens) + s_inv_mc[i] if dens > 0 else -np.inf
                     lp = 0.0
                     if g_per[g] > 0:
                         x = period_factor * s_period[i]
                         zp = (x - g_per[g]) / g_perr[g]
-                        lp = -0.5 * zp * zp - math.log(g_perr[g]) - half_ln_2pi + math.log(x) + ln_range_f
+                        lp = -0.5 * zp * zp - math.log(g_perr[g]) - half_ln_2pi + math.log(x) + s_inv_f[i]
                     v[0] = lk
                     v[1] = lk + ld
                     v[2] = v[1] + lm
@@ -403,7 +405,35 @@ def read_posterior(path, label=None):
                         f"follow-up posterior ({len(table)} samples)", str(path), ra, dec,
                         _column_values(table, "frequency", "Hz", path, True),
                         _column_values(table, "chirp_mass", "solMass", path, True),
-                        _column_values(table, "strain", None, path, True))
+                        _column_values(table, "strain", None, path, True),
+                        _followup_prior(path.parent / "summary.json"))
+
+
+def _followup_prior(path: Path):
+    """The follow-up's search prior from its ``summary.json`` (``model`` entry), or None if not found."""
+    try:
+        model = json.loads(path.read_text()).get("model") or {}
+    except (OSError, ValueError, AttributeError):
+        return None
+    out = {}
+    try:
+        if "log10_frequency_band" in model:
+            lo, hi = (10.0 ** float(v) for v in model["log10_frequency_band"])
+            if 0 < lo < hi:
+                out["frequency_band"] = (lo, hi)
+        if "chirp_mass_range" in model:
+            lo, hi = (float(v) for v in model["chirp_mass_range"])
+            if 0 < lo < hi:
+                out["chirp_mass_range"] = (lo, hi)
+        if "strain_range" in model:
+            lo, hi = (float(v) for v in model["strain_range"])
+            if 0 < lo < hi:
+                out["strain_range"] = (lo, hi)
+        if model.get("strain_prior") in ("log-uniform", "uniform"):
+            out["strain_prior"] = model["strain_prior"]
+    except (TypeError, ValueError):
+        return None
+    return out or None
 
 
 def _find_sky_map(scan_dir: Path, options):
@@ -587,6 +617,24 @@ class HostModel:
     population: tuple | None = None
     chirp_mass_range: tuple = SEARCH_CHIRP_MASS_RANGE
     strain_range: tuple = SEARCH_STRAIN_RANGE
+    strain_prior: str = "log-uniform"   # or "uniform"
+
+
+def inverse_search_prior(terms, model: HostModel):
+    """Per-sample ``−ln π_search`` of ln h0, ln Mc and ln f (the denominators of the prior ratios).
+
+    Log-uniform on ``[lo, hi]``: ``π(ln x) = 1/ln(hi/lo)``; a uniform strain
+    prior on ``[lo, hi]``: ``π(ln h) = h/(hi − lo)``.
+    """
+    n = terms["ln_strain"].size
+    h_lo, h_hi = model.strain_range
+    if model.strain_prior == "uniform":
+        inv_h = math.log(h_hi - h_lo) - terms["ln_strain"]
+    else:
+        inv_h = np.full(n, math.log(math.log(h_hi / h_lo)))
+    inv_mc = np.full(n, math.log(math.log(model.chirp_mass_range[1] / model.chirp_mass_range[0])))
+    inv_f = np.full(n, math.log(math.log(model.frequency_band[1] / model.frequency_band[0])))
+    return inv_h, inv_mc, inv_f
 
 
 def build_host_model(catalog, options, span_seconds, distance_limit):
@@ -610,6 +658,7 @@ def sample_terms(loc: Localisation, model: HostModel):
     t_c = np.asarray(time_to_coalescence(loc.chirp_mass, loc.frequency), float)
     return {
         "ln_distance": np.log(d_impl),
+        "ln_strain": np.log(loc.strain),
         "ln_chirp_mass": np.log(loc.chirp_mass),
         "orbital_period_days": np.asarray(orbital_period(loc.frequency), float) / 86400.0,
         "log_coalescence": np.where(t_c > model.span_seconds, 0.0, -np.inf),
@@ -627,19 +676,18 @@ def not_catalogued_terms(terms, model: HostModel):
     from .relations import redshift_at_distance
 
     # ln of 1/prior density of the log-uniform search priors (ln h0, ln Mc, ln f): ln(ln(hi/lo))
-    ln_range_h = math.log(math.log(model.strain_range[1] / model.strain_range[0]))
+    inv_h, inv_mc, _ = inverse_search_prior(terms, model)
     lnd = terms["ln_distance"]
     ln_dmax = math.log(model.distance_limit)
     with np.errstate(divide="ignore"):
-        log_dist = np.where(lnd <= ln_dmax, math.log(3.0) + 3 * (lnd - ln_dmax), -np.inf) + ln_range_h
+        log_dist = np.where(lnd <= ln_dmax, math.log(3.0) + 3 * (lnd - ln_dmax), -np.inf) + inv_h
         if model.population is None:
             log_mass = np.zeros_like(lnd)
         else:
-            ln_range_mc = math.log(math.log(model.chirp_mass_range[1] / model.chirp_mass_range[0]))
             ln_zf = np.log1p(redshift_at_distance(np.exp(np.minimum(lnd, 30.0))))
             grid, dens = model.population
             log_mass = np.log(np.interp(terms["ln_chirp_mass"] - ln_zf, grid, dens, left=0.0, right=0.0)) \
-                + ln_range_mc
+                + inv_mc
     return log_dist, log_mass, terms["log_coalescence"]
 
 
@@ -696,10 +744,7 @@ def score_galaxies(loc, kde, galaxies, model):
     ln_beta_d = _logmeanexp(out_d)
     ln_beta_dm = _logmeanexp(out_d + out_m)
     ln_b_out = _logmeanexp(out_d + out_m + out_c)
-    # ln of 1/prior density of the log-uniform search priors (ln h0, ln Mc, ln f): ln(ln(hi/lo))
-    ln_range_h = math.log(math.log(model.strain_range[1] / model.strain_range[0]))
-    ln_range_mc = math.log(math.log(model.chirp_mass_range[1] / model.chirp_mass_range[0]))
-    ln_range_f = math.log(math.log(model.frequency_band[1] / model.frequency_band[0]))
+    inv_h, inv_mc, inv_f = inverse_search_prior(terms, model)
     tab, shift, x0, dx, vals, lens = _mass_tables(galaxies, model)
     g = len(galaxies)
     raw = np.full((g, 6), -np.inf)
@@ -708,10 +753,10 @@ def score_galaxies(loc, kde, galaxies, model):
         period = np.where(np.isfinite(galaxies.period), galaxies.period, -1.0)
         perr = np.where(np.isfinite(galaxies.period_err), galaxies.period_err, 1.0)
         _kernels()["score"](kde.vectors, terms["ln_distance"], terms["ln_chirp_mass"],
-                            terms["orbital_period_days"], terms["log_coalescence"], gal,
+                            terms["orbital_period_days"], terms["log_coalescence"], inv_h, inv_mc, inv_f, gal,
                             np.log(galaxies.distance), galaxies.distance_err / galaxies.distance, tab, shift,
-                            period, perr, kde.log_norm, kde.kappa, ln_range_h, ln_range_mc, ln_range_f,
-                            float(model.period_factor), x0, dx, vals, lens, raw)
+                            period, perr, kde.log_norm, kde.kappa, float(model.period_factor), x0, dx, vals, lens,
+                            raw)
     ln_sky, ln_d, ln_dm, ln_dmp, ln_all, ln_all2 = raw.T
     ln_n = math.log(len(loc))
     with np.errstate(invalid="ignore", divide="ignore", over="ignore"):
@@ -795,6 +840,8 @@ def rank_candidate(loc, catalog, model, options, rng, *, n_catalogue):
 
     from .sky import unit_vectors
 
+    if loc.prior:
+        model = dataclasses.replace(model, **loc.prior)
     bandwidth = math.radians(options.sky_bandwidth) if options.sky_bandwidth else None
     kde = SkyKernelDensity(loc.ra, loc.dec, bandwidth=bandwidth)
     vectors = unit_vectors(np.radians(catalog.ra), np.radians(catalog.dec))
@@ -849,6 +896,10 @@ def rank_candidate(loc, catalog, model, options, rng, *, n_catalogue):
         "localisation_description": loc.description,
         "localisation_source": loc.source,
         "n_samples": len(loc),
+        "search_prior": {"source": "follow-up summary.json" if loc.prior else "defaults (DESIGN.md section 8)",
+                         "frequency_band_hz": list(model.frequency_band),
+                         "chirp_mass_range_msun": list(model.chirp_mass_range),
+                         "strain_range": list(model.strain_range), "strain_prior": model.strain_prior},
         "sky_bandwidth_deg": math.degrees(kde.bandwidth),
         "sky_area_90_deg2": area90,
         "sky_area_99_deg2": area99,

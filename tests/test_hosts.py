@@ -7,6 +7,7 @@ published relations, never from the invented data.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 
@@ -120,7 +121,8 @@ def test_no_consistent_galaxy_gives_high_not_catalogued_probability(tmp_path):
     assert res2.summary["probability_not_in_catalogue"] < 0.5
 
 
-def test_reweighting_equals_direct_numerical_integration(tmp_path):
+@pytest.mark.parametrize("strain_prior", ["log-uniform", "uniform"])
+def test_reweighting_equals_direct_numerical_integration(tmp_path, strain_prior):
     """Low-dimensional analytic case: all samples at the galaxy's sky position; a Gaussian posterior in
     (ln Mc, ln h0, ln f) under the log-uniform search prior; an equal-mass host prior (q = 1) with a
     catalogued black-hole mass (normal in ln Mc, chirp-mass definition), a log-normal distance and an EM
@@ -142,7 +144,7 @@ def test_reweighting_equals_direct_numerical_integration(tmp_path):
     catalog = read_catalog(tmp_path / "c.csv")
     options = HostsOptions(catalog="c", mass_ratio_min=1.0, sky_bandwidth=1.0)
     span = 15 * 3.15576e7
-    model = build_host_model(catalog, options, span, 300.0)
+    model = dataclasses.replace(build_host_model(catalog, options, span, 300.0), strain_prior=strain_prior)
     kde = SkyKernelDensity(ra[:1], dec[:1], bandwidth=math.radians(1.0))
     kde.vectors = np.repeat(kde.vectors, n, axis=0)   # every sample exactly at the galaxy: sky kernel = peak
     res = score_galaxies(loc, kde, catalog, model)
@@ -152,7 +154,12 @@ def test_reweighting_equals_direct_numerical_integration(tmp_path):
     z = float(catalog.redshift[0])
     ln_mc_host = math.log(10**log10_bh * 0.25**0.6 * (1 + z))   # chirp-mass definition at q = 1, observed
     s_mc = 0.1 * math.log(10)                                    # catalogued BH mass: 0.1 dex (stated)
-    r_mc, r_h = math.log(1e11 / 1e7), math.log(1e-11 / 1e-18)
+    r_mc = math.log(1e11 / 1e7)
+
+    def inv_strain_prior(lnh):  # 1 / prior density of ln h0: log-uniform or uniform on [1e-18, 1e-11]
+        if strain_prior == "uniform":
+            return (1e-11 - 1e-18) / np.exp(lnh)
+        return math.log(1e-11 / 1e-18) + 0 * lnh
     r_f = math.log(1e-6 * span)
     g_sun, c = 4.925490947641267e-06, 1.0
     mpc = 3.0856775814913673e22 / 299792458.0
@@ -162,7 +169,8 @@ def test_reweighting_equals_direct_numerical_integration(tmp_path):
 
     def host_ratio(lnmc, lnh, lnf):
         p_mass = stats.norm.pdf(lnmc, ln_mc_host, s_mc) * r_mc
-        p_dist = stats.norm.pdf(np.log(distance(lnmc, lnh, lnf)), math.log(dist), derr / dist) * r_h
+        p_dist = (stats.norm.pdf(np.log(distance(lnmc, lnh, lnf)), math.log(dist), derr / dist)
+                  * inv_strain_prior(lnh))
         orbital_days = 2 / np.exp(lnf) / 86400
         p_per = stats.norm.pdf(orbital_days, period, perr) * orbital_days * r_f
         return p_mass * p_dist * p_per
@@ -220,6 +228,9 @@ def test_run_from_followup_posterior_writes_outputs(tmp_path, capsys):
     rng = np.random.default_rng(3)
     cat = write_catalogue(tmp_path / "c.csv", rng)
     write_posterior(tmp_path / "run" / "followup" / "posterior.ecsv", synthetic_posterior(rng, n=3000))
+    (tmp_path / "run" / "followup" / "summary.json").write_text(json.dumps(
+        {"model": {"log10_frequency_band": [-8.1, -7.8], "chirp_mass_range": [1e7, 1e11],
+                   "strain_range": [1e-18, 1e-11], "strain_prior": "log-uniform"}}))
     rc = main(["hosts", str(tmp_path / "run"), "--catalog", str(cat), "--top", "3"])
     out = capsys.readouterr().out
     assert rc == 0
@@ -233,6 +244,9 @@ def test_run_from_followup_posterior_writes_outputs(tmp_path, capsys):
     assert t["name"][0] == "HOST"
     summary = json.loads((tmp_path / "run" / "hosts" / "hosts_summary.json").read_text())
     assert summary["localisation"] == "posterior"
+    prior = summary["candidates"][0]["search_prior"]
+    assert prior["source"] == "follow-up summary.json"
+    assert prior["frequency_band_hz"] == pytest.approx([10**-8.1, 10**-7.8])
     assert 0 <= summary["probability_not_in_catalogue"] <= 1
     for png in ("hosts_sky.png", "hosts_sky_zoom.png", "hosts_chirp_mass.png"):
         assert (tmp_path / "run" / "hosts" / png).stat().st_size > 1000
