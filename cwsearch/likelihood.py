@@ -74,6 +74,7 @@ _SERIES_LIMIT = 1e-3
 # batches smaller than these (walkers × TOAs, walkers × pulsars) run on one thread
 _PARALLEL_BASIS = 200_000
 _PARALLEL_PROJECTIONS = 20_000
+_LAPLACE_ABOVE = 2.0e4
 
 _PIO2_HI = 1.57079632673412561417e+00   # π/2 split in two parts (Cody & Waite range reduction)
 _PIO2_LO = 6.07710050650619224932e-11
@@ -208,13 +209,50 @@ def _grid_size(r):
 
 
 @njit(cache=True)
+def _laplace_log_mean(a, b, c, d):
+    """ln (1/2π)∫ exp(f) dχ for very peaked f (amplitudes ≫ 1): Laplace's method summed over
+    the (at most two) maxima of f, each refined by Newton steps from a 64-point grid."""
+    n = 64
+    step = 2.0 * np.pi / n
+    vals = np.empty(n)
+    for m in range(n):
+        x = m * step
+        vals[m] = a * np.cos(x) + b * np.sin(x) + c * np.cos(2 * x) + d * np.sin(2 * x)
+    peaks = np.empty(n)
+    n_peaks = 0
+    for m in range(n):
+        if vals[m] >= vals[(m - 1) % n] and vals[m] > vals[(m + 1) % n]:
+            x = m * step
+            for _ in range(30):
+                d1 = -a * np.sin(x) + b * np.cos(x) - 2 * c * np.sin(2 * x) + 2 * d * np.cos(2 * x)
+                d2 = -a * np.cos(x) - b * np.sin(x) - 4 * c * np.cos(2 * x) - 4 * d * np.sin(2 * x)
+                if d2 >= 0:
+                    break
+                dx = -d1 / d2
+                dx = max(-step, min(step, dx))
+                x += dx
+                if abs(dx) < 1e-15:
+                    break
+            f = a * np.cos(x) + b * np.sin(x) + c * np.cos(2 * x) + d * np.sin(2 * x)
+            d2 = -a * np.cos(x) - b * np.sin(x) - 4 * c * np.cos(2 * x) - 4 * d * np.sin(2 * x)
+            peaks[n_peaks] = f + 0.5 * np.log(2 * np.pi / max(-d2, 1e-300)) - np.log(2 * np.pi)
+            n_peaks += 1
+    top = peaks[:n_peaks].max()
+    return top + np.log(np.sum(np.exp(peaks[:n_peaks] - top)))
+
+
+@njit(cache=True)
 def marginal_log_factor(a, b, c, d, e, n_grid):
     """ln of (1/2π)∫ exp(a cosχ + b sinχ + c cos2χ + d sin2χ + e) dχ on a periodic grid.
 
-    ``n_grid`` ≤ 0 chooses the grid size from the amplitudes (aliasing error ≲ 1e-13).
+    ``n_grid`` ≤ 0 chooses the grid size from the amplitudes (aliasing error ≲ 1e-13); above
+    amplitudes of :data:`_LAPLACE_ABOVE` (likelihood terms of that many nats, far outside any
+    posterior) Laplace's method replaces the grid (relative error of order 1/amplitude).
     """
     r1 = np.sqrt(a * a + b * b)
     r2 = np.sqrt(c * c + d * d)
+    if n_grid <= 0 and r1 + r2 > _LAPLACE_ABOVE:
+        return e + _laplace_log_mean(a, b, c, d)
     k = n_grid if n_grid > 0 else _grid_size(r1) + 2 * _grid_size(r2)
     shift = r1 + r2
     step = 2.0 * np.pi / k

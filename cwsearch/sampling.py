@@ -143,39 +143,42 @@ def _batch_stderr(series, n_batches=20):
     return means.std(axis=0, ddof=1) / np.sqrt(b)
 
 
+def _ti_integral(b, m):
+    """∫ ⟨ln L⟩ dβ over ascending β with ⟨ln L⟩ = A_i + B_i/β on each interval (exact both for a
+    flat stretch and for the 1/β growth of hot chains), plus β_min·⟨ln L⟩(β_min) from 0 to β_min."""
+    b0, b1, m0, m1 = b[:-1], b[1:], m[:-1], m[1:]
+    slope = (m0 - m1) / (1.0 / b0 - 1.0 / b1)
+    const = m0 - slope / b0
+    return float(np.sum(const * (b1 - b0) + slope * np.log(b1 / b0)) + b[0] * m[0])
+
+
 def thermodynamic_log_evidence(betas, mean_logl, stderr=None):
     """ln Z = ∫₀¹ ⟨ln L⟩_β dβ over a temperature ladder, and its error.
 
-    The integral is taken as ``∫ β⟨ln L⟩_β d(ln β)`` by the trapezoid rule
-    between the smallest and largest β (on a geometric ladder the integrand
-    ``β⟨ln L⟩_β`` varies slowly, where ``⟨ln L⟩_β`` itself may grow like
-    1/β), plus ``β_min ⟨ln L⟩_{β_min}`` for the stretch from 0 to β_min.
-    The error adds in quadrature the discretisation error (difference to
-    the estimate from every other temperature) and, when ``stderr`` (the
-    standard errors of ``mean_logl``) is given, the propagated Monte-Carlo error.
+    Between neighbouring temperatures ⟨ln L⟩_β is interpolated as A + B/β,
+    which is exact where it is flat (near a peak) and where it grows like 1/β
+    (hot chains under a broad prior); from 0 to the smallest β it is taken
+    as constant. The error adds in quadrature the discretisation error
+    (difference to the estimate from every other temperature) and, when
+    ``stderr`` (the standard errors of ``mean_logl``) is given, the
+    Monte-Carlo error propagated with the trapezoid weights.
     """
     betas = np.asarray(betas, dtype=float)
     mean_logl = np.asarray(mean_logl, dtype=float)
     order = np.argsort(betas)
     b, m = betas[order], mean_logl[order]
     s = np.zeros_like(b) if stderr is None else np.asarray(stderr, dtype=float)[order]
-    if b[0] <= 0:
-        raise ValueError("the ladder must have β > 0")
-
-    def integral(idx):
-        lb, y = np.log(b[idx]), b[idx] * m[idx]
-        return float(np.trapezoid(y, lb) + y[0])
-
-    ln_z = integral(np.arange(b.size))
+    if b[0] <= 0 or np.any(np.diff(b) <= 0):
+        raise ValueError("the ladder must have distinct β > 0")
+    ln_z = _ti_integral(b, m)
     keep = np.unique(np.concatenate([np.arange(0, b.size, 2), [b.size - 1]]))
-    coarse = integral(keep) if b.size > 2 else ln_z
-    lb = np.log(b)
+    coarse = _ti_integral(b[keep], m[keep]) if b.size > 2 else ln_z
     weights = np.zeros_like(b)
-    dlb = np.diff(lb)
-    weights[:-1] += dlb / 2
-    weights[1:] += dlb / 2
-    weights[0] += 1.0
-    mc = float(np.sqrt(np.sum((weights * b * s) ** 2)))
+    db = np.diff(b)
+    weights[:-1] += db / 2
+    weights[1:] += db / 2
+    weights[0] += b[0]
+    mc = float(np.sqrt(np.sum((weights * s) ** 2)))
     return ln_z, float(np.hypot(ln_z - coarse, mc))
 
 
@@ -227,8 +230,16 @@ class SamplerResult:
     def samples(self):
         """Equally weighted T=1 samples after burn-in, thinned by about τ/2: array (N, dim)."""
         post = self.chain[self.burn_in: self.iterations]
-        thin = max(1, int(np.ceil(np.max(self.autocorrelation_time) / 2)))
+        tau = float(np.max(self.autocorrelation_time))
+        thin = max(1, int(np.ceil(tau / 2))) if np.isfinite(tau) else 1
         return post[::thin].reshape(-1, post.shape[2])
+
+
+def _burn_in(n, adapt_end):
+    """Burn-in: the first half of the run, and at least the ladder-adaptation phase when that
+    leaves enough iterations (otherwise just the first half)."""
+    burn = max(adapt_end, n // 2)
+    return burn if n - burn >= 8 else n // 2
 
 
 def _diagnostics(chain_t1, mean_logl, n, burn, betas):
@@ -361,7 +372,7 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
             if checkpoint is not None and n % settings.checkpoint_every == 0:
                 _save_checkpoint(checkpoint, state())
             if n % settings.check_every == 0 or n >= settings.max_iterations:
-                burn = max(adapt_end, n // 2)
+                burn = _burn_in(n, adapt_end)
                 tau, ess, _, _ = _diagnostics(chain, mean_logl, n, burn, sampler.betas)
                 swap = float(np.mean(sampler.tswap_acceptance_fraction)) if ntemps > 1 else float("nan")
                 bar.set_postfix_str(f"ESS {ess:.0f}/{settings.ess:.0f}  swap {swap:.2f}  "
@@ -371,7 +382,7 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
                     break
     if checkpoint is not None and n > 0:
         _save_checkpoint(checkpoint, state())
-    burn = max(adapt_end, n // 2)
+    burn = _burn_in(n, adapt_end)
     tau, ess, ln_z, ln_z_err = _diagnostics(chain, mean_logl, n, burn, sampler.betas)
     with np.errstate(invalid="ignore", divide="ignore"):
         swap = sampler.tswap_acceptance_fraction
