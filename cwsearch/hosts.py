@@ -199,50 +199,57 @@ def _kernels():
         def score(samples, s_lnd, s_lnmc, s_period, s_logc, s_inv_h, s_inv_mc, s_inv_f, gal, g_lnd, g_sig,
                   g_tab, g_shift, g_per, g_perr, log_norm, kappa, period_factor,
                   tab_x0, tab_dx, tab_vals, tab_len, out):
+            # Sums over samples of the chained weights, accumulated in linear space relative to fixed upper
+            # bounds (no overflow; a galaxy whose weights all fall e^-700 below the bound gets -inf).
+            # Samples more than 10 kernel widths from the galaxy (kernel < e^-50 of its peak) are skipped:
+            # pre-selection guarantees one within 5 widths, whose kernel is >= e^-12.5.
             n = samples.shape[0]
             half_ln_2pi = 0.5 * math.log(2.0 * math.pi)
+            max_inv_h = -np.inf
+            for i in range(n):
+                max_inv_h = max(max_inv_h, s_inv_h[i])
+            mc_lin = np.empty(n)
+            for i in range(n):
+                mc_lin[i] = math.exp(s_inv_mc[i])
             for g in prange(gal.shape[0]):
-                m = np.full(6, -np.inf)
                 acc = np.zeros(6)
-                v = np.empty(6)
                 ld0 = -math.log(g_sig[g]) - half_ln_2pi
                 t = g_tab[g]
+                has_period = g_per[g] > 0
+                lp0 = -math.log(g_perr[g]) - half_ln_2pi if has_period else 0.0
                 for i in range(n):
                     dot = gal[g, 0] * samples[i, 0] + gal[g, 1] * samples[i, 1] + gal[g, 2] * samples[i, 2]
-                    lk = log_norm + kappa * (dot - 1.0)
+                    lk = kappa * (dot - 1.0)
+                    if lk < -50.0:
+                        continue
                     z = (s_lnd[i] - g_lnd[g]) / g_sig[g]
-                    ld = ld0 - 0.5 * z * z + s_inv_h[i]
-                    lm = 0.0
+                    e0 = math.exp(lk)
+                    e1 = math.exp(lk - 0.5 * z * z + s_inv_h[i] - max_inv_h)
+                    e2 = e1
                     if t >= 0:
                         u = (s_lnmc[i] - g_shift[g] - tab_x0[t]) / tab_dx[t]
                         j = int(math.floor(u))
                         if j < 0 or j >= tab_len[t] - 1:
-                            lm = -np.inf
+                            e2 = 0.0
                         else:
                             fr = u - j
-                            dens = tab_vals[t, j] * (1.0 - fr) + tab_vals[t, j + 1] * fr
-                            lm = math.log(dens) + s_inv_mc[i] if dens > 0 else -np.inf
-                    lp = 0.0
-                    if g_per[g] > 0:
+                            e2 = e1 * (tab_vals[t, j] * (1.0 - fr) + tab_vals[t, j + 1] * fr) * mc_lin[i]
+                    e3 = e2
+                    if has_period:
                         x = period_factor * s_period[i]
                         zp = (x - g_per[g]) / g_perr[g]
-                        lp = -0.5 * zp * zp - math.log(g_perr[g]) - half_ln_2pi + math.log(x) + s_inv_f[i]
-                    v[0] = lk
-                    v[1] = lk + ld
-                    v[2] = v[1] + lm
-                    v[3] = v[2] + lp
-                    v[4] = v[3] + s_logc[i]
-                    v[5] = 2.0 * v[4]
-                    for k in range(6):
-                        if v[k] == -np.inf:
-                            continue
-                        if v[k] > m[k]:
-                            acc[k] = acc[k] * math.exp(m[k] - v[k]) + 1.0
-                            m[k] = v[k]
-                        else:
-                            acc[k] += math.exp(v[k] - m[k])
+                        e3 = e2 * math.exp(-0.5 * zp * zp + lp0 + math.log(x) + s_inv_f[i])
+                    e4 = e3 if s_logc[i] == 0.0 else 0.0
+                    acc[0] += e0
+                    acc[1] += e1
+                    acc[2] += e2
+                    acc[3] += e3
+                    acc[4] += e4
+                    acc[5] += e4 * e4
+                ref_d = log_norm + ld0 + max_inv_h
+                refs = (log_norm, ref_d, ref_d, ref_d, ref_d, 2.0 * ref_d)
                 for k in range(6):
-                    out[g, k] = m[k] + math.log(acc[k]) if acc[k] > 0 else -np.inf
+                    out[g, k] = refs[k] + math.log(acc[k]) if acc[k] > 0 else -np.inf
 
         _KERNELS["kernel_sums"] = kernel_sums
         _KERNELS["score"] = score
