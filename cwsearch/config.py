@@ -62,7 +62,7 @@ PIPELINE_SET = {
     "scan": frozenset(),
     "followup": frozenset({"candidate", "top", "frequency", "ra", "dec", "all_sky", "resume"}),
     "hosts": frozenset({"candidate"}),
-    "limits": frozenset(),
+    "limits": frozenset({"workers", "scheduler"}),  # from [engine]
 }
 
 ENGINE_KINDS = ("local", "dask")
@@ -330,6 +330,8 @@ class RunConfig:
         """Everything that determines a stage's result (for hashing): its options plus pipeline keys."""
         opts = self.options.get(stage)
         values = _dataclass_values(opts) if opts is not None else dict(self.raw.get(stage, {}))
+        for name in PIPELINE_SET.get(stage, ()):  # filled in by the pipeline at run time
+            values.pop(name, None)
         values.update(self.extra.get(stage, {}))
         return values
 

@@ -698,9 +698,8 @@ def _stage_module(name):
 
 def _run_scan(ctx):
     mod = _stage_module("scan")
-    if ctx.options is None:
-        raise StageUnavailable("stage not available: cwsearch.scan has no ScanOptions")
-    result = mod.run_scan(ctx.array, ctx.run_dir, ctx.options, noise=ctx.config.noise, seed=ctx.seed,
+    options = engine_options(ctx.options, ctx.config.engine)
+    result = mod.run_scan(ctx.array, ctx.run_dir, options, noise=ctx.config.noise, seed=ctx.seed,
                           progress=ctx.progress)
     return dict(getattr(result, "summary", {}) or {})
 
@@ -802,11 +801,26 @@ def _run_hosts(ctx):
     return dict(getattr(result, "summary", {}) or {})
 
 
+def engine_options(options, engine: dict):
+    """``options`` with the [engine] settings filled into its ``workers``/``scheduler`` fields (if it has them).
+
+    The engine decides where the work runs, not its result, so it is not part of any stage's input hash.
+    """
+    from dataclasses import fields, replace
+
+    names = {f.name for f in fields(options)}
+    changes = {}
+    if "workers" in names:
+        changes["workers"] = int(engine.get("workers") or 0) or None
+    if "scheduler" in names:
+        changes["scheduler"] = engine.get("address") or None if engine.get("kind") == "dask" else None
+    return replace(options, **changes) if changes else options
+
+
 def _run_limits(ctx):
     mod = _stage_module("limits")
-    if ctx.options is None:
-        raise StageUnavailable("stage not available: cwsearch.limits has no LimitsOptions")
-    result = mod.run_limits(ctx.array, ctx.run_dir, ctx.options, noise=ctx.config.noise, seed=ctx.seed,
+    options = engine_options(ctx.options, ctx.config.engine)
+    result = mod.run_limits(ctx.array, ctx.run_dir, options, noise=ctx.config.noise, seed=ctx.seed,
                             progress=ctx.progress)
     return dict(getattr(result, "summary", {}) or {})
 

@@ -400,3 +400,17 @@ def test_packaged_demo_catalogue_is_the_repository_copy():
     if not repo_copy.is_file() or not packaged.is_file():
         pytest.skip("demo catalogue not written yet")
     assert packaged.read_bytes() == repo_copy.read_bytes()
+
+
+def test_followup_rows_one_per_frequency_bin():
+    """Candidates below the threshold, best first; a weaker one in the same frequency bin is the same source."""
+    from astropy.table import Table
+
+    from cwsearch.pipeline import followup_rows
+
+    span = 4e8  # s; one frequency bin = 2.5e-9 Hz
+    cands = Table({"frequency": [1.2e-8, 1.2e-8 + 1e-9, 3e-8, 5e-8], "fap": [1e-9, 1e-6, 1e-3, 0.5]})
+    assert followup_rows(cands, 0.01, 5, span) == [0, 2]
+    assert followup_rows(cands, 0.01, 1, span) == [0]
+    assert followup_rows(cands, 1e-12, 5, span) == []
+    assert followup_rows(Table({"frequency": [], "fap": []}), 0.01, 5, span) == []

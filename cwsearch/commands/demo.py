@@ -24,14 +24,15 @@ DEMO = {
     "scan": {"nside": 8, "oversample": 2, "fmax": 1.0e-7, "null_sims": 20},
     "followup": {"fap_threshold": 0.01, "max_candidates": 1, "ess": 400.0, "temperatures": 8, "walkers": 24},
     "hosts": {},
-    "limits": {},
+    # chirp-mass limits for two invented catalogue galaxies (a near one and a farther one)
+    "limits": {"nside": 4, "select": ["SIMGAL-01187", "SIMGAL-00009"]},
 }
 #: --quick overrides
 QUICK = {
     "scan": {"nside": 4, "fmax": 5.0e-8, "null_sims": 0},
-    "followup": {"ess": 100.0, "temperatures": 6, "walkers": 20, "adapt_iterations": 200},
+    "followup": {"ess": 100.0, "temperatures": 6, "walkers": 20, "adapt_iterations": 100, "max_iterations": 400},
     "hosts": {},
-    "limits": {},
+    "limits": {"nside": 2, "fmax": 5.0e-8, "quadrature": "fast"},
 }
 
 
@@ -88,6 +89,10 @@ def demo_config(out, *, quick=False, seed=0):
     settings = demo_settings(quick)
     if catalog is not None:
         settings.setdefault("hosts", {})["catalog"] = str(catalog)
+        if settings.get("limits", {}).get("select"):
+            settings["limits"]["catalog"] = str(catalog)
+    else:
+        settings.get("limits", {}).pop("select", None)
     data = {"title": "cwsearch demo (invented data)" + (", quick settings" if quick else ""),
             "dataset": str(dataset), "out": str(Path(out).resolve()), "seed": int(seed), **settings}
     return parse_config(to_toml(data), path=None, base=Path.cwd())
