@@ -60,3 +60,14 @@ def unit_vectors(ra, dec):
     ra, dec = np.asarray(ra, dtype=float), np.asarray(dec, dtype=float)
     cd = np.cos(dec)
     return np.stack([cd * np.cos(ra), cd * np.sin(ra), np.sin(dec)], axis=-1)
+
+
+def pixel_neighbours(nside):
+    """The 8 neighbours of every pixel (RING order), shape (N_pix, 8); −1 where a pixel has only 7.
+
+    >>> pixel_neighbours(1).shape
+    (12, 8)
+    """
+    with np.errstate(invalid="ignore"):   # astropy-healpix flags the missing 8th neighbour at nside 1
+        nb = _healpix(nside).neighbours(np.arange(n_pixels(nside)))
+    return np.ascontiguousarray(np.asarray(nb, dtype=np.int64).T)
