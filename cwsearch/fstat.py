@@ -26,9 +26,10 @@ Examples
 >>> from cwsearch import fstat
 >>> arr = simulated_array(invented_array(n_pulsars=6, years=10, seed=2), seed=3)
 >>> proj = fstat.project(NoiseWeighting(arr), np.array([5e-9, 1e-8]))
->>> fe = fstat.fe_statistic(proj, np.array([1.0]), np.array([0.3]))
+>>> fplus, fcross = fstat.sky_patterns(proj, np.array([1.0, 2.0, 3.0]), np.array([0.3, -0.2, 0.0]))
+>>> fe = fstat.fe_statistic(proj, fplus, fcross)
 >>> fe.shape
-(1, 2)
+(3, 2)
 """
 
 from __future__ import annotations
@@ -461,7 +462,9 @@ def fe_sky(proj: Projections, fplus, fcross, *, keep_map=True, map_dtype=np.floa
     x, y = proj.x, proj.y
     if x.ndim == 2:
         x, y = x[None], y[None]
-    n_sets, _, n_freq = x.shape
+    n_sets, n_data_psr, n_freq = x.shape
+    if n_data_psr != n_psr:
+        raise ValueError(f"antenna patterns have {n_psr} pulsars, the projections {n_data_psr}")
     if keep_map and n_sets != 1:
         raise ValueError("keep_map needs a single residual set")
     pn = np.vstack([fplus, fcross])

@@ -101,12 +101,13 @@ def run(args) -> int:
         print(f"scanned {summary['n_frequencies']} frequencies {summary['fmin']:.3e}-{summary['fmax']:.3e} Hz"
               + (f" x {summary['n_pixels']} sky pixels (nside {summary['nside']})" if summary["n_pixels"] else "")
               + f" with {summary['n_pulsars']} pulsars in {summary['seconds']:.1f} s")
-        print(f"effective independent templates N_eff = {summary['n_eff']:.0f} "
-              f"({summary['n_eff_frequency']:.0f} frequencies x {summary['n_eff_sky']:.1f} sky)")
+        if "n_eff_sky_slope" in summary:
+            print(f"effective independent templates N_eff(Fe) = {summary['n_eff_frequencies']} frequencies x "
+                  f"max(1, {summary['n_eff_sky_intercept']:.1f} + {summary['n_eff_sky_slope']:.2f} Fe) sky")
         print()
         print(format_candidates(result.candidates))
         print()
-        print("fap     = analytic: single-template (1+Fe)exp(-Fe) corrected for N_eff independent templates"
+        print("fap     = analytic: single-template (1+Fe)exp(-Fe) corrected for N_eff(Fe) independent templates"
               + (" (Fp: chi-squared, corrected for the frequency bins)" if options.statistic == "fp" else ""))
         if options.null_sims:
             print(f"fap_emp = empirical: fraction (1+k)/(1+N) of N = {options.null_sims} noise-only scans whose "
