@@ -67,6 +67,7 @@ class FollowupOptions:
     phase_grid: int = 0
     checkpoint_every: int = 100
     adapt_iterations: int = 500
+    plots: bool = True                  # corner, sky and trace plots (PNG)
 
     def check(self):
         from .waveform import EVOLUTION_MODES
@@ -383,9 +384,10 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
         summary, result, table = _follow_one(likelihood, target, array, folder, options, seq, progress)
         summary["seed"] = seed
         write_json_atomic(folder / "summary.json", summary)
-        from .plots.followup import plot_followup
+        if options.plots:
+            from .plots.followup import plot_followup
 
-        plot_followup(folder, table, result, likelihood, array, target)
+            plot_followup(folder, table, result, likelihood, array, target)
         summaries.append(summary)
         folders.append(folder)
         runs.append(result)

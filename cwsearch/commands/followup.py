@@ -54,6 +54,7 @@ def add_arguments(parser):
     s.add_argument("--adapt-iterations", type=int, default=500, metavar="N",
                    help="adapt the temperature ladder during the first N iterations (default 500)")
     s.add_argument("--resume", action="store_true", help="continue from the checkpoint in the output folder")
+    parser.add_argument("--no-plots", dest="plots", action="store_false", help="skip the PNG plots")
     add_noise_arguments(parser)
 
 
