@@ -111,6 +111,8 @@ def test_planted_host_ranks_first_against_decoys(tmp_path):
 
 
 def test_no_consistent_galaxy_gives_high_not_catalogued_probability(tmp_path):
+    # Bayesian model comparison (common practice, no source): when every galaxy near the sky position has a
+    # distance x3 or /3 or a mass 1.5-2 dex off, the uncatalogued-host hypothesis must take the probability
     rng = np.random.default_rng(2)
     cat = write_catalogue(tmp_path / "c.csv", rng, with_host=False)
     res = _rank(synthetic_posterior(rng), cat, rng)
@@ -223,6 +225,8 @@ def test_probabilities_normalise():
 
 
 def test_run_from_followup_posterior_writes_outputs(tmp_path, capsys):
+    # output contract of the issue through the real CLI; the planted host (consistent by construction with
+    # the McConnell & Ma 2013 relation, from memory) must come first
     from cwsearch.cli import main
 
     rng = np.random.default_rng(3)
@@ -257,6 +261,8 @@ def test_run_from_followup_posterior_writes_outputs(tmp_path, capsys):
 
 
 def test_scan_candidate_alone_uses_coarse_localisation_and_says_so(tmp_path):
+    # behaviour required by the issue (a scan candidate alone, coarse localisation, stated); Fe map from
+    # cwsearch.fstat (checked against Ellis, Siemens & Creighton 2012 in the scan tests)
     from astropy.table import Table
 
     rng = np.random.default_rng(4)
@@ -299,6 +305,7 @@ def test_scan_candidate_alone_uses_coarse_localisation_and_says_so(tmp_path):
 
 
 def test_several_followup_candidates_get_subfolders(tmp_path):
+    # output contract of the issue (one sub-folder per follow-up candidate); no numerical check value
     rng = np.random.default_rng(6)
     cat = write_catalogue(tmp_path / "c.csv", rng, n_population=50)
     for name in ("cand1", "cand2"):
@@ -312,6 +319,7 @@ def test_several_followup_candidates_get_subfolders(tmp_path):
 
 
 def test_missing_inputs_and_bad_options(tmp_path):
+    # user errors are InputError with a specific message (project rule; no numerical check value)
     rng = np.random.default_rng(8)
     cat = write_catalogue(tmp_path / "c.csv", rng, n_population=10)
     (tmp_path / "empty").mkdir()
