@@ -57,21 +57,24 @@ class TaskRunner:
         (``tcp://host:8786``, or ``inproc://…`` for an in-process test cluster).
     retries : int
         How many times a task whose worker died is resubmitted.
+    connect_timeout : float
+        Seconds to wait for the Dask scheduler.
     """
 
-    def __init__(self, workers=None, scheduler=None, retries=3):
+    def __init__(self, workers=None, scheduler=None, retries=3, connect_timeout=10.0):
         if workers is not None and int(workers) < 1:
             raise InputError(f"--workers must be at least 1, got {workers}")
         self.workers = available_cpus() if workers is None else int(workers)
         self.scheduler = scheduler
         self.retries = int(retries)
+        self.connect_timeout = float(connect_timeout)
         self._pool = None
         self._client = None
 
     # ------------------------------------------------------------------ lifecycle
     def __enter__(self):
         if self.scheduler:
-            self._client = _connect(self.scheduler)
+            self._client = _connect(self.scheduler, self.connect_timeout)
         return self
 
     def __exit__(self, *exc):
@@ -166,6 +169,10 @@ class TaskRunner:
         return results
 
     def _map_dask(self, function, tasks, weights, on_done):
+        with self._client.as_current():
+            return self._map_dask_current(function, tasks, weights, on_done)
+
+    def _map_dask_current(self, function, tasks, weights, on_done):
         from distributed import as_completed
 
         client = self._client
@@ -182,7 +189,7 @@ class TaskRunner:
                 if on_done is not None:
                     on_done(weights[i])
                 continue
-            error = fut.exception()
+            error = fut.exception() if fut.status == "error" else None
             if fut.status == "cancelled" or _worker_died(error):
                 attempts[i] += 1
                 if attempts[i] > self.retries:
@@ -204,14 +211,14 @@ def _worker_died(error) -> bool:
         "KilledWorker", "CommClosedError", "FutureCancelledError")
 
 
-def _connect(address):
+def _connect(address, timeout=10.0):
     """A ``distributed.Client`` for ``address``, or a clear :class:`InputError`."""
     try:
         from distributed import Client
     except ImportError:  # pragma: no cover - dask is a dependency
         raise InputError("--scheduler needs the 'distributed' package (pip install 'dask[distributed]')") from None
     try:
-        return Client(address, timeout="10s", set_as_default=False)
+        return Client(address, timeout=f"{timeout}s", set_as_default=False)
     except (OSError, TimeoutError, ValueError) as exc:
         raise InputError(f"cannot reach the Dask scheduler at {address} ({exc})") from None
 

@@ -1,0 +1,103 @@
+"""Benchmark of the upper-limits stage (DESIGN.md §12): ``python -m bench.limits``.
+
+On the bench array (50 pulsars × 1000 TOAs, 15 yr, red noise + common
+process; :mod:`bench._array`) it measures
+
+1. the per-pixel Bayesian h95 map, 768 pixels (nside 8) × 1 frequency, with
+   local worker processes (``--workers``, default 2): target ≤ 60 s on 2 cores
+   (projection + sky vectors + quadrature, worker start-up included);
+2. the same map on a ``dask.distributed.LocalCluster`` with 1 and with 2
+   single-threaded worker processes (each cluster warmed up first, so numba's
+   cache is loaded): target speed-up ≥ 1.7×;
+3. that all three engines give identical numbers.
+
+Prints each figure with its target and the ratio; the machine's load average
+is printed too, because other processes on the same cores slow every figure.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import time
+
+import numpy as np
+
+
+def _limits_map(proj, ra, dec, quadrature, **engine):
+    from cwsearch.limits import compute_limits
+
+    t = time.perf_counter()
+    res = compute_limits(proj, ra, dec, method="bayes", quadrature=quadrature, progress=False, **engine)
+    return res, time.perf_counter() - t
+
+
+def _warm_worker(quadrature):
+    """Import the limits kernels and load numba's cache in a worker (run on every worker before timing)."""
+    import numpy as np
+
+    from cwsearch import limits
+
+    limits.bayes_rows(np.zeros((1, 4)), np.eye(4)[None] * 1e16, grid=limits.QUADRATURE[quadrature])
+    limits.frequentist_rows(np.eye(4)[None] * 1e16, 5.0)
+    return True
+
+
+def _dask_run(n_workers, proj, ra, dec, quadrature):
+    from distributed import Client, LocalCluster
+
+    with LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True, dashboard_address=None,
+                      silence_logs=40) as cluster:
+        with Client(cluster.scheduler_address) as client:
+            client.wait_for_workers(n_workers)
+            client.run(_warm_worker, quadrature)
+        return _limits_map(proj, ra, dec, quadrature, scheduler=cluster.scheduler_address)
+
+
+def main(argv=None):
+    parser = argparse.ArgumentParser(prog="python -m bench.limits", description=__doc__.split("\n\n")[0])
+    parser.add_argument("--nside", type=int, default=8)
+    parser.add_argument("--workers", type=int, default=2)
+    parser.add_argument("--quadrature", default="standard", choices=("fast", "standard", "fine"))
+    parser.add_argument("--frequency", type=float, default=None, help="GW frequency [Hz] (default 5/T_span)")
+    parser.add_argument("--no-dask", action="store_true")
+    args = parser.parse_args(argv)
+
+    from bench._array import bench_array
+    from cwsearch import fstat, sky
+    from cwsearch.noise import NoiseWeighting
+
+    print(f"load average before: {os.getloadavg()[0]:.1f} on {os.cpu_count()} CPUs")
+    array, noise = bench_array()
+    frequency = args.frequency or 5.0 / array.span
+    ra, dec = sky.pixel_centres(args.nside)
+    print(f"bench array: {len(array)} pulsars x {array[0].n_toas} TOAs; {ra.size} pixels x 1 frequency "
+          f"({frequency:.3e} Hz), quadrature '{args.quadrature}'")
+
+    t0 = time.perf_counter()
+    proj = fstat.project(NoiseWeighting(array, noise), np.array([frequency]))
+    t_proj = time.perf_counter() - t0
+    # warm numba's cache in this process (compilation is not what we measure)
+    _limits_map(proj, ra[:2], dec[:2], args.quadrature, workers=1)
+
+    local, t_local = _limits_map(proj, ra, dec, args.quadrature, workers=args.workers)
+    total = t_proj + t_local
+    print(f"[1] local, {args.workers} worker processes: {total:.2f} s (noise weighting + projection "
+          f"{t_proj:.2f} s, limits {t_local:.2f} s incl. worker start-up)  target <= 60 s  "
+          f"ratio to target {total / 60:.2f}")
+    h95 = local["bayes"][:, 0]
+    print(f"    h95 per pixel: best {h95.min():.3e}, median {np.median(h95):.3e}, worst {h95.max():.3e}")
+
+    if not args.no_dask:
+        one, t_one = _dask_run(1, proj, ra, dec, args.quadrature)
+        two, t_two = _dask_run(2, proj, ra, dec, args.quadrature)
+        speedup = t_one / t_two
+        print(f"[2] Dask LocalCluster: 1 worker {t_one:.2f} s, 2 workers {t_two:.2f} s, speed-up "
+              f"{speedup:.2f}x  target >= 1.7x  ratio to target {speedup / 1.7:.2f}")
+        same = all(np.array_equal(local[k], r[k]) for r in (one, two) for k in ("bayes", "bayes_log_evidence"))
+        print(f"[3] identical results on local processes, Dask 1 worker and Dask 2 workers: {same}")
+    print(f"load average after: {os.getloadavg()[0]:.1f}")
+
+
+if __name__ == "__main__":
+    main()
