@@ -12,6 +12,16 @@ from . import pyplot, save_figure, sky_map
 _LINE_STYLES = ("--", ":", "-.")
 
 
+def _log_if_wide(ax, values, levels):
+    """Logarithmic y axis when a peak towers over the threshold lines (keeps both readable)."""
+    values = np.asarray(values, dtype=float)
+    values = values[np.isfinite(values) & (values > 0)]
+    levels = [float(v) for v in levels if np.isfinite(v) and v > 0]
+    if values.size and levels and values.max() > 20 * max(levels):
+        ax.set_yscale("log")
+        ax.set_ylim(bottom=max(values.min(), 0.05 * min(levels)))
+
+
 def spectrum_plot(path, spectrum, candidates, thresholds, *, want_fe=True):
     """Two panels against frequency: the sky maximum of Fe (if scanned) and Fp, with threshold lines.
 
@@ -30,6 +40,7 @@ def spectrum_plot(path, spectrum, candidates, thresholds, *, want_fe=True):
         if len(candidates) and np.all(np.isfinite(np.asarray(candidates["fe"], dtype=float))):
             ax.scatter(candidates["frequency"], candidates["fe"], marker="v", color="C1", zorder=3,
                        label="candidates")
+        _log_if_wide(ax, spectrum["fe_max"], [v for _, v in thresholds.get("fe", [])])
         ax.set_ylabel("Fe (sky maximum)")
         ax.legend(fontsize=7, loc="upper right")
         ax.grid(alpha=0.3)
@@ -40,6 +51,7 @@ def spectrum_plot(path, spectrum, candidates, thresholds, *, want_fe=True):
             ax.plot(freq, value, color="C3", ls=style, lw=1.0, label=label)
         else:
             ax.axhline(value, color="C3", ls=style, lw=1.0, label=label)
+    _log_if_wide(ax, spectrum["fp"], [np.nanmax(v) for _, v in thresholds.get("fp", [])])
     ax.set_ylabel("Fp")
     ax.set_xlabel("GW frequency [Hz]")
     ax.set_xscale("log")
