@@ -468,15 +468,15 @@ def run_pipeline(config: RunConfig, *, force=(), progress=True, quiet=False, spe
         headline = headline_result(run_dir, reports)
         write_json_atomic(run_dir / "summary.json", {"headline": headline,
                                                      "stages": [r.as_dict() for r in reports]})
+        provenance.update(finished=_now(), status=status, stages=[r.as_dict() for r in reports])
+        for r in provenance["stages"]:
+            r.pop("summary", None)
+        write_json_atomic(run_dir / "provenance.json", provenance)
         report_path = None
         if write_report:
             from .report import build_report
 
             report_path = build_report(run_dir)
-        provenance.update(finished=_now(), status=status, stages=[r.as_dict() for r in reports])
-        for r in provenance["stages"]:
-            r.pop("summary", None)
-        write_json_atomic(run_dir / "provenance.json", provenance)
     return PipelineResult(run_dir, reports, headline, report_path)
 
 

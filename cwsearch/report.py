@@ -295,8 +295,11 @@ def _candidates(run: _Run) -> str:
     if table is None:
         return run.status_note("scan") or '<p class="note">No candidate table.</p>'
     thr = (run.headline.get("candidate") or {}).get("fap_threshold")
-    intro = (f"<p>Peaks of the scan, best first. Candidates with false-alarm probability below "
-             f"{_e(_fmt(thr))} are followed up.</p>" if thr is not None else "")
+    followed = run.stage_summary("followup").get("followed_rows")
+    intro = (f"<p>Peaks of the scan, best first. Candidates with false-alarm probability (column fap) below "
+             f"{_e(_fmt(thr))} are followed up, one per frequency bin, at most [followup] max_candidates"
+             + (f"; followed up here: rank {_e(', '.join(str(r) for r in followed))}" if followed else "")
+             + ".</p>" if thr is not None else "")
     if not len(table):
         return intro + "<p>The scan found no peaks.</p>"
     return intro + html_table(table, max_rows, sort, desc)

@@ -30,7 +30,7 @@ DEMO = {
 #: --quick overrides
 QUICK = {
     "scan": {"nside": 4, "fmax": 5.0e-8, "null_sims": 0},
-    "followup": {"ess": 100.0, "temperatures": 6, "walkers": 20, "adapt_iterations": 100, "max_iterations": 400},
+    "followup": {"ess": 100.0, "temperatures": 4, "walkers": 18, "adapt_iterations": 60, "max_iterations": 200},
     "hosts": {},
     "limits": {"nside": 2, "fmax": 5.0e-8, "quadrature": "fast"},
 }
