@@ -67,6 +67,14 @@ PIPELINE_SET = {
 
 ENGINE_KINDS = ("local", "dask")
 
+_PIPELINE_HINTS = {
+    "workers": "set [engine] workers",
+    "scheduler": "set [engine] kind = \"dask\" and address",
+    "candidate": "the pipeline follows every candidate below [followup] fap_threshold",
+    "top": "use [followup] max_candidates",
+    "resume": "an interrupted run resumes by itself",
+}
+
 
 # ---------------------------------------------------------------- schema
 class _Required:
@@ -565,7 +573,9 @@ def _check_section(section, given, keys, fail) -> dict:
         if name not in keys:
             known = ", ".join(sorted(keys)) or "(none)"
             if name in PIPELINE_SET.get(section, ()):
-                fail(f"{name!r} is set by the pipeline, not in the run file", section, name)
+                hint = _PIPELINE_HINTS.get(name, "")
+                fail(f"{name!r} is set by the pipeline, not in the run file" + (f"; {hint}" if hint else ""),
+                     section, name)
             fail(f"unknown key (known keys of [{section}]: {known})", section, name)
     values = {}
     for name, key in keys.items():

@@ -261,3 +261,31 @@ def test_stage_own_checks_become_run_file_errors(tmp_path, dataset_dir):
     with pytest.raises(InputError) as err:
         _parse('dataset = "data"\n[scan]\nnside = 6\n', tmp_path)
     assert "line 3: [scan] nside" in str(err.value) and "power of two" in str(err.value)
+
+
+def test_limits_galaxies_array_of_arrays(tmp_path, dataset_dir):
+    """[limits] galaxy: a TOML array of [name, ra, dec, distance] arrays becomes a tuple of tuples."""
+    if stage_options_class("limits") is None:
+        pytest.skip("cwsearch.limits not installed yet")
+    cfg = _parse('dataset = "data"\n[limits]\ngalaxy = [["G1", 10, -5.5, 20.0], ["G2", 1.0, 2.0, 3.0]]\n', tmp_path)
+    assert cfg.options["limits"].galaxy == (("G1", 10.0, -5.5, 20.0), ("G2", 1.0, 2.0, 3.0))
+    with pytest.raises(InputError, match=r"\[limits\] galaxy: expected a list"):
+        _parse('dataset = "data"\n[limits]\ngalaxy = [["G1", "ten", -5.5, 20.0]]\n', tmp_path)
+    with pytest.raises(InputError, match=r"\[limits\] galaxy"):
+        _parse('dataset = "data"\n[limits]\ngalaxy = [["G1", 10.0, -5.5]]\n', tmp_path)
+
+
+def test_engine_fills_workers_and_scheduler_but_not_the_hash(tmp_path, dataset_dir):
+    if stage_options_class("limits") is None:
+        pytest.skip("cwsearch.limits not installed yet")
+    from cwsearch.pipeline import engine_options
+
+    local = _parse('dataset = "data"\n[engine]\nworkers = 3\n', tmp_path)
+    dask = _parse('dataset = "data"\n[engine]\nkind = "dask"\naddress = "tcp://h:8786"\n', tmp_path)
+    opts = engine_options(local.options["limits"], local.engine)
+    assert (opts.workers, opts.scheduler) == (3, None)
+    opts = engine_options(dask.options["limits"], dask.engine)
+    assert opts.scheduler == "tcp://h:8786"
+    assert local.stage_config("limits") == dask.stage_config("limits")  # where it runs is not an input
+    with pytest.raises(InputError, match="set by the pipeline"):
+        _parse('dataset = "data"\n[limits]\nworkers = 2\n', tmp_path)
