@@ -268,9 +268,9 @@ class SkyKernelDensity:
     from memory). A multi-modal sky posterior inflates σ and so smooths
     more; pass ``bandwidth`` [rad] to override.
 
-    >>> import numpy as np
-    >>> kde = SkyKernelDensity(np.zeros(1), np.zeros(1), bandwidth=np.radians(1.0))
-    >>> round(float(kde.density(0.0, 0.0)) * 2 * np.pi * np.radians(1.0)**2, 3)   # peak 1/(2πh²)
+    >>> import math, numpy as np
+    >>> kde = SkyKernelDensity(np.zeros(1), np.zeros(1), bandwidth=math.radians(1.0))
+    >>> round(kde.density(0.0, 0.0) * 2 * math.pi * math.radians(1.0)**2, 3)   # peak 1/(2πh²)
     1.0
     """
 
