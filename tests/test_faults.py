@@ -192,7 +192,7 @@ def test_kill_followup_resumes_from_checkpoint(tmp_path, capsys):
     scan = dict(SCAN, null_sims=0)
     followup = {"fap_threshold": 0.5, "max_candidates": 1, "ess": 1.0e9, "walkers": 18, "temperatures": 3,
                 "checkpoint_every": 10, "adapt_iterations": 40, "max_iterations": 160, "earth_term_only": True,
-                "evolution": "monochromatic"}
+                "evolution": "monochromatic", "plots": False}
     ref = run_file(tmp_path / "ref.toml", data, "ref", ["scan", "followup"], scan=scan, followup=followup)
     assert cli.main(["run", str(ref), "--quiet"]) == 0
     killed = run_file(tmp_path / "killed.toml", data, "killed", ["scan", "followup"], scan=scan, followup=followup)
@@ -297,3 +297,44 @@ def test_full_disk(dataset, tmp_path, capsys, monkeypatch):
         if mounted:
             _umount(target)
     assert tree(dataset) == inputs
+
+
+# ------------------------------------------------------------------ a worker killed mid-run
+
+
+def _die_once(task):
+    """Task for the worker-death tests: the task numbered ``victim`` kills its own worker process (SIGKILL)
+    the first time it runs; every task returns its number squared."""
+    number, victim, marker = task
+    if number == victim and not os.path.exists(marker):
+        Path(marker).write_text(str(os.getpid()))
+        os.kill(os.getpid(), signal.SIGKILL)
+    time.sleep(0.05)
+    return number * number
+
+
+def test_killed_local_worker_is_retried(tmp_path):
+    from cwsearch.execution import TaskRunner
+
+    marker = str(tmp_path / "killed_once")
+    tasks = [(i, 3, marker) for i in range(8)]
+    with TaskRunner(workers=2, retries=2) as runner:
+        results = runner.map(_die_once, tasks)
+    assert Path(marker).exists()  # a worker really died
+    assert results == [i * i for i in range(8)]  # complete, in task order
+
+
+def test_killed_dask_worker_is_retried(tmp_path):
+    pytest.importorskip("distributed")
+    from distributed import LocalCluster
+
+    from cwsearch.execution import TaskRunner
+
+    marker = str(tmp_path / "killed_once")
+    tasks = [(i, 5, marker) for i in range(10)]
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None,
+                      silence_logs=50) as cluster:
+        with TaskRunner(scheduler=cluster.scheduler_address, retries=3) as runner:
+            results = runner.map(_die_once, tasks)
+    assert Path(marker).exists()
+    assert results == [i * i for i in range(10)]
