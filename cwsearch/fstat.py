@@ -34,6 +34,7 @@ Examples
 
 from __future__ import annotations
 
+import contextlib
 from dataclasses import dataclass
 
 import numpy as np
@@ -77,13 +78,14 @@ def sine_cosine_basis(toas, reference_time, frequencies):
     return np.sin(arg), np.cos(arg)
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, nogil=True)
 def _rotation_trig(times, first_frequency, step, n_freq, anchor_every, out):
     """Fill ``out`` (n, 2F) with sin (columns :F) and cos (columns F:) of 2π f_k t,
-    f_k = first_frequency + k·step, by complex rotation exp(i 2π step t) per bin."""
+    f_k = first_frequency + k·step, by complex rotation exp(i 2π step t) per bin.
+    Serial and GIL-free: :func:`project` runs one pulsar per thread."""
     n = times.shape[0]
     two_pi = 2.0 * np.pi
-    for i in prange(n):
+    for i in range(n):
         t = times[i]
         rot_c = np.cos(two_pi * step * t)
         rot_s = np.sin(two_pi * step * t)
@@ -100,11 +102,11 @@ def _rotation_trig(times, first_frequency, step, n_freq, anchor_every, out):
             out[i, n_freq + k] = c
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, nogil=True)
 def _exact_trig(times, frequencies, out):
     n = times.shape[0]
     n_freq = frequencies.shape[0]
-    for i in prange(n):
+    for i in range(n):
         for k in range(n_freq):
             arg = 2.0 * np.pi * frequencies[k] * times[i]
             out[i, k] = np.sin(arg)
@@ -150,14 +152,14 @@ def sine_cosine_matrix(toas, reference_time, frequencies, anchor_every=ANCHOR_EV
     return out
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, nogil=True)
 def _z_columns(w, u, n_freq, z):
-    """z[k] = ((s_k|s_k), (s_k|c_k), (c_k|c_k)) from whitened w (n, 2F), u (r, 2F)."""
+    """z[k] = ((s_k|s_k), (s_k|c_k), (c_k|c_k)) from whitened w (n, 2F), u (r, 2F); serial, GIL-free."""
     n = w.shape[0]
     r = u.shape[0]
     block = 32
     n_blocks = (n_freq + block - 1) // block
-    for b in prange(n_blocks):
+    for b in range(n_blocks):
         k0 = b * block
         k1 = min(n_freq, k0 + block)
         acc = np.zeros((k1 - k0, 3))
@@ -200,7 +202,59 @@ def _drop_null_directions(x, y, z, z_scale):
         x[..., p, f], y[..., p, f] = xy[..., 0], xy[..., 1]
 
 
-def _project_core(engine, frequencies, residual_sets, on_pulsar=None):
+@contextlib.contextmanager
+def _blas_threads(n):
+    """Temporarily set the OpenBLAS thread count of numpy/scipy (no-op where it cannot be found).
+
+    :func:`project` runs one pulsar per thread; letting each skinny whitening
+    product spawn BLAS threads as well oversubscribes the cores, which costs
+    a factor of several on a busy machine (measured in bench.scan).
+    """
+    handles = []
+    try:
+        import ctypes
+        import re
+
+        with open("/proc/self/maps") as fh:
+            paths = sorted(set(re.findall(r"(/\S*openblas\S*\.so\S*)", fh.read())))
+        for path in paths:
+            lib = ctypes.CDLL(path)
+            for prefix in ("scipy_openblas_", "openblas_"):
+                for suffix in ("64_", ""):
+                    get = getattr(lib, f"{prefix}get_num_threads{suffix}", None)
+                    put = getattr(lib, f"{prefix}set_num_threads{suffix}", None)
+                    if get is not None and put is not None:
+                        handles.append((put, int(get())))
+                        put(int(n))
+                        break
+                else:
+                    continue
+                break
+    except (OSError, AttributeError, ValueError):
+        pass
+    try:
+        yield
+    finally:
+        for put, old in handles:
+            put(old)
+
+
+def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i):
+    n_freq = frequencies.size
+    basis = sine_cosine_matrix(w.pulsar.toas, t0, frequencies)
+    wb, ub = w.whiten(basis)                  # the one whitening GEMM for all frequencies
+    wr, ur = w.whiten(residual_set)           # (n, B), (r, B)
+    xy = wr.T @ wb - ur.T @ ub                # (B, 2F)
+    x[:, i] = xy[:, :n_freq]
+    y[:, i] = xy[:, n_freq:]
+    _z_columns(wb, np.ascontiguousarray(ub), n_freq, z[i])
+    z_scale[i] = 0.5 * float(np.sum(wb[:, 0] ** 2 + wb[:, n_freq] ** 2))
+
+
+def _project_core(engine, frequencies, residual_sets, on_pulsar=None, workers=None):
+    import numba
+    from concurrent.futures import ThreadPoolExecutor, as_completed
+
     frequencies = np.ascontiguousarray(frequencies, dtype=float)
     n_psr, n_freq = len(engine), frequencies.size
     n_sets = residual_sets[0].shape[1]
@@ -209,17 +263,20 @@ def _project_core(engine, frequencies, residual_sets, on_pulsar=None):
     z = np.empty((n_psr, n_freq, 3))
     z_scale = np.empty(n_psr)
     t0 = engine.array.reference_time
-    for i, w in enumerate(engine):
-        basis = sine_cosine_matrix(w.pulsar.toas, t0, frequencies)
-        wb, ub = w.whiten(basis)                  # the one whitening GEMM for all frequencies
-        wr, ur = w.whiten(residual_sets[i])       # (n, B), (r, B)
-        xy = wr.T @ wb - ur.T @ ub                # (B, 2F)
-        x[:, i] = xy[:, :n_freq]
-        y[:, i] = xy[:, n_freq:]
-        _z_columns(wb, np.ascontiguousarray(ub), n_freq, z[i])
-        z_scale[i] = 0.5 * float(np.sum(wb[:, 0] ** 2 + wb[:, n_freq] ** 2))
-        if on_pulsar is not None:
-            on_pulsar(i)
+    workers = min(n_psr, numba.get_num_threads() if workers is None else int(workers))
+    if workers <= 1:
+        for i, w in enumerate(engine):
+            _project_pulsar(w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i)
+            if on_pulsar is not None:
+                on_pulsar(i)
+    else:
+        with _blas_threads(1), ThreadPoolExecutor(max_workers=workers) as pool:
+            jobs = {pool.submit(_project_pulsar, w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i): i
+                    for i, w in enumerate(engine)}
+            for job in as_completed(jobs):
+                job.result()
+                if on_pulsar is not None:
+                    on_pulsar(jobs[job])
     _drop_null_directions(x, y, z, z_scale)
     return frequencies, x, y, z, z_scale
 
@@ -235,7 +292,8 @@ def project(engine, frequencies, residuals=None, *, on_pulsar=None) -> Projectio
     a pulsar's Z that the timing model removes entirely (Z at rounding
     level, e.g. exactly 1/yr) are dropped together with the matching X, Y
     part, so they neither divide by zero nor add noise. ``on_pulsar(i)`` is
-    called after each pulsar (progress bars).
+    called after each pulsar (progress bars). Pulsars run in parallel, one
+    per thread (as many threads as numba uses), each single-threaded.
     """
     sets = [np.asarray(w.pulsar.residuals if residuals is None else residuals[i], dtype=float)[:, None]
             for i, w in enumerate(engine)]
@@ -359,39 +417,42 @@ def _run_kernel(proj, fplus, fcross, want_amp=False, want_nm=False):
     return fe, amp, nvec, mmat
 
 
-@njit(cache=True)
-def _ldl4(m, lower, diag):
-    """LDLᵀ of a symmetric PSD 4×4 ``m`` with tiny pivots dropped (as in :func:`_solve_psd`)."""
-    n = 4
-    scale = 0.0
-    for i in range(n):
-        scale = max(scale, m[i, i])
-    tol = 1e-10 * scale
-    for j in range(n):
-        s = m[j, j]
-        for k in range(j):
-            s -= lower[j, k] ** 2 * diag[k]
-        diag[j] = s if s > tol else 0.0
-        lower[j, j] = 1.0
-        for i in range(j + 1, n):
-            s = m[i, j]
-            for k in range(j):
-                s -= lower[i, k] * lower[j, k] * diag[k]
-            lower[i, j] = s / diag[j] if diag[j] > 0 else 0.0
+@njit(cache=True, inline="always")
+def _factor4(m00, m01, m02, m03, m11, m12, m13, m22, m23, m33):
+    """Scalar LDLᵀ of a symmetric PSD 4×4 matrix, unrolled so that it stays in registers.
+
+    Pivots below 1e-10 × the largest diagonal element are dropped (the rule
+    of :func:`_solve_psd`), which makes :func:`_quad4` the pseudo-inverse
+    quadratic form. Returns the inverse pivots and the strict lower triangle.
+    """
+    tol = 1e-10 * max(max(m00, m11), max(m22, m33))
+    d0 = m00 if m00 > tol else 0.0
+    r0 = 1.0 / d0 if d0 > 0 else 0.0
+    l10 = m01 * r0
+    l20 = m02 * r0
+    l30 = m03 * r0
+    d1 = m11 - l10 * l10 * d0
+    d1 = d1 if d1 > tol else 0.0
+    r1 = 1.0 / d1 if d1 > 0 else 0.0
+    l21 = (m12 - l20 * l10 * d0) * r1
+    l31 = (m13 - l30 * l10 * d0) * r1
+    d2 = m22 - l20 * l20 * d0 - l21 * l21 * d1
+    d2 = d2 if d2 > tol else 0.0
+    r2 = 1.0 / d2 if d2 > 0 else 0.0
+    l32 = (m23 - l30 * l20 * d0 - l31 * l21 * d1) * r2
+    d3 = m33 - l30 * l30 * d0 - l31 * l31 * d1 - l32 * l32 * d2
+    r3 = 1.0 / d3 if d3 > tol else 0.0
+    return r0, r1, r2, r3, l10, l20, l30, l21, l31, l32
 
 
-@njit(cache=True)
-def _ldl4_quad(lower, diag, v, tmp):
-    """``vᵀ m⁺ v`` from the factors of :func:`_ldl4` (Σ y_i²/d_i with L y = v)."""
-    q = 0.0
-    for i in range(4):
-        s = v[i]
-        for k in range(i):
-            s -= lower[i, k] * tmp[k]
-        tmp[i] = s
-        if diag[i] > 0:
-            q += s * s / diag[i]
-    return q
+@njit(cache=True, inline="always")
+def _quad4(fac, v0, v1, v2, v3):
+    """``vᵀ m⁺ v`` = Σ y_i² / d_i with L y = v, from :func:`_factor4`."""
+    r0, r1, r2, r3, l10, l20, l30, l21, l31, l32 = fac
+    y1 = v1 - l10 * v0
+    y2 = v2 - l20 * v0 - l21 * y1
+    y3 = v3 - l30 * v0 - l31 * y1 - l32 * y2
+    return v0 * v0 * r0 + y1 * y1 * r1 + y2 * y2 * r2 + y3 * y3 * r3
 
 
 @njit(cache=True, parallel=True)
@@ -402,34 +463,23 @@ def _fe_from_products(nq, mq, n_sky, n_chunk, n_sets, fe_out):
     ``mq`` (3S, 3·Fc): rows (F+² | F+Fx | Fx²) × pixel, columns (ss|sc|cc, frequency).
     """
     for s in prange(n_sky):
-        m = np.zeros((4, 4))
-        lower = np.zeros((4, 4))
-        diag = np.zeros(4)
-        v = np.zeros(4)
-        tmp = np.zeros(4)
+        sp = n_sky + s
+        sx = 2 * n_sky + s
         for f in range(n_chunk):
-            m[0, 0] = mq[s, f]
-            m[0, 1] = mq[s, n_chunk + f]
-            m[1, 1] = mq[s, 2 * n_chunk + f]
-            m[0, 2] = mq[n_sky + s, f]
-            m[0, 3] = mq[n_sky + s, n_chunk + f]
-            m[1, 2] = m[0, 3]
-            m[1, 3] = mq[n_sky + s, 2 * n_chunk + f]
-            m[2, 2] = mq[2 * n_sky + s, f]
-            m[2, 3] = mq[2 * n_sky + s, n_chunk + f]
-            m[3, 3] = mq[2 * n_sky + s, 2 * n_chunk + f]
-            for i in range(4):
-                for j in range(i):
-                    m[i, j] = m[j, i]
-            _ldl4(m, lower, diag)
+            m00 = mq[s, f]
+            m01 = mq[s, n_chunk + f]
+            m11 = mq[s, 2 * n_chunk + f]
+            m02 = mq[sp, f]
+            m03 = mq[sp, n_chunk + f]
+            m13 = mq[sp, 2 * n_chunk + f]
+            m22 = mq[sx, f]
+            m23 = mq[sx, n_chunk + f]
+            m33 = mq[sx, 2 * n_chunk + f]
+            fac = _factor4(m00, m01, m02, m03, m11, m03, m13, m22, m23, m33)   # m12 = m03 = Σ F+Fx Zsc
             for b in range(n_sets):
                 cx = 2 * b * n_chunk + f
                 cy = cx + n_chunk
-                v[0] = nq[s, cx]
-                v[1] = nq[s, cy]
-                v[2] = nq[n_sky + s, cx]
-                v[3] = nq[n_sky + s, cy]
-                fe_out[b, s, f] = 0.5 * _ldl4_quad(lower, diag, v, tmp)
+                fe_out[b, s, f] = 0.5 * _quad4(fac, nq[s, cx], nq[s, cy], nq[sp, cx], nq[sp, cy])
 
 
 @dataclass

@@ -64,6 +64,9 @@ STATISTICS = ("fe", "fp", "both")
 #: default cap on the highest scanned frequency [Hz]
 MAX_DEFAULT_FREQUENCY = 1e-6
 
+#: largest Fe map (float32, pixels × frequencies) a scan keeps in memory [bytes]
+MAX_MAP_BYTES = 4e9
+
 #: Monte Carlo draws per frequency for the effective number of sky templates
 SKY_TRIAL_DRAWS = 1000
 
@@ -472,6 +475,10 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     engine = NoiseWeighting(array, noise)
     ra, dec, fplus, fcross = sky_grid(array, options.nside)
     n_pix = ra.size
+    if want_fe and 4.0 * n_pix * n_freq > MAX_MAP_BYTES:
+        raise InputError(f"option --nside: the Fe map of {n_pix} pixels x {n_freq} frequencies needs "
+                         f"{4.0 * n_pix * n_freq / 1e9:.1f} GB (limit {MAX_MAP_BYTES / 1e9:.0f} GB); lower --nside, "
+                         "narrow --fmin/--fmax or reduce --oversample")
 
     timings = {}
     t = time.time()
