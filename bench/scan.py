@@ -93,7 +93,6 @@ def _dense_reference(array, engine, frequencies, ra, dec):
     from scipy import linalg
 
     from cwsearch.noise import fourier_basis, powerlaw_variance
-    from cwsearch.waveform import antenna_pattern
 
     settings = engine.settings
     t = time.perf_counter()

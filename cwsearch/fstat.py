@@ -18,6 +18,15 @@ signal ``r = F+ (b1 sin + b2 cos) + Fx (b3 sin + b4 cos)``;
 Single pulsar: M is then rank 2 and the pseudo-inverse gives
 ``Fe = Fp`` of that pulsar (2Fe ~ χ²(2)).
 
+Speed (DESIGN.md §6): on a uniform frequency grid the sines and cosines are
+stepped by one complex rotation per bin (:func:`sine_cosine_matrix`); all
+frequencies of a pulsar are whitened in one matrix product, one pulsar per
+thread (:func:`project`, :func:`project_batch` for many residual sets);
+:func:`fe_sky` forms the pulsar sums for all pixels as two matrix products
+per block of frequencies and a parallel numba kernel does the 4×4 algebra
+(:func:`fe_with_amplitudes` and :func:`network_vectors` keep the direct
+per-pixel loop, which also returns N, M and M⁻¹N).
+
 Examples
 --------
 >>> import numpy as np
