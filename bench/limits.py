@@ -46,7 +46,7 @@ def _warm_worker(quadrature):
 def _dask_run(n_workers, proj, ra, dec, quadrature):
     from distributed import Client, LocalCluster
 
-    with LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True, dashboard_address=None,
+    with LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True, dashboard_address=":0",
                       silence_logs=40) as cluster:
         with Client(cluster.scheduler_address) as client:
             client.wait_for_workers(n_workers)

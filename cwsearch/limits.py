@@ -1098,6 +1098,13 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
         fmax = default_max_frequency(array)
     frequencies = frequency_grid(array, fmin=fmin, fmax=fmax, oversample=int(options.oversample))
     workers = None if not options.workers else int(options.workers)
+    requested_sky_index = None
+    if options.sky_frequency is not None:
+        requested_sky_index = int(np.argmin(np.abs(frequencies - options.sky_frequency)))
+        step = frequencies[1] - frequencies[0] if len(frequencies) > 1 else 1.0 / array.span
+        if abs(frequencies[requested_sky_index] - options.sky_frequency) > step:
+            raise InputError(f"option --sky-frequency: {options.sky_frequency:.4g} Hz is outside the band "
+                             f"{frequencies[0]:.4g}-{frequencies[-1]:.4g} Hz")
 
     engine = NoiseWeighting(array, noise)
     proj = fstat.project(engine, frequencies)
@@ -1134,11 +1141,7 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     # ------------------------------------------------ sky table
     finite = np.isfinite(averages[primary])
     if options.sky_frequency is not None:
-        sky_index = int(np.argmin(np.abs(frequencies - options.sky_frequency)))
-        step = frequencies[1] - frequencies[0] if len(frequencies) > 1 else 1.0 / array.span
-        if abs(frequencies[sky_index] - options.sky_frequency) > step:
-            raise InputError(f"option --sky-frequency: {options.sky_frequency:.4g} Hz is outside the band "
-                             f"{frequencies[0]:.4g}-{frequencies[-1]:.4g} Hz")
+        sky_index = requested_sky_index
     else:
         sky_index = int(np.nanargmin(np.where(finite, averages[primary], np.inf))) if finite.any() else 0
     sky_frequency = float(frequencies[sky_index])

@@ -42,7 +42,7 @@ def test_same_answers_one_worker_two_workers_and_dask(small_problem):
     two = _compute(small_problem, workers=2)
     assert "2 local worker processes" in two["engine"]
     _assert_same(serial, two)
-    with LocalCluster(n_workers=1, threads_per_worker=2, processes=False, dashboard_address=None) as cluster:
+    with LocalCluster(n_workers=1, threads_per_worker=2, processes=False, dashboard_address=":0") as cluster:
         dask = _compute(small_problem, scheduler=cluster.scheduler_address)
     assert dask["engine"].startswith("Dask scheduler")
     _assert_same(serial, dask)
@@ -72,11 +72,27 @@ def test_dask_task_resubmitted_when_its_worker_dies(tmp_path):
         return x * 10
 
     with dask.config.set({"distributed.scheduler.allowed-failures": 0}):
-        with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, dashboard_address=None) as cluster:
+        with LocalCluster(n_workers=1, threads_per_worker=1, processes=True, dashboard_address=":0") as cluster:
             done = []
             got = run_tasks(fragile, [1, 2, 3], scheduler=cluster.scheduler_address, on_done=done.append)
     assert got == [10, 20, 30]
     assert os.path.exists(marker) and sum(done) == 3
+
+
+def test_local_pool_restarted_when_a_worker_process_dies(tmp_path):
+    # a task kills its worker process once; the runner starts a fresh pool and resubmits what did not finish
+    marker = str(tmp_path / "died-once")
+    got = run_tasks(_crash_once, [(marker, x) for x in range(4)], workers=2)
+    assert got == [0, 10, 20, 30]
+    assert os.path.exists(marker)
+
+
+def _crash_once(task):
+    marker, x = task
+    if x == 1 and not os.path.exists(marker):
+        open(marker, "w").close()
+        os._exit(1)
+    return 10 * x
 
 
 def test_task_errors_are_raised_not_retried():

@@ -308,3 +308,28 @@ def test_command_defaults_equal_options_defaults():
     command.add_arguments(parser)
     args = parser.parse_args(["data", "--out", "x"])
     assert command.options_from_args(args) == limits.LimitsOptions()
+
+
+def test_command_line_run_with_sampler_check(dataset_dir, tmp_path, capsys):
+    from cwsearch.cli import main
+
+    out = tmp_path / "run"
+    code = main(["limits", str(dataset_dir), "--out", str(out), "--nside", "1", "--fmax", "1.2e-8",
+                 "--workers", "1", "--quadrature", "fast", "--mcmc-check", "3", "--quiet", "--no-plots",
+                 "--galaxy", "GAL0001", "10", "20", "40"])
+    text = capsys.readouterr().out
+    assert code == 0
+    assert "quadrature h95" in text and "h95 =" in text and "GAL0001" in text
+    summary = json.loads((out / "limits" / "limits_summary.json").read_text())
+    assert summary["mcmc_check"]["pixel"] == 3 and summary["mcmc_check"]["sampled"] > 0
+
+
+def test_command_line_bad_values_exit_2(dataset_dir, tmp_path, capsys):
+    from cwsearch.cli import main
+
+    code = main(["limits", str(dataset_dir), "--out", str(tmp_path / "r"), "--galaxy", "GAL0001", "10", "95", "40"])
+    err = capsys.readouterr().err
+    assert code == 2 and "dec" in err and "Traceback" not in err
+    assert not (tmp_path / "r" / "limits").exists()
+    code = main(["limits", str(dataset_dir), "--out", str(tmp_path / "r"), "--sky-frequency", "1e-3"])
+    assert code == 2 and "sky-frequency" in capsys.readouterr().err
