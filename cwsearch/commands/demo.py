@@ -22,7 +22,7 @@ EXAMPLE = """\
 #: demo settings per section (keys are the stage options; see runs/example.toml)
 DEMO = {
     "scan": {"nside": 8, "oversample": 2, "fmax": 1.0e-7, "null_sims": 20},
-    "followup": {"fap_threshold": 0.01, "max_candidates": 1, "ess": 400.0, "temperatures": 8, "walkers": 24},
+    "followup": {"fap_threshold": 0.01, "max_candidates": 1, "ess": 250.0, "temperatures": 8, "walkers": 24},
     "hosts": {},
     # chirp-mass limits for two invented catalogue galaxies (a near one and a farther one)
     "limits": {"nside": 4, "select": ["SIMGAL-01187", "SIMGAL-00009"]},
