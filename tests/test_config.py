@@ -245,7 +245,7 @@ def test_writer_property_based():
     keys = st.text(min_size=1, max_size=8)
     tables = st.dictionaries(keys, values | st.dictionaries(keys, values, max_size=3), max_size=5)
 
-    @settings(max_examples=60, deadline=None)
+    @settings(max_examples=40, deadline=None)
     @given(tables)
     def check(data):
         assert tomllib.loads(to_toml(data)) == data

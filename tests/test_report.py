@@ -76,10 +76,10 @@ def _table(path, **cols):
     write_table_atomic(path, Table(cols))
 
 
-@pytest.fixture
-def run_folder(tmp_path):
+@pytest.fixture(scope="module")
+def run_folder(tmp_path_factory):
     """A complete invented run folder (dummy numbers, real file formats of DESIGN.md §11)."""
-    run = tmp_path / "run"
+    run = tmp_path_factory.mktemp("report") / "run"
     for stage in ("scan", "followup", "hosts", "limits"):
         (run / stage).mkdir(parents=True)
     _png(run / "scan" / "spectrum.png", 1)
