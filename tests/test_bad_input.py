@@ -426,3 +426,78 @@ def test_subprocess_one_line(work, argv_of, expect):
                          text=True, env=env, timeout=120)
     check_user_error(out.returncode, out.stderr, expect)
     assert not (work / "run").exists()
+
+
+# ------------------------------------------------------------------ limits and follow-up stages
+
+
+def _stage_command(name):
+    import importlib.util
+
+    return importlib.util.find_spec(f"cwsearch.commands.{name}") is not None
+
+
+def limits_argv(w, *extra):
+    return ["limits", w / "data", "--out", w / "run", "--nside", "1", "--fmax", "2e-8", "--no-plots", "--quiet",
+            "--workers", "1", "--red-components", "5", *extra]
+
+
+LIMITS_CASES = [
+    ("galaxy-dec-out-of-range", lambda w: ["--galaxy", "MYGAL-1", "150", "95", "20"], ["MYGAL-1", "dec"]),
+    ("galaxy-distance-negative", lambda w: ["--galaxy", "MYGAL-1", "150", "10", "-20"], ["MYGAL-1", "distance"]),
+    ("galaxy-ra-not-number", lambda w: ["--galaxy", "MYGAL-1", "east", "10", "20"], ["MYGAL-1"]),
+    ("catalog-missing", lambda w: ["--catalog", w / "nothere.csv", "--select", "GAL001"], ["nothere.csv"]),
+    ("catalog-select-unknown", lambda w: ["--catalog", w / "galaxies.csv", "--select", "NOSUCH"],
+     ["galaxies.csv", "NOSUCH"]),
+    ("catalog-bad-row", lambda w: (w / "galaxies.csv").write_text("name,ra,dec,distance\nGAL001,10,20,-3\n") and
+     ["--catalog", w / "galaxies.csv", "--select", "GAL001"], ["galaxies.csv", "row 1", "column distance"]),
+    ("fmax-above-nyquist", lambda w: ["--fmax", "1e-5"], ["--fmax"]),
+    ("nside-not-power-of-two", lambda w: ["--nside", "5"], ["--nside"]),
+]
+
+
+@pytest.mark.skipif(not _stage_command("limits"), reason="limits command not in place yet")
+@pytest.mark.parametrize("extra, expect", [c[1:] for c in LIMITS_CASES], ids=[c[0] for c in LIMITS_CASES])
+def test_bad_limits_input(work, capsys, extra, expect):
+    args = [str(a) for a in extra(work)]
+    argv = limits_argv(work)
+    if "--nside" in args or "--fmax" in args:  # the case's own value replaces the default one
+        for opt in ("--nside", "--fmax"):
+            if opt in args:
+                k = argv.index(opt)
+                argv = argv[:k] + argv[k + 2:]
+    inputs = snapshot(work / "data")
+    before = snapshot(work / "run")
+    code, err = run_cli(argv + args, capsys)
+    check_user_error(code, err, [str(e) for e in expect])
+    assert snapshot(work / "run") == before
+    assert snapshot(work / "data") == inputs
+
+
+@pytest.mark.skipif(not _stage_command("limits"), reason="limits command not in place yet")
+def test_limits_bad_dataset(work, capsys):
+    set_value(res(work), 5, "sigma", "-2e-7")
+    code, err = run_cli(limits_argv(work), capsys)
+    check_user_error(code, err, ["SIMPSR02.ecsv", "row 5", "column sigma"])
+    assert not (work / "run").exists()
+
+
+FOLLOWUP_CASES = [
+    ("no-scan-results", [], ["candidates"]),
+    ("frequency-without-sky", ["--frequency", "1e-8"], ["--ra"]),
+    # not refused yet: `followup --frequency 1e-5` (above the Nyquist-like limit) starts sampling (see report)
+    ("dec-out-of-range", ["--frequency", "1e-8", "--ra", "10", "--dec", "100"], ["dec"]),
+    ("walkers-odd", ["--frequency", "1e-8", "--ra", "10", "--dec", "10", "--walkers", "19"], ["walkers"]),
+]
+
+
+@pytest.mark.skipif(not _stage_command("followup"), reason="follow-up command not in place yet")
+@pytest.mark.parametrize("extra, expect", [c[1:] for c in FOLLOWUP_CASES], ids=[c[0] for c in FOLLOWUP_CASES])
+def test_bad_followup_input(work, capsys, extra, expect):
+    (work / "run").mkdir()
+    (work / "run" / "keep.txt").write_text("earlier results\n")
+    before = snapshot(work / "run")
+    code, err = run_cli(["followup", work / "data", "--out", work / "run", "--quiet", "--red-components", "5",
+                         "--max-iterations", "10", *extra], capsys)
+    check_user_error(code, err, expect)
+    assert snapshot(work / "run") == before
