@@ -18,8 +18,9 @@ limits_summary.json and PNG plots.
 Methods: 'bayes' (default) integrates the posterior of h0 (uniform prior)
 over cos(inclination), polarization and phase by deterministic quadrature
 and takes its 95 % point; 'frequentist' finds the h0 at which 95 % of
-randomly oriented signals give 2Fe above the observed value; 'both' reports
-both. Pixel x frequency work runs in local worker processes (--workers) or on
+randomly oriented signals give 2Fe above the observed value. Both go into
+the frequency table and the summary unless --method frequentist; --method
+both also adds frequentist columns to the sky and galaxy tables. Pixel x frequency work runs in local worker processes (--workers) or on
 a running Dask cluster (--scheduler); the numbers do not depend on either."""
 
 EXAMPLE = """\
@@ -48,8 +49,9 @@ def add_arguments(parser):
     g.add_argument("--sky-frequency", type=float, default=None, metavar="HZ",
                    help="frequency of sky_limits.ecsv and the sky map (default: the most sensitive bin)")
     g.add_argument("--method", choices=("bayes", "frequentist", "both"), default=d["method"],
-                   help="bayes (default): quadrature posterior, uniform strain prior; frequentist: "
-                        "Fe-based; both")
+                   help="bayes (default): quadrature posterior, uniform strain prior (the frequentist "
+                        "limit is reported alongside); frequentist: Fe-based only; both: frequentist "
+                        "columns in the sky and galaxy tables too")
     g.add_argument("--quadrature", choices=("fast", "standard", "fine"), default=d["quadrature"],
                    help="angle-grid size of the Bayesian quadrature (default standard, ~0.3 %% worst case)")
     g.add_argument("--galaxy", nargs=4, action="append", default=None,
