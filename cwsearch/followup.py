@@ -138,10 +138,13 @@ class Prior:
     def draw(self, rng, size):
         """Draws from the prior (rejecting merging binaries), shape (size, 8)."""
         out = np.empty((0, 8))
-        while out.shape[0] < size:
+        for _ in range(200):
             x = rng.uniform(self.lower, self.upper, (2 * size, 8))
             out = np.vstack([out, x[np.isfinite(self(x))]])
-        return out[:size]
+            if out.shape[0] >= size:
+                return out[:size]
+        raise InputError("hardly any binary of the prior survives to the end of the data at this frequency "
+                         "(chirp masses 1e7-1e11 Msun merge first); choose a lower frequency")
 
 
 def initial_positions(prior, target: Target, span, shape, rng):
@@ -216,6 +219,9 @@ def select_targets(run_dir, options: FollowupOptions):
     if options.all_sky:
         return [Target("all-sky", None, None, None)]
     if options.frequency is not None:
+        if not 0 < options.frequency <= options.max_frequency:
+            raise InputError(f"--frequency must be in (0, {options.max_frequency:g}] Hz (raise --max-frequency "
+                             "for higher targets)")
         if not -90 <= options.dec <= 90:
             raise InputError("--dec must be within [-90, 90] degrees")
         return [Target("target", options.frequency, np.radians(options.ra % 360), np.radians(options.dec),
@@ -236,6 +242,9 @@ def select_targets(run_dir, options: FollowupOptions):
         ra, dec = get("ra", u.rad, u.deg), get("dec", u.rad, u.deg)
         if freq is None or ra is None or dec is None or freq <= 0:
             raise InputError("frequency, ra and dec must be finite (frequency > 0)", file=path, row=r + 1)
+        if freq > options.max_frequency:
+            raise InputError(f"candidate frequency {freq:g} Hz is above --max-frequency {options.max_frequency:g}",
+                             file=path, row=r + 1, column="frequency")
         source = {name: (float(table[name][r]) if np.issubdtype(np.asarray(table[name]).dtype, np.number)
                          else str(table[name][r])) for name in table.colnames}
         targets.append(Target(f"candidate_{r + 1}", freq, ra, dec, strain=get("strain", u.one, None),

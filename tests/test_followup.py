@@ -125,5 +125,10 @@ def test_command_user_errors(tmp_path, dataset_dir, capsys):
     assert "candidates" in capsys.readouterr().err
     assert main(["followup", str(dataset_dir), "--out", str(run), "--frequency", "1e-8"]) == 2
     assert main(["followup", str(dataset_dir), "--out", str(run), "--all-sky", "--walkers", "7"]) == 2
+    # 1e-5 Hz: every binary of the chirp-mass prior would merge within days (t_c formula, CHECKS.md)
+    assert main(["followup", str(dataset_dir), "--out", str(run), "--frequency", "1e-5", "--ra", "1",
+                 "--dec", "1"]) == 2
+    assert main(["followup", str(dataset_dir), "--out", str(run), "--frequency", "1e-5", "--ra", "1",
+                 "--dec", "1", "--max-frequency", "1e-4", "--max-iterations", "5"]) == 2
     _write_candidates(run, [(2e-8, 30.0, 10.0, 9.0, 0.01, 5.0, 3e-15, 0.5, 0.3, 0.2)])
     assert main(["followup", str(dataset_dir), "--out", str(run), "--candidate", "5"]) == 2
