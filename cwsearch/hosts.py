@@ -1,6 +1,6 @@
 """Host-galaxy crossmatch: which catalogued galaxy could host a candidate binary?
 
-Method (``shared/DESIGN.md`` §10, ``docs/sections/hosts.md``)
+Method (``shared/DESIGN.md`` §10, the README (Host galaxies))
 ---------------------------------------------------------------
 For each galaxy *g* the Bayes factor of "the binary lives in *g*" against
 the search prior is the posterior average of the prior ratio,

@@ -19,7 +19,7 @@ check the code against these same stated values):
 * Planck Collaboration 2020, A&A 641, A6 (Planck 2018 VI) — cosmology, via
   :data:`astropy.cosmology.Planck18`.
 
-Conventions (our assumptions, stated in ``docs/sections/hosts.md``):
+Conventions (our assumptions, stated in the README (Host galaxies)):
 
 * The black-hole mass from a relation is taken as the **total** mass
   ``m1 + m2`` of the binary.

@@ -25,7 +25,7 @@ sky; a and b come from a quick Monte Carlo of the sufficient statistics
 (per-pulsar X, Y drawn with covariance Z under the noise model, maximum of
 Fe over the sky; see :func:`effective_sky_templates`). On noise-only
 simulations of 4–30 pulsars this analytic FAP came out calibrated at the
-0.1 and 0.02 levels and conservative near 0.5 (docs/sections/scan.md).
+0.1 and 0.02 levels and conservative near 0.5 (README, Hunting section).
 ``fap_empirical`` (with ``null_sims``) is the fraction of complete
 noise-only scans of the same array (time series simulated with the same
 TOAs, sigmas and noise model) whose maximum Fe reaches the candidate's,

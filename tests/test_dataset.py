@@ -353,7 +353,7 @@ def test_reader_writes_nothing(dataset_dir):
 
 
 def test_extra_residual_file_warns(dataset_dir, tiny_array):
-    """Decision (docs/sections/foundation.md): residual files not listed in pulsars.ecsv are ignored with a
+    """Decision (README, Datasets section): residual files not listed in pulsars.ecsv are ignored with a
     warning naming them, so a pulsar can be dropped by deleting its row."""
     shutil.copy(dataset_dir / PSR, dataset_dir / "residuals" / "SIMPSR99.ecsv")
     (dataset_dir / "residuals" / ".DS_Store").write_bytes(b"\0")

@@ -182,7 +182,7 @@ def test_bayesian_limit_noise_only_always_above_zero(network):
 def test_bayesian_limit_covers_weak_injection(network):
     # check: frequentist coverage of the uniform-prior Bayesian limit — with an injection at the typical
     # noise-only limit, h95 exceeds the injected strain in >= 95 % of cases (one-sided 99.9 % binomial bound,
-    # scipy.stats.binom); the measured fraction (~0.97) is documented in docs/sections/limits.md
+    # scipy.stats.binom); the measured fraction (~0.97) is documented in the README (Upper limits section)
     _, _, mmat = network
     rng = np.random.default_rng(6)
     stack = np.broadcast_to(mmat, (400, 4, 4))
