@@ -41,3 +41,14 @@ def load_array(args):
     from ..dataset import read_dataset
 
     return read_dataset(args.dataset)
+
+
+def add_grid_arguments(group, defaults, fmax_help):
+    """Frequency grid and sky resolution options shared by ``scan`` and ``limits``."""
+    group.add_argument("--fmin", type=float, default=None, metavar="HZ",
+                       help="lowest GW frequency (default 1/T_span)")
+    group.add_argument("--fmax", type=float, default=None, metavar="HZ", help=fmax_help)
+    group.add_argument("--oversample", type=int, default=defaults["oversample"], metavar="N",
+                       help=f"frequency spacing 1/(N*T_span) (default {defaults['oversample']})")
+    group.add_argument("--nside", type=int, default=defaults["nside"],
+                       help=f"HEALPix resolution, a power of two; 12*nside^2 pixels (default {defaults['nside']})")

@@ -3,7 +3,7 @@
 
 from __future__ import annotations
 
-from ._common import add_dataset_arguments, add_noise_arguments
+from ._common import add_dataset_arguments, add_grid_arguments, add_noise_arguments
 
 DESCRIPTION = """\
 Compute 95 % upper limits on the strain amplitude h0 of a circular binary at
@@ -39,13 +39,7 @@ def add_arguments(parser):
     add_dataset_arguments(parser)
     d = _DEFAULTS
     g = parser.add_argument_group("limits")
-    g.add_argument("--fmin", type=float, default=None, metavar="HZ", help="lowest GW frequency (default 1/T_span)")
-    g.add_argument("--fmax", type=float, default=None, metavar="HZ",
-                   help="highest GW frequency (default 1e-7, at most 1/(2 x median TOA spacing))")
-    g.add_argument("--oversample", type=int, default=d["oversample"], metavar="N",
-                   help=f"frequency spacing 1/(N*T_span) (default {d['oversample']})")
-    g.add_argument("--nside", type=int, default=d["nside"],
-                   help=f"HEALPix resolution, a power of two; 12*nside^2 pixels (default {d['nside']})")
+    add_grid_arguments(g, d, "highest GW frequency (default 1e-7, at most 1/(2 x median TOA spacing))")
     g.add_argument("--sky-frequency", type=float, default=None, metavar="HZ",
                    help="frequency of sky_limits.ecsv and the sky map (default: the most sensitive bin)")
     g.add_argument("--method", choices=("bayes", "frequentist", "both"), default=d["method"],

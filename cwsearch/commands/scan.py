@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from ._common import add_dataset_arguments, add_noise_arguments
+from ._common import add_dataset_arguments, add_grid_arguments, add_noise_arguments
 
 DESCRIPTION = """\
 Scan every GW frequency from 1/T_span (spacing 1/(oversample*T_span)) up to
@@ -32,13 +32,7 @@ def add_arguments(parser):
     add_dataset_arguments(parser)
     d = _DEFAULTS
     g = parser.add_argument_group("scan")
-    g.add_argument("--fmin", type=float, default=None, metavar="HZ", help="lowest GW frequency (default 1/T_span)")
-    g.add_argument("--fmax", type=float, default=None, metavar="HZ",
-                   help="highest GW frequency (default 1/(2 x median TOA spacing), at most 1e-6)")
-    g.add_argument("--oversample", type=int, default=d["oversample"], metavar="N",
-                   help=f"frequency spacing 1/(N*T_span) (default {d['oversample']})")
-    g.add_argument("--nside", type=int, default=d["nside"],
-                   help=f"HEALPix resolution, a power of two; 12*nside^2 pixels (default {d['nside']})")
+    add_grid_arguments(g, d, "highest GW frequency (default 1/(2 x median TOA spacing), at most 1e-6)")
     g.add_argument("--statistic", choices=("fe", "fp", "both"), default=d["statistic"],
                    help="fe: Earth-term sky scan; fp: pulsar-term (no sky); both (default)")
     g.add_argument("--null-sims", type=int, default=d["null_sims"], metavar="N",
