@@ -14,9 +14,16 @@ Noise weighting
 Simulation
     :func:`invented_array`, :func:`simulate_residuals`, :class:`Binary`
     (``cwsearch.simulate``).
-Stages
-    ``cwsearch.fstat`` (F-statistics), ``cwsearch.scan``, ``cwsearch.likelihood``,
-    ``cwsearch.sampling``, ``cwsearch.limits``, ``cwsearch.hosts``.
+Stages (each: ``<Stage>Options`` and ``run_<stage>(array, run_dir, options, ...)``)
+    scan: :class:`ScanOptions`, :func:`run_scan` (``cwsearch.scan``, on ``cwsearch.fstat``);
+    follow-up: :class:`Likelihood`, :class:`FollowupOptions`, :func:`run_followup`
+    (``cwsearch.likelihood``, ``cwsearch.sampling``, ``cwsearch.followup``);
+    hosts: :func:`read_catalog`, :class:`HostsOptions`, :func:`run_hosts`
+    (``cwsearch.catalog``, ``cwsearch.relations``, ``cwsearch.hosts``);
+    limits: :class:`LimitsOptions`, :func:`run_limits` (``cwsearch.limits``, ``cwsearch.execution``).
+Whole job
+    :func:`load_config`, :func:`run_pipeline` (``cwsearch.config``, ``cwsearch.pipeline``,
+    ``cwsearch.report``).
 
 Example
 -------
@@ -32,10 +39,15 @@ __version__ = "0.1.0"
 
 _LAZY = {
     "Pulsar": "model", "Array": "model", "PulsarNoise": "model",
-    "read_dataset": "dataset", "write_dataset": "dataset",
+    "read_dataset": "dataset", "write_dataset": "dataset", "dataset_checksum": "dataset",
     "NoiseWeighting": "noise", "NoiseSettings": "noise",
     "invented_array": "simulate", "simulate_residuals": "simulate", "Binary": "simulate",
     "InputError": "errors",
+    "ScanOptions": "scan", "run_scan": "scan",
+    "Likelihood": "likelihood", "FollowupOptions": "followup", "run_followup": "followup",
+    "read_catalog": "catalog", "HostsOptions": "hosts", "run_hosts": "hosts",
+    "LimitsOptions": "limits", "run_limits": "limits",
+    "load_config": "config", "run_pipeline": "pipeline",
 }
 
 __all__ = sorted(_LAZY) + ["__version__"]
