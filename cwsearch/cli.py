@@ -13,7 +13,9 @@ Exit status: 0 success, 2 user error (one line on stderr, no traceback),
 from __future__ import annotations
 
 import argparse
+import errno
 import importlib
+import os
 import sys
 
 from . import __version__
@@ -92,12 +94,48 @@ def run_command(func, args) -> int:
     except KeyboardInterrupt:
         print("cwsearch: interrupted; finished outputs are kept, nothing half-written", file=sys.stderr)
         return 130
-    except Exception:  # an internal error: show the traceback, exit 1
-        import traceback
+    except OSError as exc:
+        if exc.errno not in _CANNOT_WRITE:
+            return _internal_error()
+        # a full disk or read-only folder met outside cwsearch.fileio, e.g. while numba saves its
+        # compiled-code cache: the user's problem, not a bug
+        hint = "; free some space and run again" if exc.errno in _NO_SPACE else ""
+        print(f"cwsearch: error: {_failed_path(exc)}: {exc.strerror}{hint}", file=sys.stderr)
+        return 2
+    except Exception:
+        return _internal_error()
 
-        traceback.print_exc()
-        print("cwsearch: internal error (please report it with the traceback above)", file=sys.stderr)
-        return 1
+
+#: errno values of a place that cannot be written or read by this user (exit 2, no traceback)
+_NO_SPACE = {errno.ENOSPC, errno.EDQUOT}
+_CANNOT_WRITE = _NO_SPACE | {errno.EROFS, errno.EACCES}
+
+
+def _internal_error() -> int:
+    """Show the traceback of the exception being handled; exit status 1."""
+    import traceback
+
+    traceback.print_exc()
+    print("cwsearch: internal error (please report it with the traceback above)", file=sys.stderr)
+    return 1
+
+
+def _failed_path(exc: OSError) -> str:
+    """The file an OSError is about: its ``filename``, else a path held by the innermost frame that
+    has one (write errors on an open file carry no name); '(unknown file)' if none is found."""
+    if exc.filename is not None:
+        return str(exc.filename)
+    frames = []
+    tb = exc.__traceback__
+    while tb is not None:
+        frames.append(tb.tb_frame)
+        tb = tb.tb_next
+    for frame in reversed(frames):
+        for name in ("filepath", "filename", "path", "target", "file", "tmpname"):
+            value = frame.f_locals.get(name)
+            if isinstance(value, (str, os.PathLike)):
+                return os.fspath(value)
+    return "(unknown file)"
 
 
 if __name__ == "__main__":  # pragma: no cover

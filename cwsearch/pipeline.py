@@ -259,7 +259,10 @@ class RunLock:
         self.held = False
 
     def __enter__(self):
-        self.path.parent.mkdir(parents=True, exist_ok=True)
+        try:
+            self.path.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:  # read-only file system, no permission, disk full
+            raise InputError(f"cannot write here ({exc.strerror})", file=self.path.parent) from None
         for _ in range(2):
             try:
                 fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
@@ -270,8 +273,14 @@ class RunLock:
                                      "wait for it or choose another folder", file=self.path.parent) from None
                 self.path.unlink(missing_ok=True)  # stale lock of a killed run
                 continue
-            with os.fdopen(fd, "w") as fh:
-                fh.write(f"{socket.gethostname()} {os.getpid()}\n")
+            except OSError as exc:
+                raise InputError(f"cannot write here ({exc.strerror})", file=self.path.parent) from None
+            try:
+                with os.fdopen(fd, "w") as fh:
+                    fh.write(f"{socket.gethostname()} {os.getpid()}\n")
+            except OSError as exc:  # disk full: no half-written lock left behind
+                self.path.unlink(missing_ok=True)
+                raise InputError(f"cannot write ({exc.strerror})", file=self.path) from None
             self.held = True
             return self
         raise InputError("cannot lock the run folder", file=self.path.parent)
@@ -463,7 +472,10 @@ def run_pipeline(config: RunConfig, *, force=(), progress=True, quiet=False, spe
         except BaseException as exc:
             status = "interrupted" if isinstance(exc, KeyboardInterrupt) else "failed"
             provenance.update(finished=_now(), status=status)
-            write_json_atomic(run_dir / "provenance.json", provenance)
+            try:
+                write_json_atomic(run_dir / "provenance.json", provenance)
+            except InputError:
+                pass  # e.g. the disk is full: the original error is the one to report
             raise
         headline = headline_result(run_dir, reports)
         write_json_atomic(run_dir / "summary.json", {"headline": headline,

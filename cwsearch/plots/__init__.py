@@ -24,9 +24,11 @@ def save_figure(fig, path):
     from ..fileio import atomic_path
 
     plt = pyplot()
-    with atomic_path(path) as tmp:
-        fig.savefig(tmp, format="png", dpi=110, bbox_inches="tight")
-    plt.close(fig)
+    try:
+        with atomic_path(path) as tmp:
+            fig.savefig(tmp, format="png", dpi=110, bbox_inches="tight")
+    finally:  # closed also when the write fails (disk full), so no figure is left open
+        plt.close(fig)
 
 
 def _wrap_ra(ra):
