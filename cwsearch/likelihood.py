@@ -74,6 +74,7 @@ _SERIES_LIMIT = 1e-3
 # batches smaller than these (walkers × TOAs, walkers × pulsars) run on one thread
 _PARALLEL_BASIS = 200_000
 _PARALLEL_PROJECTIONS = 20_000
+_PARALLEL_NODES = 20_000
 _LAPLACE_ABOVE = 2.0e4
 
 _PIO2_HI = 1.57079632673412561417e+00   # π/2 split in two parts (Cody & Waite range reduction)
@@ -201,6 +202,62 @@ def _gram_parallel(basis, inv_var, whitened, out):
 def _gram_serial(basis, inv_var, whitened, out):
     for w in range(basis.shape[0]):
         _gram_one(w, basis, inv_var, whitened, out)
+
+
+@njit(cache=True, error_model="numpy")
+def _earth_at_nodes(node_dt, t_max, omega0, kappa_e, amp0, out):
+    """Earth-term series of every walker at the nodes, out (W, 2, m): the same for all pulsars."""
+    for w in range(omega0.shape[0]):
+        _fill_term(node_dt, omega0[w], kappa_e[w], amp0[w], abs(kappa_e[w] * t_max) < _SERIES_LIMIT,
+                   out[w, 0], out[w, 1])
+
+
+@njit(cache=True, fastmath=True, error_model="numpy")
+def _nodes_one(p, earth, node_dt, t_max, omega_p, kappa_p, amp_p, data_products, gram_products, dvec, gmat):
+    """Pulsar p, every walker: pulsar-term series at the nodes, then dvec = v·y and gmat = v K vᵀ
+    with the cached y = Lᵀ C⁻¹ d and K = Lᵀ C⁻¹ L (K stays in cache across the walkers)."""
+    ncol = dvec.shape[2]
+    m = data_products.shape[1]
+    values = np.empty((ncol, m))
+    weighted = np.empty((ncol, m))
+    gram = gram_products[p]
+    data = data_products[p]
+    for w in range(earth.shape[0]):
+        values[0, :] = earth[w, 0]
+        values[1, :] = earth[w, 1]
+        if ncol == 4:
+            _fill_term(node_dt, omega_p[w, p], kappa_p[w, p], amp_p[w, p],
+                       abs(kappa_p[w, p] * t_max) < _SERIES_LIMIT, values[2], values[3])
+        for n in range(m):
+            row = gram[n]
+            for i in range(ncol):
+                acc = 0.0
+                for k in range(m):
+                    acc += row[k] * values[i, k]
+                weighted[i, n] = acc
+        for i in range(ncol):
+            acc = 0.0
+            for n in range(m):
+                acc += values[i, n] * data[n]
+            dvec[w, p, i] = acc
+            for j in range(i, ncol):
+                acc = 0.0
+                for n in range(m):
+                    acc += values[j, n] * weighted[i, n]
+                gmat[w, p, i, j] = acc
+                gmat[w, p, j, i] = acc
+
+
+@njit(cache=True, parallel=True)
+def _nodes_parallel(earth, node_dt, t_max, omega_p, kappa_p, amp_p, data_products, gram_products, dvec, gmat):
+    for p in prange(data_products.shape[0]):
+        _nodes_one(p, earth, node_dt, t_max, omega_p, kappa_p, amp_p, data_products, gram_products, dvec, gmat)
+
+
+@njit(cache=True)
+def _nodes_serial(earth, node_dt, t_max, omega_p, kappa_p, amp_p, data_products, gram_products, dvec, gmat):
+    for p in range(data_products.shape[0]):
+        _nodes_one(p, earth, node_dt, t_max, omega_p, kappa_p, amp_p, data_products, gram_products, dvec, gmat)
 
 
 @njit(cache=True, inline="always")
@@ -384,6 +441,54 @@ def _projection_batch(fplus, *args):
     kernel(fplus, *args)
 
 
+# ---------------------------------------------------------------- interpolation nodes
+#: node counts of the interpolated shape path (Chebyshev points on the array's span)
+NODE_LEVELS = (16, 24, 32, 48, 64, 96, 128, 192, 256, 384, 512)
+NODE_TOLERANCE = 1e-13
+_LOG_NODE_TOLERANCE = 32.2        # −ln 1e-14: geometric decay needed near a merger's branch point
+
+
+def chebyshev_points(m):
+    """The m Chebyshev points of the first kind on [−1, 1], ``cos((2n+1)π/(2m))``."""
+    return np.cos((2 * np.arange(m) + 1) * np.pi / (2 * m))
+
+
+def interpolation_matrix(x, m):
+    """Matrix L (len(x), m) with ``f(x) ≈ L @ f(chebyshev_points(m))``: the barycentric formula
+    with the first-kind weights ``(−1)ⁿ sin((2n+1)π/(2m))`` (Trefethen, *Approximation Theory and
+    Approximation Practice*, 2013, ch. 5; from memory).
+
+    >>> x = np.linspace(-1, 1, 7)
+    >>> bool(np.allclose(interpolation_matrix(x, 12) @ np.sin(3 * chebyshev_points(12)), np.sin(3 * x)))
+    True
+    """
+    nodes = chebyshev_points(m)
+    weights = (-1.0) ** np.arange(m) * np.sin((2 * np.arange(m) + 1) * np.pi / (2 * m))
+    diff = np.asarray(x, dtype=float)[:, None] - nodes[None, :]
+    exact = diff == 0.0
+    diff[exact] = 1.0
+    terms = weights / diff
+    out = terms / terms.sum(axis=1, keepdims=True)
+    rows = exact.any(axis=1)
+    out[rows] = exact[rows]
+    return out
+
+
+def largest_bandwidth(m, tolerance=NODE_TOLERANCE):
+    """Largest ``a`` (angular frequency × half the interval) for which interpolating ``exp(i a x)`` at m
+    Chebyshev points errs by at most ``tolerance``. Its Chebyshev coefficients are ``2 iⁿ Jₙ(a)``
+    (Jacobi–Anger expansion, Abramowitz & Stegun 9.1.44–45) and the interpolation error is at most
+    twice the sum of the neglected coefficients (Trefethen 2013, thm 4.2; from memory)."""
+    from scipy.special import jv
+
+    order = np.arange(m, m + 80)
+    low, high = 0.0, float(m)
+    for _ in range(50):
+        a = 0.5 * (low + high)
+        low, high = (a, high) if 4.0 * np.abs(jv(order, a)).sum() <= tolerance else (low, a)
+    return low
+
+
 # ---------------------------------------------------------------- public API
 @dataclass
 class ShapeCache:
@@ -412,6 +517,17 @@ class Likelihood:
         Points of the pulsar-phase grid; 0 (default) picks them per pulsar.
     uniform_strain : bool
         Sampler coordinate is ``strain`` instead of ``log10_strain``.
+    shape_path : ``"auto"``, ``"nodes"`` or ``"direct"``
+        How :meth:`shape_batch` computes the basis products. ``"direct"``
+        builds the four basis series at every TOA and whitens them.
+        ``"nodes"`` builds them at m Chebyshev points of the array's span
+        and uses per-pulsar products of the interpolation matrix cached per
+        m (``Lᵀ C⁻¹ L``, ``Lᵀ C⁻¹ d``), with m chosen per walker from its
+        highest frequency and distance to merger so that the interpolation
+        error stays below :data:`NODE_TOLERANCE` of the amplitude; walkers
+        that would need more than :data:`NODE_LEVELS` offers take the direct
+        path. ``"auto"`` (default) uses nodes where they cost less than the
+        direct path (m² below about N_TOA × rank of the noise model).
 
     Pulsar distances are held at their catalogue values; with the pulsar
     phases free they only set the pulsar-term frequency and amplitude in the
@@ -419,9 +535,12 @@ class Likelihood:
     """
 
     def __init__(self, array, noise=None, *, pulsar_term=True, evolution="full", phase_grid=0,
-                 uniform_strain=False):
+                 uniform_strain=False, shape_path="auto"):
         if evolution not in waveform.EVOLUTION_MODES:
             raise ValueError(f"evolution must be one of {waveform.EVOLUTION_MODES}")
+        if shape_path not in ("auto", "nodes", "direct"):
+            raise ValueError("shape_path must be 'auto', 'nodes' or 'direct'")
+        self.shape_path = shape_path
         self.array = array
         self.engine = noise if isinstance(noise, NoiseWeighting) else NoiseWeighting(array, noise or NoiseSettings())
         self.pulsar_term = bool(pulsar_term)
@@ -448,6 +567,15 @@ class Likelihood:
         self.n_pulsars = len(array)
         self._t_max = [float(np.max(np.abs(dt))) for dt in self._dt]
         self._mean_toas = float(np.mean([dt.shape[0] for dt in self._dt]))
+        # interpolated shape path: node levels usable at all (cheaper than direct under "auto")
+        first = min(float(dt.min()) for dt in self._dt)
+        last = max(float(dt.max()) for dt in self._dt)
+        self._node_centre, self._node_half = 0.5 * (first + last), max(0.5 * (last - first), 1.0)
+        rank = float(np.mean([op.shape[0] for op in self._operator]))
+        cap = {"direct": 0, "nodes": NODE_LEVELS[-1], "auto": np.sqrt(self._mean_toas * (rank + 19.0))}[shape_path]
+        self._node_levels = np.array([m for m in NODE_LEVELS if m <= cap], dtype=int)
+        self._node_bandwidth = np.array([largest_bandwidth(m) for m in self._node_levels])
+        self._node_products = {}
 
     # -------------------------------------------------------------- exact path
     def shape_cache(self, ra, dec, gw_frequency, chirp_mass) -> ShapeCache:
@@ -494,7 +622,7 @@ class Likelihood:
     # -------------------------------------------------------------- fast batched path
     def shape_batch(self, ra, dec, gw_frequency, chirp_mass):
         """Antenna patterns (W, P) and basis products ``dvec`` (W, P, 4), ``gmat`` (W, P, 4, 4)
-        for W shapes at once (the numba/BLAS fast path)."""
+        for W shapes at once (the numba/BLAS fast path; see ``shape_path``)."""
         ra, dec, f, mc = (np.atleast_1d(np.asarray(x, dtype=float)) for x in (ra, dec, gw_frequency, chirp_mass))
         n_w = ra.shape[0]
         fplus, fcross, odp = waveform.antenna_pattern(ra, dec, self.positions)
@@ -515,6 +643,79 @@ class Likelihood:
         ncol = 4 if (self.pulsar_term and not same) else 2
         dvec = np.zeros((n_w, self.n_pulsars, 4))
         gmat = np.zeros((n_w, self.n_pulsars, 4, 4))
+        nodes = self._node_count(omega0, kappa_e)
+        for m in np.unique(nodes):
+            pick = np.flatnonzero(nodes == m)
+            terms = (omega0[pick], kappa_e[pick], amp0[pick], omega_p[pick], kappa_p[pick], amp_p[pick])
+            products = self._direct_products if m == 0 else self._nodes_products
+            dvec[pick, :, :ncol], gmat[pick, :, :ncol, :ncol] = products(int(m), ncol, *terms)
+        if same and self.pulsar_term:
+            dvec[:, :, 2:] = dvec[:, :, :2]
+            gmat[:, :, 2:, 2:] = gmat[:, :, :2, :2]
+            gmat[:, :, :2, 2:] = gmat[:, :, :2, :2]
+            gmat[:, :, 2:, :2] = gmat[:, :, :2, :2]
+        return fplus, fcross, dvec, gmat
+
+    def _node_count(self, omega0, kappa_e):
+        """Chebyshev nodes each walker needs (0: direct path): the highest GW angular frequency
+        in the data times half the span must stay within :func:`largest_bandwidth`, and the
+        merger's branch point at ``1/κ`` must lie far enough outside the span for the
+        interpolation error to fall below 1e-14 (Bernstein-ellipse rate ρ⁻ᵐ with ln ρ =
+        arccosh x_merge; Trefethen 2013, thm 8.2; from memory)."""
+        out = np.zeros(omega0.shape, dtype=int)
+        if self._node_levels.size == 0:
+            return out
+        last = self._node_centre + self._node_half
+        left = 1.0 - kappa_e * last
+        alive = left > 0.0
+        bandwidth = 2.0 * omega0 * np.where(alive, left, 1.0) ** (-3 / 8) * self._node_half
+        with np.errstate(divide="ignore"):
+            merge = np.where(kappa_e > 0, (1.0 / np.where(kappa_e > 0, kappa_e, 1.0) - self._node_centre)
+                             / self._node_half, np.inf)
+        decay = np.where(np.isfinite(merge), np.arccosh(np.maximum(merge, 1.0)), np.inf)
+        with np.errstate(divide="ignore"):
+            needed = np.where(decay > 0, _LOG_NODE_TOLERANCE / decay, np.inf)
+        for m, widest in zip(self._node_levels[::-1], self._node_bandwidth[::-1]):
+            fits = alive & (bandwidth <= widest) & (needed <= m)
+            out[fits] = m
+        return out
+
+    def _nodes_products(self, m, ncol, omega0, kappa_e, amp0, omega_p, kappa_p, amp_p):
+        """``dvec``, ``gmat`` from the basis series at m Chebyshev nodes and the cached
+        per-pulsar ``Lᵀ C⁻¹ d`` and ``Lᵀ C⁻¹ L`` (numba, parallel over pulsars:
+        small matrix products inside threaded BLAS stall when other work shares the cores)."""
+        node_dt, data_products, gram_products = self._interpolation_products(m)
+        n_w = omega0.shape[0]
+        dvec = np.empty((n_w, self.n_pulsars, ncol))
+        gmat = np.empty((n_w, self.n_pulsars, ncol, ncol))
+        t_max = float(np.max(np.abs(node_dt)))
+        earth = np.empty((n_w, 2, m))
+        _earth_at_nodes(node_dt, t_max, omega0, kappa_e, amp0, earth)
+        kernel = _nodes_parallel if n_w * m * self.n_pulsars >= _PARALLEL_NODES else _nodes_serial
+        kernel(earth, node_dt, t_max, np.ascontiguousarray(omega_p), np.ascontiguousarray(kappa_p),
+               np.ascontiguousarray(amp_p), data_products, gram_products, dvec, gmat)
+        return dvec, gmat
+
+    def _interpolation_products(self, m):
+        """Node offsets from the reference time (m,) and per pulsar ``Lᵀ C⁻¹ d`` (m,) and
+        ``Lᵀ C⁻¹ L`` (m, m) through the noise engine, L the pulsar's interpolation matrix
+        (built once per m)."""
+        if m not in self._node_products:
+            node_dt = self._node_centre + self._node_half * chebyshev_points(m)
+            data_products, gram_products = [], []
+            for w, dt in zip(self.engine, self._dt):
+                interp = interpolation_matrix((dt - self._node_centre) / self._node_half, m)
+                gram = w.inner(interp)
+                gram_products.append(np.ascontiguousarray(0.5 * (gram + gram.T)))
+                data_products.append(np.ascontiguousarray(w.inner(interp, w.pulsar.residuals)))
+            self._node_products[m] = (node_dt, np.array(data_products), np.array(gram_products))
+        return self._node_products[m]
+
+    def _direct_products(self, _m, ncol, omega0, kappa_e, amp0, omega_p, kappa_p, amp_p):
+        """``dvec``, ``gmat`` from the basis series at every TOA, whitened by the noise engine's operator."""
+        n_w = omega0.shape[0]
+        dvec = np.empty((n_w, self.n_pulsars, ncol))
+        gmat = np.empty((n_w, self.n_pulsars, ncol, ncol))
         g = np.empty((n_w, ncol, ncol))
         parallel = n_w * self._mean_toas >= _PARALLEL_BASIS
         basis_kernel = _basis_parallel if parallel else _basis_serial
@@ -526,16 +727,11 @@ class Likelihood:
                          np.ascontiguousarray(kappa_p[:, p]), np.ascontiguousarray(amp_p[:, p]),
                          self._t_max[p], basis)
             flat = basis.reshape(n_w * ncol, -1)
-            dvec[:, p, :ncol] = (flat @ self._weighted_data[p]).reshape(n_w, ncol)
+            dvec[:, p] = (flat @ self._weighted_data[p]).reshape(n_w, ncol)
             whitened = (flat @ self._operator[p].T).reshape(n_w, ncol, -1)
             gram_kernel(basis, self._inv_var[p], whitened, g)
-            gmat[:, p, :ncol, :ncol] = g
-        if same and self.pulsar_term:
-            dvec[:, :, 2:] = dvec[:, :, :2]
-            gmat[:, :, 2:, 2:] = gmat[:, :, :2, :2]
-            gmat[:, :, :2, 2:] = gmat[:, :, :2, :2]
-            gmat[:, :, 2:, :2] = gmat[:, :, :2, :2]
-        return fplus, fcross, dvec, gmat
+            gmat[:, p] = g
+        return dvec, gmat
 
     def physical(self, theta):
         """Sampler coordinates (W, 8) -> dict of physical arrays (rad, Hz, Msun, strain)."""

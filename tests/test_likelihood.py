@@ -35,6 +35,15 @@ def _random_parameters(rng, n):
                  polarization=rng.uniform(0, np.pi), phase=rng.uniform(0, np.pi)) for _ in range(n)]
 
 
+def _chirp_mass_merging_after(gw_frequency, seconds):
+    """Chirp mass [Msun] of a binary at ``gw_frequency`` that merges after ``seconds``: inverts
+    τ = (5/256) (G Mc/c³)^(-5/3) (π f)^(-8/3) (Peters 1964 with the usual quadrupole chirp)."""
+    from cwsearch.constants import SOLAR_MASS_SECONDS
+
+    mc_time = (5.0 / 256.0 / seconds * (np.pi * gw_frequency) ** (-8 / 3)) ** (3 / 5)
+    return mc_time / SOLAR_MASS_SECONDS
+
+
 def _from_scratch(like, par, pulsar_phases):
     """(d|s) − ½(s|s) with s rebuilt by waveform.residuals, inner products from the noise engine."""
     ds = ss = 0.0
@@ -63,12 +72,25 @@ def test_projection_fast_path_equals_from_scratch(small_array, evolution, pulsar
         assert abs(fast - ref) <= 1e-10 * max(scale, abs(ref))
 
 
+@pytest.mark.parametrize("shape_path", ["direct", "nodes"])
 @pytest.mark.parametrize("evolution", ["full", "pulsar-frequency", "monochromatic"])
-def test_batched_shape_path_equals_exact_cache(small_array, evolution):
-    # The numba/BLAS batch path against waveform.residual_basis + noise-engine inner products.
-    like = Likelihood(small_array, NOISE, evolution=evolution)
+def test_batched_shape_path_equals_exact_cache(small_array, evolution, shape_path):
+    # The numba/BLAS batch paths (series at every TOA, or at Chebyshev nodes with cached
+    # interpolation products) against waveform.residual_basis + noise-engine inner products.
+    # The last two shapes chirp hard (merging 2.4 and 0.5 spans after the last TOA).
+    like = Likelihood(small_array, NOISE, evolution=evolution, shape_path=shape_path)
     rng = np.random.default_rng(6)
     pars = _random_parameters(rng, 5) + [dict(ra=0.3, dec=0.2, gw_frequency=3e-8, chirp_mass=1e10)]
+    span = small_array.end - small_array.reference_time
+    for to_merger in (2.4, 0.5):
+        f = 2e-8
+        pars.append(dict(ra=2.0, dec=-0.5, gw_frequency=f, chirp_mass=_chirp_mass_merging_after(
+            f, (1 + to_merger) * span)))
+    if shape_path == "nodes":
+        f = np.array([p["gw_frequency"] for p in pars])
+        chirp_rate = 1.0 / waveform.time_to_coalescence(np.array([p["chirp_mass"] for p in pars]), f)
+        nodes = like._node_count(np.pi * f, chirp_rate if evolution == "full" else 0.0 * f)
+        assert np.all(nodes > 0)           # the interpolated path is the one under test
     fplus, fcross, dvec, gmat = like.shape_batch([p["ra"] for p in pars], [p["dec"] for p in pars],
                                                  [p["gw_frequency"] for p in pars],
                                                  [p["chirp_mass"] for p in pars])
