@@ -42,22 +42,15 @@ def _inside(summary, name, value):
     return lo <= value <= hi
 
 
-def test_loud_injection_is_recovered(tmp_path, base_array):
-    # One fixed noise realisation. For a calibrated posterior a single 90 % interval misses the truth in
-    # 10 % of realisations; the first realisation tried (seed 32) put the true frequency at the 99.7th
-    # percentile (free pulsar phases absorb part of the signal and widen such fluctuations), so this
-    # test uses seed 34 and tests/test_sampling.py checks calibration on problems with known answers.
+def test_loud_injection_outputs(tmp_path, base_array):
     binary = _injection(base_array, 15.0)
-    array = base_array.with_residuals(simulate_residuals(base_array, seed=34, binaries=[binary]))
+    array = base_array.with_residuals(simulate_residuals(base_array, seed=32, binaries=[binary]))
     options = FollowupOptions(frequency=binary.gw_frequency * 1.01, ra=np.degrees(binary.ra) + 2,
                               dec=np.degrees(binary.dec) - 2, **FAST)
     result = run_followup(array, tmp_path, options, noise=WHITE, seed=3, progress=False)
     s = result.summary
-    assert _inside(s, "frequency", binary.gw_frequency)
-    assert _inside(s, "ra", np.degrees(binary.ra))
-    assert _inside(s, "dec", np.degrees(binary.dec))
-    assert _inside(s, "strain", binary.strain)
-    # ρ = 15 is decisive: ln B far above the noise-level values
+    # ρ = 15 is decisive: ln B far above the noise-level values (ln B ≈ ρ²/2 less an Occam
+    # factor of a few tens at most; common practice, no source)
     assert s["log_bayes_factor"] - 3 * s["log_bayes_factor_error"] > 20
     folder = tmp_path / "followup"
     for name in ("posterior.ecsv", "summary.json", "corner.png", "sky.png", "trace.png", "checkpoint.npz"):
@@ -73,6 +66,31 @@ def test_loud_injection_is_recovered(tmp_path, base_array):
     for key in ("log_bayes_factor", "log_bayes_factor_error", "autocorrelation_time", "effective_sample_size",
                 "swap_acceptance", "wall_time", "seed"):
         assert key in summary
+
+
+NOISE_SEEDS = (101, 102, 103, 104, 105)      # fixed before the first run; never changed to pass
+
+
+def test_loud_injections_recovered_at_the_calibrated_rate(tmp_path, base_array):
+    # Issue 4: a loud injection (ρ = 15) gives 90 % intervals that contain the truth. For a calibrated
+    # posterior each central 90 % interval misses in 10 % of noise realisations, so over 5 realisations
+    # × 4 parameters (frequency, ra, dec, strain) the misses are about Binomial(20, 0.1) (mean 2;
+    # treating the intervals as independent, P(misses ≥ 6) = 0.011 by scipy.stats.binom.sf(5, 20, 0.1)).
+    # Each run starts away from the truth (1 % in frequency, 2° in ra and dec).
+    from scipy import stats
+
+    binary = _injection(base_array, 15.0)
+    truths = {"frequency": binary.gw_frequency, "ra": np.degrees(binary.ra), "dec": np.degrees(binary.dec),
+              "strain": binary.strain}
+    options = FollowupOptions(frequency=binary.gw_frequency * 1.01, ra=truths["ra"] + 2, dec=truths["dec"] - 2,
+                              plots=False, **FAST)
+    misses = []
+    for seed in NOISE_SEEDS:
+        array = base_array.with_residuals(simulate_residuals(base_array, seed=seed, binaries=[binary]))
+        s = run_followup(array, tmp_path / str(seed), options, noise=WHITE, seed=seed, progress=False).summary
+        misses += [(seed, name) for name, value in truths.items() if not _inside(s, name, value)]
+        assert s["log_bayes_factor"] > 20                      # detected in every realisation
+    assert stats.binom.sf(len(misses) - 1, 4 * len(NOISE_SEEDS), 0.1) > 0.01, misses
 
 
 def test_noise_only_bayes_factor_not_positive(tmp_path, base_array):
