@@ -13,14 +13,16 @@ and fills its run folder (DESIGN.md §11)::
 
 Stage skipping. Each stage's *input hash* is the SHA-256 of: the stage name,
 the cwsearch version, the dataset checksum, the stage's resolved options,
-the noise settings, the stage's seed, and the *output hashes* of the stages
-it reads (plus the catalogue's checksum for the host stage). When a stage
+the noise settings, the stage's seed, and the hashes of the *products* of
+the stages it reads (scan: ``candidates.ecsv``; follow-up: the
+``posterior.ecsv`` files; summaries with wall times are left out), plus the
+catalogue's checksum for the host stage. When a stage
 finishes, ``STAGE/.stage.json`` records its input hash, the hash of the files
 it wrote, its summary and its times. A later run skips a stage whose
 recorded input hash matches and whose files are unchanged; ``force`` reruns
 it from an empty folder. Because a downstream stage hashes its upstream
-*outputs*, re-running an upstream stage that produces the same files does
-not invalidate the rest.
+*products*, re-running an upstream stage that produces the same products
+(same seed, same options) does not invalidate the rest.
 
 Resume. ``.stage.json`` is removed before a stage starts and written only
 after the stage has finished (all files are written atomically), so a run
@@ -94,6 +96,9 @@ class StageSpec:
     upstream: tuple = ()
     extra_inputs: Callable | None = None
     available: Callable | None = None  # () -> None, or the reason the stage cannot run here
+    #: glob patterns (relative to the stage folder) of the files later stages read; their hash, not the
+    #: whole folder's (summaries hold wall times), is what a downstream stage's input hash includes
+    products: tuple = ()
 
 
 @dataclass
@@ -203,6 +208,20 @@ def folder_hash(folder) -> str:
                 continue
             h.update(str(rel.as_posix()).encode() + b"\0")
             h.update(file_checksum(path).encode() + b"\n")
+    return h.hexdigest()
+
+
+def product_hash(folder, patterns) -> str:
+    """SHA-256 over the relative paths and bytes of the files matching ``patterns`` (globs relative
+    to ``folder``); the whole :func:`folder_hash` when no pattern is given."""
+    if not patterns:
+        return folder_hash(folder)
+    folder = Path(folder)
+    files = sorted({p for pattern in patterns for p in folder.glob(pattern) if p.is_file()})
+    h = hashlib.sha256()
+    for path in files:
+        h.update(str(path.relative_to(folder).as_posix()).encode() + b"\0")
+        h.update(file_checksum(path).encode() + b"\n")
     return h.hexdigest()
 
 
@@ -362,7 +381,7 @@ def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: C
             "options": config.stage_config(spec.name),
             "noise": noise,
             "seed": ctx.seed,
-            "upstream": {u: records[u].get("output_hash") for u in spec.upstream},
+            "upstream": {u: records[u].get("product_hash", records[u].get("output_hash")) for u in spec.upstream},
         }
         if spec.extra_inputs is not None:
             try:
@@ -404,7 +423,8 @@ def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: C
             continue
         seconds = time.perf_counter() - t0
         record = {"stage": spec.name, "status": status, "reason": reason, "input_hash": input_hash,
-                  "output_hash": folder_hash(stage_dir), "started": started, "finished": _now(),
+                  "output_hash": folder_hash(stage_dir), "product_hash": product_hash(stage_dir, spec.products),
+                  "started": started, "finished": _now(),
                   "seconds": round(seconds, 3), "seed": ctx.seed, "cwsearch": __version__,
                   "inputs": inputs, "summary": _jsonable(summary)}
         write_json_atomic(stage_dir / STAGE_FILE, record)
@@ -671,8 +691,9 @@ def format_headline(head: dict) -> str:
 def default_stages():
     """The four stages of the job, wired to the stage modules."""
     return [
-        StageSpec("scan", _run_scan, available=_availability("scan")),
-        StageSpec("followup", _run_followup, upstream=("scan",), available=_availability("followup")),
+        StageSpec("scan", _run_scan, available=_availability("scan"), products=("candidates.ecsv",)),
+        StageSpec("followup", _run_followup, upstream=("scan",), available=_availability("followup"),
+                  products=("posterior.ecsv", "*/posterior.ecsv")),
         StageSpec("hosts", _run_hosts, upstream=("followup",), extra_inputs=_hosts_inputs,
                   available=_availability("hosts")),
         StageSpec("limits", _run_limits, available=_availability("limits")),
@@ -839,4 +860,4 @@ def _run_limits(ctx):
 
 __all__ = ["run_pipeline", "run_stages", "StageSpec", "StageContext", "StageReport", "PipelineResult",
            "NothingToDo", "StageUnavailable", "headline_result", "format_headline", "stage_seed",
-           "folder_hash", "canonical_hash", "default_stages", "package_versions"]
+           "folder_hash", "product_hash", "canonical_hash", "default_stages", "package_versions"]

@@ -129,6 +129,25 @@ def test_force_one_stage(tmp_path):
     assert calls.log == ["scan"]
 
 
+def test_forced_stage_with_new_wall_times_keeps_dependants(tmp_path):
+    # A rerun writes a different summary (wall times) but the same products: later stages stay valid
+    # (the summary is not among the scan's declared products; common practice, no source).
+    calls, clock = Calls(), iter(range(100))
+    specs = _dummy_specs(calls)
+
+    def timed_scan(ctx, inner=specs[0].run):
+        (ctx.stage_dir / "summary.json").write_text(json.dumps({"seconds": next(clock)}))
+        return inner(ctx)
+
+    specs[0] = StageSpec("scan", timed_scan, products=("out.txt",))
+    cfg = _config(tmp_path)
+    _run(cfg, specs)
+    calls.log.clear()
+    status = _run(cfg, specs, force=["scan"])
+    assert status == {"scan": "ran", "followup": "skipped", "hosts": "skipped", "limits": "skipped"}
+    assert calls.log == ["scan"]
+
+
 def test_force_all_and_bad_force(tmp_path):
     calls = Calls()
     cfg = _config(tmp_path)
