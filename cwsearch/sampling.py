@@ -14,7 +14,12 @@
   including ``kill -9``, repeats exactly the iterations after the last
   checkpoint, with the same random numbers.
 * **Stopping.** Until the effective sample size of the T=1 chain after
-  burn-in reaches a target, or an iteration or wall-time cap.
+  burn-in reaches a target, or an iteration or wall-time cap. The target
+  only counts once the ladder adaptation is over and the burn-in covers it
+  (the walkers start from the prior or a rough guess; before that the
+  chain is not stationary and its autocorrelation time is underestimated),
+  and once the T=1 log-likelihood after burn-in shows no drift between
+  its two halves (:func:`stationary`).
 * **Evidence.** Thermodynamic integration ``ln Z = ∫₀¹ ⟨ln L⟩_β dβ`` over the
   final ladder (trapezoid), with an error from the ladder discretisation
   (full versus every-other temperature) and the Monte-Carlo error of each
@@ -242,6 +247,34 @@ def _burn_in(n, adapt_end):
     return burn if n - burn >= 8 else n // 2
 
 
+def stationary(log_likelihood, z_max=3.0):
+    """Whether the T=1 log-likelihood (iterations, walkers) has no drift: the means of the first
+    and second halves agree within ``z_max`` standard errors (a split-chain form of Geweke's 1992
+    diagnostic, from memory). Each half's standard error is ``sqrt(var · τ / size)`` with τ its
+    integrated autocorrelation time (:func:`integrated_time`), so correlated samples are not
+    over-counted. Catches an ensemble that is still climbing towards the posterior's bulk
+    (for example from a secondary mode) although its autocorrelation time already looks short."""
+    x = np.asarray(log_likelihood, dtype=float)
+    half = x.shape[0] // 2
+    if half < 4:
+        return False
+    a, b = x[:half], x[x.shape[0] - half:]
+    tau_a = float(integrated_time(a[:, :, None])[0])
+    tau_b = float(integrated_time(b[:, :, None])[0])
+    se2 = a.var() * tau_a / a.size + b.var() * tau_b / b.size
+    return bool(abs(a.mean() - b.mean()) <= z_max * np.sqrt(se2))
+
+
+def _converged(n, burn, adapt_end, tau, ess, target, log_likelihood):
+    """The stopping rule: the ESS target is reached on a chain that (1) is past the ladder-adaptation
+    phase, which the burn-in then covers entirely (samples from an adapting, not yet stationary
+    ensemble do not count), (2) is at least 10 autocorrelation times long after burn-in
+    (shorter chains underestimate τ; Sokal 1997, Goodman & Weare 2010), and (3) shows no drift
+    of its log-likelihood after burn-in (:func:`stationary`)."""
+    return bool(n > adapt_end and burn >= adapt_end and ess >= target and (n - burn) >= 10 * np.max(tau)
+                and stationary(log_likelihood[burn:n]))
+
+
 def _diagnostics(chain_t1, mean_logl, n, burn, betas):
     post = chain_t1[burn:n]
     if post.shape[0] < 8:
@@ -377,7 +410,7 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
                 swap = float(np.mean(sampler.tswap_acceptance_fraction)) if ntemps > 1 else float("nan")
                 bar.set_postfix_str(f"ESS {ess:.0f}/{settings.ess:.0f}  swap {swap:.2f}  "
                                     f"max lnL {logl_t1[:n].max():.1f}")
-                if ess >= settings.ess and (n - burn) >= 10 * np.max(tau):
+                if _converged(n, burn, adapt_end, tau, ess, settings.ess, logl_t1):
                     stopped_by = "ess"
                     break
     if checkpoint is not None and n > 0:
@@ -404,5 +437,5 @@ def _exists(path):
     return Path(path).exists()
 
 
-__all__ = ["load_ptemcee", "VectorisedPool", "integrated_time", "thermodynamic_log_evidence",
+__all__ = ["load_ptemcee", "VectorisedPool", "integrated_time", "stationary", "thermodynamic_log_evidence",
            "SamplerSettings", "SamplerResult", "run_sampler"]

@@ -2,7 +2,8 @@
 
 Check values: closed-form evidences of Gaussian problems (Gaussian integrals,
 common practice), the autocorrelation time of an AR(1) process
-τ = (1 + ρ)/(1 − ρ) (Sokal 1997 lecture notes, from memory), numpy's own
+τ = (1 + ρ)/(1 − ρ) (Sokal 1997 lecture notes, from memory), normal tail probabilities
+(scipy.stats.norm) for the drift check, numpy's own
 attribute set, and a run without interruption as the reference for a resumed one.
 """
 
@@ -16,7 +17,7 @@ import pytest
 
 from cwsearch.errors import InputError
 from cwsearch.sampling import (SamplerSettings, VectorisedPool, integrated_time, load_ptemcee, run_sampler,
-                               thermodynamic_log_evidence)
+                               stationary, thermodynamic_log_evidence)
 
 BOX = 5.0
 DIM = 2
@@ -135,3 +136,41 @@ def test_resume_refuses_a_checkpoint_from_other_settings(tmp_path):
     _toy_run(tmp_path, 50)
     with pytest.raises(InputError, match="checkpoint"):
         _toy_run(tmp_path, 50, resume=True, walkers=18)
+
+
+def _ar1_ensemble(rng, iterations, walkers, rho):
+    x = np.empty((iterations, walkers))
+    x[0] = rng.standard_normal(walkers)
+    noise = rng.standard_normal((iterations, walkers)) * np.sqrt(1 - rho**2)
+    for i in range(1, iterations):
+        x[i] = rho * x[i - 1] + noise[i]
+    return x
+
+
+def test_drift_check_flags_a_climbing_chain_and_rarely_a_stationary_one():
+    from scipy import stats
+
+    # Stationary AR(1) ensembles (ρ = 0.8, τ = 9; Sokal 1997, from memory), halves of 200 iterations ≈ 22 τ.
+    # The check compares the halves' means at 3 standard errors (nominal false-alarm rate 2Φ(−3) = 0.27 %);
+    # the windowed τ of a finite half is biased low (Sokal), which raises the rate. A false alarm only delays
+    # stopping by one check; the check must stay at least as permissive as a 2-sigma rule (2Φ(−2) = 4.6 %).
+    rng = np.random.default_rng(21)
+    n = 200
+    flagged = sum(not stationary(_ar1_ensemble(rng, 400, 16, 0.8)) for _ in range(n))
+    assert flagged / n < 2 * stats.norm.sf(2.0)
+    # The same ensemble climbing by 1.5 of its standard deviations over the run (a chain still leaving a
+    # secondary mode): the halves differ by 0.75 σ, ~16 standard errors of the difference for 16 walkers.
+    x = _ar1_ensemble(rng, 400, 16, 0.8) + np.linspace(0.0, 1.5, 400)[:, None]
+    assert not stationary(x)
+
+
+def test_sampler_does_not_stop_before_the_adaptation_is_over():
+    # The ESS target (50) is met by a short chain long before the 200 adaptation iterations end; samples from
+    # the adapting phase must not count (burn-in covers the adaptation; common practice, no source).
+    settings = SamplerSettings(walkers=16, temperatures=3, max_temperature=100, ess=50, max_iterations=2000,
+                               adapt_iterations=200, check_every=50, checkpoint_every=10**6)
+    p0 = np.random.default_rng(8).uniform(-BOX, BOX, (3, 16, DIM))
+    result = run_sampler(box_prior, unit_gaussian, p0, settings, seed=9, progress=False)
+    assert result.stopped_by == "ess"
+    assert result.iterations > settings.adapt_iterations
+    assert result.burn_in >= settings.adapt_iterations
