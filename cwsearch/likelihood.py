@@ -249,15 +249,19 @@ def _nodes_one(p, earth, node_dt, t_max, omega_p, kappa_p, amp_p, data_products,
 
 
 @njit(cache=True, parallel=True)
-def _nodes_parallel(earth, node_dt, t_max, omega_p, kappa_p, amp_p, data_products, gram_products, dvec, gmat):
-    for p in prange(data_products.shape[0]):
-        _nodes_one(p, earth, node_dt, t_max, omega_p, kappa_p, amp_p, data_products, gram_products, dvec, gmat)
+def _nodes_parallel(pulsars, earth, node_dt, t_max, omega_p, kappa_p, amp_p, data_products, gram_products,
+                    dvec, gmat):
+    for q in prange(pulsars.shape[0]):
+        _nodes_one(pulsars[q], earth, node_dt, t_max, omega_p, kappa_p, amp_p, data_products, gram_products,
+                   dvec, gmat)
 
 
 @njit(cache=True)
-def _nodes_serial(earth, node_dt, t_max, omega_p, kappa_p, amp_p, data_products, gram_products, dvec, gmat):
-    for p in range(data_products.shape[0]):
-        _nodes_one(p, earth, node_dt, t_max, omega_p, kappa_p, amp_p, data_products, gram_products, dvec, gmat)
+def _nodes_serial(pulsars, earth, node_dt, t_max, omega_p, kappa_p, amp_p, data_products, gram_products,
+                  dvec, gmat):
+    for q in range(pulsars.shape[0]):
+        _nodes_one(pulsars[q], earth, node_dt, t_max, omega_p, kappa_p, amp_p, data_products, gram_products,
+                   dvec, gmat)
 
 
 @njit(cache=True, inline="always")
@@ -527,7 +531,8 @@ class Likelihood:
         error stays below :data:`NODE_TOLERANCE` of the amplitude; walkers
         that would need more than :data:`NODE_LEVELS` offers take the direct
         path. ``"auto"`` (default) uses nodes where they cost less than the
-        direct path (m² below about N_TOA × rank of the noise model).
+        direct path, pulsar by pulsar (m² below about N_TOA × rank of the
+        pulsar's noise model).
 
     Pulsar distances are held at their catalogue values; with the pulsar
     phases free they only set the pulsar-term frequency and amplitude in the
@@ -571,9 +576,11 @@ class Likelihood:
         first = min(float(dt.min()) for dt in self._dt)
         last = max(float(dt.max()) for dt in self._dt)
         self._node_centre, self._node_half = 0.5 * (first + last), max(0.5 * (last - first), 1.0)
-        rank = float(np.mean([op.shape[0] for op in self._operator]))
-        cap = {"direct": 0, "nodes": NODE_LEVELS[-1], "auto": np.sqrt(self._mean_toas * (rank + 19.0))}[shape_path]
-        self._node_levels = np.array([m for m in NODE_LEVELS if m <= cap], dtype=int)
+        # per pulsar, the most nodes worth using: a walker costs about 8 m² flops at m nodes and
+        # 8 N (rank + 19) on the TOA-by-TOA path (N TOAs; the 19 stands for the sines and cosines)
+        worth = np.array([np.sqrt(dt.shape[0] * (op.shape[0] + 19.0)) for dt, op in zip(self._dt, self._operator)])
+        self._node_limit = {"direct": 0.0 * worth, "nodes": np.full(self.n_pulsars, np.inf), "auto": worth}[shape_path]
+        self._node_levels = np.array([m for m in NODE_LEVELS if m <= self._node_limit.max()], dtype=int)
         self._node_bandwidth = np.array([largest_bandwidth(m) for m in self._node_levels])
         self._node_products = {}
 
@@ -647,8 +654,14 @@ class Likelihood:
         for m in np.unique(nodes):
             pick = np.flatnonzero(nodes == m)
             terms = (omega0[pick], kappa_e[pick], amp0[pick], omega_p[pick], kappa_p[pick], amp_p[pick])
-            products = self._direct_products if m == 0 else self._nodes_products
-            dvec[pick, :, :ncol], gmat[pick, :, :ncol, :ncol] = products(int(m), ncol, *terms)
+            sub_dvec = np.empty((pick.size, self.n_pulsars, ncol))
+            sub_gmat = np.empty((pick.size, self.n_pulsars, ncol, ncol))
+            at_nodes = self._node_limit >= m if m > 0 else np.zeros(self.n_pulsars, dtype=bool)
+            if at_nodes.any():
+                self._nodes_products(int(m), np.flatnonzero(at_nodes), *terms, sub_dvec, sub_gmat)
+            if not at_nodes.all():
+                self._direct_products(np.flatnonzero(~at_nodes), *terms, sub_dvec, sub_gmat)
+            dvec[pick, :, :ncol], gmat[pick, :, :ncol, :ncol] = sub_dvec, sub_gmat
         if same and self.pulsar_term:
             dvec[:, :, 2:] = dvec[:, :, :2]
             gmat[:, :, 2:, 2:] = gmat[:, :, :2, :2]
@@ -680,47 +693,45 @@ class Likelihood:
             out[fits] = m
         return out
 
-    def _nodes_products(self, m, ncol, omega0, kappa_e, amp0, omega_p, kappa_p, amp_p):
-        """``dvec``, ``gmat`` from the basis series at m Chebyshev nodes and the cached
-        per-pulsar ``Lᵀ C⁻¹ d`` and ``Lᵀ C⁻¹ L`` (numba, parallel over pulsars:
-        small matrix products inside threaded BLAS stall when other work shares the cores)."""
+    def _nodes_products(self, m, pulsars, omega0, kappa_e, amp0, omega_p, kappa_p, amp_p, dvec, gmat):
+        """Fill ``dvec``, ``gmat`` of ``pulsars`` from the basis series at m Chebyshev nodes and the
+        cached per-pulsar ``Lᵀ C⁻¹ d`` and ``Lᵀ C⁻¹ L`` (numba, parallel over pulsars: small
+        matrix products inside threaded BLAS stall when other work shares the cores)."""
         node_dt, data_products, gram_products = self._interpolation_products(m)
         n_w = omega0.shape[0]
-        dvec = np.empty((n_w, self.n_pulsars, ncol))
-        gmat = np.empty((n_w, self.n_pulsars, ncol, ncol))
         t_max = float(np.max(np.abs(node_dt)))
         earth = np.empty((n_w, 2, m))
         _earth_at_nodes(node_dt, t_max, omega0, kappa_e, amp0, earth)
-        kernel = _nodes_parallel if n_w * m * self.n_pulsars >= _PARALLEL_NODES else _nodes_serial
-        kernel(earth, node_dt, t_max, np.ascontiguousarray(omega_p), np.ascontiguousarray(kappa_p),
+        kernel = _nodes_parallel if n_w * m * pulsars.size >= _PARALLEL_NODES else _nodes_serial
+        kernel(pulsars, earth, node_dt, t_max, np.ascontiguousarray(omega_p), np.ascontiguousarray(kappa_p),
                np.ascontiguousarray(amp_p), data_products, gram_products, dvec, gmat)
-        return dvec, gmat
 
     def _interpolation_products(self, m):
         """Node offsets from the reference time (m,) and per pulsar ``Lᵀ C⁻¹ d`` (m,) and
         ``Lᵀ C⁻¹ L`` (m, m) through the noise engine, L the pulsar's interpolation matrix
-        (built once per m)."""
+        (built once per m, for the pulsars where m nodes are worth using; zeros elsewhere)."""
         if m not in self._node_products:
             node_dt = self._node_centre + self._node_half * chebyshev_points(m)
-            data_products, gram_products = [], []
-            for w, dt in zip(self.engine, self._dt):
-                interp = interpolation_matrix((dt - self._node_centre) / self._node_half, m)
-                gram = w.inner(interp)
-                gram_products.append(np.ascontiguousarray(0.5 * (gram + gram.T)))
-                data_products.append(np.ascontiguousarray(w.inner(interp, w.pulsar.residuals)))
-            self._node_products[m] = (node_dt, np.array(data_products), np.array(gram_products))
+            data_products = np.zeros((self.n_pulsars, m))
+            gram_products = np.zeros((self.n_pulsars, m, m))
+            for p, (w, dt) in enumerate(zip(self.engine, self._dt)):
+                if self._node_limit[p] >= m:
+                    interp = interpolation_matrix((dt - self._node_centre) / self._node_half, m)
+                    gram = w.inner(interp)
+                    gram_products[p] = 0.5 * (gram + gram.T)
+                    data_products[p] = w.inner(interp, w.pulsar.residuals)
+            self._node_products[m] = (node_dt, data_products, gram_products)
         return self._node_products[m]
 
-    def _direct_products(self, _m, ncol, omega0, kappa_e, amp0, omega_p, kappa_p, amp_p):
-        """``dvec``, ``gmat`` from the basis series at every TOA, whitened by the noise engine's operator."""
-        n_w = omega0.shape[0]
-        dvec = np.empty((n_w, self.n_pulsars, ncol))
-        gmat = np.empty((n_w, self.n_pulsars, ncol, ncol))
+    def _direct_products(self, pulsars, omega0, kappa_e, amp0, omega_p, kappa_p, amp_p, dvec, gmat):
+        """Fill ``dvec``, ``gmat`` of ``pulsars`` from the basis series at every TOA, whitened by the
+        noise engine's operator."""
+        n_w, ncol = omega0.shape[0], dvec.shape[2]
         g = np.empty((n_w, ncol, ncol))
         parallel = n_w * self._mean_toas >= _PARALLEL_BASIS
         basis_kernel = _basis_parallel if parallel else _basis_serial
         gram_kernel = _gram_parallel if parallel else _gram_serial
-        for p in range(self.n_pulsars):
+        for p in pulsars:
             dt = self._dt[p]
             basis = np.empty((n_w, ncol, dt.shape[0]))
             basis_kernel(dt, omega0, kappa_e, amp0, np.ascontiguousarray(omega_p[:, p]),
@@ -731,7 +742,6 @@ class Likelihood:
             whitened = (flat @ self._operator[p].T).reshape(n_w, ncol, -1)
             gram_kernel(basis, self._inv_var[p], whitened, g)
             gmat[:, p] = g
-        return dvec, gmat
 
     def physical(self, theta):
         """Sampler coordinates (W, 8) -> dict of physical arrays (rad, Hz, Msun, strain)."""

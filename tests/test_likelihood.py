@@ -105,6 +105,20 @@ def test_batched_shape_path_equals_exact_cache(small_array, evolution, shape_pat
             cache.dvec / dscale).max())
 
 
+def test_mixed_paths_per_pulsar_equal_exact_cache(small_array):
+    # With TOA counts that differ between pulsars, "auto" takes the node path for some pulsars and the
+    # TOA-by-TOA path for others within one batch; here pulsars 0 and 2 use nodes, 1 and 3 not.
+    like = Likelihood(small_array, NOISE, shape_path="nodes")
+    like._node_limit = np.array([np.inf, 0.0, np.inf, 0.0])
+    par = dict(ra=0.7, dec=0.4, gw_frequency=1.1e-8, chirp_mass=3e8)
+    _, _, dvec, gmat = like.shape_batch([par["ra"]], [par["dec"]], [par["gw_frequency"]], [par["chirp_mass"]])
+    cache = like.shape_cache(**par)
+    scale = np.sqrt(np.abs(np.einsum("pii->pi", cache.gmat)))
+    np.testing.assert_allclose(gmat[0] / scale[:, :, None] / scale[:, None, :],
+                               cache.gmat / scale[:, :, None] / scale[:, None, :], rtol=0, atol=1e-9)
+    np.testing.assert_allclose(dvec[0] / scale, cache.dvec / scale, rtol=0, atol=1e-9 * np.abs(cache.dvec / scale).max())
+
+
 def test_batch_equals_marginal_projection(small_array):
     # The full sampler path (batch) and the cached projection path with marginalisation agree.
     like = Likelihood(small_array, NOISE)
