@@ -46,6 +46,18 @@ def dataset(tmp_path_factory):
     return folder
 
 
+def fill_until_full(path: Path):
+    """Write ``path/filler`` until the file system says ENOSPC."""
+    try:
+        with open(path / "filler", "wb") as fh:
+            while True:
+                fh.write(b"\0" * 1024)
+                fh.flush()
+                os.fsync(fh.fileno())
+    except OSError as exc:
+        assert exc.errno == errno.ENOSPC
+
+
 def tree(folder, *, hidden=True):
     """{relative path: sha256} of the files under ``folder``."""
     folder = Path(folder)
@@ -264,14 +276,7 @@ def test_full_disk(dataset, tmp_path, capsys, monkeypatch):
         mounted = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=16k", "tmpfs", str(target)],
                                  capture_output=True).returncode == 0
     if mounted:
-        try:
-            with open(target / "filler", "wb") as fh:
-                while True:
-                    fh.write(b"\0" * 1024)
-                    fh.flush()
-                    os.fsync(fh.fileno())
-        except OSError as exc:
-            assert exc.errno == errno.ENOSPC
+        fill_until_full(target)
     else:
         import builtins
 

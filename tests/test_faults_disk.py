@@ -30,7 +30,7 @@ import pytest
 
 from cwsearch import cli, fileio
 from cwsearch.pipeline import read_record
-from tests.test_faults import assert_no_half_written, stage_available, tree
+from tests.test_faults import assert_no_half_written, fill_until_full, stage_available, tree
 
 ROOT = os.geteuid() == 0
 NOISE = ["--red-components", "5"]
@@ -100,18 +100,6 @@ def _mount(path: Path, options: str) -> bool:
                           capture_output=True).returncode == 0
 
 
-def _fill(path: Path):
-    """Write until the file system says ENOSPC."""
-    try:
-        with open(path / "filler", "wb") as fh:
-            while True:
-                fh.write(b"\0" * 4096)
-                fh.flush()
-                os.fsync(fh.fileno())
-    except OSError as exc:
-        assert exc.errno == errno.ENOSPC
-
-
 @contextlib.contextmanager
 def _unwritable(folder: Path, how: str, seed_run: Path | None):
     """``folder`` made read-only (``how='ro'``) or full (``how='full'``), holding a copy of
@@ -125,7 +113,7 @@ def _unwritable(folder: Path, how: str, seed_run: Path | None):
         if seed_run is not None:
             shutil.copytree(seed_run, folder / "run")
         if how == "full":
-            _fill(folder)
+            fill_until_full(folder)
         elif mounted:
             subprocess.run(["mount", "-o", "remount,ro", str(folder)], check=True, capture_output=True)
         else:
@@ -251,7 +239,7 @@ def test_numba_cache_on_a_full_disk(inputs, tmp_path):
     if not _mount(cache, "size=64k"):
         pytest.skip("cannot mount a tmpfs here")
     try:
-        _fill(cache)
+        fill_until_full(cache)
         out = tmp_path / "out"
         before = tree(inputs["data"])
         env = dict(os.environ, NUMBA_CACHE_DIR=str(cache / "numba"), NUMBA_NUM_THREADS="1")
