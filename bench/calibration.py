@@ -17,7 +17,9 @@ residuals replaced by simulations from :func:`cwsearch.simulate.simulate_residua
    difference from p.
 2. **Posterior coverage** (``--posterior-injections``, default 50): injections
    drawn from the sampling prior, each followed up with the tempered sampler
-   (:mod:`cwsearch.sampling`) on the fast likelihood
+   (:mod:`cwsearch.sampling`, with the follow-up stage's default walkers,
+   temperature ladder and adaptation, walkers started from the prior, ESS
+   target 300, ``--sampler-seconds`` cap) on the fast likelihood
    (:mod:`cwsearch.likelihood`); the credible level of the true value
    (fraction of posterior samples below it) must be uniform: P–P plot for
    frequency, sky position (credible level of the sky region more probable
@@ -322,9 +324,14 @@ def _sky_level(sample_ra, sample_dec, ra, dec, max_samples=2000):
     return float(np.mean(density > at_truth))
 
 
-def posterior_calibration(n_injections=50, seed=3, *, ess=300.0, walkers=32, temperatures=6, progress=True,
+def posterior_calibration(n_injections=50, seed=3, *, ess=300.0, walkers=None, temperatures=None, progress=True,
                           max_time=90.0, partial=None):
-    """P-P test of the follow-up posterior (see the module docstring)."""
+    """P-P test of the follow-up posterior (see the module docstring).
+
+    The sampler runs with the follow-up stage's own ladder and adaptation (walkers, temperatures,
+    maximum temperature and adaptation iterations of :class:`cwsearch.followup.FollowupOptions`,
+    unless ``walkers``/``temperatures`` are given), so the test calibrates what a user runs.
+    """
     from scipy import stats
 
     from cwsearch import followup, sampling
@@ -332,6 +339,9 @@ def posterior_calibration(n_injections=50, seed=3, *, ess=300.0, walkers=32, tem
     from cwsearch.noise import NoiseSettings, NoiseWeighting
     from cwsearch.simulate import Binary, simulate_residuals
 
+    defaults = followup.FollowupOptions()
+    walkers = defaults.walkers if walkers is None else walkers
+    temperatures = defaults.temperatures if temperatures is None else temperatures
     array = demo_array()
     noise = NoiseSettings()
     engine = NoiseWeighting(array, noise)
@@ -356,7 +366,8 @@ def posterior_calibration(n_injections=50, seed=3, *, ess=300.0, walkers=32, tem
         prior = followup.Prior(likelihood, band)
         prior.lower[4], prior.upper[4] = POSTERIOR_LOG10_STRAIN
         settings = sampling.SamplerSettings(walkers=walkers, temperatures=temperatures, ess=ess, max_time=max_time,
-                                            max_iterations=20000, adapt_iterations=300)
+                                            max_temperature=defaults.max_temperature, max_iterations=20000,
+                                            adapt_iterations=defaults.adapt_iterations)
         initial = prior.draw(np.random.default_rng(init_seq), walkers * temperatures).reshape(temperatures, walkers, 8)
         result = sampling.run_sampler(prior, likelihood.batch, initial, settings, seed=run_seq, progress=False)
         samples = result.samples()
