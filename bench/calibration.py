@@ -374,8 +374,11 @@ def posterior_calibration(n_injections=50, seed=3, *, ess=300.0, walkers=None, t
         levels["frequency"].append(float(np.mean(samples[:, 2] < truth[2])))
         levels["strain"].append(float(np.mean(samples[:, 4] < truth[4])))
         levels["sky"].append(_sky_level(samples[:, 0], np.arcsin(samples[:, 1]), ra, dec))
+        # a chain whose best point stays well below the truth's likelihood never found the main mode
         diagnostics.append({"ess": float(result.ess), "iterations": int(result.iterations),
-                            "stopped_by": result.stopped_by, "seconds": float(result.wall_time)})
+                            "stopped_by": result.stopped_by, "seconds": float(result.wall_time),
+                            "max_log_likelihood": float(result.log_likelihood.max()),
+                            "truth_log_likelihood": float(likelihood.batch(truth[None])[0])})
         if partial is not None:  # figures so far, in case a long run is stopped
             Path(partial).parent.mkdir(parents=True, exist_ok=True)
             Path(partial).write_text(json.dumps({"levels": levels, "diagnostics": diagnostics}))
@@ -389,7 +392,8 @@ def posterior_calibration(n_injections=50, seed=3, *, ess=300.0, walkers=None, t
     return {"n_injections": n_injections, "levels": levels, "ks_pvalues": ks, "plot": str(plot),
             "diagnostics": diagnostics, "band_hz": [10 ** band[0], 10 ** band[1]],
             "log10_strain_range": list(POSTERIOR_LOG10_STRAIN), "seconds": time.time() - t0,
-            "ess_target": ess, "stopped_by_time": sum(d["stopped_by"] != "ess" for d in diagnostics)}
+            "ess_target": ess, "stopped_by_time": sum(d["stopped_by"] != "ess" for d in diagnostics),
+            "below_truth": sum(d["max_log_likelihood"] < d["truth_log_likelihood"] - 2.0 for d in diagnostics)}
 
 
 def _pp_plot(levels, ks, path):
@@ -422,6 +426,8 @@ def print_posterior(res):
     print(f"\n== Posterior coverage: {res['n_injections']} injections drawn from the prior (f in "
           f"{res['band_hz'][0]:.3g}-{res['band_hz'][1]:.3g} Hz, log10 h0 in {res['log10_strain_range']}); "
           f"{res['seconds']:.0f} s; {res['stopped_by_time']} runs stopped before the ESS target {res['ess_target']:g}")
+    print(f"   runs whose best log-likelihood stayed > 2 below the truth's (main mode not found): "
+          f"{res.get('below_truth', 'n/a')}")
     for name, p in res["ks_pvalues"].items():
         v = np.array(res["levels"][name])
         print(f"   {name:9s}: KS p-value vs uniform = {p:.3f}; fraction of truths inside the 90 % central "
