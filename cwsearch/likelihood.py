@@ -561,13 +561,12 @@ class Likelihood:
         self._dt, self._inv_var, self._weighted_data, self._operator = [], [], [], []
         for w in self.engine:
             toas = w.pulsar.toas
-            n = toas.shape[0]
-            white, operator = w.whiten(np.eye(n))          # whitening operator of the noise engine
+            inv_sigma, operator = w.whitening_operator()     # whitening operator of the noise engine
             wd, ud = w.whiten(w.pulsar.residuals)
             self._dt.append(np.ascontiguousarray(toas - self.reference_time))
-            self._inv_var.append(np.ascontiguousarray(np.diag(white) ** 2))
+            self._inv_var.append(np.ascontiguousarray(inv_sigma ** 2))
             # C⁻¹ d expressed through the whitened representation: (d|x) = y·x
-            self._weighted_data.append(np.ascontiguousarray(wd * np.diag(white) - operator.T @ ud))
+            self._weighted_data.append(np.ascontiguousarray(wd * inv_sigma - operator.T @ ud))
             self._operator.append(np.ascontiguousarray(operator))
         self.n_pulsars = len(array)
         self._t_max = [float(np.max(np.abs(dt))) for dt in self._dt]

@@ -19,9 +19,9 @@ representation of :meth:`PulsarWeighting.whiten`, in which
 Examples
 --------
 >>> import numpy as np
->>> from cwsearch.simulate import invented_array
+>>> from cwsearch.simulate import invented_array, simulated_array
 >>> from cwsearch.noise import NoiseWeighting, NoiseSettings
->>> arr = invented_array(n_pulsars=3, years=10, seed=1)
+>>> arr = simulated_array(invented_array(n_pulsars=3, years=10, seed=1), seed=2)
 >>> engine = NoiseWeighting(arr, NoiseSettings(red_components=10))
 >>> w = engine[0]
 >>> r = arr[0].residuals
@@ -167,6 +167,23 @@ class PulsarWeighting:
         v = v / (self._scale if x.ndim == 1 else self._scale[:, None])
         u = solve_triangular(self._chol, v, lower=True, check_finite=False)
         return x / sig, u
+
+    def whitening_operator(self):
+        """The linear maps of :meth:`whiten` as arrays: ``(1/σ (n,), U (k, n))`` with
+        ``whiten(x) = (x/σ, U @ x)``, built without an n × n matrix.
+
+        >>> import numpy as np
+        >>> from cwsearch.simulate import invented_array
+        >>> w = NoiseWeighting(invented_array(n_pulsars=1, years=5, seed=1))[0]
+        >>> inv_sigma, op = w.whitening_operator()
+        >>> x = np.sin(np.arange(w.n_toas))
+        >>> wx, ux = w.whiten(x)
+        >>> bool(np.allclose(op @ x, ux) and np.allclose(inv_sigma * x, wx))
+        True
+        """
+        operator = solve_triangular(self._chol, self._weighted_basis_t / self._scale[:, None], lower=True,
+                                    check_finite=False)
+        return 1.0 / self.white_sigmas, operator
 
     def inner(self, x, y=None):
         """Noise-weighted inner products ``(x_i|y_j)``: scalar, vector or matrix by input shapes."""
