@@ -408,9 +408,12 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
                 burn = _burn_in(n, adapt_end)
                 tau, ess, _, _ = _diagnostics(chain, mean_logl, n, burn, sampler.betas)
                 swap = float(np.mean(sampler.tswap_acceptance_fraction)) if ntemps > 1 else float("nan")
+                done = _converged(n, burn, adapt_end, tau, ess, settings.ess, logl_t1)
+                wait = "" if done or ess < settings.ess else (
+                    "  (ladder adapting)" if n <= adapt_end else "  (not yet stationary)")
                 bar.set_postfix_str(f"ESS {ess:.0f}/{settings.ess:.0f}  swap {swap:.2f}  "
-                                    f"max lnL {logl_t1[:n].max():.1f}")
-                if _converged(n, burn, adapt_end, tau, ess, settings.ess, logl_t1):
+                                    f"max lnL {logl_t1[:n].max():.1f}{wait}")
+                if done:
                     stopped_by = "ess"
                     break
     if checkpoint is not None and n > 0:
