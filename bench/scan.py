@@ -22,7 +22,6 @@ Options: ``--pixels-ref N --freqs-ref M`` (reference sub-grid, default 3 × 2),
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import time
 
@@ -164,7 +163,7 @@ def main(argv=None):
     args = parser.parse_args(argv)
 
     from bench._array import bench_array
-    from cwsearch import fstat, scan, sky
+    from cwsearch import fstat, scan
     from cwsearch.noise import NoiseWeighting
 
     import numba

@@ -206,8 +206,6 @@ def _column_value(table, name, row, unit, default_unit):
     if not np.isfinite(value):
         return None
     if col.unit is not None:
-        import astropy.units as u
-
         return float((value * col.unit).to_value(unit))
     return float((value * default_unit).to_value(unit)) if default_unit is not None else value
 

@@ -48,9 +48,8 @@ Examples
 
 from __future__ import annotations
 
-import json
 import time
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Literal
 
@@ -471,7 +470,6 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     n_freq = frequencies.size
     span = array.span
     want_fe = options.statistic in ("fe", "both")
-    want_fp = options.statistic in ("fp", "both")
     engine = NoiseWeighting(array, noise)
     ra, dec, fplus, fcross = sky_grid(array, options.nside)
     n_pix = ra.size

@@ -20,7 +20,6 @@ import errno
 import hashlib
 import json
 import os
-import shutil
 import signal
 import subprocess
 import sys

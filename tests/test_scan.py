@@ -15,7 +15,7 @@ import pytest
 from astropy.table import Table
 from scipy import stats
 
-from cwsearch import fstat, scan
+from cwsearch import scan
 from cwsearch.noise import NoiseSettings, NoiseWeighting
 from cwsearch.scan import ScanOptions, run_scan
 from cwsearch.simulate import Binary, binary_residuals, invented_array, simulate_residuals
