@@ -14,8 +14,8 @@ Examples
 
 from __future__ import annotations
 
-from cwsearch.noise import NoiseSettings
-from cwsearch.simulate import invented_array, simulated_array
+from cwsearch.physics.noise import NoiseSettings
+from cwsearch.physics.simulate import invented_array, simulated_array
 
 #: log10 amplitude of the common process in the bench array (a background of the size seen by PTAs)
 COMMON_LOG10_AMPLITUDE = -14.6

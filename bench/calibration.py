@@ -2,7 +2,7 @@
 
 ``python -m bench.calibration`` prints measured figures (not a test). It works
 on the bundled invented demo array (``cwsearch/data/demo``) with its
-residuals replaced by simulations from :func:`cwsearch.simulate.simulate_residuals`
+residuals replaced by simulations from :func:`cwsearch.physics.simulate.simulate_residuals`
 (same TOAs, sigmas and noise model), and checks three promises:
 
 1. **Scan false-alarm probability.** ``--scan-sims`` (default 200) noise-only
@@ -10,17 +10,17 @@ residuals replaced by simulations from :func:`cwsearch.simulate.simulate_residua
    ``cwsearch demo``). For each, the best candidate (maximum Fe over
    sky × frequency) gets an *empirical* FAP from an independent reference
    set of ``--null-sims`` (default 1000) noise-only scans, ``(1+k)/(1+N)``,
-   and the *analytic* FAP ``1 − (1 − (1+F)e^−F)^N_eff`` of :mod:`cwsearch.scan`.
+   and the *analytic* FAP ``1 − (1 − (1+F)e^−F)^N_eff`` of :mod:`cwsearch.stages.scan.stage`.
    For p = 0.01, 0.05, 0.1, 0.5 it prints the fraction of scans with FAP < p
    and the binomial error ``sqrt(p(1−p)/n)`` (a calibrated FAP is uniform
    in noise: the fraction equals p). The analytic FAP's bias is the
    difference from p.
 2. **Posterior coverage** (``--posterior-injections``, default 50): injections
    drawn from the sampling prior, each followed up with the tempered sampler
-   (:mod:`cwsearch.sampling`, with the follow-up stage's default walkers,
+   (:mod:`cwsearch.inference.sampling`, with the follow-up stage's default walkers,
    temperature ladder and adaptation, walkers started from the prior, ESS
    target 300, ``--sampler-seconds`` cap) on the fast likelihood
-   (:mod:`cwsearch.likelihood`); the credible level of the true value
+   (:mod:`cwsearch.inference.likelihood`); the credible level of the true value
    (fraction of posterior samples below it) must be uniform: P–P plot for
    frequency, sky position (credible level of the sky region more probable
    than the truth, by a kernel estimate) and strain, KS test against the
@@ -67,7 +67,7 @@ DEMO_SCAN = {"nside": 8, "oversample": 2, "fmax": 1.0e-7}
 
 
 def demo_array():
-    from cwsearch.dataset import read_dataset
+    from cwsearch.data.dataset import read_dataset
 
     return read_dataset(DEMO)
 
@@ -79,8 +79,9 @@ def _binomial(fraction, p, n):
 
 # ------------------------------------------------------------------ scan FAP
 def scan_calibration(n_sims=200, n_null=1000, seed=1, progress=True):
-    from cwsearch import fstat, scan
-    from cwsearch.noise import NoiseSettings, NoiseWeighting
+    from cwsearch.physics import fstat
+    from cwsearch.stages.scan import stage as scan
+    from cwsearch.physics.noise import NoiseSettings, NoiseWeighting
 
     array = demo_array()
     noise = NoiseSettings()
@@ -90,7 +91,7 @@ def scan_calibration(n_sims=200, n_null=1000, seed=1, progress=True):
     proj = fstat.project(engine, frequencies)
     root = np.random.SeedSequence(seed)
     sky_seed, trial_seed, null_seed = root.spawn(3)
-    # the scan's own look-elsewhere correction (cwsearch.scan.Trials: N_eff(F) = N_freq x N_sky(F))
+    # the scan's own look-elsewhere correction (cwsearch.stages.scan.stage.Trials: N_eff(F) = N_freq x N_sky(F))
     trials = scan.Trials(frequencies.size, scan.effective_sky_templates(proj, fplus, fcross, sky_seed))
 
     t0 = time.time()
@@ -127,7 +128,7 @@ def scan_calibration(n_sims=200, n_null=1000, seed=1, progress=True):
 
 def _fitted_n_eff(null_max_fe):
     """N for which 1 - (1 - (1+F)e^-F)^N puts the median null maximum at probability 1/2."""
-    from cwsearch import scan
+    from cwsearch.stages.scan import stage as scan
 
     single = float(scan.fe_single_fap(np.median(null_max_fe)))
     return float(np.log(0.5) / np.log1p(-single)) if 0 < single < 1 else float("nan")
@@ -153,7 +154,7 @@ def print_scan(res):
 
 # ------------------------------------------------------------------ upper limits
 def _earth_binary(rng, ra, dec, frequency, strain):
-    from cwsearch.simulate import Binary
+    from cwsearch.physics.simulate import Binary
 
     return Binary(ra=ra, dec=dec, gw_frequency=frequency, chirp_mass=1e8, strain=strain,
                   inclination=float(np.arccos(rng.uniform(-1, 1))), polarization=float(rng.uniform(0, np.pi)),
@@ -166,7 +167,7 @@ def _random_sky(rng):
 
 def _vectors(engine, frequency, residual_sets, skies):
     """N (4,) and M (4, 4) for each residual set at its own sky position (one batched projection)."""
-    from cwsearch import fstat
+    from cwsearch.physics import fstat
 
     n_psr = len(residual_sets[0])
     sets = [np.stack([res[p] for res in residual_sets], axis=1) for p in range(n_psr)]
@@ -186,7 +187,7 @@ def _cases(array, engine, frequency, rng, n, make, chunk=50):
 
     Yields ``(nvec, mmat, info)`` per case.
     """
-    from cwsearch.simulate import simulate_residuals
+    from cwsearch.physics.simulate import simulate_residuals
 
     for start in range(0, n, chunk):
         specs = [make(rng) for _ in range(min(chunk, n - start))]
@@ -199,9 +200,9 @@ def _cases(array, engine, frequency, rng, n, make, chunk=50):
 def limit_calibration(n_cases=200, frequency=1.0e-8, seed=2, progress=True):
     from scipy import stats
 
-    from cwsearch import limits
-    from cwsearch.noise import NoiseSettings, NoiseWeighting
-    from cwsearch.progress import progress as bar
+    from cwsearch.stages.limits import stage as limits
+    from cwsearch.physics.noise import NoiseSettings, NoiseWeighting
+    from cwsearch.core.progress import progress as bar
     array = demo_array()
     noise = NoiseSettings()
     engine = NoiseWeighting(array, noise)
@@ -294,7 +295,7 @@ def print_limits(res):
 
 # ------------------------------------------------------------------ posterior coverage
 #: prior of the coverage test in sampler coordinates (ra, sin dec, log10 f, log10 Mc, log10 h0, cos i, psi, phi0):
-#: the follow-up prior (cwsearch.followup.Prior) with the frequency limited to a window of +-5 bins of
+#: the follow-up prior (cwsearch.stages.followup.stage.Prior) with the frequency limited to a window of +-5 bins of
 #: 1/T_span around 2.5e-8 Hz (the follow-up's own window) and the strain to the decade where the demo array
 #: goes from blind to clear detection, so that the test covers the regime a scientist meets
 POSTERIOR_WINDOW_HZ = 2.5e-8
@@ -306,7 +307,7 @@ def _sky_level(sample_ra, sample_dec, ra, dec, max_samples=2000):
     density is higher than at the truth. Density by a Fisher (von Mises-Fisher) kernel on the sphere,
     bandwidth from the samples' angular spread with a Scott-like n^(-1/6) factor, kept in [2, 20] deg
     (common practice, no source)."""
-    from cwsearch import sky
+    from cwsearch.physics import sky
 
     if sample_ra.size > max_samples:
         pick = np.linspace(0, sample_ra.size - 1, max_samples).round().astype(int)
@@ -329,15 +330,16 @@ def posterior_calibration(n_injections=50, seed=3, *, ess=300.0, walkers=None, t
     """P-P test of the follow-up posterior (see the module docstring).
 
     The sampler runs with the follow-up stage's own ladder and adaptation (walkers, temperatures,
-    maximum temperature and adaptation iterations of :class:`cwsearch.followup.FollowupOptions`,
+    maximum temperature and adaptation iterations of :class:`cwsearch.stages.followup.stage.FollowupOptions`,
     unless ``walkers``/``temperatures`` are given), so the test calibrates what a user runs.
     """
     from scipy import stats
 
-    from cwsearch import followup, sampling
-    from cwsearch.likelihood import Likelihood
-    from cwsearch.noise import NoiseSettings, NoiseWeighting
-    from cwsearch.simulate import Binary, simulate_residuals
+    from cwsearch.stages.followup import stage as followup
+    from cwsearch.inference import sampling
+    from cwsearch.inference.likelihood import Likelihood
+    from cwsearch.physics.noise import NoiseSettings, NoiseWeighting
+    from cwsearch.physics.simulate import Binary, simulate_residuals
 
     defaults = followup.FollowupOptions()
     walkers = defaults.walkers if walkers is None else walkers
@@ -399,7 +401,7 @@ def posterior_calibration(n_injections=50, seed=3, *, ess=300.0, walkers=None, t
 def _pp_plot(levels, ks, path):
     from scipy import stats
 
-    from cwsearch.plots import pyplot, save_figure
+    from cwsearch.core.plotting import pyplot, save_figure
 
     plt = pyplot()
     fig, ax = plt.subplots(figsize=(5, 5))

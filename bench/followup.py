@@ -35,10 +35,10 @@ def main(argv=None):
     args = parser.parse_args(argv)
 
     from bench._array import bench_array
-    from cwsearch import simulate
-    from cwsearch.followup import FollowupOptions, run_followup
-    from cwsearch.likelihood import Likelihood
-    from cwsearch.noise import NoiseWeighting
+    from cwsearch.physics import simulate
+    from cwsearch.stages.followup.stage import FollowupOptions, run_followup
+    from cwsearch.inference.likelihood import Likelihood
+    from cwsearch.physics.noise import NoiseWeighting
 
     array, noise = bench_array()
     binary = simulate.Binary(ra=2.2, dec=-0.5, gw_frequency=1.5e-8, chirp_mass=6e8, strain=1e-14,

@@ -3,7 +3,7 @@
 ``python -m bench.hosts [--rows 1000000] [--samples 20000]`` writes an invented
 catalogue (CSV and ECSV) to a temporary folder, then measures
 
-1. reading + validating it with :func:`cwsearch.catalog.read_catalog`, CSV and
+1. reading + validating it with :func:`cwsearch.data.catalog.read_catalog`, CSV and
    ECSV, against astropy's general ECSV reader (``Table.read``, no
    validation) on the same file, measured in the same run (ratio printed);
 2. the sky pre-selection (k-d tree) and the Bayes-factor scoring of the
@@ -51,9 +51,9 @@ def _numpy_reference(loc, kde, galaxies, model):
     """The same sky × distance × mass sums as the numba kernel, in plain vectorised numpy."""
     from scipy.special import logsumexp
 
-    from cwsearch.hosts import inverse_search_prior, sample_terms
-    from cwsearch.relations import chirp_mass_log_density
-    from cwsearch.sky import unit_vectors
+    from cwsearch.stages.hosts.stage import inverse_search_prior, sample_terms
+    from cwsearch.physics.relations import chirp_mass_log_density
+    from cwsearch.physics.sky import unit_vectors
 
     terms = sample_terms(loc, model)
     inv_h, inv_mc, _ = inverse_search_prior(terms, model)
@@ -75,11 +75,11 @@ def main(argv=None):
 
     from astropy.table import Table
 
-    from cwsearch.catalog import read_catalog
-    from cwsearch.hosts import (HostsOptions, Localisation, SkyKernelDensity, build_host_model, sample_fisher,
+    from cwsearch.data.catalog import read_catalog
+    from cwsearch.stages.hosts.stage import (HostsOptions, Localisation, SkyKernelDensity, build_host_model, sample_fisher,
                                 score_galaxies)
-    from cwsearch.sky import unit_vectors
-    from cwsearch.waveform import strain_amplitude
+    from cwsearch.physics.sky import unit_vectors
+    from cwsearch.physics.waveform import strain_amplitude
 
     rng = np.random.default_rng(1)
     with tempfile.TemporaryDirectory() as tmp:

@@ -44,8 +44,8 @@ def main(argv=None):
     args = parser.parse_args(argv)
 
     from bench._array import bench_array
-    from cwsearch import waveform
-    from cwsearch.likelihood import Likelihood
+    from cwsearch.physics import waveform
+    from cwsearch.inference.likelihood import Likelihood
 
     array, noise = bench_array()
     t = time.perf_counter()

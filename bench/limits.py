@@ -25,7 +25,7 @@ import numpy as np
 
 
 def _limits_map(proj, ra, dec, quadrature, **engine):
-    from cwsearch.limits import compute_limits
+    from cwsearch.stages.limits.stage import compute_limits
 
     t = time.perf_counter()
     res = compute_limits(proj, ra, dec, method="bayes", quadrature=quadrature, progress=False, **engine)
@@ -36,7 +36,7 @@ def _warm_worker(quadrature):
     """Import the limits kernels and load numba's cache in a worker (run on every worker before timing)."""
     import numpy as np
 
-    from cwsearch import limits
+    from cwsearch.stages.limits import stage as limits
 
     limits.bayes_rows(np.zeros((1, 4)), np.eye(4)[None] * 1e16, grid=limits.QUADRATURE[quadrature])
     limits.frequentist_rows(np.eye(4)[None] * 1e16, 5.0)
@@ -64,8 +64,8 @@ def main(argv=None):
     args = parser.parse_args(argv)
 
     from bench._array import bench_array
-    from cwsearch import fstat, sky
-    from cwsearch.noise import NoiseWeighting
+    from cwsearch.physics import fstat, sky
+    from cwsearch.physics.noise import NoiseWeighting
 
     print(f"load average before: {os.getloadavg()[0]:.1f} on {os.cpu_count()} CPUs")
     array, noise = bench_array()

@@ -61,9 +61,9 @@ def _nominal_flops(engine, n_freq, n_pix):
 _COLD = """
 import time, numpy as np
 t = time.perf_counter()
-from cwsearch import fstat
-from cwsearch.simulate import invented_array
-from cwsearch.noise import NoiseWeighting
+from cwsearch.physics import fstat
+from cwsearch.physics.simulate import invented_array
+from cwsearch.physics.noise import NoiseWeighting
 arr = invented_array(n_pulsars=3, years=5, seed=1, toas_per_pulsar=30)
 proj = fstat.project(NoiseWeighting(arr), 1e-8 + 1e-9 * np.arange(4))
 fp, fc = fstat.sky_patterns(proj, np.array([1.0]), np.array([0.2]))
@@ -91,7 +91,7 @@ def _dense_reference(array, engine, frequencies, ra, dec):
     """Straightforward scan: explicit dense C⁻¹ (n×n), inner products recomputed per pixel and frequency."""
     from scipy import linalg
 
-    from cwsearch.noise import fourier_basis, powerlaw_variance
+    from cwsearch.physics.noise import fourier_basis, powerlaw_variance
 
     settings = engine.settings
     t = time.perf_counter()
@@ -111,7 +111,7 @@ def _dense_reference(array, engine, frequencies, ra, dec):
         inverses.append(g @ np.linalg.inv(g.T @ cov @ g) @ g.T)
     setup = time.perf_counter() - t
 
-    from cwsearch.fstat import _blas_threads
+    from cwsearch.physics.fstat import _blas_threads
 
     per_template = []
     for threads in (None, 1):      # BLAS as configured, then single-threaded; the faster one counts
@@ -130,7 +130,7 @@ class _nothing:
 
 
 def _dense_templates(array, inverses, frequencies, ra, dec):
-    from cwsearch.waveform import antenna_pattern
+    from cwsearch.physics.waveform import antenna_pattern
 
     t = time.perf_counter()
     fe = np.empty((ra.size, frequencies.size))
@@ -163,8 +163,9 @@ def main(argv=None):
     args = parser.parse_args(argv)
 
     from bench._array import bench_array
-    from cwsearch import fstat, scan
-    from cwsearch.noise import NoiseWeighting
+    from cwsearch.physics import fstat
+    from cwsearch.stages.scan import stage as scan
+    from cwsearch.physics.noise import NoiseWeighting
 
     import numba
 
@@ -244,7 +245,7 @@ def main(argv=None):
     print(f"sines+cosines: rotation-stepped {n_values / t_rot / 1e6:.0f} M values/s vs numpy "
           f"{n_values / t_np / 1e6:.0f} M values/s ({t_np / t_rot:.1f}x); toas[0] = {toas[0]:.4g} s")
     if args.json:
-        from cwsearch.fileio import write_json_atomic
+        from cwsearch.core.fileio import write_json_atomic
 
         write_json_atomic(args.json, out)
     return out

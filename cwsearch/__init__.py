@@ -3,27 +3,27 @@
 Public API (imported lazily, so ``import cwsearch`` is cheap):
 
 Data and I/O
-    :class:`Pulsar`, :class:`Array` (``cwsearch.model``);
-    :func:`read_dataset`, :func:`write_dataset` (``cwsearch.dataset``).
+    :class:`Pulsar`, :class:`Array` (``cwsearch.data.model``);
+    :func:`read_dataset`, :func:`write_dataset` (``cwsearch.data.dataset``).
 Physics
-    ``cwsearch.waveform``: antenna patterns, Earth/pulsar-term residuals,
+    ``cwsearch.physics.waveform``: antenna patterns, Earth/pulsar-term residuals,
     strain <-> chirp mass/distance, time to coalescence.
 Noise weighting
-    :class:`NoiseWeighting`, :class:`NoiseSettings` (``cwsearch.noise``): the
+    :class:`NoiseWeighting`, :class:`NoiseSettings` (``cwsearch.physics.noise``): the
     only place a covariance is inverted; inner products ``(x|y)``.
 Simulation
     :func:`invented_array`, :func:`simulate_residuals`, :class:`Binary`
-    (``cwsearch.simulate``).
+    (``cwsearch.physics.simulate``).
 Stages (each: ``<Stage>Options`` and ``run_<stage>(array, run_dir, options, ...)``)
-    scan: :class:`ScanOptions`, :func:`run_scan` (``cwsearch.scan``, on ``cwsearch.fstat``);
+    scan: :class:`ScanOptions`, :func:`run_scan` (``cwsearch.stages.scan.stage``, on ``cwsearch.physics.fstat``);
     follow-up: :class:`Likelihood`, :class:`FollowupOptions`, :func:`run_followup`
-    (``cwsearch.likelihood``, ``cwsearch.sampling``, ``cwsearch.followup``);
+    (``cwsearch.inference.likelihood``, ``cwsearch.inference.sampling``, ``cwsearch.stages.followup.stage``);
     hosts: :func:`read_catalog`, :class:`HostsOptions`, :func:`run_hosts`
-    (``cwsearch.catalog``, ``cwsearch.relations``, ``cwsearch.hosts``);
-    limits: :class:`LimitsOptions`, :func:`run_limits` (``cwsearch.limits``, ``cwsearch.execution``).
+    (``cwsearch.data.catalog``, ``cwsearch.physics.relations``, ``cwsearch.stages.hosts.stage``);
+    limits: :class:`LimitsOptions`, :func:`run_limits` (``cwsearch.stages.limits.stage``, ``cwsearch.inference.execution``).
 Whole job
-    :func:`load_config`, :func:`run_pipeline` (``cwsearch.config``, ``cwsearch.pipeline``,
-    ``cwsearch.report``).
+    :func:`load_config`, :func:`run_pipeline` (``cwsearch.job.config``, ``cwsearch.job.pipeline``,
+    ``cwsearch.job.report``).
 
 Example
 -------
@@ -38,16 +38,16 @@ from importlib import import_module
 __version__ = "0.1.0"
 
 _LAZY = {
-    "Pulsar": "model", "Array": "model", "PulsarNoise": "model",
-    "read_dataset": "dataset", "write_dataset": "dataset", "dataset_checksum": "dataset",
-    "NoiseWeighting": "noise", "NoiseSettings": "noise",
-    "invented_array": "simulate", "simulate_residuals": "simulate", "Binary": "simulate",
-    "InputError": "errors",
-    "ScanOptions": "scan", "run_scan": "scan",
-    "Likelihood": "likelihood", "FollowupOptions": "followup", "run_followup": "followup",
-    "read_catalog": "catalog", "HostsOptions": "hosts", "run_hosts": "hosts",
-    "LimitsOptions": "limits", "run_limits": "limits",
-    "load_config": "config", "run_pipeline": "pipeline",
+    "Pulsar": "data.model", "Array": "data.model", "PulsarNoise": "data.model",
+    "read_dataset": "data.dataset", "write_dataset": "data.dataset", "dataset_checksum": "data.dataset",
+    "NoiseWeighting": "physics.noise", "NoiseSettings": "physics.noise",
+    "invented_array": "physics.simulate", "simulate_residuals": "physics.simulate", "Binary": "physics.simulate",
+    "InputError": "core.errors",
+    "ScanOptions": "stages.scan.stage", "run_scan": "stages.scan.stage",
+    "Likelihood": "inference.likelihood", "FollowupOptions": "stages.followup.stage", "run_followup": "stages.followup.stage",
+    "read_catalog": "data.catalog", "HostsOptions": "stages.hosts.stage", "run_hosts": "stages.hosts.stage",
+    "LimitsOptions": "stages.limits.stage", "run_limits": "stages.limits.stage",
+    "load_config": "job.config", "run_pipeline": "job.pipeline",
 }
 
 __all__ = sorted(_LAZY) + ["__version__"]

@@ -84,7 +84,7 @@ def main(argv=None) -> int:
 
 def run_command(func, args) -> int:
     """Run ``func(args)``, mapping user errors to exit 2 and crashes to exit 1."""
-    from .errors import InputError
+    from .core.errors import InputError
 
     try:
         return int(func(args) or 0)
@@ -97,7 +97,7 @@ def run_command(func, args) -> int:
     except OSError as exc:
         if exc.errno not in _CANNOT_WRITE:
             return _internal_error()
-        # a full disk or read-only folder met outside cwsearch.fileio, e.g. while numba saves its
+        # a full disk or read-only folder met outside cwsearch.core.fileio, e.g. while numba saves its
         # compiled-code cache: the user's problem, not a bug
         hint = "; free some space and run again" if exc.errno in _NO_SPACE else ""
         print(f"cwsearch: error: {_failed_path(exc)}: {exc.strerror}{hint}", file=sys.stderr)

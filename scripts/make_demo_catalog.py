@@ -51,8 +51,8 @@ def _offset(ra, dec, sep_deg, angle_deg):
 
 def host_bulge_mass():
     """log10 bulge mass of the host: MM13 mean relation at the equal-mass total mass of the demo binary."""
-    from cwsearch.relations import MCCONNELL_MA_2013, redshift_at_distance
-    from cwsearch.waveform import chirp_mass_from_masses
+    from cwsearch.physics.relations import MCCONNELL_MA_2013, redshift_at_distance
+    from cwsearch.physics.waveform import chirp_mass_from_masses
 
     z = redshift_at_distance(DEMO_BINARY["luminosity_distance"])
     source_chirp = DEMO_BINARY["chirp_mass"] / (1 + z)
@@ -65,7 +65,7 @@ def build(seed=SEED):
     """The catalogue as an astropy Table, and the name of the planted host."""
     from astropy.table import Table
 
-    from cwsearch.relations import redshift_at_distance
+    from cwsearch.physics.relations import redshift_at_distance
 
     rng = np.random.default_rng(seed)
     n = N_POPULATION
@@ -167,7 +167,7 @@ def main(argv=None):
             for c in table.colnames)
         print("identical" if same else "DIFFERENT")
         return 0 if same else 1
-    from cwsearch.fileio import write_table_atomic
+    from cwsearch.core.fileio import write_table_atomic
 
     write_table_atomic(args.out, table)
     lb, total = host_bulge_mass()

@@ -6,7 +6,7 @@ Scenario (fixed; the demo galaxy catalogue is built around it):
   three backends each, a few with power-law red noise;
 - one invented circular binary at ra = 141.0 deg, dec = -27.5 deg,
   f_gw = 1.2e-8 Hz, chirp mass 2.0e9 Msun, luminosity distance 80 Mpc
-  (strain = cwsearch.waveform.strain_amplitude(2e9, 1.2e-8, 80) = 1.236e-14),
+  (strain = cwsearch.physics.waveform.strain_amplitude(2e9, 1.2e-8, 80) = 1.236e-14),
   inclination 1.0, polarization 0.6, phase 2.0 rad, full frequency
   evolution with the pulsar term;
 - the TOA uncertainty scale is solved for so that the binary's optimal
@@ -46,7 +46,7 @@ BINARY = dict(ra=141.0, dec=-27.5, gw_frequency=1.2e-8, chirp_mass=2.0e9, lumino
 
 def demo_options(sigma):
     from cwsearch.commands.simulate import SimulateOptions
-    from cwsearch.waveform import strain_amplitude
+    from cwsearch.physics.waveform import strain_amplitude
 
     strain = float(strain_amplitude(BINARY["chirp_mass"], BINARY["gw_frequency"], BINARY["luminosity_distance"]))
     return SimulateOptions(pulsars=20, years=12.5, toas_per_pulsar=200, sigma=sigma, red_noise_fraction=0.1,
@@ -91,7 +91,7 @@ def main(argv=None) -> int:
     parser.add_argument("--check", action="store_true",
                         help="regenerate into a temporary folder and compare with the bundled copy")
     args = parser.parse_args(argv)
-    from cwsearch.dataset import dataset_checksum
+    from cwsearch.data.dataset import dataset_checksum
 
     if args.check:
         with tempfile.TemporaryDirectory() as tmp:

@@ -12,8 +12,8 @@ import pytest
 def make_tiny_array(seed=11, n_pulsars=3, toas=40):
     """A tiny invented array (3 pulsars x 40 TOAs, 6 yr) with red noise, white-noise factors and a
     ``design_*`` column on the last pulsar, and simulated residuals."""
-    from cwsearch.model import Array, Pulsar
-    from cwsearch.simulate import invented_array, simulated_array
+    from cwsearch.data.model import Array, Pulsar
+    from cwsearch.physics.simulate import invented_array, simulated_array
 
     arr = invented_array(n_pulsars=n_pulsars, years=6, seed=seed, toas_per_pulsar=toas, red_noise_fraction=0.5)
     first = arr[0]
@@ -38,7 +38,7 @@ def tiny_array():
 @pytest.fixture
 def dataset_dir(tmp_path, tiny_array):
     """A fresh dataset folder written from :func:`tiny_array` (safe to modify)."""
-    from cwsearch.dataset import write_dataset
+    from cwsearch.data.dataset import write_dataset
 
     path = tmp_path / "data"
     write_dataset(tiny_array, path)

@@ -37,7 +37,7 @@ from cwsearch import cli
 @pytest.fixture(scope="module")
 def template(tmp_path_factory):
     """A valid tiny dataset folder (3 pulsars x 40 TOAs over 6 yr) and a valid galaxy catalogue."""
-    from cwsearch.dataset import write_dataset
+    from cwsearch.data.dataset import write_dataset
     from tests.conftest import make_tiny_array
 
     root = tmp_path_factory.mktemp("bad_input_template")
@@ -240,7 +240,7 @@ def test_bad_dataset(work, capsys, damage, expect):
 # ------------------------------------------------------------------ option cases (scan, simulate)
 
 def _span(w):
-    from cwsearch.dataset import read_dataset
+    from cwsearch.data.dataset import read_dataset
 
     return read_dataset(w / "data").span
 

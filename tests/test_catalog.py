@@ -5,8 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from cwsearch.catalog import parse_column_map, read_catalog
-from cwsearch.errors import InputError
+from cwsearch.data.catalog import parse_column_map, read_catalog
+from cwsearch.core.errors import InputError
 
 GOOD = "name,ra,dec,distance\nA,10.0,20.0,40.0\nB,350.5,-45.0,120.0\nC,180.0,89.0,300.0\n"
 
@@ -132,7 +132,7 @@ def test_bad_ecsv_row_and_missing_file(tmp_path):
 
 def test_mass_proxy_preference_order(tmp_path):
     # a galaxy with both a bulge mass and a K magnitude uses the bulge mass (documented order)
-    from cwsearch.relations import MCCONNELL_MA_2013
+    from cwsearch.physics.relations import MCCONNELL_MA_2013
 
     text = "name,ra,dec,distance,log10_bulge_mass,k_abs_mag\nA,1,2,3,11.0,-25\nB,1,2,3,,-25\nC,1,2,3,,\n"
     cat = read_catalog(_write(tmp_path, text))

@@ -15,7 +15,7 @@ from pathlib import Path
 import pytest
 
 from cwsearch import __version__, cli
-from cwsearch.dataset import dataset_checksum, read_dataset
+from cwsearch.data.dataset import dataset_checksum, read_dataset
 
 REPO = Path(__file__).resolve().parents[1]
 SMALL = ["--pulsars", "4", "--years", "6", "--toas-per-pulsar", "40"]

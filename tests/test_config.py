@@ -15,9 +15,9 @@ from pathlib import Path
 
 import pytest
 
-from cwsearch.config import (STAGES, load_config, parse_config, section_keys, stage_options_class, to_toml,
+from cwsearch.job.config import (STAGES, load_config, parse_config, section_keys, stage_options_class, to_toml,
                              toml_value)
-from cwsearch.errors import InputError
+from cwsearch.core.errors import InputError
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -40,7 +40,7 @@ def test_minimal_file_gets_defaults(tmp_path, dataset_dir):
     assert cfg.seed == 0
     assert cfg.stages == STAGES
     assert cfg.engine == {"kind": "local", "workers": 0, "address": ""}
-    from cwsearch.noise import NoiseSettings
+    from cwsearch.physics.noise import NoiseSettings
 
     assert cfg.noise == NoiseSettings()
 
@@ -158,7 +158,7 @@ def test_stage_section_schema_is_the_options_dataclass(stage):
     if cls is None:
         pytest.skip(f"cwsearch.{stage} not installed yet")
     keys = section_keys(stage)
-    from cwsearch.config import PIPELINE_SET
+    from cwsearch.job.config import PIPELINE_SET
 
     fields = {f.name for f in dataclasses.fields(cls) if f.init and f.name not in PIPELINE_SET[stage]}
     assert fields <= set(keys)
@@ -257,7 +257,7 @@ def test_writer_property_based():
 def test_stage_own_checks_become_run_file_errors(tmp_path, dataset_dir):
     """A value of the right type that the stage refuses is reported against its run-file key."""
     if stage_options_class("scan") is None:
-        pytest.skip("cwsearch.scan not installed yet")
+        pytest.skip("cwsearch.stages.scan.stage not installed yet")
     with pytest.raises(InputError) as err:
         _parse('dataset = "data"\n[scan]\nnside = 6\n', tmp_path)
     assert "line 3: [scan] nside" in str(err.value) and "power of two" in str(err.value)
@@ -266,7 +266,7 @@ def test_stage_own_checks_become_run_file_errors(tmp_path, dataset_dir):
 def test_limits_galaxies_array_of_arrays(tmp_path, dataset_dir):
     """[limits] galaxy: a TOML array of [name, ra, dec, distance] arrays becomes a tuple of tuples."""
     if stage_options_class("limits") is None:
-        pytest.skip("cwsearch.limits not installed yet")
+        pytest.skip("cwsearch.stages.limits.stage not installed yet")
     cfg = _parse('dataset = "data"\n[limits]\ngalaxy = [["G1", 10, -5.5, 20.0], ["G2", 1.0, 2.0, 3.0]]\n', tmp_path)
     assert cfg.options["limits"].galaxy == (("G1", 10.0, -5.5, 20.0), ("G2", 1.0, 2.0, 3.0))
     with pytest.raises(InputError, match=r"\[limits\] galaxy: expected a list"):
@@ -277,8 +277,8 @@ def test_limits_galaxies_array_of_arrays(tmp_path, dataset_dir):
 
 def test_engine_fills_workers_and_scheduler_but_not_the_hash(tmp_path, dataset_dir):
     if stage_options_class("limits") is None:
-        pytest.skip("cwsearch.limits not installed yet")
-    from cwsearch.pipeline import engine_options
+        pytest.skip("cwsearch.stages.limits.stage not installed yet")
+    from cwsearch.job.pipeline import engine_options
 
     local = _parse('dataset = "data"\n[engine]\nworkers = 3\n', tmp_path)
     dask = _parse('dataset = "data"\n[engine]\nkind = "dask"\naddress = "tcp://h:8786"\n', tmp_path)

@@ -18,8 +18,8 @@ from astropy.table import Table
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from cwsearch.dataset import DatasetWarning, dataset_checksum, read_dataset, write_dataset
-from cwsearch.errors import InputError
+from cwsearch.data.dataset import DatasetWarning, dataset_checksum, read_dataset, write_dataset
+from cwsearch.core.errors import InputError
 
 PSR = "residuals/SIMPSR01.ecsv"
 PSR3 = "residuals/SIMPSR03.ecsv"

@@ -7,11 +7,12 @@ import os
 import numpy as np
 import pytest
 
-from cwsearch import fstat, limits
-from cwsearch.errors import InputError
-from cwsearch.execution import TaskRunner, run_tasks
-from cwsearch.noise import NoiseWeighting
-from cwsearch.simulate import invented_array, simulated_array
+from cwsearch.physics import fstat
+from cwsearch.stages.limits import stage as limits
+from cwsearch.core.errors import InputError
+from cwsearch.inference.execution import TaskRunner, run_tasks
+from cwsearch.physics.noise import NoiseWeighting
+from cwsearch.physics.simulate import invented_array, simulated_array
 
 
 @pytest.fixture(scope="module")

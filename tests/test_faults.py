@@ -30,14 +30,14 @@ from pathlib import Path
 import pytest
 
 from cwsearch import cli
-from cwsearch.pipeline import STAGE_FILE
+from cwsearch.job.pipeline import STAGE_FILE
 
 REPO = Path(__file__).resolve().parents[1]
 
 
 @pytest.fixture(scope="module")
 def dataset(tmp_path_factory):
-    from cwsearch.dataset import write_dataset
+    from cwsearch.data.dataset import write_dataset
     from tests.conftest import make_tiny_array
 
     folder = tmp_path_factory.mktemp("faults") / "data"
@@ -132,7 +132,7 @@ def assert_no_half_written(folder):
 
 
 def stage_available(name):
-    from cwsearch import pipeline
+    from cwsearch.job import pipeline
 
     spec = {s.name: s for s in pipeline.default_stages()}.get(name)
     return spec is not None and (spec.available is None or spec.available() is None)
@@ -326,7 +326,7 @@ def test_killed_dask_worker_is_retried(tmp_path):
     pytest.importorskip("distributed")
     from distributed import LocalCluster
 
-    from cwsearch.execution import TaskRunner
+    from cwsearch.inference.execution import TaskRunner
 
     marker = str(tmp_path / "killed_once")
     tasks = [(i, 5, marker) for i in range(10)]

@@ -8,7 +8,7 @@ byte unchanged. Three ways to meet the fault:
 
 * a read-only folder: a real read-only tmpfs when root, else a folder without write permission;
 * a full disk: a real small tmpfs filled to the last byte (root only);
-* a disk that fills part-way through the stage: the real atomic writer of cwsearch.fileio writes
+* a disk that fills part-way through the stage: the real atomic writer of cwsearch.core.fileio writes
   the temporary file and then meets ENOSPC (any user), so earlier outputs exist and must be whole.
 
 Also: ENOSPC while a plot is saved, and while numba saves its compiled-code cache (outside the run
@@ -28,8 +28,9 @@ from pathlib import Path
 
 import pytest
 
-from cwsearch import cli, fileio
-from cwsearch.pipeline import read_record
+from cwsearch import cli
+from cwsearch.core import fileio
+from cwsearch.job.pipeline import read_record
 from tests.test_faults import assert_no_half_written, fill_until_full, stage_available, tree
 
 ROOT = os.geteuid() == 0
@@ -42,7 +43,7 @@ CATALOGUE = "name,ra,dec,distance\nTESTGAL-A,100.0,10.0,40.0\nTESTGAL-B,250.0,-3
 @pytest.fixture(scope="module")
 def inputs(tmp_path_factory):
     """Dataset folder, catalogue, and a finished tiny scan (the input of the hosts stage)."""
-    from cwsearch.dataset import write_dataset
+    from cwsearch.data.dataset import write_dataset
     from tests.conftest import make_tiny_array
 
     base = tmp_path_factory.mktemp("disk")
@@ -215,7 +216,7 @@ def test_disk_fills_during_stage(stage, inputs, tmp_path, capsys, monkeypatch):
 
 @pytest.mark.skipif(not stage_available("hosts"), reason="hosts stage not in place yet")
 def test_disk_full_while_saving_a_plot(inputs, tmp_path, capsys, monkeypatch):
-    """ENOSPC at a PNG (cwsearch.plots): exit 2 naming the picture, no temporary, no figure left open."""
+    """ENOSPC at a PNG (cwsearch.core.plotting): exit 2 naming the picture, no temporary, no figure left open."""
     import matplotlib.pyplot as plt
 
     run_dir = tmp_path / "run"

@@ -1,4 +1,4 @@
-"""Tests of the follow-up stage (cwsearch.followup) and its command.
+"""Tests of the follow-up stage (cwsearch.stages.followup.stage) and its command.
 
 Checks: a loud injection (optimal SNR ρ = 15, computed with the noise engine
 as sqrt((s|s))) must lie inside the 90 % posterior intervals; noise alone
@@ -14,10 +14,10 @@ import json
 import numpy as np
 import pytest
 
-from cwsearch import simulate
-from cwsearch.followup import OUTPUT_COLUMNS, FollowupOptions, run_followup
-from cwsearch.noise import NoiseSettings, NoiseWeighting
-from cwsearch.simulate import Binary, invented_array, simulate_residuals
+from cwsearch.physics import simulate
+from cwsearch.stages.followup.stage import OUTPUT_COLUMNS, FollowupOptions, run_followup
+from cwsearch.physics.noise import NoiseSettings, NoiseWeighting
+from cwsearch.physics.simulate import Binary, invented_array, simulate_residuals
 
 WHITE = NoiseSettings(red_components=0)
 FAST = dict(walkers=18, temperatures=5, max_temperature=1e5, ess=400, max_iterations=260, adapt_iterations=60,

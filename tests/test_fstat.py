@@ -14,9 +14,9 @@ import numpy as np
 import pytest
 from scipy import linalg, stats
 
-from cwsearch import fstat
-from cwsearch.noise import NoiseSettings, NoiseWeighting, fourier_basis, powerlaw_variance
-from cwsearch.simulate import Binary, binary_residuals, invented_array, simulate_residuals
+from cwsearch.physics import fstat
+from cwsearch.physics.noise import NoiseSettings, NoiseWeighting, fourier_basis, powerlaw_variance
+from cwsearch.physics.simulate import Binary, binary_residuals, invented_array, simulate_residuals
 
 KS_P_MIN = 1e-3   # fixed seeds; a correct distribution fails this one time in a thousand
 
@@ -221,7 +221,7 @@ def test_pulsar_aligned_with_or_opposite_to_source_gives_no_nan():
 def test_timing_model_frequency_is_dropped_not_divided_by_zero():
     # at exactly 1/yr the yearly timing-model columns absorb the sinusoid: Z is rounding noise.
     # Fe, Fp stay finite and the degrees of freedom of 2Fp drop (common practice, no source)
-    from cwsearch.constants import YEAR_FREQUENCY
+    from cwsearch.core.constants import YEAR_FREQUENCY
 
     arr = _small_array(n_pulsars=3, red=0.0)
     arr = arr.with_residuals(simulate_residuals(arr, 2))

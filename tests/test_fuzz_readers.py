@@ -3,7 +3,7 @@
 Property (issue 8; common practice for input validation, no source): any byte
 string given as ``pulsars.ecsv``, ``residuals/NAME.ecsv``, ``noise.ecsv``, a
 galaxy catalogue (ECSV or CSV) or a TOML run file either loads or raises
-:class:`cwsearch.errors.InputError` — never any other exception. Inputs are
+:class:`cwsearch.core.errors.InputError` — never any other exception. Inputs are
 drawn three ways: arbitrary bytes, a valid file with random byte edits, and
 a valid file with random lines replaced by tokens that readers find hard
 (NaN, inf, quotes, YAML tags, huge numbers, separators). Hypothesis
@@ -26,7 +26,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from cwsearch.errors import InputError
+from cwsearch.core.errors import InputError
 
 _HEALTH = [HealthCheck.too_slow, HealthCheck.function_scoped_fixture, HealthCheck.data_too_large]
 FUZZ = settings(max_examples=30, deadline=None, derandomize=True, suppress_health_check=_HEALTH)
@@ -44,7 +44,7 @@ def valid(tmp_path_factory):
     """Valid files to start from: a tiny dataset folder, a catalogue in ECSV and CSV, a run file."""
     from astropy.table import Table
 
-    from cwsearch.dataset import write_dataset
+    from cwsearch.data.dataset import write_dataset
     from tests.conftest import make_tiny_array
 
     root = tmp_path_factory.mktemp("fuzz_valid")
@@ -119,7 +119,7 @@ def _first_residual(folder):
 
 @pytest.mark.parametrize("which", ["pulsars.ecsv", "residuals/NAME.ecsv", "noise.ecsv"])
 def test_dataset_reader_fuzz(valid, tmp_path, which):
-    from cwsearch.dataset import read_dataset
+    from cwsearch.data.dataset import read_dataset
 
     source = {"pulsars.ecsv": valid / "data" / "pulsars.ecsv", "noise.ecsv": valid / "data" / "noise.ecsv",
               "residuals/NAME.ecsv": _first_residual(valid / "data")}[which]
@@ -137,7 +137,7 @@ def test_dataset_reader_fuzz(valid, tmp_path, which):
 
 @pytest.mark.parametrize("suffix", ["csv", "ecsv"])
 def test_catalog_reader_fuzz(valid, tmp_path, suffix):
-    from cwsearch.catalog import read_catalog
+    from cwsearch.data.catalog import read_catalog
 
     source = valid / f"galaxies.{suffix}"
     target = tmp_path / f"fuzzed.{suffix}"
@@ -152,7 +152,7 @@ def test_catalog_reader_fuzz(valid, tmp_path, suffix):
 
 
 def test_run_file_fuzz(valid, tmp_path):
-    from cwsearch.config import load_config
+    from cwsearch.job.config import load_config
 
     shutil.copytree(valid / "data", tmp_path / "data")
     target = tmp_path / "run.toml"
@@ -184,8 +184,8 @@ def _inject_yaml(path: Path, line: str):
 @pytest.mark.parametrize("attack", YAML_ATTACKS, ids=["os.system", "subprocess", "python-name", "object-new"])
 @pytest.mark.parametrize("which", ["pulsars", "residuals", "noise", "catalog"])
 def test_yaml_python_tags_rejected_not_executed(valid, tmp_path, which, attack):
-    from cwsearch.catalog import read_catalog
-    from cwsearch.dataset import read_dataset
+    from cwsearch.data.catalog import read_catalog
+    from cwsearch.data.dataset import read_dataset
 
     marker = tmp_path / "EXECUTED"
     folder = _dataset_copy(valid, tmp_path)
@@ -251,7 +251,7 @@ def test_no_code_execution_or_unpickling_in_package():
 
 
 def test_allowed_dynamic_import_is_a_fixed_table():
-    from cwsearch import config
+    from cwsearch.job import config
 
     assert all(module.startswith("cwsearch.") for module, _ in config.STAGE_OPTIONS.values())
     assert all(isinstance(v, tuple) for v in config.STAGE_OPTIONS.values())

@@ -15,10 +15,10 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from cwsearch.errors import InputError
-from cwsearch.hosts import (HostsOptions, Localisation, SkyKernelDensity, build_host_model, posterior_probabilities,
+from cwsearch.core.errors import InputError
+from cwsearch.stages.hosts.stage import (HostsOptions, Localisation, SkyKernelDensity, build_host_model, posterior_probabilities,
                             rank_candidate, run_hosts, sample_fisher, score_galaxies)
-from cwsearch.waveform import strain_amplitude
+from cwsearch.physics.waveform import strain_amplitude
 
 TRUE = dict(ra=141.0, dec=-27.5, frequency=1.2e-8, chirp_mass=2.0e9, distance=80.0)
 # total mass of an equal-mass binary with this observed chirp mass at z(80 Mpc) ~ 0.0178: ~4.5e9 Msun;
@@ -79,7 +79,7 @@ def write_catalogue(path, rng, *, with_host=True, n_population=400):
 
 
 def _rank(loc, cat_path, rng, **opts):
-    from cwsearch.catalog import read_catalog
+    from cwsearch.data.catalog import read_catalog
 
     options = HostsOptions(catalog=str(cat_path), **opts)
     catalog = read_catalog(cat_path)
@@ -141,7 +141,7 @@ def test_reweighting_equals_direct_numerical_integration(tmp_path, strain_prior)
     log10_bh, dist, derr, period, perr = 9.6, 85.0, 8.0, 1900.0, 60.0
     (tmp_path / "c.csv").write_text("name,ra,dec,distance,distance_err,log10_bh_mass,period,period_err\n"
                                     f"G,141.0,-27.5,{dist},{derr},{log10_bh},{period},{perr}\n")
-    from cwsearch.catalog import read_catalog
+    from cwsearch.data.catalog import read_catalog
 
     catalog = read_catalog(tmp_path / "c.csv")
     options = HostsOptions(catalog="c", mass_ratio_min=1.0, sky_bandwidth=1.0)
@@ -196,7 +196,7 @@ def test_sky_kernel_density_matches_analytic_fisher(tmp_path):
     rng = np.random.default_rng(11)
     sigma = math.radians(4.0)
     ra, dec = sample_fisher(1.0, -0.4, sigma, 5000, rng)
-    from cwsearch.sky import angular_separation
+    from cwsearch.physics.sky import angular_separation
 
     w = np.cos(angular_separation(1.0, -0.4, ra, dec))
     k = 1 / sigma**2
@@ -262,7 +262,7 @@ def test_run_from_followup_posterior_writes_outputs(tmp_path, capsys):
 
 def test_scan_candidate_alone_uses_coarse_localisation_and_says_so(tmp_path):
     # behaviour required by the issue (a scan candidate alone, coarse localisation, stated); Fe map from
-    # cwsearch.fstat (checked against Ellis, Siemens & Creighton 2012 in the scan tests)
+    # cwsearch.physics.fstat (checked against Ellis, Siemens & Creighton 2012 in the scan tests)
     from astropy.table import Table
 
     rng = np.random.default_rng(4)
@@ -281,7 +281,7 @@ def test_scan_candidate_alone_uses_coarse_localisation_and_says_so(tmp_path):
     assert "5 deg" in res.summary["localisation_description"]
     assert "HOST" in list(res.ranking["name"])
     # with an Fe sky map in the scan folder it is used instead
-    from cwsearch.sky import angular_separation, pixel_centres
+    from cwsearch.physics.sky import angular_separation, pixel_centres
 
     pra, pdec = pixel_centres(8)
     sep = angular_separation(pra, pdec, math.radians(141.0), math.radians(-27.5))
@@ -293,7 +293,7 @@ def test_scan_candidate_alone_uses_coarse_localisation_and_says_so(tmp_path):
     assert res.summary["localisation"] == "scan-fe-map"
     assert "fe_map.ecsv" in res.summary["localisation_description"]
     # without a map file but with the dataset, the Fe map is computed at the candidate frequency
-    from cwsearch.simulate import invented_array, simulated_array
+    from cwsearch.physics.simulate import invented_array, simulated_array
 
     (tmp_path / "run" / "scan" / "fe_map.ecsv").unlink()
     array = simulated_array(invented_array(n_pulsars=5, years=10, seed=2, toas_per_pulsar=60), seed=3)
@@ -337,8 +337,8 @@ def test_missing_inputs_and_bad_options(tmp_path):
 def test_million_row_catalogue_preselection(tmp_path):
     # 1e6 galaxies: read, validate and pre-select by sky (k-d tree on chord distances); checked against a
     # brute-force comparison of cosines (spherical geometry, common practice). No timing assertion.
-    from cwsearch.catalog import read_catalog
-    from cwsearch.sky import unit_vectors
+    from cwsearch.data.catalog import read_catalog
+    from cwsearch.physics.sky import unit_vectors
 
     rng = np.random.default_rng(9)
     n = 1_000_000

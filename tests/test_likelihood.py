@@ -1,4 +1,4 @@
-"""Tests of the follow-up likelihood (cwsearch.likelihood).
+"""Tests of the follow-up likelihood (cwsearch.inference.likelihood).
 
 Check values come from outside the module: the signal rebuilt from scratch
 with waveform.residuals and weighted through the noise engine (DESIGN.md §7:
@@ -12,10 +12,10 @@ import numpy as np
 import pytest
 from scipy import integrate, special
 
-from cwsearch import waveform
-from cwsearch.likelihood import Likelihood, marginal_log_factor, sincos
-from cwsearch.noise import NoiseSettings
-from cwsearch.simulate import Binary, invented_array, simulate_residuals
+from cwsearch.physics import waveform
+from cwsearch.inference.likelihood import Likelihood, marginal_log_factor, sincos
+from cwsearch.physics.noise import NoiseSettings
+from cwsearch.physics.simulate import Binary, invented_array, simulate_residuals
 
 
 @pytest.fixture(scope="module")
@@ -38,7 +38,7 @@ def _random_parameters(rng, n):
 def _chirp_mass_merging_after(gw_frequency, seconds):
     """Chirp mass [Msun] of a binary at ``gw_frequency`` that merges after ``seconds``: inverts
     τ = (5/256) (G Mc/c³)^(-5/3) (π f)^(-8/3) (Peters 1964 with the usual quadrupole chirp)."""
-    from cwsearch.constants import SOLAR_MASS_SECONDS
+    from cwsearch.core.constants import SOLAR_MASS_SECONDS
 
     mc_time = (5.0 / 256.0 / seconds * (np.pi * gw_frequency) ** (-8 / 3)) ** (3 / 5)
     return mc_time / SOLAR_MASS_SECONDS

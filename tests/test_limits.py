@@ -13,10 +13,11 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from cwsearch import fstat, limits
-from cwsearch.errors import InputError
-from cwsearch.noise import NoiseWeighting
-from cwsearch.simulate import Binary, invented_array, simulate_residuals
+from cwsearch.physics import fstat
+from cwsearch.stages.limits import stage as limits
+from cwsearch.core.errors import InputError
+from cwsearch.physics.noise import NoiseWeighting
+from cwsearch.physics.simulate import Binary, invented_array, simulate_residuals
 
 FREQUENCY = 1e-8
 FAST = limits.QUADRATURE["fast"]
@@ -79,7 +80,7 @@ def test_quadrature_limit_equals_importance_sampling_limit(loud_pixel):
 
 
 def test_quadrature_limit_equals_follow_up_sampler_limit(loud_pixel):
-    # check: the ptemcee follow-up sampler (cwsearch.sampling) on the same likelihood, uniform priors;
+    # check: the ptemcee follow-up sampler (cwsearch.inference.sampling) on the same likelihood, uniform priors;
     # tolerance 4 x its Monte Carlo error sqrt(p(1-p)/ESS)/density (common practice, no source)
     nvec, mmat = loud_pixel
     quad = limits.bayesian_limit(nvec, mmat, FREQUENCY)
@@ -104,7 +105,7 @@ def test_sky_average_matches_direct_mixture(network):
     from scipy.optimize import brentq
     from scipy.special import logsumexp
 
-    from cwsearch import sky
+    from cwsearch.physics import sky
 
     _, engine, _ = network
     proj = fstat.project(engine, np.array([FREQUENCY]))
@@ -144,7 +145,7 @@ def test_frequentist_limit_calibration_gaussian_model(network):
 
 
 def test_frequentist_limit_calibration_time_domain(network):
-    # check: as above with full time-domain simulations (noise + Earth-term binary through cwsearch.waveform,
+    # check: as above with full time-domain simulations (noise + Earth-term binary through cwsearch.physics.waveform,
     # projected through the noise-weighting engine); at least 95 % above the threshold within a one-sided
     # 99.9 % binomial bound (scipy.stats.binom)
     arr, engine, mmat = network
@@ -219,7 +220,7 @@ def test_chirp_mass_limit_matches_published_strain_distance_statement():
 # ---------------------------------------------------------------- the stage
 @pytest.fixture(scope="module")
 def stage_run(tmp_path_factory):
-    from cwsearch.simulate import simulated_array
+    from cwsearch.physics.simulate import simulated_array
 
     arr = simulated_array(invented_array(n_pulsars=5, years=8, seed=8, toas_per_pulsar=60), seed=9)
     out = tmp_path_factory.mktemp("run")
@@ -253,7 +254,7 @@ def test_stage_galaxy_limits_follow_strain_formula(stage_run):
     # check: chirp_mass_95 and strain_95 at the galaxy satisfy h0(Mc, f, d) of Sesana & Vecchio 2010
     from astropy.table import Table
 
-    from cwsearch.waveform import strain_amplitude
+    from cwsearch.physics.waveform import strain_amplitude
 
     _, out, _ = stage_run
     gtab = Table.read(out / "limits" / "galaxy_limits.ecsv")

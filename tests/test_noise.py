@@ -12,8 +12,8 @@ import numpy as np
 import pytest
 from astropy import units as u
 
-from cwsearch.model import Array, Pulsar, PulsarNoise
-from cwsearch.noise import NoiseSettings, NoiseWeighting, hellings_downs, powerlaw_variance
+from cwsearch.data.model import Array, Pulsar, PulsarNoise
+from cwsearch.physics.noise import NoiseSettings, NoiseWeighting, hellings_downs, powerlaw_variance
 
 YEAR_FREQ = 1 / (1 * u.yr).to_value(u.s)
 
@@ -72,7 +72,7 @@ SETTINGS = [
 
 @pytest.mark.parametrize("settings, red, design", SETTINGS)
 def test_woodbury_equals_g_projection(settings, red, design):
-    """Inner products and log-determinant: Woodbury (cwsearch.noise) vs dense G-projection
+    """Inner products and log-determinant: Woodbury (cwsearch.physics.noise) vs dense G-projection
     (van Haasteren & Vallisneri 2014) on small random problems."""
     rng = np.random.default_rng(17)
     arr = _random_array(rng, red=red, design=design)

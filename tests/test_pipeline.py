@@ -21,10 +21,10 @@ from pathlib import Path
 
 import pytest
 
-from cwsearch.config import STAGES, RunConfig
-from cwsearch.errors import InputError
-from cwsearch.noise import NoiseSettings
-from cwsearch.pipeline import (NothingToDo, RunLock, StageSpec, folder_hash, read_record, run_pipeline,
+from cwsearch.job.config import STAGES, RunConfig
+from cwsearch.core.errors import InputError
+from cwsearch.physics.noise import NoiseSettings
+from cwsearch.job.pipeline import (NothingToDo, RunLock, StageSpec, folder_hash, read_record, run_pipeline,
                                run_stages, stage_seed)
 
 REPO = Path(__file__).resolve().parents[1]
@@ -187,7 +187,7 @@ def test_resume_after_kill_9(tmp_path):
         sys.path.insert(0, {str(REPO)!r})
         sys.path.insert(0, {str(Path(__file__).parent)!r})
         from test_pipeline import _config, _dummy_specs, Calls
-        from cwsearch.pipeline import run_stages, StageSpec
+        from cwsearch.job.pipeline import run_stages, StageSpec
         cfg = _config(pathlib.Path({str(tmp_path)!r}))
         specs = _dummy_specs(Calls())
         def slow(ctx):
@@ -262,8 +262,8 @@ def test_run_lock(tmp_path):
 # ---------------------------------------------------------------- run_pipeline with dummy stages
 @pytest.fixture
 def tiny_dataset(tmp_path):
-    from cwsearch.dataset import write_dataset
-    from cwsearch.simulate import invented_array, simulated_array
+    from cwsearch.data.dataset import write_dataset
+    from cwsearch.physics.simulate import invented_array, simulated_array
 
     arr = simulated_array(invented_array(n_pulsars=3, years=5, seed=1, toas_per_pulsar=40), seed=2)
     folder = tmp_path / "data"
@@ -272,7 +272,7 @@ def tiny_dataset(tmp_path):
 
 
 def test_run_pipeline_writes_the_run_folder(tmp_path, tiny_dataset):
-    from cwsearch.config import parse_config
+    from cwsearch.job.config import parse_config
 
     cfg = parse_config(f'dataset = "{tiny_dataset}"\nseed = 9\nout = "run"\n', path=tmp_path / "my.toml")
     calls = Calls()
@@ -285,12 +285,12 @@ def test_run_pipeline_writes_the_run_folder(tmp_path, tiny_dataset):
         assert prov[key] is not None, key
     assert prov["seed"] == 9 and prov["status"] == "complete"
     assert prov["versions"]["numpy"] and prov["versions"]["cwsearch"]
-    from cwsearch.dataset import dataset_checksum
+    from cwsearch.data.dataset import dataset_checksum
 
     assert prov["dataset_checksum"] == dataset_checksum(tiny_dataset)
     assert [s["status"] for s in prov["stages"]] == ["ran"] * 4
     # the resolved run file repeats the run: everything is skipped
-    from cwsearch.config import load_config
+    from cwsearch.job.config import load_config
 
     again = run_pipeline(load_config(run / "run.toml"), specs=_dummy_specs(calls), quiet=True)
     assert [s.status for s in again.stages] == ["skipped"] * 4
@@ -300,11 +300,11 @@ def test_run_pipeline_writes_the_run_folder(tmp_path, tiny_dataset):
 
 
 def test_unavailable_stage_is_reported(tmp_path, tiny_dataset):
-    from cwsearch.config import parse_config
-    from cwsearch.pipeline import StageUnavailable
+    from cwsearch.job.config import parse_config
+    from cwsearch.job.pipeline import StageUnavailable
 
     def missing(ctx):
-        raise StageUnavailable("stage not available: cwsearch.followup is not installed in this copy")
+        raise StageUnavailable("stage not available: cwsearch.stages.followup.stage is not installed in this copy")
 
     specs = _dummy_specs(Calls())
     specs[1] = StageSpec("followup", missing, upstream=("scan",))
@@ -373,7 +373,7 @@ def test_demo_dataset_is_reproducible(tmp_path):
     import numpy as np
 
     from cwsearch.commands.simulate import simulate_dataset
-    from cwsearch.dataset import read_dataset
+    from cwsearch.data.dataset import read_dataset
 
     gen = _load_generator()
     injection = json.loads((gen.TARGET / "injection.json").read_text())
@@ -391,9 +391,9 @@ def test_demo_binary_matches_the_scenario():
     """Injected strain from the published h0 formula; optimal SNR recomputed from the files."""
     import numpy as np
 
-    from cwsearch.dataset import read_dataset
-    from cwsearch.noise import NoiseSettings, NoiseWeighting
-    from cwsearch.simulate import Binary, binary_residuals
+    from cwsearch.data.dataset import read_dataset
+    from cwsearch.physics.noise import NoiseSettings, NoiseWeighting
+    from cwsearch.physics.simulate import Binary, binary_residuals
 
     gen = _load_generator()
     injection = json.loads((gen.TARGET / "injection.json").read_text())
@@ -426,7 +426,7 @@ def test_followup_rows_one_per_frequency_bin():
     """Candidates below the threshold, best first; a weaker one in the same frequency bin is the same source."""
     from astropy.table import Table
 
-    from cwsearch.pipeline import followup_rows
+    from cwsearch.job.pipeline import followup_rows
 
     span = 4e8  # s; one frequency bin = 2.5e-9 Hz
     cands = Table({"frequency": [1.2e-8, 1.2e-8 + 1e-9, 3e-8, 5e-8], "fap": [1e-9, 1e-6, 1e-3, 0.5]})
@@ -442,7 +442,7 @@ def test_quick_demo_end_to_end(tmp_path, capsys):
     """`cwsearch demo --quick` (same code path as the full demo): every stage runs, the report is complete,
     the injected binary is found at its frequency, and a second run skips every stage."""
     from cwsearch.cli import main
-    from cwsearch.config import stage_options_class
+    from cwsearch.job.config import stage_options_class
 
     missing = [s for s in STAGES if stage_options_class(s) is None]
     if missing:
@@ -462,7 +462,7 @@ def test_quick_demo_end_to_end(tmp_path, capsys):
 
     from test_report import PNG_SIGNATURE, parse
 
-    from cwsearch.report import SECTIONS
+    from cwsearch.job.report import SECTIONS
 
     page = parse(out / "report.html")
     assert page.sections == [sid for sid, _ in SECTIONS]

@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
-from cwsearch import relations
-from cwsearch.relations import (KORMENDY_HO_2013, MCCONNELL_MA_2013, MassRatioPrior, chirp_mass_log_density,
+from cwsearch.physics import relations
+from cwsearch.physics.relations import (KORMENDY_HO_2013, MCCONNELL_MA_2013, MassRatioPrior, chirp_mass_log_density,
                                 luminosity_distance, population_chirp_mass_table, redshift_at_distance,
                                 stellar_mass_from_k_band)
 

@@ -19,7 +19,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from cwsearch.report import SECTIONS, build_report
+from cwsearch.job.report import SECTIONS, build_report
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (ISO/IEC 15948), section 5.2
 
@@ -60,7 +60,7 @@ def parse(path):
 
 
 def _png(path, seed):
-    from cwsearch.plots import pyplot, save_figure
+    from cwsearch.core.plotting import pyplot, save_figure
 
     plt = pyplot()
     fig, ax = plt.subplots(figsize=(2, 1.5))
@@ -71,7 +71,7 @@ def _png(path, seed):
 def _table(path, **cols):
     from astropy.table import Table
 
-    from cwsearch.fileio import write_table_atomic
+    from cwsearch.core.fileio import write_table_atomic
 
     write_table_atomic(path, Table(cols))
 
@@ -117,7 +117,7 @@ def run_folder(tmp_path_factory):
                      "median_sigma_ns": 100.0, "red_noise": {"log10_amplitude": -14.0, "index": 3.0}}]}))
     (run / "provenance.json").write_text(json.dumps({"seed": 1, "started": "2026-01-01T00:00:00+00:00",
                                                      "versions": {"numpy": "2.0"}, "host": "h", "cpu_count": 2}))
-    from cwsearch.pipeline import headline_result
+    from cwsearch.job.pipeline import headline_result
 
     (run / "summary.json").write_text(json.dumps({"headline": headline_result(run), "stages": [
         {"stage": s, "status": "ran", "seconds": 1.0, "reason": ""} for s in ("scan", "followup", "hosts", "limits")]}))
@@ -167,10 +167,10 @@ def test_missing_stages_are_explained(tmp_path):
     run = tmp_path / "empty_run"
     run.mkdir()
     (run / "summary.json").write_text(json.dumps({"headline": {}, "stages": [
-        {"stage": "followup", "status": "unavailable", "reason": "stage not available: cwsearch.followup"}]}))
+        {"stage": "followup", "status": "unavailable", "reason": "stage not available: cwsearch.stages.followup.stage"}]}))
     page = parse(build_report(run))
     assert page.sections == [sid for sid, _ in SECTIONS]
-    assert "stage not available: cwsearch.followup" in page.joined
+    assert "stage not available: cwsearch.stages.followup.stage" in page.joined
     assert page.images == []
 
 

@@ -1,4 +1,4 @@
-"""Tests of the tempered-sampler wrapper (cwsearch.sampling).
+"""Tests of the tempered-sampler wrapper (cwsearch.inference.sampling).
 
 Check values: closed-form evidences of Gaussian problems (Gaussian integrals,
 common practice), the autocorrelation time of an AR(1) process
@@ -15,8 +15,8 @@ import sys
 import numpy as np
 import pytest
 
-from cwsearch.errors import InputError
-from cwsearch.sampling import (SamplerSettings, VectorisedPool, integrated_time, load_ptemcee, run_sampler,
+from cwsearch.core.errors import InputError
+from cwsearch.inference.sampling import (SamplerSettings, VectorisedPool, integrated_time, load_ptemcee, run_sampler,
                                stationary, thermodynamic_log_evidence)
 
 BOX = 5.0
@@ -33,7 +33,7 @@ def unit_gaussian(x):
 
 def test_numpy_untouched_by_compatibility_namespace():
     # NumPy 2 has neither `float` nor `trapz`; loading ptemcee must not add them (fresh interpreter).
-    code = ("import numpy; before = set(dir(numpy)); from cwsearch.sampling import load_ptemcee; "
+    code = ("import numpy; before = set(dir(numpy)); from cwsearch.inference.sampling import load_ptemcee; "
             "s = load_ptemcee(); import ptemcee.util as u; "
             "assert set(dir(numpy)) == before; assert not hasattr(numpy, 'float'); "
             "assert not hasattr(numpy, 'trapz'); assert s.np.float is float; "

@@ -15,10 +15,10 @@ import pytest
 from astropy.table import Table
 from scipy import stats
 
-from cwsearch import scan
-from cwsearch.noise import NoiseSettings, NoiseWeighting
-from cwsearch.scan import ScanOptions, run_scan
-from cwsearch.simulate import Binary, binary_residuals, invented_array, simulate_residuals
+from cwsearch.stages.scan import stage as scan
+from cwsearch.physics.noise import NoiseSettings, NoiseWeighting
+from cwsearch.stages.scan.stage import ScanOptions, run_scan
+from cwsearch.physics.simulate import Binary, binary_residuals, invented_array, simulate_residuals
 
 FAST = dict(nside=2, fmax=3e-8, no_plots=True)
 
@@ -48,7 +48,7 @@ def test_frequency_grid_definition():
 @pytest.mark.parametrize("field, value", [("nside", 3), ("oversample", 0), ("fmin", -1.0), ("statistic", "fx"),
                                           ("null_sims", -2), ("fap_threshold", 0.0), ("max_candidates", 0)])
 def test_bad_options_are_input_errors(field, value):
-    from cwsearch.errors import InputError
+    from cwsearch.core.errors import InputError
 
     with pytest.raises(InputError, match=field.replace("_", "-")):
         ScanOptions(**{field: value}).validate()
@@ -66,7 +66,7 @@ def test_command_defaults_match_options():
 # ---------------------------------------------------------------- peaks
 def test_local_maxima_and_merging():
     # a smooth bump on a flat map has one local maximum; two peaks one bin apart merge (common practice)
-    from cwsearch import sky
+    from cwsearch.physics import sky
 
     nside = 4
     ra, dec = sky.pixel_centres(nside)
@@ -126,7 +126,7 @@ def test_fp_only_scan(tmp_path, noise_array):
 
 def test_interrupted_scan_leaves_no_partial_files(tmp_path, noise_array, monkeypatch):
     # Ctrl-C while plotting: tables already written are whole, nothing half-written, no summary yet
-    from cwsearch.plots import scan as scan_plots
+    from cwsearch.stages.scan import plots as scan_plots
 
     def interrupt(*args, **kwargs):
         raise KeyboardInterrupt
@@ -165,7 +165,7 @@ def test_loud_injection_is_recovered(tmp_path):
     clean, _ = scan.fe_map(engine, res.frequencies, fplus, fcross, residuals=signal)
     k = int(np.argmax(clean.fe_max[0]))
     region = clean.fe_map[:, k] >= clean.fe_max[0, k] - stats.chi2(3).ppf(0.99) / 2
-    from cwsearch import sky
+    from cwsearch.physics import sky
 
     near = region | np.any(region[sky.pixel_neighbours(8)] & (sky.pixel_neighbours(8) >= 0), axis=1)
     assert near[int(best["pixel"])]

@@ -15,9 +15,9 @@ from astropy import units as u
 from astropy.coordinates import SkyCoord
 from scipy import stats
 
-from cwsearch.model import Array, Pulsar
-from cwsearch.noise import powerlaw_variance
-from cwsearch.simulate import correlated_background, invented_array, simulate_residuals
+from cwsearch.data.model import Array, Pulsar
+from cwsearch.physics.noise import powerlaw_variance
+from cwsearch.physics.simulate import correlated_background, invented_array, simulate_residuals
 
 Z_LIMIT = 4.0   # two-sided p ≈ 6e-5 per pair; fixed seeds make the outcome deterministic
 
@@ -151,9 +151,9 @@ def test_injection_json_describes_the_data(tmp_path):
     """The binary recorded in injection.json (degrees, pulsar-term phases) reproduces exactly the signal in the
     data: dataset(strain) − dataset(strain 0) with the same seed equals the post-fit waveform from the record.
     (Residuals through waveform.residuals; post-fit by weighted least squares written here, common practice.)"""
-    from cwsearch import waveform
+    from cwsearch.physics import waveform
     from cwsearch.commands.simulate import SimulateOptions, simulate_dataset
-    from cwsearch.dataset import read_dataset
+    from cwsearch.data.dataset import read_dataset
 
     base = dict(pulsars=4, years=8, toas_per_pulsar=60, inject_frequency=9e-9, inject_ra=150.0,
                 inject_dec=-20.0, inject_chirp_mass=3e9, inject_inclination=1.0, inject_polarization=0.2,

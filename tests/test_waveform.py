@@ -2,7 +2,7 @@
 
 Sources are named beside each check (see shared/CHECKS.md). Reference numbers are
 computed in the tests from astropy.constants / astropy.units, independently of
-cwsearch.constants.
+cwsearch.core.constants.
 """
 
 from __future__ import annotations
@@ -14,8 +14,9 @@ from astropy import units as u
 from astropy.coordinates import SkyCoord
 from scipy.integrate import solve_ivp
 
-from cwsearch import constants, waveform
-from cwsearch.errors import CoalescenceError, InputError
+from cwsearch.core import constants
+from cwsearch.physics import waveform
+from cwsearch.core.errors import CoalescenceError, InputError
 
 YEAR = (1 * u.yr).to_value(u.s)                       # Julian year (astropy)
 MSUN_SECONDS = (const.G * const.M_sun / const.c**3).to_value(u.s)

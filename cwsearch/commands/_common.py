@@ -27,8 +27,8 @@ def add_noise_arguments(parser):
 
 
 def noise_settings(args):
-    """:class:`~cwsearch.noise.NoiseSettings` from parsed noise options."""
-    from ..noise import NoiseSettings
+    """:class:`~cwsearch.physics.noise.NoiseSettings` from parsed noise options."""
+    from ..physics.noise import NoiseSettings
 
     return NoiseSettings(red_components=args.red_components,
                          pulsar_red_noise=not args.no_pulsar_red_noise,
@@ -38,7 +38,7 @@ def noise_settings(args):
 
 def load_array(args):
     """Read and validate the dataset named on the command line."""
-    from ..dataset import read_dataset
+    from ..data.dataset import read_dataset
 
     return read_dataset(args.dataset)
 

@@ -64,7 +64,7 @@ def demo_paths():
 
 def demo_settings(quick=False) -> dict:
     """The demo's stage settings (``DEMO`` with ``QUICK`` applied), only for installed stages."""
-    from ..config import stage_options_class
+    from ..job.config import stage_options_class
 
     settings = {}
     for stage, values in DEMO.items():
@@ -77,11 +77,11 @@ def demo_settings(quick=False) -> dict:
 
 
 def demo_config(out, *, quick=False, seed=0):
-    """The demo's :class:`~cwsearch.config.RunConfig` (validated like any run file)."""
+    """The demo's :class:`~cwsearch.job.config.RunConfig` (validated like any run file)."""
     from pathlib import Path
 
-    from ..config import parse_config, to_toml
-    from ..errors import InputError
+    from ..job.config import parse_config, to_toml
+    from ..core.errors import InputError
 
     dataset, catalog = demo_paths()
     if not dataset.is_dir():
@@ -101,7 +101,7 @@ def demo_config(out, *, quick=False, seed=0):
 
 
 def run(args) -> int:
-    from ..pipeline import run_pipeline
+    from ..job.pipeline import run_pipeline
     from .run import print_result
 
     out = args.out or ("runs/demo-quick" if args.quick else "runs/demo")

@@ -62,7 +62,7 @@ def run(args) -> int:
     import json
     from dataclasses import fields
 
-    from ..followup import FollowupOptions, run_followup
+    from ..stages.followup.stage import FollowupOptions, run_followup
 
     options = FollowupOptions(**{f.name: getattr(args, f.name) for f in fields(FollowupOptions)})
     array = load_array(args)

@@ -57,7 +57,7 @@ def add_arguments(parser):
 
 
 def run(args) -> int:
-    from ..hosts import HostsOptions, format_table, run_hosts, summary_json
+    from ..stages.hosts.stage import HostsOptions, format_table, run_hosts, summary_json
 
     options = HostsOptions(catalog=args.catalog, columns=args.columns, completeness=args.completeness,
                            relation=args.relation, top=args.top, distance_limit=args.distance_limit,

@@ -25,7 +25,7 @@ def run(args) -> int:
     import sys
     import warnings
 
-    from ..dataset import read_dataset
+    from ..data.dataset import read_dataset
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
@@ -41,14 +41,14 @@ def run(args) -> int:
 
 
 def summarize(array, path=None) -> dict:
-    """JSON-serialisable description of an :class:`~cwsearch.model.Array` (what ``inspect`` prints)."""
+    """JSON-serialisable description of an :class:`~cwsearch.data.model.Array` (what ``inspect`` prints)."""
     import json
     from pathlib import Path
 
     import numpy as np
 
-    from ..constants import DAY_SECONDS, YEAR_SECONDS
-    from ..dataset import INJECTION_FILE, dataset_checksum
+    from ..core.constants import DAY_SECONDS, YEAR_SECONDS
+    from ..data.dataset import INJECTION_FILE, dataset_checksum
 
     pulsars = []
     for p in array:

@@ -1,5 +1,5 @@
 """``cwsearch limits``: 95 % strain upper limits versus frequency and sky, chirp-mass limits for galaxies
-(thin wrapper over :func:`cwsearch.limits.run_limits`)."""
+(thin wrapper over :func:`cwsearch.stages.limits.stage.run_limits`)."""
 
 from __future__ import annotations
 
@@ -31,7 +31,7 @@ EXAMPLE = """\
   cwsearch limits mydata --out runs/first --scheduler tcp://10.0.0.5:8786
   cwsearch limits mydata --out runs/first --mcmc-check 300"""
 
-#: defaults (equal to cwsearch.limits.LimitsOptions; a test checks they agree)
+#: defaults (equal to cwsearch.stages.limits.stage.LimitsOptions; a test checks they agree)
 _DEFAULTS = {"oversample": 1, "nside": 8, "method": "bayes", "quadrature": "standard"}
 
 
@@ -68,8 +68,8 @@ def add_arguments(parser):
 
 
 def options_from_args(args):
-    """:class:`cwsearch.limits.LimitsOptions` from parsed arguments."""
-    from ..limits import LimitsOptions
+    """:class:`cwsearch.stages.limits.stage.LimitsOptions` from parsed arguments."""
+    from ..stages.limits.stage import LimitsOptions
 
     galaxy = tuple((str(n), ra, dec, dist) for n, ra, dec, dist in (args.galaxy or ()))
     return LimitsOptions(fmin=args.fmin, fmax=args.fmax, oversample=args.oversample, nside=args.nside,
@@ -87,7 +87,7 @@ def run(args) -> int:
     import json
 
     from ._common import load_array, noise_settings
-    from ..limits import parse_galaxies, run_limits
+    from ..stages.limits.stage import parse_galaxies, run_limits
 
     options = options_from_args(args)
     parse_galaxies(options.galaxy)  # number errors before the dataset is read

@@ -49,7 +49,7 @@ def print_result(result, args) -> None:
     """The end-of-run message: report path and headline (or JSON)."""
     import json
 
-    from ..pipeline import format_headline
+    from ..job.pipeline import format_headline
 
     if args.json:
         print(json.dumps(result.summary, indent=2, default=str))
@@ -63,8 +63,8 @@ def print_result(result, args) -> None:
 
 
 def run(args) -> int:
-    from ..config import load_config
-    from ..pipeline import run_pipeline
+    from ..job.config import load_config
+    from ..job.pipeline import run_pipeline
 
     config = load_config(args.runfile)
     if args.check:

@@ -1,4 +1,4 @@
-"""``cwsearch scan``: all-sky F-statistic scan over frequency × sky (thin wrapper over :func:`cwsearch.scan.run_scan`)."""
+"""``cwsearch scan``: all-sky F-statistic scan over frequency × sky (thin wrapper over :func:`cwsearch.stages.scan.stage.run_scan`)."""
 
 from __future__ import annotations
 
@@ -23,7 +23,7 @@ EXAMPLE = """\
   cwsearch scan mydata --out runs/deep --fmax 2e-7 --oversample 4 --nside 32 --null-sims 100
   cwsearch scan mydata --out runs/fp --statistic fp --common-log10-amplitude -14.6"""
 
-#: defaults (equal to cwsearch.scan.ScanOptions; a test checks they agree)
+#: defaults (equal to cwsearch.stages.scan.stage.ScanOptions; a test checks they agree)
 _DEFAULTS = {"oversample": 2, "nside": 16, "statistic": "both", "null_sims": 0, "fap_threshold": 0.5,
              "max_candidates": 20, "merge_angle": 180.0}
 
@@ -50,8 +50,8 @@ def add_arguments(parser):
 
 
 def options_from_args(args):
-    """:class:`cwsearch.scan.ScanOptions` from parsed arguments."""
-    from ..scan import ScanOptions
+    """:class:`cwsearch.stages.scan.stage.ScanOptions` from parsed arguments."""
+    from ..stages.scan.stage import ScanOptions
 
     return ScanOptions(fmin=args.fmin, fmax=args.fmax, oversample=args.oversample, nside=args.nside,
                        statistic=args.statistic, null_sims=args.null_sims, fap_threshold=args.fap_threshold,
@@ -81,7 +81,7 @@ def run(args) -> int:
     import json
 
     from ._common import load_array, noise_settings
-    from ..scan import run_scan
+    from ..stages.scan.stage import run_scan
 
     options = options_from_args(args).validate()
     array = load_array(args)

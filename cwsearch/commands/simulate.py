@@ -130,7 +130,7 @@ def run(args) -> int:
 
 # ---------------------------------------------------------------------- library
 def _check_options(o: SimulateOptions):
-    from ..errors import InputError
+    from ..core.errors import InputError
 
     checks = [
         (o.pulsars >= 1, "--pulsars must be at least 1"),
@@ -150,8 +150,8 @@ def _binary_from_dict(spec: dict, where: str, pulsar_names):
     """Validate one binary given in user units (deg, Hz, Msun, Mpc, rad) -> keyword dict in model units."""
     import math
 
-    from .. import waveform
-    from ..errors import InputError
+    from ..physics import waveform
+    from ..core.errors import InputError
 
     unknown = set(spec) - _BINARY_KEYS - _DERIVED_KEYS
     if unknown:
@@ -213,7 +213,7 @@ def _binary_specs(o: SimulateOptions, pulsar_names):
     import json
     from pathlib import Path
 
-    from ..errors import InputError
+    from ..core.errors import InputError
 
     specs = []
     if o.inject_file is not None:
@@ -253,7 +253,7 @@ def _pulsar_phases(array, spec):
     """Pulsar-term orbital phases at the reference time [rad] for the coherent model (one per pulsar)."""
     import numpy as np
 
-    from .. import waveform
+    from ..physics import waveform
 
     _, _, omega_dot_p = waveform.antenna_pattern(spec["ra"], spec["dec"], array.positions)
     phases = []
@@ -268,19 +268,20 @@ def simulate_dataset(outdir, options: SimulateOptions | None = None, *, seed=0, 
     """Simulate an invented dataset and write it (with injection.json) to ``outdir``.
 
     Returns a JSON-serialisable summary (also the content of injection.json
-    plus the folder name and sizes). Raises :class:`~cwsearch.errors.InputError`
-    (e.g. :class:`~cwsearch.errors.CoalescenceError` when an injected binary
+    plus the folder name and sizes). Raises :class:`~cwsearch.core.errors.InputError`
+    (e.g. :class:`~cwsearch.core.errors.CoalescenceError` when an injected binary
     would merge inside the data span).
     """
     import math
 
     import numpy as np
 
-    from .. import __version__, waveform
-    from ..constants import DAY_SECONDS, YEAR_SECONDS
-    from ..dataset import write_dataset
-    from ..noise import NoiseSettings, NoiseWeighting
-    from ..simulate import Binary, binary_residuals, invented_array, simulate_residuals
+    from .. import __version__
+    from ..physics import waveform
+    from ..core.constants import DAY_SECONDS, YEAR_SECONDS
+    from ..data.dataset import write_dataset
+    from ..physics.noise import NoiseSettings, NoiseWeighting
+    from ..physics.simulate import Binary, binary_residuals, invented_array, simulate_residuals
 
     o = options or SimulateOptions()
     _check_options(o)

@@ -1,0 +1,52 @@
+"""Dataset overview plot for the report: pulsar sky positions and observing spans per backend."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ..core.plotting import _wrap_ra, pyplot, save_figure
+
+
+def dataset_overview(array, path, *, marks=None):
+    """Two panels: pulsars on a Mollweide sky (size ~ 1/median sigma) and TOA coverage per backend.
+
+    ``marks``: optional list of dicts (``ra``, ``dec`` [rad], ``label``) drawn on the sky panel.
+    """
+    from ..core.constants import DAY_SECONDS
+
+    plt = pyplot()
+    fig = plt.figure(figsize=(11, 4.2))
+    ax = fig.add_subplot(1, 2, 1, projection="mollweide")
+    ra = np.array([p.ra for p in array])
+    dec = np.array([p.dec for p in array])
+    sig = np.array([np.median(p.sigmas) for p in array])
+    size = 40 + 160 * (sig.min() / sig)
+    ax.scatter(_wrap_ra(ra), dec, s=size, marker="*", c="tab:blue", edgecolors="black", linewidths=0.4,
+               label="pulsars (larger: lower TOA sigma)")
+    for mark in marks or []:
+        ax.scatter(_wrap_ra(mark["ra"]), mark["dec"], marker="x", s=70, c="red", label=mark.get("label"))
+    ax.set_xticklabels([f"{int(h)}h" for h in np.linspace(10, -10, 11) % 24])
+    ax.grid(True, alpha=0.3)
+    ax.legend(loc="lower right", fontsize=7)
+    ax.set_title("pulsar positions (equatorial)", pad=12)
+
+    ax2 = fig.add_subplot(1, 2, 2)
+    cmap = plt.get_cmap("tab10")
+    backends = sorted({b for p in array for b in p.backend_names})
+    colour = {b: cmap(i % 10) for i, b in enumerate(backends)}
+    for i, p in enumerate(array):
+        years = 2000.0 + (p.mjd - 51544.5) / 365.25
+        for b in p.backend_names:
+            sel = p.backends == b
+            ax2.plot(years[sel], np.full(sel.sum(), i), "|", ms=6, color=colour[b])
+    for b in backends:
+        ax2.plot([], [], "|", color=colour[b], label=b)
+    ax2.set_yticks(range(len(array)))
+    ax2.set_yticklabels(array.names, fontsize=6)
+    ax2.set_xlabel("year")
+    ax2.set_title(f"{sum(p.n_toas for p in array)} TOAs over {array.span / DAY_SECONDS / 365.25:.1f} yr", pad=22)
+    ax2.legend(fontsize=7, loc="lower center", bbox_to_anchor=(0.5, 1.0), ncol=max(len(backends), 1),
+               frameon=False)
+    ax2.invert_yaxis()
+    fig.tight_layout()
+    save_figure(fig, path)

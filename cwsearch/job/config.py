@@ -1,0 +1,709 @@
+"""TOML run files: read, validate against the stage options, write back fully resolved.
+
+A run file names the dataset, the run folder, the seed, the stages to run
+and one section per stage. The keys of a stage section are the field names
+of that stage's frozen options dataclass (``cwsearch.stages.scan.stage.ScanOptions`` for
+``[scan]`` and so on), which are also the stage command's option names with
+dashes turned into underscores. The schema is *built from those dataclasses*
+(``dataclasses.fields`` and their type hints), so a new option in a stage is
+automatically a valid run-file key, with the same default.
+
+Every problem (TOML syntax, unknown section or key, wrong type, missing
+dataset, bad engine, a value the stage rejects) raises
+:class:`~cwsearch.core.errors.InputError` naming the file, the key and its line,
+before any work starts.
+
+Relative paths in a run file are relative to the folder holding the run
+file, so a run file works from any working directory. The resolved copy
+written into the run folder (``run.toml``) has every key, defaults filled in
+and absolute paths, so ``cwsearch run RUN_DIR/run.toml`` repeats the run.
+
+Examples
+--------
+>>> import pathlib, tempfile
+>>> from cwsearch.job.config import parse_config, to_toml
+>>> d = pathlib.Path(tempfile.mkdtemp())
+>>> (d / "data").mkdir()
+>>> cfg = parse_config('dataset = "data"\\nseed = 7\\n[noise]\\nred_components = 12\\n', path=d / "r.toml")
+>>> cfg.seed, cfg.noise.red_components, cfg.out.name
+(7, 12, 'r')
+>>> print(to_toml({"seed": 7, "noise": {"common_index": 13 / 3, "pulsar_red_noise": True}}), end="")
+seed = 7
+<BLANKLINE>
+[noise]
+common_index = 4.333333333333333
+pulsar_red_noise = true
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import importlib
+import math
+import re
+import types
+import typing
+from dataclasses import dataclass, field
+from pathlib import Path
+
+from ..core.errors import InputError
+
+#: stage name -> (module, options class), in pipeline order
+STAGE_OPTIONS = {
+    "scan": ("cwsearch.stages.scan.stage", "ScanOptions"),
+    "followup": ("cwsearch.stages.followup.stage", "FollowupOptions"),
+    "hosts": ("cwsearch.stages.hosts.stage", "HostsOptions"),
+    "limits": ("cwsearch.stages.limits.stage", "LimitsOptions"),
+}
+STAGES = tuple(STAGE_OPTIONS)
+
+#: options the pipeline fills in itself (never run-file keys), per stage
+PIPELINE_SET = {
+    "scan": frozenset(),
+    "followup": frozenset({"candidate", "top", "frequency", "ra", "dec", "all_sky", "resume"}),
+    "hosts": frozenset({"candidate"}),
+    "limits": frozenset({"workers", "scheduler"}),  # from [engine]
+}
+
+ENGINE_KINDS = ("local", "dask")
+
+_PIPELINE_HINTS = {
+    "workers": "set [engine] workers",
+    "scheduler": "set [engine] kind = \"dask\" and address",
+    "candidate": "the pipeline follows every candidate below [followup] fap_threshold",
+    "top": "use [followup] max_candidates",
+    "resume": "an interrupted run resumes by itself",
+}
+
+
+# ---------------------------------------------------------------- schema
+class _Required:
+    def __repr__(self):
+        return "REQUIRED"
+
+
+REQUIRED = _Required()
+
+
+@dataclass(frozen=True)
+class Key:
+    """One run-file key: name, type hint, default (``MISSING`` when required), help text."""
+
+    name: str
+    hint: object
+    default: object = REQUIRED
+    doc: str = ""
+    choices: tuple = ()
+
+    @property
+    def required(self) -> bool:
+        return self.default is REQUIRED
+
+
+#: top-level keys (not in a section)
+TOP_KEYS = {
+    "dataset": Key("dataset", str, REQUIRED, doc="dataset folder (pulsars.ecsv, residuals/, optional noise.ecsv)"),
+    "out": Key("out", str, None, "run folder (default: runs/<run file name> next to the run file)"),
+    "seed": Key("seed", int, 0, "random seed of the whole run"),
+    "title": Key("title", str, "", "title shown on the report"),
+    "stages": Key("stages", list[str], list(STAGES), "stages to run, in pipeline order", STAGES),
+}
+
+#: keys the pipeline adds to a stage section (they select what the stage sees)
+PIPELINE_KEYS = {
+    "followup": {
+        "fap_threshold": Key("fap_threshold", float, 0.01,
+                             "follow up every scan candidate whose false-alarm probability is below this"),
+        "max_candidates": Key("max_candidates", int, 3, "follow up at most this many candidates (best first)"),
+    },
+}
+
+#: keys holding file paths (relative paths are relative to the run file's folder)
+PATH_KEYS = {"hosts": ("catalog", "sky_map"), "limits": ("catalog", "galaxies", "galaxy_catalog")}
+
+ENGINE_KEYS = {
+    "kind": Key("kind", str, "local", "'local' (worker processes on this machine) or 'dask' (a running scheduler)",
+                ENGINE_KINDS),
+    "workers": Key("workers", int, 0, "local worker processes (0: one per CPU)"),
+    "address": Key("address", str, "", "Dask scheduler address, e.g. 'tcp://10.0.0.5:8786' (kind = 'dask')"),
+}
+
+
+def stage_options_class(stage):
+    """The options dataclass of ``stage``, or ``None`` if the stage module is not installed."""
+    module_name, class_name = STAGE_OPTIONS[stage]
+    try:
+        module = importlib.import_module(module_name)
+    except ModuleNotFoundError as exc:
+        if exc.name and (exc.name == module_name or module_name.startswith(exc.name + ".")):
+            return None
+        raise
+    return getattr(module, class_name, None)
+
+
+def dataclass_keys(cls, exclude=frozenset()):
+    """Run-file keys from the fields of a dataclass (type hints resolved, defaults kept)."""
+    try:
+        hints = typing.get_type_hints(cls)
+    except Exception:  # an unresolvable annotation: fall back to the default's type
+        hints = {}
+    keys = {}
+    for f in dataclasses.fields(cls):
+        if f.name.startswith("_") or f.name in exclude or not f.init:
+            continue
+        if f.default is not dataclasses.MISSING:
+            default = f.default
+        elif f.default_factory is not dataclasses.MISSING:  # type: ignore[misc]
+            default = f.default_factory()  # type: ignore[misc]
+        else:
+            default = REQUIRED
+        hint = hints.get(f.name, type(default) if default is not None and default is not REQUIRED else object)
+        doc = f.metadata.get("help", "") if f.metadata else ""
+        keys[f.name] = Key(f.name, hint, default, doc, tuple(_literal_choices(hint)))
+    return keys
+
+
+def _literal_choices(hint):
+    if typing.get_origin(hint) is typing.Literal:
+        return typing.get_args(hint)
+    return ()
+
+
+def section_keys(section):
+    """All keys of a section, or ``None`` if its stage is not installed (then the section is not checked)."""
+    if section == "engine":
+        return dict(ENGINE_KEYS)
+    if section == "noise":
+        from ..physics.noise import NoiseSettings
+
+        return dataclass_keys(NoiseSettings)
+    cls = stage_options_class(section)
+    if cls is None:
+        return None
+    keys = dataclass_keys(cls, PIPELINE_SET.get(section, frozenset()))
+    for name, key in PIPELINE_KEYS.get(section, {}).items():
+        keys.setdefault(name, key)
+    return keys
+
+
+SECTIONS = ("engine", "noise") + STAGES
+
+
+# ---------------------------------------------------------------- type checking
+def _type_name(hint) -> str:
+    origin = typing.get_origin(hint)
+    if hint is bool:
+        return "true or false"
+    if hint is int:
+        return "an integer"
+    if hint is float:
+        return "a number"
+    if hint is str or hint is Path:
+        return "a string"
+    if origin is typing.Literal:
+        return "one of " + ", ".join(repr(c) for c in typing.get_args(hint))
+    if origin in (typing.Union, types.UnionType):
+        names = [_type_name(a) for a in typing.get_args(hint) if a is not type(None)]
+        return " or ".join(names)
+    if origin in (list, tuple) or hint in (list, tuple):
+        args = [a for a in typing.get_args(hint) if a is not Ellipsis]
+        inner = _type_name(args[0]) if args else "values"
+        return f"a list of {inner.removeprefix('an ').removeprefix('a ')}s" if args else "a list"
+    if origin is dict or hint is dict:
+        return "a table"
+    return getattr(hint, "__name__", str(hint))
+
+
+class _Mismatch(Exception):
+    pass
+
+
+def _toml_kind(value) -> str:
+    if isinstance(value, bool):
+        return f"boolean {str(value).lower()}"
+    if isinstance(value, int):
+        return f"integer {value}"
+    if isinstance(value, float):
+        return f"number {value!r}"
+    if isinstance(value, str):
+        return f"string {value!r}"
+    if isinstance(value, list):
+        return "a list"
+    if isinstance(value, dict):
+        return "a table"
+    return type(value).__name__
+
+
+def coerce(value, hint):
+    """Check ``value`` (as read from TOML) against a type hint and return it converted.
+
+    ints are accepted where floats are expected; booleans are never numbers;
+    TOML arrays become tuples where the field is a tuple. Raises
+    ``_Mismatch`` on a wrong type.
+    """
+    origin = typing.get_origin(hint)
+    if hint is object or hint is typing.Any:
+        return value
+    if hint is bool:
+        if isinstance(value, bool):
+            return value
+        raise _Mismatch
+    if hint is int:
+        if isinstance(value, int) and not isinstance(value, bool):
+            return value
+        raise _Mismatch
+    if hint is float:
+        if isinstance(value, (int, float)) and not isinstance(value, bool):
+            return float(value)
+        raise _Mismatch
+    if hint is str:
+        if isinstance(value, str):
+            return value
+        raise _Mismatch
+    if hint is Path:
+        if isinstance(value, str):
+            return Path(value)
+        raise _Mismatch
+    if origin is typing.Literal:
+        if value in typing.get_args(hint) and type(value) in {type(a) for a in typing.get_args(hint)}:
+            return value
+        raise _Mismatch
+    if origin in (typing.Union, types.UnionType):
+        for arg in typing.get_args(hint):
+            if arg is type(None):
+                continue
+            try:
+                return coerce(value, arg)
+            except _Mismatch:
+                pass
+        raise _Mismatch
+    if origin in (list, tuple) or hint in (list, tuple):
+        if not isinstance(value, list):
+            raise _Mismatch
+        args = typing.get_args(hint)
+        if origin is tuple and args and args[-1] is not Ellipsis:
+            if len(args) != len(value):
+                raise _Mismatch
+            items = [coerce(v, a) for v, a in zip(value, args)]
+        else:
+            item_hint = args[0] if args else object
+            items = [coerce(v, item_hint) for v in value]
+        return tuple(items) if (origin is tuple or hint is tuple) else items
+    if origin is dict or hint is dict:
+        if not isinstance(value, dict):
+            raise _Mismatch
+        args = typing.get_args(hint)
+        if args:
+            return {coerce(k, args[0]): coerce(v, args[1]) for k, v in value.items()}
+        return dict(value)
+    if isinstance(hint, type):
+        if isinstance(value, hint):
+            return value
+        raise _Mismatch
+    return value
+
+
+# ---------------------------------------------------------------- the resolved configuration
+@dataclass
+class RunConfig:
+    """A validated, fully resolved run configuration.
+
+    Attributes
+    ----------
+    path : Path or None, the run file
+    dataset, out : Path (absolute)
+    seed : int
+    title : str
+    stages : tuple of stage names to run, in pipeline order
+    engine : dict with ``kind``, ``workers``, ``address``
+    noise : :class:`~cwsearch.physics.noise.NoiseSettings`
+    options : dict stage -> options dataclass instance (``None`` if the stage is not installed)
+    extra : dict stage -> dict of pipeline keys (``fap_threshold``, ``catalog``, ...)
+    raw : dict stage -> dict of keys exactly as given (for stages not installed)
+    """
+
+    path: Path | None
+    dataset: Path
+    out: Path
+    seed: int = 0
+    title: str = ""
+    stages: tuple = STAGES
+    engine: dict = field(default_factory=lambda: {"kind": "local", "workers": 0, "address": ""})
+    noise: object = None
+    options: dict = field(default_factory=dict)
+    extra: dict = field(default_factory=dict)
+    raw: dict = field(default_factory=dict)
+
+    def stage_config(self, stage) -> dict:
+        """Everything that determines a stage's result (for hashing): its options plus pipeline keys."""
+        opts = self.options.get(stage)
+        values = _dataclass_values(opts) if opts is not None else dict(self.raw.get(stage, {}))
+        for name in PIPELINE_SET.get(stage, ()):  # filled in by the pipeline at run time
+            values.pop(name, None)
+        values.update(self.extra.get(stage, {}))
+        return values
+
+    def to_dict(self) -> dict:
+        """Nested dict of every key (defaults filled in; ``None`` means 'not set')."""
+        out = {
+            "dataset": str(self.dataset),
+            "out": str(self.out),
+            "seed": self.seed,
+            "title": self.title,
+            "stages": list(self.stages),
+            "engine": dict(self.engine),
+            "noise": _dataclass_values(self.noise),
+        }
+        for stage in STAGES:
+            out[stage] = self.stage_config(stage)
+        return out
+
+    def to_toml(self) -> str:
+        """The fully resolved run file (see :func:`to_toml`)."""
+        header = ("# cwsearch run file, fully resolved: every key with its value (defaults filled in,\n"
+                  "# paths absolute). Repeat the run with:  cwsearch run THIS_FILE\n")
+        return header + to_toml(self.to_dict())
+
+    def write(self, path) -> None:
+        """Write :meth:`to_toml` to ``path`` atomically."""
+        from ..core.fileio import write_text_atomic
+
+        write_text_atomic(path, self.to_toml())
+
+
+def _dataclass_values(obj) -> dict:
+    if obj is None:
+        return {}
+    values = {}
+    for f in dataclasses.fields(obj):
+        if f.name.startswith("_"):
+            continue
+        v = getattr(obj, f.name)
+        values[f.name] = _plain(v)
+    return values
+
+
+def _plain(v):
+    if isinstance(v, Path):
+        return str(v)
+    if isinstance(v, tuple):
+        return [_plain(x) for x in v]
+    if isinstance(v, list):
+        return [_plain(x) for x in v]
+    if isinstance(v, dict):
+        return {str(k): _plain(x) for k, x in v.items()}
+    if hasattr(v, "item") and not isinstance(v, (str, bytes)):  # numpy scalar
+        try:
+            return v.item()
+        except Exception:
+            return v
+    return v
+
+
+# ---------------------------------------------------------------- reading
+def _line_of(text: str, section: str | None, key: str | None):
+    """Line number (from 1) of ``key`` in ``[section]`` (or of the section header), else None."""
+    current = None
+    header = re.compile(r"^\s*\[\s*([A-Za-z0-9_.\-]+)\s*\]")
+    for number, line in enumerate(text.splitlines(), start=1):
+        m = header.match(line)
+        if m:
+            current = m.group(1)
+            if key is None and current == section:
+                return number
+            continue
+        if key is not None and current == section:
+            if re.match(r"^\s*[\"']?" + re.escape(key) + r"[\"']?\s*=", line):
+                return number
+    return None
+
+
+def _where(text, section, key):
+    line = _line_of(text, section, key)
+    name = key if section is None else (f"[{section}] {key}" if key else f"[{section}]")
+    return f"line {line}: {name}" if line else name
+
+
+def load_config(path) -> RunConfig:
+    """Read and validate a TOML run file.
+
+    Raises :class:`~cwsearch.core.errors.InputError` for a missing file, bad TOML
+    syntax, unknown sections or keys, wrong types, a missing dataset folder,
+    a bad engine, or an option value that a stage rejects.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputError("run file not found", file=path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InputError(f"cannot read the run file ({exc})", file=path) from None
+    return parse_config(text, path=path)
+
+
+def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunConfig:
+    """Validate run-file ``text``; relative paths are relative to ``base`` (default: the run file's folder)."""
+    import tomllib
+
+    path = Path(path) if path is not None else None
+    fname = path if path is not None else "run file"
+    base = Path(base) if base is not None else (path.parent if path is not None else Path.cwd())
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise InputError(f"not valid TOML: {exc}", file=fname) from None
+
+    def fail(message, section=None, key=None):
+        raise InputError(f"{_where(text, section, key)}: {message}", file=fname)
+
+    # ---- top level
+    values = {}
+    for name, value in data.items():
+        if isinstance(value, dict):
+            if name not in SECTIONS:
+                fail(f"unknown section (known sections: {', '.join(SECTIONS)})", name)
+            continue
+        key = TOP_KEYS.get(name)
+        if key is None:
+            hint = f"; did you mean [{name}]?" if name in SECTIONS else ""
+            fail(f"unknown key (known top-level keys: {', '.join(TOP_KEYS)}){hint}", None, name)
+        values[name] = _check(key, value, fail, None)
+    if "dataset" not in values:
+        raise InputError("the run file must name a dataset: add  dataset = \"path/to/dataset\"  at the top",
+                         file=fname)
+    for key in TOP_KEYS.values():
+        if key.name not in values and not key.required:
+            values[key.name] = _copy(key.default)
+    stages = tuple(values["stages"])
+    for s in stages:
+        if s not in STAGES:
+            fail(f"unknown stage {s!r} (choose from {', '.join(STAGES)})", None, "stages")
+    if len(set(stages)) != len(stages):
+        fail("a stage is listed twice", None, "stages")
+    stages = tuple(s for s in STAGES if s in stages)
+
+    dataset = _resolve(base, values["dataset"])
+    if check_dataset and not dataset.is_dir():
+        if dataset.exists():
+            fail(f"the dataset must be a folder, got the file {dataset}", None, "dataset")
+        fail(f"dataset folder not found: {dataset}", None, "dataset")
+    if values["out"]:
+        out = _resolve(base, values["out"])
+    else:
+        stem = path.stem if path is not None else "run"
+        out = (base / "runs" / stem).resolve() if base.name != "runs" else (base / stem).resolve()
+    if values["seed"] < 0:
+        fail("must be >= 0", None, "seed")
+
+    # ---- sections
+    engine = _check_section("engine", data.get("engine", {}), section_keys("engine"), fail)
+    if engine["kind"] == "dask" and not engine["address"]:
+        fail("kind = 'dask' needs the scheduler address, e.g. address = \"tcp://10.0.0.5:8786\"", "engine", "kind")
+    if engine["workers"] < 0:
+        fail("must be >= 0 (0: one per CPU)", "engine", "workers")
+
+    from ..physics.noise import NoiseSettings
+
+    noise_values = _check_section("noise", data.get("noise", {}), section_keys("noise"), fail)
+    noise = _build(NoiseSettings, noise_values, "noise", fail)
+
+    options, extra, raw = {}, {}, {}
+    for stage in STAGES:
+        given = data.get(stage, {})
+        keys = section_keys(stage)
+        if keys is None:  # stage not installed: keep the section as given, unchecked
+            options[stage] = None
+            raw[stage] = dict(given)
+            continue
+        checked = _check_section(stage, given, keys, fail)
+        for name in PATH_KEYS.get(stage, ()):
+            if isinstance(checked.get(name), (str, Path)) and str(checked[name]):
+                path_value = _resolve(base, checked[name])
+                if stage in stages and not path_value.is_file():
+                    fail(f"file not found: {path_value}", stage, name)
+                checked[name] = str(path_value) if isinstance(checked[name], str) else path_value
+        pipeline_names = set(PIPELINE_KEYS.get(stage, {})) - _field_names(stage)
+        extra[stage] = {k: checked.pop(k) for k in list(checked) if k in pipeline_names}
+        cls = stage_options_class(stage)
+        options[stage] = _build(cls, checked, stage, fail)
+    if "followup" in extra:
+        thr = extra["followup"].get("fap_threshold")
+        if thr is not None and not 0 < thr <= 1:
+            fail("must be in (0, 1]", "followup", "fap_threshold")
+        if extra["followup"].get("max_candidates", 1) < 1:
+            fail("must be >= 1", "followup", "max_candidates")
+
+    return RunConfig(path=path, dataset=dataset, out=out, seed=values["seed"], title=values["title"],
+                     stages=stages, engine=engine, noise=noise, options=options, extra=extra, raw=raw)
+
+
+def _field_names(stage):
+    cls = stage_options_class(stage)
+    return {f.name for f in dataclasses.fields(cls)} if cls is not None else set()
+
+
+def _copy(v):
+    return list(v) if isinstance(v, list) else dict(v) if isinstance(v, dict) else v
+
+
+def _resolve(base: Path, value) -> Path:
+    p = Path(str(value)).expanduser()
+    return (p if p.is_absolute() else base / p).resolve()
+
+
+def _check(key: Key, value, fail, section):
+    try:
+        result = coerce(value, key.hint)
+    except _Mismatch:
+        fail(f"expected {_type_name(key.hint)}, got {_toml_kind(value)}", section, key.name)
+    if isinstance(result, float) and not math.isfinite(result):
+        fail(f"must be a finite number, got {value!r}", section, key.name)
+    if key.choices:
+        items = result if isinstance(result, (list, tuple)) else [result]
+        for item in items:
+            if item not in key.choices:
+                fail(f"{item!r} is not one of {', '.join(repr(c) for c in key.choices)}", section, key.name)
+    return result
+
+
+def _check_section(section, given, keys, fail) -> dict:
+    if not isinstance(given, dict):
+        fail("must be a table", None, section)
+    for name, value in given.items():
+        if name not in keys:
+            known = ", ".join(sorted(keys)) or "(none)"
+            if name in PIPELINE_SET.get(section, ()):
+                hint = _PIPELINE_HINTS.get(name, "")
+                fail(f"{name!r} is set by the pipeline, not in the run file" + (f"; {hint}" if hint else ""),
+                     section, name)
+            fail(f"unknown key (known keys of [{section}]: {known})", section, name)
+    values = {}
+    for name, key in keys.items():
+        if name in given:
+            values[name] = _check(key, given[name], fail, section)
+        elif key.required:
+            fail(f"missing required key {name!r}", section)
+        else:
+            values[name] = _copy(key.default)
+    return values
+
+
+_OPTION_IN_MESSAGE = re.compile(r"^(?:option\s+)?--([a-z0-9][a-z0-9-]*)\s*:?\s*")
+
+
+def _build(cls, values, section, fail):
+    """Instantiate an options dataclass and run its own checks (``__post_init__``, ``validate()``).
+
+    Their errors become InputErrors naming the run-file key (an option name
+    ``--some-option`` in a stage's message is mapped to the key ``some_option``).
+    """
+    try:
+        obj = cls(**values)
+        for method in ("validate", "check"):
+            if callable(getattr(obj, method, None)):
+                getattr(obj, method)()
+        return obj
+    except InputError as exc:
+        message, key = exc.message, exc.column if exc.column in values else None
+        m = _OPTION_IN_MESSAGE.match(message)
+        if m and m.group(1).replace("-", "_") in values:
+            key = m.group(1).replace("-", "_")
+            message = message[m.end():]
+        fail(message, section, key)
+    except (TypeError, ValueError) as exc:
+        fail(str(exc), section)
+
+
+# ---------------------------------------------------------------- TOML writing
+_BARE_KEY = re.compile(r"^[A-Za-z0-9_-]+$")
+
+
+def _toml_key(key: str) -> str:
+    return key if _BARE_KEY.fullmatch(key) else _toml_string(key)
+
+
+def _toml_string(s: str) -> str:
+    out = ['"']
+    for ch in s:
+        if ch == '"':
+            out.append('\\"')
+        elif ch == "\\":
+            out.append("\\\\")
+        elif ch == "\n":
+            out.append("\\n")
+        elif ch == "\t":
+            out.append("\\t")
+        elif ch == "\r":
+            out.append("\\r")
+        elif ord(ch) < 0x20 or ord(ch) == 0x7F:
+            out.append(f"\\u{ord(ch):04x}")
+        else:
+            out.append(ch)
+    out.append('"')
+    return "".join(out)
+
+
+def toml_value(v) -> str:
+    """One TOML value: string, boolean, integer, float (shortest exact repr), or array of these."""
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, float):
+        if math.isnan(v):
+            return "nan"
+        if math.isinf(v):
+            return "inf" if v > 0 else "-inf"
+        text = repr(v)
+        return text if any(c in text for c in ".en") else text + ".0"
+    if isinstance(v, (str, Path)):
+        return _toml_string(str(v))
+    if isinstance(v, (list, tuple)):
+        return "[" + ", ".join(toml_value(x) for x in v) + "]"
+    if isinstance(v, dict):
+        return "{" + ", ".join(f"{_toml_key(str(k))} = {toml_value(x)}" for k, x in v.items()
+                               if x is not None) + "}"
+    v = _plain(v)
+    if isinstance(v, (bool, int, float, str, list, tuple, dict)):
+        return toml_value(v)
+    raise TypeError(f"cannot write {type(v).__name__} to TOML")
+
+
+def to_toml(data: dict, comments: dict | None = None) -> str:
+    """Write a nested dict of scalars, lists and tables as TOML.
+
+    Top-level scalars come first, then one ``[section]`` per dict (nested
+    dicts inside a section become ``[section.sub]``). ``None`` is written as
+    a comment (TOML has no null), so reading the text back gives the input
+    without its ``None`` values. ``comments`` maps ``"key"`` or
+    ``"section.key"`` to a comment written above the key.
+    """
+    comments = comments or {}
+    lines = []
+
+    def emit_table(table, prefix):
+        scalars = [(k, v) for k, v in table.items() if not isinstance(v, dict)]
+        tables = [(k, v) for k, v in table.items() if isinstance(v, dict)]
+        for k, v in scalars:
+            full = f"{prefix}.{k}" if prefix else k
+            if full in comments:
+                lines.extend("# " + c for c in comments[full].splitlines())
+            if v is None:
+                lines.append(f"# {_toml_key(str(k))} is not set")
+            else:
+                lines.append(f"{_toml_key(str(k))} = {toml_value(v)}")
+        for k, v in tables:
+            name = f"{prefix}.{_toml_key(str(k))}" if prefix else _toml_key(str(k))
+            if lines:
+                lines.append("")
+            if name in comments:
+                lines.extend("# " + c for c in comments[name].splitlines())
+            lines.append(f"[{name}]")
+            emit_table(v, name)
+
+    emit_table(data, "")
+    return "\n".join(lines) + "\n"
+
+
+__all__ = ["RunConfig", "load_config", "parse_config", "to_toml", "toml_value", "section_keys",
+           "STAGES", "SECTIONS", "Key"]

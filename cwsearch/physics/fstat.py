@@ -1,0 +1,646 @@
+"""F-statistics for a circular binary: per-pulsar projections, Fe and Fp.
+
+For each GW frequency f and pulsar p the data enter only through
+``X = (r|sin 2πf(t−t0))``, ``Y = (r|cos 2πf(t−t0))`` and the 2×2 matrix Z of
+the sine/cosine inner products (Ellis, Siemens & Creighton 2012, ApJ 756,
+175). :func:`project` computes them once (batched through the
+noise-weighting engine); everything sky-dependent then costs O(N_psr) per
+pixel:
+
+``N = [ΣF+X, ΣF+Y, ΣFxX, ΣFxY]``, ``M = Σ_p [[F+², F+Fx],[F+Fx, Fx²]] ⊗ Z_p``,
+``Fe = ½ Nᵀ M⁻¹ N`` (2Fe ~ χ²(4) in noise), ``Fp = ½ Σ_p [X Y] Z_p⁻¹ [X Y]ᵀ``
+(2Fp ~ χ²(2 N_psr) in noise).
+
+The maximum-likelihood Earth-term amplitudes ``b = M⁻¹ N`` describe the
+signal ``r = F+ (b1 sin + b2 cos) + Fx (b3 sin + b4 cos)``;
+:func:`amplitudes_to_parameters` turns them into (h0, cos ι, ψ, Φ0).
+
+Single pulsar: M is then rank 2 and the pseudo-inverse gives
+``Fe = Fp`` of that pulsar (2Fe ~ χ²(2)).
+
+Speed (DESIGN.md §6): on a uniform frequency grid the sines and cosines are
+stepped by one complex rotation per bin (:func:`sine_cosine_matrix`); all
+frequencies of a pulsar are whitened in one matrix product, one pulsar per
+thread (:func:`project`, :func:`project_batch` for many residual sets);
+:func:`fe_sky` forms the pulsar sums for all pixels as two matrix products
+per block of frequencies and a parallel numba kernel does the 4×4 algebra
+(:func:`fe_with_amplitudes` and :func:`network_vectors` keep the direct
+per-pixel loop, which also returns N, M and M⁻¹N).
+
+Examples
+--------
+>>> import numpy as np
+>>> from cwsearch.physics.simulate import invented_array, simulated_array
+>>> from cwsearch.physics.noise import NoiseWeighting
+>>> from cwsearch.physics import fstat
+>>> arr = simulated_array(invented_array(n_pulsars=6, years=10, seed=2), seed=3)
+>>> proj = fstat.project(NoiseWeighting(arr), np.array([5e-9, 1e-8]))
+>>> fplus, fcross = fstat.sky_patterns(proj, np.array([1.0, 2.0, 3.0]), np.array([0.3, -0.2, 0.0]))
+>>> fe = fstat.fe_statistic(proj, fplus, fcross)
+>>> fe.shape
+(3, 2)
+"""
+
+from __future__ import annotations
+
+import contextlib
+from dataclasses import dataclass
+
+import numpy as np
+from numba import njit, prange
+
+from .waveform import antenna_pattern
+
+
+@dataclass
+class Projections:
+    """Per-pulsar, per-frequency data projections (the scan's sufficient statistics).
+
+    ``x``, ``y``: (P, F); ``z``: (P, F, 3) holding (sin|sin), (sin|cos), (cos|cos).
+    From :func:`project_batch`, ``x`` and ``y`` have a leading batch axis (B, P, F)
+    (one row per residual set, e.g. null simulations) sharing one ``z``.
+    ``z_scale`` (P,) is each pulsar's white-noise scale ``½ Σ 1/σ²``, the size of
+    Z without timing model or red noise; directions of Z below
+    :data:`Z_RELATIVE_TOLERANCE` times it are dropped (see :func:`project`).
+    """
+
+    frequencies: np.ndarray
+    x: np.ndarray
+    y: np.ndarray
+    z: np.ndarray
+    positions: np.ndarray
+    z_scale: np.ndarray | None = None
+
+
+#: directions of a pulsar's 2×2 Z smaller than this times its white-noise
+#: scale are treated as absent (frequencies the timing model absorbs, such as
+#: exactly 1/yr, where Z is pure rounding noise)
+Z_RELATIVE_TOLERANCE = 1e-10
+
+#: the rotation-stepped sines and cosines are re-anchored with exact values every this many bins
+ANCHOR_EVERY = 100
+
+
+def sine_cosine_basis(toas, reference_time, frequencies):
+    """``sin`` and ``cos`` of ``2π f (t − t0)`` for all TOAs and frequencies: two (n, F) arrays."""
+    arg = 2 * np.pi * np.outer(np.asarray(toas) - reference_time, frequencies)
+    return np.sin(arg), np.cos(arg)
+
+
+@njit(cache=True, nogil=True)
+def _rotation_trig(times, first_frequency, step, n_freq, anchor_every, out):
+    """Fill ``out`` (n, 2F) with sin (columns :F) and cos (columns F:) of 2π f_k t,
+    f_k = first_frequency + k·step, by complex rotation exp(i 2π step t) per bin.
+    Serial and GIL-free: :func:`project` runs one pulsar per thread."""
+    n = times.shape[0]
+    two_pi = 2.0 * np.pi
+    for i in range(n):
+        t = times[i]
+        rot_c = np.cos(two_pi * step * t)
+        rot_s = np.sin(two_pi * step * t)
+        c = 1.0
+        s = 0.0
+        for k in range(n_freq):
+            if k % anchor_every == 0:
+                arg = two_pi * (first_frequency + k * step) * t
+                c = np.cos(arg)
+                s = np.sin(arg)
+            else:
+                c, s = c * rot_c - s * rot_s, s * rot_c + c * rot_s
+            out[i, k] = s
+            out[i, n_freq + k] = c
+
+
+@njit(cache=True, nogil=True)
+def _exact_trig(times, frequencies, out):
+    n = times.shape[0]
+    n_freq = frequencies.shape[0]
+    for i in range(n):
+        for k in range(n_freq):
+            arg = 2.0 * np.pi * frequencies[k] * times[i]
+            out[i, k] = np.sin(arg)
+            out[i, n_freq + k] = np.cos(arg)
+
+
+def uniform_step(frequencies):
+    """The spacing of ``frequencies`` if they form a uniform grid (relative 1e-9), else None."""
+    f = np.asarray(frequencies, dtype=float)
+    if f.size < 3:
+        return None
+    d = np.diff(f)
+    step = (f[-1] - f[0]) / (f.size - 1)
+    if step > 0 and np.all(np.abs(d - step) <= 1e-9 * step):
+        return step
+    return None
+
+
+def sine_cosine_matrix(toas, reference_time, frequencies, anchor_every=ANCHOR_EVERY):
+    """``[sin | cos]`` of ``2π f (t − t0)``: one (n, 2F) array, sines first.
+
+    On a uniform grid each bin is reached from the previous one by one
+    complex rotation ``exp(i 2π Δf t)`` (a multiply instead of a sine and a
+    cosine), re-anchored with exact values every ``anchor_every`` bins so the
+    rounding error stays ~1e-13; other grids use exact sines and cosines.
+
+    >>> import numpy as np
+    >>> t = np.linspace(0, 4.7e8, 50)
+    >>> f = 2e-9 + 1e-9 * np.arange(300)
+    >>> sc = sine_cosine_matrix(t, 0.0, f)
+    >>> s, c = sine_cosine_basis(t, 0.0, f)
+    >>> bool(np.abs(sc[:, :300] - s).max() < 1e-10 and np.abs(sc[:, 300:] - c).max() < 1e-10)
+    True
+    """
+    times = np.ascontiguousarray(np.asarray(toas, dtype=float) - reference_time)
+    frequencies = np.ascontiguousarray(frequencies, dtype=float)
+    out = np.empty((times.size, 2 * frequencies.size))
+    step = uniform_step(frequencies)
+    if step is None:
+        _exact_trig(times, frequencies, out)
+    else:
+        _rotation_trig(times, float(frequencies[0]), float(step), frequencies.size, int(anchor_every), out)
+    return out
+
+
+@njit(cache=True, nogil=True)
+def _z_columns(w, u, n_freq, z):
+    """z[k] = ((s_k|s_k), (s_k|c_k), (c_k|c_k)) from whitened w (n, 2F), u (r, 2F); serial, GIL-free."""
+    n = w.shape[0]
+    r = u.shape[0]
+    block = 32
+    n_blocks = (n_freq + block - 1) // block
+    for b in range(n_blocks):
+        k0 = b * block
+        k1 = min(n_freq, k0 + block)
+        acc = np.zeros((k1 - k0, 3))
+        for i in range(n):
+            for k in range(k0, k1):
+                s = w[i, k]
+                c = w[i, n_freq + k]
+                acc[k - k0, 0] += s * s
+                acc[k - k0, 1] += s * c
+                acc[k - k0, 2] += c * c
+        for i in range(r):
+            for k in range(k0, k1):
+                s = u[i, k]
+                c = u[i, n_freq + k]
+                acc[k - k0, 0] -= s * s
+                acc[k - k0, 1] -= s * c
+                acc[k - k0, 2] -= c * c
+        for k in range(k0, k1):
+            for j in range(3):
+                z[k, j] = acc[k - k0, j]
+
+
+def _drop_null_directions(x, y, z, z_scale):
+    """Zero the directions of Z below tolerance (and the X, Y components along them), in place."""
+    tol = Z_RELATIVE_TOLERANCE * z_scale[:, None]
+    zss, zsc, zcc = z[..., 0], z[..., 1], z[..., 2]
+    half_trace = 0.5 * (zss + zcc)
+    radius = np.hypot(0.5 * (zss - zcc), zsc)
+    small = half_trace - radius < tol
+    for p, f in zip(*np.nonzero(small)):
+        mat = np.array([[zss[p, f], zsc[p, f]], [zsc[p, f], zcc[p, f]]])
+        vals, vecs = np.linalg.eigh(mat)
+        keep = vals > tol[p, 0]
+        vecs = vecs[:, keep]
+        vals = vals[keep]
+        kept = (vecs * vals) @ vecs.T
+        z[p, f] = (kept[0, 0], kept[0, 1], kept[1, 1])
+        proj = vecs @ vecs.T
+        xy = np.stack([x[..., p, f], y[..., p, f]], axis=-1) @ proj.T
+        x[..., p, f], y[..., p, f] = xy[..., 0], xy[..., 1]
+
+
+@contextlib.contextmanager
+def _blas_threads(n):
+    """Temporarily set the OpenBLAS thread count of numpy/scipy (no-op where it cannot be found).
+
+    :func:`project` runs one pulsar per thread; letting each skinny whitening
+    product spawn BLAS threads as well oversubscribes the cores, which costs
+    a factor of several on a busy machine (measured in bench.scan).
+    """
+    handles = []
+    try:
+        import ctypes
+        import re
+
+        with open("/proc/self/maps") as fh:
+            paths = sorted(set(re.findall(r"(/\S*openblas\S*\.so\S*)", fh.read())))
+        for path in paths:
+            lib = ctypes.CDLL(path)
+            for prefix in ("scipy_openblas_", "openblas_"):
+                for suffix in ("64_", ""):
+                    get = getattr(lib, f"{prefix}get_num_threads{suffix}", None)
+                    put = getattr(lib, f"{prefix}set_num_threads{suffix}", None)
+                    if get is not None and put is not None:
+                        handles.append((put, int(get())))
+                        put(int(n))
+                        break
+                else:
+                    continue
+                break
+    except (OSError, AttributeError, ValueError):
+        pass
+    try:
+        yield
+    finally:
+        for put, old in handles:
+            put(old)
+
+
+def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i):
+    n_freq = frequencies.size
+    basis = sine_cosine_matrix(w.pulsar.toas, t0, frequencies)
+    wb, ub = w.whiten(basis)                  # the one whitening GEMM for all frequencies
+    wr, ur = w.whiten(residual_set)           # (n, B), (r, B)
+    xy = wr.T @ wb - ur.T @ ub                # (B, 2F)
+    x[:, i] = xy[:, :n_freq]
+    y[:, i] = xy[:, n_freq:]
+    _z_columns(wb, np.ascontiguousarray(ub), n_freq, z[i])
+    z_scale[i] = 0.5 * float(np.sum(wb[:, 0] ** 2 + wb[:, n_freq] ** 2))
+
+
+def _project_core(engine, frequencies, residual_sets, on_pulsar=None, workers=None):
+    import numba
+    from concurrent.futures import ThreadPoolExecutor, as_completed
+
+    frequencies = np.ascontiguousarray(frequencies, dtype=float)
+    n_psr, n_freq = len(engine), frequencies.size
+    n_sets = residual_sets[0].shape[1]
+    x = np.empty((n_sets, n_psr, n_freq))
+    y = np.empty((n_sets, n_psr, n_freq))
+    z = np.empty((n_psr, n_freq, 3))
+    z_scale = np.empty(n_psr)
+    t0 = engine.array.reference_time
+    workers = min(n_psr, numba.get_num_threads() if workers is None else int(workers))
+    if workers <= 1:
+        for i, w in enumerate(engine):
+            _project_pulsar(w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i)
+            if on_pulsar is not None:
+                on_pulsar(i)
+    else:
+        with _blas_threads(1), ThreadPoolExecutor(max_workers=workers) as pool:
+            jobs = {pool.submit(_project_pulsar, w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i): i
+                    for i, w in enumerate(engine)}
+            for job in as_completed(jobs):
+                job.result()
+                if on_pulsar is not None:
+                    on_pulsar(jobs[job])
+    _drop_null_directions(x, y, z, z_scale)
+    return frequencies, x, y, z, z_scale
+
+
+def project(engine, frequencies, residuals=None, *, on_pulsar=None) -> Projections:
+    """Compute X, Y, Z for every pulsar and frequency through the noise-weighting engine.
+
+    ``residuals`` (list of arrays) replaces the dataset residuals, e.g. for
+    null simulations with the same TOAs and noise model. Per pulsar, the
+    sines and cosines of all frequencies are whitened in one matrix product
+    (:meth:`~cwsearch.physics.noise.PulsarWeighting.whiten`); on a uniform grid they
+    are generated by rotation (:func:`sine_cosine_matrix`). Directions of
+    a pulsar's Z that the timing model removes entirely (Z at rounding
+    level, e.g. exactly 1/yr) are dropped together with the matching X, Y
+    part, so they neither divide by zero nor add noise. ``on_pulsar(i)`` is
+    called after each pulsar (progress bars). Pulsars run in parallel, one
+    per thread (as many threads as numba uses), each single-threaded.
+    """
+    sets = [np.asarray(w.pulsar.residuals if residuals is None else residuals[i], dtype=float)[:, None]
+            for i, w in enumerate(engine)]
+    freqs, x, y, z, z_scale = _project_core(engine, frequencies, sets, on_pulsar)
+    return Projections(freqs, x[0], y[0], z, engine.array.positions, z_scale)
+
+
+def project_batch(engine, frequencies, residual_sets, *, on_pulsar=None) -> Projections:
+    """Projections of B residual sets at once: ``residual_sets[p]`` is an (n_p, B) array.
+
+    Z is shared; ``x`` and ``y`` have shape (B, P, F). Used by null
+    simulations (same TOAs and noise model, new residuals).
+    """
+    sets = [np.asarray(r, dtype=float).reshape(w.n_toas, -1) for w, r in zip(engine, residual_sets)]
+    freqs, x, y, z, z_scale = _project_core(engine, frequencies, sets, on_pulsar)
+    return Projections(freqs, x, y, z, engine.array.positions, z_scale)
+
+
+@njit(cache=True)
+def _solve_psd(m, v, out):
+    """Solve m a = v for symmetric positive semi-definite 4×4 m (LDLᵀ, tiny pivots dropped).
+
+    Dropping a pivot makes this the minimum-norm-like solution on the
+    column space, which gives the pseudo-inverse quadratic form vᵀ m⁺ v.
+    """
+    n = 4
+    lower = np.zeros((n, n))
+    diag = np.zeros(n)
+    scale = 0.0
+    for i in range(n):
+        scale = max(scale, m[i, i])
+    tol = 1e-10 * scale
+    for j in range(n):
+        s = m[j, j]
+        for k in range(j):
+            s -= lower[j, k] ** 2 * diag[k]
+        diag[j] = s if s > tol else 0.0
+        lower[j, j] = 1.0
+        for i in range(j + 1, n):
+            s = m[i, j]
+            for k in range(j):
+                s -= lower[i, k] * lower[j, k] * diag[k]
+            lower[i, j] = s / diag[j] if diag[j] > 0 else 0.0
+    tmp = np.zeros(n)
+    for i in range(n):
+        s = v[i]
+        for k in range(i):
+            s -= lower[i, k] * tmp[k]
+        tmp[i] = s
+    for i in range(n):
+        tmp[i] = tmp[i] / diag[i] if diag[i] > 0 else 0.0
+    for i in range(n - 1, -1, -1):
+        s = tmp[i]
+        for k in range(i + 1, n):
+            s -= lower[k, i] * out[k]
+        out[i] = s
+
+
+@njit(cache=True, parallel=True)
+def _sky_kernel(x, y, z, fplus, fcross, fe_out, amp_out, n_out, m_out, want_amp, want_nm):
+    n_sky, n_psr = fplus.shape
+    n_freq = x.shape[1]
+    for s in prange(n_sky):
+        nv = np.zeros(4)
+        mm = np.zeros((4, 4))
+        sol = np.zeros(4)
+        for f in range(n_freq):
+            nv[:] = 0.0
+            mm[:, :] = 0.0
+            for p in range(n_psr):
+                fp = fplus[s, p]
+                fc = fcross[s, p]
+                xx = x[p, f]
+                yy = y[p, f]
+                zss = z[p, f, 0]
+                zsc = z[p, f, 1]
+                zcc = z[p, f, 2]
+                nv[0] += fp * xx
+                nv[1] += fp * yy
+                nv[2] += fc * xx
+                nv[3] += fc * yy
+                pp, pc, cc = fp * fp, fp * fc, fc * fc
+                mm[0, 0] += pp * zss
+                mm[0, 1] += pp * zsc
+                mm[1, 1] += pp * zcc
+                mm[0, 2] += pc * zss
+                mm[0, 3] += pc * zsc
+                mm[1, 2] += pc * zsc
+                mm[1, 3] += pc * zcc
+                mm[2, 2] += cc * zss
+                mm[2, 3] += cc * zsc
+                mm[3, 3] += cc * zcc
+            for i in range(4):
+                for j in range(i):
+                    mm[i, j] = mm[j, i]
+            _solve_psd(mm, nv, sol)
+            fe = 0.0
+            for i in range(4):
+                fe += nv[i] * sol[i]
+            fe_out[s, f] = 0.5 * fe
+            if want_amp:
+                for i in range(4):
+                    amp_out[s, f, i] = sol[i]
+            if want_nm:
+                for i in range(4):
+                    n_out[s, f, i] = nv[i]
+                    for j in range(4):
+                        m_out[s, f, i, j] = mm[i, j]
+
+
+def _run_kernel(proj, fplus, fcross, want_amp=False, want_nm=False):
+    fplus = np.ascontiguousarray(np.atleast_2d(fplus), dtype=float)
+    fcross = np.ascontiguousarray(np.atleast_2d(fcross), dtype=float)
+    n_sky, n_freq = fplus.shape[0], proj.frequencies.size
+    fe = np.empty((n_sky, n_freq))
+    amp = np.empty((n_sky, n_freq, 4) if want_amp else (1, 1, 4))
+    nvec = np.empty((n_sky, n_freq, 4) if want_nm else (1, 1, 4))
+    mmat = np.empty((n_sky, n_freq, 4, 4) if want_nm else (1, 1, 4, 4))
+    _sky_kernel(np.ascontiguousarray(proj.x), np.ascontiguousarray(proj.y), np.ascontiguousarray(proj.z),
+                fplus, fcross, fe, amp, nvec, mmat, want_amp, want_nm)
+    return fe, amp, nvec, mmat
+
+
+@njit(cache=True, inline="always")
+def _factor4(m00, m01, m02, m03, m11, m12, m13, m22, m23, m33):
+    """Scalar LDLᵀ of a symmetric PSD 4×4 matrix, unrolled so that it stays in registers.
+
+    Pivots below 1e-10 × the largest diagonal element are dropped (the rule
+    of :func:`_solve_psd`), which makes :func:`_quad4` the pseudo-inverse
+    quadratic form. Returns the inverse pivots and the strict lower triangle.
+    """
+    tol = 1e-10 * max(max(m00, m11), max(m22, m33))
+    d0 = m00 if m00 > tol else 0.0
+    r0 = 1.0 / d0 if d0 > 0 else 0.0
+    l10 = m01 * r0
+    l20 = m02 * r0
+    l30 = m03 * r0
+    d1 = m11 - l10 * l10 * d0
+    d1 = d1 if d1 > tol else 0.0
+    r1 = 1.0 / d1 if d1 > 0 else 0.0
+    l21 = (m12 - l20 * l10 * d0) * r1
+    l31 = (m13 - l30 * l10 * d0) * r1
+    d2 = m22 - l20 * l20 * d0 - l21 * l21 * d1
+    d2 = d2 if d2 > tol else 0.0
+    r2 = 1.0 / d2 if d2 > 0 else 0.0
+    l32 = (m23 - l30 * l20 * d0 - l31 * l21 * d1) * r2
+    d3 = m33 - l30 * l30 * d0 - l31 * l31 * d1 - l32 * l32 * d2
+    r3 = 1.0 / d3 if d3 > tol else 0.0
+    return r0, r1, r2, r3, l10, l20, l30, l21, l31, l32
+
+
+@njit(cache=True, inline="always")
+def _quad4(fac, v0, v1, v2, v3):
+    """``vᵀ m⁺ v`` = Σ y_i² / d_i with L y = v, from :func:`_factor4`."""
+    r0, r1, r2, r3, l10, l20, l30, l21, l31, l32 = fac
+    y1 = v1 - l10 * v0
+    y2 = v2 - l20 * v0 - l21 * y1
+    y3 = v3 - l30 * v0 - l31 * y1 - l32 * y2
+    return v0 * v0 * r0 + y1 * y1 * r1 + y2 * y2 * r2 + y3 * y3 * r3
+
+
+@njit(cache=True, parallel=True)
+def _fe_from_products(nq, mq, n_sky, n_chunk, n_sets, fe_out):
+    """Fe for every sky pixel, frequency of the chunk and residual set from the GEMM products.
+
+    ``nq`` (2S, 2·B·Fc): rows (F+ | Fx) × pixel, columns (set, X|Y, frequency);
+    ``mq`` (3S, 3·Fc): rows (F+² | F+Fx | Fx²) × pixel, columns (ss|sc|cc, frequency).
+    """
+    for s in prange(n_sky):
+        sp = n_sky + s
+        sx = 2 * n_sky + s
+        for f in range(n_chunk):
+            m00 = mq[s, f]
+            m01 = mq[s, n_chunk + f]
+            m11 = mq[s, 2 * n_chunk + f]
+            m02 = mq[sp, f]
+            m03 = mq[sp, n_chunk + f]
+            m13 = mq[sp, 2 * n_chunk + f]
+            m22 = mq[sx, f]
+            m23 = mq[sx, n_chunk + f]
+            m33 = mq[sx, 2 * n_chunk + f]
+            fac = _factor4(m00, m01, m02, m03, m11, m03, m13, m22, m23, m33)   # m12 = m03 = Σ F+Fx Zsc
+            for b in range(n_sets):
+                cx = 2 * b * n_chunk + f
+                cy = cx + n_chunk
+                fe_out[b, s, f] = 0.5 * _quad4(fac, nq[s, cx], nq[s, cy], nq[sp, cx], nq[sp, cy])
+
+
+@dataclass
+class SkyScan:
+    """Result of :func:`fe_sky`.
+
+    ``fe_map`` (S, F) or None; ``fe_max`` and ``best_pixel`` (B, F): the
+    maximum of Fe over the sky and the pixel (row of the patterns) where it occurs.
+    """
+
+    fe_map: np.ndarray | None
+    fe_max: np.ndarray
+    best_pixel: np.ndarray
+
+
+def fe_sky(proj: Projections, fplus, fcross, *, keep_map=True, map_dtype=np.float64, on_chunk=None,
+           chunk_elements=4_000_000) -> SkyScan:
+    """Fe over sky × frequency (and over residual sets of :func:`project_batch`).
+
+    The sums over pulsars for N (4 numbers) and M (9 distinct numbers) are
+    two matrix products per chunk of frequencies (pattern products (S, P)
+    times per-pulsar X, Y, Z (P, ·)); a parallel numba kernel then factors
+    each 4×4 M once and evaluates ``Fe = ½ Nᵀ M⁺ N`` for every residual set.
+    ``keep_map`` returns the full (S, F) map (single residual set only);
+    ``on_chunk(n)`` is called with the number of frequencies finished.
+    """
+    fplus = np.ascontiguousarray(np.atleast_2d(fplus), dtype=float)
+    fcross = np.ascontiguousarray(np.atleast_2d(fcross), dtype=float)
+    n_sky, n_psr = fplus.shape
+    x, y = proj.x, proj.y
+    if x.ndim == 2:
+        x, y = x[None], y[None]
+    n_sets, n_data_psr, n_freq = x.shape
+    if n_data_psr != n_psr:
+        raise ValueError(f"antenna patterns have {n_psr} pulsars, the projections {n_data_psr}")
+    if keep_map and n_sets != 1:
+        raise ValueError("keep_map needs a single residual set")
+    pn = np.vstack([fplus, fcross])
+    pm = np.vstack([fplus * fplus, fplus * fcross, fcross * fcross])
+    n_chunk = int(max(1, min(n_freq, chunk_elements // (n_sky * (4 * n_sets + 9)))))
+    fe_map = np.empty((n_sky, n_freq), dtype=map_dtype) if keep_map else None
+    fe_max = np.empty((n_sets, n_freq))
+    best = np.empty((n_sets, n_freq), dtype=np.int64)
+    for f0 in range(0, n_freq, n_chunk):
+        f1 = min(n_freq, f0 + n_chunk)
+        fc = f1 - f0
+        data = np.stack([x[:, :, f0:f1], y[:, :, f0:f1]], axis=1)          # (B, 2, P, Fc)
+        data = np.ascontiguousarray(data.transpose(2, 0, 1, 3)).reshape(n_psr, 2 * n_sets * fc)
+        zc = np.ascontiguousarray(proj.z[:, f0:f1, :].transpose(0, 2, 1)).reshape(n_psr, 3 * fc)
+        nq = pn @ data
+        mq = pm @ zc
+        fe = np.empty((n_sets, n_sky, fc))
+        _fe_from_products(nq, mq, n_sky, fc, n_sets, fe)
+        idx = np.argmax(fe, axis=1)
+        best[:, f0:f1] = idx
+        fe_max[:, f0:f1] = np.take_along_axis(fe, idx[:, None, :], axis=1)[:, 0, :]
+        if keep_map:
+            fe_map[:, f0:f1] = fe[0]
+        if on_chunk is not None:
+            on_chunk(fc)
+    return SkyScan(fe_map, fe_max, best)
+
+
+def fe_statistic(proj: Projections, fplus, fcross):
+    """Fe for each sky position (rows of ``fplus``/``fcross``, shape (S, P)) and frequency: (S, F)."""
+    return fe_sky(proj, fplus, fcross).fe_map
+
+
+def fe_with_amplitudes(proj: Projections, fplus, fcross):
+    """Fe (S, F) and maximum-likelihood amplitudes ``b = M⁻¹N`` (S, F, 4)."""
+    fe, amp, _, _ = _run_kernel(proj, fplus, fcross, want_amp=True)
+    return fe, amp
+
+
+def network_vectors(proj: Projections, fplus, fcross):
+    """The 4-vector N (S, F, 4) and 4×4 matrix M (S, F, 4, 4) for each sky position and frequency."""
+    _, _, nvec, mmat = _run_kernel(proj, fplus, fcross, want_nm=True)
+    return nvec, mmat
+
+
+def sky_patterns(proj: Projections, ra, dec):
+    """Antenna patterns (S, P) for sky positions ``ra``, ``dec`` [rad] and the projections' pulsars."""
+    fplus, fcross, _ = antenna_pattern(np.atleast_1d(ra), np.atleast_1d(dec), proj.positions)
+    return fplus, fcross
+
+
+def _z_rank(z):
+    """Rank (0, 1 or 2) of each 2×2 Z (..., 3) after :func:`project` dropped null directions."""
+    zss, zsc, zcc = z[..., 0], z[..., 1], z[..., 2]
+    trace = zss + zcc
+    det = zss * zcc - zsc**2
+    return np.where(trace <= 0, 0, np.where(det <= 1e-12 * trace**2, 1, 2))
+
+
+def fp_statistic(proj: Projections):
+    """Fp per frequency: ``½ Σ_p [X Y] Z_p⁻¹ [X Y]ᵀ`` (F,), or (B, F) for a batch.
+
+    Where a pulsar's Z has rank < 2 (directions removed by the timing model)
+    the pseudo-inverse is used, and :func:`fp_degrees_of_freedom` counts
+    only the remaining directions.
+    """
+    zss, zsc, zcc = proj.z[..., 0], proj.z[..., 1], proj.z[..., 2]
+    rank = _z_rank(proj.z)
+    det = np.where(rank == 2, zss * zcc - zsc**2, 1.0)
+    trace = np.where(rank >= 1, zss + zcc, 1.0)
+    x, y = proj.x, proj.y
+    full = (zcc * x**2 - 2 * zsc * x * y + zss * y**2) / det
+    single = (x**2 + y**2) / trace
+    quad = np.where(rank == 2, full, np.where(rank == 1, single, 0.0))
+    return 0.5 * quad.sum(axis=-2)
+
+
+def fp_degrees_of_freedom(proj: Projections):
+    """Degrees of freedom of 2Fp per frequency (F,): ``2 N_psr`` minus directions the timing model removed."""
+    return _z_rank(proj.z).sum(axis=0)
+
+
+def amplitudes_to_parameters(amplitudes, gw_frequency):
+    """(h0, cos ι, ψ, Φ0) from Earth-term amplitudes ``b`` (..., 4) at ``gw_frequency`` [Hz].
+
+    Inverts ``b1 + i b2 = e^{2iΦ0}(A+ cos2ψ + i Ax sin2ψ)``,
+    ``b3 + i b4 = e^{2iΦ0}(A+ sin2ψ − i Ax cos2ψ)`` with
+    ``A+ = h0 (1+cos²ι)/(2ω0)``, ``Ax = h0 cosι/ω0``, ``ω0 = π f``. ψ in [0, π/2),
+    Φ0 in [0, π) (the usual two-fold degeneracies).
+    """
+    b = np.asarray(amplitudes, dtype=float)
+    u = b[..., 0] + 1j * b[..., 1]
+    v = b[..., 2] + 1j * b[..., 3]
+    plus, minus = u + 1j * v, u - 1j * v
+    r1, r2 = np.sqrt(np.abs(plus)), np.sqrt(np.abs(minus))
+    scaled = ((r1 + r2) / 2) ** 2
+    with np.errstate(invalid="ignore", divide="ignore"):
+        cos_inc = np.where(r1 + r2 > 0, (r1 - r2) / (r1 + r2), 0.0)
+    a1, a2 = np.angle(plus), np.angle(minus)
+    phase = np.mod((a1 + a2) / 4, np.pi / 2)
+    psi = np.mod((a1 - a2) / 4, np.pi / 2)
+    # (a1 + a2)/4 is defined modulo π/2; fix Φ0 modulo π by the sign of b1 reconstruction
+    strain = scaled * 2 * np.pi * np.asarray(gw_frequency)
+    recon = parameters_to_amplitudes(strain, cos_inc, psi, phase, gw_frequency)
+    flip = np.sum(recon * b, axis=-1) < 0
+    phase = np.where(flip, phase + np.pi / 2, phase)
+    return strain, cos_inc, psi, phase
+
+
+def parameters_to_amplitudes(strain, cos_inclination, polarization, phase, gw_frequency):
+    """Earth-term amplitudes ``b`` (..., 4) for (h0, cos ι, ψ, Φ0) at ``gw_frequency`` [Hz]."""
+    scale = np.asarray(strain) / (2 * np.pi * np.asarray(gw_frequency))
+    c = np.asarray(cos_inclination)
+    a_plus, a_cross = scale * (1 + c**2), scale * 2 * c
+    c2p, s2p = np.cos(2 * polarization), np.sin(2 * polarization)
+    c2f, s2f = np.cos(2 * phase), np.sin(2 * phase)
+    return np.stack([a_plus * c2p * c2f - a_cross * s2p * s2f,
+                     a_plus * c2p * s2f + a_cross * s2p * c2f,
+                     a_plus * s2p * c2f + a_cross * c2p * s2f,
+                     a_plus * s2p * s2f - a_cross * c2p * c2f], axis=-1)

@@ -1,0 +1,413 @@
+"""Follow-up stage: a parallel-tempered MCMC fit of scan candidates (DESIGN.md §7–8).
+
+For each candidate (a row of ``RUN_DIR/scan/candidates.ecsv``, an explicit
+target, or the whole sky) the stage samples the 8 global parameters of one
+circular binary with the fast likelihood of :mod:`cwsearch.inference.likelihood`
+(pulsar phases marginalised, or Earth term only), writes equally weighted
+posterior samples, a summary with the signal-versus-noise log Bayes factor,
+and plots, into ``RUN_DIR/followup/`` (``RUN_DIR/followup/candidate_K/``
+when several candidates are followed).
+
+Priors (DESIGN.md §8): isotropic sky; log-uniform GW frequency in a window
+of ``frequency_window`` bins of 1/T_span either side of the target (in the
+band [1/T_span, ``max_frequency``] for ``all_sky``); log-uniform chirp mass
+in [1e7, 1e11] Msun, excluding binaries that merge within the data;
+log-uniform strain in [1e-18, 1e-11] (``strain_prior="uniform"``: uniform
+in [0, 1e-11], for upper limits); uniform cos ι, polarisation ψ in [0, π)
+and phase Φ0 in [0, π) (the waveform has period π in both). Pulsar distances
+are held at their catalogue values (with free pulsar phases they only set
+the pulsar-term frequency and amplitude in the evolving modes).
+
+Examples
+--------
+>>> from cwsearch.stages.followup.stage import FollowupOptions
+>>> FollowupOptions(walkers=16, temperatures=4).evolution
+'full'
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import asdict, dataclass, field, replace
+from pathlib import Path
+
+import numpy as np
+
+from ...core.errors import InputError
+from ...physics.noise import NoiseSettings
+
+STRAIN_RANGE = (1e-18, 1e-11)
+CHIRP_MASS_RANGE = (1e7, 1e11)
+OUTPUT_COLUMNS = ("ra", "dec", "frequency", "chirp_mass", "strain", "inclination", "polarization", "phase",
+                  "luminosity_distance", "orbital_period")
+
+
+@dataclass(frozen=True)
+class FollowupOptions:
+    """Options of the follow-up stage; names equal the CLI options (dashes -> underscores)."""
+
+    candidate: int | None = None        # 1-based row of the candidates file (None: the best `top`)
+    top: int = 1                        # how many of the best candidates to follow
+    frequency: float | None = None      # explicit target [Hz] (with ra, dec [deg])
+    ra: float | None = None
+    dec: float | None = None
+    all_sky: bool = False
+    resume: bool = False
+    ess: float = 1000.0
+    max_iterations: int = 20000
+    max_time: float | None = None       # seconds
+    temperatures: int = 10
+    walkers: int = 32
+    max_temperature: float = 1e6
+    earth_term_only: bool = False
+    evolution: str = "full"
+    frequency_window: float = 5.0       # bins of 1/T_span either side of the target
+    max_frequency: float = 1e-7         # Hz, upper edge of the all-sky band
+    strain_prior: str = "log-uniform"
+    phase_grid: int = 0
+    checkpoint_every: int = 100
+    adapt_iterations: int = 500
+    plots: bool = True                  # corner, sky and trace plots (PNG)
+
+    def check(self):
+        from ...physics.waveform import EVOLUTION_MODES
+
+        if self.evolution not in EVOLUTION_MODES:
+            raise InputError(f"--evolution must be one of {', '.join(EVOLUTION_MODES)}, not {self.evolution!r}")
+        if self.strain_prior not in ("log-uniform", "uniform"):
+            raise InputError("--strain-prior must be 'log-uniform' or 'uniform'")
+        if self.walkers < 18 or self.walkers % 2:
+            raise InputError("--walkers must be even and at least 18 (ptemcee needs > 2 x 8 parameters)")
+        if self.temperatures < 1 or self.max_temperature <= 1:
+            raise InputError("--temperatures must be >= 1 and --max-temperature > 1")
+        explicit = [v is not None for v in (self.frequency, self.ra, self.dec)]
+        if any(explicit) and not all(explicit):
+            raise InputError("an explicit target needs all of --frequency, --ra and --dec")
+        if self.ess <= 0 or self.max_iterations <= 0:
+            raise InputError("--ess and --max-iterations must be positive")
+
+
+@dataclass
+class Target:
+    """A starting point: frequency [Hz], ra, dec [rad], optional projection guesses."""
+
+    label: str
+    frequency: float | None
+    ra: float | None
+    dec: float | None
+    strain: float | None = None
+    inclination: float | None = None
+    polarization: float | None = None
+    phase: float | None = None
+    source: dict = field(default_factory=dict)
+
+
+@dataclass
+class FollowupResult:
+    """Result of :func:`run_followup`: ``summary`` (JSON-ready), per-target folders and sampler results."""
+
+    summary: dict
+    folders: list
+    runs: list
+
+
+# ---------------------------------------------------------------- prior
+class Prior:
+    """The follow-up prior in sampler coordinates (see module docstring); vectorised."""
+
+    def __init__(self, likelihood, log10_frequency_range, uniform_strain=False):
+        self.likelihood = likelihood
+        self.uniform_strain = uniform_strain
+        strain = (0.0, STRAIN_RANGE[1]) if uniform_strain else tuple(np.log10(STRAIN_RANGE))
+        self.lower = np.array([0.0, -1.0, log10_frequency_range[0], np.log10(CHIRP_MASS_RANGE[0]), strain[0],
+                               -1.0, 0.0, 0.0])
+        self.upper = np.array([2 * np.pi, 1.0, log10_frequency_range[1], np.log10(CHIRP_MASS_RANGE[1]), strain[1],
+                               1.0, np.pi, np.pi])
+
+    def __call__(self, theta):
+        theta = np.atleast_2d(theta)
+        inside = np.all((theta >= self.lower) & (theta < self.upper), axis=1)
+        out = np.where(inside, 0.0, -np.inf)
+        if inside.any():
+            merge = self.likelihood.merges_within_data(10.0 ** theta[inside, 2], 10.0 ** theta[inside, 3])
+            sub = out[inside]
+            sub[np.asarray(merge, dtype=bool)] = -np.inf
+            out[inside] = sub
+        return out
+
+    def draw(self, rng, size):
+        """Draws from the prior (rejecting merging binaries), shape (size, 8)."""
+        out = np.empty((0, 8))
+        for _ in range(200):
+            x = rng.uniform(self.lower, self.upper, (2 * size, 8))
+            out = np.vstack([out, x[np.isfinite(self(x))]])
+            if out.shape[0] >= size:
+                return out[:size]
+        raise InputError("hardly any binary of the prior survives to the end of the data at this frequency "
+                         "(chirp masses 1e7-1e11 Msun merge first); choose a lower frequency")
+
+
+def initial_positions(prior, target: Target, span, shape, rng):
+    """Walkers in a small ball around the target (inside the prior); the whole prior without target."""
+    n = shape[0] * shape[1]
+    if target.frequency is None:
+        return prior.draw(rng, n).reshape(shape + (8,))
+    centre = prior.draw(rng, n)                       # chirp mass etc. from the prior
+    width = np.zeros(8)
+    centre[:, 0], width[0] = target.ra, 0.03
+    centre[:, 1], width[1] = np.sin(target.dec), 0.03
+    centre[:, 2], width[2] = np.log10(target.frequency), 0.1 / span / target.frequency / np.log(10)
+    centre[:, 3] = rng.uniform(prior.lower[3], min(prior.lower[3] + 2.0, prior.upper[3]), n)
+    if target.strain is not None and np.isfinite(target.strain) and target.strain > 0:
+        h = float(np.clip(target.strain, STRAIN_RANGE[0] * 10, STRAIN_RANGE[1] / 10))
+        centre[:, 4], width[4] = (h, 0.1 * h) if prior.uniform_strain else (np.log10(h), 0.1)
+    for col, value, w in ((5, None if target.inclination is None else np.cos(target.inclination), 0.1),
+                          (6, target.polarization, 0.1), (7, target.phase, 0.1)):
+        if value is not None and np.isfinite(value):
+            centre[:, col], width[col] = value, w
+    pos = centre + width * rng.standard_normal((n, 8))
+    pos[:, 0] = np.mod(pos[:, 0], 2 * np.pi)
+    pos[:, 6] = np.mod(pos[:, 6], np.pi)
+    pos[:, 7] = np.mod(pos[:, 7], np.pi)
+    eps = 1e-9 * (prior.upper - prior.lower)
+    pos = np.clip(pos, prior.lower + eps, prior.upper - eps)
+    bad = ~np.isfinite(prior(pos))
+    if bad.any():
+        pos[bad] = prior.draw(rng, int(bad.sum()))
+    return pos.reshape(shape + (8,))
+
+
+# ---------------------------------------------------------------- targets
+def read_candidates(run_dir):
+    """The scan's candidates table (astropy Table), best first (by ``fe`` when present)."""
+    from astropy.table import Table
+
+    path = Path(run_dir) / "scan" / "candidates.ecsv"
+    if not path.exists():
+        raise InputError("no scan candidates found; run 'cwsearch scan' first, or give --frequency/--ra/--dec "
+                         "or --all-sky", file=path)
+    try:
+        table = Table.read(path, format="ascii.ecsv")
+    except Exception as exc:  # malformed file: one line naming it
+        raise InputError(f"cannot read candidates ({exc})", file=path) from None
+    for col in ("frequency", "ra", "dec"):
+        if col not in table.colnames:
+            raise InputError(f"missing column '{col}'", file=path, column=col)
+    if len(table) == 0:
+        raise InputError("the candidates file has no rows", file=path)
+    return table, path
+
+
+def _column_value(table, name, row, unit, default_unit):
+    if name not in table.colnames:
+        return None
+    col = table[name]
+    value = float(col[row])
+    if not np.isfinite(value):
+        return None
+    if col.unit is not None:
+        return float((value * col.unit).to_value(unit))
+    return float((value * default_unit).to_value(unit)) if default_unit is not None else value
+
+
+def select_targets(run_dir, options: FollowupOptions):
+    """The list of :class:`Target` to follow for these options."""
+    import astropy.units as u
+
+    if options.all_sky:
+        return [Target("all-sky", None, None, None)]
+    if options.frequency is not None:
+        if not 0 < options.frequency <= options.max_frequency:
+            raise InputError(f"--frequency must be in (0, {options.max_frequency:g}] Hz (raise --max-frequency "
+                             "for higher targets)")
+        if not -90 <= options.dec <= 90:
+            raise InputError("--dec must be within [-90, 90] degrees")
+        return [Target("target", options.frequency, np.radians(options.ra % 360), np.radians(options.dec),
+                       source={"frequency": options.frequency, "ra": options.ra, "dec": options.dec})]
+    table, path = read_candidates(run_dir)
+    if options.candidate is not None:
+        if not 1 <= options.candidate <= len(table):
+            raise InputError(f"--candidate must be between 1 and {len(table)}", file=path)
+        rows = [options.candidate - 1]
+    else:
+        order = np.argsort(-np.asarray(table["fe"], dtype=float), kind="stable") if "fe" in table.colnames \
+            else np.arange(len(table))
+        rows = [int(r) for r in order[: max(1, options.top)]]
+    targets = []
+    for r in rows:
+        get = lambda name, unit, default: _column_value(table, name, r, unit, default)  # noqa: E731
+        freq = get("frequency", u.Hz, u.Hz)
+        ra, dec = get("ra", u.rad, u.deg), get("dec", u.rad, u.deg)
+        if freq is None or ra is None or dec is None or freq <= 0:
+            raise InputError("frequency, ra and dec must be finite (frequency > 0)", file=path, row=r + 1)
+        if freq > options.max_frequency:
+            raise InputError(f"candidate frequency {freq:g} Hz is above --max-frequency {options.max_frequency:g}",
+                             file=path, row=r + 1, column="frequency")
+        source = {name: (float(table[name][r]) if np.issubdtype(np.asarray(table[name]).dtype, np.number)
+                         else str(table[name][r])) for name in table.colnames}
+        targets.append(Target(f"candidate_{r + 1}", freq, ra, dec, strain=get("strain", u.one, None),
+                              inclination=get("inclination", u.rad, u.rad),
+                              polarization=get("polarization", u.rad, u.rad), phase=get("phase", u.rad, u.rad),
+                              source=source))
+    return targets
+
+
+def earth_term_start(engine, target: Target) -> Target:
+    """Fill strain, inclination, polarisation and phase of ``target`` with the Earth-term
+    maximum-likelihood values of the F-statistic at its frequency and sky position."""
+    from ...physics import fstat
+
+    proj = fstat.project(engine, np.array([target.frequency]))
+    fplus, fcross = fstat.sky_patterns(proj, target.ra, target.dec)
+    _, amp = fstat.fe_with_amplitudes(proj, fplus, fcross)
+    strain, cos_inc, psi, phase = (float(np.ravel(v)[0]) for v in
+                                   fstat.amplitudes_to_parameters(amp[0, 0], target.frequency))
+    if not (np.isfinite(strain) and strain > 0):
+        return target
+    return replace(target, strain=strain, inclination=float(np.arccos(np.clip(cos_inc, -1, 1))),
+                   polarization=psi, phase=phase)
+
+
+# ---------------------------------------------------------------- outputs
+def posterior_table(likelihood, samples):
+    """Astropy Table of physical posterior samples (columns :data:`OUTPUT_COLUMNS`)."""
+    import astropy.units as u
+    from astropy.table import Table
+
+    from ...physics import waveform
+    from ...core.constants import YEAR_SECONDS
+
+    par = likelihood.physical(samples)
+    table = Table()
+    table["ra"] = np.degrees(par["ra"]) * u.deg
+    table["dec"] = np.degrees(par["dec"]) * u.deg
+    table["frequency"] = par["gw_frequency"] * u.Hz
+    table["chirp_mass"] = par["chirp_mass"] * u.solMass
+    table["strain"] = par["strain"]
+    table["inclination"] = par["inclination"] * u.rad
+    table["polarization"] = par["polarization"] * u.rad
+    table["phase"] = par["phase"] * u.rad
+    with np.errstate(divide="ignore"):
+        table["luminosity_distance"] = waveform.luminosity_distance_for_strain(
+            par["strain"], par["chirp_mass"], par["gw_frequency"]) * u.Mpc
+    table["orbital_period"] = waveform.orbital_period(par["gw_frequency"]) / YEAR_SECONDS * u.yr
+    table.meta["description"] = "equally weighted posterior samples (T = 1) of the cwsearch follow-up"
+    return table
+
+
+def _intervals(table):
+    out = {}
+    for name in table.colnames:
+        x = np.asarray(table[name], dtype=float)
+        x = x[np.isfinite(x)]
+        if x.size == 0:
+            continue
+        lo, med, hi = np.percentile(x, [5, 50, 95])
+        out[name] = {"median": float(med), "interval_90": [float(lo), float(hi)],
+                     "unit": str(table[name].unit) if table[name].unit is not None else ""}
+    return out
+
+
+def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
+    from ...inference import sampling
+    from ...core.fileio import write_table_atomic
+
+    span = array.span
+    if target.frequency is None:
+        band = (np.log10(1.0 / span), np.log10(options.max_frequency))
+    else:
+        half = options.frequency_window / span
+        band = (np.log10(max(target.frequency - half, 0.5 / span)), np.log10(target.frequency + half))
+    if band[0] >= band[1]:
+        raise InputError("empty frequency band for the follow-up; check --max-frequency / --frequency")
+    prior = Prior(likelihood, band, uniform_strain=options.strain_prior == "uniform")
+    if target.frequency is not None and target.strain is None:
+        target = earth_term_start(likelihood.engine, target)
+    init_seq, sampler_seq = seed_seq.spawn(2)
+    rng = np.random.default_rng(init_seq)
+    settings = sampling.SamplerSettings(
+        walkers=options.walkers, temperatures=options.temperatures, max_temperature=options.max_temperature,
+        ess=options.ess, max_iterations=options.max_iterations,
+        max_time=float("inf") if options.max_time is None else float(options.max_time),
+        checkpoint_every=options.checkpoint_every, adapt_iterations=options.adapt_iterations)
+    initial = initial_positions(prior, target, span, (options.temperatures, options.walkers), rng)
+    fingerprint = {"target": [target.frequency, target.ra, target.dec], "band": list(band),
+                   "pulsar_term": likelihood.pulsar_term, "evolution": likelihood.evolution,
+                   "strain_prior": options.strain_prior, "n_pulsars": len(array),
+                   "phase_grid": likelihood.phase_grid}
+    result = sampling.run_sampler(prior, likelihood.batch, initial, settings, seed=sampler_seq,
+                                  checkpoint=folder / "checkpoint.npz", resume=options.resume,
+                                  fingerprint=fingerprint, progress=progress, label=target.label)
+    samples = result.samples()
+    table = posterior_table(likelihood, samples)
+    write_table_atomic(folder / "posterior.ecsv", table)
+    names = list(likelihood.names)
+    summary = {
+        "target": target.label,
+        "start": {"frequency": target.frequency,
+                  "ra": None if target.ra is None else float(np.degrees(target.ra)),
+                  "dec": None if target.dec is None else float(np.degrees(target.dec)),
+                  "candidate_row": target.source or None},
+        "log_bayes_factor": result.log_evidence,
+        "log_bayes_factor_error": result.log_evidence_error,
+        "parameters": _intervals(table),
+        "autocorrelation_time": dict(zip(names, map(float, result.autocorrelation_time))),
+        "effective_sample_size": result.ess,
+        "n_samples": int(samples.shape[0]),
+        "iterations": result.iterations,
+        "burn_in": result.burn_in,
+        "stopped_by": result.stopped_by,
+        "swap_acceptance": [float(x) for x in np.nan_to_num(result.swap_acceptance)],
+        "acceptance": [float(x) for x in np.nan_to_num(result.acceptance)],
+        "temperatures": [float(1 / b) for b in result.betas],
+        "max_log_likelihood": float(result.log_likelihood.max()) if result.iterations else None,
+        "likelihood_evaluations": result.evaluations,
+        "wall_time": result.wall_time,
+        "model": {"pulsar_term": likelihood.pulsar_term, "pulsar_phases": "marginalised" if likelihood.pulsar_term
+                  else "none", "pulsar_distances": "catalogue values", "evolution": likelihood.evolution,
+                  "strain_prior": options.strain_prior, "log10_frequency_band": list(band),
+                  "chirp_mass_range": list(CHIRP_MASS_RANGE), "strain_range": list(STRAIN_RANGE)},
+    }
+    return summary, result, table
+
+
+def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *, noise=NoiseSettings(),
+                 seed=0, progress=True) -> FollowupResult:
+    """Follow up the chosen targets and write ``run_dir/followup/`` (see module docstring)."""
+    from ...core.fileio import write_json_atomic
+    from ...inference.likelihood import Likelihood
+
+    options.check()
+    run_dir = Path(run_dir)
+    targets = select_targets(run_dir, options)
+    start = time.monotonic()
+    likelihood = Likelihood(array, noise, pulsar_term=not options.earth_term_only, evolution=options.evolution,
+                            phase_grid=options.phase_grid, uniform_strain=options.strain_prior == "uniform")
+    seqs = np.random.SeedSequence(seed).spawn(len(targets))
+    stage = run_dir / "followup"
+    summaries, folders, runs = [], [], []
+    for target, seq in zip(targets, seqs):
+        folder = stage if len(targets) == 1 else stage / target.label
+        summary, result, table = _follow_one(likelihood, target, array, folder, options, seq, progress)
+        summary["seed"] = seed
+        write_json_atomic(folder / "summary.json", summary)
+        if options.plots:
+            from .plots import plot_followup
+
+            plot_followup(folder, table, result, likelihood, array, target)
+        summaries.append(summary)
+        folders.append(folder)
+        runs.append(result)
+    headline = {"targets": [s["target"] for s in summaries],
+                "log_bayes_factor": [s["log_bayes_factor"] for s in summaries],
+                "log_bayes_factor_error": [s["log_bayes_factor_error"] for s in summaries],
+                "effective_sample_size": [s["effective_sample_size"] for s in summaries],
+                "folders": [str(f) for f in folders], "seed": seed,
+                "wall_time": time.monotonic() - start, "options": asdict(options)}
+    if len(targets) > 1:
+        write_json_atomic(stage / "summary.json", headline)
+    return FollowupResult(summary=headline if len(targets) > 1 else summaries[0], folders=folders, runs=runs)
+
+
+__all__ = ["FollowupOptions", "FollowupResult", "run_followup", "Prior", "select_targets", "posterior_table",
+           "initial_positions", "Target"]

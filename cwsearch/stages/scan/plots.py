@@ -1,0 +1,72 @@
+"""Plots of the scan stage: Fe-max and Fp spectra with FAP thresholds, and the Fe sky map.
+
+Called by :func:`cwsearch.stages.scan.stage.run_scan`; all files are PNG, written atomically.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from ...core.plotting import pyplot, save_figure, sky_map
+
+_LINE_STYLES = ("--", ":", "-.")
+
+
+def _log_if_wide(ax, values, levels):
+    """Logarithmic y axis when a peak towers over the threshold lines (keeps both readable)."""
+    values = np.asarray(values, dtype=float)
+    values = values[np.isfinite(values) & (values > 0)]
+    levels = [float(v) for v in levels if np.isfinite(v) and v > 0]
+    if values.size and levels and values.max() > 20 * max(levels):
+        ax.set_yscale("log")
+        ax.set_ylim(bottom=max(values.min(), 0.05 * min(levels)))
+
+
+def spectrum_plot(path, spectrum, candidates, thresholds, *, want_fe=True):
+    """Two panels against frequency: the sky maximum of Fe (if scanned) and Fp, with threshold lines.
+
+    ``thresholds``: ``{"fe": [(label, value)], "fp": [(label, value or per-frequency array)]}``.
+    """
+    plt = pyplot()
+    freq = np.asarray(spectrum["frequency"], dtype=float)
+    n_panels = 2 if want_fe else 1
+    fig, axes = plt.subplots(n_panels, 1, figsize=(8, 3.2 * n_panels), sharex=True, squeeze=False)
+    axes = axes[:, 0]
+    if want_fe:
+        ax = axes[0]
+        ax.plot(freq, spectrum["fe_max"], color="C0", lw=0.9, label="max over sky of Fe")
+        for style, (label, value) in zip(_LINE_STYLES, thresholds.get("fe", [])):
+            ax.axhline(value, color="C3", ls=style, lw=1.0, label=label)
+        if len(candidates) and np.all(np.isfinite(np.asarray(candidates["fe"], dtype=float))):
+            ax.scatter(candidates["frequency"], candidates["fe"], marker="v", color="C1", zorder=3,
+                       label="candidates")
+        _log_if_wide(ax, spectrum["fe_max"], [v for _, v in thresholds.get("fe", [])])
+        ax.set_ylabel("Fe (sky maximum)")
+        ax.legend(fontsize=7, loc="upper right")
+        ax.grid(alpha=0.3)
+    ax = axes[-1]
+    ax.plot(freq, spectrum["fp"], color="C2", lw=0.9, label="Fp (pulsar term)")
+    for style, (label, value) in zip(_LINE_STYLES, thresholds.get("fp", [])):
+        if np.ndim(value):
+            ax.plot(freq, value, color="C3", ls=style, lw=1.0, label=label)
+        else:
+            ax.axhline(value, color="C3", ls=style, lw=1.0, label=label)
+    _log_if_wide(ax, spectrum["fp"], [np.nanmax(v) for _, v in thresholds.get("fp", [])])
+    ax.set_ylabel("Fp")
+    ax.set_xlabel("GW frequency [Hz]")
+    ax.set_xscale("log")
+    ax.legend(fontsize=7, loc="upper right")
+    ax.grid(alpha=0.3)
+    axes[0].set_title("F-statistic spectrum")
+    fig.tight_layout()
+    save_figure(fig, path)
+
+
+def sky_plot(path, fe_values, nside, frequency, array, candidates):
+    """Mollweide map of Fe at one frequency, pulsars as stars, candidates at that frequency marked."""
+    marks = [{"ra": np.radians(float(row["ra"])), "dec": np.radians(float(row["dec"])),
+              "label": f"candidate {int(row['rank'])}" if i < 3 else None, "color": "red", "marker": "x"}
+             for i, row in enumerate(candidates)]
+    sky_map(path, np.asarray(fe_values, dtype=float), nside,
+            title=f"Fe at f = {frequency:.4g} Hz", label="Fe",
+            pulsars=(np.array([p.ra for p in array]), np.array([p.dec for p in array])), marks=marks)
