@@ -7,7 +7,6 @@ integers, units and masks exactly (common practice, no source).
 from __future__ import annotations
 
 import numpy as np
-import pytest
 from astropy.table import MaskedColumn, Table
 
 from cwsearch.compare import (ATOL_SCALE, RTOL, compare_arrays, compare_datasets, compare_files,
@@ -93,7 +92,3 @@ def test_files_and_datasets(tmp_path, tiny_array):
     assert not compare_files(tmp_path / "x.bin", tmp_path / "y.bin").ok   # not numbers: bytes
     assert not compare_files(tmp_path / "x.bin", tmp_path / "missing.bin").ok
 
-
-@pytest.mark.parametrize("rtol", [1e-12])
-def test_stated_tolerance(rtol):
-    assert RTOL == rtol   # the tolerance the README and docs/design.md state
