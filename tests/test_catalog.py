@@ -60,7 +60,7 @@ def test_column_mapping(tmp_path):
     text = "ID,RAJ2000,DEJ2000,Dist,Kmag\nG1,10,20,40,-24.5\n"
     cat = read_catalog(_write(tmp_path, text), "name=ID,ra=RAJ2000,dec=DEJ2000,distance=Dist,k_abs_mag=Kmag")
     assert cat.name[0] == "G1" and cat.distance[0] == 40.0
-    assert cat.proxies["k_abs_mag"][0] == -24.5
+    assert cat.proxies["k_abs_mag"][0] == -24.5  # exact: parsed from the file, not computed
     assert parse_column_map("ra=RAJ2000, dec=DEJ2000") == {"ra": "RAJ2000", "dec": "DEJ2000"}
     with pytest.raises(InputError, match="unknown column 'rightasc'"):
         parse_column_map("rightasc=RA")

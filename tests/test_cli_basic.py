@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -15,6 +16,7 @@ from pathlib import Path
 import pytest
 
 from cwsearch import __version__, cli
+from cwsearch.data.compare import compare_datasets
 from cwsearch.data.dataset import dataset_checksum, read_dataset
 
 REPO = Path(__file__).resolve().parents[1]
@@ -74,6 +76,7 @@ def test_simulate_then_inspect(tmp_path, capsys):
     assert "optimal SNR" in capsys.readouterr().out
     injection = json.loads((out / "injection.json").read_text())
     (binary,) = injection["binaries"]
+    # exact on purpose: the options are copied into injection.json, not recomputed
     assert (binary["ra"], binary["dec"], binary["gw_frequency"], binary["strain"]) == (150.0, -20.0, 8e-9, 2e-14)
     assert binary["chirp_mass"] == 1e9 and set(binary["pulsar_phases"]) == {f"SIMPSR0{i}" for i in range(1, 5)}
     assert injection["seed"] == 7
@@ -85,16 +88,21 @@ def test_simulate_then_inspect(tmp_path, capsys):
     summary = json.loads(capsys.readouterr().out)
     arr = read_dataset(out)
     assert summary["n_pulsars"] == 4 and summary["n_toas"] == sum(p.n_toas for p in arr)
-    assert summary["checksum"] == dataset_checksum(out)
+    assert summary["checksum"] == dataset_checksum(out)  # checksum of the same files, read twice
     assert summary["injected_binaries"] == 1
     assert [p["name"] for p in summary["pulsars"]] == arr.names
 
-    # refuses a non-empty folder, replaces it with --overwrite, same seed -> same files
+    # refuses a non-empty folder, replaces it with --overwrite, same seed -> same numbers (recomputed, so
+    # compared table by table to 1e-12 relative, never by checksum)
     before = dataset_checksum(out)
+    keep = tmp_path / "first"
+    shutil.copytree(out, keep)
     assert cli.main(argv) == 2
     assert "--overwrite" in capsys.readouterr().err
+    assert dataset_checksum(out) == before  # refused: the files were not touched, so their bytes are the same
     assert cli.main(argv + ["--overwrite", "--quiet"]) == 0
-    assert dataset_checksum(out) == before
+    same = compare_datasets(out, keep)
+    assert same.ok, same.describe()
     assert cli.main(["simulate", str(tmp_path / "other"), *SMALL, "--seed", "8", "--quiet"]) == 0
     assert dataset_checksum(tmp_path / "other") != before
 
@@ -115,7 +123,8 @@ def test_inject_file_round_trip(tmp_path, capsys):
     assert injection["binaries"][1]["strain"] > 0
     assert cli.main(["simulate", str(tmp_path / "b"), *SMALL, "--inject-file",
                      str(tmp_path / "a" / "injection.json"), "--quiet"]) == 0
-    assert dataset_checksum(tmp_path / "a") == dataset_checksum(tmp_path / "b")
+    same = compare_datasets(tmp_path / "a", tmp_path / "b", injection=False)  # recomputed: to 1e-12 relative
+    assert same.ok, same.describe()
 
 
 @pytest.mark.parametrize("extra, message", [

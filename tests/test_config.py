@@ -181,7 +181,7 @@ def test_resolved_config_reads_back_identically(tmp_path, dataset_dir):
     text = cfg.to_toml()
     tomllib.loads(text)  # valid TOML (stdlib parser)
     again = parse_config(text, path=tmp_path / "elsewhere" / "run.toml")
-    assert again.to_dict() == cfg.to_dict()
+    assert again.to_dict() == cfg.to_dict()  # exact: values written and parsed back, nothing recomputed
 
 
 def test_example_run_file_validates():
@@ -225,7 +225,7 @@ def test_writer_round_trips_through_tomllib():
     def drop_none(d):
         return {k: drop_none(v) if isinstance(v, dict) else v for k, v in d.items() if v is not None}
 
-    assert back == drop_none(data)
+    assert back == drop_none(data)  # exact: a serialisation round trip (shortest repr), nothing recomputed
     assert math.copysign(1, back["list"][2]) == -1  # -0.0 keeps its sign
 
 

@@ -315,6 +315,8 @@ def test_round_trip_exact(tmp_path, tiny_array):
 
 
 def _assert_same_pulsar(p, q, angles_exact):
+    # exact on purpose: writing and reading a number is not recomputing it; the writer prints every float
+    # at full precision (shortest round-trip form), so the file contract is bit for bit
     assert p.name == q.name
     for attr in ("mjd", "residuals", "sigmas", "extra_design"):
         a, b = getattr(p, attr), getattr(q, attr)
@@ -407,6 +409,7 @@ def test_writer_refuses_nonempty_and_non_dataset(tmp_path, tiny_array):
 def test_checksum_stable_and_sensitive(tmp_path, tiny_array):
     write_dataset(tiny_array, tmp_path / "a")
     write_dataset(tiny_array, tmp_path / "b")
+    # exact on purpose: the same in-memory numbers written twice (nothing recomputed) give the same bytes
     assert dataset_checksum(tmp_path / "a") == dataset_checksum(tmp_path / "b")
     edit(PSR, setcell("residual", 0, 1e-6))(tmp_path / "b")
     assert dataset_checksum(tmp_path / "a") != dataset_checksum(tmp_path / "b")

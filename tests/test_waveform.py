@@ -135,6 +135,7 @@ def test_constants_match_astropy():
     assert constants.SOLAR_MASS_SECONDS == pytest.approx(4.925491e-6, rel=1e-7)
     assert constants.KPC_SECONDS == pytest.approx((1 * u.kpc / const.c).to_value(u.s), rel=1e-14)
     assert constants.MPC_SECONDS == pytest.approx((1 * u.Mpc / const.c).to_value(u.s), rel=1e-14)
+    # exact on purpose: defined values (SI speed of light, Julian year, 86400-s day), copied rather than computed
     assert constants.SPEED_OF_LIGHT == const.c.to_value(u.m / u.s)
     assert constants.YEAR_SECONDS == YEAR
     assert constants.DAY_SECONDS == (1 * u.day).to_value(u.s)
