@@ -165,7 +165,13 @@ def initial_positions(prior, target: Target, span, shape, rng):
     through ``prior``.
     """
     n = shape[0] * shape[1]
-    return prior.draw(rng, n).reshape(shape + (8,))
+    pos = prior.draw(rng, n)
+    for _ in range(20):       # ptemcee cannot start where the likelihood is not finite
+        bad = ~np.isfinite(prior.likelihood.batch(pos))
+        if not bad.any():
+            break
+        pos[bad] = prior.draw(rng, int(bad.sum()))
+    return pos.reshape(shape + (8,))
 
 
 # ---------------------------------------------------------------- targets
