@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 
 from cwsearch.physics import simulate
-from cwsearch.stages.followup.stage import OUTPUT_COLUMNS, FollowupOptions, run_followup
+from cwsearch.stages.followup.stage import OUTPUT_COLUMNS, SAMPLE_COLUMNS, FollowupOptions, run_followup
 from cwsearch.physics.noise import NoiseSettings, NoiseWeighting
 from cwsearch.physics.simulate import Binary, invented_array, simulate_residuals
 
@@ -58,7 +58,7 @@ def test_loud_injection_outputs(tmp_path, base_array):
     from astropy.table import Table
 
     table = Table.read(folder / "posterior.ecsv", format="ascii.ecsv")
-    assert tuple(table.colnames) == OUTPUT_COLUMNS
+    assert tuple(table.colnames) == OUTPUT_COLUMNS + SAMPLE_COLUMNS
     assert str(table["ra"].unit) == "deg" and str(table["luminosity_distance"].unit) == "Mpc"
     # derived columns follow the published relations P = 2/f and h0(Mc, f, d_L) (CHECKS.md)
     np.testing.assert_allclose(table["orbital_period"], 2 / table["frequency"] / (365.25 * 86400), rtol=1e-12)

@@ -180,6 +180,22 @@ def test_marginal_factor_with_second_harmonic_against_quad(size):
         assert marginal_log_factor(a, b, c, d, e, 0) == pytest.approx(expected, rel=1e-11, abs=1e-11)
 
 
+@pytest.mark.parametrize("a, b, c, d", [(-609.07, 2424.0, -2295.5, 5351.9), (-3884.6, -4631.2, -3769.7, 831.0),
+                                        (2325.4, 411.9, -249.6, -501.7)])
+def test_marginal_factor_finite_where_the_grid_sum_nearly_underflows(a, b, c, d):
+    # Loud, misaligned harmonics (walkers drawn from the prior at the largest strains): the grid sum
+    # shifted by |a,b| + |c,d| is subnormal; it once returned -inf instead of the (very negative) value.
+    # Reference: scipy.integrate.quad around the maximum of f (found on a fine grid).
+    f = lambda x: a * np.cos(x) + b * np.sin(x) + c * np.cos(2 * x) + d * np.sin(2 * x)  # noqa: E731
+    grid = np.linspace(0, 2 * np.pi, 400_001)
+    x0 = grid[np.argmax(f(grid))]
+    peak = f(x0)
+    val = sum(integrate.quad(lambda x: np.exp(f(x) - peak), lo, hi, epsabs=0, epsrel=1e-12, limit=400)[0]
+              for lo, hi in ((x0 - np.pi, x0), (x0, x0 + np.pi)))
+    expected = peak + np.log(val / (2 * np.pi))
+    assert marginal_log_factor(a, b, c, d, 0.0, 0) == pytest.approx(expected, rel=1e-10, abs=1e-8)
+
+
 def test_sincos_matches_numpy():
     # numpy's sin/cos as the reference, over the phase range of PTA signals (|x| ≲ 1e3 rad).
     x = np.linspace(-1500, 1500, 20_001)

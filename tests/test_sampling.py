@@ -172,6 +172,6 @@ def test_sampler_does_not_stop_before_the_adaptation_is_over():
                                adapt_iterations=200, check_every=50, checkpoint_every=10**6)
     p0 = np.random.default_rng(8).uniform(-BOX, BOX, (3, 16, DIM))
     result = run_sampler(box_prior, unit_gaussian, p0, settings, seed=9, progress=False)
-    assert result.stopped_by == "ess"
+    assert result.stopped_by == "converged"
     assert result.iterations > settings.adapt_iterations
     assert result.burn_in >= settings.adapt_iterations

@@ -380,7 +380,7 @@ def marginal_log_factor(a, b, c, d, e, n_grid):
             cm, sm = np.cos((m + 1) * step), np.sin((m + 1) * step)
         else:
             cm, sm = cm * cs - sm * sn, sm * cs + cm * sn
-    if total <= 0.0:       # underflow only for |amplitudes| ≳ 700: second pass with exact maximum
+    if total < 1e-250:     # (near) underflow, |amplitudes| ≳ 500: second pass with the exact maximum
         fmax = -np.inf
         for m in range(k):
             x = m * step

@@ -13,13 +13,27 @@
   (temporary file + rename, no pickled objects). Resuming after any kill,
   including ``kill -9``, repeats exactly the iterations after the last
   checkpoint, with the same random numbers.
-* **Stopping.** Until the effective sample size of the T=1 chain after
-  burn-in reaches a target, or an iteration or wall-time cap. The target
-  only counts once the ladder adaptation is over and the burn-in covers it
-  (the walkers start from the prior or a rough guess; before that the
-  chain is not stationary and its autocorrelation time is underestimated),
-  and once the T=1 log-likelihood after burn-in shows no drift between
-  its two halves (:func:`stationary`).
+* **Stopping** (:func:`_converged`). All of: the ladder adaptation is over
+  and the burn-in (the first quarter of the run, at least the adaptation)
+  covers it; the chain after burn-in is at least ``min_chain_taus`` (50)
+  integrated autocorrelation times τ long, τ the worst parameter's
+  (:func:`integrated_time`, guidance of the emcee documentation, Foreman-Mackey
+  et al. 2013); the effective sample size ``walkers × length / τ`` reaches
+  the target; τ has stopped changing (relative change below
+  ``tau_tolerance`` = 1 % per check, averaged over the last ``tau_checks``
+  checks); and the T=1 log-likelihood after burn-in shows no drift between
+  its two halves (:func:`stationary`). An iteration or wall-time cap stops
+  the run as well, but is reported as such (``stopped_by``) with a warning,
+  never as converged.
+* **Ladder.** ptemcee adapts the temperatures during the adaptation phase
+  towards equal swap acceptance of adjacent pairs (Vousden, Farr & Mandel
+  2016). At its end, every adjacent pair whose swap acceptance (over the
+  last quarter of the phase) is below ``min_swap_acceptance`` (0.05) gets
+  new temperatures inserted (geometrically, walkers copied from the colder
+  neighbour) and the ladder adapts again, up to ``ladder_rounds`` times and
+  ``max_temperatures`` temperatures. The swap acceptance of every adjacent
+  pair after the final adaptation is reported; a pair still below the
+  threshold gives a warning saying why.
 * **Evidence.** Thermodynamic integration ``ln Z = ∫₀¹ ⟨ln L⟩_β dβ`` over the
   final ladder (trapezoid), with an error from the ladder discretisation
   (full versus every-other temperature) and the Monte-Carlo error of each
@@ -113,14 +127,20 @@ def integrated_time(chain, window_factor=5.0):
 
     ``chain`` has shape (iterations, walkers, dim). The autocorrelation
     function is averaged over walkers (FFT), summed up to the first lag M
-    with ``M ≥ window_factor · τ(M)`` (Sokal's automatic window; Goodman &
-    Weare 2010 for ensembles).
+    with ``M ≥ window_factor · τ(M)`` (Sokal's automatic window, Sokal 1997;
+    Goodman & Weare 2010 for ensembles). Deviations are taken from the mean
+    over all walkers and iterations, not each walker's own mean: a walker's
+    own mean removes ≈ τ/N of the autocorrelation at every lag, which biases
+    τ low by ≈ 2Mτ/N (≈ 20 % for a chain of 50 τ); the pooled mean removes
+    only τ/(N·walkers), and walkers that have not mixed (stuck in different
+    modes) show up as a long τ instead of being hidden (the between-chain
+    part of a multi-chain ESS, as in Vehtari et al. 2021, from memory).
     """
     x = np.asarray(chain, dtype=float)
     n = x.shape[0]
     if n < 4:
         return np.full(x.shape[2], np.inf)
-    x = x - x.mean(axis=0)
+    x = x - x.mean(axis=(0, 1))
     size = 1 << int(np.ceil(np.log2(2 * n)))
     f = np.fft.rfft(x, n=size, axis=0)
     acf = np.fft.irfft(f * np.conj(f), n=size, axis=0)[:n].mean(axis=1)
@@ -188,9 +208,12 @@ def thermodynamic_log_evidence(betas, mean_logl, stderr=None):
 
 
 # ---------------------------------------------------------------- run driver
+CHECKPOINT_FORMAT = 2   # checkpoints of other formats are refused on resume
+
+
 @dataclass(frozen=True)
 class SamplerSettings:
-    """How to run the tempered sampler (see :func:`run_sampler`)."""
+    """How to run the tempered sampler (see :func:`run_sampler` and the module docstring)."""
 
     walkers: int = 32
     temperatures: int = 8
@@ -199,16 +222,29 @@ class SamplerSettings:
     max_iterations: int = 100_000
     max_time: float = float("inf")       # seconds, counted over all sessions of a resumed run
     checkpoint_every: int = 100
-    adapt_iterations: int = 500          # the ladder adapts during these first iterations only
+    adapt_iterations: int = 500          # length of each ladder-adaptation round
     check_every: int = 50
+    min_chain_taus: float = 50.0         # chain after burn-in at least this many τ
+    tau_tolerance: float = 0.01          # τ's relative change per check, averaged over `tau_checks` checks
+    tau_checks: int = 4
+    min_swap_acceptance: float = 0.05    # adjacent pairs below this get temperatures inserted
+    ladder_rounds: int = 3               # at most this many insertion rounds after the first adaptation
+    max_temperatures: int | None = None  # None: 3 x temperatures, at most 40
 
     def fingerprint(self):
         """Settings that a resumed run must share with its checkpoint."""
         return {"walkers": self.walkers, "temperatures": self.temperatures,
-                "max_temperature": self.max_temperature, "adapt_iterations": self.adapt_end()}
+                "max_temperature": self.max_temperature, "adapt_iterations": self.adapt_end(),
+                "min_swap_acceptance": self.min_swap_acceptance, "ladder_rounds": self.ladder_rounds,
+                "max_temperatures": self.temperature_limit(), "format": CHECKPOINT_FORMAT}
 
     def adapt_end(self) -> int:
         return int(self.adapt_iterations)
+
+    def temperature_limit(self) -> int:
+        if self.max_temperatures is not None:
+            return max(int(self.max_temperatures), self.temperatures)
+        return max(min(3 * self.temperatures, 40), self.temperatures)
 
 
 @dataclass
@@ -217,33 +253,56 @@ class SamplerResult:
 
     chain: np.ndarray              # (iterations, walkers, dim) at T = 1
     log_likelihood: np.ndarray     # (iterations, walkers) at T = 1
-    mean_log_likelihood: np.ndarray  # (iterations, temperatures), walker means
+    mean_log_likelihood: np.ndarray  # (iterations, temperatures), walker means (NaN before a ladder change)
     betas: np.ndarray              # final ladder, β = 1 first
     iterations: int
     burn_in: int
     autocorrelation_time: np.ndarray
     ess: float
-    swap_acceptance: np.ndarray
+    swap_acceptance: np.ndarray    # per adjacent pair (coldest pair first), after the final adaptation
     acceptance: np.ndarray
     log_evidence: float
     log_evidence_error: float
     wall_time: float
-    stopped_by: str
+    stopped_by: str                # "converged", "iterations" (cap) or "time" (cap)
     evaluations: int = 0
     extra: dict = field(default_factory=dict)
+    log_prior: np.ndarray | None = None   # (iterations, walkers) at T = 1
+    converged: bool = False
+    warnings: list = field(default_factory=list)
+    adaptation_end: int = 0        # iteration at which the final ladder adaptation ended
+    ladder_history: list = field(default_factory=list)
+    waiting_for: str = ""          # the unmet part of the stopping rule at the last check ("" when converged)
+
+    def chain_taus(self):
+        """Length of the chain after burn-in in units of each parameter's τ."""
+        return (self.iterations - self.burn_in) / np.asarray(self.autocorrelation_time, dtype=float)
+
+    def _thin(self):
+        tau = float(np.max(self.autocorrelation_time))
+        return max(1, int(np.ceil(tau / 2))) if np.isfinite(tau) else 1
 
     def samples(self):
         """Equally weighted T=1 samples after burn-in, thinned by about τ/2: array (N, dim)."""
         post = self.chain[self.burn_in: self.iterations]
-        tau = float(np.max(self.autocorrelation_time))
-        thin = max(1, int(np.ceil(tau / 2))) if np.isfinite(tau) else 1
-        return post[::thin].reshape(-1, post.shape[2])
+        return post[::self._thin()].reshape(-1, post.shape[2])
+
+    def sample_details(self):
+        """The samples of :meth:`samples` with, in the same order, their T=1 ``log_likelihood``,
+        ``log_prior``, ``iteration`` (0-based index in the chain) and ``walker`` index: a dict."""
+        thin = self._thin()
+        rows = np.arange(self.burn_in, self.iterations)[::thin]
+        walkers = self.chain.shape[1]
+        logp = self.log_prior if self.log_prior is not None else np.zeros_like(self.log_likelihood)
+        return {"samples": self.samples(), "log_likelihood": self.log_likelihood[rows].reshape(-1),
+                "log_prior": logp[rows].reshape(-1), "iteration": np.repeat(rows, walkers),
+                "walker": np.tile(np.arange(walkers), rows.size)}
 
 
 def _burn_in(n, adapt_end):
-    """Burn-in: the first half of the run, and at least the ladder-adaptation phase when that
+    """Burn-in: the first quarter of the run, and at least the ladder-adaptation phase when that
     leaves enough iterations (otherwise just the first half)."""
-    burn = max(adapt_end, n // 2)
+    burn = max(adapt_end, n // 4)
     return burn if n - burn >= 8 else n // 2
 
 
@@ -265,25 +324,88 @@ def stationary(log_likelihood, z_max=3.0):
     return bool(abs(a.mean() - b.mean()) <= z_max * np.sqrt(se2))
 
 
-def _converged(n, burn, adapt_end, tau, ess, target, log_likelihood):
-    """The stopping rule: the ESS target is reached on a chain that (1) is past the ladder-adaptation
-    phase, which the burn-in then covers entirely (samples from an adapting, not yet stationary
-    ensemble do not count), (2) is at least 10 autocorrelation times long after burn-in
-    (shorter chains underestimate τ; Sokal 1997, Goodman & Weare 2010), and (3) shows no drift
-    of its log-likelihood after burn-in (:func:`stationary`)."""
-    return bool(n > adapt_end and burn >= adapt_end and ess >= target and (n - burn) >= 10 * np.max(tau)
-                and stationary(log_likelihood[burn:n]))
+def tau_change(history, checks):
+    """Relative change of τ per check over the last ``checks`` checks: ``max_j |τ_j(now) −
+    τ_j(checks ago)| / (checks · τ_j(now))``; inf with fewer checks. ``history`` is a list of τ arrays."""
+    if len(history) < checks + 1:
+        return float("inf")
+    now, then = np.asarray(history[-1], dtype=float), np.asarray(history[-1 - checks], dtype=float)
+    if not (np.all(np.isfinite(now)) and np.all(np.isfinite(then))):
+        return float("inf")
+    return float(np.max(np.abs(now - then) / now) / checks)
 
 
-def _diagnostics(chain_t1, mean_logl, n, burn, betas):
+def _converged(n, burn, adapt_end, tau, ess, settings, log_likelihood, tau_history):
+    """The stopping rule (see the module docstring): ``(True, "")`` when met, else ``(False, what is
+    missing)``. The parts, in order: (1) past the ladder adaptation, which the burn-in covers (samples
+    from an adapting, not yet stationary ensemble do not count); (2) the chain after burn-in is at least
+    ``min_chain_taus`` autocorrelation times long (shorter chains underestimate τ: Sokal 1997; the
+    emcee documentation asks for 50 τ); (3) ESS target; (4) τ has stopped changing (:func:`tau_change`
+    below ``tau_tolerance``: a τ that still grows with the chain is underestimated); (5) no drift of
+    the log-likelihood after burn-in (:func:`stationary`)."""
+    if n <= adapt_end or burn < adapt_end:
+        return False, "ladder adapting"
+    worst = float(np.max(tau))
+    length = n - burn
+    if not np.isfinite(worst) or length < settings.min_chain_taus * worst:
+        have = length / worst if np.isfinite(worst) else 0.0
+        return False, f"chain {have:.0f}/{settings.min_chain_taus:g} tau"
+    if ess < settings.ess:
+        return False, "ESS below target"
+    change = tau_change(tau_history, settings.tau_checks)
+    if not change < settings.tau_tolerance:
+        return False, "tau still changing" + (f" ({100 * change:.1f} %/check)" if np.isfinite(change) else "")
+    if not stationary(log_likelihood[burn:n]):
+        return False, "not yet stationary"
+    return True, ""
+
+
+def _diagnostics(chain_t1, mean_logl, n, burn, betas, ladder_from=0):
     post = chain_t1[burn:n]
     if post.shape[0] < 8:
         return np.full(chain_t1.shape[2], np.inf), 0.0, np.nan, np.inf
     tau = integrated_time(post)
     ess = post.shape[0] * post.shape[1] / float(np.max(tau))
-    err = _batch_stderr(mean_logl[burn:n])
-    ln_z, ln_z_err = thermodynamic_log_evidence(betas, mean_logl[burn:n].mean(axis=0), err)
+    rows = mean_logl[max(burn, ladder_from):n]      # only rows with the final ladder
+    if rows.shape[0] < 2:
+        return tau, ess, np.nan, np.inf
+    err = _batch_stderr(rows)
+    ln_z, ln_z_err = thermodynamic_log_evidence(betas, rows.mean(axis=0), err)
     return tau, ess, ln_z, ln_z_err
+
+
+def extended_ladder(betas, acceptance, threshold, limit, target=0.25):
+    """Insert temperatures into the adjacent pairs whose swap acceptance is below ``threshold``.
+
+    A pair with acceptance ``a`` is split into ``k = ceil(erfcinv(a) / erfcinv(target))`` geometric
+    steps (for overlapping Gaussian energy distributions the acceptance falls like ``erfc`` of the
+    step in ln β; common practice, no source), the lowest pairs first, until the ladder has ``limit``
+    temperatures. Returns ``(new_betas, source)``, ``source[i]`` the old temperature whose walkers
+    start the new temperature ``i`` (itself, or the colder neighbour of an inserted one)."""
+    from scipy.special import erfcinv
+
+    betas = np.asarray(betas, dtype=float)
+    acceptance = np.asarray(acceptance, dtype=float)
+    need = np.zeros(acceptance.size, dtype=int)
+    low = acceptance < threshold
+    need[low] = np.maximum(np.ceil(erfcinv(np.clip(acceptance[low], 1e-6, 1.0)) / erfcinv(target)), 2) - 1
+    alloc = np.zeros_like(need)
+    room = limit - betas.size
+    order = np.argsort(acceptance, kind="stable")
+    while room > 0 and np.any(alloc < need):
+        for i in order:
+            if alloc[i] < need[i] and room > 0:
+                alloc[i] += 1
+                room -= 1
+    new, source = [], []
+    for i, b in enumerate(betas):
+        new.append(b)
+        source.append(i)
+        if i < alloc.size and alloc[i]:
+            inner = np.geomspace(b, betas[i + 1], alloc[i] + 2)[1:-1]
+            new.extend(inner)
+            source.extend([i] * inner.size)
+    return np.array(new), np.array(source, dtype=int)
 
 
 def _save_checkpoint(path, state):
@@ -294,10 +416,19 @@ def _save_checkpoint(path, state):
             np.savez(fh, **state)
 
 
+def _resized(array, rows, width=None, fill=0.0):
+    """``array`` grown to ``rows`` rows (and, for 2-D, ``width`` columns, old columns dropped and NaN-filled)."""
+    shape = (rows,) + array.shape[1:] if width is None else (rows, width)
+    out = np.full(shape, fill)
+    if width is None or width == array.shape[1]:
+        out[: array.shape[0]] = array
+    return out
+
+
 def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *, seed=0,
                 checkpoint=None, resume=False, fingerprint=None, progress=True, callback=None,
                 label="follow-up"):
-    """Run ptemcee until the ESS target or a cap; returns a :class:`SamplerResult`.
+    """Run ptemcee until the stopping rule is met or a cap; returns a :class:`SamplerResult`.
 
     Parameters
     ----------
@@ -323,33 +454,47 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
                        default=str)
     seq = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(seed)
     random = np.random.RandomState(np.random.MT19937(seq))
-    betas = np.geomspace(1.0, 1.0 / settings.max_temperature, ntemps) if ntemps > 1 else np.ones(1)
     pool = VectorisedPool(log_prior, log_likelihood)
-    sampler = pt.Sampler(nwalkers, dim, _unused, _unused, betas=betas, pool=pool, random=random,
-                         adaptation_lag=max(settings.adapt_end(), 1), adaptation_time=100)
+
+    def make_sampler(ladder):
+        return pt.Sampler(nwalkers, dim, _unused, _unused, betas=ladder, pool=pool, random=random,
+                          adaptation_lag=max(settings.adapt_end(), 1), adaptation_time=100)
+
+    betas = np.geomspace(1.0, 1.0 / settings.max_temperature, ntemps) if ntemps > 1 else np.ones(1)
     capacity = 1024
     chain = np.zeros((capacity, nwalkers, dim))
     logl_t1 = np.zeros((capacity, nwalkers))
+    logp_t1 = np.zeros((capacity, nwalkers))
     mean_logl = np.zeros((capacity, ntemps))
+    ratios = np.full((capacity, max(ntemps - 1, 0)), np.nan)
     n = 0
     elapsed_before = 0.0
     p0 = initial
+    adapt_start, adapt_end = 0, settings.adapt_end()
+    rounds, ladder_done, ladder_from = 0, ntemps < 2, 0
+    ladder_history = [{"iteration": 0, "temperatures": int(ntemps), "reason": "initial geometric ladder"}]
+    ladder_note = ""
+    tau_history = []
+    sampler = make_sampler(betas)
     if resume and checkpoint is not None and _exists(checkpoint):
         with np.load(checkpoint, allow_pickle=False) as ck:
-            if str(ck["fingerprint"]) != ident:
+            if "fingerprint" not in ck.files or str(ck["fingerprint"]) != ident:
                 raise InputError("the checkpoint was made with another model or other sampler settings; "
                                  "run without --resume to start afresh", file=checkpoint)
             n = int(ck["iterations"])
             capacity = max(capacity, 2 * n)
-            chain = np.zeros((capacity, nwalkers, dim))
-            logl_t1 = np.zeros((capacity, nwalkers))
-            mean_logl = np.zeros((capacity, ntemps))
-            chain[:n], logl_t1[:n], mean_logl[:n] = ck["chain"], ck["log_likelihood"], ck["mean_log_likelihood"]
+            betas = np.array(ck["betas"])
+            ntemps = betas.size
+            chain = _resized(ck["chain"], capacity)
+            logl_t1 = _resized(ck["log_likelihood"], capacity)
+            logp_t1 = _resized(ck["log_prior"], capacity)
+            mean_logl = _resized(ck["mean_log_likelihood"], capacity)
+            ratios = _resized(ck["swap_ratios"], capacity, fill=np.nan)
+            sampler = make_sampler(betas)
             sampler._p0 = np.array(ck["positions"])
             sampler._logposterior0 = np.array(ck["log_posterior"])
             sampler._loglikelihood0 = np.array(ck["log_likelihood_all"])
-            sampler._betas = np.array(ck["betas"])
-            sampler._time = n
+            sampler._betas = betas.copy()
             sampler.nswap = np.array(ck["nswap"])
             sampler.nswap_accepted = np.array(ck["nswap_accepted"])
             sampler.nprop = np.array(ck["nprop"])
@@ -358,23 +503,38 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
                               int(ck["rng_has_gauss"]), float(ck["rng_gauss"])))
             elapsed_before = float(ck["wall_time"])
             pool.evaluations = int(ck["evaluations"])
+            adapt_start, adapt_end = int(ck["adapt_start"]), int(ck["adapt_end"])
+            rounds, ladder_done, ladder_from = int(ck["ladder_rounds"]), bool(ck["ladder_done"]), int(ck["ladder_from"])
+            ladder_history = json.loads(str(ck["ladder_history"]))
+            ladder_note = str(ck["ladder_note"])
+            tau_history = [row for row in np.array(ck["tau_history"])]
         p0 = None
 
     def state():
         key = random.get_state()
         return {"fingerprint": np.array(ident), "iterations": np.array(n), "chain": chain[:n],
-                "log_likelihood": logl_t1[:n], "mean_log_likelihood": mean_logl[:n],
-                "positions": sampler._p0, "log_posterior": sampler._logposterior0,
+                "log_likelihood": logl_t1[:n], "log_prior": logp_t1[:n], "mean_log_likelihood": mean_logl[:n],
+                "swap_ratios": ratios[:n], "positions": sampler._p0, "log_posterior": sampler._logposterior0,
                 "log_likelihood_all": sampler._loglikelihood0, "betas": sampler._betas,
                 "nswap": sampler.nswap, "nswap_accepted": sampler.nswap_accepted, "nprop": sampler.nprop,
                 "nprop_accepted": sampler.nprop_accepted, "rng_key": key[1], "rng_pos": np.array(key[2]),
                 "rng_has_gauss": np.array(key[3]), "rng_gauss": np.array(key[4]),
                 "wall_time": np.array(elapsed_before + time.monotonic() - start),
-                "evaluations": np.array(pool.evaluations)}
+                "evaluations": np.array(pool.evaluations), "adapt_start": np.array(adapt_start),
+                "adapt_end": np.array(adapt_end), "ladder_rounds": np.array(rounds),
+                "ladder_done": np.array(ladder_done), "ladder_from": np.array(ladder_from),
+                "ladder_history": np.array(json.dumps(ladder_history)), "ladder_note": np.array(ladder_note),
+                "tau_history": np.array(tau_history, dtype=float).reshape(len(tau_history), dim)}
+
+    def pair_acceptance(lo, hi):
+        rows = ratios[max(lo, 0):hi]
+        if rows.shape[0] == 0 or rows.shape[1] == 0:
+            return np.full(rows.shape[1], np.nan)
+        with np.errstate(invalid="ignore"):
+            return np.nanmean(rows, axis=0) if np.isfinite(rows).any() else np.full(rows.shape[1], np.nan)
 
     start = time.monotonic()
-    adapt_end = settings.adapt_end()
-    tau, ess, stopped_by = np.full(dim, np.inf), 0.0, "iterations"
+    tau, ess, stopped_by, waiting = np.full(dim, np.inf), 0.0, "iterations", "not checked yet"
     total = settings.max_iterations if np.isfinite(settings.max_iterations) else None
     with progress_bar(total=total, desc=label, enabled=progress) as bar:
         bar.update(n)
@@ -388,46 +548,106 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
             adapt = n < adapt_end
             if adapt:
                 step = min(step, adapt_end - n)
-            for p, _, logl in sampler.sample(p0, iterations=step, storechain=False, adapt=adapt):
+            sampler._time = n - adapt_start     # ptemcee's adaptation decays with the time since the round began
+            for p, logpost, logl, swaps in sampler.sample(p0, iterations=step, storechain=False, adapt=adapt,
+                                                          swap_ratios=True):
                 p0 = None
                 if n >= chain.shape[0]:
-                    grow = chain.shape[0]
-                    chain = np.concatenate([chain, np.zeros((grow, nwalkers, dim))])
-                    logl_t1 = np.concatenate([logl_t1, np.zeros((grow, nwalkers))])
-                    mean_logl = np.concatenate([mean_logl, np.zeros((grow, ntemps))])
+                    grow = 2 * chain.shape[0]
+                    chain, logl_t1, logp_t1 = _resized(chain, grow), _resized(logl_t1, grow), _resized(logp_t1, grow)
+                    mean_logl, ratios = _resized(mean_logl, grow), _resized(ratios, grow, fill=np.nan)
                 chain[n] = p[0]
                 logl_t1[n] = logl[0]
+                logp_t1[n] = logpost[0] - sampler.betas[0] * logl[0]
                 mean_logl[n] = logl.mean(axis=1)
+                ratios[n] = swaps
                 n += 1
                 bar.update(1)
                 if callback is not None:
                     callback(n)
+            if n == adapt_end and not ladder_done:
+                # end of an adaptation round: insert temperatures where adjacent pairs rarely swap
+                quarter = max(settings.adapt_end() // 4, 1)
+                acc = pair_acceptance(n - quarter, n)
+                low = acc < settings.min_swap_acceptance
+                limit = settings.temperature_limit()
+                if not low.any():
+                    ladder_done = True
+                elif rounds >= settings.ladder_rounds:
+                    ladder_done = True
+                    ladder_note = f"after {rounds} rounds of inserting temperatures (ladder_rounds)"
+                elif ntemps >= limit:
+                    ladder_done = True
+                    ladder_note = f"the ladder has reached its limit of {limit} temperatures (max_temperatures)"
+                else:
+                    new_betas, source = extended_ladder(sampler.betas, acc, settings.min_swap_acceptance, limit)
+                    old_betas = np.array(sampler.betas)
+                    old_logl = np.array(sampler._loglikelihood0)
+                    old_logp = np.array(sampler._logposterior0) - old_betas[:, None] * old_logl
+                    positions = np.array(sampler._p0)[source]
+                    sampler = make_sampler(new_betas)
+                    sampler._p0 = positions.copy()
+                    sampler._loglikelihood0 = old_logl[source].copy()
+                    sampler._logposterior0 = new_betas[:, None] * old_logl[source] + old_logp[source]
+                    ntemps = new_betas.size
+                    mean_logl = _resized(mean_logl, mean_logl.shape[0], ntemps, fill=np.nan)
+                    ratios = _resized(ratios, ratios.shape[0], ntemps - 1, fill=np.nan)
+                    rounds += 1
+                    adapt_start, adapt_end, ladder_from = n, n + settings.adapt_end(), n
+                    tau_history = []
+                    worst = int(np.nanargmin(acc))
+                    ladder_history.append({"iteration": int(n), "temperatures": int(ntemps),
+                                           "reason": f"lowest swap acceptance {acc[worst]:.3f} (pair {worst + 1})"})
             if checkpoint is not None and n % settings.checkpoint_every == 0:
                 _save_checkpoint(checkpoint, state())
             if n % settings.check_every == 0 or n >= settings.max_iterations:
                 burn = _burn_in(n, adapt_end)
-                tau, ess, _, _ = _diagnostics(chain, mean_logl, n, burn, sampler.betas)
-                swap = float(np.mean(sampler.tswap_acceptance_fraction)) if ntemps > 1 else float("nan")
-                done = _converged(n, burn, adapt_end, tau, ess, settings.ess, logl_t1)
-                wait = "" if done or ess < settings.ess else (
-                    "  (ladder adapting)" if n <= adapt_end else "  (not yet stationary)")
-                bar.set_postfix_str(f"ESS {ess:.0f}/{settings.ess:.0f}  swap {swap:.2f}  "
-                                    f"max lnL {logl_t1[:n].max():.1f}{wait}")
+                tau, ess, _, _ = _diagnostics(chain, mean_logl, n, burn, sampler.betas, ladder_from)
+                if n > adapt_end:
+                    tau_history.append(np.array(tau, dtype=float))
+                done, waiting = _converged(n, burn, adapt_end, tau, ess, settings, logl_t1, tau_history)
+                acc = pair_acceptance(max(adapt_end, ladder_from) if n > adapt_end else n - settings.check_every, n)
+                swap = f"{np.nanmin(acc):.2f}" if acc.size and np.isfinite(acc).any() else "-"
+                bar.set_postfix_str(f"ESS {ess:.0f}/{settings.ess:.0f}  min swap {swap}  T {ntemps}  "
+                                    f"max lnL {logl_t1[:n].max():.1f}" + (f"  ({waiting})" if waiting else ""))
                 if done:
-                    stopped_by = "ess"
+                    stopped_by = "converged"
                     break
     if checkpoint is not None and n > 0:
         _save_checkpoint(checkpoint, state())
     burn = _burn_in(n, adapt_end)
-    tau, ess, ln_z, ln_z_err = _diagnostics(chain, mean_logl, n, burn, sampler.betas)
+    tau, ess, ln_z, ln_z_err = _diagnostics(chain, mean_logl, n, burn, sampler.betas, ladder_from)
+    converged = stopped_by == "converged"
+    if not converged and n > 0:
+        # the rule as it stands at the end (a cap can fall between checks)
+        done, waiting = _converged(n, burn, adapt_end, tau, ess, settings, logl_t1, tau_history)
+    swap = pair_acceptance(max(adapt_end, ladder_from) if n > adapt_end else ladder_from, n)
+    warnings = []
+    if not converged:
+        cap = {"iterations": f"iteration cap ({settings.max_iterations})", "time": "wall-time cap"}[stopped_by]
+        warnings.append(f"the sampler stopped at its {cap} after {n} iterations before its stopping rule was met "
+                        f"({waiting or 'no check yet'}); ESS {ess:.0f} of {settings.ess:g}, chain "
+                        f"{(n - burn) / float(np.max(tau)) if np.isfinite(np.max(tau)) else 0:.0f} "
+                        f"autocorrelation times of {settings.min_chain_taus:g}: the posterior and the Bayes factor "
+                        "may not be converged")
+    temps = 1.0 / np.asarray(sampler.betas)
+    for i, a in enumerate(swap):
+        if np.isfinite(a) and a < settings.min_swap_acceptance:
+            why = ladder_note or ("the run ended during the ladder adaptation" if n <= adapt_end else
+                                  "the ladder adapted above the threshold but the acceptance dropped afterwards")
+            warnings.append(f"temperature swaps between T = {temps[i]:.3g} and T = {temps[i + 1]:.3g} were "
+                            f"accepted in {a:.3f} of proposals (< {settings.min_swap_acceptance:g}): {why}; the "
+                            "chains mix poorly there and the Bayes-factor error may be underestimated "
+                            "(raise the number of temperatures or lower the maximum temperature)")
     with np.errstate(invalid="ignore", divide="ignore"):
-        swap = sampler.tswap_acceptance_fraction
         acc = sampler.acceptance_fraction.mean(axis=1)
     return SamplerResult(chain=chain[:n], log_likelihood=logl_t1[:n], mean_log_likelihood=mean_logl[:n],
                          betas=np.array(sampler.betas), iterations=n, burn_in=burn, autocorrelation_time=tau,
                          ess=float(ess), swap_acceptance=swap, acceptance=acc, log_evidence=ln_z,
                          log_evidence_error=ln_z_err, wall_time=elapsed_before + time.monotonic() - start,
-                         stopped_by=stopped_by, evaluations=pool.evaluations)
+                         stopped_by=stopped_by, evaluations=pool.evaluations, log_prior=logp_t1[:n],
+                         converged=converged, warnings=warnings, adaptation_end=int(adapt_end),
+                         ladder_history=ladder_history, waiting_for="" if converged else waiting)
 
 
 def _unused(x):  # ptemcee wants per-walker functions; the vectorised pool never calls them
@@ -440,5 +660,5 @@ def _exists(path):
     return Path(path).exists()
 
 
-__all__ = ["load_ptemcee", "VectorisedPool", "integrated_time", "stationary", "thermodynamic_log_evidence",
-           "SamplerSettings", "SamplerResult", "run_sampler"]
+__all__ = ["load_ptemcee", "VectorisedPool", "integrated_time", "stationary", "tau_change", "extended_ladder",
+           "thermodynamic_log_evidence", "SamplerSettings", "SamplerResult", "run_sampler"]

@@ -410,7 +410,7 @@ def run_cautions(run: _Run) -> list:
         if isinstance(ess, (int, float)) and ess < 1000:
             out.append(f"{name}: only {ess:.0f} effective posterior samples; posterior tails and the host "
                        "probabilities are rough; raise [followup] ess.")
-        if fol.get("stopped_by") not in (None, "ess"):
+        if fol.get("stopped_by") not in (None, "ess", "converged"):
             out.append(f"{name}: the sampler stopped by {fol.get('stopped_by')}, not by reaching its "
                        "effective-sample target.")
     scan = run.stage_summary("scan")

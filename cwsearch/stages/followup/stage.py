@@ -18,6 +18,12 @@ and phase Φ0 in [0, π) (the waveform has period π in both). Pulsar distances
 are held at their catalogue values (with free pulsar phases they only set
 the pulsar-term frequency and amplitude in the evolving modes).
 
+The walkers start from the prior (the whole search window), not around the
+scan point; the sampler's stopping rule and ladder adaptation are those of
+:mod:`cwsearch.sampling`, and every reason to distrust a run (an iteration or
+time cap, a poorly swapping temperature pair) is listed under ``warnings``
+in ``summary.json``.
+
 Examples
 --------
 >>> from cwsearch.stages.followup.stage import FollowupOptions
@@ -40,6 +46,8 @@ STRAIN_RANGE = (1e-18, 1e-11)
 CHIRP_MASS_RANGE = (1e7, 1e11)
 OUTPUT_COLUMNS = ("ra", "dec", "frequency", "chirp_mass", "strain", "inclination", "polarization", "phase",
                   "luminosity_distance", "orbital_period")
+#: per-sample bookkeeping columns of ``posterior.ecsv`` after :data:`OUTPUT_COLUMNS`
+SAMPLE_COLUMNS = ("log_likelihood", "log_prior", "iteration", "walker")
 
 
 @dataclass(frozen=True)
@@ -148,31 +156,20 @@ class Prior:
 
 
 def initial_positions(prior, target: Target, span, shape, rng):
-    """Walkers in a small ball around the target (inside the prior); the whole prior without target."""
+    """Walkers drawn from the prior, i.e. over the whole search window (the frequency window around
+    the target, the whole sky, every strain and orientation), at every temperature.
+
+    The walkers deliberately do not start in a ball around the scan point: a start near the answer
+    lets a short chain look converged while it has not explored the posterior (its spread and its
+    autocorrelation time are then underestimated). ``target`` and ``span`` only set the window,
+    through ``prior``.
+    """
     n = shape[0] * shape[1]
-    if target.frequency is None:
-        return prior.draw(rng, n).reshape(shape + (8,))
-    centre = prior.draw(rng, n)                       # chirp mass etc. from the prior
-    width = np.zeros(8)
-    centre[:, 0], width[0] = target.ra, 0.03
-    centre[:, 1], width[1] = np.sin(target.dec), 0.03
-    centre[:, 2], width[2] = np.log10(target.frequency), 0.1 / span / target.frequency / np.log(10)
-    centre[:, 3] = rng.uniform(prior.lower[3], min(prior.lower[3] + 2.0, prior.upper[3]), n)
-    if target.strain is not None and np.isfinite(target.strain) and target.strain > 0:
-        h = float(np.clip(target.strain, STRAIN_RANGE[0] * 10, STRAIN_RANGE[1] / 10))
-        centre[:, 4], width[4] = (h, 0.1 * h) if prior.uniform_strain else (np.log10(h), 0.1)
-    for col, value, w in ((5, None if target.inclination is None else np.cos(target.inclination), 0.1),
-                          (6, target.polarization, 0.1), (7, target.phase, 0.1)):
-        if value is not None and np.isfinite(value):
-            centre[:, col], width[col] = value, w
-    pos = centre + width * rng.standard_normal((n, 8))
-    pos[:, 0] = np.mod(pos[:, 0], 2 * np.pi)
-    pos[:, 6] = np.mod(pos[:, 6], np.pi)
-    pos[:, 7] = np.mod(pos[:, 7], np.pi)
-    eps = 1e-9 * (prior.upper - prior.lower)
-    pos = np.clip(pos, prior.lower + eps, prior.upper - eps)
-    bad = ~np.isfinite(prior(pos))
-    if bad.any():
+    pos = prior.draw(rng, n)
+    for _ in range(20):       # ptemcee cannot start where the likelihood is not finite
+        bad = ~np.isfinite(prior.likelihood.batch(pos))
+        if not bad.any():
+            break
         pos[bad] = prior.draw(rng, int(bad.sum()))
     return pos.reshape(shape + (8,))
 
@@ -295,6 +292,22 @@ def posterior_table(likelihood, samples):
     return table
 
 
+def _with_sample_columns(table, details, result, tau):
+    """``table`` plus the per-sample T=1 log-likelihood, log-prior (as the sampler saw it: 0 inside the
+    support, the priors being uniform in the sampler coordinates), 0-based chain iteration and walker
+    index; τ, ESS and the burn-in go into the table's metadata."""
+    out = table.copy(copy_data=False)
+    out["log_likelihood"] = details["log_likelihood"]
+    out["log_prior"] = details["log_prior"]
+    out["iteration"] = details["iteration"].astype(np.int64)
+    out["walker"] = details["walker"].astype(np.int64)
+    out.meta.update({"autocorrelation_time": tau, "effective_sample_size": float(result.ess),
+                     "burn_in": int(result.burn_in), "iterations": int(result.iterations),
+                     "thinning": int(np.max(np.diff(np.unique(details["iteration"])), initial=1)),
+                     "converged": bool(result.converged), "stopped_by": result.stopped_by})
+    return out
+
+
 def _intervals(table):
     out = {}
     for name in table.colnames:
@@ -321,8 +334,6 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
     if band[0] >= band[1]:
         raise InputError("empty frequency band for the follow-up; check --max-frequency / --frequency")
     prior = Prior(likelihood, band, uniform_strain=options.strain_prior == "uniform")
-    if target.frequency is not None and target.strain is None:
-        target = earth_term_start(likelihood.engine, target)
     init_seq, sampler_seq = seed_seq.spawn(2)
     rng = np.random.default_rng(init_seq)
     settings = sampling.SamplerSettings(
@@ -338,10 +349,13 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
     result = sampling.run_sampler(prior, likelihood.batch, initial, settings, seed=sampler_seq,
                                   checkpoint=folder / "checkpoint.npz", resume=options.resume,
                                   fingerprint=fingerprint, progress=progress, label=target.label)
-    samples = result.samples()
+    details = result.sample_details()
+    samples = details["samples"]
     table = posterior_table(likelihood, samples)
-    write_table_atomic(folder / "posterior.ecsv", table)
     names = list(likelihood.names)
+    tau = dict(zip(names, map(float, result.autocorrelation_time)))
+    write_table_atomic(folder / "posterior.ecsv", _with_sample_columns(table, details, result, tau))
+    pairs = [[float(1 / a), float(1 / b)] for a, b in zip(result.betas[:-1], result.betas[1:])]
     summary = {
         "target": target.label,
         "start": {"frequency": target.frequency,
@@ -351,13 +365,25 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
         "log_bayes_factor": result.log_evidence,
         "log_bayes_factor_error": result.log_evidence_error,
         "parameters": _intervals(table),
-        "autocorrelation_time": dict(zip(names, map(float, result.autocorrelation_time))),
+        "warnings": list(result.warnings),
+        "converged": bool(result.converged),
+        "stopped_by": result.stopped_by,
+        "waiting_for": result.waiting_for,
+        "autocorrelation_time": tau,
+        "chain_length_over_tau": dict(zip(names, map(float, result.chain_taus()))),
         "effective_sample_size": result.ess,
         "n_samples": int(samples.shape[0]),
         "iterations": result.iterations,
         "burn_in": result.burn_in,
-        "stopped_by": result.stopped_by,
-        "swap_acceptance": [float(x) for x in np.nan_to_num(result.swap_acceptance)],
+        "adaptation_end": result.adaptation_end,
+        "stopping_rule": {"ess": options.ess, "min_chain_taus": settings.min_chain_taus,
+                          "tau_tolerance_per_check": settings.tau_tolerance, "tau_checks": settings.tau_checks,
+                          "check_every": settings.check_every, "burn_in": "first quarter, at least the adaptation",
+                          "start": "walkers drawn from the prior (the whole search window)"},
+        "swap_acceptance": [float(x) if np.isfinite(x) else None for x in result.swap_acceptance],
+        "swap_pairs": pairs,
+        "min_swap_acceptance": settings.min_swap_acceptance,
+        "ladder_history": result.ladder_history,
         "acceptance": [float(x) for x in np.nan_to_num(result.acceptance)],
         "temperatures": [float(1 / b) for b in result.betas],
         "max_log_likelihood": float(result.log_likelihood.max()) if result.iterations else None,
@@ -410,4 +436,4 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
 
 
 __all__ = ["FollowupOptions", "FollowupResult", "run_followup", "Prior", "select_targets", "posterior_table",
-           "initial_positions", "Target"]
+           "initial_positions", "Target", "OUTPUT_COLUMNS", "SAMPLE_COLUMNS"]
