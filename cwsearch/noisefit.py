@@ -103,8 +103,6 @@ TABLE_FORMAT = "cwsearch noise model"
 TABLE_VERSION = 1
 
 _LN10 = np.log(10.0)
-_FTOL = 1e-13     # L-BFGS-B relative tolerance on the (shifted) objective
-_GTOL = 1e-7      # and on the projected gradient
 
 
 class NoiseFitWarning(UserWarning):
@@ -153,6 +151,7 @@ class FitSettings:
     upper_limits : compute 95 % amplitude limits (uniform-in-amplitude prior).
     upper_limit_index : fixed spectral index of those limits.
     max_iterations : optimiser iteration limit per start.
+    tolerance : L-BFGS-B relative tolerance on the change of −ln L (from its value at the first start).
     """
 
     red_components: int = 30
@@ -168,6 +167,7 @@ class FitSettings:
     upper_limits: bool = True
     upper_limit_index: float = 13.0 / 3.0
     max_iterations: int = 400
+    tolerance: float = 1e-10
 
 
 # ----------------------------------------------------------------- results
@@ -336,7 +336,7 @@ class NoiseFit:
 
 
 # ----------------------------------------------------------------- optimisation helpers
-def _minimise(fun, starts, bounds, max_iterations):
+def _minimise(fun, starts, bounds, max_iterations, tolerance=1e-10):
     """Best L-BFGS-B result over ``starts`` (fun returns value and gradient); retried once if not converged."""
     lo = [b[0] for b in bounds]
     hi = [b[1] for b in bounds]
@@ -350,7 +350,7 @@ def _minimise(fun, starts, bounds, max_iterations):
         v, g = fun(x)
         return v - ref, g
 
-    options = {"maxiter": max_iterations, "ftol": _FTOL, "gtol": _GTOL}
+    options = {"maxiter": max_iterations, "ftol": tolerance, "gtol": 1e-6}
     best = None
     for x0 in starts:
         res = optimize.minimize(shifted, x0, jac=True, method="L-BFGS-B", bounds=bounds, options=options)
@@ -466,7 +466,7 @@ def _fit_one(problem: _PulsarProblem, settings: FitSettings, bounds: FitBounds, 
                                                [(previous.sigma_added[b] ** 2) / m2 for b, m2 in
                                                 zip(lk.backend_names, problem.med2)]]))
     f0 = problem.objective(False, common_phi)
-    res0 = _minimise(f0, white_starts, wb, settings.max_iterations)
+    res0 = _minimise(f0, white_starts, wb, settings.max_iterations, settings.tolerance)
     x0 = res0.x if res0 is not None else white_starts[-1]
     lnl0 = -res0.fun if res0 is not None else -f0(x0)[0]
     converged0 = res0 is not None and bool(res0.success)
@@ -475,13 +475,17 @@ def _fit_one(problem: _PulsarProblem, settings: FitSettings, bounds: FitBounds, 
     rb = wb + [tuple(bounds.red_log10_amplitude), tuple(bounds.red_index)]
     if red_fitted:
         red_starts = [(-14.0, 3.5), (-13.0, 5.0), (-15.0, 2.0)]
+        n_starts = max(settings.n_starts, 1)
         if previous is not None and previous.red_fitted:
+            # a refit: start from the previous optimum plus fewer fresh starts
             red_starts.insert(0, (previous.red_log10_amplitude, previous.red_index))
-        while len(red_starts) < settings.n_starts:
+            n_starts = max(n_starts - 1, 1)
+        while len(red_starts) < n_starts:
             red_starts.append((rng.uniform(-16, -12.5), rng.uniform(1.0, 6.0)))
-        red_starts = red_starts[: max(settings.n_starts, 1)]
+        red_starts = red_starts[:n_starts]
         f1 = problem.objective(True, common_phi)
-        res1 = _minimise(f1, [np.concatenate([x0, rs]) for rs in red_starts], rb, settings.max_iterations)
+        res1 = _minimise(f1, [np.concatenate([x0, rs]) for rs in red_starts], rb,
+                        settings.max_iterations, settings.tolerance)
         if res1 is None:
             x1 = np.concatenate([x0, [bounds.red_log10_amplitude[0], 3.0]])
             lnl1, converged1 = lnl0, False
@@ -576,7 +580,7 @@ class UncorrelatedCommonLikelihood:
 
 
 def fit_common(log_likelihood, bounds: FitBounds | None = None, *, index=None, starts=None,
-               max_iterations=400) -> CommonFit:
+               max_iterations=400, tolerance=1e-10) -> CommonFit:
     """Maximise a common-process log-likelihood ``log_likelihood(log10_amplitude, index)``.
 
     Uses ``log_likelihood.value_and_gradient`` when present (else finite
@@ -611,7 +615,7 @@ def fit_common(log_likelihood, bounds: FitBounds | None = None, *, index=None, s
     if starts is None:
         starts = [(-14.5, 13 / 3), (-13.5, 3.0), (-15.5, 5.0)]
     starts = [np.asarray(s[:1] if fixed else s, dtype=float) for s in starts]
-    res = _minimise(fun, starts, pb, max_iterations)
+    res = _minimise(fun, starts, pb, max_iterations, tolerance)
     x = res.x if res is not None else starts[0]
     lnl = -res.fun if res is not None else -fun(x)[0]
     err, _ = _hessian_errors(lambda y: fun(y)[1], x, pb)
@@ -750,7 +754,7 @@ def _fit_noise(array, settings, bounds, seed, dataset_checksum, common_likelihoo
             like = factory(apply_noise_model(array, model_of(fits, None), check=False), K)
             start = None if common is None else [(common.log10_amplitude, common.index), (-14.5, 13 / 3)]
             common = fit_common(like, bounds, index=settings.common_index, starts=start,
-                                max_iterations=settings.max_iterations)
+                                max_iterations=settings.max_iterations, tolerance=settings.tolerance)
             evaluations += getattr(like, "evaluations", 0)
             cphi = common_phi(common)
             fits = [_fit_one(pr, settings, bounds, cphi, ok, rng, previous=f if it else None)
