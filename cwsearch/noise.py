@@ -222,15 +222,21 @@ class PulsarWeighting:
         dof = self.n_toas - self.n_timing
         return float(-0.5 * self.inner(x, x) - 0.5 * self.logdet() - 0.5 * dof * np.log(2 * np.pi))
 
-    def whitened_residuals(self, x=None):
-        """Exactly whitened, standardised residuals (n,): N(0, 1) each under the model.
+    def whitened_residuals(self, x=None, per_toa=False):
+        """Exactly whitened residuals: under the model, independent N(0, 1) values.
 
         With ``V = N^-½ T L^-ᵀ`` (Σ = L Lᵀ) and its thin SVD ``V = U S Qᵀ``,
-        ``ε = (I − VVᵀ)^½ N^-½ x`` has covariance ``I − U_t U_tᵀ`` where
-        ``U_t`` are the m columns with S = 1 (the timing-model directions), so
-        ``ε_i / sqrt(1 − |U_t,i|²)`` is exactly standard normal under the
-        model (neighbours correlated at O(m/n)). No n × n matrix is formed.
+        ``ε = (I − VVᵀ)^½ N^-½ x`` has covariance ``I − U_t U_tᵀ``, where
+        ``U_t`` are the m columns with S = 1 (the timing-model directions).
+        Default: the n − m coordinates of ε in an orthonormal basis of the
+        complement of ``U_t`` (Householder, LAPACK ``dormqr``): exactly
+        i.i.d. N(0, 1) under the model, for normality tests. ``per_toa``:
+        the n values ``ε_i / sqrt(1 − |U_t,i|²)`` in TOA order, each exactly
+        N(0, 1) but correlated at O(m/n) (for plots against time). No n × n
+        matrix is formed.
         """
+        from scipy.linalg import lapack, qr
+
         x = self.pulsar.residuals if x is None else np.asarray(x, dtype=float)
         inv_sigma, operator = self.whitening_operator()
         v = (operator / inv_sigma[None, :]).T                       # N^-½ T L^-ᵀ, shape (n, k)
@@ -238,9 +244,15 @@ class PulsarWeighting:
         w = x * inv_sigma
         root = np.sqrt(np.clip(1.0 - s**2, 0.0, None))
         eps = w - u @ ((1.0 - root) * (u.T @ w))
-        order = np.argsort(s)[::-1][: self.n_timing]
-        variance = 1.0 - np.sum(u[:, order] ** 2, axis=1)
-        return eps / np.sqrt(np.clip(variance, 1e-12, None))
+        timing = u[:, np.argsort(s)[::-1][: self.n_timing]]
+        if per_toa:
+            variance = 1.0 - np.sum(timing**2, axis=1)
+            return eps / np.sqrt(np.clip(variance, 1e-12, None))
+        (householder, tau), _ = qr(timing, mode="raw")
+        rotated, _, info = lapack.dormqr("L", "T", householder, tau, eps[:, None].copy(), max(1, eps.size))
+        if info != 0:  # pragma: no cover - LAPACK argument error
+            raise np.linalg.LinAlgError(f"dormqr failed (info={info})")
+        return rotated[self.n_timing:, 0].copy()
 
 
 class NoiseWeighting:

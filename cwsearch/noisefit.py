@@ -371,6 +371,19 @@ def _hessian_errors(grad, x, bounds):
     lo = np.array([b[0] for b in bounds])
     hi = np.array([b[1] for b in bounds])
     width = hi - lo
+    free = width > 0
+    if not free.all():                       # parameters fixed by equal bounds: zero uncertainty
+        err = np.zeros(x.size)
+        if free.any():
+            sub = [b for b, f in zip(bounds, free) if f]
+
+            def sub_grad(y):
+                full = x.copy()
+                full[free] = y
+                return grad(full)[free]
+            err[free], ok = _hessian_errors(sub_grad, x[free], sub)
+            return err, ok
+        return err, True
     n = x.size
     hess = np.empty((n, n))
     for j in range(n):
@@ -509,7 +522,8 @@ def _fit_one(problem: _PulsarProblem, settings: FitSettings, bounds: FitBounds, 
     scale = np.sqrt(a)
     added = np.sqrt(u * problem.med2)
     scale_err = ea / (2 * scale)
-    added_err = np.sqrt(problem.med2) * eu / (2 * np.sqrt(np.maximum(u, eu)))
+    denom = 2 * np.sqrt(np.maximum(u, eu))
+    added_err = np.sqrt(problem.med2) * np.divide(eu, denom, out=np.zeros_like(eu), where=denom > 0)
     names = lk.backend_names
     lo_amp = bounds.red_log10_amplitude[0]
     fit = PulsarFit(
