@@ -30,7 +30,12 @@ added = 0). Uncertainties are the square roots of the diagonal of the inverse
 of the Hessian of −ln L at the maximum (central differences of the analytic
 gradient), carried to ``sigma_scale``/``sigma_added`` by the delta method;
 directions the data do not constrain (Hessian eigenvalue ≤ 0) get the width
-of the allowed range as their uncertainty. Bounds (also written to the
+of the allowed range as their uncertainty. The red log10 amplitude, whose
+likelihood is far from Gaussian (flat towards zero amplitude, strongly
+correlated with the index), gets a profile-likelihood interval instead: the
+range where ``max_γ 2 ln L`` stays within 4 of its maximum (white noise at its
+fit), reported as ``red_log10_amplitude_low/high`` (two sigma) and
+``red_log10_amplitude_err`` = width / 4. Bounds (also written to the
 table) are the priors' supports: see :class:`FitBounds`.
 
 Sequence (``iterations = 1``): (0) every pulsar white-only; (1) the common
@@ -223,6 +228,8 @@ class PulsarFit:
     red_noise: bool
     red_log10_amplitude: float
     red_log10_amplitude_err: float
+    red_log10_amplitude_low: float
+    red_log10_amplitude_high: float
     red_index: float
     red_index_err: float
     red_statistic: float
@@ -312,7 +319,9 @@ class NoiseFit:
             "bounds": self.bounds.as_meta(),
             "method": ("exact timing-model-marginalised likelihood (Woodbury), maximised with "
                        "scipy.optimize L-BFGS-B from several starts"),
-            "uncertainties": "inverse Hessian of -ln L at the maximum (delta method for sigma_scale, sigma_added)",
+            "uncertainties": ("inverse Hessian of -ln L at the maximum (delta method for sigma_scale, sigma_added); "
+                              "red log10 amplitude: profile likelihood over the index, white noise fixed, "
+                              "2-sigma interval at 2 dlnL = 4, err = interval width / 4"),
             "red_noise_test": "likelihood ratio 2 dlnL (white+red vs white, common fixed)",
             "red_noise_threshold": float(s.red_noise_threshold),
             "min_toas_red": int(s.min_toas_red),
@@ -362,7 +371,48 @@ def _minimise(fun, starts, bounds, max_iterations, tolerance=1e-10):
             best = again
     if best is not None:
         best.fun = best.fun + ref
+        best.success = bool(best.success) or _stationary(best.x, best.jac, lo, hi)
     return best
+
+
+def _stationary(x, grad, lo, hi, tolerance=1e-2):
+    """Projected gradient below ``tolerance`` per range width: converged although the line search gave up."""
+    grad = np.asarray(grad, dtype=float)
+    lo, hi = np.asarray(lo), np.asarray(hi)
+    pg = np.where((x <= lo) & (grad > 0), 0.0, grad)
+    pg = np.where((x >= hi) & (pg < 0), 0.0, pg)
+    return bool(np.all(np.isfinite(pg)) and np.max(np.abs(pg) * (hi - lo), initial=0.0) < tolerance)
+
+
+def _profile_interval(lnl, x_hat, lnl_hat, amp_bounds, idx_bounds, drop=4.0):
+    """Interval of log10 amplitude where the profile ``max_γ lnl(A, γ)`` stays within ``drop``/2 of its maximum.
+
+    ``drop = 4``: 2 Δln L = 4, the two-sigma profile-likelihood interval; it runs to a bound when the
+    likelihood stays flat up to it.
+    """
+    def profile(la):
+        res = optimize.minimize_scalar(lambda g: -lnl(la, g), bounds=idx_bounds, method="bounded",
+                                       options={"xatol": 1e-3})
+        return -res.fun
+
+    top = max(lnl_hat, profile(x_hat))
+    level = top - 0.5 * drop
+    ends = []
+    for direction, bound in ((-1, amp_bounds[0]), (1, amp_bounds[1])):
+        inside, step = x_hat, 0.05
+        end = bound
+        while True:
+            trial = x_hat + direction * step
+            if (trial - bound) * direction >= 0:
+                if profile(bound) < level:
+                    end = optimize.brentq(lambda a: profile(a) - level, *sorted((inside, bound)), xtol=1e-3)
+                break
+            if profile(trial) < level:
+                end = optimize.brentq(lambda a: profile(a) - level, *sorted((inside, trial)), xtol=1e-3)
+                break
+            inside, step = trial, 2 * step
+        ends.append(float(end))
+    return ends[0], ends[1]
 
 
 def _hessian_errors(grad, x, bounds):
@@ -507,10 +557,22 @@ def _fit_one(problem: _PulsarProblem, settings: FitSettings, bounds: FitBounds, 
         statistic = max(0.0, 2.0 * (lnl1 - lnl0))
         red_noise = statistic >= settings.red_noise_threshold
         err1, _ = _hessian_errors(lambda x: f1(x)[1], x1, rb)
+        nvar1 = problem.white_variance(x1)
+        base = np.zeros(2 * len(lk.frequencies)) if common_phi is None else common_phi
+
+        def red_lnl(la, g):
+            problem.evaluations += 1
+            try:
+                return lk.evaluate(nvar1, base + problem.red_phi(la, g))[0]
+            except np.linalg.LinAlgError:
+                return -1e20
+        amp_interval = _profile_interval(red_lnl, x1[2 * nb], lnl1, bounds.red_log10_amplitude, bounds.red_index)
+        err1[2 * nb] = 0.25 * (amp_interval[1] - amp_interval[0])
     else:
         x1 = np.concatenate([x0, [bounds.red_log10_amplitude[0], 3.0]])
         lnl1, converged1, statistic, red_noise = lnl0, True, 0.0, False
         err1 = np.zeros(len(rb))
+        amp_interval = (bounds.red_log10_amplitude[0], bounds.red_log10_amplitude[0])
 
     if red_noise:
         xw, errw, converged = x1[: 2 * nb], err1[: 2 * nb], converged0 and converged1
@@ -535,6 +597,8 @@ def _fit_one(problem: _PulsarProblem, settings: FitSettings, bounds: FitBounds, 
         sigma_added_err={b: _finite(v, 0.0) for b, v in zip(names, added_err)},
         red_fitted=red_fitted, red_noise=bool(red_noise),
         red_log10_amplitude=_finite(x1[2 * nb], lo_amp), red_log10_amplitude_err=_finite(err1[2 * nb], 0.0),
+        red_log10_amplitude_low=_finite(amp_interval[0], lo_amp),
+        red_log10_amplitude_high=_finite(amp_interval[1], lo_amp),
         red_index=_finite(x1[2 * nb + 1], 3.0), red_index_err=_finite(err1[2 * nb + 1], 0.0),
         red_statistic=_finite(statistic, 0.0), white_log_likelihood=_finite(lnl0, 0.0),
         red_log_likelihood=_finite(lnl1, 0.0), converged=bool(converged))
@@ -855,7 +919,9 @@ _TABLE_COLUMNS = [
     ("red_noise", None, "model choice: power-law red noise claimed for this pulsar"),
     ("red_fitted", None, "a white+red model was fitted (False: too few TOAs)"),
     ("red_log10_amplitude", "", "log10 red-noise amplitude at 1/yr (white+red fit)"),
-    ("red_log10_amplitude_err", "", "1-sigma uncertainty"),
+    ("red_log10_amplitude_err", "", "quarter of the 2-sigma profile-likelihood interval"),
+    ("red_log10_amplitude_low", "", "2-sigma profile-likelihood interval (2 dlnL = 4), lower end"),
+    ("red_log10_amplitude_high", "", "2-sigma profile-likelihood interval, upper end"),
     ("red_index", "", "red-noise spectral index (white+red fit)"),
     ("red_index_err", "", "1-sigma uncertainty"),
     ("red_noise_statistic", "", "likelihood ratio 2 dlnL, white+red vs white"),
@@ -864,10 +930,6 @@ _TABLE_COLUMNS = [
     ("normality_pvalue", "", "KS test of whitened residuals against N(0,1)"),
     ("low_frequency_pvalue", "", "chi2 test for excess low-frequency power"),
 ]
-_PER_PULSAR = ("red_noise", "red_fitted", "red_log10_amplitude", "red_log10_amplitude_err", "red_index",
-               "red_index_err", "red_noise_statistic", "red_log10_amplitude_95", "converged",
-               "normality_pvalue", "low_frequency_pvalue")
-
 
 def noise_table(fit: NoiseFit):
     """The fitted model as an astropy Table (one row per pulsar and backend; units and meta in the header)."""
@@ -879,11 +941,11 @@ def noise_table(fit: NoiseFit):
         for b in f.backends:
             rows.append((f.name, b, f.n_toas[b], f.sigma_scale[b], f.sigma_scale_err[b], f.sigma_added[b],
                          f.sigma_added_err[b], f.red_noise, f.red_fitted, f.red_log10_amplitude,
-                         f.red_log10_amplitude_err, f.red_index, f.red_index_err, f.red_statistic,
+                         f.red_log10_amplitude_err, f.red_log10_amplitude_low, f.red_log10_amplitude_high, f.red_index, f.red_index_err, f.red_statistic,
                          f.red_log10_amplitude_95, f.converged,
                          1.0 if g is None else g.normality_pvalue, 1.0 if g is None else g.lowfreq_pvalue))
     names = [c[0] for c in _TABLE_COLUMNS]
-    dtypes = [str, str, int, float, float, float, float, bool, bool] + [float] * 6 + [bool, float, float]
+    dtypes = [str, str, int, float, float, float, float, bool, bool] + [float] * 8 + [bool, float, float]
     table = Table(rows=rows, names=names, dtype=dtypes)
     for name, unit, desc in _TABLE_COLUMNS:
         if unit:

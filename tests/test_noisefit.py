@@ -153,7 +153,9 @@ def test_power_law_recovered_and_white_pulsars_not_claimed():
         fit = fit_noise(arr, FitSettings(common=False, upper_limits=False))
     red = fit.pulsars[0]
     assert red.red_noise and red.red_statistic > 9.0
-    assert abs(red.red_log10_amplitude - truth[0]) < 2 * red.red_log10_amplitude_err
+    assert red.red_log10_amplitude_low <= truth[0] <= red.red_log10_amplitude_high   # its own 2-sigma interval
+    assert red.red_log10_amplitude_err == pytest.approx(
+        0.25 * (red.red_log10_amplitude_high - red.red_log10_amplitude_low))
     assert abs(red.red_index - truth[1]) < 2 * red.red_index_err
     for f in fit.pulsars[1:]:
         assert not f.red_noise, f.name
