@@ -518,7 +518,8 @@ class _PulsarProblem:
 
 
 def _fit_one(problem: _PulsarProblem, settings: FitSettings, bounds: FitBounds, common_phi, red_allowed,
-             rng, previous: PulsarFit | None = None) -> PulsarFit:
+             rng, previous: PulsarFit | None = None, final=True) -> PulsarFit:
+    """Fit one pulsar (white only, and white + red when allowed); uncertainties only when ``final``."""
     lk = problem.lk
     nb = problem.n_back
     wb = problem.white_bounds()
@@ -556,18 +557,11 @@ def _fit_one(problem: _PulsarProblem, settings: FitSettings, bounds: FitBounds, 
             x1, lnl1, converged1 = res1.x, -res1.fun, bool(res1.success)
         statistic = max(0.0, 2.0 * (lnl1 - lnl0))
         red_noise = statistic >= settings.red_noise_threshold
-        err1, _ = _hessian_errors(lambda x: f1(x)[1], x1, rb)
-        nvar1 = problem.white_variance(x1)
-        base = np.zeros(2 * len(lk.frequencies)) if common_phi is None else common_phi
-
-        def red_lnl(la, g):
-            problem.evaluations += 1
-            try:
-                return lk.evaluate(nvar1, base + problem.red_phi(la, g))[0]
-            except np.linalg.LinAlgError:
-                return -1e20
-        amp_interval = _profile_interval(red_lnl, x1[2 * nb], lnl1, bounds.red_log10_amplitude, bounds.red_index)
-        err1[2 * nb] = 0.25 * (amp_interval[1] - amp_interval[0])
+        if not final:
+            err1 = np.zeros(len(rb))
+            amp_interval = (x1[2 * nb], x1[2 * nb])
+        else:
+            err1, amp_interval = _red_uncertainties(problem, f1, x1, lnl1, rb, common_phi, bounds)
     else:
         x1 = np.concatenate([x0, [bounds.red_log10_amplitude[0], 3.0]])
         lnl1, converged1, statistic, red_noise = lnl0, True, 0.0, False
@@ -577,8 +571,34 @@ def _fit_one(problem: _PulsarProblem, settings: FitSettings, bounds: FitBounds, 
     if red_noise:
         xw, errw, converged = x1[: 2 * nb], err1[: 2 * nb], converged0 and converged1
     else:
-        errw_full, _ = _hessian_errors(lambda x: f0(x)[1], x0, wb)
+        errw_full = _hessian_errors(lambda x: f0(x)[1], x0, wb)[0] if final else np.zeros(len(wb))
         xw, errw, converged = x0, errw_full, converged0 and (converged1 or not red_fitted)
+    return _pulsar_fit(problem, bounds, xw, errw, x1, err1, amp_interval, red_fitted, red_noise, statistic,
+                       lnl0, lnl1, converged)
+
+
+def _red_uncertainties(problem, f1, x1, lnl1, rb, common_phi, bounds):
+    lk = problem.lk
+    nb = problem.n_back
+    err1, _ = _hessian_errors(lambda x: f1(x)[1], x1, rb)
+    nvar1 = problem.white_variance(x1)
+    base = np.zeros(2 * len(lk.frequencies)) if common_phi is None else common_phi
+
+    def red_lnl(la, g):
+        problem.evaluations += 1
+        try:
+            return lk.evaluate(nvar1, base + problem.red_phi(la, g))[0]
+        except np.linalg.LinAlgError:
+            return -1e20
+    amp_interval = _profile_interval(red_lnl, x1[2 * nb], lnl1, bounds.red_log10_amplitude, bounds.red_index)
+    err1[2 * nb] = 0.25 * (amp_interval[1] - amp_interval[0])
+    return err1, amp_interval
+
+
+def _pulsar_fit(problem, bounds, xw, errw, x1, err1, amp_interval, red_fitted, red_noise, statistic, lnl0, lnl1,
+                converged) -> PulsarFit:
+    lk = problem.lk
+    nb = problem.n_back
     a, u = xw[:nb], xw[nb:2 * nb]
     ea, eu = errw[:nb], errw[nb:2 * nb]
     scale = np.sqrt(a)
@@ -826,7 +846,7 @@ def _fit_noise(array, settings, bounds, seed, dataset_checksum, common_likelihoo
     common = None
     fits = None
     if settings.common and K > 0:
-        fits = [_fit_one(pr, settings, bounds, None, False, rng) for pr in problems]
+        fits = [_fit_one(pr, settings, bounds, None, False, rng, final=False) for pr in problems]
         rounds = 1 + max(int(settings.iterations), 0)
         for it in range(rounds):
             like = factory(apply_noise_model(array, model_of(fits, None), check=False), K)
@@ -835,7 +855,7 @@ def _fit_noise(array, settings, bounds, seed, dataset_checksum, common_likelihoo
                                 max_iterations=settings.max_iterations, tolerance=settings.tolerance)
             evaluations += getattr(like, "evaluations", 0)
             cphi = common_phi(common)
-            fits = [_fit_one(pr, settings, bounds, cphi, ok, rng, previous=f if it else None)
+            fits = [_fit_one(pr, settings, bounds, cphi, ok, rng, previous=f if it else None, final=it == rounds - 1)
                     for pr, ok, f in zip(problems, red_allowed, fits)]
         final_like = factory(apply_noise_model(array, model_of(fits, None), check=False), K)
         common.log_likelihood = _finite(final_like(common.log10_amplitude, common.index), common.log_likelihood)
