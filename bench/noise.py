@@ -9,7 +9,9 @@ invented arrays and prints, for each:
   on 2 cores;
 * a reference measured in the same run: the time of one per-pulsar
   likelihood evaluation with gradient × the evaluations the fit used (the
-  fit's overhead on top of its likelihood work), and the time of one dense
+  fit's overhead on top of its likelihood work; an upper bound, since many of
+  the fit's evaluations reuse cached white-noise products and cost one k × k
+  Cholesky, so the ratio can be below 1), and the time of one dense
   evaluation (``scipy.stats.multivariate_normal.logpdf`` of the
   G-projected covariance, built per call) on one pulsar, as the cost the
   Woodbury path avoids;
