@@ -144,6 +144,13 @@ class Pulsar:
         new.residuals = np.ascontiguousarray(residuals, dtype=float)
         return new
 
+    def with_noise(self, noise: PulsarNoise):
+        """A copy of this pulsar carrying another noise model (same TOAs, residuals and timing model)."""
+        new = object.__new__(Pulsar)
+        new.__dict__.update(self.__dict__)
+        new.noise = noise
+        return new
+
     def __repr__(self):
         return (f"Pulsar({self.name!r}, ra={np.degrees(self.ra):.3f} deg, dec={np.degrees(self.dec):.3f} deg, "
                 f"distance={self.distance:.3g} kpc, n_toas={self.n_toas})")
@@ -187,6 +194,10 @@ class Array:
     def with_residuals(self, residuals):
         """A copy with other residuals (list of arrays, one per pulsar)."""
         return Array([p.with_residuals(r) for p, r in zip(self.pulsars, residuals)], self.reference_time)
+
+    def with_noise(self, noise):
+        """A copy whose pulsars carry other noise models (``noise``: name -> :class:`PulsarNoise`)."""
+        return Array([p.with_noise(noise[p.name]) for p in self.pulsars], self.reference_time)
 
     def __len__(self):
         return len(self.pulsars)

@@ -211,6 +211,49 @@ class PulsarWeighting:
         _, logdet_mm = np.linalg.slogdet(self.design.T @ self.design)
         return float(logdet_n + logdet_phi + self._logdet_sigma - logdet_mm)
 
+    # -- additions for noise estimation (cwsearch.noisefit) --------------------
+    def log_likelihood(self, x=None) -> float:
+        """Timing-model-marginalised Gaussian log-likelihood of ``x`` (default: the residuals).
+
+        ``ln L = −½ (x|x) − ½ ln det(GᵀCG) − ½ (n − m) ln 2π``: the log density
+        of ``Gᵀx`` under ``N(0, GᵀCG)`` (van Haasteren & Vallisneri 2014).
+        """
+        x = self.pulsar.residuals if x is None else np.asarray(x, dtype=float)
+        dof = self.n_toas - self.n_timing
+        return float(-0.5 * self.inner(x, x) - 0.5 * self.logdet() - 0.5 * dof * np.log(2 * np.pi))
+
+    def whitened_residuals(self, x=None, per_toa=False):
+        """Exactly whitened residuals: under the model, independent N(0, 1) values.
+
+        With ``V = N^-½ T L^-ᵀ`` (Σ = L Lᵀ) and its thin SVD ``V = U S Qᵀ``,
+        ``ε = (I − VVᵀ)^½ N^-½ x`` has covariance ``I − U_t U_tᵀ``, where
+        ``U_t`` are the m columns with S = 1 (the timing-model directions).
+        Default: the n − m coordinates of ε in an orthonormal basis of the
+        complement of ``U_t`` (Householder, LAPACK ``dormqr``): exactly
+        i.i.d. N(0, 1) under the model, for normality tests. ``per_toa``:
+        the n values ``ε_i / sqrt(1 − |U_t,i|²)`` in TOA order, each exactly
+        N(0, 1) but correlated at O(m/n) (for plots against time). No n × n
+        matrix is formed.
+        """
+        from scipy.linalg import lapack, qr
+
+        x = self.pulsar.residuals if x is None else np.asarray(x, dtype=float)
+        inv_sigma, operator = self.whitening_operator()
+        v = (operator / inv_sigma[None, :]).T                       # N^-½ T L^-ᵀ, shape (n, k)
+        u, s, _ = np.linalg.svd(v, full_matrices=False)
+        w = x * inv_sigma
+        root = np.sqrt(np.clip(1.0 - s**2, 0.0, None))
+        eps = w - u @ ((1.0 - root) * (u.T @ w))
+        timing = u[:, np.argsort(s)[::-1][: self.n_timing]]
+        if per_toa:
+            variance = 1.0 - np.sum(timing**2, axis=1)
+            return eps / np.sqrt(np.clip(variance, 1e-12, None))
+        (householder, tau), _ = qr(timing, mode="raw")
+        rotated, _, info = lapack.dormqr("L", "T", householder, tau, eps[:, None].copy(), max(1, eps.size))
+        if info != 0:  # pragma: no cover - LAPACK argument error
+            raise np.linalg.LinAlgError(f"dormqr failed (info={info})")
+        return rotated[self.n_timing:, 0].copy()
+
 
 class NoiseWeighting:
     """Noise weighting for a whole :class:`~cwsearch.data.model.Array` (one :class:`PulsarWeighting` per pulsar).
@@ -244,3 +287,90 @@ class NoiseWeighting:
     def optimal_snr(self, signals) -> float:
         """Optimal signal-to-noise ratio ``sqrt(Σ_p (s_p|s_p))``."""
         return float(np.sqrt(sum(w.inner(s, s) for w, s in zip(self.pulsars, signals))))
+
+
+# ----------------------------------------------------------------- noise estimation
+class PulsarLikelihood:
+    """Marginal likelihood of one pulsar's residuals as a function of its noise parameters.
+
+    For fitting (:mod:`cwsearch.noisefit`): the basis ``T = [normalised design
+    | Fourier columns at k/span, k = 1..K]`` is built once; every call takes
+    new white variances ``N_i`` [s²] and Fourier variances ``φ_j`` [s²] (one
+    per column, 0 = column absent) and returns ``ln L`` (same value as
+    :meth:`PulsarWeighting.log_likelihood`) and, on request, its analytic
+    gradient:
+
+    ``∂lnL/∂N_i = ½ (P r)_i² − ½ P_ii`` with ``P = N⁻¹ − N⁻¹ T Σ⁻¹ Tᵀ N⁻¹``,
+    ``∂lnL/∂φ_j = ½ [(Σ⁻¹d)_j² + (Σ⁻¹)_jj] / φ_j² − ½ / φ_j``, ``d = Tᵀ N⁻¹ r``.
+
+    The products ``Tᵀ N⁻¹ T`` are cached for the last white variances, so a
+    change of the Fourier variances alone costs one k × k Cholesky.
+    """
+
+    def __init__(self, pulsar, start, span, n_components, residuals=None):
+        self.name = pulsar.name
+        design = pulsar.design_matrix
+        norms = np.linalg.norm(design, axis=0)
+        norms[norms == 0] = 1.0
+        design = design / norms
+        self.n_timing = design.shape[1]
+        self.frequencies = fourier_frequencies(span, n_components)
+        fourier = fourier_basis(pulsar.toas, start, span, n_components) if n_components else np.empty((pulsar.n_toas, 0))
+        self.basis = np.ascontiguousarray(np.hstack([design, fourier]))
+        self.residuals = np.asarray(pulsar.residuals if residuals is None else residuals, dtype=float)
+        self.sigmas = pulsar.sigmas
+        self.backend_names = pulsar.backend_names
+        self.backend_index = pulsar.backend_index
+        self.n_toas = pulsar.n_toas
+        self._logdet_mm = float(np.linalg.slogdet(design.T @ design)[1])
+        self._cache_key = None
+
+    def _white_products(self, white_variance):
+        key = white_variance.tobytes()
+        if key != self._cache_key:
+            inv = 1.0 / white_variance
+            weighted = self.basis * inv[:, None]
+            self._cache = (inv, weighted.T @ self.basis, weighted.T @ self.residuals,
+                           float(self.residuals @ (inv * self.residuals)), float(np.sum(np.log(white_variance))))
+            self._cache_key = key
+        return self._cache
+
+    def evaluate(self, white_variance, fourier_variance, white_gradient=False, fourier_gradient=False):
+        """``(ln L, ∂lnL/∂N (n,) or None, ∂lnL/∂φ (2K,) or None)``.
+
+        Raises ``numpy.linalg.LinAlgError`` if Σ is not positive definite.
+        """
+        white_variance = np.ascontiguousarray(white_variance, dtype=float)
+        phi = np.asarray(fourier_variance, dtype=float)
+        inv, ttnt, d, rnr, logdet_n = self._white_products(white_variance)
+        m = self.n_timing
+        keep = np.concatenate([np.ones(m, dtype=bool), phi > 0])
+        idx = np.flatnonzero(keep)
+        sigma = ttnt[np.ix_(idx, idx)].copy()
+        phi_kept = phi[phi > 0]
+        diag = np.arange(m, len(idx))
+        sigma[diag, diag] += 1.0 / phi_kept
+        scale = np.sqrt(np.diag(sigma))
+        chol = np.linalg.cholesky(sigma / np.outer(scale, scale))
+        dk = d[idx] / scale
+        y = solve_triangular(chol, dk, lower=True, check_finite=False)
+        logdet_sigma = 2 * np.sum(np.log(np.diag(chol))) + 2 * np.sum(np.log(scale))
+        dof = self.n_toas - m
+        lnl = (-0.5 * (rnr - y @ y) - 0.5 * (logdet_n + np.sum(np.log(phi_kept)) + logdet_sigma - self._logdet_mm)
+               - 0.5 * dof * np.log(2 * np.pi))
+        grad_n = grad_phi = None
+        if white_gradient or fourier_gradient:
+            linv = solve_triangular(chol, np.eye(len(idx)), lower=True, check_finite=False)
+            sigma_inv = (linv.T @ linv) / np.outer(scale, scale)
+            alpha = sigma_inv @ d[idx]
+            if fourier_gradient:
+                grad_phi = np.zeros(phi.shape)
+                a_f = alpha[m:]
+                grad_phi[phi > 0] = 0.5 * (a_f**2 + np.diag(sigma_inv)[m:]) / phi_kept**2 - 0.5 / phi_kept
+            if white_gradient:
+                basis = self.basis[:, idx]
+                pr = inv * (self.residuals - basis @ alpha)
+                quad = np.einsum("ij,ij->i", basis @ sigma_inv, basis)
+                p_diag = inv - inv**2 * quad
+                grad_n = 0.5 * pr**2 - 0.5 * p_diag
+        return float(lnl), grad_n, grad_phi

@@ -165,13 +165,44 @@ def binary_residuals(array, binary: Binary):
     return out
 
 
+def wrong_white_noise(array, seed=0, *, scale_range=(0.8, 1.6), added_fraction=(0.0, 0.5)):
+    """Draw the TRUE white noise of every backend for quoted errors that are wrong.
+
+    Per pulsar and backend, a scale uniform in ``scale_range`` and an added
+    term uniform in ``added_fraction`` × the backend's median quoted sigma,
+    so that ``σ_true² = (scale σ_quoted)² + added²``. Returns
+    ``{pulsar: {backend: {"sigma_scale": s, "sigma_added": q [s]}}}``
+    (JSON-serialisable, for injection.json); pass it to
+    :func:`simulate_residuals` as ``true_white``. The quoted sigmas of the
+    array (and so of any dataset written from it) stay the wrong ones.
+    """
+    rng = _rng(seed)
+    truth = {}
+    for p in array:
+        truth[p.name] = {}
+        for b, name in enumerate(p.backend_names):
+            median = float(np.median(p.sigmas[p.backend_index == b]))
+            truth[p.name][name] = {"sigma_scale": float(rng.uniform(*scale_range)),
+                                   "sigma_added": float(rng.uniform(*added_fraction) * median)}
+    return truth
+
+
+def true_sigmas(pulsar, true_white):
+    """Per-TOA white-noise standard deviation [s] of ``pulsar`` under ``true_white`` (see :func:`wrong_white_noise`)."""
+    own = true_white[pulsar.name]
+    scale = np.array([own[b]["sigma_scale"] for b in pulsar.backend_names])[pulsar.backend_index]
+    added = np.array([own[b]["sigma_added"] for b in pulsar.backend_names])[pulsar.backend_index]
+    return np.sqrt((scale * pulsar.sigmas) ** 2 + added**2)
+
+
 def simulate_residuals(array, seed=0, *, white=True, red=True, background_log10_amplitude=None,
                        background_index=13 / 3, background_components=30, binaries=(),
-                       fit_timing_model=True):
+                       fit_timing_model=True, true_white=None):
     """Draw post-fit residuals for every pulsar of ``array`` (list of arrays, seconds).
 
     White noise uses each pulsar's effective sigmas (dataset white-noise
-    factors applied); red noise the pulsar's power law on 30 Fourier
+    factors applied), or the true white noise ``true_white`` of
+    :func:`wrong_white_noise` when given; red noise the pulsar's power law on 30 Fourier
     frequencies of the array span; the background is Hellings–Downs
     correlated; binaries are added with their full Earth and pulsar terms.
     """
@@ -179,7 +210,8 @@ def simulate_residuals(array, seed=0, *, white=True, red=True, background_log10_
     total = [np.zeros(p.n_toas) for p in array]
     if white:
         for r, p in zip(total, array):
-            r += rng.standard_normal(p.n_toas) * p.effective_sigmas()
+            sig = p.effective_sigmas() if true_white is None else true_sigmas(p, true_white)
+            r += rng.standard_normal(p.n_toas) * sig
     if red:
         for r, p in zip(total, array):
             if p.noise.has_red_noise:
@@ -205,4 +237,4 @@ def simulated_array(array, seed=0, **kwargs):
 
 
 __all__ = ["Binary", "invented_array", "simulate_residuals", "simulated_array", "binary_residuals",
-           "correlated_background", "postfit"]
+           "correlated_background", "postfit", "wrong_white_noise", "true_sigmas"]
