@@ -1,7 +1,7 @@
 """Noise-model fit: speed and recovery on invented arrays.
 
 ``python -m bench.noise`` fits (white per backend, per-pulsar red noise with
-model choice, common process; :func:`cwsearch.noisefit.fit_noise`) two
+model choice, common process; :func:`cwsearch.inference.noisefit.fit_noise`) two
 invented arrays and prints, for each:
 
 * the fit time; targets: demo array (20 pulsars × 200 TOAs) ≤ 30 s, bench
@@ -41,7 +41,7 @@ import numpy as np
 
 
 def _array(n_pulsars, toas, seed):
-    from cwsearch.simulate import invented_array, simulate_residuals, wrong_white_noise
+    from cwsearch.physics.simulate import invented_array, simulate_residuals, wrong_white_noise
 
     base = invented_array(n_pulsars=n_pulsars, years=15.0, seed=seed, toas_per_pulsar=toas,
                           red_noise_fraction=0.5, full_span=True)
@@ -52,7 +52,7 @@ def _array(n_pulsars, toas, seed):
 
 
 def _reference_times(array, red_components, repeats=20):
-    from cwsearch.noisefit import _small_matrix_threads
+    from cwsearch.inference.noisefit import _small_matrix_threads
 
     with _small_matrix_threads():             # the same BLAS threading as the fit
         return _reference_times_inner(array, red_components, repeats)
@@ -61,7 +61,7 @@ def _reference_times(array, red_components, repeats=20):
 def _reference_times_inner(array, red_components, repeats):
     from scipy import stats
 
-    from cwsearch.noise import PulsarLikelihood, powerlaw_variance
+    from cwsearch.physics.noise import PulsarLikelihood, powerlaw_variance
 
     p = array[0]
     lk = PulsarLikelihood(p, array.start, array.span, red_components)
@@ -73,7 +73,7 @@ def _reference_times_inner(array, red_components, repeats):
         lk.evaluate(nvar, phi, white_gradient=True, fourier_gradient=True)
     woodbury = (time.perf_counter() - t) / repeats
     # dense: C = N + F φ Fᵀ, G from the SVD of the design matrix, logpdf of Gᵀr
-    from cwsearch.noise import fourier_basis
+    from cwsearch.physics.noise import fourier_basis
 
     f = fourier_basis(p.toas, array.start, array.span, red_components)
     u_, _, _ = np.linalg.svd(p.design_matrix, full_matrices=True)
@@ -114,7 +114,7 @@ def _recovery(array, truth, fit):
 
 
 def run(label, n_pulsars, toas, seed, target):
-    from cwsearch.noisefit import FitSettings, NoiseFitWarning, fit_noise
+    from cwsearch.inference.noisefit import FitSettings, NoiseFitWarning, fit_noise
 
     array, truth = _array(n_pulsars, toas, seed)
     settings = FitSettings(red_components=30)

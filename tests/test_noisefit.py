@@ -1,4 +1,4 @@
-"""Noise estimation (cwsearch.noisefit) against references outside the project.
+"""Noise estimation (cwsearch.inference.noisefit) against references outside the project.
 
 * log-likelihood: ``scipy.stats.multivariate_normal.logpdf`` of ``Gᵀr`` under the dense
   ``GᵀCG`` (G from an SVD of the design matrix; van Haasteren & Vallisneri 2014, Phys. Rev. D 90,
@@ -20,13 +20,13 @@ from astropy import units as u
 from astropy.table import Table
 from scipy import stats
 
-from cwsearch.errors import InputError
-from cwsearch.model import Array, Pulsar, PulsarNoise
-from cwsearch.noise import NoiseSettings, NoiseWeighting, PulsarLikelihood, powerlaw_variance
-from cwsearch.noisefit import (FitBounds, FitSettings, NoiseFitWarning, UncorrelatedCommonLikelihood,
+from cwsearch.core.errors import InputError
+from cwsearch.data.model import Array, Pulsar, PulsarNoise
+from cwsearch.physics.noise import NoiseSettings, NoiseWeighting, PulsarLikelihood, powerlaw_variance
+from cwsearch.inference.noisefit import (FitBounds, FitSettings, NoiseFitWarning, UncorrelatedCommonLikelihood,
                                apply_noise_model, apply_noise_table, check_array, check_pulsar, fit_common,
                                fit_noise, read_noise_table, write_noise_table)
-from cwsearch.simulate import (invented_array, simulate_residuals, true_sigmas, wrong_white_noise)
+from cwsearch.physics.simulate import (invented_array, simulate_residuals, true_sigmas, wrong_white_noise)
 
 YEAR_FREQ = 1 / (1 * u.yr).to_value(u.s)
 
@@ -273,7 +273,7 @@ def test_not_converged_warns_and_table_has_no_nan(tmp_path):
 # ----------------------------------------------------------------- the table
 @pytest.fixture(scope="module")
 def fitted_dataset(tmp_path_factory):
-    from cwsearch.dataset import dataset_checksum, read_dataset, write_dataset
+    from cwsearch.data.dataset import dataset_checksum, read_dataset, write_dataset
 
     base = invented_array(n_pulsars=3, years=8, seed=91, toas_per_pulsar=70)
     arr = base.with_residuals(simulate_residuals(base, seed=92, background_log10_amplitude=-13.9))

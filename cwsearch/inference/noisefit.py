@@ -74,7 +74,7 @@ A p-value below :data:`GOF_THRESHOLD` (1e-3) flags the pulsar (or the array).
 
 Examples
 --------
->>> from cwsearch.simulate import invented_array, simulated_array
+>>> from cwsearch.physics.simulate import invented_array, simulated_array
 >>> arr = simulated_array(invented_array(n_pulsars=2, years=8, seed=1, toas_per_pulsar=80), seed=2)
 >>> fit = fit_noise(arr, FitSettings(red_components=8, common=False, upper_limits=False))
 >>> fit.pulsars[0].converged, fit.pulsars[0].red_noise
@@ -94,10 +94,10 @@ from pathlib import Path
 import numpy as np
 from scipy import optimize, stats
 
-from .constants import YEAR_FREQUENCY
-from .errors import InputError
-from .model import PulsarNoise
-from .noise import (NoiseSettings, PulsarLikelihood, PulsarWeighting, fourier_basis, powerlaw_variance)
+from ..core.constants import YEAR_FREQUENCY
+from ..core.errors import InputError
+from ..data.model import PulsarNoise
+from ..physics.noise import (NoiseSettings, PulsarLikelihood, PulsarWeighting, fourier_basis, powerlaw_variance)
 
 #: Likelihood-ratio threshold 2 Δln L for claiming red noise in a pulsar.
 RED_NOISE_THRESHOLD = 9.0
@@ -984,7 +984,7 @@ def noise_table(fit: NoiseFit):
 
 def write_noise_table(fit: NoiseFit, path) -> None:
     """Write :func:`noise_table` as ECSV, atomically."""
-    from .fileio import write_table_atomic
+    from ..core.fileio import write_table_atomic
 
     write_table_atomic(path, noise_table(fit))
 
@@ -998,7 +998,7 @@ def read_noise_table(path, array, *, dataset_checksum=None) -> NoiseModel:
     values out of range; a table fitted on another dataset (when
     ``dataset_checksum`` is given, it must equal the table's).
     """
-    from .dataset import _numeric, _read_table, _require_columns, _text
+    from ..data.dataset import _numeric, _read_table, _require_columns, _text
 
     file = Path(path)
     if not file.is_file():
