@@ -665,27 +665,49 @@ def correlated_terms(psi, earth, dvec, gmat, beta, pulsar_term=True):
     """
     n_w, n_psr = earth.shape[:2]
     n_c = beta.shape[2]
-    eps = np.einsum("wpkj,wpj->wpk", beta[..., :2], earth).reshape(n_w, n_psr * n_c)
+    eps = beta[..., 0] * earth[:, :, None, 0] + beta[..., 1] * earth[:, :, None, 1]     # (W, P, 2K)
+    eps = eps.reshape(n_w, n_psr * n_c)
     psi_eps = eps @ psi
     earth_corr = 0.5 * np.einsum("wi,wi->w", eps, psi_eps)
     dvec = np.array(dvec, dtype=float, copy=True)
     gmat = np.array(gmat, dtype=float, copy=True)
     if not pulsar_term:
         return dvec, gmat, earth_corr, None
-    psi_eps = psi_eps.reshape(n_w, n_psr, n_c)
-    dvec[..., 2:] += np.einsum("wpkj,wpk->wpj", beta[..., 2:], psi_eps)
-    bp = np.ascontiguousarray(beta[..., 2:])                                  # (W, P, 2K, 2)
+    psi_eps = psi_eps.reshape(n_w, n_psr, n_c, 1)
+    dvec[..., 2:] += np.sum(beta[..., 2:] * psi_eps, axis=2)
+    # Ψ_{·q} β_q for every q and walker: batched GEMM (P: 2W × 2K) @ (P: 2K × P·2K) (Ψ symmetric)
+    bq = np.ascontiguousarray(beta[..., 2:].transpose(1, 0, 3, 2)).reshape(n_psr, 2 * n_w, n_c)
+    right = np.matmul(bq, psi.reshape(n_psr, n_c, n_psr * n_c)).reshape(n_psr, n_w, 2, n_psr, n_c)
+    bp = np.ascontiguousarray(beta[..., 2:].transpose(0, 1, 3, 2))            # (W, P, 2, 2K)
     cross = np.empty((n_w, n_psr, n_psr, 2, 2))
-    psi4 = psi.reshape(n_psr, n_c, n_psr, n_c)
-    for q in range(n_psr):
-        # Ψ_{·q} β_q for every walker: (P·2K, 2K) @ (2K, 2W)
-        right = (psi4[:, :, q, :].reshape(n_psr * n_c, n_c) @ bp[:, q].transpose(1, 0, 2).reshape(n_c, 2 * n_w))
-        right = right.reshape(n_psr, n_c, n_w, 2)
-        cross[:, :, q] = np.einsum("wpki,pkwj->wpij", bp, right)
+    _contract_cross(bp, right, cross)
     idx = np.arange(n_psr)
     gmat[..., 2:, 2:] -= cross[:, idx, idx]
     cross[:, idx, idx] = 0.0
     return dvec, gmat, earth_corr, cross
+
+
+@njit(cache=True, parallel=True)
+def _contract_cross(bp, right, cross):
+    """cross[w, p, q, i, j] = Σ_k bp[w, p, i, k] right[q, w, j, p, k] (= β_pᵀ Ψ_pq β_q)."""
+    n_w, n_psr, n_c = bp.shape[0], bp.shape[1], bp.shape[3]
+    for w in prange(n_w):
+        for q in range(n_psr):
+            for p in range(n_psr):
+                a00 = a01 = a10 = a11 = 0.0
+                for k in range(n_c):
+                    b0 = bp[w, p, 0, k]
+                    b1 = bp[w, p, 1, k]
+                    r0 = right[q, w, 0, p, k]
+                    r1 = right[q, w, 1, p, k]
+                    a00 += b0 * r0
+                    a01 += b0 * r1
+                    a10 += b1 * r0
+                    a11 += b1 * r1
+                cross[w, p, q, 0, 0] = a00
+                cross[w, p, q, 0, 1] = a01
+                cross[w, p, q, 1, 0] = a10
+                cross[w, p, q, 1, 1] = a11
 
 
 @njit(cache=True)
