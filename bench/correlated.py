@@ -37,7 +37,13 @@ def _header():
         load = os.getloadavg()[0]
     except OSError:
         load = float("nan")
-    print(f"machine: {os.cpu_count()} CPUs, load average {load:.1f} — shared with other jobs, figures are noisy")
+    a = np.random.default_rng(0).standard_normal((1500, 1500))
+    a @ a
+    t = time.perf_counter()
+    a @ a
+    rate = 2 * 1500**3 / (time.perf_counter() - t) / 1e9
+    print(f"machine: {os.cpu_count()} CPUs, load average {load:.1f} — shared with other jobs, figures are noisy; "
+          f"numpy matrix multiply now {rate:.0f} GFLOP/s")
 
 
 def bench_build():

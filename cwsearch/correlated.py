@@ -199,17 +199,19 @@ class ArrayWeighting:
     def __init__(self, array, settings: NoiseSettings | None, common: CommonProcess, *, _shared=None):
         self.array = array
         self.common = common
-        if _shared is None:
-            settings = settings or NoiseSettings()
-            if settings.common_log10_amplitude is not None:
-                raise ValueError("ArrayWeighting takes the per-pulsar settings without the common process; "
-                                 "give the common process as CommonProcess")
-            self.settings = settings
-            self.engine = NoiseWeighting(array, settings)
-            self._prepare()
-        else:
-            self.__dict__.update(_shared)
-        self._factorise()
+        settings = settings or NoiseSettings()
+        if _shared is None and settings.common_log10_amplitude is not None:
+            raise ValueError("ArrayWeighting takes the per-pulsar settings without the common process; "
+                             "give the common process as CommonProcess")
+        # one BLAS thread: many small products, and threaded BLAS stalls on a shared machine
+        with fstat._blas_threads(1):
+            if _shared is None:
+                self.settings = settings
+                self.engine = NoiseWeighting(array, settings)
+                self._prepare()
+            else:
+                self.__dict__.update(_shared)
+            self._factorise()
 
     # -- parts independent of (log10 A, γ)
     def _prepare(self):
@@ -220,6 +222,7 @@ class ArrayWeighting:
         self.n_fourier = n_c
         self.fourier = []            # F_p (n_p, 2K)
         self._fourier_white = []     # U_p F_p (k_p, 2K): whitened-representation part of F_p
+        self._kinv_fourier = None
         blocks = np.empty((len(array), n_c, n_c))
         data = np.empty((len(array), n_c))
         data_norm = 0.0
@@ -243,7 +246,7 @@ class ArrayWeighting:
 
     def _shared_parts(self):
         keep = ("settings", "engine", "correlation", "_gamma_factor", "n_fourier", "fourier", "_fourier_white",
-                "_fourier_blocks", "_data_fourier", "_data_norm_k", "_logdet_k", "frequencies")
+                "_fourier_blocks", "_data_fourier", "_data_norm_k", "_logdet_k", "frequencies", "_kinv_fourier")
         return {k: self.__dict__[k] for k in keep}
 
     # -- parts that depend on (log10 A, γ)
@@ -380,21 +383,25 @@ class ArrayWeighting:
         """Ψ = L S̃⁻¹ Lᵀ = (Φ⁻¹ + FᵀK⁻¹F)⁻¹ (the cross-pulsar correction of C⁻¹ in the stacked
         Fourier space), shape (P·2K, P·2K), ordered (pulsar, coefficient). Cached."""
         if self._psi is None:
-            inv, info = lapack.dpotri(self._chol, lower=1)
-            if info != 0:
-                raise np.linalg.LinAlgError(f"inverting the array Woodbury matrix failed (info {info})")
-            inv = np.tril(inv) + np.tril(inv, -1).T
-            n_c = self.n_fourier
-            lg = self._gamma_factor
-            rank = lg.shape[1]
-            x = inv.reshape(rank, n_c, rank, n_c)
-            y = np.tensordot(lg, x, axes=(1, 0))                  # (P, 2K, r, 2K)
-            z = np.tensordot(y, lg, axes=(2, 1))                  # (P, 2K, 2K, P)
-            root = np.sqrt(self.fourier_variance)
-            psi = z.transpose(0, 1, 3, 2) * root[None, :, None, None] * root[None, None, None, :]
-            psi = psi.reshape(self.n_pulsars * n_c, self.n_pulsars * n_c)
-            self._psi = np.ascontiguousarray(0.5 * (psi + psi.T))
+            with fstat._blas_threads(1):
+                self._psi = self._correction_matrix()
         return self._psi
+
+    def _correction_matrix(self):
+        inv, info = lapack.dpotri(self._chol, lower=1)
+        if info != 0:
+            raise np.linalg.LinAlgError(f"inverting the array Woodbury matrix failed (info {info})")
+        inv = np.tril(inv) + np.tril(inv, -1).T
+        n_c = self.n_fourier
+        lg = self._gamma_factor
+        rank = lg.shape[1]
+        x = inv.reshape(rank, n_c, rank, n_c)
+        y = np.tensordot(lg, x, axes=(1, 0))                  # (P, 2K, r, 2K)
+        z = np.tensordot(y, lg, axes=(2, 1))                  # (P, 2K, 2K, P)
+        root = np.sqrt(self.fourier_variance)
+        psi = z.transpose(0, 1, 3, 2) * root[None, :, None, None] * root[None, None, None, :]
+        psi = psi.reshape(self.n_pulsars * n_c, self.n_pulsars * n_c)
+        return np.ascontiguousarray(0.5 * (psi + psi.T))
 
     def logdet(self) -> float:
         """ln det(Gᵀ C G), the covariance projected off every pulsar's timing model."""
@@ -422,14 +429,23 @@ class ArrayWeighting:
             return fstat.project_batch(self.engine, frequencies, tilde, on_pulsar=on_pulsar)
         return fstat.project(self.engine, frequencies, tilde, on_pulsar=on_pulsar)
 
+    def weighted_fourier(self):
+        """``K_p⁻¹ F_p`` per pulsar (n_p, 2K), cached: then ``F_pᵀK_p⁻¹ x = (K_p⁻¹F_p)ᵀ x``."""
+        if getattr(self, "_kinv_fourier", None) is None:
+            out = []
+            for w, fb in zip(self.engine, self.fourier):
+                inv_sigma, op = w.whitening_operator()
+                out.append(np.ascontiguousarray(fb * (inv_sigma**2)[:, None] - op.T @ (op @ fb)))
+            self._kinv_fourier = out
+        return self._kinv_fourier
+
     def trig_fourier_products(self, frequencies):
         """``u_p = F_pᵀ K_p⁻¹ [sin | cos]`` of 2πf(t − t0) for every frequency: (P, 2K, 2F)."""
         t0 = self.array.reference_time
         out = np.empty((self.n_pulsars, self.n_fourier, 2 * len(frequencies)))
-        for p, (w, uf, fb) in enumerate(zip(self.engine, self._fourier_white, self.fourier)):
-            sc = fstat.sine_cosine_matrix(w.pulsar.toas, t0, frequencies)
-            wb, ub = w.whiten(sc)
-            out[p] = (fb / w.white_sigmas[:, None]).T @ wb - uf.T @ ub
+        with fstat._blas_threads(1):
+            for p, (w, kf) in enumerate(zip(self.engine, self.weighted_fourier())):
+                out[p] = kf.T @ fstat.sine_cosine_matrix(w.pulsar.toas, t0, frequencies)
         return out
 
     def scan_corrections(self, frequencies):
@@ -441,9 +457,10 @@ class ArrayWeighting:
         u = np.ascontiguousarray(self.trig_fourier_products(frequencies))
         psi = self.correction_matrix()
         out = np.empty((n_freq, 4, n_psr, n_psr))
-        for q in range(n_psr):
-            v = (psi[:, q * n_c:(q + 1) * n_c] @ u[q]).reshape(n_psr, n_c, 2 * n_freq)
-            _pair_blocks(u, np.ascontiguousarray(v), q, n_freq, out)
+        with fstat._blas_threads(1):
+            for q in range(n_psr):
+                v = (psi[q * n_c:(q + 1) * n_c, :].T @ u[q]).reshape(n_psr, n_c, 2 * n_freq)   # Ψ symmetric
+                _pair_blocks(u, v, q, n_freq, out)
         return out
 
     # -- simulation
@@ -907,9 +924,7 @@ class CorrelatedLikelihood(Likelihood):
         self._n_fourier = weighting.n_fourier
         # per pulsar [K⁻¹ d̃ | K⁻¹ F]: (d̃|b) and Fᵀ K⁻¹ b in one product
         self._weighted_columns = []
-        for p, (w, fb) in enumerate(zip(self.engine, weighting.fourier)):
-            inv_sigma, op = w.whitening_operator()
-            kinv_f = fb * (inv_sigma**2)[:, None] - op.T @ (op @ fb)
+        for p, kinv_f in enumerate(weighting.weighted_fourier()):
             self._weighted_columns.append(np.ascontiguousarray(np.column_stack([self._weighted_data[p], kinv_f])))
         self._beta = None
 
@@ -945,7 +960,12 @@ class CorrelatedLikelihood(Likelihood):
         return fplus, fcross, dvec, gmat, beta
 
     def batch(self, theta):
-        """ln Λ for sampler coordinates ``theta`` (W, 8), pulsar phases marginalised."""
+        """ln Λ for sampler coordinates ``theta`` (W, 8), pulsar phases marginalised (the small
+        matrix products run on one BLAS thread: threaded BLAS stalls on a shared machine)."""
+        with fstat._blas_threads(1):
+            return self._batch(theta)
+
+    def _batch(self, theta):
         theta = np.atleast_2d(theta)
         par = self.physical(theta)
         fplus, fcross, dvec, gmat, beta = self.correlated_shape_batch(par["ra"], par["dec"], par["gw_frequency"],
