@@ -83,10 +83,14 @@ def run(args) -> int:
     from ._common import load_array, noise_settings
     from ..stages.scan.stage import run_scan
 
+    import time
+
     options = options_from_args(args).validate()
+    t = time.time()
     array = load_array(args)
+    read_seconds = time.time() - t
     result = run_scan(array, args.out, options, noise=noise_settings(args), seed=args.seed,
-                      progress=not args.quiet)
+                      progress=not args.quiet, timings={"read_seconds": read_seconds})
     summary = result.summary
     if args.json:
         print(json.dumps(summary, indent=2))
