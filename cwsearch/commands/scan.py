@@ -46,6 +46,13 @@ def add_arguments(parser):
                    help=f"peaks within DEG degrees and one frequency bin 1/T_span are one candidate "
                         f"(default {d['merge_angle']:g})")
     g.add_argument("--no-plots", action="store_true", help="do not draw the PNG plots")
+    e = parser.add_argument_group("engine")
+    e.add_argument("--workers", type=int, default=None, metavar="N",
+                   help="run frequency chunks and noise-only scans in N local worker processes "
+                        "(default: in this process, every core through threads)")
+    e.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                   help="send them to a running Dask scheduler, e.g. tcp://10.0.0.5:8786 "
+                        "(the numbers do not depend on the engine)")
     add_noise_arguments(parser)
 
 
@@ -55,7 +62,8 @@ def options_from_args(args):
 
     return ScanOptions(fmin=args.fmin, fmax=args.fmax, oversample=args.oversample, nside=args.nside,
                        statistic=args.statistic, null_sims=args.null_sims, fap_threshold=args.fap_threshold,
-                       max_candidates=args.max_candidates, merge_angle=args.merge_angle, no_plots=args.no_plots)
+                       max_candidates=args.max_candidates, merge_angle=args.merge_angle, no_plots=args.no_plots,
+                       workers=args.workers, scheduler=args.scheduler)
 
 
 def format_candidates(table, n=10):

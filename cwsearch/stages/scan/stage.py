@@ -99,6 +99,14 @@ class ScanOptions:
         are not separate candidates).
     no_plots : bool
         Skip the PNG plots.
+    workers : int or None
+        Task-runner engine for the scan's independent loops (frequency chunks
+        of the sky scan, batches of noise-only scans): None or 1 runs them in
+        this process (default; the kernels use every core with threads), N > 1
+        in N local worker processes (:mod:`cwsearch.inference.execution`).
+    scheduler : str or None
+        Address of a running Dask scheduler; the same tasks go to its workers.
+        Numbers agree with the serial run to 1e-12 relative.
     """
 
     fmin: float | None = None
@@ -111,6 +119,8 @@ class ScanOptions:
     max_candidates: int = 20
     merge_angle: float = 180.0
     no_plots: bool = False
+    workers: int | None = None
+    scheduler: str | None = None
 
     def validate(self):
         """Raise :class:`InputError` for values the scan cannot use."""
@@ -138,7 +148,14 @@ class ScanOptions:
             bad("max_candidates", f"must be an integer >= 1, not {self.max_candidates}")
         if not 0 <= self.merge_angle <= 180:
             bad("merge_angle", f"must be between 0 and 180 degrees, not {self.merge_angle}")
+        if self.workers is not None and (int(self.workers) != self.workers or self.workers < 1):
+            bad("workers", f"must be an integer >= 1, not {self.workers}")
         return self
+
+    @property
+    def distributed(self) -> bool:
+        """Whether the scan's loops go to worker processes or a Dask cluster."""
+        return bool(self.scheduler) or (self.workers or 1) > 1
 
 
 @dataclass
@@ -374,6 +391,49 @@ def fe_map(engine, frequencies, fplus, fcross, residuals=None, *, progress=False
     return result, proj
 
 
+#: frequencies per task when the sky scan is split over workers (a multiple of fstat.ANCHOR_EVERY, so the
+#: rotation-stepped sines and cosines are anchored at the same bins as in one piece)
+FREQUENCIES_PER_TASK = 200
+
+
+def _scan_chunk_task(task):
+    """Worker entry point: projections and Fe map of one chunk of frequencies. Pure function of its input
+    (the array and noise settings are data; the worker builds its own noise engine)."""
+    from ...physics import fstat
+    from ...physics.noise import NoiseWeighting
+
+    engine = NoiseWeighting(task["array"], task["noise"])
+    proj = fstat.project(engine, task["frequencies"], step=task["step"], z_scale=task["z_scale"])
+    sky_scan = fstat.fe_sky(proj, task["fplus"], task["fcross"], map_dtype=np.float32)
+    return proj.x, proj.y, proj.z, proj.z_scale, sky_scan.fe_map, sky_scan.fe_max, sky_scan.best_pixel
+
+
+def fe_map_tasks(engine, frequencies, fplus, fcross, *, workers=1, scheduler=None, progress=False, desc="scan"):
+    """:func:`fe_map` with the frequencies split into chunks of :data:`FREQUENCIES_PER_TASK` run by the
+    task runner (local processes or a Dask cluster). Same results as :func:`fe_map` to rounding
+    (1e-12 relative): chunks start at multiples of the anchoring interval and use the full grid's step."""
+    from ...physics import fstat
+    from ...inference.execution import TaskRunner
+    from ...core.progress import progress as bar
+
+    array, noise = engine.array, engine.settings
+    frequencies = np.ascontiguousarray(frequencies, dtype=float)
+    step = fstat.uniform_step(frequencies)
+    z_scale = fstat.project(engine, frequencies[:1]).z_scale
+    tasks, weights = [], []
+    for f0 in range(0, frequencies.size, FREQUENCIES_PER_TASK):
+        f1 = min(frequencies.size, f0 + FREQUENCIES_PER_TASK)
+        tasks.append({"array": array, "noise": noise, "frequencies": frequencies[f0:f1], "step": step,
+                      "z_scale": z_scale, "fplus": fplus, "fcross": fcross})
+        weights.append(f1 - f0)
+    with TaskRunner(workers=workers, scheduler=scheduler) as runner:
+        with bar(total=frequencies.size, desc=f"{desc}: frequency chunks", enabled=progress, unit="freq") as pb:
+            parts = runner.map(_scan_chunk_task, tasks, weights=weights, on_done=pb.update)
+    x, y, z, fe, fe_max, best = (np.concatenate([p[i] for p in parts], axis=1) for i in (0, 1, 2, 4, 5, 6))
+    proj = fstat.Projections(frequencies, x, y, z, array.positions, z_scale)
+    return fstat.SkyScan(fe, fe_max, best), proj
+
+
 def simulate_noise(array, noise: NoiseSettings, rng):
     """Noise-only residuals for ``array``: white noise, per-pulsar red noise and the common process
     when the noise settings include them (cwsearch.physics.simulate, timing model fitted out)."""
@@ -386,32 +446,65 @@ def simulate_noise(array, noise: NoiseSettings, rng):
 
 
 def null_maxima(array, engine, noise, frequencies, fplus, fcross, n_sims, seed, *, want_fe=True,
-                progress=False, batch=32):
+                progress=False, batch=32, workers=1, scheduler=None):
     """Maximum Fe over sky × frequency and maximum Fp over frequency for ``n_sims`` noise-only scans.
 
     Simulation ``i`` uses child ``i`` of ``numpy.random.SeedSequence(seed)``,
-    so results do not depend on the batch size. Returns two arrays (n_sims,)
-    (the Fe one is None if ``want_fe`` is false).
+    so results do not depend on the batch size or the engine: batches run
+    in this process, or with ``workers``/``scheduler`` as tasks of
+    :class:`cwsearch.inference.execution.TaskRunner`. Returns two arrays
+    (n_sims,) (the Fe one is None if ``want_fe`` is false).
     """
-    from ...physics import fstat
     from ...core.progress import progress as bar
 
     root = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(seed)
     children = root.spawn(n_sims)
     fe_max = np.empty(n_sims) if want_fe else None
     fp_max = np.empty(n_sims)
+    if (workers or 1) > 1 or scheduler:
+        from ...inference.execution import TaskRunner
+
+        tasks = [{"array": array, "noise": noise, "frequencies": frequencies, "fplus": fplus, "fcross": fcross,
+                  "seeds": children[start:min(n_sims, start + batch)], "want_fe": want_fe}
+                 for start in range(0, n_sims, batch)]
+        with TaskRunner(workers=workers, scheduler=scheduler) as runner:
+            with bar(total=n_sims, desc="null simulations", enabled=progress, unit="sim") as pb:
+                parts = runner.map(_null_task, tasks, weights=[len(t["seeds"]) for t in tasks], on_done=pb.update)
+        for start, (fe, fp) in zip(range(0, n_sims, batch), parts):
+            fp_max[start:start + fp.size] = fp
+            if want_fe:
+                fe_max[start:start + fe.size] = fe
+        return fe_max, fp_max
     with bar(total=n_sims, desc="null simulations", enabled=progress, unit="sim") as pb:
         for start in range(0, n_sims, batch):
             stop = min(n_sims, start + batch)
-            sims = [simulate_noise(array, noise, np.random.default_rng(children[i])) for i in range(start, stop)]
-            sets = [np.stack([sim[p] for sim in sims], axis=1) for p in range(len(array))]
-            proj = fstat.project_batch(engine, frequencies, sets)
-            fp_max[start:stop] = fstat.fp_statistic(proj).max(axis=-1)
+            fe, fp = _null_batch(array, engine, noise, frequencies, fplus, fcross, children[start:stop], want_fe)
+            fp_max[start:stop] = fp
             if want_fe:
-                sky_scan = fstat.fe_sky(proj, fplus, fcross, keep_map=False)
-                fe_max[start:stop] = sky_scan.fe_max.max(axis=-1)
+                fe_max[start:stop] = fe
             pb.update(stop - start)
     return fe_max, fp_max
+
+
+def _null_batch(array, engine, noise, frequencies, fplus, fcross, seeds, want_fe):
+    """Maxima of Fe and Fp for the noise-only scans seeded by ``seeds`` (one child seed per simulation)."""
+    from ...physics import fstat
+
+    sims = [simulate_noise(array, noise, np.random.default_rng(s)) for s in seeds]
+    sets = [np.stack([sim[p] for sim in sims], axis=1) for p in range(len(array))]
+    proj = fstat.project_batch(engine, frequencies, sets)
+    fp = fstat.fp_statistic(proj).max(axis=-1)
+    fe = fstat.fe_sky(proj, fplus, fcross, keep_map=False).fe_max.max(axis=-1) if want_fe else None
+    return fe, fp
+
+
+def _null_task(task):
+    """Worker entry point: one batch of noise-only scans (array and noise settings sent as data)."""
+    from ...physics.noise import NoiseWeighting
+
+    engine = NoiseWeighting(task["array"], task["noise"])
+    return _null_batch(task["array"], engine, task["noise"], task["frequencies"], task["fplus"], task["fcross"],
+                       task["seeds"], task["want_fe"])
 
 
 # ---------------------------------------------------------------- candidates
@@ -512,7 +605,13 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
                          "narrow --fmin/--fmax or reduce --oversample")
 
     t = time.time()
-    if want_fe:
+    if want_fe and options.distributed:
+        sky_scan, proj = fe_map_tasks(engine, frequencies, fplus, fcross, workers=options.workers or 1,
+                                      scheduler=options.scheduler or None, progress=progress)
+        fe_full = sky_scan.fe_map
+        fe_max = sky_scan.fe_max[0]
+        best_pixel = sky_scan.best_pixel[0]
+    elif want_fe:
         sky_scan, proj = fe_map(engine, frequencies, fplus, fcross, progress=progress)
         fe_full = sky_scan.fe_map
         fe_max = sky_scan.fe_max[0]
@@ -540,7 +639,8 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     if options.null_sims:
         t = time.time()
         null_fe, null_fp = null_maxima(array, engine, noise, frequencies, fplus, fcross, int(options.null_sims),
-                                       null_seed, want_fe=want_fe, progress=progress)
+                                       null_seed, want_fe=want_fe, progress=progress,
+                                       workers=options.workers or 1, scheduler=options.scheduler or None)
         timings["null_sims_seconds"] = time.time() - t
 
     # spectrum
