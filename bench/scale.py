@@ -111,7 +111,7 @@ def run_case(args):
 
     import numpy as np
 
-    n_psr, n_toa = CASES[args.case]
+    n_psr, n_toa = CASES[args.case] if args.case in CASES else map(int, args.case.split("x"))
     out = {"case": args.case, "n_pulsars": n_psr, "toas_per_pulsar": n_toa, "cpus": os.cpu_count()}
     with _Peak() as pk:
         array, noise = _array(n_psr, n_toa)
@@ -170,11 +170,29 @@ def run_case(args):
 
         engine = NoiseWeighting(array, noise)
         ra, dec = sky.pixel_centres(8)
+        # a subset of the default grid, spread over the band; the cost is linear in the rows (pixel x
+        # frequency), so the full-grid time is extrapolated from it (stated in the output)
+        pick = np.unique(np.linspace(0, frequencies.size - 1, min(args.limits_frequencies, frequencies.size))
+                         .round().astype(int))
         with _Peak() as pk:
-            proj = fstat.project(engine, frequencies)
+            t = time.perf_counter()
+            proj = fstat.project(engine, frequencies[pick])
+            proj_seconds = time.perf_counter() - t
             lim = compute_limits(proj, ra, dec, method="bayes", progress=False, **_engine_kwargs(args))
-        out["limits"] = pk.record(n_pixels=int(ra.size), n_frequencies=int(frequencies.size),
+        out["limits"] = pk.record(n_pixels=int(ra.size), n_frequencies=int(pick.size),
+                                  n_frequencies_default_grid=int(frequencies.size),
+                                  extrapolated_full_grid_seconds=round(
+                                      pk.seconds * frequencies.size / pick.size, 1),
                                   engine=lim["engine"], median_h95=float(np.median(lim["bayes"])))
+        if args.compare_serial and (args.scheduler or args.workers > 1):
+            t = time.perf_counter()
+            serial = compute_limits(proj, ra, dec, method="bayes", progress=False, workers=1)
+            t_serial = time.perf_counter() - t
+            want, got = serial["bayes"], lim["bayes"]
+            out["limits"].update(serial_seconds=round(t_serial, 3),
+                                 speedup=round(t_serial / (out["limits"]["seconds"] - proj_seconds), 3),
+                                 max_relative_difference=float(np.max(np.abs(got - want) / np.abs(want))),
+                                 load_average_serial=round(os.getloadavg()[0], 2))
         if args.save_limits:
             np.save(args.save_limits, lim["bayes"])
     out["peak_rss_gib"] = round(_max_rss() / 2**30, 3)
@@ -271,7 +289,8 @@ def _local_cluster(n):
 def main(argv=None):
     parser = argparse.ArgumentParser(prog="python -m bench.scale", description=__doc__,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
-    parser.add_argument("--cases", default="a,b", help="which cases (a: 116 x 2000, b: 100 x 10000)")
+    parser.add_argument("--cases", default="a,b",
+                        help="which cases (a: 116 x 2000, b: 100 x 10000, or PULSARSxTOAS such as 8x200)")
     parser.add_argument("--limits-cases", default="a", help="cases that also run the limits map")
     parser.add_argument("--workers", type=int, default=1, help="local worker processes for the task loops")
     parser.add_argument("--scheduler", default=None, help="address of a running Dask scheduler")
@@ -279,6 +298,12 @@ def main(argv=None):
                         help="start a Dask LocalCluster of N workers here and use it")
     parser.add_argument("--no-correlated", action="store_true", help="skip the correlated-background scan")
     parser.add_argument("--likelihood-repeats", type=int, default=3)
+    parser.add_argument("--limits-frequencies", type=int, default=8,
+                        help="frequencies of the default grid in the limits map (spread over the band; the "
+                             "full-grid time is extrapolated)")
+    parser.add_argument("--compare-serial", action="store_true",
+                        help="with --workers/--scheduler/--local-cluster: also run the limits map serially, "
+                             "report the speed-up and the largest relative difference")
     parser.add_argument("--sweep", action="store_true", help="cost vs N_psr and N_TOA, plotted")
     parser.add_argument("--json", default=str(RESULTS / "scale.json"))
     parser.add_argument("--case", help=argparse.SUPPRESS)
@@ -294,11 +319,14 @@ def main(argv=None):
     try:
         for case in args.cases.split(","):
             argv_case = [sys.executable, "-m", "bench.scale", "--case", case, "--workers", str(args.workers),
-                         "--limits-cases", args.limits_cases, "--likelihood-repeats", str(args.likelihood_repeats)]
+                         "--limits-cases", args.limits_cases, "--likelihood-repeats", str(args.likelihood_repeats),
+                         "--limits-frequencies", str(args.limits_frequencies)]
             if scheduler:
                 argv_case += ["--scheduler", scheduler]
             if args.no_correlated:
                 argv_case.append("--no-correlated")
+            if args.compare_serial:
+                argv_case.append("--compare-serial")
             run = subprocess.run(argv_case, capture_output=True, text=True)
             lines = [ln for ln in run.stdout.splitlines() if ln.startswith("RESULT ")]
             if run.returncode or not lines:
@@ -337,7 +365,12 @@ def _print_case(res):
         if key == "scan":
             extra = f", {r['n_frequencies']} frequencies x {r['n_pixels']} pixels"
         if key == "limits":
-            extra = f", {r['n_pixels']} pixels x {r['n_frequencies']} frequencies on {r['engine']}"
+            extra = (f", {r['n_pixels']} pixels x {r['n_frequencies']} frequencies on {r['engine']} "
+                     f"(default grid {r['n_frequencies_default_grid']} frequencies: "
+                     f"~{r['extrapolated_full_grid_seconds']:.0f} s extrapolated)")
+            if "speedup" in r:
+                extra += (f"; serial {r['serial_seconds']:.1f} s (load {r['load_average_serial']}), speed-up "
+                          f"{r['speedup']:.2f}x, max relative difference {r['max_relative_difference']:.1e}")
         print(f"  {key:16s} {r['seconds']:8.2f} s, +{r['peak_extra_gib']:.2f} GiB{extra} (load {r['load_average']})")
 
 
