@@ -1,6 +1,6 @@
 """The noise-weighting engine: the one place that inverts a covariance.
 
-For each pulsar the covariance is ``C = N + T B T^T`` (DESIGN.md §5):
+For each pulsar the covariance is ``C = N + T B T^T`` (docs/design.md §5):
 ``N`` diagonal white noise per backend, ``T = [design matrix | Fourier
 basis]`` and ``B`` the prior variances, infinite on the timing-model columns
 (analytic marginalisation) and a power law on the Fourier columns
@@ -244,3 +244,9 @@ class NoiseWeighting:
     def optimal_snr(self, signals) -> float:
         """Optimal signal-to-noise ratio ``sqrt(Σ_p (s_p|s_p))``."""
         return float(np.sqrt(sum(w.inner(s, s) for w, s in zip(self.pulsars, signals))))
+
+
+__all__ = [
+    "NoiseSettings", "fourier_frequencies", "fourier_basis", "powerlaw_variance", "hellings_downs",
+    "PulsarWeighting", "NoiseWeighting",
+]
