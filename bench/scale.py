@@ -207,6 +207,8 @@ def _scan_engine(args):
 
     names = {f.name for f in fields(ScanOptions)}
     out = {}
+    if not args.scan_on_engine:      # the scan target is for this machine: kernels threaded in-process
+        return out
     if "workers" in names and args.workers:
         out["workers"] = args.workers
     if "scheduler" in names and args.scheduler:
@@ -301,6 +303,9 @@ def main(argv=None):
     parser.add_argument("--limits-frequencies", type=int, default=8,
                         help="frequencies of the default grid in the limits map (spread over the band; the "
                              "full-grid time is extrapolated)")
+    parser.add_argument("--scan-on-engine", action="store_true",
+                        help="also send the scan's frequency chunks to the engine (default: the scan runs "
+                             "in this process with threaded kernels; the engine serves the limits map)")
     parser.add_argument("--compare-serial", action="store_true",
                         help="with --workers/--scheduler/--local-cluster: also run the limits map serially, "
                              "report the speed-up and the largest relative difference")
@@ -327,6 +332,8 @@ def main(argv=None):
                 argv_case.append("--no-correlated")
             if args.compare_serial:
                 argv_case.append("--compare-serial")
+            if args.scan_on_engine:
+                argv_case.append("--scan-on-engine")
             run = subprocess.run(argv_case, capture_output=True, text=True)
             lines = [ln for ln in run.stdout.splitlines() if ln.startswith("RESULT ")]
             if run.returncode or not lines:
