@@ -6,7 +6,7 @@ import json
 import math
 
 from ._common import (add_dataset_arguments, add_grid_arguments, add_noise_arguments, load_array,
-                      noise_settings)
+                      noise_settings, run_folder_guard)
 
 DESCRIPTION = """\
 Scan every GW frequency from 1/T_span (spacing 1/(oversample*T_span)) up to
@@ -86,8 +86,9 @@ def run(args) -> int:
 
     options = options_from_args(args).validate()
     array = load_array(args)
-    result = run_scan(array, args.out, options, noise=noise_settings(args), seed=args.seed,
-                      progress=not args.quiet)
+    with run_folder_guard(args.out, array, args.dataset):
+        result = run_scan(array, args.out, options, noise=noise_settings(args), seed=args.seed,
+                          progress=not args.quiet)
     summary = result.summary
     if args.json:
         print(json.dumps(summary, indent=2))

@@ -33,6 +33,7 @@ Examples
 
 from __future__ import annotations
 
+import math
 import time
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
@@ -44,6 +45,7 @@ from astropy.table import Table
 from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
+from ...core.safeio import check_count
 from ...inference import sampling
 from ...inference.likelihood import Likelihood
 from ...physics import fstat, waveform
@@ -99,6 +101,14 @@ class FollowupOptions:
             raise InputError("an explicit target needs all of --frequency, --ra and --dec")
         if self.ess <= 0 or self.max_iterations <= 0:
             raise InputError("--ess and --max-iterations must be positive")
+        if self.max_time is not None and not (math.isfinite(self.max_time) and self.max_time > 0):
+            raise InputError(f"--max-time must be a positive number of seconds, not {self.max_time}")
+        check_count(self.max_iterations, "max_iterations", minimum=1, maximum=10_000_000)
+        check_count(self.walkers, "walkers", minimum=18, maximum=10_000)
+        check_count(self.temperatures, "temperatures", minimum=1, maximum=200)
+        check_count(self.checkpoint_every, "checkpoint_every", minimum=1, maximum=10_000_000)
+        if not (math.isfinite(self.ess) and self.ess <= 1e8):
+            raise InputError(f"--ess must be at most 1e8, not {self.ess}")
 
 
 @dataclass
