@@ -193,6 +193,16 @@ def check_folder(path, *, what="folder") -> Path:
     return path
 
 
+def require_finished(product, summary, *, stage, command):
+    """Refuse a stage product (``scan/candidates.ecsv``, ``followup/posterior.ecsv``) whose stage summary
+    is missing: a stage writes its summary last, so without it the stage did not finish (a kill, a full
+    disk) and its files must not be used."""
+    if not is_regular_file(summary):
+        raise InputError(f"the {stage} stage did not finish here ({Path(summary).name} is missing beside "
+                         f"{Path(product).name}, e.g. after a full disk or a kill); run '{command}' again",
+                         file=product)
+
+
 # ---------------------------------------------------------------- numbers
 def check_count(value, name, *, minimum=0, maximum, seconds_each=None, option=True) -> int:
     """``value`` as an int if it is an integer in ``[minimum, maximum]``; InputError otherwise.
@@ -257,4 +267,4 @@ def has_control(text) -> bool:
 
 __all__ = ["MAX_INPUT_BYTES", "MJD_RANGE", "SIGMA_RANGE", "MAX_RESIDUAL_SECONDS", "MAX_RESIDUAL_OVER_SIGMA",
            "max_input_bytes", "check_link", "is_regular_file", "open_regular", "read_input_bytes",
-           "read_input_text", "check_folder", "check_count", "escape_text", "has_control"]
+           "read_input_text", "check_folder", "check_count", "escape_text", "has_control", "require_finished"]

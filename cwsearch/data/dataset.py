@@ -663,6 +663,11 @@ def write_dataset(array, path, injection=None, *, overwrite=False) -> None:
             if not (target / PULSARS_FILE).is_file():
                 raise InputError(f"refusing to overwrite a folder that is not a dataset (no {PULSARS_FILE})",
                                  file=target)
+            foreign = _non_dataset_entries(target)
+            if foreign:
+                shown = ", ".join(foreign[:3]) + (" ..." if len(foreign) > 3 else "")
+                raise InputError(f"refusing to overwrite: the folder holds more than a dataset ({shown}); "
+                                 "move those files away or choose another folder", file=target)
         replace = True
     noise_table = _noise_table(array)
     try:
@@ -694,6 +699,23 @@ def write_dataset(array, path, injection=None, *, overwrite=False) -> None:
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
+
+
+def _non_dataset_entries(folder: Path) -> list:
+    """Entries of ``folder`` that are not part of a dataset (what ``--overwrite`` would destroy besides it).
+
+    A dataset holds only pulsars.ecsv, noise.ecsv, injection.json and residuals/ with ``*.ecsv`` files
+    (regular files, no symlinks).
+    """
+    allowed = {PULSARS_FILE, NOISE_FILE, INJECTION_FILE}
+    foreign = []
+    for entry in sorted(folder.iterdir()):
+        if entry.name == RESIDUALS_DIR and entry.is_dir() and not entry.is_symlink():
+            foreign += [f"{RESIDUALS_DIR}/{p.name}" for p in sorted(entry.iterdir())
+                        if p.is_symlink() or not p.is_file() or p.suffix != ".ecsv"]
+        elif entry.name not in allowed or entry.is_symlink() or not entry.is_file():
+            foreign.append(entry.name)
+    return foreign
 
 
 def _umask() -> int:

@@ -34,6 +34,7 @@ Examples
 from __future__ import annotations
 
 import math
+import os
 import time
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
@@ -45,7 +46,7 @@ from astropy.table import Table
 from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
-from ...core.safeio import check_count
+from ...core.safeio import check_count, read_input_text, require_finished
 from ...inference import sampling
 from ...inference.likelihood import Likelihood
 from ...physics import fstat, waveform
@@ -194,13 +195,15 @@ def initial_positions(prior, target: Target, span, shape, rng):
 def read_candidates(run_dir):
     """The scan's candidates table (astropy Table), best first (by ``fe`` when present)."""
     path = Path(run_dir) / "scan" / "candidates.ecsv"
-    if not path.exists():
+    if not os.path.lexists(path):
         raise InputError("no scan candidates found; run 'cwsearch scan' first, or give --frequency/--ra/--dec "
                          "or --all-sky", file=path)
+    require_finished(path, path.parent / "scan_summary.json", stage="scan", command="cwsearch scan")
+    text = read_input_text(path, Path(run_dir), what="candidates file")
     try:
-        table = Table.read(path, format="ascii.ecsv")
+        table = Table.read(text + "\n", format="ascii.ecsv")
     except Exception as exc:  # malformed file: one line naming it
-        raise InputError(f"cannot read candidates ({exc})", file=path) from None
+        raise InputError(f"cannot read candidates ({' '.join(str(exc).split())[:300]})", file=path) from None
     for col in ("frequency", "ra", "dec"):
         if col not in table.colnames:
             raise InputError(f"missing column '{col}'", file=path, column=col)
