@@ -85,7 +85,7 @@ from scipy.special import logsumexp
 
 from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
-from ...core.safeio import read_input_text, require_finished
+from ...core.safeio import escape_text, read_input_text, require_finished
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...data.catalog import read_catalog
 from ...physics import fstat
@@ -1006,7 +1006,7 @@ def format_table(result: HostsResult, top=10) -> str:
         t = res.ranking
         for k in range(min(top, len(t))):
             r = t[k]
-            lines.append(f"  {k + 1:>3} {str(r['name'])[:18]:<18} {r['ra']:7.2f} {r['dec']:7.2f} "
+            lines.append(f"  {k + 1:>3} {escape_text(str(r['name'])[:18]):<18} {r['ra']:7.2f} {r['dec']:7.2f} "
                          f"{r['distance']:7.1f} {r['probability']:7.4f} {r['log_bayes_factor']:7.2f} "
                          f"{r['sky_density']:8.3g} {r['distance_consistency']:7.3g} {r['mass_consistency']:7.3g} "
                          f"{r['period_consistency']:6.3g} {r['coalescence_ok']:5.2f}")
