@@ -61,6 +61,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy
+from scipy.special import erfcinv
 
 from ..core import fileio  # fileio.atomic_path is looked up at each call (the fault tests replace it)
 from ..core.errors import InputError
@@ -391,8 +392,6 @@ def extended_ladder(betas, acceptance, threshold, limit, target=0.25):
     step in ln β; common practice, no source), the lowest pairs first, until the ladder has ``limit``
     temperatures. Returns ``(new_betas, source)``, ``source[i]`` the old temperature whose walkers
     start the new temperature ``i`` (itself, or the colder neighbour of an inserted one)."""
-    from scipy.special import erfcinv
-
     betas = np.asarray(betas, dtype=float)
     acceptance = np.asarray(acceptance, dtype=float)
     need = np.zeros(acceptance.size, dtype=int)

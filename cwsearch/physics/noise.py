@@ -35,7 +35,7 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.linalg import cho_factor, solve_triangular
+from scipy.linalg import cho_factor, lapack, qr, solve_triangular
 
 from ..core.constants import YEAR_FREQUENCY
 from ..core.errors import InputError
@@ -228,7 +228,7 @@ class PulsarWeighting:
         _, logdet_mm = np.linalg.slogdet(self.design.T @ self.design)
         return float(logdet_n + logdet_phi + self._logdet_sigma - logdet_mm)
 
-    # -- additions for noise estimation (cwsearch.noisefit) --------------------
+    # -- additions for noise estimation (cwsearch.inference.noisefit) --------------------
     def log_likelihood(self, x=None) -> float:
         """Timing-model-marginalised Gaussian log-likelihood of ``x`` (default: the residuals).
 
@@ -252,8 +252,6 @@ class PulsarWeighting:
         N(0, 1) but correlated at O(m/n) (for plots against time). No n × n
         matrix is formed.
         """
-        from scipy.linalg import lapack, qr
-
         x = self.pulsar.residuals if x is None else np.asarray(x, dtype=float)
         inv_sigma, operator = self.whitening_operator()
         v = (operator / inv_sigma[None, :]).T                       # N^-½ T L^-ᵀ, shape (n, k)
@@ -310,7 +308,7 @@ class NoiseWeighting:
 class PulsarLikelihood:
     """Marginal likelihood of one pulsar's residuals as a function of its noise parameters.
 
-    For fitting (:mod:`cwsearch.noisefit`): the basis ``T = [normalised design
+    For fitting (:mod:`cwsearch.inference.noisefit`): the basis ``T = [normalised design
     | Fourier columns at k/span, k = 1..K]`` is built once; every call takes
     new white variances ``N_i`` [s²] and Fourier variances ``φ_j`` [s²] (one
     per column, 0 = column absent) and returns ``ln L`` (same value as
