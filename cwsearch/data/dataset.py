@@ -176,7 +176,9 @@ def _read_table(file: Path, root=None):
     """Parse one ECSV file into an astropy Table; every failure becomes an InputError.
 
     The bytes come from :func:`cwsearch.core.safeio.read_input_bytes` (regular file, symlink inside
-    ``root``, size cap).
+    ``root``, size cap), for both paths. Plain files take the fast path (:func:`_fast_table`), anything
+    else astropy's reader (:func:`_strict_table`); both give identical tables, and the plausibility checks
+    after parsing (:func:`check_residual_values`) are the same for both.
     """
     raw = read_input_bytes(file, root, what="file")
     try:
@@ -191,6 +193,15 @@ def _read_table(file: Path, root=None):
     if not lines or not lines[0].startswith("# %ECSV"):
         raise InputError("not an ECSV table (the first line must start with '# %ECSV'); "
                          "write it with astropy: Table.write(path, format='ascii.ecsv')", file=file)
+    if FAST_READING:
+        table = _fast_table(lines)
+        if table is not None:
+            return table
+    return _strict_table(lines, file)
+
+
+def _strict_table(lines, file):
+    """The reference parse: astropy's ECSV reader on the whole file (every failure an InputError)."""
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UnitsWarning)
@@ -214,6 +225,128 @@ def _read_table(file: Path, root=None):
             raise InputError("only plain one-dimensional columns are allowed "
                              f"(found {type(col).__name__} with shape {col.shape})", file=file, column=name)
     return table
+
+
+#: read plain data lines with the fast path (:func:`_fast_table`); False forces astropy's reader for every file
+FAST_READING = True
+
+#: characters the fast path accepts in data lines: printable ASCII except the quote '"' and the backslash
+_FAST_UNSAFE = re.compile(r'[^ !#-\[\]-~\n]')
+#: parsed ECSV headers (header text -> column template or None), shared by files with the same header
+_HEADER_CACHE: dict = {}
+_HEADER_CACHE_SIZE = 64
+
+
+def _header_template(header_lines):
+    """(names, dtypes, units, meta) of an ECSV header, parsed by astropy once per distinct header text.
+
+    None when the header asks for anything the fast path does not do (a
+    delimiter other than one space, mixin or multi-dimensional columns, a
+    datatype other than float/int/string, any warning from astropy, any
+    parse error): such files always go through :func:`_strict_table`.
+    """
+    key = "\n".join(header_lines)
+    if key in _HEADER_CACHE:
+        return _HEADER_CACHE[key]
+    template = None
+    if not any("delimiter" in ln or "__serialized_columns__" in ln for ln in header_lines[:-1]):
+        try:
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always")
+                table = Table.read(list(header_lines), format="ascii.ecsv", guess=False)
+            others = [w for w in caught if not issubclass(w.category, UnitsWarning)]
+            plain = all(isinstance(table[c], Column) and table[c].ndim == 1 and table[c].dtype.kind in "fiU"
+                        for c in table.colnames)
+            if not others and plain and len(table) == 0 and header_lines[-1].split(" ") == table.colnames:
+                template = (tuple(table.colnames),
+                            tuple(str if table[c].dtype.kind == "U" else table[c].dtype for c in table.colnames),
+                            tuple(table[c].unit for c in table.colnames), dict(table.meta))
+        except Exception:  # the strict path reports it
+            template = None
+    if len(_HEADER_CACHE) >= _HEADER_CACHE_SIZE:
+        _HEADER_CACHE.clear()
+    _HEADER_CACHE[key] = template
+    return template
+
+
+def _fast_table(lines):
+    """The table of an ECSV file whose data lines are plain, or None to use :func:`_strict_table`.
+
+    Fast path of issue 18 (docs/design.md §12): astropy parses the header
+    (cached per distinct header text: the residual files of a dataset share
+    one), and the data lines are split here and converted with the same
+    numpy call astropy's ECSV reader makes (``np.array(values, dtype)``), so
+    the values are identical. It only takes data lines that astropy's
+    splitter reads the same way: printable ASCII without quotes or
+    backslashes, fields separated by exactly one space, the declared
+    number of fields on every line, no comment or blank lines. Anything
+    else, and any conversion failure, returns None and the file is read by
+    the strict path, which gives the located error messages; the validation
+    after parsing is the same for both.
+    """
+    n_header = 0
+    for ln in lines:
+        if not ln.startswith("#"):
+            break
+        n_header += 1
+    if n_header + 1 >= len(lines):
+        return None           # no data rows: the strict path and the validators say what is wrong
+    template = _header_template(lines[: n_header + 1])
+    if template is None:
+        return None
+    names, dtypes, units, meta = template
+    data = lines[n_header + 1:]
+    body = "\n".join(data)
+    try:
+        codes = np.frombuffer(body.encode("ascii"), dtype=np.uint8)
+    except UnicodeEncodeError:
+        return None
+    # printable ASCII and newlines only, no quote (34) or backslash (92), no comment line
+    if (np.any((codes < 32) & (codes != 10)) or np.any(codes > 126) or np.any(codes == 34) or np.any(codes == 92)
+            or body.startswith("#") or "\n#" in body):
+        return None
+    n_col, n_row = len(names), len(data)
+    # exactly n_col - 1 spaces on every line, and no empty field
+    newlines = np.flatnonzero(codes == 10)
+    spaces = np.flatnonzero(codes == 32)
+    per_line = np.diff(np.searchsorted(spaces, np.concatenate([[-1], newlines, [codes.size]])))
+    if per_line.size != n_row or np.any(per_line != n_col - 1):
+        return None
+    tokens = body.split()
+    if len(tokens) != n_row * n_col:
+        return None
+    try:
+        values = [np.array(tokens[j::n_col], dtype) for j, dtype in enumerate(dtypes)]
+    except Exception:  # a value astropy's converter refuses: the strict path names it
+        return None
+    return _PlainTable(names, values, units, meta)
+
+
+class _PlainColumn(np.ndarray):
+    """A plain column of :func:`_fast_table`: a 1-D numpy array with the ``unit`` of its ECSV header."""
+
+    unit = None
+
+
+class _PlainTable:
+    """What the validators use of an astropy Table (``colnames``, ``len``, ``table[name]``, ``meta``),
+    without building astropy columns: the result of :func:`_fast_table`."""
+
+    def __init__(self, names, values, units, meta):
+        self.colnames = list(names)
+        self.meta = dict(meta)
+        self._columns = {}
+        for name, value, unit in zip(names, values, units):
+            column = value.view(_PlainColumn)
+            column.unit = unit
+            self._columns[name] = column
+        self._length = len(values[0]) if values else 0
+
+    def __len__(self):
+        return self._length
+
+    def __getitem__(self, name):
+        return self._columns[name]
 
 
 def _locate_unconvertible(lines, column):
@@ -308,7 +441,9 @@ def _text(table, name, file):
     mask = np.asarray(np.ma.getmaskarray(col), dtype=bool)
     if mask.any():
         raise InputError("empty value", file=file, row=_first_bad(mask), column=name)
-    values = [str(v) for v in np.ma.getdata(col)]
+    values = [str(v) for v in np.ma.getdata(col).tolist()]
+    if all(v.strip() and v == v.strip() for v in set(values)):
+        return values
     for i, v in enumerate(values):
         if not v.strip():
             raise InputError("empty value", file=file, row=i + 1, column=name)

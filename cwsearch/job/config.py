@@ -59,7 +59,7 @@ STAGES = tuple(STAGE_OPTIONS)
 
 #: options the pipeline fills in itself (never run-file keys), per stage
 PIPELINE_SET = {
-    "scan": frozenset(),
+    "scan": frozenset({"workers", "scheduler"}),  # from [engine]
     "followup": frozenset({"candidate", "top", "frequency", "ra", "dec", "all_sky", "resume"}),
     "hosts": frozenset({"candidate"}),
     "limits": frozenset({"workers", "scheduler"}),  # from [engine]
