@@ -451,3 +451,11 @@ def test_counts_have_upper_bounds():
         NoiseSettings(red_components=10**9)
     with pytest.raises(InputError, match="--red-components"):
         NoiseSettings(red_components=-1)
+
+
+def test_fitted_noise_table_fifo_refused_without_blocking(tmp_path, tiny_array):
+    from cwsearch.inference.noisefit import read_noise_table
+
+    os.mkfifo(tmp_path / "noise_model.ecsv")
+    with pytest.raises(InputError, match="named pipe"):
+        read_noise_table(tmp_path / "noise_model.ecsv", tiny_array)
