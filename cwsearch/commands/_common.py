@@ -24,6 +24,10 @@ def add_noise_arguments(parser):
                    help="add a common red process with this log10 amplitude (default: none)")
     g.add_argument("--common-index", type=float, default=13 / 3, metavar="GAMMA",
                    help="spectral index of the common process (default 13/3)")
+    g.add_argument("--common-correlation", choices=("hellings-downs", "uncorrelated", "none"),
+                   default="hellings-downs",
+                   help="how the common process couples the pulsars: hellings-downs (default; array-level "
+                        "engine), uncorrelated (same spectrum, independent pulsars) or none (leave it out)")
 
 
 def noise_settings(args):
@@ -33,7 +37,8 @@ def noise_settings(args):
     return NoiseSettings(red_components=args.red_components,
                          pulsar_red_noise=not args.no_pulsar_red_noise,
                          common_log10_amplitude=args.common_log10_amplitude,
-                         common_index=args.common_index)
+                         common_index=args.common_index,
+                         common_correlation=getattr(args, "common_correlation", "hellings-downs"))
 
 
 def load_array(args):

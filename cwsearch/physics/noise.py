@@ -32,6 +32,7 @@ True
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Literal
 
 import numpy as np
 from scipy.linalg import cho_factor, solve_triangular
@@ -56,6 +57,16 @@ class NoiseSettings:
         circular binaries, Phinney 2001).
     white_noise_factors : bool
         Apply ``sigma_scale``/``sigma_added`` from the dataset.
+    common_correlation : ``"hellings-downs"``, ``"uncorrelated"`` or ``"none"``
+        How the common process couples the pulsars (used only when
+        ``common_log10_amplitude`` is set): Hellings–Downs correlated (default;
+        the array-level engine of :mod:`cwsearch.physics.correlated`), a common
+        spectrum uncorrelated between pulsars (in each pulsar's Fourier prior),
+        or ``"none"``: the common process is left out of the noise model.
+        :func:`cwsearch.physics.correlated.array_noise` is the one place that
+        turns this choice into an engine. :class:`NoiseWeighting` itself is the
+        per-pulsar engine and always puts a given common process in each
+        pulsar's prior.
     """
 
     red_components: int = 30
@@ -63,6 +74,7 @@ class NoiseSettings:
     common_log10_amplitude: float | None = None
     common_index: float = 13.0 / 3.0
     white_noise_factors: bool = True
+    common_correlation: Literal["hellings-downs", "uncorrelated", "none"] = "hellings-downs"
 
 
 def fourier_frequencies(span, n_components):
