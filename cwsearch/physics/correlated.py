@@ -823,10 +823,10 @@ class ArrayNoise:
         exact χ²(ν), c = 1, for a per-pulsar model)."""
         return fp_moment_matched(proj, self.corrections(proj.frequencies))
 
-    def draw_projections(self, proj, k, draws, rng):
-        """``draws`` Gaussian draws of (X, Y) at frequency index ``k`` under the model: arrays
-        (draws, P) each. Per pulsar the covariance is Z_p; with a correlated common process the
-        full 2P × 2P covariance ``δ_pq Z_p − W_pq``."""
+    def projection_covariance(self, proj, k):
+        """Noise covariance of the stacked (X_p, Y_p) at frequency index ``k``: (2P, 2P), ordered
+        (pulsar, sin/cos). Per pulsar it is Z_p; with a correlated common process
+        ``(sin_p|sin_q)_C = δ_pq Z_p,ss − W_pq,ss`` etc."""
         z = proj.z[:, k]
         n_psr = z.shape[0]
         cov = np.zeros((n_psr, 2, n_psr, 2))
@@ -839,7 +839,13 @@ class ArrayNoise:
             cov[:, 0, :, 1] -= w[1]
             cov[:, 1, :, 0] -= w[2]
             cov[:, 1, :, 1] -= w[3]
-        cov = cov.reshape(2 * n_psr, 2 * n_psr)
+        return cov.reshape(2 * n_psr, 2 * n_psr)
+
+    def draw_projections(self, proj, k, draws, rng):
+        """``draws`` Gaussian draws of (X, Y) at frequency index ``k`` with
+        :meth:`projection_covariance`: arrays (draws, P) each."""
+        cov = self.projection_covariance(proj, k)
+        n_psr = cov.shape[0] // 2
         vals, vecs = np.linalg.eigh(0.5 * (cov + cov.T))
         root = vecs * np.sqrt(np.clip(vals, 0.0, None))
         xy = (rng.standard_normal((draws, 2 * n_psr)) @ root.T).reshape(draws, n_psr, 2)
