@@ -128,15 +128,15 @@ def test_no_cross_terms_keeps_the_exact_chi2():
 
 def test_simulated_common_process_follows_the_model():
     """Null-simulation draws: Hellings–Downs background coefficients are correlated by Γ, the
-    uncorrelated model's are independent (sample correlation of the lowest-frequency Fourier
-    power between the two closest pulsars over 400 draws, against Γ; loose: 5 standard errors)."""
+    uncorrelated model's are independent (sample correlation of the lowest-frequency sine
+    coefficient of the most correlated pair over 300 draws, against Γ; loose: 4 standard errors)."""
     arr = _array(seed=3, n_pulsars=4, design=False, red=False)
     hd = array_noise(arr, replace(HD, common_log10_amplitude=-12.5))
     unc = array_noise(arr, replace(HD, common_log10_amplitude=-12.5, common_correlation="uncorrelated"))
     gamma = hd.weighting.correlation
     off = gamma - np.eye(len(arr))
     p, q = np.unravel_index(np.argmax(np.abs(off)), off.shape)
-    n = 400
+    n = 300
 
     def coefficient_correlation(noise, seed):
         rng = np.random.default_rng(seed)
@@ -149,8 +149,8 @@ def test_simulated_common_process_follows_the_model():
         return np.corrcoef(a, b)[0, 1]
 
     err = 1 / np.sqrt(n)
-    assert abs(coefficient_correlation(hd, 1) - gamma[p, q]) < 5 * err
-    assert abs(coefficient_correlation(unc, 2)) < 5 * err
+    assert abs(coefficient_correlation(hd, 1) - gamma[p, q]) < 4 * err
+    assert abs(coefficient_correlation(unc, 2)) < 4 * err
 
 
 def test_cli_and_run_file_option(tmp_path):
@@ -193,3 +193,76 @@ def test_scan_stage_with_correlated_background(tmp_path):
     assert float(best["fe"]) == pytest.approx(float(noise.fe_with_amplitudes(proj, fplus, fcross)[0][0, 0]),
                                               rel=1e-6)
     assert np.isfinite(res.summary["best_fap_empirical"])
+
+
+def test_limits_stage_uses_the_correlated_network(tmp_path):
+    """Galaxy strain limits of the limits stage equal :func:`bayesian_limit` of the correlated N, M at
+    the galaxy (1e-6 relative: the quadrature and the stage use the same grid), and differ from the
+    per-pulsar (uncorrelated) ones."""
+    from cwsearch.physics.simulate import invented_array, simulated_array
+    from cwsearch.stages.limits import stage as limits
+
+    arr = simulated_array(invented_array(n_pulsars=5, years=8, seed=3, toas_per_pulsar=50), seed=4,
+                          background_log10_amplitude=-13.8, background_components=6)
+    settings = NoiseSettings(red_components=6, common_log10_amplitude=-13.8)
+    options = limits.LimitsOptions(nside=1, fmax=8e-9, method="bayes", workers=1, quadrature="fast",
+                                   galaxy=(("GAL0001", 120.0, -20.0, 30.0),), no_plots=True)
+    res = limits.run_limits(arr, tmp_path / "hd", options, noise=settings, progress=False)
+    assert res.summary["noise_model"]["common_correlation"] == "hellings-downs"
+    noise = array_noise(arr, settings)
+    proj = noise.projections(res.frequencies)
+    fplus, fcross = fstat.sky_patterns(proj, np.radians([120.0]), np.radians([-20.0]))
+    nvec, mmat = noise.network(proj, fplus, fcross)
+    k = 0
+    want = limits.bayesian_limit(nvec[0, k], mmat[0, k], res.frequencies[k], grid=limits.QUADRATURE["fast"])
+    got = float(res.galaxy_limits["strain_95"][k])
+    assert got == pytest.approx(want, rel=1e-6)
+    unc = limits.run_limits(arr, tmp_path / "unc", options, noise=replace(settings, common_correlation="uncorrelated"),
+                            progress=False)
+    assert float(unc.galaxy_limits["strain_95"][k]) != pytest.approx(got, rel=1e-4, abs=0)
+
+
+def test_importance_reweighted_bayes_factor_on_gaussians():
+    """ln B_other − ln B from reweighting equals the closed form for Gaussian likelihoods under a wide
+    flat prior: ∫exp(−θ²/2s²)dθ / ∫exp(−θ²/2)dθ = s (Gaussian integral, common practice), within
+    4 of the stated errors; the importance ESS is n for identical models."""
+    from cwsearch.inference.correlated_likelihood import reweighted_log_bayes_factor
+
+    class Gauss:
+        def __init__(self, width):
+            self.width = width
+
+        def batch(self, theta):
+            return -0.5 * (theta[:, 0] / self.width) ** 2
+
+    rng = np.random.default_rng(3)
+    samples = rng.standard_normal((4000, 1))
+    base = Gauss(1.0).batch(samples)
+    same = reweighted_log_bayes_factor(2.0, samples, base, Gauss(1.0))
+    assert same["log_bayes_factor"] == pytest.approx(2.0, rel=1e-12)
+    assert same["importance_ess"] == pytest.approx(4000, rel=1e-9)
+    other = reweighted_log_bayes_factor(2.0, samples, base, Gauss(0.8))
+    assert abs(other["log_bayes_factor"] - (2.0 + np.log(0.8))) < 4 * other["error"]
+    assert 0 < other["importance_ess"] < 4000
+
+
+def test_followup_reports_both_backgrounds(tmp_path):
+    """A short follow-up with a Hellings–Downs background: the Bayes factor meaning, the noise model
+    and the side-by-side comparison (uncorrelated by reweighting, with its ESS) are in the summary.
+    (Plumbing only: a short chain, no convergence claimed.)"""
+    from cwsearch.physics.simulate import invented_array, simulated_array
+    from cwsearch.stages.followup.stage import FollowupOptions, run_followup
+
+    arr = simulated_array(invented_array(n_pulsars=4, years=8, seed=5, toas_per_pulsar=40, full_span=True), seed=6,
+                          background_log10_amplitude=-14.0, background_components=5)
+    settings = NoiseSettings(red_components=5, common_log10_amplitude=-14.0)
+    options = FollowupOptions(frequency=1.2e-8, ra=110.0, dec=20.0, walkers=18, temperatures=2, max_iterations=40,
+                              adapt_iterations=10, checkpoint_every=20, ess=50, earth_term_only=True, plots=False)
+    summary = run_followup(arr, tmp_path, options, noise=settings, seed=1, progress=False).summary
+    comparison = summary["background_comparison"]
+    assert summary["noise_model"]["common_correlation"] == "hellings-downs"
+    assert "Hellings-Downs correlated background alone" in summary["bayes_factor_meaning"]
+    assert set(comparison["log_bayes_factor"]) == {"hellings-downs", "uncorrelated"}
+    assert comparison["log_bayes_factor"]["hellings-downs"] == pytest.approx(summary["log_bayes_factor"], rel=1e-12)
+    assert "importance reweighting" in comparison["method"]
+    assert 0 < comparison["importance_effective_sample_size"] <= comparison["n_samples"]
