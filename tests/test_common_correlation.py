@@ -257,7 +257,7 @@ def test_followup_reports_both_backgrounds(tmp_path):
                           background_log10_amplitude=-14.0, background_components=5)
     settings = NoiseSettings(red_components=5, common_log10_amplitude=-14.0)
     options = FollowupOptions(frequency=1.2e-8, ra=110.0, dec=20.0, walkers=18, temperatures=2, max_iterations=40,
-                              adapt_iterations=10, checkpoint_every=20, ess=50, earth_term_only=True, plots=False)
+                              adapt_iterations=10, checkpoint_every=20, ess=50, earth_term_only=True, no_plots=True)
     summary = run_followup(arr, tmp_path, options, noise=settings, seed=1, progress=False).summary
     comparison = summary["background_comparison"]
     assert summary["noise_model"]["common_correlation"] == "hellings-downs"

@@ -14,7 +14,7 @@ def add_dataset_arguments(parser, out_required=True):
 
 
 def add_noise_arguments(parser):
-    """Noise-model options (DESIGN.md §5)."""
+    """Noise-model options (docs/design.md §5)."""
     g = parser.add_argument_group("noise model")
     g.add_argument("--red-components", type=int, default=30, metavar="K",
                    help="Fourier frequencies k/T_span, k=1..K, for red processes (default 30)")
@@ -32,6 +32,7 @@ def add_noise_arguments(parser):
 
 def noise_settings(args):
     """:class:`~cwsearch.physics.noise.NoiseSettings` from parsed noise options."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..physics.noise import NoiseSettings
 
     return NoiseSettings(red_components=args.red_components,
@@ -43,6 +44,7 @@ def noise_settings(args):
 
 def load_array(args):
     """Read and validate the dataset named on the command line."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..data.dataset import read_dataset
 
     return read_dataset(args.dataset)

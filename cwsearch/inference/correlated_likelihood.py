@@ -15,13 +15,13 @@ likelihood is exact. The engine algebra lives in
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from numba import njit, prange
 
 from ..physics import fstat, waveform
-from ..physics.correlated import ArrayWeighting, CommonProcess, _engine_with_residuals
+from ..physics.correlated import ArrayNoise, ArrayWeighting, CommonProcess, _engine_with_residuals, array_noise
 from .likelihood import (Likelihood, _PARALLEL_BASIS, _basis_parallel, _basis_serial, _grid_size, _gram_parallel,
                          _gram_serial, _projection_batch)
 
@@ -438,8 +438,6 @@ def likelihood_for(array, noise, **kwargs) -> Likelihood:
     per-pulsar engine. ``noise``: :class:`~cwsearch.physics.noise.NoiseSettings` or the run's
     :class:`~cwsearch.physics.correlated.ArrayNoise` (the engine choice is made there, once).
     Keyword arguments as :class:`~cwsearch.inference.likelihood.Likelihood`."""
-    from ..physics.correlated import ArrayNoise, array_noise
-
     model = noise if isinstance(noise, ArrayNoise) else array_noise(array, noise)
     if model.correlated:
         kwargs.pop("shape_path", None)
@@ -453,8 +451,6 @@ def likelihood_for(array, noise, **kwargs) -> Likelihood:
 def other_background(settings):
     """The background model a candidate's Bayes factor is compared against: the uncorrelated common
     process for a Hellings–Downs run and vice versa; None without a common process."""
-    from dataclasses import replace
-
     if settings is None or settings.common_log10_amplitude is None or settings.common_correlation == "none":
         return None
     other = "uncorrelated" if settings.common_correlation != "uncorrelated" else "hellings-downs"

@@ -75,14 +75,15 @@ True
 from __future__ import annotations
 
 import copy
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from numba import njit, prange
 from scipy.linalg import cho_solve, lapack, solve_triangular
 
 from . import fstat
-from .fstat import _factor4, _quad4
+from .linalg import factor4, quad4
+from .simulate import postfit, simulate_residuals
 from .noise import NoiseSettings, NoiseWeighting, fourier_basis, fourier_frequencies, hellings_downs, \
     powerlaw_variance
 
@@ -560,11 +561,11 @@ def _fe_correlated_products(nq, mq, yp, yx, fplus, fcross, n_chunk, n_sets, fe_o
             m22 = mq[sx, f] - xx_ss
             m23 = mq[sx, n_chunk + f] - xx_sc
             m33 = mq[sx, 2 * n_chunk + f] - xx_cc
-            fac = _factor4(m00, m01, m02, m03, m11, m12, m13, m22, m23, m33)
+            fac = factor4(m00, m01, m02, m03, m11, m12, m13, m22, m23, m33)
             for b in range(n_sets):
                 cx = 2 * b * n_chunk + f
                 cy = cx + n_chunk
-                fe_out[b, s, f] = 0.5 * _quad4(fac, nq[s, cx], nq[s, cy], nq[sp, cx], nq[sp, cy])
+                fe_out[b, s, f] = 0.5 * quad4(fac, nq[s, cx], nq[s, cy], nq[sp, cx], nq[sp, cy])
 
 
 def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, keep_map=True,
@@ -719,8 +720,6 @@ class ArrayNoise:
     """
 
     def __init__(self, array, settings: NoiseSettings | None = None):
-        from dataclasses import replace
-
         settings = settings or NoiseSettings()
         choice = getattr(settings, "common_correlation", "hellings-downs")
         if choice not in COMMON_CORRELATIONS + CORRELATION_KINDS:
@@ -856,8 +855,6 @@ class ArrayNoise:
         """Noise-only post-fit residuals (list per pulsar) drawn from this model: white noise,
         per-pulsar red noise (as :func:`cwsearch.physics.simulate.simulate_residuals`) and the
         common process with the model's correlation (none, independent per pulsar, or Γ)."""
-        from .simulate import postfit, simulate_residuals
-
         s = self.settings
         total = simulate_residuals(self.array, rng, white=True, red=s.pulsar_red_noise and s.red_components > 0,
                                    fit_timing_model=False)

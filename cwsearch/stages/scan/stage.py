@@ -1,7 +1,7 @@
 """The all-sky hunt: Fe and Fp over frequency × sky, candidates and false-alarm probabilities.
 
 :func:`run_scan` scans every frequency of a uniform grid (from 1/T_span,
-spacing 1/(oversample·T_span)) on a HEALPix sky (DESIGN.md §6) and writes
+spacing 1/(oversample·T_span)) on a HEALPix sky (docs/design.md §6) and writes
 ``run_dir/scan/``:
 
 ``candidates.ecsv``
@@ -54,14 +54,23 @@ from pathlib import Path
 from typing import Literal
 
 import numpy as np
+from astropy.table import Table
+from scipy.optimize import brentq
+from scipy.stats import chi2
 
 from ...core.errors import InputError
+from ...core.fileio import write_json_atomic, write_table_atomic
+from ...core.progress import progress as bar
+from ...physics import fstat, sky
+from ...physics.fstat import default_max_frequency, frequency_grid
+from ...physics.correlated import ArrayNoise, array_noise
 from ...physics.noise import NoiseSettings
+from ...physics.sky import angular_separation
+from ...physics.waveform import antenna_pattern
 
 STATISTICS = ("fe", "fp", "both")
 
 #: default cap on the highest scanned frequency [Hz]
-MAX_DEFAULT_FREQUENCY = 1e-6
 
 #: largest Fe map (float32, pixels × frequencies) a scan keeps in memory [bytes]
 MAX_MAP_BYTES = 4e9
@@ -155,39 +164,6 @@ class ScanResult:
     null_fp_max: np.ndarray | None = None
 
 
-# ---------------------------------------------------------------- grid
-def default_max_frequency(array) -> float:
-    """Nyquist-like limit ``1 / (2 × median TOA spacing)`` capped at 1e-6 Hz [Hz]."""
-    spacing = np.median([np.median(np.diff(p.toas)) for p in array if p.n_toas > 1])
-    return float(min(0.5 / spacing, MAX_DEFAULT_FREQUENCY))
-
-
-def frequency_grid(array, fmin=None, fmax=None, oversample=2):
-    """Uniform GW-frequency grid [Hz]: from ``fmin`` (default 1/T_span) to ``fmax``, step 1/(oversample·T_span).
-
-    >>> from cwsearch.physics.simulate import invented_array
-    >>> arr = invented_array(n_pulsars=2, years=10, seed=0)
-    >>> f = frequency_grid(arr, fmax=2e-8, oversample=2)
-    >>> bool(abs(f[0] * arr.span - 1) < 1e-12 and abs((f[1] - f[0]) * arr.span - 0.5) < 1e-12)
-    True
-    """
-    span = array.span
-    fmin = 1.0 / span if fmin is None else float(fmin)
-    fmax = default_max_frequency(array) if fmax is None else float(fmax)
-    if fmin < (1.0 - 1e-9) / span:
-        raise InputError(f"option --fmin: {fmin:.4g} Hz is below 1/T_span = {1.0 / span:.4g} Hz "
-                         "(less than one GW period fits in the data span)")
-    spacing = np.median([np.median(np.diff(p.toas)) for p in array if p.n_toas > 1])
-    if fmax > (1.0 + 1e-9) * 0.5 / spacing:
-        raise InputError(f"option --fmax: {fmax:.4g} Hz is above the Nyquist-like limit 1/(2 x median TOA "
-                         f"spacing) = {0.5 / spacing:.4g} Hz")
-    if not fmax > fmin:
-        raise InputError(f"option --fmax: the band is empty ({fmax:.4g} Hz <= fmin {fmin:.4g} Hz)")
-    step = 1.0 / (oversample * span)
-    n = int(np.floor((fmax - fmin) / step * (1 + 1e-12))) + 1
-    return fmin + step * np.arange(n)
-
-
 # ---------------------------------------------------------------- statistics
 def fe_single_fap(fe):
     """Single-template false-alarm probability of Fe: ``(1 + F) e^(−F)`` (2Fe ~ χ²(4))."""
@@ -210,7 +186,6 @@ def fp_fap(fp, dof, scale=1.0):
     and (dof, scale) are the moment-matched values of
     :func:`cwsearch.physics.correlated.fp_moment_matched`.
     """
-    from scipy.stats import chi2
 
     fp = np.asarray(fp, dtype=float)
     dof = np.asarray(dof, dtype=float)
@@ -257,8 +232,6 @@ class Trials:
 
     def fe_threshold(self, fap):
         """Fe at which :meth:`fe_fap` equals ``fap``."""
-        from scipy.optimize import brentq
-
         return float(brentq(lambda f: float(self.fe_fap(f)) - fap, 0.0, 1e4))
 
 
@@ -290,9 +263,6 @@ def effective_sky_templates(proj, fplus, fcross, seed=0, *, draws=SKY_TRIAL_DRAW
     pooled maxima. With one or two pulsars Fe does not depend on the sky and
     N_sky = 1.
     """
-    from ...physics import fstat
-    from ...physics.correlated import ArrayNoise
-
     n_freq = proj.frequencies.size
     if frequency_indices is None:
         frequency_indices = np.unique(np.linspace(0, n_freq - 1, min(3, n_freq) + 2)[1:-1].round().astype(int))
@@ -345,9 +315,6 @@ def empirical_fap(values, null_max):
 # ---------------------------------------------------------------- maps
 def sky_grid(array, nside):
     """Pixel centres (ra, dec) [rad] and antenna patterns F+, Fx (N_pix, N_psr)."""
-    from ...physics import sky
-    from ...physics.waveform import antenna_pattern
-
     ra, dec = sky.pixel_centres(nside)
     fplus, fcross, _ = antenna_pattern(ra, dec, array.positions)
     return ra, dec, np.ascontiguousarray(fplus), np.ascontiguousarray(fcross)
@@ -355,8 +322,6 @@ def sky_grid(array, nside):
 
 def _as_noise(engine):
     """An :class:`~cwsearch.physics.correlated.ArrayNoise` for an ArrayNoise or a per-pulsar engine."""
-    from ...physics.correlated import ArrayNoise
-
     return engine if isinstance(engine, ArrayNoise) else ArrayNoise.from_engine(engine)
 
 
@@ -368,8 +333,6 @@ def fe_map(engine, frequencies, fplus, fcross, residuals=None, *, progress=False
     the sky scan's ``fe_map`` is (N_pix, N_freq) float32. With a correlated common process
     X, Y come from the weighted data and M carries the cross-pulsar blocks.
     """
-    from ...core.progress import progress as bar
-
     noise = _as_noise(engine)
     with bar(total=len(noise), desc=f"{desc}: projections", enabled=progress, unit="psr") as pb:
         proj = noise.projections(frequencies, residuals, on_pulsar=lambda i: pb.update(1))
@@ -387,7 +350,6 @@ def simulate_noise(array, noise: NoiseSettings, rng, engine=None):
     per-pulsar red noise and the common process with the model's inter-pulsar correlation
     (:meth:`cwsearch.physics.correlated.ArrayNoise.simulate`, timing model fitted out).
     ``engine`` (the run's ArrayNoise) avoids rebuilding it."""
-    from ...physics.correlated import array_noise
 
     engine = array_noise(array, noise) if engine is None else _as_noise(engine)
     return engine.simulate(rng)
@@ -403,8 +365,6 @@ def null_maxima(array, engine, noise, frequencies, fplus, fcross, n_sims, seed, 
     so results do not depend on the batch size. Returns two arrays (n_sims,)
     (the Fe one is None if ``want_fe`` is false).
     """
-    from ...core.progress import progress as bar
-
     engine = _as_noise(engine)
     root = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(seed)
     children = root.spawn(n_sims)
@@ -458,8 +418,6 @@ def local_maxima(fe, neighbours, threshold=-np.inf, chunk=200_000):
 def merge_peaks(values, frequencies, ra, dec, frequency_window, merge_angle, limit):
     """Greedy merge: best first, drop peaks within ``frequency_window`` [Hz] and ``merge_angle`` [rad]
     of a kept one. Returns kept indices (at most ``limit``)."""
-    from ...physics.sky import angular_separation
-
     order = np.argsort(-np.asarray(values), kind="stable")
     kept = []
     for i in order:
@@ -477,7 +435,7 @@ def merge_peaks(values, frequencies, ra, dec, frequency_window, merge_angle, lim
 
 
 # ---------------------------------------------------------------- the stage
-def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: NoiseSettings = NoiseSettings(),
+def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: NoiseSettings | None = None,
              seed=0, progress=True) -> ScanResult:
     """Scan ``array`` over frequency × sky and write ``run_dir/scan/`` (see the module docstring).
 
@@ -487,15 +445,11 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     run_dir : path of the run folder (created if missing)
     options : :class:`ScanOptions`
     noise : :class:`~cwsearch.physics.noise.NoiseSettings`, the noise model for weighting and null simulations
+        (None: the default settings)
     seed : int, seeds the null simulations
     progress : show progress bars
     """
-    from astropy.table import Table
-
-    from ...physics import fstat
-    from ...core.fileio import write_json_atomic, write_table_atomic
-    from ...physics.correlated import array_noise
-
+    noise = NoiseSettings() if noise is None else noise
     options.validate()
     started = time.time()
     out = Path(run_dir) / "scan"
@@ -519,7 +473,6 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
         fe_max = sky_scan.fe_max[0]
         best_pixel = sky_scan.best_pixel[0]
     else:
-        from ...core.progress import progress as bar
 
         with bar(total=len(engine), desc="scan: projections", enabled=progress, unit="psr") as pb:
             proj = engine.projections(frequencies, on_pulsar=lambda i: pb.update(1))
@@ -590,6 +543,7 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     write_table_atomic(files["spectrum"], spectrum)
     write_table_atomic(files["candidates"], candidates)
     if not options.no_plots:
+        # lazy: matplotlib is loaded only when plots are drawn
         from . import plots as scan_plots
 
         thresholds = _thresholds(trials, null_fe, (fp_dof, fp_scale))
@@ -608,8 +562,6 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
 
 def _thresholds(trials, null_fe, fp_law, level=0.01):
     """Lines for the spectrum plot: (label, value or per-frequency array)."""
-    from scipy.stats import chi2
-
     fp_dof, fp_scale = fp_law
 
     out = {"fe": [], "fp": []}
@@ -630,9 +582,7 @@ def _thresholds(trials, null_fe, fp_law, level=0.01):
 
 def _candidates(options, array, proj, frequencies, fe_full, fp, fp_law, ra, dec, fplus, fcross, trials,
                 null_fe, null_fp, span, engine=None):
-    from astropy.table import Table
 
-    from ...physics import fstat, sky
 
     fp_dof, fp_scale = fp_law
     noise = None if engine is None else _as_noise(engine)
