@@ -63,7 +63,7 @@ from ...core.fileio import write_json_atomic, write_table_atomic
 from ...core.progress import progress as bar
 from ...physics import fstat, sky
 from ...physics.fstat import default_max_frequency, frequency_grid
-from ...physics.correlated import ArrayNoise, array_noise
+from ...physics.correlated import ArrayNoise, array_noise, pair_correlations
 from ...physics.noise import NoiseSettings
 from ...physics.sky import angular_separation
 from ...physics.waveform import antenna_pattern
@@ -554,6 +554,17 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
             files["sky_plot"] = out / "sky_fe.png"
             scan_plots.sky_plot(files["sky_plot"], fe_full[:, k], options.nside, frequencies[k], array,
                                 candidates[candidates["frequency_index"] == k])
+        if engine.kind != "none" and len(array) >= 2:
+            pairs = pair_correlations(array, noise)
+            files["correlation_plot"] = out / "hd_correlations.png"
+            scan_plots.correlation_plot(files["correlation_plot"], pairs, title=(
+                f"inter-pulsar correlations of the residuals ({len(array)} pulsars); model: {engine.kind}"))
+            summary["pair_correlations"] = {
+                "method": "per pair X_i' Phi X_j / tr(Z_i Phi Z_j Phi) with X = F' C_i^-1 r (each pulsar whitened "
+                          "with its own covariance incl. the common auto-power); estimates Gamma_ij; binned by "
+                          "angle with inverse-variance weights",
+                **{k: [float(v) for v in pairs.bins[k]] for k in ("centre", "rho", "sigma", "expected", "count")},
+                "centre_unit": "rad"}
     summary["files"] = {k: v.name for k, v in files.items()}
     summary["seconds"] = round(time.time() - started, 3)
     write_json_atomic(files["summary"], summary)
