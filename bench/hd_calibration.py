@@ -35,7 +35,6 @@ residual set of a batched projection.
 from __future__ import annotations
 
 import argparse
-import json
 import time
 from dataclasses import replace
 from pathlib import Path

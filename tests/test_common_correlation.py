@@ -296,3 +296,27 @@ def test_pair_correlations_are_unbiased_estimates_of_gamma(tmp_path):
     assert np.all(np.abs(ratio - 1) < 4 * np.sqrt(2 / n) * 1.5)     # loose: var of a variance estimate
     out = correlation_plot(tmp_path / "hd.png", pair_correlations(arr, settings))
     assert out.stat().st_size > 1000
+
+
+
+def test_fewer_common_components_same_model_in_both_engines():
+    """K_common < K: the per-pulsar engine ('uncorrelated') and the array engine with an identity Γ
+    give the same log-likelihood (two code paths, one covariance), and the Hellings–Downs engine
+    matches the dense covariance built with K_common components (numpy.linalg.slogdet / solve)."""
+    from cwsearch.physics.correlated import ArrayWeighting, common_components_needed
+
+    arr = _array(seed=21)
+    settings = replace(HD, common_components=3)
+    unc = array_noise(arr, replace(settings, common_correlation="uncorrelated"))
+    ident = ArrayWeighting(arr, SETTINGS, CommonProcess(LOG10_A, 13 / 3, 3, "uncorrelated"))
+    assert unc.log_likelihood() == pytest.approx(ident.log_likelihood(), rel=1e-10)
+    hd = array_noise(arr, settings)
+    assert hd.weighting.n_fourier == 6
+    dense = _Dense(arr, SETTINGS, hd.weighting.common, hd.weighting.correlation)
+    data = dense.stack([p.residuals for p in arr])[:, 0]
+    r = dense.g.T @ data
+    want = -0.5 * r @ np.linalg.solve(dense.gcg, r) - 0.5 * np.linalg.slogdet(dense.gcg)[1] - 0.5 * r.size * np.log(
+        2 * np.pi)
+    assert hd.log_likelihood() == pytest.approx(want, rel=1e-8)
+    k = common_components_needed(arr, settings, ratio=0.01)
+    assert 1 <= k <= settings.red_components

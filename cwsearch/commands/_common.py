@@ -28,6 +28,9 @@ def add_noise_arguments(parser):
                    default="hellings-downs",
                    help="how the common process couples the pulsars: hellings-downs (default; array-level "
                         "engine), uncorrelated (same spectrum, independent pulsars) or none (leave it out)")
+    g.add_argument("--common-components", type=int, default=None, metavar="K",
+                   help="Fourier frequencies of the common process, at most --red-components (default: the same; "
+                        "fewer make the correlated engine much faster where the background is below the white noise)")
 
 
 def noise_settings(args):
@@ -39,7 +42,8 @@ def noise_settings(args):
                          pulsar_red_noise=not args.no_pulsar_red_noise,
                          common_log10_amplitude=args.common_log10_amplitude,
                          common_index=args.common_index,
-                         common_correlation=getattr(args, "common_correlation", "hellings-downs"))
+                         common_correlation=getattr(args, "common_correlation", "hellings-downs"),
+                         common_components=getattr(args, "common_components", None))
 
 
 def load_array(args):

@@ -84,7 +84,7 @@ from scipy.linalg import cho_solve, lapack, solve_triangular
 from . import fstat
 from .linalg import factor4, quad4
 from .simulate import postfit, simulate_residuals
-from .noise import NoiseSettings, NoiseWeighting, fourier_basis, fourier_frequencies, hellings_downs, \
+from .noise import NoiseSettings, NoiseWeighting, common_components, fourier_basis, fourier_frequencies, hellings_downs, \
     powerlaw_variance
 
 CORRELATION_KINDS = ("hellings-downs", "uncorrelated", "monopole", "dipole")
@@ -724,7 +724,7 @@ class ArrayNoise:
         choice = getattr(settings, "common_correlation", "hellings-downs")
         if choice not in COMMON_CORRELATIONS + CORRELATION_KINDS:
             raise ValueError(f"common_correlation must be one of {COMMON_CORRELATIONS}, not {choice!r}")
-        has_common = settings.common_log10_amplitude is not None and settings.red_components > 0
+        has_common = settings.common_log10_amplitude is not None and common_components(settings) > 0
         self.array = array
         self.settings = settings
         self.kind = choice if has_common else "none"
@@ -736,7 +736,7 @@ class ArrayNoise:
             self.engine = NoiseWeighting(array, settings)
         else:
             common = CommonProcess(settings.common_log10_amplitude, settings.common_index,
-                                   settings.red_components, self.kind)
+                                   common_components(settings), self.kind)
             self.weighting = ArrayWeighting(array, replace(settings, common_log10_amplitude=None), common)
             self.engine = self.weighting.engine
 
@@ -764,7 +764,7 @@ class ArrayNoise:
         if self.kind != "none":
             out.update({"common_log10_amplitude": float(self.settings.common_log10_amplitude),
                         "common_index": float(self.settings.common_index),
-                        "common_components": int(self.settings.red_components)})
+                        "common_components": common_components(self.settings)})
         return out
 
     # -- scan statistics
@@ -859,11 +859,12 @@ class ArrayNoise:
         total = simulate_residuals(self.array, rng, white=True, red=s.pulsar_red_noise and s.red_components > 0,
                                    fit_timing_model=False)
         if self.kind == "uncorrelated":
-            freqs = fourier_frequencies(self.array.span, s.red_components)
+            k_common = common_components(s)
+            freqs = fourier_frequencies(self.array.span, k_common)
             root = np.sqrt(np.repeat(powerlaw_variance(freqs, s.common_log10_amplitude, s.common_index,
                                                        self.array.span), 2))
             for r, p in zip(total, self.array):
-                r += fourier_basis(p.toas, self.array.start, self.array.span, s.red_components) @ (
+                r += fourier_basis(p.toas, self.array.start, self.array.span, k_common) @ (
                     rng.standard_normal(root.size) * root)
         elif self.correlated:
             for r, b in zip(total, self.weighting.draw_background(rng)):
@@ -887,6 +888,30 @@ class ArrayNoise:
         if self.correlated:
             return self.weighting.log_likelihood()
         return float(sum(w.log_likelihood() for w in self.engine))
+
+
+def common_components_needed(array, settings: NoiseSettings, ratio=0.01) -> int:
+    """The smallest K_common such that every dropped common-process component k > K_common has
+    prior variance φ_k below ``ratio`` times the white-noise variance of a Fourier coefficient
+    in the most sensitive pulsar, ``2 / Σ_i σ_i⁻²`` (the least-squares variance of a sinusoid's
+    amplitude in white noise; common practice, no source). Above it the background is far below
+    every pulsar's noise at those frequencies, so leaving them out changes the covariance by less
+    than ``ratio`` of the noise there. Capped at ``red_components``.
+
+    >>> from cwsearch.physics.simulate import invented_array
+    >>> arr = invented_array(n_pulsars=5, years=12, seed=1)
+    >>> k = common_components_needed(arr, NoiseSettings(common_log10_amplitude=-14.6))
+    >>> 1 <= k <= 30
+    True
+    """
+    if settings.common_log10_amplitude is None:
+        return 0
+    white = min(2.0 / float(np.sum(1.0 / np.asarray(p.effective_sigmas() if settings.white_noise_factors
+                                                     else p.sigmas) ** 2)) for p in array)
+    phi = powerlaw_variance(fourier_frequencies(array.span, settings.red_components),
+                            settings.common_log10_amplitude, settings.common_index, array.span)
+    above = np.flatnonzero(phi >= ratio * white)
+    return int(min(settings.red_components, max(1, above.max() + 1 if above.size else 1)))
 
 
 def array_noise(array, settings: NoiseSettings | None = None) -> ArrayNoise:
@@ -949,13 +974,14 @@ def pair_correlations(array, settings: NoiseSettings, n_bins=8, residuals=None) 
     with fstat._blas_threads(1):
         engine = NoiseWeighting(array, settings)
     span, start = array.span, array.start
-    phi = np.repeat(powerlaw_variance(fourier_frequencies(span, settings.red_components),
+    k_common = common_components(settings)
+    phi = np.repeat(powerlaw_variance(fourier_frequencies(span, k_common),
                                       settings.common_log10_amplitude, settings.common_index, span), 2)
     res = [p.residuals for p in array] if residuals is None else residuals
     xs, ms = [], []
     with fstat._blas_threads(1):            # small products: threaded BLAS stalls on a shared machine
         for w, p, r in zip(engine, array, res):
-            fb = fourier_basis(p.toas, start, span, settings.red_components)
+            fb = fourier_basis(p.toas, start, span, k_common)
             xs.append(w.inner(fb, r))
             ms.append(w.inner(fb) * phi[None, :])             # Z_i Φ
     xs, ms = np.array(xs), np.array(ms)                 # (P, 2K) or (P, 2K, B)
@@ -987,5 +1013,6 @@ def pair_correlations(array, settings: NoiseSettings, n_bins=8, residuals=None) 
                             float(settings.common_log10_amplitude), float(settings.common_index))
 
 
-__all__ += ["COMMON_CORRELATIONS", "ArrayNoise", "array_noise", "fp_moment_matched", "PairCorrelations",
+__all__ += ["COMMON_CORRELATIONS", "ArrayNoise", "array_noise", "common_components_needed", "fp_moment_matched",
+            "PairCorrelations",
             "pair_correlations"]
