@@ -188,8 +188,8 @@ def test_integrated_time_of_ar1_chains_of_50_tau():
         estimates = [integrated_time(_ar1_ensemble(rng, n, 32, rho)[:, :, None])[0] for _ in range(20)]
         assert np.mean(estimates) == pytest.approx(tau, rel=0.10)
         # and the ensemble estimate (independent walkers: the same τ; it only ever raises the τ used)
-        ens = [ensemble_time(_ar1_ensemble(rng, n, 32, rho)[:, :, None])[0] for _ in range(20)]
-        assert np.median(ens) == pytest.approx(tau, rel=0.35)   # single series: biased low by ≈ 10 τ/N = 20 %
+        ens = [ensemble_time(_ar1_ensemble(rng, n, 32, rho)[:, :, None])[0] for _ in range(30)]
+        assert np.mean(ens) == pytest.approx(tau, rel=0.2)    # one series: scatter ≈ 60 %, skewed
 
 
 def test_ensemble_time_sees_walkers_moving_together():
