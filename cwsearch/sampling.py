@@ -16,15 +16,20 @@
 * **Stopping** (:func:`_converged`). All of: the ladder adaptation is over
   and the burn-in (the first quarter of the run, at least the adaptation)
   covers it; the chain after burn-in is at least ``min_chain_taus`` (50)
-  integrated autocorrelation times τ long, τ the worst parameter's
-  (:func:`integrated_time`, guidance of the emcee documentation, Foreman-Mackey
-  et al. 2013); the effective sample size ``walkers × length / τ`` reaches
-  the target; τ has stopped changing (relative change below
-  ``tau_tolerance`` = 1 % per check, averaged over the last ``tau_checks``
-  checks); and the T=1 log-likelihood after burn-in shows no drift between
-  its two halves (:func:`stationary`). An iteration or wall-time cap stops
-  the run as well, but is reported as such (``stopped_by``) with a warning,
-  never as converged.
+  autocorrelation times τ long (guidance of the emcee documentation); the
+  effective sample size ``walkers × length / τ`` reaches the target; τ has
+  stopped changing (relative change below ``tau_tolerance`` = 1 % per check,
+  over the last quarter of the checks and at least ``tau_checks``); the
+  T=1 log-likelihood and every parameter show no drift between the two
+  halves of the chain (:func:`stationary`, :func:`drift_free`). τ is, per
+  parameter, the worse of the walker-averaged estimate
+  (:func:`integrated_time`, automatic window; Sokal 1997, Goodman & Weare
+  2010) and the ensemble estimate (:func:`ensemble_time`), which also sees
+  walkers moving together (temperature swaps make each walker's own series
+  decorrelate fast while the ensemble as a whole moves slowly); the stopping
+  rule uses the worst parameter. An iteration or wall-time cap stops the run
+  as well, but is reported as such (``stopped_by``) with a warning, never as
+  converged.
 * **Ladder.** ptemcee adapts the temperatures during the adaptation phase
   towards equal swap acceptance of adjacent pairs (Vousden, Farr & Mandel
   2016). At its end, every adjacent pair whose swap acceptance (over the
