@@ -83,6 +83,7 @@ class FollowupOptions:
     phase_grid: int = 0
     checkpoint_every: int = 100
     adapt_iterations: int = 500
+    max_temperatures: int | None = None  # the ladder may grow to this many (None: 3 x temperatures, at most 40)
     no_plots: bool = False              # skip the corner, sky and trace plots (PNG)
 
     def validate(self):
@@ -94,6 +95,8 @@ class FollowupOptions:
             raise InputError("--walkers must be even and at least 18 (ptemcee needs > 2 x 8 parameters)")
         if self.temperatures < 1 or self.max_temperature <= 1:
             raise InputError("--temperatures must be >= 1 and --max-temperature > 1")
+        if self.max_temperatures is not None and self.max_temperatures < 1:
+            raise InputError("--max-temperatures must be >= 1")
         explicit = [v is not None for v in (self.frequency, self.ra, self.dec)]
         if any(explicit) and not all(explicit):
             raise InputError("an explicit target needs all of --frequency, --ra and --dec")
@@ -331,7 +334,8 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
         walkers=options.walkers, temperatures=options.temperatures, max_temperature=options.max_temperature,
         ess=options.ess, max_iterations=options.max_iterations,
         max_time=float("inf") if options.max_time is None else float(options.max_time),
-        checkpoint_every=options.checkpoint_every, adapt_iterations=options.adapt_iterations)
+        checkpoint_every=options.checkpoint_every, adapt_iterations=options.adapt_iterations,
+        max_temperatures=options.max_temperatures)
     initial = initial_positions(prior, target, span, (options.temperatures, options.walkers), rng)
     fingerprint = {"target": [target.frequency, target.ra, target.dec], "band": list(band),
                    "pulsar_term": likelihood.pulsar_term, "evolution": likelihood.evolution,
