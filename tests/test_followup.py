@@ -109,6 +109,7 @@ def _write_candidates(run_dir, rows):
     t["frequency"].unit, t["ra"].unit, t["dec"].unit = u.Hz, u.deg, u.deg
     (run_dir / "scan").mkdir(parents=True)
     t.write(run_dir / "scan" / "candidates.ecsv", format="ascii.ecsv")
+    (run_dir / "scan" / "scan_summary.json").write_text("{}\n")  # a finished scan writes its summary last
 
 
 def test_command_follows_candidates_and_resumes(tmp_path, dataset_dir):

@@ -5,7 +5,8 @@ from __future__ import annotations
 import json
 from dataclasses import fields
 
-from ._common import add_dataset_arguments, add_noise_arguments, load_array, noise_settings
+from ._common import (add_dataset_arguments, add_noise_arguments, load_array, noise_settings,
+                      run_folder_guard)
 
 DESCRIPTION = (
     "Fit one circular binary (Earth + pulsar term, pulsar phases marginalised) to the top candidate(s) of "
@@ -70,8 +71,9 @@ def run(args) -> int:
 
     options = FollowupOptions(**{f.name: getattr(args, f.name) for f in fields(FollowupOptions)})
     array = load_array(args)
-    result = run_followup(array, args.out, options, noise=noise_settings(args), seed=args.seed,
-                          progress=not args.quiet)
+    with run_folder_guard(args.out, array, args.dataset):
+        result = run_followup(array, args.out, options, noise=noise_settings(args), seed=args.seed,
+                              progress=not args.quiet)
     if args.json:
         print(json.dumps(result.summary, indent=2, default=str))
     elif not args.quiet:

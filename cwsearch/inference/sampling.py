@@ -59,7 +59,9 @@ True
 from __future__ import annotations
 
 import json
+import os
 import time
+import zipfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -68,6 +70,7 @@ from scipy.special import erfcinv
 
 from ..core import fileio  # fileio.atomic_path is looked up at each call (the fault tests replace it)
 from ..core.errors import InputError
+from ..core.safeio import open_regular
 from ..core.progress import progress as progress_bar
 
 np = numpy
@@ -532,37 +535,43 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
     tau_history = []
     sampler = make_sampler(betas)
     if resume and checkpoint is not None and _exists(checkpoint):
-        with np.load(checkpoint, allow_pickle=False) as ck:
-            if "fingerprint" not in ck.files or str(ck["fingerprint"]) != ident:
-                raise InputError("the checkpoint was made with another model or other sampler settings; "
-                                 "run without --resume to start afresh", file=checkpoint)
-            n = int(ck["iterations"])
-            capacity = max(capacity, 2 * n)
-            betas = np.array(ck["betas"])
-            ntemps = betas.size
-            chain = _resized(ck["chain"], capacity)
-            logl_t1 = _resized(ck["log_likelihood"], capacity)
-            logp_t1 = _resized(ck["log_prior"], capacity)
-            mean_logl = _resized(ck["mean_log_likelihood"], capacity)
-            ratios = _resized(ck["swap_ratios"], capacity, fill=np.nan)
-            sampler = make_sampler(betas)
-            sampler._p0 = np.array(ck["positions"])
-            sampler._logposterior0 = np.array(ck["log_posterior"])
-            sampler._loglikelihood0 = np.array(ck["log_likelihood_all"])
-            sampler._betas = betas.copy()
-            sampler.nswap = np.array(ck["nswap"])
-            sampler.nswap_accepted = np.array(ck["nswap_accepted"])
-            sampler.nprop = np.array(ck["nprop"])
-            sampler.nprop_accepted = np.array(ck["nprop_accepted"])
-            random.set_state(("MT19937", np.array(ck["rng_key"], dtype=np.uint32), int(ck["rng_pos"]),
-                              int(ck["rng_has_gauss"]), float(ck["rng_gauss"])))
-            elapsed_before = float(ck["wall_time"])
-            pool.evaluations = int(ck["evaluations"])
-            adapt_start, adapt_end = int(ck["adapt_start"]), int(ck["adapt_end"])
-            rounds, ladder_done, ladder_from = int(ck["ladder_rounds"]), bool(ck["ladder_done"]), int(ck["ladder_from"])
-            ladder_history = json.loads(str(ck["ladder_history"]))
-            ladder_note = str(ck["ladder_note"])
-            tau_history = [row for row in np.array(ck["tau_history"])]
+        try:
+            with _checkpoint_file(checkpoint) as fh, np.load(fh, allow_pickle=False) as ck:
+                if "fingerprint" not in ck.files or str(ck["fingerprint"]) != ident:
+                    raise InputError("the checkpoint was made with another model or other sampler settings; "
+                                     "run without --resume to start afresh", file=checkpoint)
+                n = int(ck["iterations"])
+                capacity = max(capacity, 2 * n)
+                betas = np.array(ck["betas"])
+                ntemps = betas.size
+                chain = _resized(ck["chain"], capacity)
+                logl_t1 = _resized(ck["log_likelihood"], capacity)
+                logp_t1 = _resized(ck["log_prior"], capacity)
+                mean_logl = _resized(ck["mean_log_likelihood"], capacity)
+                ratios = _resized(ck["swap_ratios"], capacity, fill=np.nan)
+                sampler = make_sampler(betas)
+                sampler._p0 = np.array(ck["positions"])
+                sampler._logposterior0 = np.array(ck["log_posterior"])
+                sampler._loglikelihood0 = np.array(ck["log_likelihood_all"])
+                sampler._betas = betas.copy()
+                sampler.nswap = np.array(ck["nswap"])
+                sampler.nswap_accepted = np.array(ck["nswap_accepted"])
+                sampler.nprop = np.array(ck["nprop"])
+                sampler.nprop_accepted = np.array(ck["nprop_accepted"])
+                random.set_state(("MT19937", np.array(ck["rng_key"], dtype=np.uint32), int(ck["rng_pos"]),
+                                  int(ck["rng_has_gauss"]), float(ck["rng_gauss"])))
+                elapsed_before = float(ck["wall_time"])
+                pool.evaluations = int(ck["evaluations"])
+                adapt_start, adapt_end = int(ck["adapt_start"]), int(ck["adapt_end"])
+                rounds, ladder_done, ladder_from = int(ck["ladder_rounds"]), bool(ck["ladder_done"]), int(ck["ladder_from"])
+                ladder_history = json.loads(str(ck["ladder_history"]))
+                ladder_note = str(ck["ladder_note"])
+                tau_history = [row for row in np.array(ck["tau_history"])]
+        except InputError:
+            raise
+        except (OSError, EOFError, ValueError, KeyError, TypeError, IndexError, zipfile.BadZipFile) as exc:
+            raise InputError(f"checkpoint damaged ({type(exc).__name__}); run again without --resume to start "
+                             "afresh", file=checkpoint) from None
         p0 = None
 
     def state():
@@ -710,7 +719,14 @@ def _unused(x):  # ptemcee wants per-walker functions; the vectorised pool never
 
 
 def _exists(path):
-    return Path(path).exists()
+    return os.path.lexists(path)
+
+
+def _checkpoint_file(path):
+    """The checkpoint opened through :mod:`cwsearch.core.safeio` (a regular file inside its folder, size
+    cap): a FIFO, a device or a symlink elsewhere is refused before numpy reads anything."""
+    fh, _ = open_regular(path, Path(path).parent, what="checkpoint")
+    return fh
 
 
 __all__ = ["load_ptemcee", "VectorisedPool", "integrated_time", "ensemble_time", "stationary", "drift_free", "tau_change", "extended_ladder",

@@ -31,6 +31,7 @@ True
 
 from __future__ import annotations
 
+import math
 import os
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
@@ -41,6 +42,8 @@ from scipy.linalg import cho_factor, lapack, qr, solve_triangular
 from threadpoolctl import threadpool_limits
 
 from ..core.constants import YEAR_FREQUENCY
+from ..core.errors import InputError
+from ..core.safeio import check_count
 
 
 @dataclass(frozen=True)
@@ -67,6 +70,20 @@ class NoiseSettings:
     common_log10_amplitude: float | None = None
     common_index: float = 13.0 / 3.0
     white_noise_factors: bool = True
+
+    def __post_init__(self):
+        check_count(self.red_components, "red_components", minimum=0, maximum=MAX_RED_COMPONENTS)
+        for name in ("common_log10_amplitude", "common_index"):
+            value = getattr(self, name)
+            if value is not None and not (isinstance(value, (int, float)) and math.isfinite(value)):
+                raise InputError(f"option --{name.replace('_', '-')}: must be a finite number, not {value!r}")
+        if self.common_log10_amplitude is not None and not -30 <= self.common_log10_amplitude <= -5:
+            raise InputError("option --common-log10-amplitude: must be between -30 and -5 "
+                             f"(a log10 strain amplitude), not {self.common_log10_amplitude}")
+
+
+#: most Fourier frequencies of a red process (k/T_span, k = 1..K): 1000 reaches daily cadence for 3 years
+MAX_RED_COMPONENTS = 1000
 
 
 def fourier_frequencies(span, n_components):

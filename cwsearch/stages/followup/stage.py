@@ -33,6 +33,8 @@ Examples
 
 from __future__ import annotations
 
+import math
+import os
 import time
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
@@ -44,6 +46,7 @@ from astropy.table import Table
 from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
+from ...core.safeio import check_count, read_input_text, require_finished
 from ...inference import sampling
 from ...inference.likelihood import Likelihood
 from ...physics import fstat, waveform
@@ -102,6 +105,14 @@ class FollowupOptions:
             raise InputError("an explicit target needs all of --frequency, --ra and --dec")
         if self.ess <= 0 or self.max_iterations <= 0:
             raise InputError("--ess and --max-iterations must be positive")
+        if self.max_time is not None and not (math.isfinite(self.max_time) and self.max_time > 0):
+            raise InputError(f"--max-time must be a positive number of seconds, not {self.max_time}")
+        check_count(self.max_iterations, "max_iterations", minimum=1, maximum=10_000_000)
+        check_count(self.walkers, "walkers", minimum=18, maximum=10_000)
+        check_count(self.temperatures, "temperatures", minimum=1, maximum=200)
+        check_count(self.checkpoint_every, "checkpoint_every", minimum=1, maximum=10_000_000)
+        if not math.isfinite(self.ess):   # a huge --ess is legal: the iteration cap or --max-time stops the run
+            raise InputError(f"--ess must be a finite number, not {self.ess}")
 
 
 @dataclass
@@ -187,13 +198,15 @@ def initial_positions(prior, target: Target, span, shape, rng):
 def read_candidates(run_dir):
     """The scan's candidates table (astropy Table), best first (by ``fe`` when present)."""
     path = Path(run_dir) / "scan" / "candidates.ecsv"
-    if not path.exists():
+    if not os.path.lexists(path):
         raise InputError("no scan candidates found; run 'cwsearch scan' first, or give --frequency/--ra/--dec "
                          "or --all-sky", file=path)
+    require_finished(path, path.parent / "scan_summary.json", stage="scan", command="cwsearch scan")
+    text = read_input_text(path, Path(run_dir), what="candidates file")
     try:
-        table = Table.read(path, format="ascii.ecsv")
+        table = Table.read(text + "\n", format="ascii.ecsv")
     except Exception as exc:  # malformed file: one line naming it
-        raise InputError(f"cannot read candidates ({exc})", file=path) from None
+        raise InputError(f"cannot read candidates ({' '.join(str(exc).split())[:300]})", file=path) from None
     for col in ("frequency", "ra", "dec"):
         if col not in table.colnames:
             raise InputError(f"missing column '{col}'", file=path, column=col)

@@ -151,6 +151,10 @@ class ScanOptions:
             bad("statistic", f"must be one of {', '.join(STATISTICS)}, not {self.statistic!r}")
         if int(self.null_sims) != self.null_sims or self.null_sims < 0:
             bad("null_sims", f"must be an integer >= 0, not {self.null_sims}")
+        if self.null_sims > MAX_NULL_SIMS:
+            bad("null_sims", f"at most {MAX_NULL_SIMS:,}, not {int(self.null_sims):,}: each is a full noise-only "
+                             f"scan, so this many take about {int(self.null_sims):.3g} times as long as the scan "
+                             "itself")
         if not 0 < self.fap_threshold <= 1:
             bad("fap_threshold", f"must be in (0, 1], not {self.fap_threshold}")
         if int(self.max_candidates) != self.max_candidates or self.max_candidates < 1:
@@ -165,6 +169,10 @@ class ScanOptions:
     def distributed(self) -> bool:
         """Whether the scan's loops go to worker processes or a Dask cluster."""
         return bool(self.scheduler) or (self.workers or 1) > 1
+
+
+#: most noise-only scans for the empirical false-alarm probability (resolves FAPs down to 1e-5)
+MAX_NULL_SIMS = 100_000
 
 
 @dataclass
