@@ -21,7 +21,7 @@ from cwsearch.physics.simulate import Binary, invented_array, simulate_residuals
 
 WHITE = NoiseSettings(red_components=0)
 FAST = dict(walkers=18, temperatures=5, max_temperature=1e5, ess=400, max_iterations=260, adapt_iterations=60,
-            checkpoint_every=100)
+            checkpoint_every=100, max_temperatures=5)   # capped, fixed-ladder runs: fast, and warned as such
 
 
 @pytest.fixture(scope="module")

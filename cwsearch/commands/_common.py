@@ -32,6 +32,13 @@ def add_noise_arguments(parser):
                    help="add a common red process with this log10 amplitude (default: none)")
     g.add_argument("--common-index", type=float, default=13 / 3, metavar="GAMMA",
                    help="spectral index of the common process (default 13/3)")
+    g.add_argument("--common-correlation", choices=("hellings-downs", "uncorrelated", "none"),
+                   default="hellings-downs",
+                   help="how the common process couples the pulsars: hellings-downs (default; array-level "
+                        "engine), uncorrelated (same spectrum, independent pulsars) or none (leave it out)")
+    g.add_argument("--common-components", type=int, default=None, metavar="K",
+                   help="Fourier frequencies of the common process, at most --red-components (default: the same; "
+                        "fewer make the correlated engine much faster where the background is below the white noise)")
 
 
 def noise_settings(args):
@@ -42,7 +49,9 @@ def noise_settings(args):
     return NoiseSettings(red_components=args.red_components,
                          pulsar_red_noise=not args.no_pulsar_red_noise,
                          common_log10_amplitude=args.common_log10_amplitude,
-                         common_index=args.common_index)
+                         common_index=args.common_index,
+                         common_correlation=getattr(args, "common_correlation", "hellings-downs"),
+                         common_components=getattr(args, "common_components", None))
 
 
 def load_array(args):

@@ -35,7 +35,8 @@ DEMO = {
 #: --quick overrides
 QUICK = {
     "scan": {"nside": 4, "fmax": 5.0e-8, "null_sims": 0},
-    "followup": {"ess": 100.0, "temperatures": 4, "walkers": 18, "adapt_iterations": 60, "max_iterations": 200},
+    "followup": {"ess": 100.0, "temperatures": 4, "walkers": 18, "adapt_iterations": 60, "max_iterations": 200,
+                 "max_temperatures": 4},
     "hosts": {},
     "limits": {"nside": 2, "fmax": 5.0e-8, "quadrature": "fast"},
 }

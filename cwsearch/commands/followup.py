@@ -57,6 +57,9 @@ def add_arguments(parser):
                    help="write the checkpoint every N iterations (default 100)")
     s.add_argument("--adapt-iterations", type=int, default=500, metavar="N",
                    help="adapt the temperature ladder during the first N iterations (default 500)")
+    s.add_argument("--max-temperatures", type=int, default=None, metavar="N",
+                   help="the ladder may grow to N temperatures where neighbours rarely swap (default 3 x "
+                        "--temperatures, at most 40; --max-temperatures equal to --temperatures keeps it fixed)")
     s.add_argument("--resume", action="store_true", help="continue from the checkpoint in the output folder")
     parser.add_argument("--no-plots", action="store_true", help="skip the PNG plots")
     add_noise_arguments(parser)
