@@ -1,4 +1,4 @@
-"""Follow-up wall time on the DESIGN.md §12 bench array for an SNR ≈ 15 injection.
+"""Follow-up wall time on the docs/design.md §12 bench array for an SNR ≈ 15 injection.
 
 ``python -m bench.followup`` injects one binary (full evolution, Earth and
 pulsar terms, optimal SNR 15 measured with the noise engine) into the bench

@@ -3,7 +3,7 @@
 Each case damages one thing (a dataset file, a galaxy catalogue, a run file or
 an option) and runs ``cwsearch.cli.main(argv)``. Expectations (common
 practice for command-line tools, no source; the project's contract in
-DESIGN.md §3 and issue 8):
+docs/design.md §3 and issue 8):
 
 * exit status 2;
 * exactly one line on standard error (argparse's own usage line may precede
@@ -290,7 +290,7 @@ def test_unknown_command(capsys):
 
 
 SIMULATE_CASES = [
-    # 1e11 Msun at 1e-7 Hz merges within hours (t_c formula, Peters 1964; CHECKS.md): far inside a 5-yr span
+    # 1e11 Msun at 1e-7 Hz merges within hours (t_c formula, Peters 1964, Phys. Rev. 136, B1224): far inside a 5-yr span
     ("chirp-mass-coalesces", ["--inject-strain", "1e-14", "--inject-frequency", "1e-7", "--inject-ra", "10",
                               "--inject-dec", "20", "--inject-chirp-mass", "1e11"], ["merges", "inside the data span"]),
     ("pulsars-zero", ["--pulsars", "0"], ["--pulsars"]),

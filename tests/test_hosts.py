@@ -171,11 +171,11 @@ def test_reweighting_equals_direct_numerical_integration(tmp_path, strain_prior)
 
     def host_ratio(lnmc, lnh, lnf):
         p_mass = stats.norm.pdf(lnmc, ln_mc_host, s_mc) * r_mc
-        p_dist = (stats.norm.pdf(np.log(distance(lnmc, lnh, lnf)), math.log(dist), derr / dist)
+        probability_by_distance = (stats.norm.pdf(np.log(distance(lnmc, lnh, lnf)), math.log(dist), derr / dist)
                   * inv_strain_prior(lnh))
         orbital_days = 2 / np.exp(lnf) / 86400
         p_per = stats.norm.pdf(orbital_days, period, perr) * orbital_days * r_f
-        return p_mass * p_dist * p_per
+        return p_mass * probability_by_distance * p_per
 
     # tensor-grid trapezoid over +-7 sigma (spacing < 0.5 of every Gaussian width in the integrand, where
     # the trapezoid rule converges exponentially)

@@ -197,7 +197,7 @@ def test_bayesian_limit_covers_weak_injection(network):
 # ---------------------------------------------------------------- chirp-mass inversion
 def test_chirp_mass_limit_inverts_sesana_vecchio_strain():
     # check: h0 = 2 (G Mc)^(5/3) (pi f)^(2/3) / (c^4 d_L) — Sesana & Vecchio 2010, PRD 81, 104008;
-    # Mc = 1e9 Msun, f = 10 nHz, d_L = 100 Mpc gives 2.76e-15 (CHECKS.md, computed with astropy)
+    # Mc = 1e9 Msun, f = 10 nHz, d_L = 100 Mpc gives 2.76e-15 (Sesana & Vecchio 2010 form, computed with astropy)
     import astropy.constants as const
     import astropy.units as u
 

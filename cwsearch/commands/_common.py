@@ -14,7 +14,7 @@ def add_dataset_arguments(parser, out_required=True):
 
 
 def add_noise_arguments(parser):
-    """Noise-model options (DESIGN.md §5)."""
+    """Noise-model options (docs/design.md §5)."""
     g = parser.add_argument_group("noise model")
     g.add_argument("--red-components", type=int, default=30, metavar="K",
                    help="Fourier frequencies k/T_span, k=1..K, for red processes (default 30)")

@@ -1,6 +1,6 @@
 """Reading, validating and writing a dataset folder (the input contract).
 
-A dataset is a folder (DESIGN.md §3)::
+A dataset is a folder (docs/design.md §3)::
 
     mydata/
       pulsars.ecsv          one row per pulsar

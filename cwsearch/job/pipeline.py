@@ -1,7 +1,7 @@
 """The whole job in one call: scan → follow-up → hosts → limits, with skipping, resume and provenance.
 
 :func:`run_pipeline` takes a validated :class:`~cwsearch.job.config.RunConfig`
-and fills its run folder (DESIGN.md §11)::
+and fills its run folder (docs/design.md §11)::
 
     RUN_DIR/
       run.toml          the fully resolved configuration
@@ -588,7 +588,7 @@ def _read_table(path):
 def headline_result(run_dir, reports=None) -> dict:
     """The headline: candidate found or not and its significance, best host, best limit.
 
-    Read from the stage output files of DESIGN.md §11, so it works for any
+    Read from the stage output files of docs/design.md §11, so it works for any
     run folder.
     """
     import numpy as np

@@ -1,6 +1,6 @@
 """The run report: one self-contained HTML page per run folder.
 
-:func:`build_report` reads a run folder (DESIGN.md §11) and writes
+:func:`build_report` reads a run folder (docs/design.md §11) and writes
 ``report.html`` next to it: every PNG of every stage folder embedded as a
 base64 ``data:`` URI, tables written out, inline CSS, no scripts and no
 links to anything outside the page, so it opens offline, can be mailed as

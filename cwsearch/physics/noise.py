@@ -1,6 +1,6 @@
 """The noise-weighting engine: the one place that inverts a covariance.
 
-For each pulsar the covariance is ``C = N + T B T^T`` (DESIGN.md §5):
+For each pulsar the covariance is ``C = N + T B T^T`` (docs/design.md §5):
 ``N`` diagonal white noise per backend, ``T = [design matrix | Fourier
 basis]`` and ``B`` the prior variances, infinite on the timing-model columns
 (analytic marginalisation) and a power law on the Fourier columns

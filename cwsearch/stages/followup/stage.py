@@ -1,4 +1,4 @@
-"""Follow-up stage: a parallel-tempered MCMC fit of scan candidates (DESIGN.md §7–8).
+"""Follow-up stage: a parallel-tempered MCMC fit of scan candidates (docs/design.md §7–8).
 
 For each candidate (a row of ``RUN_DIR/scan/candidates.ecsv``, an explicit
 target, or the whole sky) the stage samples the 8 global parameters of one
@@ -8,7 +8,7 @@ posterior samples, a summary with the signal-versus-noise log Bayes factor,
 and plots, into ``RUN_DIR/followup/`` (``RUN_DIR/followup/candidate_K/``
 when several candidates are followed).
 
-Priors (DESIGN.md §8): isotropic sky; log-uniform GW frequency in a window
+Priors (docs/design.md §8): isotropic sky; log-uniform GW frequency in a window
 of ``frequency_window`` bins of 1/T_span either side of the target (in the
 band [1/T_span, ``max_frequency``] for ``all_sky``); log-uniform chirp mass
 in [1e7, 1e11] Msun, excluding binaries that merge within the data;
@@ -257,11 +257,11 @@ def earth_term_start(engine, target: Target) -> Target:
     proj = fstat.project(engine, np.array([target.frequency]))
     fplus, fcross = fstat.sky_patterns(proj, target.ra, target.dec)
     _, amp = fstat.fe_with_amplitudes(proj, fplus, fcross)
-    strain, cos_inc, psi, phase = (float(np.ravel(v)[0]) for v in
+    strain, cos_inclination, psi, phase = (float(np.ravel(v)[0]) for v in
                                    fstat.amplitudes_to_parameters(amp[0, 0], target.frequency))
     if not (np.isfinite(strain) and strain > 0):
         return target
-    return replace(target, strain=strain, inclination=float(np.arccos(np.clip(cos_inc, -1, 1))),
+    return replace(target, strain=strain, inclination=float(np.arccos(np.clip(cos_inclination, -1, 1))),
                    polarization=psi, phase=phase)
 
 

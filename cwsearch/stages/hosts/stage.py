@@ -1,6 +1,6 @@
 """Host-galaxy crossmatch: which catalogued galaxy could host a candidate binary?
 
-Method (``shared/DESIGN.md`` §10, the README (Host galaxies))
+Method (``docs/design.md`` §10, the README (Host galaxies))
 ---------------------------------------------------------------
 For each galaxy *g* the Bayes factor of "the binary lives in *g*" against
 the search prior is the posterior average of the prior ratio,
@@ -83,11 +83,11 @@ import numpy as np
 from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
 
-#: search prior of the follow-up (DESIGN.md §8): log-uniform chirp mass range [Msun]
+#: search prior of the follow-up (docs/design.md §8): log-uniform chirp mass range [Msun]
 SEARCH_CHIRP_MASS_RANGE = (1e7, 1e11)
 #: log-uniform strain range assumed for the search prior (cancels in probabilities)
 SEARCH_STRAIN_RANGE = (1e-18, 1e-11)
-#: top of the search frequency band [Hz] (DESIGN.md §6 default cap); the bottom is 1/T_span
+#: top of the search frequency band [Hz] (docs/design.md §6 default cap); the bottom is 1/T_span
 SEARCH_FREQUENCY_MAX = 1e-6
 #: observed span assumed when neither the array nor ``observed_span`` gives one [yr]
 DEFAULT_SPAN_YEARS = 15.0
@@ -903,7 +903,7 @@ def rank_candidate(loc, catalog, model, options, rng, *, n_catalogue):
         "localisation_description": loc.description,
         "localisation_source": loc.source,
         "n_samples": len(loc),
-        "search_prior": {"source": "follow-up summary.json" if loc.prior else "defaults (DESIGN.md section 8)",
+        "search_prior": {"source": "follow-up summary.json" if loc.prior else "defaults (docs/design.md §8)",
                          "frequency_band_hz": list(model.frequency_band),
                          "chirp_mass_range_msun": list(model.chirp_mass_range),
                          "strain_range": list(model.strain_range), "strain_prior": model.strain_prior},

@@ -1,7 +1,7 @@
 """The all-sky hunt: Fe and Fp over frequency × sky, candidates and false-alarm probabilities.
 
 :func:`run_scan` scans every frequency of a uniform grid (from 1/T_span,
-spacing 1/(oversample·T_span)) on a HEALPix sky (DESIGN.md §6) and writes
+spacing 1/(oversample·T_span)) on a HEALPix sky (docs/design.md §6) and writes
 ``run_dir/scan/``:
 
 ``candidates.ecsv``
@@ -613,7 +613,7 @@ def _candidates(options, array, proj, frequencies, fe_full, fp, fp_dof, ra, dec,
             fe[i], amps[i] = val[0, 0], amp[0, 0]
         order = np.argsort(-fe, kind="stable")
         pix, fidx, fe, amps = pix[order], fidx[order], fe[order], amps[order]
-        strain, cos_inc, psi, phase = fstat.amplitudes_to_parameters(amps, frequencies[fidx])
+        strain, cos_inclination, psi, phase = fstat.amplitudes_to_parameters(amps, frequencies[fidx])
         table["rank"] = np.arange(1, pix.size + 1)
         table["frequency"] = frequencies[fidx]
         table["frequency"].unit = "Hz"
@@ -632,7 +632,7 @@ def _candidates(options, array, proj, frequencies, fe_full, fp, fp_dof, ra, dec,
         table["fp"] = fp[fidx]
         table["fp_fap"] = trials_fap(fp_fap(fp[fidx], fp_dof[fidx]), trials.n_frequencies)
         table["strain"] = strain
-        table["inclination"] = np.arccos(np.clip(cos_inc, -1, 1))
+        table["inclination"] = np.arccos(np.clip(cos_inclination, -1, 1))
         table["inclination"].unit = "rad"
         table["polarization"] = psi
         table["polarization"].unit = "rad"
