@@ -321,6 +321,44 @@ def _intervals(table):
     return out
 
 
+#: HEALPix resolution of the posterior sky map (posterior_sky.fits; pixels of 3.36 deg²)
+SKY_MAP_NSIDE = 32
+
+
+def sky_summary(ra_deg, dec_deg, folder=None, nside=SKY_MAP_NSIDE):
+    """Posterior sky position: the direction of the mean unit vector of the samples (immune to the
+    0/360° wrap), the median angular distance of the samples from it, and the 90 % credible area [deg²]
+    (smallest set of HEALPix pixels at ``nside`` holding 90 % of the samples; at least one pixel, so an
+    area below the pixel size means "smaller than one pixel"). With ``folder`` the map is also written
+    as ``posterior_sky.fits`` (HEALPix FITS)."""
+    from ...data.healpix_fits import credible_area, posterior_sky_map, write_healpix_map
+    from ...physics.sky import angular_separation, unit_vectors
+
+    ra, dec = np.radians(np.asarray(ra_deg, dtype=float)), np.radians(np.asarray(dec_deg, dtype=float))
+    ok = np.isfinite(ra) & np.isfinite(dec)
+    ra, dec = ra[ok], dec[ok]
+    if ra.size == 0:
+        return None
+    v = unit_vectors(ra, dec).mean(axis=0)
+    norm = float(np.linalg.norm(v))
+    ra0 = float(np.arctan2(v[1], v[0]) % (2 * np.pi))
+    dec0 = float(np.arcsin(np.clip(v[2] / norm, -1, 1))) if norm > 0 else 0.0
+    sep = np.degrees(angular_separation(ra0, dec0, ra, dec))
+    prob = posterior_sky_map(ra, dec, nside)
+    out = {"ra": float(np.degrees(ra0)), "dec": float(np.degrees(dec0)),
+           "median_offset_deg": float(np.median(sep)), "radius_90_deg": float(np.percentile(sep, 90)),
+           "credible_area_90_deg2": credible_area(prob, 0.9), "map_nside": int(nside),
+           "pixel_area_deg2": float(4 * np.pi / prob.size * (180 / np.pi) ** 2),
+           "method": "mean unit vector of the samples; 90 % area from the smallest set of HEALPix pixels "
+                     "holding 90 % of the samples"}
+    if folder is not None:
+        write_healpix_map(Path(folder) / "posterior_sky.fits", {"PROB": prob}, nside=nside,
+                          units={"PROB": "pix-1"},
+                          description="posterior probability per pixel of the follow-up (sums to 1)")
+        out["map_file"] = "posterior_sky.fits"
+    return out
+
+
 def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
     from ...inference import sampling
     from ...core.fileio import write_table_atomic
@@ -365,6 +403,7 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
         "log_bayes_factor": result.log_evidence,
         "log_bayes_factor_error": result.log_evidence_error,
         "parameters": _intervals(table),
+        "sky": sky_summary(table["ra"], table["dec"], folder),
         "warnings": list(result.warnings),
         "converged": bool(result.converged),
         "stopped_by": result.stopped_by,

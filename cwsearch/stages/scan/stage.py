@@ -547,6 +547,19 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     }
     write_table_atomic(files["spectrum"], spectrum)
     write_table_atomic(files["candidates"], candidates)
+    if want_fe:
+        from ...data.healpix_fits import write_healpix_map
+
+        files["sky_map"] = out / "fe_sky.fits"
+        maps = {"FE_MAX": fe_full.max(axis=1)}
+        extra = {}
+        if len(candidates):
+            k = int(candidates["frequency_index"][0])
+            maps["FE_BEST_FREQ"] = fe_full[:, k]
+            extra = {"BESTFREQ": float(frequencies[k])}
+        write_healpix_map(files["sky_map"], maps, nside=options.nside,
+                          description="FE_MAX: maximum Fe over all scanned frequencies per pixel; FE_BEST_FREQ: "
+                                      "Fe at the best candidate's frequency (BESTFREQ, Hz)", extra=extra)
     if not options.no_plots:
         from . import plots as scan_plots
 
