@@ -586,67 +586,10 @@ def _read_table(path):
 
 
 def headline_result(run_dir, reports=None) -> dict:
-    """The headline: candidate found or not and its significance, best host, best limit.
+    """The headline (see :mod:`cwsearch.job.headline`), read from the stage output files of docs/design.md §11."""
+    from .headline import headline_result as _headline
 
-    Read from the stage output files of docs/design.md §11, so it works for any
-    run folder.
-    """
-    import numpy as np
-
-    run_dir = Path(run_dir)
-    statuses = {r.name: r for r in (reports or [])}
-    head = {"candidate_found": False, "candidate": None, "best_host": None, "best_limit": None}
-
-    fol = _read_json(run_dir / "followup" / "summary.json")
-    fol_rec = read_record(run_dir / "followup")
-    followed = fol_rec.get("summary", {}) if fol_rec and fol_rec.get("status") == "complete" else {}
-    cands = _read_table(run_dir / "scan" / "candidates.ecsv")
-    if cands is not None and len(cands):
-        best = cands[int(np.argmin(cands["fap"]))] if "fap" in cands.colnames else cands[0]
-        cand = {k: _num(best[k]) for k in ("frequency", "ra", "dec", "fe", "fap", "fap_empirical")
-                if k in cands.colnames}
-        threshold = _threshold(run_dir)
-        cand["fap_threshold"] = threshold
-        head["candidate_found"] = bool("fap" in cand and threshold is not None and cand["fap"] < threshold)
-        if isinstance(fol, dict) and fol.get("log_bayes_factor") is not None:
-            bf = fol["log_bayes_factor"]
-            err = fol.get("log_bayes_factor_error", fol.get("log_bayes_factor_err"))
-            if isinstance(bf, list):  # several candidates followed: the first is the best
-                bf = bf[0] if bf else None
-                err = err[0] if isinstance(err, list) and err else None
-            cand["log_bayes_factor"] = _num(bf)
-            if err is not None:
-                cand["log_bayes_factor_err"] = _num(err)
-        for key in ("log_bayes_factor", "log_bayes_factor_err"):
-            if key not in cand and key in followed:
-                cand[key] = _num(followed[key])
-        head["candidate"] = cand
-    hosts = _read_table(run_dir / "hosts" / "ranking.ecsv")
-    if hosts is not None and len(hosts) and "probability" in hosts.colnames:
-        i = int(np.argmax(hosts["probability"]))
-        head["best_host"] = {"name": str(hosts["name"][i]), "probability": _num(hosts["probability"][i])}
-    lim = _read_table(run_dir / "limits" / "frequency_limits.ecsv")
-    if lim is not None and len(lim) and "strain_95" in lim.colnames:
-        i = int(np.nanargmin(np.asarray(lim["strain_95"], dtype=float)))
-        head["best_limit"] = {"frequency": _num(lim["frequency"][i]), "strain_95": _num(lim["strain_95"][i])}
-    if statuses:
-        head["stages"] = {name: r.status for name, r in statuses.items()}
-    return head
-
-
-def _threshold(run_dir):
-    rec = read_record(Path(run_dir) / "followup")
-    if rec:
-        thr = rec.get("inputs", {}).get("options", {}).get("fap_threshold")
-        if thr is not None:
-            return float(thr)
-    try:
-        import tomllib
-
-        cfg = tomllib.loads((Path(run_dir) / "run.toml").read_text(encoding="utf-8"))
-        return float(cfg.get("followup", {}).get("fap_threshold", 0.01))
-    except (OSError, ValueError):
-        return 0.01
+    return _headline(run_dir, reports)
 
 
 def _num(v):
@@ -660,31 +603,10 @@ def _num(v):
 
 
 def format_headline(head: dict) -> str:
-    """The headline as a few plain-English lines."""
-    lines = []
-    cand = head.get("candidate")
-    if head.get("candidate_found") and cand:
-        line = (f"Candidate found: f_gw = {cand['frequency']:.4g} Hz at ra = {cand.get('ra', float('nan')):.1f} deg, "
-                f"dec = {cand.get('dec', float('nan')):.1f} deg, false-alarm probability {cand['fap']:.2g}")
-        if cand.get("log_bayes_factor") is not None:
-            line += f", ln Bayes factor {cand['log_bayes_factor']:.1f}"
-            if cand.get("log_bayes_factor_err") is not None:
-                line += f" ± {cand['log_bayes_factor_err']:.1f}"
-        lines.append(line + ".")
-    elif cand:
-        lines.append(f"No candidate: the strongest peak (f_gw = {cand['frequency']:.4g} Hz) has false-alarm "
-                     f"probability {cand.get('fap', float('nan')):.2g}, above the threshold "
-                     f"{cand.get('fap_threshold')}.")
-    else:
-        lines.append("No candidate (no scan result).")
-    host = head.get("best_host")
-    if host:
-        lines.append(f"Best host: {host['name']} with probability {host['probability']:.2f}.")
-    lim = head.get("best_limit")
-    if lim:
-        lines.append(f"Sky-averaged 95% strain upper limit: {lim['strain_95']:.3g} at {lim['frequency']:.4g} Hz "
-                     "(most sensitive frequency).")
-    return "\n".join(lines)
+    """The headline as a few plain-English lines (see :mod:`cwsearch.job.headline`)."""
+    from .headline import format_headline as _format
+
+    return _format(head)
 
 
 # ---------------------------------------------------------------- the real stages
