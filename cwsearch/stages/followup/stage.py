@@ -321,16 +321,20 @@ def _intervals(table):
     return out
 
 
-#: HEALPix resolution of the posterior sky map (posterior_sky.fits; pixels of 3.36 deg²)
-SKY_MAP_NSIDE = 32
+#: finest HEALPix resolution of the posterior sky map (posterior_sky.fits; nside 64: 0.84 deg² pixels)
+SKY_MAP_NSIDE = 64
+#: the map is coarsened until the occupied pixels hold at least this many samples on average: a histogram
+#: of few samples puts each in its own pixel and would make the credible area far too small
+SAMPLES_PER_PIXEL = 10
 
 
 def sky_summary(ra_deg, dec_deg, folder=None, nside=SKY_MAP_NSIDE):
     """Posterior sky position: the direction of the mean unit vector of the samples (immune to the
-    0/360° wrap), the median angular distance of the samples from it, and the 90 % credible area [deg²]
-    (smallest set of HEALPix pixels at ``nside`` holding 90 % of the samples; at least one pixel, so an
-    area below the pixel size means "smaller than one pixel"). With ``folder`` the map is also written
-    as ``posterior_sky.fits`` (HEALPix FITS)."""
+    0/360° wrap), the radius around it holding 90 % of the samples, and the 90 % credible area [deg²]:
+    the smallest set of HEALPix pixels holding 90 % of the samples, at the finest nside (≤ ``nside``)
+    whose occupied pixels hold :data:`SAMPLES_PER_PIXEL` samples on average (so a poorly sampled
+    posterior gets a coarse map and an honest, large area). With ``folder`` the map is also written as
+    ``posterior_sky.fits`` (HEALPix FITS)."""
     from ...data.healpix_fits import credible_area, posterior_sky_map, write_healpix_map
     from ...physics.sky import angular_separation, unit_vectors
 
@@ -344,13 +348,19 @@ def sky_summary(ra_deg, dec_deg, folder=None, nside=SKY_MAP_NSIDE):
     ra0 = float(np.arctan2(v[1], v[0]) % (2 * np.pi))
     dec0 = float(np.arcsin(np.clip(v[2] / norm, -1, 1))) if norm > 0 else 0.0
     sep = np.degrees(angular_separation(ra0, dec0, ra, dec))
-    prob = posterior_sky_map(ra, dec, nside)
+    while True:
+        prob = posterior_sky_map(ra, dec, nside)
+        if nside == 1 or ra.size / max(np.count_nonzero(prob), 1) >= SAMPLES_PER_PIXEL:
+            break
+        nside //= 2
     out = {"ra": float(np.degrees(ra0)), "dec": float(np.degrees(dec0)),
            "median_offset_deg": float(np.median(sep)), "radius_90_deg": float(np.percentile(sep, 90)),
            "credible_area_90_deg2": credible_area(prob, 0.9), "map_nside": int(nside),
            "pixel_area_deg2": float(4 * np.pi / prob.size * (180 / np.pi) ** 2),
+           "n_samples": int(ra.size),
            "method": "mean unit vector of the samples; 90 % area from the smallest set of HEALPix pixels "
-                     "holding 90 % of the samples"}
+                     f"holding 90 % of the samples, at the finest nside with >= {SAMPLES_PER_PIXEL} samples per "
+                     "occupied pixel"}
     if folder is not None:
         write_healpix_map(Path(folder) / "posterior_sky.fits", {"PROB": prob}, nside=nside,
                           units={"PROB": "pix-1"},
@@ -459,7 +469,7 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
         if options.plots:
             from .plots import plot_followup
 
-            plot_followup(folder, table, result, likelihood, array, target)
+            plot_followup(folder, table, result, likelihood, array, target, sky=summary.get("sky"))
         summaries.append(summary)
         folders.append(folder)
         runs.append(result)
