@@ -74,8 +74,9 @@ def _zoom_panel(ax, values, nside, centre, radius, *, cmap, norm, contours, puls
         ax.scatter(x, y, marker=mark.get("marker", "x"), s=mark.get("size", 60), c=mark.get("color", "red"),
                    zorder=4, edgecolors=mark.get("edge", None))
         if mark.get("text"):
-            ax.annotate(mark["text"], (float(np.atleast_1d(x)[0]), float(np.atleast_1d(y)[0])),
-                        xytext=(4, 4), textcoords="offset points", fontsize=7)
+            label = ax.annotate(mark["text"], (float(np.atleast_1d(x)[0]), float(np.atleast_1d(y)[0])),
+                                xytext=(6, 6), textcoords="offset points", fontsize=8)
+            _outlined([label])
     if truth is not None:
         x, y = near(*truth)
         ax.scatter(x, y, marker="P", s=110, c="#e6007e", edgecolors="black", linewidths=0.7, zorder=5)

@@ -27,8 +27,8 @@ INJECTION_FILE = "injection.json"
 def injected_binary(source):
     """The truth for ``source``: a dataset folder, a run folder (via its dataset.json) or an Array."""
     folder = getattr(source, "source", source)
-    if folder is None:
-        return None
+    if not isinstance(folder, (str, Path)):
+        return None   # an Array built in memory (not read from a folder): no injection.json to read
     folder = Path(folder)
     if not (folder / INJECTION_FILE).is_file() and (folder / "dataset.json").is_file():
         try:

@@ -983,7 +983,8 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
         if several:
             write_table_atomic(folder / "ranking.ecsv", res.ranking)
             write_json_atomic(folder / "hosts_summary.json", res.summary)
-        res.plots = host_plots.make_plots(folder, res, model, options) if not options.no_plots else []
+        res.plots = (host_plots.make_plots(folder, res, model, options, truth=_truth(array))
+                     if not options.no_plots else [])
     ranking = vstack([r.ranking for r in results], metadata_conflicts="silent") if several else results[0].ranking
     write_table_atomic(out_dir / "ranking.ecsv", ranking)
     first = results[0].summary
@@ -1041,3 +1042,10 @@ def format_table(result: HostsResult, top=10) -> str:
 
 def summary_json(result: HostsResult) -> str:
     return json.dumps(result.summary, indent=2, default=lambda o: o.item() if hasattr(o, "item") else str(o))
+
+
+def _truth(array):
+    """The injected binary of a simulated dataset (for over-plotting), or None."""
+    from ...data.truth import injected_binary
+
+    return injected_binary(array)

@@ -547,6 +547,17 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     }
     write_table_atomic(files["spectrum"], spectrum)
     write_table_atomic(files["candidates"], candidates)
+    if null_fe is not None or null_fp is not None:
+        null_table = Table()
+        null_table["simulation"] = np.arange(len(null_fe if null_fe is not None else null_fp))
+        if null_fe is not None:
+            null_table["fe_max"] = np.asarray(null_fe, dtype=float)
+        if null_fp is not None:
+            null_table["fp_max"] = np.asarray(null_fp, dtype=float)
+        null_table.meta["description"] = ("loudest Fe (over sky and frequency) and loudest Fp (over frequency) of "
+                                          "each noise-only scan of the same array and noise model")
+        files["null_maxima"] = out / "null_maxima.ecsv"
+        write_table_atomic(files["null_maxima"], null_table)
     if want_fe:
         from ...data.healpix_fits import write_healpix_map
 
@@ -571,6 +582,11 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
             files["sky_plot"] = out / "sky_fe.png"
             scan_plots.sky_plot(files["sky_plot"], fe_full[:, k], options.nside, frequencies[k], array,
                                 candidates[candidates["frequency_index"] == k])
+        null = null_fe if want_fe else null_fp
+        if null is not None and len(candidates):
+            files["null_plot"] = out / "null_fe.png"
+            observed = float(np.nanmax(candidates["fe" if want_fe else "fp"]))
+            scan_plots.null_plot(files["null_plot"], null, observed, statistic="Fe" if want_fe else "Fp")
     summary["files"] = {k: v.name for k, v in files.items()}
     summary["seconds"] = round(time.time() - started, 3)
     write_json_atomic(files["summary"], summary)
