@@ -775,6 +775,8 @@ def _limits(run: _Run):
                              ("sky_frequency", "sky map at frequency [Hz]", "g4")):
         if summ.get(key) is not None:
             s["items"].append((label, fmt_number(summ[key], kind)))
+    if summ.get("fmax_note"):
+        s["paragraphs"].append("Note: " + summ["fmax_note"] + ".")
     for method in ("bayes", "frequentist"):
         m = summ.get(method)
         if isinstance(m, dict):

@@ -1118,6 +1118,12 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     if fmin is not None and options.fmax is None and not fmax > fmin:
         fmax = default_max_frequency(array)
     frequencies = frequency_grid(array, fmin=fmin, fmax=fmax, oversample=int(options.oversample))
+    fmax_note = None
+    if options.fmax is None and fmax < default_max_frequency(array):
+        fmax_note = (f"highest frequency {fmax:.3g} Hz by default, lower than the scan's default "
+                     f"{default_max_frequency(array):.3g} Hz (1/(2 x median TOA spacing), at most 1e-6 Hz): every "
+                     "limit frequency costs a quadrature over every sky pixel, and limits matter most where the "
+                     "array is sensitive; set fmax (--fmax) to go higher")
     workers = None if not options.workers else int(options.workers)
     requested_sky_index = None
     if options.sky_frequency is not None:
@@ -1249,6 +1255,8 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
         "engine": res["engine"],
         "wall_time": round(time.time() - started, 3),
     }
+    if fmax_note:
+        summary["fmax_note"] = fmax_note
     if "bayes" in averages:
         summary["bayes"] = {"strain_95_at_best_frequency": _finite_or_none(averages["bayes"][best]),
                             "strain_95_min": _finite_or_none(np.nanmin(averages["bayes"])),
