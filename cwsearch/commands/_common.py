@@ -24,6 +24,9 @@ def add_noise_arguments(parser):
                    help="add a common red process with this log10 amplitude (default: none)")
     g.add_argument("--common-index", type=float, default=13 / 3, metavar="GAMMA",
                    help="spectral index of the common process (default 13/3)")
+    g.add_argument("--no-white-noise-factors", action="store_true",
+                   help="ignore the dataset's per-backend white-noise factors (noise.ecsv sigma_scale, "
+                        "sigma_added); run-file key [noise] white_noise_factors")
 
 
 def noise_settings(args):
@@ -33,7 +36,8 @@ def noise_settings(args):
     return NoiseSettings(red_components=args.red_components,
                          pulsar_red_noise=not args.no_pulsar_red_noise,
                          common_log10_amplitude=args.common_log10_amplitude,
-                         common_index=args.common_index)
+                         common_index=args.common_index,
+                         white_noise_factors=not getattr(args, "no_white_noise_factors", False))
 
 
 def load_array(args):

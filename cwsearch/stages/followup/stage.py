@@ -54,7 +54,7 @@ SAMPLE_COLUMNS = ("log_likelihood", "log_prior", "iteration", "walker")
 class FollowupOptions:
     """Options of the follow-up stage; names equal the CLI options (dashes -> underscores)."""
 
-    candidate: int | None = None        # 1-based row of the candidates file (None: the best `top`)
+    candidate: int | str | None = None  # row K (1-based) of the candidates file, or candidate_K (None: best `top`)
     top: int = 1                        # how many of the best candidates to follow
     frequency: float | None = None      # explicit target [Hz] (with ra, dec [deg])
     ra: float | None = None
@@ -223,9 +223,16 @@ def select_targets(run_dir, options: FollowupOptions):
                        source={"frequency": options.frequency, "ra": options.ra, "dec": options.dec})]
     table, path = read_candidates(run_dir)
     if options.candidate is not None:
-        if not 1 <= options.candidate <= len(table):
-            raise InputError(f"--candidate must be between 1 and {len(table)}", file=path)
-        rows = [options.candidate - 1]
+        from ...core.candidates import candidate_row
+
+        try:
+            row = candidate_row(options.candidate)
+        except ValueError as exc:
+            raise InputError(f"--candidate: {exc}", file=path) from None
+        if not 1 <= row <= len(table):
+            raise InputError(f"--candidate must be between 1 and {len(table)} (or candidate_1 .. "
+                             f"candidate_{len(table)})", file=path)
+        rows = [row - 1]
     else:
         order = np.argsort(-np.asarray(table["fe"], dtype=float), kind="stable") if "fe" in table.colnames \
             else np.arange(len(table))

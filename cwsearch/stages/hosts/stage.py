@@ -524,11 +524,13 @@ def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000, *, a
         raise InputError("no scan candidates to match", file=path)
     fe_all = np.asarray(table["fe"], float)
     if options.candidate is not None:
+        from ...core.candidates import candidate_row
+
         try:
-            row = int(options.candidate)
+            row = candidate_row(options.candidate)
         except ValueError:
-            raise InputError(f"--candidate {options.candidate!r}: give a scan candidate row number (1 = best)",
-                             file=path) from None
+            raise InputError(f"--candidate {options.candidate!r}: give a scan candidate row number (1 = best) "
+                             "or its name candidate_K", file=path) from None
         if not 1 <= row <= len(table):
             raise InputError(f"--candidate {row}: the scan has {len(table)} candidate(s)", file=path)
         i = row - 1
@@ -592,7 +594,7 @@ def find_localisations(run_dir, options, span_seconds, rng, *, array=None, noise
                 found.append((sub / "posterior.ecsv", sub.name))
     if found:
         if options.candidate is not None:
-            found = [f for f in found if f[1] == str(options.candidate)]
+            found = [f for f in found if _same_candidate(f, options.candidate)]
             if not found:
                 raise InputError(f"--candidate {options.candidate}: no follow-up folder of that name", file=follow)
         return [read_posterior(p, label) for p, label in found]
@@ -1049,3 +1051,27 @@ def _truth(array):
     from ...data.truth import injected_binary
 
     return injected_binary(array)
+
+
+def _same_candidate(found, wanted) -> bool:
+    """Whether a follow-up posterior ``(path, label)`` is the candidate named ``wanted`` (folder name, row K or
+    candidate_K; a single follow-up in followup/ itself is matched by the scan row it started from)."""
+    import json
+
+    from ...core.candidates import candidate_name, candidate_row
+
+    path, label = found
+    if label == str(wanted):
+        return True
+    try:
+        row = candidate_row(wanted)
+    except ValueError:
+        return False
+    if label == candidate_name(row):
+        return True
+    try:
+        start = json.loads((path.parent / "summary.json").read_text(encoding="utf-8")).get("start") or {}
+    except (OSError, ValueError):
+        return False
+    rank = (start.get("candidate_row") or {}).get("rank") if isinstance(start.get("candidate_row"), dict) else None
+    return rank is not None and int(rank) == row
