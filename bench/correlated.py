@@ -2,7 +2,7 @@
 
 Prints, all measured in this run:
 
-(a) build time and peak memory of :class:`cwsearch.correlated.ArrayWeighting` on
+(a) build time and peak memory of :class:`cwsearch.physics.correlated.ArrayWeighting` on
     116 pulsars × 2,000 TOAs with K = 30 Fourier pairs (Hellings–Downs), against the
     build of the per-pulsar engine alone (the part it cannot avoid). Peak memory:
     ``tracemalloc`` (numpy allocations, in a second build) and the growth of the
@@ -13,7 +13,7 @@ Prints, all measured in this run:
     kernel), and their ratio (target ≤ 3).
 (c) full-shape ln-likelihood evaluations/s of :class:`CorrelatedLikelihood` on a
     20-pulsar × 200-TOA array (batches of 160 walkers), against the uncorrelated
-    :class:`cwsearch.likelihood.Likelihood` on the same array, same path and batches.
+    :class:`cwsearch.inference.likelihood.Likelihood` on the same array, same path and batches.
 
 Options: ``--skip-build``, ``--skip-scan``, ``--skip-likelihood``, ``--components``
 (K of the likelihood array's common process, default 30). The machine has 2 cores
@@ -47,9 +47,9 @@ def _header():
 
 
 def bench_build():
-    from cwsearch.correlated import ArrayWeighting, CommonProcess
-    from cwsearch.noise import NoiseSettings, NoiseWeighting
-    from cwsearch.simulate import invented_array, simulated_array
+    from cwsearch.physics.correlated import ArrayWeighting, CommonProcess
+    from cwsearch.physics.noise import NoiseSettings, NoiseWeighting
+    from cwsearch.physics.simulate import invented_array, simulated_array
 
     base = invented_array(n_pulsars=116, years=15.0, seed=7, toas_per_pulsar=2000, red_noise_fraction=1.0,
                           full_span=True)
@@ -84,9 +84,10 @@ def bench_build():
 
 def bench_scan():
     from bench._array import COMMON_INDEX, COMMON_LOG10_AMPLITUDE, RED_COMPONENTS, bench_array
-    from cwsearch import fstat, scan
-    from cwsearch.correlated import ArrayWeighting, CommonProcess, fe_sky_correlated
-    from cwsearch.noise import NoiseSettings, NoiseWeighting
+    from cwsearch.physics import fstat
+    from cwsearch.stages.scan import stage as scan
+    from cwsearch.physics.correlated import ArrayWeighting, CommonProcess, fe_sky_correlated
+    from cwsearch.physics.noise import NoiseSettings, NoiseWeighting
 
     array, _ = bench_array()
     settings = NoiseSettings(red_components=RED_COMPONENTS)
@@ -129,10 +130,11 @@ def bench_scan():
 
 
 def bench_likelihood(components=30, walkers=160, repeats=5):
-    from cwsearch.correlated import ArrayWeighting, CommonProcess, CorrelatedLikelihood
-    from cwsearch.likelihood import Likelihood
-    from cwsearch.noise import NoiseSettings, NoiseWeighting
-    from cwsearch.simulate import invented_array, simulated_array
+    from cwsearch.inference.correlated_likelihood import CorrelatedLikelihood
+    from cwsearch.physics.correlated import ArrayWeighting, CommonProcess
+    from cwsearch.inference.likelihood import Likelihood
+    from cwsearch.physics.noise import NoiseSettings, NoiseWeighting
+    from cwsearch.physics.simulate import invented_array, simulated_array
 
     base = invented_array(n_pulsars=20, years=15.0, seed=11, toas_per_pulsar=200, red_noise_fraction=0.3,
                           full_span=True)

@@ -49,7 +49,7 @@ def main(argv=None):
     data = array.with_residuals([simulate.postfit(p, p.residuals + s) for p, s in zip(array, signal)])
     options = FollowupOptions(frequency=binary.gw_frequency * 1.005, ra=np.degrees(binary.ra) + 1.5,
                               dec=np.degrees(binary.dec) - 1.5, ess=args.ess, max_time=args.max_time,
-                              walkers=args.walkers, temperatures=args.temperatures, plots=False)
+                              walkers=args.walkers, temperatures=args.temperatures, no_plots=True)
     out = args.out or tempfile.mkdtemp(prefix="cwsearch-bench-followup-")
     t = time.perf_counter()
     result = run_followup(data, out, options, noise=noise, seed=1, progress=True)

@@ -17,8 +17,10 @@ import errno
 import importlib
 import os
 import sys
+import traceback
 
 from . import __version__
+from .core.errors import InputError
 
 #: command name -> one-line summary (the module is cwsearch.commands.<name>)
 COMMANDS = {
@@ -84,8 +86,6 @@ def main(argv=None) -> int:
 
 def run_command(func, args) -> int:
     """Run ``func(args)``, mapping user errors to exit 2 and crashes to exit 1."""
-    from .core.errors import InputError
-
     try:
         return int(func(args) or 0)
     except InputError as exc:
@@ -113,8 +113,6 @@ _CANNOT_WRITE = _NO_SPACE | {errno.EROFS, errno.EACCES}
 
 def _internal_error() -> int:
     """Show the traceback of the exception being handled; exit status 1."""
-    import traceback
-
     traceback.print_exc()
     print("cwsearch: internal error (please report it with the traceback above)", file=sys.stderr)
     return 1
@@ -140,3 +138,6 @@ def _failed_path(exc: OSError) -> str:
 
 if __name__ == "__main__":  # pragma: no cover
     sys.exit(main())
+
+
+__all__ = ["COMMANDS", "main", "run_command"]

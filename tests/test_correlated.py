@@ -17,12 +17,13 @@ import scipy.linalg
 import scipy.stats
 from astropy import units as u
 
-from cwsearch import fstat, waveform
-from cwsearch.correlated import (ArrayWeighting, CommonProcess, CorrelatedLikelihood, correlated_network,
-                                 correlation_factor, correlation_matrix, fe_sky_correlated, fp_correlated)
-from cwsearch.model import Array, Pulsar, PulsarNoise
-from cwsearch.noise import NoiseSettings, NoiseWeighting
-from cwsearch.simulate import correlated_background
+from cwsearch.physics import fstat, waveform
+from cwsearch.inference.correlated_likelihood import CorrelatedLikelihood
+from cwsearch.physics.correlated import (ArrayWeighting, CommonProcess, correlated_network, correlation_factor,
+                                         correlation_matrix, fe_sky_correlated, fp_correlated)
+from cwsearch.data.model import Array, Pulsar, PulsarNoise
+from cwsearch.physics.noise import NoiseSettings, NoiseWeighting
+from cwsearch.physics.simulate import correlated_background
 
 YEAR_FREQ = 1 / (1 * u.yr).to_value(u.s)
 RTOL = 1e-8
@@ -413,7 +414,7 @@ def test_marginalised_likelihood_error_against_exact_integral(evolution):
 def test_uncorrelated_likelihood_reproduces_per_pulsar_likelihood():
     """Γ = identity: the correlated likelihood (mean field with zero coupling) equals the existing
     per-pulsar likelihood with the common process in each Fourier prior (consistency check)."""
-    from cwsearch.likelihood import Likelihood
+    from cwsearch.inference.likelihood import Likelihood
 
     arr = _array(seed=41, n_pulsars=4, design=False, sigma=1e-7)
     k = SETTINGS.red_components

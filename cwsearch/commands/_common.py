@@ -31,6 +31,7 @@ def add_noise_arguments(parser):
 
 def noise_settings(args):
     """:class:`~cwsearch.physics.noise.NoiseSettings` from parsed noise options."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..physics.noise import NoiseSettings
 
     return NoiseSettings(red_components=args.red_components,
@@ -42,6 +43,7 @@ def noise_settings(args):
 
 def load_array(args):
     """Read and validate the dataset named on the command line."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..data.dataset import read_dataset
 
     return read_dataset(args.dataset)

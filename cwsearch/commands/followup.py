@@ -2,6 +2,12 @@
 
 from __future__ import annotations
 
+import json
+from dataclasses import fields, replace
+from pathlib import Path
+
+from ..core.errors import InputError
+
 from ._common import add_dataset_arguments, add_noise_arguments, load_array, noise_settings
 
 DESCRIPTION = (
@@ -60,19 +66,16 @@ def add_arguments(parser):
     s.add_argument("--adapt-iterations", type=int, default=500, metavar="N",
                    help="adapt the temperature ladder during the first N iterations (default 500)")
     s.add_argument("--resume", action="store_true", help="continue from the checkpoint in the output folder")
-    parser.add_argument("--no-plots", dest="plots", action="store_false", help="skip the PNG plots")
+    parser.add_argument("--no-plots", action="store_true", help="skip the PNG plots")
     add_noise_arguments(parser)
 
 
 def threshold_top(run_dir, fap_threshold, max_candidates) -> int:
     """How many of the best scan candidates have an analytic FAP below ``fap_threshold`` (at most
     ``max_candidates``; at least 1 is an error message, not a silent empty run)."""
-    from pathlib import Path
-
+    # lazy: the numerical code behind a command's run (keeps `cwsearch --help` fast)
     import numpy as np
-
-    from ..core.errors import InputError
-    from ..job.pipeline import _read_table
+    from ..job.runfolder import read_table as _read_table
 
     path = Path(run_dir) / "scan" / "candidates.ecsv"
     table = _read_table(path) if path.is_file() else None
@@ -87,15 +90,11 @@ def threshold_top(run_dir, fap_threshold, max_candidates) -> int:
 
 
 def run(args) -> int:
-    import json
-    from dataclasses import fields
-
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..stages.followup.stage import FollowupOptions, run_followup
 
     options = FollowupOptions(**{f.name: getattr(args, f.name) for f in fields(FollowupOptions)})
     if args.fap_threshold is not None or args.max_candidates is not None:
-        from dataclasses import replace
-
         options = replace(options, top=threshold_top(args.out, args.fap_threshold,
                                                      3 if args.max_candidates is None else args.max_candidates))
     array = load_array(args)
@@ -122,3 +121,6 @@ def run(args) -> int:
                                 result.summary["log_bayes_factor_error"]):
                 print(f"  {t}: ln Bayes factor {lb:.2f} ± {e:.2f}")
     return 0
+
+
+__all__ = ["DESCRIPTION", "EXAMPLE", "add_arguments", "run"]

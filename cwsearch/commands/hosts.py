@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+import sys
+
+from ..core.errors import InputError
+
 DESCRIPTION = (
     "Rank the galaxies of a catalogue as possible hosts of the run's candidate binary. Uses the follow-up "
     "posterior (RUN_DIR/followup/) when there is one, otherwise the best scan candidate with a coarse sky "
@@ -62,10 +66,6 @@ def add_arguments(parser):
 
 def run_folder(args):
     """The run folder: ``--out RUN_DIR`` (the convention of every command) or the old positional form."""
-    import sys
-
-    from ..core.errors import InputError
-
     if args.out and args.run_dir and args.out != args.run_dir:
         raise InputError(f"two run folders given ({args.run_dir} and --out {args.out}); give only --out")
     if args.out:
@@ -78,6 +78,7 @@ def run_folder(args):
 
 
 def run(args) -> int:
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..stages.hosts.stage import HostsOptions, format_table, run_hosts, summary_json
 
     options = HostsOptions(catalog=args.catalog, columns=args.columns, completeness=args.completeness,
@@ -95,3 +96,6 @@ def run(args) -> int:
         print(format_table(result, args.top))
         print(f"wrote {result.out_dir}/ranking.ecsv, hosts_summary.json" + ("" if args.no_plots else " and plots"))
     return 0
+
+
+__all__ = ["DESCRIPTION", "EXAMPLE", "add_arguments", "run"]

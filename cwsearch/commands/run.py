@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import json
+
 DESCRIPTION = """\
 Run the whole job from a TOML run file: scan -> follow-up of every candidate
 below the false-alarm threshold -> host ranking -> upper limits -> report.html.
@@ -47,8 +49,7 @@ def add_arguments(parser):
 
 def print_result(result, args) -> None:
     """The end-of-run message: report path and headline (or JSON)."""
-    import json
-
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..job.pipeline import format_headline
 
     if args.json:
@@ -63,6 +64,7 @@ def print_result(result, args) -> None:
 
 
 def run(args) -> int:
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..job.config import load_config
     from ..job.pipeline import run_pipeline
 
@@ -73,3 +75,9 @@ def run(args) -> int:
     result = run_pipeline(config, force=args.force, quiet=args.quiet)
     print_result(result, args)
     return 0
+
+
+__all__ = [
+    "DESCRIPTION", "EXAMPLE", "add_arguments", "run", "STAGE_CHOICES", "add_output_arguments",
+    "print_result",
+]

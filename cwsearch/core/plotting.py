@@ -6,14 +6,20 @@ functions live in ``cwsearch/stages/<stage>/plots.py`` (and ``cwsearch/data/plot
 
 from __future__ import annotations
 
+import astropy.units as u
 import numpy as np
+from astropy_healpix import HEALPix
+
+from . import fileio  # fileio.atomic_path is looked up at each call (the fault tests replace it)
 
 
 def pyplot():
     """matplotlib.pyplot with the non-interactive Agg backend."""
+    # lazy: a heavy import, loaded only when this runs
     import matplotlib
 
     matplotlib.use("Agg")
+    # lazy, after the backend is chosen
     import matplotlib.pyplot as plt
 
     return plt
@@ -21,11 +27,9 @@ def pyplot():
 
 def save_figure(fig, path):
     """Save ``fig`` to ``path`` (PNG) atomically and close it."""
-    from .fileio import atomic_path
-
     plt = pyplot()
     try:
-        with atomic_path(path) as tmp:
+        with fileio.atomic_path(path) as tmp:
             fig.savefig(tmp, format="png", dpi=110, bbox_inches="tight")
     finally:  # closed also when the write fails (disk full), so no figure is left open
         plt.close(fig)
@@ -37,8 +41,16 @@ def _wrap_ra(ra):
     return -lon
 
 
+def _pixels(nside, ra, dec):
+    """HEALPix RING pixel of each (ra, dec) [rad], straight from astropy-healpix (as physics.sky.pixel_of;
+    this floor may not import physics)."""
+    return np.asarray(HEALPix(nside=int(nside), order="ring").lonlat_to_healpix(
+        np.asarray(ra) * u.rad, np.asarray(dec) * u.rad))
+
+
 def _outlined(texts, color="black"):
     """Give tick labels a white outline so they read on any colour of the map."""
+    # lazy: a heavy import, loaded only when this runs
     import matplotlib.patheffects as pe
 
     for t in texts:
@@ -48,14 +60,12 @@ def _outlined(texts, color="black"):
 
 def _zoom_panel(ax, values, nside, centre, radius, *, cmap, norm, contours, pulsars, marks, truth):
     """A flat (cartesian, degrees) zoom of the map around ``centre`` = (ra, dec) [rad], half-width ``radius`` [deg]."""
-    from ..physics import sky
-
     ra0, dec0 = np.degrees(centre[0]), np.degrees(centre[1])
     half_ra = min(radius / max(np.cos(np.radians(dec0)), 0.2), 180.0)
     ra_grid = np.linspace(ra0 - half_ra, ra0 + half_ra, 240)
     dec_grid = np.linspace(max(dec0 - radius, -90), min(dec0 + radius, 90), 200)
     rg, dg = np.meshgrid(ra_grid, dec_grid)
-    pix = sky.pixel_of(nside, np.radians(np.remainder(rg, 360)), np.radians(dg))
+    pix = _pixels(nside, np.radians(np.remainder(rg, 360)), np.radians(dg))
     ax.pcolormesh(rg, dg, np.asarray(values)[pix], cmap=cmap, norm=norm, shading="auto")
     for levels, level_map in contours or []:
         ax.contour(rg, dg, np.asarray(level_map)[pix], levels=levels, colors="black", linewidths=1.0,
@@ -99,14 +109,15 @@ def sky_map(path, values, nside, *, title="", label="", pulsars=None, marks=None
     (ra, dec) [rad] of an injected source, drawn as a magenta plus. ``zoom``: (ra, dec [rad], half-width
     [deg]) adds a flat zoom panel around that point. Legends sit below the map, never over it.
     """
-    from ..physics import sky
-
     plt = pyplot()
     res = 360
     lon = np.linspace(-np.pi, np.pi, res)
     lat = np.linspace(-np.pi / 2, np.pi / 2, res // 2)
     lon_g, lat_g = np.meshgrid(lon, lat)
-    pix = sky.pixel_of(nside, np.remainder(-lon_g, 2 * np.pi), lat_g)
+    # the HEALPix RING lookup straight from astropy-healpix (the same call as cwsearch.physics.sky.pixel_of;
+    # this floor may not import physics)
+    pix = np.asarray(HEALPix(nside=int(nside), order="ring").lonlat_to_healpix(
+        np.remainder(-lon_g, 2 * np.pi) * u.rad, lat_g * u.rad))
     grid = np.asarray(values)[pix]
     if zoom is not None:
         fig = plt.figure(figsize=(12, 4.9))
@@ -119,11 +130,13 @@ def sky_map(path, values, nside, *, title="", label="", pulsars=None, marks=None
         cax = fig.add_axes([0.25, 0.1, 0.5, 0.035])
         zax = None
     if log:
+        # lazy: a heavy import, loaded only when this runs
         from matplotlib.colors import LogNorm
 
         positive = grid[np.isfinite(grid) & (grid > 0)]
         norm = LogNorm(vmin=positive.min(), vmax=positive.max()) if positive.size else None
     else:
+        # lazy: a heavy import, loaded only when this runs
         from matplotlib.colors import Normalize
 
         finite = grid[np.isfinite(grid)]
@@ -147,8 +160,6 @@ def sky_map(path, values, nside, *, title="", label="", pulsars=None, marks=None
         handles.append(ax.scatter(_wrap_ra(truth[0]), truth[1], marker="P", s=110, c="#e6007e",
                                   edgecolors="black", linewidths=0.7, label="truth (injection.json)", zorder=5))
     if zoom is not None:
-        from matplotlib.patches import Circle  # noqa: F401  (the zoom box is drawn as a marker ring)
-
         handles.append(ax.scatter(_wrap_ra(zoom[0]), zoom[1], marker="o", s=260, facecolors="none",
                                   edgecolors="black", linewidths=1.0, label="zoomed region (right)", zorder=4))
     ax.set_xticks(np.radians(np.arange(-150, 181, 30)))
@@ -167,3 +178,6 @@ def sky_map(path, values, nside, *, title="", label="", pulsars=None, marks=None
         _zoom_panel(zax, values, nside, zoom[:2], zoom[2], cmap=cmap, norm=norm, contours=contours,
                     pulsars=pulsars, marks=marks, truth=truth)
     save_figure(fig, path)
+
+
+__all__ = ["pyplot", "save_figure", "sky_map"]

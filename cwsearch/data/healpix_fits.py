@@ -23,7 +23,10 @@ from __future__ import annotations
 
 import io
 
+import astropy.units as u
 import numpy as np
+from astropy.io import fits
+from astropy_healpix import HEALPix
 
 from ..core.fileio import write_bytes_atomic
 
@@ -35,8 +38,6 @@ def write_healpix_map(path, columns: dict, *, nside: int, units: dict | None = N
     ``units`` gives each column's unit string (FITS ``TUNITn``); ``extra``
     adds header keywords (e.g. the frequency of a limits map).
     """
-    from astropy.io import fits
-
     nside = int(nside)
     n_pix = 12 * nside ** 2
     cols = []
@@ -69,8 +70,6 @@ def write_healpix_map(path, columns: dict, *, nside: int, units: dict | None = N
 
 def read_healpix_map(path):
     """``({column: array}, header)`` of a HEALPix FITS table written by :func:`write_healpix_map`."""
-    from astropy.io import fits
-
     with fits.open(path) as hdul:
         hdu = hdul[1]
         maps = {name: np.array(hdu.data[name], dtype=float) for name in hdu.columns.names}
@@ -79,10 +78,10 @@ def read_healpix_map(path):
 
 def posterior_sky_map(ra, dec, nside: int, weights=None):
     """Posterior probability per HEALPix pixel (RING) from samples ``ra``, ``dec`` [rad]; sums to 1."""
-    from ..physics.sky import n_pixels, pixel_of
-
-    pix = pixel_of(nside, np.asarray(ra, dtype=float), np.asarray(dec, dtype=float))
-    counts = np.bincount(pix, weights=weights, minlength=n_pixels(nside)).astype(float)
+    # the RING lookup straight from astropy-healpix (as physics.sky.pixel_of; this floor may not import physics)
+    pix = np.asarray(HEALPix(nside=int(nside), order="ring").lonlat_to_healpix(
+        np.asarray(ra, dtype=float) * u.rad, np.asarray(dec, dtype=float) * u.rad))
+    counts = np.bincount(pix, weights=weights, minlength=12 * int(nside) ** 2).astype(float)
     total = counts.sum()
     return counts / total if total > 0 else counts
 

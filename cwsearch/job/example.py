@@ -23,6 +23,10 @@ True
 
 from __future__ import annotations
 
+import textwrap
+
+from .config import STAGES, TOP_KEYS, section_keys, toml_value
+
 HEADER = """\
 # cwsearch run file: every key, with its default, explained.
 #
@@ -172,15 +176,11 @@ def _rule(title):
 
 
 def _comment_lines(text):
-    import textwrap
-
     return [f"# {line}" for line in textwrap.wrap(text, 104)] if text else []
 
 
 def example_toml() -> str:
     """The text of ``runs/example.toml``: every key with its dataclass default (see the module docstring)."""
-    from .config import STAGES, TOP_KEYS, section_keys, toml_value
-
     lines = [HEADER.rstrip("\n"), "", _rule("the run")]
 
     def emit(section, name, default):

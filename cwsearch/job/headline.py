@@ -35,9 +35,15 @@ Examples
 
 from __future__ import annotations
 
-import json
 import math
+import tomllib
 from pathlib import Path
+
+import numpy as np
+
+from ..physics.sky import angular_separation
+from .runfolder import read_json as _read_json
+from .runfolder import read_table as _read_table
 
 #: cold-chain (T = 1 ↔ next) swap acceptance below this is a sampler-health warning
 COLD_SWAP_MIN = 0.01
@@ -45,24 +51,6 @@ COLD_SWAP_MIN = 0.01
 PAIR_SWAP_MIN = 0.05
 #: a best host resting on fewer effective posterior samples than this is flagged
 HOST_MIN_EFFECTIVE = 10.0
-
-
-def _read_json(path):
-    try:
-        return json.loads(Path(path).read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None
-
-
-def _read_table(path):
-    if not Path(path).is_file():
-        return None
-    from astropy.table import Table
-
-    try:
-        return Table.read(path, format="ascii.ecsv")
-    except Exception:
-        return None
 
 
 def _num(v):
@@ -147,8 +135,6 @@ def same_source(a: dict, b: dict) -> bool:
     sa, sb = a.get("sky") or {}, b.get("sky") or {}
     if not sa or not sb:
         return True  # frequency overlap alone (no sky summary: an older run folder)
-    from ..physics.sky import angular_separation
-
     sep = math.degrees(float(angular_separation(math.radians(sa["ra"]), math.radians(sa["dec"]),
                                                 math.radians(sb["ra"]), math.radians(sb["dec"]))))
     return sep <= sa.get("radius_90_deg", 0.0) + sb.get("radius_90_deg", 0.0)
@@ -235,8 +221,6 @@ def _threshold(run_dir):
         if thr is not None:
             return float(thr)
     try:
-        import tomllib
-
         cfg = tomllib.loads((Path(run_dir) / "run.toml").read_text(encoding="utf-8"))
         return float(cfg.get("followup", {}).get("fap_threshold", 0.01))
     except (OSError, ValueError):
@@ -245,8 +229,6 @@ def _threshold(run_dir):
 
 def headline_result(run_dir, reports=None) -> dict:
     """The headline: candidate or not and how sure, where, which host, what limits, and warnings."""
-    import numpy as np
-
     run_dir = Path(run_dir)
     head = {"candidate_found": False, "candidate": None, "sources": [], "best_host": None, "best_limit": None,
             "warnings": []}

@@ -40,12 +40,18 @@ True
 from __future__ import annotations
 
 import base64
-import json
 import math
+import tomllib
 from pathlib import Path
+
+import numpy as np
+from markupsafe import escape
 
 from .. import __version__
 from ..core.fileio import write_text_atomic
+from .headline import COLD_SWAP_MIN, PAIR_SWAP_MIN, followup_targets, format_headline, headline_result, merge_sources, sampler_health
+from .runfolder import read_json as _read_json
+from .runfolder import read_table as _read_table
 
 #: (id, title) of every report section, in page order
 SECTIONS = (
@@ -166,24 +172,6 @@ document.querySelectorAll('table.sortable').forEach(function(table){
 
 
 # ---------------------------------------------------------------- helpers
-def _read_json(path):
-    try:
-        return json.loads(Path(path).read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None
-
-
-def _read_table(path):
-    if not Path(path).is_file():
-        return None
-    from astropy.table import Table
-
-    try:
-        return Table.read(path, format="ascii.ecsv")
-    except Exception:
-        return None
-
-
 def _scalar(v):
     try:
         return v.item()
@@ -287,8 +275,6 @@ def _figure(path, caption=None):
 
 def embed_png(path, caption=None) -> str:
     """An ``<figure>`` with the PNG at ``path`` embedded as a base64 data URI (escaped caption)."""
-    from markupsafe import escape
-
     f = _figure(path, caption)
     return (f'<figure><img src="data:image/png;base64,{f["data"]}" alt="{escape(f["alt"])}">'
             f"<figcaption>{escape(f['caption'])}</figcaption></figure>")
@@ -320,8 +306,6 @@ class _Run:
     """Everything the report needs, read once from a run folder."""
 
     def __init__(self, run_dir):
-        from .headline import followup_targets, headline_result
-
         self.dir = Path(run_dir)
         self.provenance = _read_json(self.dir / "provenance.json") or {}
         self.dataset = _read_json(self.dir / "dataset.json") or {}
@@ -333,8 +317,6 @@ class _Run:
             if rec:
                 self.records[stage] = rec
         try:
-            import tomllib
-
             self.config = tomllib.loads((self.dir / "run.toml").read_text(encoding="utf-8"))
         except (OSError, ValueError):
             self.config = {}
@@ -392,8 +374,6 @@ def _truth_text(truth, key, fmt):
 # ---------------------------------------------------------------- first screen
 def first_screen(run: _Run) -> dict:
     """The answers of the first screen: (question, answer) pairs in words with numbers and units."""
-    from .headline import format_headline
-
     head, truth = run.headline, run.truth
     if not head:
         return {"answers": [], "warnings": [], "lines": ""}
@@ -639,8 +619,6 @@ def _health_table(summary):
     temps = summary.get("temperatures") or []
     if not swaps:
         return None
-    from .headline import COLD_SWAP_MIN, PAIR_SWAP_MIN
-
     rows = []
     for i, a in enumerate(swaps):
         pair = f"{temps[i]:.3g} ↔ {temps[i + 1]:.3g}" if len(temps) > i + 1 else str(i + 1)
@@ -659,8 +637,6 @@ def _health_table(summary):
 
 
 def _followup(run: _Run):
-    from .headline import merge_sources, sampler_health
-
     s = _sec("followup", dict(SECTIONS)["followup"], notes=run.status_notes("followup"))
     targets = [t for t in run.targets if t[1]]
     stage = run.dir / "followup"
@@ -739,8 +715,6 @@ def _hosts(run: _Run):
 
 def galaxy_limits_view(table):
     """One row per galaxy: its position, distance and its tightest chirp-mass limit (and where in frequency)."""
-    import numpy as np
-
     if table is None or not len(table) or "name" not in table.colnames:
         return None
     rows = []
@@ -864,6 +838,7 @@ _BUILDERS = {"dataset": _dataset, "noise": _noise, "scan": _scan, "candidates": 
 
 
 def _environment():
+    # lazy: a heavy import, loaded only when this runs
     import jinja2
 
     return jinja2.Environment(loader=jinja2.FileSystemLoader(str(Path(__file__).parent / "templates")),
@@ -898,4 +873,5 @@ def build_report(run_dir) -> Path:
 
 
 __all__ = ["build_report", "render_report", "embed_png", "table_view", "fmt_number", "first_screen",
+           "headline_result", "format_headline",
            "galaxy_limits_view", "SECTIONS", "GENERAL_CAUTIONS", "LABELS", "CAPTIONS"]

@@ -327,3 +327,11 @@ def residuals(toas, pulsar_position, pulsar_distance, *, ra, dec, gw_frequency, 
     coeffs = basis_coefficients(strain, inclination, polarization, phase, pulsar_phase,
                                 fplus[0], fcross[0], pulsar_term)
     return basis @ coeffs
+
+
+__all__ = [
+    "EVOLUTION_MODES", "chirp_mass_from_masses", "strain_amplitude", "luminosity_distance_for_strain",
+    "chirp_mass_for_strain", "time_to_coalescence", "gw_frequency_derivative", "orbital_period",
+    "source_frame", "antenna_pattern", "check_before_coalescence", "residual_basis",
+    "basis_coefficients", "residuals",
+]

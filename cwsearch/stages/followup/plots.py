@@ -9,6 +9,8 @@ from __future__ import annotations
 import numpy as np
 
 from ...core.plotting import pyplot, save_figure, sky_map
+from ...data.truth import injected_binary
+from ...physics import sky
 
 #: (posterior column, axis label, transform to the plotted unit)
 CORNER_COLUMNS = (("ra", "RA [deg]", None), ("dec", "Dec [deg]", None), ("frequency", "f [nHz]", "nHz"),
@@ -30,6 +32,7 @@ def _to_unit(x, how, *, angle_in_degrees=False):
 
 def corner_plot(path, table, truth=None):
     """Corner plot (the ``corner`` package) of the posterior in degrees and natural units, truth in magenta."""
+    # lazy: a heavy import, loaded only when this runs
     import corner
 
     plt = pyplot()
@@ -68,8 +71,6 @@ def credible_levels(probability):
 
 def sky_posterior(path, ra, dec, pulsars=None, target=None, nside=None, truth=None, centre=None):
     """Posterior sky density (HEALPix histogram) with 50 % and 90 % credible regions and a zoom panel."""
-    from ...physics import sky
-
     ra, dec = np.asarray(ra), np.asarray(dec)
     if nside is None:   # the resolution of the sky summary (coarser for few samples), at least nside 4
         nside = max(int((centre or {}).get("map_nside") or (16 if ra.size < 3000 else 32)), 4)
@@ -140,8 +141,6 @@ def trace_plot(path, chain, names, burn_in, max_walkers=8, truth=None):
 
 def plot_followup(folder, table, result, likelihood, array, target, sky=None):
     """All follow-up plots into ``folder`` (truth from the dataset's injection.json when there is one)."""
-    from ...data.truth import injected_binary
-
     truth = injected_binary(array)
     if len(table) >= 2:
         corner_plot(folder / "corner.png", table, truth)
@@ -152,3 +151,9 @@ def plot_followup(folder, table, result, likelihood, array, target, sky=None):
                       truth=truth, centre=sky)
     if result.iterations:
         trace_plot(folder / "trace.png", result.chain, list(likelihood.names), result.burn_in, truth=truth)
+
+
+__all__ = [
+    "CORNER_COLUMNS", "TRACE_UNITS", "corner_plot", "credible_levels", "sky_posterior", "trace_plot",
+    "plot_followup",
+]

@@ -37,10 +37,21 @@ import time
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 
+import astropy.units as u
 import numpy as np
+from astropy.table import Table
 
+from ...core.candidates import candidate_row
+from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
+from ...core.fileio import write_json_atomic, write_table_atomic
+from ...inference import sampling
+from ...inference.likelihood import Likelihood
+from ...physics import fstat, waveform
+from ...data.healpix_fits import credible_area, posterior_sky_map, write_healpix_map
 from ...physics.noise import NoiseSettings
+from ...physics.sky import angular_separation, unit_vectors
+from ...physics.waveform import EVOLUTION_MODES
 
 STRAIN_RANGE = (1e-18, 1e-11)
 CHIRP_MASS_RANGE = (1e7, 1e11)
@@ -75,11 +86,9 @@ class FollowupOptions:
     phase_grid: int = 0
     checkpoint_every: int = 100
     adapt_iterations: int = 500
-    plots: bool = True                  # corner, sky and trace plots (PNG)
+    no_plots: bool = False              # skip the corner, sky and trace plots (PNG)
 
-    def check(self):
-        from ...physics.waveform import EVOLUTION_MODES
-
+    def validate(self):
         if self.evolution not in EVOLUTION_MODES:
             raise InputError(f"--evolution must be one of {', '.join(EVOLUTION_MODES)}, not {self.evolution!r}")
         if self.strain_prior not in ("log-uniform", "uniform"):
@@ -177,8 +186,6 @@ def initial_positions(prior, target: Target, span, shape, rng):
 # ---------------------------------------------------------------- targets
 def read_candidates(run_dir):
     """The scan's candidates table (astropy Table), best first (by ``fe`` when present)."""
-    from astropy.table import Table
-
     path = Path(run_dir) / "scan" / "candidates.ecsv"
     if not path.exists():
         raise InputError("no scan candidates found; run 'cwsearch scan' first, or give --frequency/--ra/--dec "
@@ -209,8 +216,6 @@ def _column_value(table, name, row, unit, default_unit):
 
 def select_targets(run_dir, options: FollowupOptions):
     """The list of :class:`Target` to follow for these options."""
-    import astropy.units as u
-
     if options.all_sky:
         return [Target("all-sky", None, None, None)]
     if options.frequency is not None:
@@ -223,8 +228,6 @@ def select_targets(run_dir, options: FollowupOptions):
                        source={"frequency": options.frequency, "ra": options.ra, "dec": options.dec})]
     table, path = read_candidates(run_dir)
     if options.candidate is not None:
-        from ...core.candidates import candidate_row
-
         try:
             row = candidate_row(options.candidate)
         except ValueError as exc:
@@ -259,8 +262,6 @@ def select_targets(run_dir, options: FollowupOptions):
 def earth_term_start(engine, target: Target) -> Target:
     """Fill strain, inclination, polarisation and phase of ``target`` with the Earth-term
     maximum-likelihood values of the F-statistic at its frequency and sky position."""
-    from ...physics import fstat
-
     proj = fstat.project(engine, np.array([target.frequency]))
     fplus, fcross = fstat.sky_patterns(proj, target.ra, target.dec)
     _, amp = fstat.fe_with_amplitudes(proj, fplus, fcross)
@@ -275,12 +276,6 @@ def earth_term_start(engine, target: Target) -> Target:
 # ---------------------------------------------------------------- outputs
 def posterior_table(likelihood, samples):
     """Astropy Table of physical posterior samples (columns :data:`OUTPUT_COLUMNS`)."""
-    import astropy.units as u
-    from astropy.table import Table
-
-    from ...physics import waveform
-    from ...core.constants import YEAR_SECONDS
-
     par = likelihood.physical(samples)
     table = Table()
     table["ra"] = np.degrees(par["ra"]) * u.deg
@@ -342,9 +337,6 @@ def sky_summary(ra_deg, dec_deg, folder=None, nside=SKY_MAP_NSIDE):
     whose occupied pixels hold :data:`SAMPLES_PER_PIXEL` samples on average (so a poorly sampled
     posterior gets a coarse map and an honest, large area). With ``folder`` the map is also written as
     ``posterior_sky.fits`` (HEALPix FITS)."""
-    from ...data.healpix_fits import credible_area, posterior_sky_map, write_healpix_map
-    from ...physics.sky import angular_separation, unit_vectors
-
     ra, dec = np.radians(np.asarray(ra_deg, dtype=float)), np.radians(np.asarray(dec_deg, dtype=float))
     ok = np.isfinite(ra) & np.isfinite(dec)
     ra, dec = ra[ok], dec[ok]
@@ -377,9 +369,6 @@ def sky_summary(ra_deg, dec_deg, folder=None, nside=SKY_MAP_NSIDE):
 
 
 def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
-    from ...inference import sampling
-    from ...core.fileio import write_table_atomic
-
     span = array.span
     if target.frequency is None:
         band = (np.log10(1.0 / span), np.log10(options.max_frequency))
@@ -453,13 +442,14 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
     return summary, result, table
 
 
-def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *, noise=NoiseSettings(),
+def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *, noise=None,
                  seed=0, progress=True) -> FollowupResult:
-    """Follow up the chosen targets and write ``run_dir/followup/`` (see module docstring)."""
-    from ...core.fileio import write_json_atomic
-    from ...inference.likelihood import Likelihood
+    """Follow up the chosen targets and write ``run_dir/followup/`` (see module docstring).
 
-    options.check()
+    ``noise``: :class:`~cwsearch.physics.noise.NoiseSettings` (None: the default settings).
+    """
+    noise = NoiseSettings() if noise is None else noise
+    options.validate()
     run_dir = Path(run_dir)
     targets = select_targets(run_dir, options)
     start = time.monotonic()
@@ -473,7 +463,8 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
         summary, result, table = _follow_one(likelihood, target, array, folder, options, seq, progress)
         summary["seed"] = seed
         write_json_atomic(folder / "summary.json", summary)
-        if options.plots:
+        if not options.no_plots:
+            # lazy: matplotlib is loaded only when plots are drawn
             from .plots import plot_followup
 
             plot_followup(folder, table, result, likelihood, array, target, sky=summary.get("sky"))

@@ -5,10 +5,12 @@ from __future__ import annotations
 import numpy as np
 
 from ...core.plotting import pyplot, save_figure, sky_map
+from ...data.truth import injected_binary
 
 
 def _nhz_axis(ax):
     """Frequency axis in nHz with plain numbers (no colliding 10^-9 minor labels)."""
+    # lazy: a heavy import, loaded only when this runs
     from matplotlib.ticker import LogLocator, NullFormatter, ScalarFormatter
 
     ax.set_xscale("log")
@@ -72,8 +74,6 @@ def galaxy_plot(path, galaxy_table):
 def make_plots(folder, frequencies, freq_table, sky_table, galaxy_table, array, nside, method):
     """Draw every limits plot into ``folder``; returns {name: path}."""
     files = {"frequency_plot": str(folder / "strain_limits.png"), "sky_plot": str(folder / "sky_limits.png")}
-    from ...data.truth import injected_binary
-
     truth = injected_binary(array)
     frequency_plot(folder / "strain_limits.png", freq_table, truth)
     sky_plot(folder / "sky_limits.png", sky_table, nside, array, truth)
@@ -81,3 +81,6 @@ def make_plots(folder, frequencies, freq_table, sky_table, galaxy_table, array, 
         galaxy_plot(folder / "galaxy_limits.png", galaxy_table)
         files["galaxy_plot"] = str(folder / "galaxy_limits.png")
     return files
+
+
+__all__ = ["frequency_plot", "sky_plot", "galaxy_plot", "make_plots"]

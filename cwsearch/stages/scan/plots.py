@@ -8,6 +8,7 @@ from __future__ import annotations
 import numpy as np
 
 from ...core.plotting import pyplot, save_figure, sky_map
+from ...data.truth import injected_binary
 
 _LINE_STYLES = ("--", ":", "-.")
 
@@ -65,8 +66,6 @@ def spectrum_plot(path, spectrum, candidates, thresholds, *, want_fe=True):
 def sky_plot(path, fe_values, nside, frequency, array, candidates):
     """Mollweide map of Fe at one frequency, pulsars as stars, candidates marked, a zoom on the best one,
     and the truth (the dataset's injection.json) when there is one."""
-    from ...data.truth import injected_binary
-
     marks = [{"ra": np.radians(float(row["ra"])), "dec": np.radians(float(row["dec"])),
               "label": f"candidate {int(row['rank'])}" if i < 3 else None, "color": "#d62728", "marker": "x",
               "text": f"#{int(row['rank'])}" if i < 3 else None}
@@ -101,3 +100,6 @@ def null_plot(path, null_max, observed, statistic="Fe"):
     ax.grid(alpha=0.3)
     fig.tight_layout()
     save_figure(fig, path)
+
+
+__all__ = ["spectrum_plot", "sky_plot", "null_plot"]
