@@ -53,7 +53,7 @@ def sky_plot(path, res, truth=None):
                       "label": (f"best host {table['name'][k]} (p={table['probability'][k]:.2f})" if k == 0
                                 else None)})
     sky_map(path, dens, nside, title=f"Candidate {res.localisation.label}: sky density and catalogue galaxies "
-                                     "(solid: 99 %, dashed: 90 % region)",
+                                     "(contours: 90 % and 99 % regions)",
             label="sky density of the binary [1/sr]", marks=marks, cmap="Blues",
             contours=[([t99, t90], dens)] if t90 > t99 else None,
             truth=None if not truth else (math.radians(truth["ra"]), math.radians(truth["dec"])))

@@ -958,7 +958,7 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
         if several:
             write_table_atomic(folder / "ranking.ecsv", res.ranking)
             write_json_atomic(folder / "hosts_summary.json", res.summary)
-        res.plots = (host_plots.make_plots(folder, res, model, options, truth=_truth(array))
+        res.plots = (host_plots.make_plots(folder, res, model, options, truth=_truth(array, run_dir))
                      if not options.no_plots else [])
     ranking = vstack([r.ranking for r in results], metadata_conflicts="silent") if several else results[0].ranking
     write_table_atomic(out_dir / "ranking.ecsv", ranking)
@@ -1019,9 +1019,10 @@ def summary_json(result: HostsResult) -> str:
     return json.dumps(result.summary, indent=2, default=lambda o: o.item() if hasattr(o, "item") else str(o))
 
 
-def _truth(array):
-    """The injected binary of a simulated dataset (for over-plotting), or None."""
-    return injected_binary(array)
+def _truth(array, run_dir):
+    """The injected binary of a simulated dataset (for over-plotting), or None; without an array (the
+    ``cwsearch hosts`` command) it is found through the run folder's dataset.json."""
+    return injected_binary(array) or injected_binary(run_dir)
 
 
 def _same_candidate(found, wanted) -> bool:
