@@ -407,7 +407,7 @@ def test_bad_catalog(work, capsys, damage, expect):
     (work / "run").mkdir()
     (work / "run" / "keep.txt").write_text("earlier results\n")
     before = snapshot(work)
-    code, err = run_cli(["hosts", work / "run", "--catalog", catalog, "--observed-span", "10", "--quiet"], capsys)
+    code, err = run_cli(["hosts", "--out", work / "run", "--catalog", catalog, "--observed-span", "10", "--quiet"], capsys)
     check_user_error(code, err, expect)
     assert snapshot(work) == before
 

@@ -235,7 +235,7 @@ def test_run_from_followup_posterior_writes_outputs(tmp_path, capsys):
     (tmp_path / "run" / "followup" / "summary.json").write_text(json.dumps(
         {"model": {"log10_frequency_band": [-8.1, -7.8], "chirp_mass_range": [1e7, 1e11],
                    "strain_range": [1e-18, 1e-11], "strain_prior": "log-uniform"}}))
-    rc = main(["hosts", str(tmp_path / "run"), "--catalog", str(cat), "--top", "3"])
+    rc = main(["hosts", "--out", str(tmp_path / "run"), "--catalog", str(cat), "--top", "3"])
     out = capsys.readouterr().out
     assert rc == 0
     assert "HOST" in out and "P(host not in catalogue)" in out
