@@ -11,6 +11,14 @@ def add_dataset_arguments(parser, out_required=True):
     parser.add_argument("--seed", type=int, default=0, help="random seed for the whole run (default 0)")
     parser.add_argument("--quiet", action="store_true", help="no progress bars or tables")
     parser.add_argument("--json", action="store_true", help="print the summary as JSON")
+    add_mjd_range_argument(parser)
+
+
+def add_mjd_range_argument(parser):
+    """``--mjd-range LO HI``: widen the plausible TOA dates (default MJD 40000-70000)."""
+    parser.add_argument("--mjd-range", nargs=2, type=float, default=None, metavar=("LO", "HI"),
+                        help="accept TOAs between MJD LO and HI (default 40000 70000; TOAs outside are "
+                             "refused as implausible)")
 
 
 def add_noise_arguments(parser):
@@ -46,7 +54,22 @@ def load_array(args):
     # lazy: keeps `cwsearch COMMAND --help` fast
     from ..data.dataset import read_dataset
 
-    return read_dataset(args.dataset)
+    return read_dataset(args.dataset, mjd_range=getattr(args, "mjd_range", None))
+
+
+def run_folder_guard(run_dir, array=None, dataset=None):
+    """The pipeline's run-folder guard for a stage command (:func:`cwsearch.job.runfolder.stage_guard`):
+    lock, ``.part`` clean-up, and (with ``dataset``) the dataset-checksum check; ``dataset.json`` is
+    recorded when the stage succeeds."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
+    from ..data.dataset import dataset_checksum
+    from ..job.pipeline import dataset_summary
+    from ..job.runfolder import stage_guard
+
+    if dataset is None:
+        return stage_guard(run_dir)
+    checksum = dataset_checksum(dataset)
+    return stage_guard(run_dir, checksum, dataset_record=lambda: dataset_summary(array, dataset, checksum))
 
 
 def add_grid_arguments(group, defaults, fmax_help):

@@ -12,9 +12,9 @@ Run the whole job on the bundled INVENTED demo data: 20 pulsars (SIMPSR01..20)
 over 12.5 years with one injected supermassive black-hole binary, and an
 invented galaxy catalogue. Scan -> follow-up of every candidate below the
 false-alarm threshold -> host ranking -> upper limits -> report.html, in
-about 1.5 minutes on an idle 2-core machine (measured 1 min 22 s; the first
-run compiles the numba kernels and a shared machine is slower). Prints where
-the report is and the headline.
+a few minutes on a 2-core machine (the README gives the measured times; the
+first run compiles the numba kernels). Prints where the report is and the
+headline.
 
 The settings used are written to OUT/run.toml; edit a copy of it and run
 'cwsearch run' to change anything. --quick uses a coarser sky, fewer
@@ -37,7 +37,8 @@ DEMO = {
 #: --quick overrides
 QUICK = {
     "scan": {"nside": 4, "fmax": 5.0e-8, "null_sims": 0},
-    "followup": {"ess": 100.0, "temperatures": 4, "walkers": 18, "adapt_iterations": 60, "max_iterations": 200},
+    "followup": {"ess": 100.0, "temperatures": 4, "walkers": 18, "adapt_iterations": 60, "max_iterations": 200,
+                 "max_temperatures": 4},
     "hosts": {},
     "limits": {"nside": 2, "fmax": 5.0e-8, "quadrature": "fast"},
 }

@@ -8,7 +8,8 @@ from pathlib import Path
 
 from ..core.errors import InputError
 
-from ._common import add_dataset_arguments, add_noise_arguments, load_array, noise_settings
+from ._common import (add_dataset_arguments, add_noise_arguments, load_array, noise_settings,
+                      run_folder_guard)
 
 DESCRIPTION = (
     "Fit one circular binary (Earth + pulsar term, pulsar phases marginalised) to the top candidate(s) of "
@@ -65,6 +66,9 @@ def add_arguments(parser):
                    help="write the checkpoint every N iterations (default 100)")
     s.add_argument("--adapt-iterations", type=int, default=500, metavar="N",
                    help="adapt the temperature ladder during the first N iterations (default 500)")
+    s.add_argument("--max-temperatures", type=int, default=None, metavar="N",
+                   help="the ladder may grow to N temperatures where neighbours rarely swap (default 3 x "
+                        "--temperatures, at most 40; --max-temperatures equal to --temperatures keeps it fixed)")
     s.add_argument("--resume", action="store_true", help="continue from the checkpoint in the output folder")
     parser.add_argument("--no-plots", action="store_true", help="skip the PNG plots")
     add_noise_arguments(parser)
@@ -98,8 +102,9 @@ def run(args) -> int:
         options = replace(options, top=threshold_top(args.out, args.fap_threshold,
                                                      3 if args.max_candidates is None else args.max_candidates))
     array = load_array(args)
-    result = run_followup(array, args.out, options, noise=noise_settings(args), seed=args.seed,
-                          progress=not args.quiet)
+    with run_folder_guard(args.out, array, args.dataset):
+        result = run_followup(array, args.out, options, noise=noise_settings(args), seed=args.seed,
+                              progress=not args.quiet)
     if args.json:
         print(json.dumps(result.summary, indent=2, default=str))
     elif not args.quiet:

@@ -5,6 +5,7 @@ from __future__ import annotations
 import sys
 
 from ..core.errors import InputError
+from ._common import run_folder_guard
 
 DESCRIPTION = (
     "Rank the galaxies of a catalogue as possible hosts of the run's candidate binary. Uses the follow-up "
@@ -89,7 +90,8 @@ def run(args) -> int:
                            observed_span=args.observed_span, max_samples=args.max_samples,
                            no_plots=args.no_plots)
     run_dir = run_folder(args)
-    result = run_hosts(None, run_dir, options, seed=args.seed, progress=not (args.quiet or args.json))
+    with run_folder_guard(run_dir):
+        result = run_hosts(None, run_dir, options, seed=args.seed, progress=not (args.quiet or args.json))
     if args.json:
         print(summary_json(result))
     elif not args.quiet:

@@ -5,8 +5,9 @@ from __future__ import annotations
 
 import json
 
+from ..core.safeio import escape_text
 from ._common import (add_dataset_arguments, add_grid_arguments, add_noise_arguments, load_array,
-                      noise_settings)
+                      noise_settings, run_folder_guard)
 
 DESCRIPTION = """\
 Compute 95 % upper limits on the strain amplitude h0 of a circular binary at
@@ -118,8 +119,9 @@ def run(args) -> int:
     parse_galaxies(options.galaxy)  # number errors before the dataset is read
     options.validate()
     array = load_array(args)
-    result = run_limits(array, args.out, options, noise=noise_settings(args), seed=args.seed,
-                        progress=not args.quiet)
+    with run_folder_guard(args.out, array, args.dataset):
+        result = run_limits(array, args.out, options, noise=noise_settings(args), seed=args.seed,
+                            progress=not args.quiet)
     summary = result.summary
     if args.json:
         print(json.dumps(summary, indent=2))
@@ -133,7 +135,7 @@ def run(args) -> int:
     for line in method_lines(summary):
         print(line)
     for name, g in summary.get("galaxies", {}).items():
-        print(f"  galaxy {name} ({g['distance']:.3g} Mpc): chirp mass < {_fmt(g['chirp_mass_95_min'])} Msun "
+        print(f"  galaxy {escape_text(name)} ({g['distance']:.3g} Mpc): chirp mass < {_fmt(g['chirp_mass_95_min'])} Msun "
               f"at {g['at_frequency']:.3e} Hz")
     check = summary.get("mcmc_check")
     if check:

@@ -31,12 +31,19 @@ True
 
 from __future__ import annotations
 
+import math
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
 
 import numpy as np
 from scipy.linalg import cho_factor, lapack, qr, solve_triangular
 
+from threadpoolctl import threadpool_limits
+
 from ..core.constants import YEAR_FREQUENCY
+from ..core.errors import InputError
+from ..core.safeio import check_count
 
 
 @dataclass(frozen=True)
@@ -63,6 +70,20 @@ class NoiseSettings:
     common_log10_amplitude: float | None = None
     common_index: float = 13.0 / 3.0
     white_noise_factors: bool = True
+
+    def __post_init__(self):
+        check_count(self.red_components, "red_components", minimum=0, maximum=MAX_RED_COMPONENTS)
+        for name in ("common_log10_amplitude", "common_index"):
+            value = getattr(self, name)
+            if value is not None and not (isinstance(value, (int, float)) and math.isfinite(value)):
+                raise InputError(f"option --{name.replace('_', '-')}: must be a finite number, not {value!r}")
+        if self.common_log10_amplitude is not None and not -30 <= self.common_log10_amplitude <= -5:
+            raise InputError("option --common-log10-amplitude: must be between -30 and -5 "
+                             f"(a log10 strain amplitude), not {self.common_log10_amplitude}")
+
+
+#: most Fourier frequencies of a red process (k/T_span, k = 1..K): 1000 reaches daily cadence for 3 years
+MAX_RED_COMPONENTS = 1000
 
 
 def fourier_frequencies(span, n_components):
@@ -263,7 +284,7 @@ class NoiseWeighting:
     def __init__(self, array, settings: NoiseSettings | None = None):
         self.array = array
         self.settings = settings or NoiseSettings()
-        self.pulsars = [PulsarWeighting(p, array.start, array.span, self.settings) for p in array]
+        self.pulsars = _build_pulsars(array, self.settings)
 
     def __getitem__(self, i) -> PulsarWeighting:
         return self.pulsars[i]
@@ -285,6 +306,33 @@ class NoiseWeighting:
     def optimal_snr(self, signals) -> float:
         """Optimal signal-to-noise ratio ``sqrt(Σ_p (s_p|s_p))``."""
         return float(np.sqrt(sum(w.inner(s, s) for w, s in zip(self.pulsars, signals))))
+
+
+def single_threaded_blas():
+    """Context manager: numpy/scipy BLAS on one thread (no-op without threadpoolctl).
+
+    The per-pulsar products are small (n × k with k ~ 65); threaded BLAS on
+    them oversubscribes the cores and was measured 9× slower on the shared
+    2-core machine (bench/command.py). Parallelism comes from one pulsar per
+    thread instead.
+    """
+    return threadpool_limits(1, user_api="blas")
+
+
+def _build_pulsars(array, settings, workers=None):
+    """One :class:`PulsarWeighting` per pulsar, built one pulsar per thread with single-threaded BLAS.
+
+    Each pulsar's build is independent and runs the same operations whatever
+    the number of threads, so the result does not depend on it.
+    """
+    pulsars = list(array)
+    cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    workers = min(len(pulsars), cpus if workers is None else int(workers))
+    with single_threaded_blas():
+        if workers <= 1:
+            return [PulsarWeighting(p, array.start, array.span, settings) for p in pulsars]
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            return list(pool.map(lambda p: PulsarWeighting(p, array.start, array.span, settings), pulsars))
 
 
 # ----------------------------------------------------------------- noise estimation

@@ -33,6 +33,8 @@ Examples
 
 from __future__ import annotations
 
+import math
+import os
 import time
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
@@ -45,6 +47,7 @@ from ...core.candidates import candidate_row
 from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
+from ...core.safeio import check_count, read_input_text, require_finished
 from ...inference import sampling
 from ...inference.likelihood import Likelihood
 from ...physics import fstat, waveform
@@ -86,6 +89,7 @@ class FollowupOptions:
     phase_grid: int = 0
     checkpoint_every: int = 100
     adapt_iterations: int = 500
+    max_temperatures: int | None = None  # the ladder may grow to this many (None: 3 x temperatures, at most 40)
     no_plots: bool = False              # skip the corner, sky and trace plots (PNG)
 
     def validate(self):
@@ -97,11 +101,21 @@ class FollowupOptions:
             raise InputError("--walkers must be even and at least 18 (ptemcee needs > 2 x 8 parameters)")
         if self.temperatures < 1 or self.max_temperature <= 1:
             raise InputError("--temperatures must be >= 1 and --max-temperature > 1")
+        if self.max_temperatures is not None and self.max_temperatures < 1:
+            raise InputError("--max-temperatures must be >= 1")
         explicit = [v is not None for v in (self.frequency, self.ra, self.dec)]
         if any(explicit) and not all(explicit):
             raise InputError("an explicit target needs all of --frequency, --ra and --dec")
         if self.ess <= 0 or self.max_iterations <= 0:
             raise InputError("--ess and --max-iterations must be positive")
+        if self.max_time is not None and not (math.isfinite(self.max_time) and self.max_time > 0):
+            raise InputError(f"--max-time must be a positive number of seconds, not {self.max_time}")
+        check_count(self.max_iterations, "max_iterations", minimum=1, maximum=10_000_000)
+        check_count(self.walkers, "walkers", minimum=18, maximum=10_000)
+        check_count(self.temperatures, "temperatures", minimum=1, maximum=200)
+        check_count(self.checkpoint_every, "checkpoint_every", minimum=1, maximum=10_000_000)
+        if not math.isfinite(self.ess):   # a huge --ess is legal: the iteration cap or --max-time stops the run
+            raise InputError(f"--ess must be a finite number, not {self.ess}")
 
 
 @dataclass
@@ -187,13 +201,15 @@ def initial_positions(prior, target: Target, span, shape, rng):
 def read_candidates(run_dir):
     """The scan's candidates table (astropy Table), best first (by ``fe`` when present)."""
     path = Path(run_dir) / "scan" / "candidates.ecsv"
-    if not path.exists():
+    if not os.path.lexists(path):
         raise InputError("no scan candidates found; run 'cwsearch scan' first, or give --frequency/--ra/--dec "
                          "or --all-sky", file=path)
+    require_finished(path, path.parent / "scan_summary.json", stage="scan", command="cwsearch scan")
+    text = read_input_text(path, Path(run_dir), what="candidates file")
     try:
-        table = Table.read(path, format="ascii.ecsv")
+        table = Table.read(text + "\n", format="ascii.ecsv")
     except Exception as exc:  # malformed file: one line naming it
-        raise InputError(f"cannot read candidates ({exc})", file=path) from None
+        raise InputError(f"cannot read candidates ({' '.join(str(exc).split())[:300]})", file=path) from None
     for col in ("frequency", "ra", "dec"):
         if col not in table.colnames:
             raise InputError(f"missing column '{col}'", file=path, column=col)
@@ -384,7 +400,8 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
         walkers=options.walkers, temperatures=options.temperatures, max_temperature=options.max_temperature,
         ess=options.ess, max_iterations=options.max_iterations,
         max_time=float("inf") if options.max_time is None else float(options.max_time),
-        checkpoint_every=options.checkpoint_every, adapt_iterations=options.adapt_iterations)
+        checkpoint_every=options.checkpoint_every, adapt_iterations=options.adapt_iterations,
+        max_temperatures=options.max_temperatures)
     initial = initial_positions(prior, target, span, (options.temperatures, options.walkers), rng)
     fingerprint = {"target": [target.frequency, target.ra, target.dec], "band": list(band),
                    "pulsar_term": likelihood.pulsar_term, "evolution": likelihood.evolution,

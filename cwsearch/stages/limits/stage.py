@@ -725,6 +725,10 @@ class Galaxy:
     distance: float
 
 
+#: most local worker processes
+MAX_WORKERS = 1024
+
+
 def parse_galaxies(entries):
     """:class:`Galaxy` objects from ``(NAME, RA_DEG, DEC_DEG, DISTANCE_MPC)`` tuples (CLI/TOML)."""
     out = []
@@ -954,6 +958,9 @@ class LimitsOptions:
                 f"not {self.mcmc_check}")
         if self.select and not self.catalog:
             bad("select", "needs --catalog FILE")
+        if self.workers is not None and self.workers > MAX_WORKERS:
+            bad("workers", f"at most {MAX_WORKERS}, not {self.workers}")
+        parse_galaxies(self.galaxy)   # a bad galaxy is refused now (and by `run --check`), not mid-run
         return self
 
 
