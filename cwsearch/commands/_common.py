@@ -36,6 +36,14 @@ def add_noise_arguments(parser):
                    help="ignore the dataset's per-backend white-noise factors (noise.ecsv sigma_scale, "
                         "sigma_added); run-file key [noise] white_noise_factors")
 
+    g.add_argument("--common-correlation", choices=("hellings-downs", "uncorrelated", "none"),
+                   default="hellings-downs",
+                   help="how the common process couples the pulsars: hellings-downs (default; array-level "
+                        "engine), uncorrelated (same spectrum, independent pulsars) or none (leave it out)")
+    g.add_argument("--common-components", type=int, default=None, metavar="K",
+                   help="Fourier frequencies of the common process, at most --red-components (default: the same; "
+                        "fewer make the correlated engine much faster where the background is below the white noise)")
+
 
 def noise_settings(args):
     """:class:`~cwsearch.physics.noise.NoiseSettings` from parsed noise options."""
@@ -46,7 +54,9 @@ def noise_settings(args):
                          pulsar_red_noise=not args.no_pulsar_red_noise,
                          common_log10_amplitude=args.common_log10_amplitude,
                          common_index=args.common_index,
-                         white_noise_factors=not getattr(args, "no_white_noise_factors", False))
+                         white_noise_factors=not getattr(args, "no_white_noise_factors", False),
+                         common_correlation=getattr(args, "common_correlation", "hellings-downs"),
+                         common_components=getattr(args, "common_components", None))
 
 
 def load_array(args):

@@ -91,7 +91,7 @@ from ...core.fileio import write_json_atomic, write_table_atomic
 from ...data.catalog import read_catalog
 from ...data.truth import injected_binary
 from ...physics import fstat
-from ...physics.noise import NoiseWeighting
+from ...physics.correlated import array_noise
 from ...physics.relations import (chirp_mass_offset_table, LN10, MassRatioPrior, population_chirp_mass_table,
                                   redshift_at_distance, RELATIONS)
 from ...physics.sky import _healpix, pixel_centres, unit_vectors
@@ -519,12 +519,13 @@ def _read_fe_map(path: Path, candidate_row: int, frequency: float):
 
 
 def fe_sky_map(array, frequency, noise=None, nside=32):
-    """Earth-term Fe on a HEALPix grid at one frequency [Hz], from the dataset (cwsearch.physics.fstat)."""
-    engine = NoiseWeighting(array, noise)
-    proj = fstat.project(engine, np.array([float(frequency)]))
+    """Earth-term Fe on a HEALPix grid at one frequency [Hz], from the dataset, with the run's noise
+    model (:func:`cwsearch.physics.correlated.array_noise`: correlated Fe with a Hellings–Downs background)."""
+    engine = array_noise(array, noise)
+    proj = engine.projections(np.array([float(frequency)]))
     ra, dec = pixel_centres(nside)
     fplus, fcross = fstat.sky_patterns(proj, ra, dec)
-    return np.asarray(fstat.fe_statistic(proj, fplus, fcross))[:, 0]
+    return np.asarray(engine.fe_sky(proj, fplus, fcross).fe_map)[:, 0]
 
 
 def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000, *, array=None, noise=None):

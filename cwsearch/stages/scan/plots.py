@@ -9,6 +9,7 @@ import numpy as np
 
 from ...core.plotting import pyplot, save_figure, sky_map
 from ...data.truth import injected_binary
+from ...data.plots import correlation_plot  # noqa: F401  (the scan draws it; defined with the dataset plots)
 
 _LINE_STYLES = ("--", ":", "-.")
 
