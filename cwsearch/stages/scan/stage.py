@@ -721,8 +721,6 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
             files["null_plot"] = out / "null_fe.png"
             observed = float(np.nanmax(candidates["fe" if want_fe else "fp"]))
             scan_plots.null_plot(files["null_plot"], null, observed, statistic="Fe" if want_fe else "Fp")
-
-
         if engine.kind != "none" and len(array) >= 2:
             pairs = pair_correlations(array, noise)
             files["correlation_plot"] = out / "hd_correlations.png"
