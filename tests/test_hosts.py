@@ -46,6 +46,8 @@ def write_posterior(path, loc):
     t["chirp_mass"].unit = "solMass"
     path.parent.mkdir(parents=True, exist_ok=True)
     t.write(path, format="ascii.ecsv", overwrite=True)
+    if not (path.parent / "summary.json").exists():   # a finished follow-up writes its summary last
+        (path.parent / "summary.json").write_text("{}\n")
 
 
 def _offset(sep, angle):
@@ -171,11 +173,11 @@ def test_reweighting_equals_direct_numerical_integration(tmp_path, strain_prior)
 
     def host_ratio(lnmc, lnh, lnf):
         p_mass = stats.norm.pdf(lnmc, ln_mc_host, s_mc) * r_mc
-        p_dist = (stats.norm.pdf(np.log(distance(lnmc, lnh, lnf)), math.log(dist), derr / dist)
+        probability_by_distance = (stats.norm.pdf(np.log(distance(lnmc, lnh, lnf)), math.log(dist), derr / dist)
                   * inv_strain_prior(lnh))
         orbital_days = 2 / np.exp(lnf) / 86400
         p_per = stats.norm.pdf(orbital_days, period, perr) * orbital_days * r_f
-        return p_mass * p_dist * p_per
+        return p_mass * probability_by_distance * p_per
 
     # tensor-grid trapezoid over +-7 sigma (spacing < 0.5 of every Gaussian width in the integrand, where
     # the trapezoid rule converges exponentially)
@@ -235,7 +237,7 @@ def test_run_from_followup_posterior_writes_outputs(tmp_path, capsys):
     (tmp_path / "run" / "followup" / "summary.json").write_text(json.dumps(
         {"model": {"log10_frequency_band": [-8.1, -7.8], "chirp_mass_range": [1e7, 1e11],
                    "strain_range": [1e-18, 1e-11], "strain_prior": "log-uniform"}}))
-    rc = main(["hosts", str(tmp_path / "run"), "--catalog", str(cat), "--top", "3"])
+    rc = main(["hosts", "--out", str(tmp_path / "run"), "--catalog", str(cat), "--top", "3"])
     out = capsys.readouterr().out
     assert rc == 0
     assert "HOST" in out and "P(host not in catalogue)" in out
@@ -273,6 +275,7 @@ def test_scan_candidate_alone_uses_coarse_localisation_and_says_so(tmp_path):
                "pixel": [0]})
     (tmp_path / "run" / "scan").mkdir(parents=True)
     t.write(tmp_path / "run" / "scan" / "candidates.ecsv", format="ascii.ecsv")
+    (tmp_path / "run" / "scan" / "scan_summary.json").write_text("{}\n")  # a finished scan writes it last
     res = run_hosts(None, tmp_path / "run", HostsOptions(catalog=str(cat), resolution=5.0, max_samples=4000,
                                                            no_plots=True),
                     progress=False)
@@ -330,6 +333,7 @@ def test_missing_inputs_and_bad_options(tmp_path):
     (tmp_path / "r" / "followup").mkdir(parents=True)
     (tmp_path / "r" / "followup" / "posterior.ecsv").write_text("# %ECSV 1.0\n# ---\n# datatype:\n"
                                                                 "# - {name: ra, datatype: float64}\nra\n1.0\n")
+    (tmp_path / "r" / "followup" / "summary.json").write_text("{}\n")
     with pytest.raises(InputError, match="missing posterior column"):
         run_hosts(None, tmp_path / "r", HostsOptions(catalog=str(cat)), progress=False)
 

@@ -11,13 +11,15 @@ DESCRIPTION = """\
 Run the whole job on the bundled INVENTED demo data: 20 pulsars (SIMPSR01..20)
 over 12.5 years with one injected supermassive black-hole binary, and an
 invented galaxy catalogue. Scan -> follow-up of every candidate below the
-false-alarm threshold -> host ranking -> upper limits -> report.html, in a
-few minutes on a 2-core laptop. Prints where the report is and the headline.
+false-alarm threshold -> host ranking -> upper limits -> report.html, in
+a few minutes on a 2-core machine (the README gives the measured times; the
+first run compiles the numba kernels). Prints where the report is and the
+headline.
 
 The settings used are written to OUT/run.toml; edit a copy of it and run
 'cwsearch run' to change anything. --quick uses a coarser sky, fewer
-frequencies and a shorter sampler run (same code path, well under 2 minutes;
-the test suite runs it)."""
+frequencies and a shorter sampler run (same code path, about 25 s on an idle
+2-core machine, measured 22-27 s; the test suite runs it)."""
 
 EXAMPLE = """\
   cwsearch demo
@@ -35,7 +37,8 @@ DEMO = {
 #: --quick overrides
 QUICK = {
     "scan": {"nside": 4, "fmax": 5.0e-8, "null_sims": 0},
-    "followup": {"ess": 100.0, "temperatures": 4, "walkers": 18, "adapt_iterations": 60, "max_iterations": 200},
+    "followup": {"ess": 100.0, "temperatures": 4, "walkers": 18, "adapt_iterations": 60, "max_iterations": 200,
+                 "max_temperatures": 4},
     "hosts": {},
     "limits": {"nside": 2, "fmax": 5.0e-8, "quadrature": "fast"},
 }

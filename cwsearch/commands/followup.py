@@ -3,9 +3,13 @@
 from __future__ import annotations
 
 import json
-from dataclasses import fields
+from dataclasses import fields, replace
+from pathlib import Path
 
-from ._common import add_dataset_arguments, add_noise_arguments, load_array, noise_settings
+from ..core.errors import InputError
+
+from ._common import (add_dataset_arguments, add_noise_arguments, load_array, noise_settings,
+                      run_folder_guard)
 
 DESCRIPTION = (
     "Fit one circular binary (Earth + pulsar term, pulsar phases marginalised) to the top candidate(s) of "
@@ -24,10 +28,16 @@ EXAMPLE = (
 def add_arguments(parser):
     add_dataset_arguments(parser)
     g = parser.add_argument_group("what to follow")
-    g.add_argument("--candidate", type=int, default=None, metavar="K",
-                   help="follow row K (1-based) of scan/candidates.ecsv")
+    g.add_argument("--candidate", default=None, metavar="K|candidate_K",
+                   help="follow row K (1 = best) of scan/candidates.ecsv; its name candidate_K works too")
     g.add_argument("--top", type=int, default=1, metavar="N",
                    help="follow the N best candidates (default 1; a subfolder each when N > 1)")
+    g.add_argument("--fap-threshold", type=float, default=None, metavar="P",
+                   help="follow the best candidates whose analytic false-alarm probability is below P (at most "
+                        "--max-candidates); run-file key [followup] fap_threshold")
+    g.add_argument("--max-candidates", type=int, default=None, metavar="N",
+                   help="with --fap-threshold: at most N candidates (default 3); run-file key "
+                        "[followup] max_candidates")
     g.add_argument("--frequency", type=float, default=None, metavar="HZ", help="explicit target frequency [Hz]")
     g.add_argument("--ra", type=float, default=None, metavar="DEG", help="explicit target right ascension [deg]")
     g.add_argument("--dec", type=float, default=None, metavar="DEG", help="explicit target declination [deg]")
@@ -56,9 +66,31 @@ def add_arguments(parser):
                    help="write the checkpoint every N iterations (default 100)")
     s.add_argument("--adapt-iterations", type=int, default=500, metavar="N",
                    help="adapt the temperature ladder during the first N iterations (default 500)")
+    s.add_argument("--max-temperatures", type=int, default=None, metavar="N",
+                   help="the ladder may grow to N temperatures where neighbours rarely swap (default 3 x "
+                        "--temperatures, at most 40; --max-temperatures equal to --temperatures keeps it fixed)")
     s.add_argument("--resume", action="store_true", help="continue from the checkpoint in the output folder")
     parser.add_argument("--no-plots", action="store_true", help="skip the PNG plots")
     add_noise_arguments(parser)
+
+
+def threshold_top(run_dir, fap_threshold, max_candidates) -> int:
+    """How many of the best scan candidates have an analytic FAP below ``fap_threshold`` (at most
+    ``max_candidates``; at least 1 is an error message, not a silent empty run)."""
+    # lazy: the numerical code behind a command's run (keeps `cwsearch --help` fast)
+    import numpy as np
+    from ..job.runfolder import read_table as _read_table
+
+    path = Path(run_dir) / "scan" / "candidates.ecsv"
+    table = _read_table(path) if path.is_file() else None
+    if table is None or "fap" not in table.colnames:
+        raise InputError("--fap-threshold needs the scan's candidates.ecsv (run cwsearch scan first)", file=path)
+    threshold = 0.01 if fap_threshold is None else float(fap_threshold)
+    n = int(np.sum(np.asarray(table["fap"], dtype=float) < threshold))
+    if n == 0:
+        raise InputError(f"--fap-threshold {threshold:g}: no scan candidate is below it "
+                         f"(best {float(np.min(table['fap'])):.2g})", file=path)
+    return min(n, int(max_candidates))
 
 
 def run(args) -> int:
@@ -66,9 +98,13 @@ def run(args) -> int:
     from ..stages.followup.stage import FollowupOptions, run_followup
 
     options = FollowupOptions(**{f.name: getattr(args, f.name) for f in fields(FollowupOptions)})
+    if args.fap_threshold is not None or args.max_candidates is not None:
+        options = replace(options, top=threshold_top(args.out, args.fap_threshold,
+                                                     3 if args.max_candidates is None else args.max_candidates))
     array = load_array(args)
-    result = run_followup(array, args.out, options, noise=noise_settings(args), seed=args.seed,
-                          progress=not args.quiet)
+    with run_folder_guard(args.out, array, args.dataset):
+        result = run_followup(array, args.out, options, noise=noise_settings(args), seed=args.seed,
+                              progress=not args.quiet)
     if args.json:
         print(json.dumps(result.summary, indent=2, default=str))
     elif not args.quiet:

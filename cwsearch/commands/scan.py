@@ -7,7 +7,7 @@ import math
 import time
 
 from ._common import (add_dataset_arguments, add_grid_arguments, add_noise_arguments, load_array,
-                      noise_settings)
+                      noise_settings, run_folder_guard)
 
 DESCRIPTION = """\
 Scan every GW frequency from 1/T_span (spacing 1/(oversample*T_span)) up to
@@ -97,8 +97,9 @@ def run(args) -> int:
     t = time.time()
     array = load_array(args)
     read_seconds = time.time() - t
-    result = run_scan(array, args.out, options, noise=noise_settings(args), seed=args.seed,
-                      progress=not args.quiet, timings={"read_seconds": read_seconds})
+    with run_folder_guard(args.out, array, args.dataset):
+        result = run_scan(array, args.out, options, noise=noise_settings(args), seed=args.seed,
+                          progress=not args.quiet, timings={"read_seconds": read_seconds})
     summary = result.summary
     if args.json:
         print(json.dumps(summary, indent=2))

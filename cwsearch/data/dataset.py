@@ -72,6 +72,8 @@ from astropy.units import UnitsWarning
 from ..core.constants import DAY_SECONDS
 from ..core.errors import InputError
 from ..core.fileio import write_json_atomic, write_table_atomic
+from ..core.safeio import (MAX_RESIDUAL_OVER_SIGMA, MAX_RESIDUAL_SECONDS, MJD_RANGE, SIGMA_RANGE, check_folder,
+                           escape_text, is_regular_file, read_input_bytes)
 from .model import default_design_matrix, Array, DEFAULT_DESIGN_COLUMNS, Pulsar, PulsarNoise
 
 PULSARS_FILE = "pulsars.ecsv"
@@ -95,47 +97,56 @@ class DatasetWarning(UserWarning):
 
 
 # ----------------------------------------------------------------- reading
-def read_dataset(path) -> Array:
+def read_dataset(path, *, mjd_range=None) -> Array:
     """Read and validate a dataset folder; return an :class:`~cwsearch.data.model.Array`.
 
     Pulsars keep the order of ``pulsars.ecsv``. Angles are converted to
     radians, distances to kpc, residuals and sigmas to seconds, TOAs to MJD
     days. Raises :class:`~cwsearch.core.errors.InputError` (file, row, column)
     on any problem; see the module docstring for the format.
+
+    Every file is read through :mod:`cwsearch.core.safeio`: regular files
+    only (never a FIFO or a device), symlinks only to places inside the
+    dataset folder, a size cap. Values must be plausible: TOAs within
+    ``mjd_range`` (default :data:`~cwsearch.core.safeio.MJD_RANGE`, MJD
+    40000-70000), sigmas within :data:`~cwsearch.core.safeio.SIGMA_RANGE`,
+    ``|residual|`` at most 1 s and at most 10^6 sigma.
     """
     folder = Path(path)
-    if not folder.exists():
+    if not os.path.lexists(folder):
         raise InputError("dataset folder not found", file=folder)
     if not folder.is_dir():
         raise InputError("not a folder (a dataset is a folder with pulsars.ecsv and residuals/)", file=folder)
+    mjd_range = _mjd_range(mjd_range)
     pulsar_file = folder / PULSARS_FILE
-    if not pulsar_file.is_file():
+    if not os.path.lexists(pulsar_file):
         raise InputError(f"dataset folder has no {PULSARS_FILE}", file=folder)
-    rows = _read_pulsar_table(pulsar_file)
+    rows = _read_pulsar_table(pulsar_file, folder)
 
     res_dir = folder / RESIDUALS_DIR
     if not res_dir.is_dir():
         raise InputError(f"dataset folder has no {RESIDUALS_DIR}/ folder", file=folder)
+    check_folder(res_dir)
     expected = {f"{row['name']}.ecsv" for row in rows}
     unused = sorted(e.name for e in res_dir.iterdir() if not e.name.startswith(".") and e.name not in expected)
     if unused:
-        shown = ", ".join(unused[:5]) + (" ..." if len(unused) > 5 else "")
+        shown = escape_text(", ".join(unused[:5]) + (" ..." if len(unused) > 5 else ""))
         warnings.warn(f"{res_dir}: {len(unused)} file(s) not named in {PULSARS_FILE} are ignored: {shown}",
                       DatasetWarning, stacklevel=2)
 
     residual_data = {}
     for i, row in enumerate(rows):
         rfile = res_dir / f"{row['name']}.ecsv"
-        if not rfile.is_file():
+        if not os.path.lexists(rfile):
             raise InputError(f"residual file for pulsar {row['name']} (row {i + 1} of {PULSARS_FILE}) "
                              "is missing", file=rfile)
-        residual_data[row["name"]] = _read_residual_table(rfile)
+        residual_data[row["name"]] = _read_residual_table(rfile, folder, mjd_range)
 
     noise_file = folder / NOISE_FILE
     noise = {row["name"]: PulsarNoise(red_log10_amplitude=row["red_log10_amplitude"],
                                       red_index=row["red_index"]) for row in rows}
-    if noise_file.exists():
-        _read_noise_table(noise_file, noise, residual_data)
+    if os.path.lexists(noise_file):
+        _read_noise_table(noise_file, noise, residual_data, folder)
 
     pulsars = []
     for row in rows:
@@ -145,19 +156,33 @@ def read_dataset(path) -> Array:
                               sigmas=data["sigma"], backends=data["backend"],
                               extra_design=data["design"], extra_design_names=data["design_names"],
                               noise=noise[row["name"]]))
-    return Array(pulsars)
+    array = Array(pulsars)
+    array.source = folder  # the dataset folder (plots read its injection.json, when present, for the truth)
+    return array
 
 
-def _read_table(file: Path):
+def _mjd_range(mjd_range):
+    """The plausible TOA range (lo, hi) [MJD] in force: ``mjd_range`` or :data:`MJD_RANGE`."""
+    if mjd_range is None:
+        return MJD_RANGE
+    try:
+        lo, hi = (float(v) for v in mjd_range)
+    except (TypeError, ValueError):
+        raise InputError(f"--mjd-range needs two numbers LO HI, not {mjd_range!r}") from None
+    if not (math.isfinite(lo) and math.isfinite(hi) and lo < hi):
+        raise InputError(f"--mjd-range: need finite LO < HI, got {lo} {hi}")
+    return lo, hi
+
+
+def _read_table(file: Path, root=None):
     """Parse one ECSV file into an astropy Table; every failure becomes an InputError.
 
-    Plain files take the fast path (:func:`_fast_table`), anything else
-    astropy's reader (:func:`_strict_table`); both give identical tables.
+    The bytes come from :func:`cwsearch.core.safeio.read_input_bytes` (regular file, symlink inside
+    ``root``, size cap), for both paths. Plain files take the fast path (:func:`_fast_table`), anything
+    else astropy's reader (:func:`_strict_table`); both give identical tables, and the plausibility checks
+    after parsing (:func:`check_residual_values`) are the same for both.
     """
-    try:
-        raw = file.read_bytes()
-    except OSError as exc:
-        raise InputError(f"cannot read ({exc.strerror})", file=file) from None
+    raw = read_input_bytes(file, root, what="file")
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
@@ -429,7 +454,14 @@ def _text(table, name, file):
     return values
 
 
+#: longest pulsar name (it becomes a file name; file systems allow 255 bytes)
+MAX_NAME_LENGTH = 100
+
+
 def _check_name(name, file, row):
+    if len(name) > MAX_NAME_LENGTH:
+        raise InputError(f"pulsar name {name[:40]!r}... is {len(name)} characters long; at most {MAX_NAME_LENGTH} "
+                         "(it becomes a file name)", file=file, row=row, column="name")
     if not NAME_PATTERN.fullmatch(name):
         raise InputError(f"pulsar name {name[:40]!r} may only contain letters, digits and _ + . - "
                          "(it becomes a file name)", file=file, row=row, column="name")
@@ -438,8 +470,8 @@ def _check_name(name, file, row):
                          "(it becomes a file name)", file=file, row=row, column="name")
 
 
-def _read_pulsar_table(file):
-    table = _read_table(file)
+def _read_pulsar_table(file, root=None):
+    table = _read_table(file, root)
     _require_columns(table, _PULSAR_COLUMNS, file)
     if len(table) == 0:
         raise InputError("no pulsars (the table has no data rows)", file=file)
@@ -502,11 +534,12 @@ def _read_pulsar_table(file):
 def _warn_unknown_columns(table, known, file, prefixes=()):
     unknown = [c for c in table.colnames if c not in known and not c.startswith(prefixes or ("\0",))]
     if unknown:
-        warnings.warn(f"{file}: unknown column(s) ignored: {', '.join(unknown)}", DatasetWarning, stacklevel=4)
+        warnings.warn(f"{file}: unknown column(s) ignored: {escape_text(', '.join(unknown))}", DatasetWarning,
+                      stacklevel=4)
 
 
-def _read_residual_table(file):
-    table = _read_table(file)
+def _read_residual_table(file, root=None, mjd_range=None):
+    table = _read_table(file, root)
     _require_columns(table, _RESIDUAL_COLUMNS, file)
     if len(table) == 0:
         raise InputError("no TOAs (the table has no data rows)", file=file)
@@ -517,6 +550,7 @@ def _read_residual_table(file):
     if (sigma <= 0).any():
         row = _first_bad(sigma <= 0)
         raise InputError(f"sigma must be > 0 (got {float(sigma[row - 1])!r})", file=file, row=row, column="sigma")
+    check_residual_values(mjd, residual, sigma, file, mjd_range, mjd_unit=table["mjd"].unit)
     step = np.diff(mjd)
     if (step < 0).any():
         row = _first_bad(step < 0) + 1
@@ -563,8 +597,38 @@ def _check_design_rank(mjd, design, design_names, file):
                              column=where if where in design_names else None)
 
 
-def _read_noise_table(file, noise, residual_data):
-    table = _read_table(file)
+def check_residual_values(mjd, residual, sigma, file, mjd_range=None, *, mjd_unit=None):
+    """Refuse implausible TOAs, sigmas and residuals (the ranges of :mod:`cwsearch.core.safeio`).
+
+    Every reading path (the strict one and any faster one) calls this after parsing, so the
+    plausibility rules live in one place.
+    """
+    lo, hi = _mjd_range(mjd_range)
+    bad = (mjd < lo) | (mjd > hi)
+    if bad.any():
+        row = _first_bad(bad)
+        hint = ""
+        if mjd_unit is not None and str(mjd_unit) not in ("d", "day"):
+            hint = f"; the column's unit is '{mjd_unit}', but an MJD is a date counted in days (unit: d)"
+        raise InputError(f"mjd {float(mjd[row - 1])!r} is outside the plausible range {lo:g}-{hi:g} "
+                         f"(widen it with --mjd-range LO HI){hint}", file=file, row=row, column="mjd")
+    smin, smax = SIGMA_RANGE
+    bad = (sigma < smin) | (sigma > smax)
+    if bad.any():
+        row = _first_bad(bad)
+        raise InputError(f"sigma {float(sigma[row - 1])!r} s is outside the plausible range {smin:g}-{smax:g} s "
+                         "(check the column's unit)", file=file, row=row, column="sigma")
+    size = np.abs(residual)
+    bad = (size > MAX_RESIDUAL_SECONDS) | (size > MAX_RESIDUAL_OVER_SIGMA * sigma)
+    if bad.any():
+        row = _first_bad(bad)
+        raise InputError(f"|residual| {float(size[row - 1])!r} s is implausible (at most {MAX_RESIDUAL_SECONDS:g} s "
+                         f"and {MAX_RESIDUAL_OVER_SIGMA:g} x sigma; check the column's unit)", file=file, row=row,
+                         column="residual")
+
+
+def _read_noise_table(file, noise, residual_data, root=None):
+    table = _read_table(file, root)
     _require_columns(table, _NOISE_COLUMNS, file)
     if len(table) == 0:
         return  # an empty noise table means: defaults for everyone
@@ -602,12 +666,12 @@ def dataset_files(path):
     """
     folder = Path(path)
     files = [PULSARS_FILE]
-    if (folder / NOISE_FILE).is_file():
+    if is_regular_file(folder / NOISE_FILE):
         files.append(NOISE_FILE)
     res_dir = folder / RESIDUALS_DIR
     if res_dir.is_dir():
         files += sorted(f"{RESIDUALS_DIR}/{p.name}" for p in res_dir.iterdir()
-                        if p.is_file() and p.suffix == ".ecsv" and not p.name.startswith("."))
+                        if is_regular_file(p) and p.suffix == ".ecsv" and not p.name.startswith("."))
     return files
 
 
@@ -620,10 +684,7 @@ def dataset_checksum(path) -> str:
     folder = Path(path)
     digest = hashlib.sha256()
     for rel in dataset_files(folder):
-        try:
-            data = (folder / rel).read_bytes()
-        except OSError as exc:
-            raise InputError(f"cannot read ({exc.strerror})", file=folder / rel) from None
+        data = read_input_bytes(folder / rel, folder)
         digest.update(rel.encode("utf-8") + b"\0" + str(len(data)).encode() + b"\0")
         digest.update(data)
     return digest.hexdigest()
@@ -740,6 +801,11 @@ def write_dataset(array, path, injection=None, *, overwrite=False) -> None:
             if not (target / PULSARS_FILE).is_file():
                 raise InputError(f"refusing to overwrite a folder that is not a dataset (no {PULSARS_FILE})",
                                  file=target)
+            foreign = _non_dataset_entries(target)
+            if foreign:
+                shown = ", ".join(foreign[:3]) + (" ..." if len(foreign) > 3 else "")
+                raise InputError(f"refusing to overwrite: the folder holds more than a dataset ({shown}); "
+                                 "move those files away or choose another folder", file=target)
         replace = True
     noise_table = _noise_table(array)
     try:
@@ -773,6 +839,23 @@ def write_dataset(array, path, injection=None, *, overwrite=False) -> None:
         raise
 
 
+def _non_dataset_entries(folder: Path) -> list:
+    """Entries of ``folder`` that are not part of a dataset (what ``--overwrite`` would destroy besides it).
+
+    A dataset holds only pulsars.ecsv, noise.ecsv, injection.json and residuals/ with ``*.ecsv`` files
+    (regular files, no symlinks).
+    """
+    allowed = {PULSARS_FILE, NOISE_FILE, INJECTION_FILE}
+    foreign = []
+    for entry in sorted(folder.iterdir()):
+        if entry.name == RESIDUALS_DIR and entry.is_dir() and not entry.is_symlink():
+            foreign += [f"{RESIDUALS_DIR}/{p.name}" for p in sorted(entry.iterdir())
+                        if p.is_symlink() or not p.is_file() or p.suffix != ".ecsv"]
+        elif entry.name not in allowed or entry.is_symlink() or not entry.is_file():
+            foreign.append(entry.name)
+    return foreign
+
+
 def _umask() -> int:
     mask = os.umask(0)
     os.umask(mask)
@@ -780,4 +863,4 @@ def _umask() -> int:
 
 
 __all__ = ["read_dataset", "write_dataset", "dataset_checksum", "dataset_files", "DatasetWarning",
-           "NAME_PATTERN"]
+           "NAME_PATTERN", "check_residual_values", "MAX_NAME_LENGTH"]

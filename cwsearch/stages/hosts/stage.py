@@ -83,12 +83,15 @@ from astropy.table import Table, vstack
 from scipy.spatial import cKDTree
 from scipy.special import logsumexp
 
+from ...core.candidates import candidate_name, candidate_row
 from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
+from ...core.safeio import escape_text, read_input_text, require_finished
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...data.catalog import read_catalog
+from ...data.truth import injected_binary
 from ...physics import fstat
-from ...physics.noise import NoiseWeighting
+from ...physics.correlated import array_noise
 from ...physics.relations import (chirp_mass_offset_table, LN10, MassRatioPrior, population_chirp_mass_table,
                                   redshift_at_distance, RELATIONS)
 from ...physics.sky import _healpix, pixel_centres, unit_vectors
@@ -421,8 +424,10 @@ def _column_values(table, name, unit, path, positive=False):
 def read_posterior(path, label=None):
     """Posterior samples from a follow-up ``posterior.ecsv`` as a :class:`Localisation`."""
     path = Path(path)
+    require_finished(path, path.parent / "summary.json", stage="follow-up", command="cwsearch followup")
+    text = read_input_text(path, path.parent.parent, what="posterior")
     try:
-        table = Table.read(path, format="ascii.ecsv")
+        table = Table.read(text + "\n", format="ascii.ecsv")
     except Exception as exc:
         raise InputError(f"cannot read the posterior: {str(exc).splitlines()[0] if str(exc) else exc}",
                          file=path) from None
@@ -447,8 +452,8 @@ def read_posterior(path, label=None):
 def _followup_prior(path: Path):
     """The follow-up's search prior from its ``summary.json`` (``model`` entry), or None if not found."""
     try:
-        model = json.loads(path.read_text()).get("model") or {}
-    except (OSError, ValueError, AttributeError):
+        model = json.loads(read_input_text(path, path.parent.parent, what="follow-up summary")).get("model") or {}
+    except (InputError, ValueError, AttributeError, RecursionError):
         return None
     out = {}
     try:
@@ -487,7 +492,7 @@ def _find_sky_map(scan_dir: Path, options):
 def _read_fe_map(path: Path, candidate_row: int, frequency: float):
     """(nside, pixels, fe) from an Fe map table, or None if it is not a usable map for this candidate."""
     try:
-        table = Table.read(path, format="ascii.ecsv")
+        table = Table.read(read_input_text(path) + "\n", format="ascii.ecsv")
     except Exception:
         return None
     if "pixel" not in table.colnames or "fe" not in table.colnames or len(table) == 0:
@@ -514,12 +519,13 @@ def _read_fe_map(path: Path, candidate_row: int, frequency: float):
 
 
 def fe_sky_map(array, frequency, noise=None, nside=32):
-    """Earth-term Fe on a HEALPix grid at one frequency [Hz], from the dataset (cwsearch.physics.fstat)."""
-    engine = NoiseWeighting(array, noise)
-    proj = fstat.project(engine, np.array([float(frequency)]))
+    """Earth-term Fe on a HEALPix grid at one frequency [Hz], from the dataset, with the run's noise
+    model (:func:`cwsearch.physics.correlated.array_noise`: correlated Fe with a Hellings–Downs background)."""
+    engine = array_noise(array, noise)
+    proj = engine.projections(np.array([float(frequency)]))
     ra, dec = pixel_centres(nside)
     fplus, fcross = fstat.sky_patterns(proj, ra, dec)
-    return np.asarray(fstat.fe_statistic(proj, fplus, fcross))[:, 0]
+    return np.asarray(engine.fe_sky(proj, fplus, fcross).fe_map)[:, 0]
 
 
 def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000, *, array=None, noise=None):
@@ -532,8 +538,11 @@ def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000, *, a
     """
     scan_dir = Path(run_dir) / "scan"
     path = scan_dir / "candidates.ecsv"
+    require_finished(path, scan_dir / "scan_summary.json", stage="scan", command="cwsearch scan")
     try:
-        table = Table.read(path, format="ascii.ecsv")
+        table = Table.read(read_input_text(path, Path(run_dir), what="candidates file") + "\n", format="ascii.ecsv")
+    except InputError:
+        raise
     except Exception as exc:
         raise InputError(f"cannot read scan candidates: {str(exc).splitlines()[0] if str(exc) else exc}",
                          file=path) from None
@@ -545,10 +554,10 @@ def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000, *, a
     fe_all = np.asarray(table["fe"], float)
     if options.candidate is not None:
         try:
-            row = int(options.candidate)
+            row = candidate_row(options.candidate)
         except ValueError:
-            raise InputError(f"--candidate {options.candidate!r}: give a scan candidate row number (1 = best)",
-                             file=path) from None
+            raise InputError(f"--candidate {options.candidate!r}: give a scan candidate row number (1 = best) "
+                             "or its name candidate_K", file=path) from None
         if not 1 <= row <= len(table):
             raise InputError(f"--candidate {row}: the scan has {len(table)} candidate(s)", file=path)
         i = row - 1
@@ -611,7 +620,7 @@ def find_localisations(run_dir, options, span_seconds, rng, *, array=None, noise
                 found.append((sub / "posterior.ecsv", sub.name))
     if found:
         if options.candidate is not None:
-            found = [f for f in found if f[1] == str(options.candidate)]
+            found = [f for f in found if _same_candidate(f, options.candidate)]
             if not found:
                 raise InputError(f"--candidate {options.candidate}: no follow-up folder of that name", file=follow)
         return [read_posterior(p, label) for p, label in found]
@@ -881,7 +890,7 @@ def rank_candidate(loc, catalog, model, options, rng, *, n_catalogue):
         "localisation_description": loc.description,
         "localisation_source": loc.source,
         "n_samples": len(loc),
-        "search_prior": {"source": "follow-up summary.json" if loc.prior else "defaults (docs/design.md section 8)",
+        "search_prior": {"source": "follow-up summary.json" if loc.prior else "defaults (docs/design.md §8)",
                          "frequency_band_hz": list(model.frequency_band),
                          "chirp_mass_range_msun": list(model.chirp_mass_range),
                          "strain_range": list(model.strain_range), "strain_prior": model.strain_prior},
@@ -956,7 +965,8 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
         if several:
             write_table_atomic(folder / "ranking.ecsv", res.ranking)
             write_json_atomic(folder / "hosts_summary.json", res.summary)
-        res.plots = host_plots.make_plots(folder, res, model, options) if not options.no_plots else []
+        res.plots = (host_plots.make_plots(folder, res, model, options, truth=_truth(array, run_dir))
+                     if not options.no_plots else [])
     ranking = vstack([r.ranking for r in results], metadata_conflicts="silent") if several else results[0].ranking
     write_table_atomic(out_dir / "ranking.ecsv", ranking)
     first = results[0].summary
@@ -1000,7 +1010,7 @@ def format_table(result: HostsResult, top=10) -> str:
         t = res.ranking
         for k in range(min(top, len(t))):
             r = t[k]
-            lines.append(f"  {k + 1:>3} {str(r['name'])[:18]:<18} {r['ra']:7.2f} {r['dec']:7.2f} "
+            lines.append(f"  {k + 1:>3} {escape_text(str(r['name'])[:18]):<18} {r['ra']:7.2f} {r['dec']:7.2f} "
                          f"{r['distance']:7.1f} {r['probability']:7.4f} {r['log_bayes_factor']:7.2f} "
                          f"{r['sky_density']:8.3g} {r['distance_consistency']:7.3g} {r['mass_consistency']:7.3g} "
                          f"{r['period_consistency']:6.3g} {r['coalescence_ok']:5.2f}")
@@ -1015,6 +1025,31 @@ def format_table(result: HostsResult, top=10) -> str:
 def summary_json(result: HostsResult) -> str:
     return json.dumps(result.summary, indent=2, default=lambda o: o.item() if hasattr(o, "item") else str(o))
 
+
+def _truth(array, run_dir):
+    """The injected binary of a simulated dataset (for over-plotting), or None; without an array (the
+    ``cwsearch hosts`` command) it is found through the run folder's dataset.json."""
+    return injected_binary(array) or injected_binary(run_dir)
+
+
+def _same_candidate(found, wanted) -> bool:
+    """Whether a follow-up posterior ``(path, label)`` is the candidate named ``wanted`` (folder name, row K or
+    candidate_K; a single follow-up in followup/ itself is matched by the scan row it started from)."""
+    path, label = found
+    if label == str(wanted):
+        return True
+    try:
+        row = candidate_row(wanted)
+    except ValueError:
+        return False
+    if label == candidate_name(row):
+        return True
+    try:
+        start = json.loads((path.parent / "summary.json").read_text(encoding="utf-8")).get("start") or {}
+    except (OSError, ValueError):
+        return False
+    rank = (start.get("candidate_row") or {}).get("rank") if isinstance(start.get("candidate_row"), dict) else None
+    return rank is not None and int(rank) == row
 
 __all__ = [
     "SEARCH_CHIRP_MASS_RANGE", "SEARCH_STRAIN_RANGE", "SEARCH_FREQUENCY_MAX", "DEFAULT_SPAN_YEARS",

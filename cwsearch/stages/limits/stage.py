@@ -21,6 +21,13 @@ of Earth-term signals with random orientation give 2Fe above the observed
 value, using ``2Fe ~ χ'²(4, ρ²)``, ``ρ² = bᵀ M b`` (non-central χ²,
 Ellis, Siemens & Creighton 2012), averaged over the same kind of angle grid.
 
+Noise model: the run's (:func:`cwsearch.physics.correlated.array_noise`). With a
+Hellings–Downs (or other correlated) common process N and M use the array
+inner product (:func:`cwsearch.physics.correlated.correlated_network`: X, Y
+of the weighted data, M minus the cross-pulsar blocks), so both limits and
+the galaxies' chirp-mass limits are conditional on the correlated background;
+``2Fe ~ χ'²(4, ρ²)`` still holds exactly with the true covariance.
+
 Sky averages treat the source position as uniform over the sky (HEALPix
 pixels have equal areas): the Bayesian sky-averaged limit is the 95 %
 quantile of the posterior marginalised over pixels (each pixel weighted by
@@ -65,11 +72,13 @@ from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...core.progress import progress as progress_bar
 from ...data.catalog import read_catalog
+from ...data.healpix_fits import write_healpix_map
 from ...inference.execution import TaskRunner
 from ...inference.sampling import run_sampler, SamplerSettings
 from ...physics import fstat, sky
 from ...physics.fstat import default_max_frequency, frequency_grid, parameters_to_amplitudes
-from ...physics.noise import NoiseSettings, NoiseWeighting
+from ...physics.correlated import array_noise
+from ...physics.noise import NoiseSettings
 from ...physics.waveform import chirp_mass_for_strain
 
 #: credibility / confidence level of every limit
@@ -724,6 +733,10 @@ class Galaxy:
     distance: float
 
 
+#: most local worker processes
+MAX_WORKERS = 1024
+
+
 def parse_galaxies(entries):
     """:class:`Galaxy` objects from ``(NAME, RA_DEG, DEC_DEG, DISTANCE_MPC)`` tuples (CLI/TOML)."""
     out = []
@@ -953,6 +966,9 @@ class LimitsOptions:
                 f"not {self.mcmc_check}")
         if self.select and not self.catalog:
             bad("select", "needs --catalog FILE")
+        if self.workers is not None and self.workers > MAX_WORKERS:
+            bad("workers", f"at most {MAX_WORKERS}, not {self.workers}")
+        parse_galaxies(self.galaxy)   # a bad galaxy is refused now (and by `run --check`), not mid-run
         return self
 
 
@@ -989,7 +1005,7 @@ def _network_dof(mmat):
 
 
 def compute_limits(proj, ra, dec, *, method="bayes", quadrature="standard", workers=1, scheduler=None,
-                   progress=False, level=LEVEL):
+                   progress=False, level=LEVEL, noise=None):
     """Per-position limits from projections at every frequency of ``proj``.
 
     Parameters
@@ -997,6 +1013,9 @@ def compute_limits(proj, ra, dec, *, method="bayes", quadrature="standard", work
     proj : :class:`cwsearch.physics.fstat.Projections`
     ra, dec : arrays (S,) [rad] of sky positions (pixel centres, galaxies)
     method, quadrature : as in :class:`LimitsOptions`
+    noise : the run's :class:`cwsearch.physics.correlated.ArrayNoise` that made ``proj``
+        (None: per-pulsar projections); with a correlated common process N and M carry
+        the cross-pulsar terms (:func:`cwsearch.physics.correlated.correlated_network`).
     workers, scheduler : the task runner (:class:`cwsearch.inference.execution.TaskRunner`)
 
     Returns a dict of (S, F) arrays in strain: ``bayes`` (h95), ``bayes_log_evidence``,
@@ -1006,8 +1025,12 @@ def compute_limits(proj, ra, dec, *, method="bayes", quadrature="standard", work
     want_bayes = method in ("bayes", "both")
     want_freq = method in ("frequentist", "both")
     fplus, fcross = fstat.sky_patterns(proj, np.asarray(ra), np.asarray(dec))
-    nvec, mmat = fstat.network_vectors(proj, fplus, fcross)
-    fe = fstat.fe_statistic(proj, fplus, fcross)
+    if noise is None:
+        nvec, mmat = fstat.network_vectors(proj, fplus, fcross)
+        fe = fstat.fe_statistic(proj, fplus, fcross)
+    else:
+        nvec, mmat = noise.network(proj, fplus, fcross)
+        fe = noise.fe_sky(proj, fplus, fcross).fe_map
     n_pos, n_freq = fe.shape
     rows_n = nvec.reshape(-1, 4)
     rows_m = mmat.reshape(-1, 4, 4)
@@ -1059,6 +1082,24 @@ def _sky_averages(res, frequencies, n_pix, level=LEVEL):
     return out
 
 
+def _positive_min(pixel_limits):
+    """Per column (frequency), the lowest positive per-pixel limit (NaN if none): an empty frequentist
+    limit (0, see :func:`_best_pixel`) is not a best sky position."""
+    x = np.asarray(pixel_limits, dtype=float)
+    m = np.where(x > 0, x, np.inf).min(axis=0)
+    return np.where(np.isfinite(m), m, np.nan)
+
+
+def _best_pixel(pixel_limits):
+    """Best (lowest) per-pixel limit among pixels with a positive, finite limit, and how many pixels have
+    an empty limit (0: the observed Fe is below what noise alone gives 95 % of the time, so the frequentist
+    construction excludes every strain; such a pixel has no informative limit, and is not "best")."""
+    x = np.asarray(pixel_limits, dtype=float)
+    ok = np.isfinite(x) & (x > 0)
+    return {"best_pixel_strain_95": float(x[ok].min()) if ok.any() else None,
+            "pixels_with_empty_limit": int(np.sum(x == 0))}
+
+
 def _finite_or_none(v):
     v = float(v)
     return v if math.isfinite(v) else None
@@ -1085,6 +1126,12 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     if fmin is not None and options.fmax is None and not fmax > fmin:
         fmax = default_max_frequency(array)
     frequencies = frequency_grid(array, fmin=fmin, fmax=fmax, oversample=int(options.oversample))
+    fmax_note = None
+    if options.fmax is None and fmax < default_max_frequency(array):
+        fmax_note = (f"highest frequency {fmax:.3g} Hz by default, lower than the scan's default "
+                     f"{default_max_frequency(array):.3g} Hz (1/(2 x median TOA spacing), at most 1e-6 Hz): every "
+                     "limit frequency costs a quadrature over every sky pixel, and limits matter most where the "
+                     "array is sensitive; set fmax (--fmax) to go higher")
     workers = None if not options.workers else int(options.workers)
     requested_sky_index = None
     if options.sky_frequency is not None:
@@ -1094,8 +1141,8 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
             raise InputError(f"option --sky-frequency: {options.sky_frequency:.4g} Hz is outside the band "
                              f"{frequencies[0]:.4g}-{frequencies[-1]:.4g} Hz")
 
-    engine = NoiseWeighting(array, noise)
-    proj = fstat.project(engine, frequencies)
+    engine = array_noise(array, noise)
+    proj = engine.projections(frequencies)
     nside = int(options.nside)
     n_pix = sky.n_pixels(nside)
     ra_pix, dec_pix = sky.pixel_centres(nside)
@@ -1104,7 +1151,7 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     # the frequentist limit costs ~5 % of the Bayesian one, so "bayes" reports it too
     computed = "frequentist" if options.method == "frequentist" else "both"
     res = compute_limits(proj, ra, dec, method=computed, quadrature=options.quadrature, workers=workers,
-                         scheduler=options.scheduler or None, progress=progress)
+                         scheduler=options.scheduler or None, progress=progress, noise=engine)
     averages = _sky_averages(res, frequencies, n_pix)
     primary = "frequentist" if options.method == "frequentist" else "bayes"
     pixel_limits = res[primary][:n_pix]
@@ -1113,7 +1160,7 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     ftab = Table()
     ftab["frequency"] = frequencies * u.Hz
     ftab["strain_95"] = averages[primary]
-    ftab["strain_95_best"] = pixel_limits.min(axis=0)
+    ftab["strain_95_best"] = _positive_min(pixel_limits)
     ftab["strain_95_worst"] = pixel_limits.max(axis=0)
     ftab["strain_95_median"] = np.median(pixel_limits, axis=0)
     ftab["best_pixel"] = np.argmin(pixel_limits, axis=0)
@@ -1121,7 +1168,7 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     if primary == "bayes":
         pf = res["frequentist"][:n_pix]
         ftab["strain_95_frequentist"] = averages["frequentist"]
-        ftab["strain_95_frequentist_best"] = pf.min(axis=0)
+        ftab["strain_95_frequentist_best"] = _positive_min(pf)
         ftab["strain_95_frequentist_worst"] = pf.max(axis=0)
     ftab["fe_max"] = res["fe"][:n_pix].max(axis=0)
     ftab.meta.update({"method": primary, "level": LEVEL, "nside": nside,
@@ -1175,7 +1222,7 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     if options.mcmc_check is not None:
         pix = int(options.mcmc_check)
         fplus, fcross = fstat.sky_patterns(proj, ra_pix[pix:pix + 1], dec_pix[pix:pix + 1])
-        nv, mm = fstat.network_vectors(proj, fplus, fcross)
+        nv, mm = engine.network(proj, fplus, fcross)
         nv, mm = nv[0, sky_index], mm[0, sky_index]
         quad = bayesian_limit(nv, mm, sky_frequency, grid=QUADRATURE[options.quadrature])
         check = {"pixel": pix, "frequency": sky_frequency, "quadrature": quad}
@@ -1193,6 +1240,10 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     files["frequency_limits"] = str(folder / "frequency_limits.ecsv")
     write_table_atomic(folder / "sky_limits.ecsv", stab)
     files["sky_limits"] = str(folder / "sky_limits.ecsv")
+    write_healpix_map(folder / "sky_limits.fits", {"STRAIN_95": np.asarray(stab["strain_95"], dtype=float)},
+                      nside=nside, extra={"FREQ": sky_frequency, "METHOD": primary, "LEVEL": LEVEL},
+                      description=f"95 % strain upper limit ({primary}) per pixel at FREQ Hz")
+    files["sky_limits_map"] = str(folder / "sky_limits.fits")
     if gtab is not None:
         write_table_atomic(folder / "galaxy_limits.ecsv", gtab)
         files["galaxy_limits"] = str(folder / "galaxy_limits.ecsv")
@@ -1208,16 +1259,19 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
         "sky_frequency": sky_frequency,
         "best_frequency": float(frequencies[best]),
         "engine": res["engine"],
+        "noise_model": engine.describe(),
         "wall_time": round(time.time() - started, 3),
     }
+    if fmax_note:
+        summary["fmax_note"] = fmax_note
     if "bayes" in averages:
         summary["bayes"] = {"strain_95_at_best_frequency": _finite_or_none(averages["bayes"][best]),
                             "strain_95_min": _finite_or_none(np.nanmin(averages["bayes"])),
-                            "best_pixel_strain_95": _finite_or_none(res["bayes"][:n_pix, best].min())}
+                            **_best_pixel(res["bayes"][:n_pix, best])}
     if "frequentist" in averages:
         summary["frequentist"] = {"strain_95_at_best_frequency": _finite_or_none(averages["frequentist"][best]),
                                   "strain_95_min": _finite_or_none(np.nanmin(averages["frequentist"])),
-                                  "best_pixel_strain_95": _finite_or_none(res["frequentist"][:n_pix, best].min())}
+                                  **_best_pixel(res["frequentist"][:n_pix, best])}
     summary["strain_95"] = summary[primary]["strain_95_at_best_frequency"]
     if galaxies:
         summary["galaxies"] = {g.name: {"distance": g.distance,

@@ -43,7 +43,7 @@ Examples
 >>> arr = simulated_array(invented_array(n_pulsars=5, years=8, seed=1), seed=2)
 >>> res = run_scan(arr, tempfile.mkdtemp(), ScanOptions(nside=2, fmax=2e-8, no_plots=True), progress=False)
 >>> sorted(res.files)[:2]
-['candidates', 'spectrum']
+['candidates', 'sky_map']
 """
 
 from __future__ import annotations
@@ -60,11 +60,12 @@ from scipy.special import chdtrc, chdtri    # the chi-squared tails scipy.stats.
 from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...core.progress import progress as bar
+from ...data.healpix_fits import write_healpix_map
 from ...inference.execution import TaskRunner
 from ...physics import fstat, sky
 from ...physics.fstat import default_max_frequency, frequency_grid
+from ...physics.correlated import ArrayNoise, array_noise, pair_correlations
 from ...physics.noise import NoiseSettings, NoiseWeighting
-from ...physics.simulate import simulate_residuals
 from ...physics.sky import angular_separation
 from ...physics.waveform import antenna_pattern
 
@@ -151,6 +152,10 @@ class ScanOptions:
             bad("statistic", f"must be one of {', '.join(STATISTICS)}, not {self.statistic!r}")
         if int(self.null_sims) != self.null_sims or self.null_sims < 0:
             bad("null_sims", f"must be an integer >= 0, not {self.null_sims}")
+        if self.null_sims > MAX_NULL_SIMS:
+            bad("null_sims", f"at most {MAX_NULL_SIMS:,}, not {int(self.null_sims):,}: each is a full noise-only "
+                             f"scan, so this many take about {int(self.null_sims):.3g} times as long as the scan "
+                             "itself")
         if not 0 < self.fap_threshold <= 1:
             bad("fap_threshold", f"must be in (0, 1], not {self.fap_threshold}")
         if int(self.max_candidates) != self.max_candidates or self.max_candidates < 1:
@@ -165,6 +170,10 @@ class ScanOptions:
     def distributed(self) -> bool:
         """Whether the scan's loops go to worker processes or a Dask cluster."""
         return bool(self.scheduler) or (self.workers or 1) > 1
+
+
+#: most noise-only scans for the empirical false-alarm probability (resolves FAPs down to 1e-5)
+MAX_NULL_SIMS = 100_000
 
 
 @dataclass
@@ -195,11 +204,19 @@ def trials_fap(single, n_trials):
         return -np.expm1(n_trials * np.log1p(-single))
 
 
-def fp_fap(fp, dof):
-    """Single-frequency FAP of Fp: ``P(χ²(dof) ≥ 2Fp)`` (Ellis, Siemens & Creighton 2012)."""
+def fp_fap(fp, dof, scale=1.0):
+    """Single-frequency FAP of Fp: ``P(c·χ²(dof) ≥ 2Fp)`` with ``c = scale``.
+
+    Per-pulsar noise: c = 1 and 2Fp ~ χ²(2 N_psr) exactly (Ellis, Siemens &
+    Creighton 2012). With a correlated common process the terms are dependent
+    and (dof, scale) are the moment-matched values of
+    :func:`cwsearch.physics.correlated.fp_moment_matched`.
+    """
+
     fp = np.asarray(fp, dtype=float)
-    dof = np.asarray(dof)
-    return np.where(dof > 0, chdtrc(np.maximum(dof, 1), 2 * fp), 1.0)
+    dof = np.asarray(dof, dtype=float)
+    scale = np.asarray(scale, dtype=float)
+    return np.where(dof > 0, chdtrc(np.maximum(dof, 1e-9), 2 * fp / scale), 1.0)
 
 
 @dataclass(frozen=True)
@@ -283,15 +300,18 @@ def fitted_trials(maxima, quantiles=(0.5, 0.98)) -> SkyTrials:
     return SkyTrials(n1 - slope * f1, slope)
 
 
-def effective_sky_templates(proj, fplus, fcross, seed=0, *, draws=SKY_TRIAL_DRAWS, frequency_indices=None):
+def effective_sky_templates(proj, fplus, fcross, seed=0, *, draws=SKY_TRIAL_DRAWS, frequency_indices=None,
+                            noise=None):
     """:class:`SkyTrials` from a Monte Carlo of the sufficient statistics.
 
-    Under the noise model each pulsar's (X, Y) is Gaussian with covariance
-    Z_p, independently of the other pulsars. At three frequencies across the
-    band, ``draws`` such (X, Y) sets are drawn directly (no time series
-    needed), the maximum of Fe over the sky is taken, and
-    :func:`fitted_trials` matches the median and the 98 % point of the pooled
-    maxima. With one or two pulsars Fe does not depend on the sky and
+    Under the noise model the stacked (X, Y) of all pulsars is Gaussian with
+    covariance Z_p per pulsar (independent pulsars), or ``δ_pq Z_p − W_pq``
+    with a correlated common process (``noise``, the run's
+    :class:`~cwsearch.physics.correlated.ArrayNoise`; None: per pulsar). At three
+    frequencies across the band, ``draws`` such sets are drawn directly (no time
+    series needed), the maximum of Fe over the sky is taken with the model's
+    M, and :func:`fitted_trials` matches the median and the 98 % point of the
+    pooled maxima. With one or two pulsars Fe does not depend on the sky and
     N_sky = 1.
     """
     n_freq = proj.frequencies.size
@@ -301,18 +321,26 @@ def effective_sky_templates(proj, fplus, fcross, seed=0, *, draws=SKY_TRIAL_DRAW
     pooled = []
     for k in frequency_indices:
         z = proj.z[:, k]
-        zmat = np.stack([np.stack([z[:, 0], z[:, 1]], -1), np.stack([z[:, 1], z[:, 2]], -1)], -2)
-        vals, vecs = np.linalg.eigh(zmat)
-        if not np.any(vals > 0):
+        if not np.any(z[:, 0] + z[:, 2] > 0):
             continue
-        root = (vecs * np.sqrt(np.clip(vals, 0, None))[:, None, :]) @ np.swapaxes(vecs, -1, -2)  # (P, 2, 2)
-        xy = np.einsum("pij,bpj->bpi", root, rng.standard_normal((draws, z.shape[0], 2)))
+        if noise is None or not noise.correlated:
+            zmat = np.stack([np.stack([z[:, 0], z[:, 1]], -1), np.stack([z[:, 1], z[:, 2]], -1)], -2)
+            vals, vecs = np.linalg.eigh(zmat)
+            root = (vecs * np.sqrt(np.clip(vals, 0, None))[:, None, :]) @ np.swapaxes(vecs, -1, -2)  # (P, 2, 2)
+            xy = np.einsum("pij,bpj->bpi", root, rng.standard_normal((draws, z.shape[0], 2)))
+            xs, ys = xy[..., 0], xy[..., 1]
+        else:
+            xs, ys = noise.draw_projections(proj, k, draws, rng)
         step = max(1, 2_000_000 // (4 * fplus.shape[0]))
         for b0 in range(0, draws, step):
             b1 = min(draws, b0 + step)
-            sub = fstat.Projections(proj.frequencies[k:k + 1], xy[b0:b1, :, 0:1], xy[b0:b1, :, 1:2],
+            sub = fstat.Projections(proj.frequencies[k:k + 1], xs[b0:b1, :, None], ys[b0:b1, :, None],
                                     proj.z[:, k:k + 1], proj.positions, proj.z_scale)
-            pooled.append(fstat.fe_sky(sub, fplus, fcross, keep_map=False).fe_max[:, 0])
+            if noise is None:
+                scan = fstat.fe_sky(sub, fplus, fcross, keep_map=False)
+            else:
+                scan = ArrayNoise.fe_sky(noise, sub, fplus, fcross, keep_map=False)
+            pooled.append(scan.fe_max[:, 0])
     if not pooled:
         return SkyTrials(1.0, 0.0)
     return fitted_trials(np.concatenate(pooled))
@@ -343,17 +371,28 @@ def sky_grid(array, nside):
     return ra, dec, np.ascontiguousarray(fplus), np.ascontiguousarray(fcross)
 
 
+def _as_noise(engine):
+    """An :class:`~cwsearch.physics.correlated.ArrayNoise` for an ArrayNoise or a per-pulsar engine."""
+    return engine if isinstance(engine, ArrayNoise) else ArrayNoise.from_engine(engine)
+
+
 def fe_map(engine, frequencies, fplus, fcross, residuals=None, *, progress=False, desc="scan"):
     """Fe over sky × frequency for ``residuals`` (default: the data) with the engine's noise model.
 
-    Returns ``(fstat.SkyScan, Projections)``; the sky scan's ``fe_map`` is
-    (N_pix, N_freq) float32. Null simulations call this with simulated
-    residuals (same TOAs, sigmas and noise model).
+    ``engine``: the run's :class:`~cwsearch.physics.correlated.ArrayNoise` (or a per-pulsar
+    :class:`~cwsearch.physics.noise.NoiseWeighting`). Returns ``(fstat.SkyScan, Projections)``;
+    the sky scan's ``fe_map`` is (N_pix, N_freq) float32. With a correlated common process
+    X, Y come from the weighted data and M carries the cross-pulsar blocks.
     """
-    with bar(total=len(engine), desc=f"{desc}: projections", enabled=progress, unit="psr") as pb:
-        proj = fstat.project(engine, frequencies, residuals, on_pulsar=lambda i: pb.update(1))
+    noise = _as_noise(engine)
+    with bar(total=len(noise), desc=f"{desc}: projections", enabled=progress, unit="psr") as pb:
+        proj = noise.projections(frequencies, residuals, on_pulsar=lambda i: pb.update(1))
+    if noise.correlated:
+        with bar(total=1, desc=f"{desc}: cross-pulsar blocks", enabled=progress, unit="step") as pb:
+            noise.corrections(proj.frequencies)
+            pb.update(1)
     with bar(total=len(frequencies), desc=f"{desc}: sky", enabled=progress, unit="freq") as pb:
-        result = fstat.fe_sky(proj, fplus, fcross, map_dtype=np.float32, on_chunk=pb.update)
+        result = noise.fe_sky(proj, fplus, fcross, map_dtype=np.float32, on_chunk=pb.update)
     return result, proj
 
 
@@ -393,25 +432,29 @@ def fe_map_tasks(engine, frequencies, fplus, fcross, *, workers=1, scheduler=Non
     return fstat.SkyScan(fe, fe_max, best), proj
 
 
-def simulate_noise(array, noise: NoiseSettings, rng):
-    """Noise-only residuals for ``array``: white noise, per-pulsar red noise and the common process
-    when the noise settings include them (cwsearch.physics.simulate, timing model fitted out)."""
-    return simulate_residuals(array, rng, white=True, red=noise.pulsar_red_noise and noise.red_components > 0,
-                              background_log10_amplitude=noise.common_log10_amplitude,
-                              background_index=noise.common_index,
-                              background_components=max(noise.red_components, 1))
+def simulate_noise(array, noise: NoiseSettings, rng, engine=None):
+    """Noise-only residuals for ``array`` drawn from the run's noise model: white noise,
+    per-pulsar red noise and the common process with the model's inter-pulsar correlation
+    (:meth:`cwsearch.physics.correlated.ArrayNoise.simulate`, timing model fitted out).
+    ``engine`` (the run's ArrayNoise) avoids rebuilding it."""
+
+    engine = array_noise(array, noise) if engine is None else _as_noise(engine)
+    return engine.simulate(rng)
 
 
 def null_maxima(array, engine, noise, frequencies, fplus, fcross, n_sims, seed, *, want_fe=True,
                 progress=False, batch=32, workers=1, scheduler=None):
     """Maximum Fe over sky × frequency and maximum Fp over frequency for ``n_sims`` noise-only scans.
 
+    Simulations are drawn from, and scanned with, the run's noise model ``engine``
+    (:class:`~cwsearch.physics.correlated.ArrayNoise`; a per-pulsar engine is wrapped).
     Simulation ``i`` uses child ``i`` of ``numpy.random.SeedSequence(seed)``,
     so results do not depend on the batch size or the engine: batches run
     in this process, or with ``workers``/``scheduler`` as tasks of
     :class:`cwsearch.inference.execution.TaskRunner`. Returns two arrays
     (n_sims,) (the Fe one is None if ``want_fe`` is false).
     """
+    engine = _as_noise(engine)
     root = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(seed)
     children = root.spawn(n_sims)
     fe_max = np.empty(n_sims) if want_fe else None
@@ -441,17 +484,18 @@ def null_maxima(array, engine, noise, frequencies, fplus, fcross, n_sims, seed, 
 
 def _null_batch(array, engine, noise, frequencies, fplus, fcross, seeds, want_fe):
     """Maxima of Fe and Fp for the noise-only scans seeded by ``seeds`` (one child seed per simulation)."""
-    sims = [simulate_noise(array, noise, np.random.default_rng(s)) for s in seeds]
+    engine = _as_noise(engine)
+    sims = [engine.simulate(np.random.default_rng(s)) for s in seeds]
     sets = [np.stack([sim[p] for sim in sims], axis=1) for p in range(len(array))]
-    proj = fstat.project_batch(engine, frequencies, sets)
-    fp = fstat.fp_statistic(proj).max(axis=-1)
-    fe = fstat.fe_sky(proj, fplus, fcross, keep_map=False).fe_max.max(axis=-1) if want_fe else None
+    proj = engine.projections(frequencies, sets)
+    fp = np.atleast_2d(engine.fp(proj)).max(axis=-1)
+    fe = engine.fe_sky(proj, fplus, fcross, keep_map=False).fe_max.max(axis=-1) if want_fe else None
     return fe, fp
 
 
 def _null_task(task):
     """Worker entry point: one batch of noise-only scans (array and noise settings sent as data)."""
-    engine = NoiseWeighting(task["array"], task["noise"])
+    engine = array_noise(task["array"], task["noise"])
     return _null_batch(task["array"], engine, task["noise"], task["frequencies"], task["fplus"], task["fcross"],
                        task["seeds"], task["want_fe"])
 
@@ -538,7 +582,7 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     want_fe = options.statistic in ("fe", "both")
     timings = dict(timings or {})
     t = time.time()
-    engine = NoiseWeighting(array, noise)
+    engine = array_noise(array, noise)
     timings["noise_build_seconds"] = time.time() - t
     ra, dec, fplus, fcross = sky_grid(array, options.nside)
     n_pix = ra.size
@@ -548,8 +592,9 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
                          "narrow --fmin/--fmax or reduce --oversample")
 
     t = time.time()
-    if want_fe and options.distributed:
-        sky_scan, proj = fe_map_tasks(engine, frequencies, fplus, fcross, workers=options.workers or 1,
+    if want_fe and options.distributed and not engine.correlated:
+        # the frequency-chunk tasks use the per-pulsar engine; a correlated model scans in one piece
+        sky_scan, proj = fe_map_tasks(engine.engine, frequencies, fplus, fcross, workers=options.workers or 1,
                                       scheduler=options.scheduler or None, progress=progress)
         fe_full = sky_scan.fe_map
         fe_max = sky_scan.fe_max[0]
@@ -562,18 +607,18 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     else:
 
         with bar(total=len(engine), desc="scan: projections", enabled=progress, unit="psr") as pb:
-            proj = fstat.project(engine, frequencies, on_pulsar=lambda i: pb.update(1))
+            proj = engine.projections(frequencies, on_pulsar=lambda i: pb.update(1))
         fe_full = None
         fe_max = np.full(n_freq, np.nan)
         best_pixel = np.zeros(n_freq, dtype=int)
-    fp = fstat.fp_statistic(proj)
-    fp_dof = fstat.fp_degrees_of_freedom(proj)
+    fp = engine.fp(proj)
+    fp_dof, fp_scale = engine.fp_distribution(proj)
     timings["kernel_seconds"] = timings["scan_seconds"] = time.time() - t
 
     # trials
     sky_seed, null_seed = np.random.SeedSequence(seed).spawn(2)
     t = time.time()
-    trials = Trials(n_freq, effective_sky_templates(proj, fplus, fcross, sky_seed) if want_fe else None)
+    trials = Trials(n_freq, effective_sky_templates(proj, fplus, fcross, sky_seed, noise=engine) if want_fe else None)
     timings["trials_seconds"] = time.time() - t
 
     # null simulations
@@ -586,7 +631,7 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
         timings["null_sims_seconds"] = time.time() - t
 
     # spectrum
-    fp_single = fp_fap(fp, fp_dof)
+    fp_single = fp_fap(fp, fp_dof, fp_scale)
     spectrum = Table()
     spectrum["frequency"] = frequencies
     spectrum["frequency"].unit = "Hz"
@@ -601,21 +646,30 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
                                   else np.full(n_freq, np.nan))
     spectrum["fp"] = fp
     spectrum["fp_dof"] = fp_dof
+    spectrum["fp_scale"] = fp_scale
     spectrum["fp_fap_single"] = fp_single
     spectrum.meta["description"] = (
         "fe_max: maximum of Fe over the sky at each frequency (at pixel fe_max_pixel); "
         "fe_max_fap_single: (1+F)exp(-F), one template; fe_max_fap_sky: corrected for the N_sky(F) sky "
-        "templates of one frequency (scan_summary.json); fp: pulsar-term Fp, 2Fp ~ chi2(fp_dof) in noise; fp_fap_single: its "
-        "single-frequency FAP")
+        "templates of one frequency (scan_summary.json); fp: pulsar-term Fp, 2Fp ~ fp_scale x chi2(fp_dof) in noise "
+        "(exact with fp_scale = 1 for per-pulsar noise; moment-matched with a correlated common process); "
+        "fp_fap_single: its single-frequency FAP")
 
     # candidates
     t = time.time()
-    candidates = _candidates(options, array, proj, frequencies, fe_full, fp, fp_dof, ra, dec, fplus, fcross,
-                             trials, null_fe, null_fp, span)
+    candidates = _candidates(options, array, proj, frequencies, fe_full, fp, (fp_dof, fp_scale), ra, dec, fplus,
+                             fcross, trials, null_fe, null_fp, span, engine)
     timings["candidates_seconds"] = time.time() - t
 
     summary = _summary(options, array, noise, frequencies, n_pix, trials, candidates, null_fe, null_fp, want_fe,
                        seed, timings)
+    summary["noise_model"] = engine.describe()
+    if engine.correlated:
+        summary["fap_validity"] = (
+            "with the correlated common process in the noise model, 2Fe ~ chi2(4) stays exact for one template "
+            "(Fe uses the full array inner product); the sky trials are drawn with the cross-pulsar covariance; "
+            "2Fp is no longer chi2(2 N_psr) (the per-pulsar terms are dependent): its FAP uses the "
+            "moment-matched scaled chi2 of fp_dof, fp_scale (spectrum.ecsv)")
     files = {
         "candidates": out / "candidates.ecsv",
         "spectrum": out / "spectrum.ecsv",
@@ -624,6 +678,28 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     t = time.time()
     write_table_atomic(files["spectrum"], spectrum)
     write_table_atomic(files["candidates"], candidates)
+    if null_fe is not None or null_fp is not None:
+        null_table = Table()
+        null_table["simulation"] = np.arange(len(null_fe if null_fe is not None else null_fp))
+        if null_fe is not None:
+            null_table["fe_max"] = np.asarray(null_fe, dtype=float)
+        if null_fp is not None:
+            null_table["fp_max"] = np.asarray(null_fp, dtype=float)
+        null_table.meta["description"] = ("loudest Fe (over sky and frequency) and loudest Fp (over frequency) of "
+                                          "each noise-only scan of the same array and noise model")
+        files["null_maxima"] = out / "null_maxima.ecsv"
+        write_table_atomic(files["null_maxima"], null_table)
+    if want_fe and fe_full is not None:
+        files["sky_map"] = out / "fe_sky.fits"
+        maps = {"FE_MAX": fe_full.max(axis=1)}
+        extra = {}
+        if len(candidates):
+            k = int(candidates["frequency_index"][0])
+            maps["FE_BEST_FREQ"] = fe_full[:, k]
+            extra = {"BESTFREQ": float(frequencies[k])}
+        write_healpix_map(files["sky_map"], maps, nside=options.nside,
+                          description="FE_MAX: maximum Fe over all scanned frequencies per pixel; FE_BEST_FREQ: "
+                                      "Fe at the best candidate's frequency (BESTFREQ, Hz)", extra=extra)
     summary["write_seconds"] = round(time.time() - t, 3)
     summary["plots_seconds"] = 0.0
     if not options.no_plots:     # the tables are complete before any plot; the summary (the stage's
@@ -632,7 +708,7 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
         # lazy: matplotlib is loaded only when plots are drawn
         from . import plots as scan_plots
 
-        thresholds = _thresholds(trials, null_fe, fp_dof)
+        thresholds = _thresholds(trials, null_fe, (fp_dof, fp_scale))
         files["spectrum_plot"] = out / "spectrum.png"
         scan_plots.spectrum_plot(files["spectrum_plot"], spectrum, candidates, thresholds, want_fe=want_fe)
         if want_fe and len(candidates):
@@ -640,6 +716,22 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
             files["sky_plot"] = out / "sky_fe.png"
             scan_plots.sky_plot(files["sky_plot"], fe_full[:, k], options.nside, frequencies[k], array,
                                 candidates[candidates["frequency_index"] == k])
+        null = null_fe if want_fe else null_fp
+        if null is not None and len(candidates):
+            files["null_plot"] = out / "null_fe.png"
+            observed = float(np.nanmax(candidates["fe" if want_fe else "fp"]))
+            scan_plots.null_plot(files["null_plot"], null, observed, statistic="Fe" if want_fe else "Fp")
+        if engine.kind != "none" and len(array) >= 2:
+            pairs = pair_correlations(array, noise)
+            files["correlation_plot"] = out / "hd_correlations.png"
+            scan_plots.correlation_plot(files["correlation_plot"], pairs, title=(
+                f"inter-pulsar correlations of the residuals ({len(array)} pulsars); model: {engine.kind}"))
+            summary["pair_correlations"] = {
+                "method": "per pair X_i' Phi X_j / tr(Z_i Phi Z_j Phi) with X = F' C_i^-1 r (each pulsar whitened "
+                          "with its own covariance incl. the common auto-power); estimates Gamma_ij; binned by "
+                          "angle with inverse-variance weights",
+                **{k: [float(v) for v in pairs.bins[k]] for k in ("centre", "rho", "sigma", "expected", "count")},
+                "centre_unit": "rad"}
         summary["plots_seconds"] = round(time.time() - t, 3)
     summary["files"] = {k: v.name for k, v in files.items()}
     summary["seconds"] = round(time.time() - started, 3)
@@ -647,8 +739,10 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     return ScanResult(frequencies, fe_full, spectrum, candidates, summary, files, null_fe, null_fp)
 
 
-def _thresholds(trials, null_fe, fp_dof, level=0.01):
+def _thresholds(trials, null_fe, fp_law, level=0.01):
     """Lines for the spectrum plot: (label, value or per-frequency array)."""
+    fp_dof, fp_scale = fp_law
+
     out = {"fe": [], "fp": []}
     if trials.sky is not None:
         fe_all = trials.fe_threshold(level)
@@ -661,14 +755,16 @@ def _thresholds(trials, null_fe, fp_dof, level=0.01):
                               float(np.quantile(null_fe, 1 - level))))
     single = -np.expm1(np.log1p(-level) / trials.n_frequencies)
     out["fp"].append((f"FAP {level:g} over the band (analytic, {trials.n_frequencies} frequency trials)",
-                      np.where(fp_dof > 0, 0.5 * chdtri(np.maximum(fp_dof, 1), single), np.nan)))
+                      np.where(fp_dof > 0, 0.5 * fp_scale * chdtri(np.maximum(fp_dof, 1e-9), single), np.nan)))
     return out
 
 
-def _candidates(options, array, proj, frequencies, fe_full, fp, fp_dof, ra, dec, fplus, fcross, trials,
-                null_fe, null_fp, span):
+def _candidates(options, array, proj, frequencies, fe_full, fp, fp_law, ra, dec, fplus, fcross, trials,
+                null_fe, null_fp, span, engine=None):
 
 
+    fp_dof, fp_scale = fp_law
+    noise = None if engine is None else _as_noise(engine)
     limit = int(options.max_candidates)
     window = 1.0 / span * (1 + 1e-9)
     table = Table()
@@ -688,11 +784,14 @@ def _candidates(options, array, proj, frequencies, fe_full, fp, fp_dof, ra, dec,
         for i, (s, f) in enumerate(zip(pix, fidx)):
             sub = fstat.Projections(frequencies[f:f + 1], proj.x[:, f:f + 1], proj.y[:, f:f + 1],
                                     proj.z[:, f:f + 1], proj.positions, proj.z_scale)
-            val, amp = fstat.fe_with_amplitudes(sub, fplus[s:s + 1], fcross[s:s + 1])
+            if noise is None:
+                val, amp = fstat.fe_with_amplitudes(sub, fplus[s:s + 1], fcross[s:s + 1])
+            else:
+                val, amp = noise.fe_with_amplitudes(sub, fplus[s:s + 1], fcross[s:s + 1])
             fe[i], amps[i] = val[0, 0], amp[0, 0]
         order = np.argsort(-fe, kind="stable")
         pix, fidx, fe, amps = pix[order], fidx[order], fe[order], amps[order]
-        strain, cos_inc, psi, phase = fstat.amplitudes_to_parameters(amps, frequencies[fidx])
+        strain, cos_inclination, psi, phase = fstat.amplitudes_to_parameters(amps, frequencies[fidx])
         table["rank"] = np.arange(1, pix.size + 1)
         table["frequency"] = frequencies[fidx]
         table["frequency"].unit = "Hz"
@@ -709,16 +808,16 @@ def _candidates(options, array, proj, frequencies, fe_full, fp, fp_dof, ra, dec,
         table["fap_empirical"] = empirical_fap(fe, null_fe) if null_fe is not None else np.full(pix.size, np.nan)
         table["fap_single"] = fe_single_fap(fe)
         table["fp"] = fp[fidx]
-        table["fp_fap"] = trials_fap(fp_fap(fp[fidx], fp_dof[fidx]), trials.n_frequencies)
+        table["fp_fap"] = trials_fap(fp_fap(fp[fidx], fp_dof[fidx], fp_scale[fidx]), trials.n_frequencies)
         table["strain"] = strain
-        table["inclination"] = np.arccos(np.clip(cos_inc, -1, 1))
+        table["inclination"] = np.arccos(np.clip(cos_inclination, -1, 1))
         table["inclination"].unit = "rad"
         table["polarization"] = psi
         table["polarization"].unit = "rad"
         table["phase"] = phase
         table["phase"].unit = "rad"
     else:
-        single = fp_fap(fp, fp_dof)
+        single = fp_fap(fp, fp_dof, fp_scale)
         peaks = np.array([k for k in range(fp.size)
                           if (k == 0 or fp[k] >= fp[k - 1]) and (k == fp.size - 1 or fp[k] >= fp[k + 1])])
         peaks = peaks[trials_fap(single[peaks], trials.n_frequencies) <= options.fap_threshold] if peaks.size else peaks
