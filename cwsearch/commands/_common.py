@@ -1,5 +1,15 @@
 """Options shared by the stage commands: dataset, output folder, seed, quiet, noise model."""
 
+NOISE_MODEL_HELP = ("noise model every stage uses: 'estimate' (default: fit it from the residuals, or reuse "
+                    "RUN_DIR/noise/ fitted on the same dataset), 'dataset' (the values in the dataset files, "
+                    "fixed) or the path of a noise table (noise_model.ecsv)")
+
+
+def add_noise_model_argument(parser):
+    """``--noise-model estimate|dataset|FILE``."""
+    parser.add_argument("--noise-model", default="estimate", metavar="estimate|dataset|FILE", help=NOISE_MODEL_HELP)
+
+
 from __future__ import annotations
 
 
@@ -16,12 +26,13 @@ def add_dataset_arguments(parser, out_required=True):
 def add_noise_arguments(parser):
     """Noise-model options (DESIGN.md §5)."""
     g = parser.add_argument_group("noise model")
+    add_noise_model_argument(g)
     g.add_argument("--red-components", type=int, default=30, metavar="K",
                    help="Fourier frequencies k/T_span, k=1..K, for red processes (default 30)")
     g.add_argument("--no-pulsar-red-noise", action="store_true",
-                   help="ignore per-pulsar red noise given in the dataset")
+                   help="ignore per-pulsar red noise given in the dataset (--noise-model dataset)")
     g.add_argument("--common-log10-amplitude", type=float, default=None, metavar="LOG10A",
-                   help="add a common red process with this log10 amplitude (default: none)")
+                   help="add a common red process with this log10 amplitude (--noise-model dataset; default: none)")
     g.add_argument("--common-index", type=float, default=13 / 3, metavar="GAMMA",
                    help="spectral index of the common process (default 13/3)")
 
@@ -34,6 +45,52 @@ def noise_settings(args):
                          pulsar_red_noise=not args.no_pulsar_red_noise,
                          common_log10_amplitude=args.common_log10_amplitude,
                          common_index=args.common_index)
+
+
+def resolve_noise(args, array, *, progress=None):
+    """The run's noise model for a stage command (:func:`cwsearch.job.noisemodel.resolve_noise_model`):
+    ``(array with noise, NoiseSettings, description)``; prints which model is used unless ``--quiet``."""
+    import sys
+
+    from ..data.dataset import dataset_checksum
+    from ..job.noisemodel import format_description, resolve_noise_model
+    from ..job.pipeline import stage_seed
+
+    quiet = getattr(args, "quiet", False)
+    resolved = resolve_noise_model(array, getattr(args, "out", None), getattr(args, "noise_model", "dataset"),
+                                   noise=noise_settings(args), dataset_checksum=dataset_checksum(args.dataset),
+                                   seed=stage_seed(getattr(args, "seed", 0), "noise"),
+                                   progress=not quiet if progress is None else progress)
+    if not quiet and not getattr(args, "json", False):
+        print(format_description(resolved.description), file=sys.stderr)
+    check_same_model(getattr(args, "out", None), resolved)
+    return resolved
+
+
+def check_same_model(run_dir, resolved):
+    """Warn when the scan already in ``run_dir`` used another noise model than ``resolved``."""
+    import json
+    import warnings
+    from pathlib import Path
+
+    from ..job.noisemodel import NoiseModelWarning
+
+    if run_dir is None:
+        return
+    try:
+        used = json.loads((Path(run_dir) / "scan" / "scan_summary.json").read_text(encoding="utf-8")).get("noise_model")
+    except (OSError, ValueError):
+        return
+    if not used:
+        return
+    mine = resolved.fingerprint()
+    theirs = {"source": used.get("source"), "table_checksum": used.get("table_checksum"),
+              "settings": used.get("settings")}
+    if theirs != mine:
+        warnings.warn(f"the scan in {run_dir} used another noise model ({used.get('source')}, table checksum "
+                      f"{str(used.get('table_checksum'))[:12]}) than this stage ({mine['source']}, "
+                      f"{str(mine['table_checksum'])[:12]}); rerun the scan with the same --noise-model",
+                      NoiseModelWarning, stacklevel=2)
 
 
 def load_array(args):

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from ._common import add_dataset_arguments, add_noise_arguments, load_array, noise_settings
+from ._common import add_dataset_arguments, add_noise_arguments, load_array, resolve_noise
 
 DESCRIPTION = (
     "Fit one circular binary (Earth + pulsar term, pulsar phases marginalised) to the top candidate(s) of "
@@ -66,7 +66,8 @@ def run(args) -> int:
 
     options = FollowupOptions(**{f.name: getattr(args, f.name) for f in fields(FollowupOptions)})
     array = load_array(args)
-    result = run_followup(array, args.out, options, noise=noise_settings(args), seed=args.seed,
+    resolved = resolve_noise(args, array)
+    result = run_followup(resolved.array, args.out, options, noise=resolved.noise, seed=args.seed,
                           progress=not args.quiet)
     if args.json:
         print(json.dumps(result.summary, indent=2, default=str))

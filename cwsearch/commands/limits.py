@@ -86,14 +86,15 @@ def _fmt(v):
 def run(args) -> int:
     import json
 
-    from ._common import load_array, noise_settings
+    from ._common import load_array, resolve_noise
     from ..stages.limits.stage import parse_galaxies, run_limits
 
     options = options_from_args(args)
     parse_galaxies(options.galaxy)  # number errors before the dataset is read
     options.validate()
     array = load_array(args)
-    result = run_limits(array, args.out, options, noise=noise_settings(args), seed=args.seed,
+    resolved = resolve_noise(args, array)
+    result = run_limits(resolved.array, args.out, options, noise=resolved.noise, seed=args.seed,
                         progress=not args.quiet)
     summary = result.summary
     if args.json:

@@ -80,12 +80,13 @@ def format_candidates(table, n=10):
 def run(args) -> int:
     import json
 
-    from ._common import load_array, noise_settings
+    from ._common import load_array, resolve_noise
     from ..stages.scan.stage import run_scan
 
     options = options_from_args(args).validate()
     array = load_array(args)
-    result = run_scan(array, args.out, options, noise=noise_settings(args), seed=args.seed,
+    resolved = resolve_noise(args, array)
+    result = run_scan(resolved.array, args.out, options, noise=resolved.noise, seed=args.seed,
                       progress=not args.quiet)
     summary = result.summary
     if args.json:
@@ -108,5 +109,8 @@ def run(args) -> int:
                   "maximum reaches the candidate's value (prefer this one)")
         else:
             print("fap_emp = empirical FAP, not computed (use --null-sims N)")
+        gof = summary["goodness_of_fit"]
+        print(f"goodness of fit: {gof['n_failed']} of {summary['n_pulsars']} pulsars fail (p < {gof['threshold']:g})"
+              + (f": {', '.join(gof['failed'])}" if gof["failed"] else ""))
         print(f"outputs in {result.files['candidates'].parent}")
     return 0

@@ -1,4 +1,4 @@
-"""The whole job in one call: scan → follow-up → hosts → limits, with skipping, resume and provenance.
+"""The whole job in one call: noise → scan → follow-up → hosts → limits, with skipping, resume and provenance.
 
 :func:`run_pipeline` takes a validated :class:`~cwsearch.job.config.RunConfig`
 and fills its run folder (DESIGN.md §11)::
@@ -114,11 +114,24 @@ class StageContext:
     upstream: dict
     resuming: bool = False  # the same stage, same inputs, was interrupted before: continue its checkpoint
     _array_loader: Callable = field(repr=False, default=None)
+    dataset_checksum: str | None = None
+    #: () -> :class:`~cwsearch.job.noisemodel.ResolvedNoise`, the run's noise model (None: the dataset's)
+    _noise_resolver: Callable = field(repr=False, default=None)
 
     @property
     def array(self):
         """The dataset as a :class:`~cwsearch.data.model.Array` (read once per run)."""
         return self._array_loader()
+
+    @property
+    def model_array(self):
+        """The dataset carrying the run's noise model (what every stage after the noise stage uses)."""
+        return self._noise_resolver().array if self._noise_resolver is not None else self.array
+
+    @property
+    def noise(self):
+        """The engine noise settings of the run's noise model."""
+        return self._noise_resolver().noise if self._noise_resolver is not None else self.config.noise
 
     @property
     def options(self):
@@ -164,8 +177,12 @@ def stage_seed(seed: int, stage: str) -> int:
     """Independent per-stage seed derived from the run seed (SeedSequence spawning)."""
     import numpy as np
 
-    index = STAGES.index(stage) if stage in STAGES else sum(stage.encode())
+    index = _SEED_ORDER.index(stage) if stage in _SEED_ORDER else sum(stage.encode())
     return int(np.random.SeedSequence([int(seed), index]).generate_state(1, dtype=np.uint32)[0])
+
+
+#: stage -> index of its seed (fixed, so that adding a stage does not change the other stages' seeds)
+_SEED_ORDER = ("scan", "followup", "hosts", "limits", "noise")
 
 
 def canonical_hash(obj) -> str:
@@ -332,12 +349,14 @@ def _pid_alive(pid: int) -> bool:
 
 # ---------------------------------------------------------------- the runner
 def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: Callable, force=(),
-               progress=True, log=None) -> list:
+               progress=True, log=None, noise_resolver: Callable | None = None) -> list:
     """Run ``specs`` (list of :class:`StageSpec`, in order) into ``config.out`` with skipping.
 
     This is the machinery under :func:`run_pipeline`, usable with any stage
     functions (tests use tiny dummy stages). ``force``: stage names to rerun
-    from an empty folder. Returns a list of :class:`StageReport`.
+    from an empty folder. ``noise_resolver() -> ResolvedNoise`` gives the run's noise model to every
+    stage except ``noise`` (its fingerprint enters their input hashes). Returns a list of
+    :class:`StageReport`.
     """
     run_dir = Path(config.out)
     names = [s.name for s in specs]
@@ -373,13 +392,18 @@ def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: C
             continue
         ctx = StageContext(config=config, run_dir=run_dir, stage_dir=stage_dir, name=spec.name,
                            seed=stage_seed(config.seed, spec.name), progress=progress,
-                           upstream={u: records[u] for u in spec.upstream}, _array_loader=load_array)
+                           upstream={u: records[u] for u in spec.upstream}, _array_loader=load_array,
+                           dataset_checksum=dataset_checksum,
+                           _noise_resolver=noise_resolver if spec.name != "noise" else None)
+        stage_noise = noise
+        if noise_resolver is not None and spec.name != "noise":
+            stage_noise = {"settings": noise, "model": noise_resolver().fingerprint()}
         inputs = {
             "stage": spec.name,
             "cwsearch": __version__,
             "dataset": dataset_checksum,
             "options": config.stage_config(spec.name),
-            "noise": noise,
+            "noise": stage_noise,
             "seed": ctx.seed,
             "upstream": {u: records[u].get("product_hash", records[u].get("output_hash")) for u in spec.upstream},
         }
@@ -487,7 +511,8 @@ def run_pipeline(config: RunConfig, *, force=(), progress=True, quiet=False, spe
         status = "interrupted"
         try:
             reports = run_stages(config, specs, dataset_checksum=checksum, load_array=lambda: array,
-                                 force=force, progress=progress, log=log)
+                                 force=force, progress=progress, log=log,
+                                 noise_resolver=run_noise_resolver(config, array, checksum, progress))
             status = "complete"
         except BaseException as exc:
             status = "interrupted" if isinstance(exc, KeyboardInterrupt) else "failed"
@@ -510,6 +535,23 @@ def run_pipeline(config: RunConfig, *, force=(), progress=True, quiet=False, spe
 
             report_path = build_report(run_dir)
     return PipelineResult(run_dir, reports, headline, report_path)
+
+
+def run_noise_resolver(config, array, checksum, progress=False):
+    """``() -> ResolvedNoise`` for a run (resolved on first use, then cached): the run's ``[noise] model``
+    through :func:`cwsearch.job.noisemodel.resolve_noise_model`."""
+    cache = {}
+
+    def resolver():
+        if "resolved" not in cache:
+            from .noisemodel import resolve_noise_model
+
+            options = config.options.get("noise")
+            cache["resolved"] = resolve_noise_model(
+                array, config.out, getattr(options, "model", "estimate"), noise=config.noise,
+                dataset_checksum=checksum, options=options, seed=stage_seed(config.seed, "noise"), progress=progress)
+        return cache["resolved"]
+    return resolver
 
 
 def _read_json(path):
@@ -691,6 +733,7 @@ def format_headline(head: dict) -> str:
 def default_stages():
     """The four stages of the job, wired to the stage modules."""
     return [
+        StageSpec("noise", _run_noise, available=_availability("noise"), products=("noise_model.ecsv",)),
         StageSpec("scan", _run_scan, available=_availability("scan"), products=("candidates.ecsv",)),
         StageSpec("followup", _run_followup, upstream=("scan",), available=_availability("followup"),
                   products=("posterior.ecsv", "*/posterior.ecsv")),
@@ -701,7 +744,7 @@ def default_stages():
 
 
 #: the function each stage module must provide
-_ENTRY = {"scan": "run_scan", "followup": "run_followup", "hosts": "run_hosts", "limits": "run_limits"}
+_ENTRY = {"noise": "run_noise", "scan": "run_scan", "followup": "run_followup", "hosts": "run_hosts", "limits": "run_limits"}
 
 
 def _availability(name):
@@ -729,10 +772,22 @@ def _stage_module(name):
         raise
 
 
+def _run_noise(ctx):
+    """Fit the noise model (only when the run's noise model is ``estimate``)."""
+    model = getattr(ctx.options, "model", "estimate")
+    if model != "estimate":
+        raise NothingToDo(f"the run uses the {'dataset' if model == 'dataset' else 'given'} noise model"
+                          + ("" if model == "dataset" else f" ({model})"))
+    mod = _stage_module("noise")
+    result = mod.run_noise(ctx.array, ctx.run_dir, ctx.options, noise=ctx.config.noise, seed=ctx.seed,
+                           progress=ctx.progress, dataset_checksum=ctx.dataset_checksum)
+    return dict(getattr(result, "summary", {}) or {})
+
+
 def _run_scan(ctx):
     mod = _stage_module("scan")
     options = engine_options(ctx.options, ctx.config.engine)
-    result = mod.run_scan(ctx.array, ctx.run_dir, options, noise=ctx.config.noise, seed=ctx.seed,
+    result = mod.run_scan(ctx.model_array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed,
                           progress=ctx.progress)
     return dict(getattr(result, "summary", {}) or {})
 
@@ -784,7 +839,7 @@ def _run_followup(ctx):
     if rows == list(range(len(rows))):
         # the chosen candidates are the best ones: one call (one sub-folder each when there are several)
         options = replace(ctx.options, top=len(rows), candidate=None, resume=ctx.resuming)
-        result = mod.run_followup(ctx.array, ctx.run_dir, options, noise=ctx.config.noise, seed=ctx.seed,
+        result = mod.run_followup(ctx.model_array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed,
                                   progress=ctx.progress)
         summary = dict(getattr(result, "summary", {}) or {})
     else:
@@ -797,7 +852,7 @@ def _run_followup(ctx):
             (scratch / "scan").mkdir(parents=True, exist_ok=True)
             shutil.copy2(ctx.run_dir / "scan" / "candidates.ecsv", scratch / "scan" / "candidates.ecsv")
             options = replace(ctx.options, top=1, candidate=row + 1, resume=ctx.resuming)
-            result = mod.run_followup(ctx.array, scratch, options, noise=ctx.config.noise, seed=int(seed),
+            result = mod.run_followup(ctx.model_array, scratch, options, noise=ctx.noise, seed=int(seed),
                                       progress=ctx.progress)
             final = ctx.stage_dir / f"candidate_{row + 1}"
             if final.exists():
@@ -829,7 +884,7 @@ def _run_hosts(ctx):
     if not getattr(ctx.options, "catalog", None):
         raise NothingToDo("no galaxy catalogue given ([hosts] catalog)")
     mod = _stage_module("hosts")
-    result = mod.run_hosts(ctx.array, ctx.run_dir, ctx.options, noise=ctx.config.noise, seed=ctx.seed,
+    result = mod.run_hosts(ctx.model_array, ctx.run_dir, ctx.options, noise=ctx.noise, seed=ctx.seed,
                            progress=ctx.progress)
     return dict(getattr(result, "summary", {}) or {})
 
@@ -853,7 +908,7 @@ def engine_options(options, engine: dict):
 def _run_limits(ctx):
     mod = _stage_module("limits")
     options = engine_options(ctx.options, ctx.config.engine)
-    result = mod.run_limits(ctx.array, ctx.run_dir, options, noise=ctx.config.noise, seed=ctx.seed,
+    result = mod.run_limits(ctx.model_array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed,
                             progress=ctx.progress)
     return dict(getattr(result, "summary", {}) or {})
 

@@ -42,6 +42,7 @@ from ..core.fileio import write_text_atomic
 SECTIONS = (
     ("headline", "Headline"),
     ("dataset", "Dataset"),
+    ("noise", "Noise model"),
     ("scan", "Scan: spectrum and sky map"),
     ("candidates", "Candidates"),
     ("followup", "Follow-up: posterior and Bayes factor"),
@@ -222,7 +223,7 @@ class _Run:
         self.headline = summary.get("headline") or {}
         self.stages = {s["stage"]: s for s in summary.get("stages", []) if isinstance(s, dict)}
         self.records = {}
-        for stage in ("scan", "followup", "hosts", "limits"):
+        for stage in ("noise", "scan", "followup", "hosts", "limits"):
             rec = _read_json(self.dir / stage / ".stage.json")
             if rec:
                 self.records[stage] = rec
@@ -279,6 +280,84 @@ def _dataset(run: _Run) -> str:
         if (run.dir / name).is_file():
             parts.append(embed_png(run.dir / name, "pulsar sky positions and observing spans"))
     return "\n".join(parts)
+
+
+_STAGE_SUMMARY_FILES = {"scan": ("scan_summary.json",), "followup": ("summary.json",),
+                        "hosts": ("hosts_summary.json",), "limits": ("limits_summary.json",)}
+
+
+def stage_noise_models(run: _Run) -> dict:
+    """stage -> the ``noise_model`` description its summary states (stages that ran)."""
+    out = {}
+    for stage, names in _STAGE_SUMMARY_FILES.items():
+        summary = run.stage_summary(stage)
+        desc = summary.get("noise_model")
+        if desc is None:
+            for name in names:
+                desc = (_read_json(run.dir / stage / name) or {}).get("noise_model")
+                if desc is not None:
+                    break
+        if desc is not None:
+            out[stage] = desc
+    return out
+
+
+def _noise(run: _Run) -> str:
+    parts = []
+    used = stage_noise_models(run)
+    if used:
+        rows = [{"stage": st, "source": d.get("source"), "meaning": d.get("meaning"),
+                 "table": Path(d["table"]).name if d.get("table") else "-",
+                 "table SHA-256": (d.get("table_checksum") or "-")[:16],
+                 "pulsars with red noise": d.get("n_red_noise"),
+                 "common process": (f"log10 A = {d['common']['log10_amplitude']:.2f}, γ = {d['common']['index']:.2f} "
+                                    f"({d['common'].get('correlation')})" if d.get("common") else "none")}
+                for st, d in used.items()]
+        parts.append("<p>The noise model each stage used (source, values, checksum):</p>" + html_table(rows))
+        keys = {(d.get("source"), d.get("table_checksum"), json.dumps(d.get("settings"), sort_keys=True))
+                for d in used.values()}
+        if len(keys) > 1:
+            parts.append('<p class="note">The stages did not all use the same noise model: rerun with one '
+                         '--noise-model (or [noise] model) for the whole run.</p>')
+        notes = sorted({n for d in used.values() for n in d.get("notes", [])})
+        parts.extend(f'<p class="note">{_e(n)}</p>' for n in notes)
+    fit = _read_json(run.dir / "noise" / "summary.json")
+    if fit:
+        c = fit.get("common")
+        items = [("method", fit.get("method")), ("uncertainties", fit.get("uncertainties")),
+                 ("priors", fit.get("priors")), ("red-noise test", fit.get("red_noise_test")),
+                 ("red-noise threshold (2 ΔlnL)", fit.get("red_noise_threshold")),
+                 ("pulsars with red noise", f"{fit.get('n_red_noise')} of {fit.get('n_pulsars')}"),
+                 ("dataset checksum", fit.get("dataset_checksum"))]
+        if c:
+            items.append(("common process", f"log10 A = {c['log10_amplitude']:.3f} ± {c['log10_amplitude_err']:.3f}, "
+                          f"γ = {c['index']:.2f} ± {c['index_err']:.2f} ({c.get('correlation')}); 2 ΔlnL against "
+                          f"zero amplitude = {c['statistic']:.1f}"))
+            cmp = c.get("correlated_vs_uncorrelated")
+            if cmp:
+                items.append(("correlated vs uncorrelated", f"2 ΔlnL = {cmp['statistic']:.2f}"))
+        a = fit.get("array_low_frequency") or {}
+        items.append(("array low-frequency excess p", a.get("pvalue")))
+        parts.append(_dl(items))
+        rows = []
+        for p in fit.get("pulsars", []):
+            red, gof = p["red_noise"], p.get("goodness_of_fit") or {}
+            white = "; ".join(f"{b}: ×{w['sigma_scale']:.3f}±{w['sigma_scale_err']:.3f}, "
+                              f"+{w['sigma_added_s'] * 1e9:.1f}±{w['sigma_added_err_s'] * 1e9:.1f} ns"
+                              for b, w in p["white"].items())
+            rows.append({"pulsar": p["name"], "white noise (scale, added)": white, "model": red["model"],
+                         "2 ΔlnL": round(red["statistic"], 2),
+                         "red log10 A": (f"{red['log10_amplitude']:.2f} ± {red['log10_amplitude_err']:.2f}"
+                                         if red["claimed"] else "-"),
+                         "red γ": f"{red['index']:.2f} ± {red['index_err']:.2f}" if red["claimed"] else "-",
+                         "normality p": gof.get("normality_pvalue"), "low-freq. p": gof.get("low_frequency_pvalue"),
+                         "check": "FAIL" if gof.get("flagged") else "ok", "converged": p["converged"]})
+        parts.append(html_table(rows))
+        parts.extend(f'<p class="note">{_e(w)}</p>' for w in fit.get("warnings", []))
+        parts.append(_figures(run.dir / "noise"))
+    elif not used:
+        parts.append(run.status_note("noise") or '<p class="note">No noise model recorded.</p>')
+    return "\n".join(p for p in parts if p)
 
 
 def _scan(run: _Run) -> str:
@@ -414,6 +493,8 @@ def run_cautions(run: _Run) -> list:
             out.append(f"{name}: the sampler stopped by {fol.get('stopped_by')}, not by reaching its "
                        "effective-sample target.")
     scan = run.stage_summary("scan")
+    gof = (scan or {}).get("goodness_of_fit") or {}
+    out.extend(f"Goodness of fit: {w}" for w in gof.get("warnings", []))
     if scan and not any("empirical" in k for k in scan):
         out.append("False-alarm probabilities are analytic (effective number of templates) only; "
                    "ask the scan for noise-only simulations for an empirical calibration.")
@@ -439,7 +520,7 @@ def _provenance(run: _Run) -> str:
     return _dl(items) + html_table(stage_rows)
 
 
-_BUILDERS = {"headline": _headline, "dataset": _dataset, "scan": _scan, "candidates": _candidates,
+_BUILDERS = {"headline": _headline, "dataset": _dataset, "noise": _noise, "scan": _scan, "candidates": _candidates,
              "followup": _followup, "hosts": _hosts, "limits": _limits, "cautions": _cautions,
              "provenance": _provenance}
 

@@ -402,6 +402,7 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
     """Follow up the chosen targets and write ``run_dir/followup/`` (see module docstring)."""
     from ...core.fileio import write_json_atomic
     from ...inference.likelihood import Likelihood
+    from ...inference.noisefit import stage_noise_statement
 
     options.check()
     run_dir = Path(run_dir)
@@ -416,6 +417,7 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
         folder = stage if len(targets) == 1 else stage / target.label
         summary, result, table = _follow_one(likelihood, target, array, folder, options, seq, progress)
         summary["seed"] = seed
+        summary["noise_model"] = stage_noise_statement(array, noise)
         write_json_atomic(folder / "summary.json", summary)
         if options.plots:
             from .plots import plot_followup
@@ -429,7 +431,8 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
                 "log_bayes_factor_error": [s["log_bayes_factor_error"] for s in summaries],
                 "effective_sample_size": [s["effective_sample_size"] for s in summaries],
                 "folders": [str(f) for f in folders], "seed": seed,
-                "wall_time": time.monotonic() - start, "options": asdict(options)}
+                "wall_time": time.monotonic() - start, "options": asdict(options),
+                "noise_model": stage_noise_statement(array, noise)}
     if len(targets) > 1:
         write_json_atomic(stage / "summary.json", headline)
     return FollowupResult(summary=headline if len(targets) > 1 else summaries[0], folders=folders, runs=runs)

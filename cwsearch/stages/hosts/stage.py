@@ -1009,6 +1009,10 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
         "options": asdict(options),
         "caution": "A host association is a probability under the stated priors, not an identification.",
     }
+    if array is not None:
+        from ...inference.noisefit import stage_noise_statement
+
+        summary["noise_model"] = stage_noise_statement(array, noise)
     write_json_atomic(out_dir / "hosts_summary.json", summary)
     return HostsResult(ranking, summary, results, out_dir)
 

@@ -1248,6 +1248,9 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
 
         files.update(make_plots(folder, frequencies, ftab, stab, gtab, array, nside, primary))
     summary["files"] = sorted(Path(p).name for p in files.values())
+    from ...inference.noisefit import stage_noise_statement
+
+    summary["noise_model"] = stage_noise_statement(array, noise)
     write_json_atomic(folder / "limits_summary.json", summary)
     files["summary"] = str(folder / "limits_summary.json")
     return LimitsResult(frequencies, pixel_limits, ftab, stab, gtab, summary, files,

@@ -462,6 +462,7 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     from ...physics import fstat
     from ...core.fileio import write_json_atomic, write_table_atomic
     from ...physics.noise import NoiseWeighting
+    from ...inference.noisefit import stage_noise_statement
 
     options.validate()
     started = time.time()
@@ -540,6 +541,8 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
 
     summary = _summary(options, array, noise, frequencies, n_pix, trials, candidates, null_fe, null_fp, want_fe,
                        seed, timings)
+    summary["noise_model"] = stage_noise_statement(array, noise)
+    summary["goodness_of_fit"] = scan_goodness_of_fit(array, noise)
     files = {
         "candidates": out / "candidates.ecsv",
         "spectrum": out / "spectrum.ecsv",
@@ -562,6 +565,39 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     summary["seconds"] = round(time.time() - started, 3)
     write_json_atomic(files["summary"], summary)
     return ScanResult(frequencies, fe_full, spectrum, candidates, summary, files, null_fe, null_fp)
+
+
+def scan_goodness_of_fit(array, noise, *, warn=True) -> dict:
+    """Goodness of fit of every pulsar under the scan's noise model (always on): the normality and
+    low-frequency-excess tests of :func:`cwsearch.inference.noisefit.goodness_of_fit`. Warns
+    (:class:`~cwsearch.inference.noisefit.NoiseFitWarning`) naming each pulsar with p < 1e-3, and when the
+    array shows a common low-frequency excess (pointing to the common-process fit)."""
+    import warnings
+
+    from ...inference.noisefit import GOF_THRESHOLD, NoiseFitWarning, goodness_of_fit
+
+    checks, combined = goodness_of_fit(array, noise)
+    failed = [c for c in checks if c.flagged]
+    messages = [f"pulsar {c.name}: whitened residuals fail a check under the scan's noise model "
+                f"(normality p = {c.normality_pvalue:.2g}, low-frequency excess p = {c.lowfreq_pvalue:.2g})"
+                for c in failed]
+    if combined.flagged:
+        hint = ("the noise model's common process does not account for it: refit it (noise stage)"
+                if noise.common_log10_amplitude is not None else
+                "fit a common red process (noise stage, --noise-model estimate)")
+        messages.append(f"array: combined low-frequency excess (p = {combined.pvalue:.2g}) points to an unmodelled "
+                        f"common red process; {hint}")
+    if warn:
+        for m in messages:
+            warnings.warn(m, NoiseFitWarning, stacklevel=2)
+    return {"tests": "normality: scipy.stats.kstest of whitened residuals against N(0,1); low-frequency excess: "
+                     "chi2 over the lowest 4 sine/cosine pairs (scipy.stats.chi2.sf)",
+            "threshold": GOF_THRESHOLD, "n_failed": len(failed), "failed": [c.name for c in failed],
+            "pulsars": {c.name: {"normality_pvalue": float(c.normality_pvalue),
+                                 "low_frequency_pvalue": float(c.lowfreq_pvalue)} for c in checks},
+            "array_low_frequency": {"statistic": float(combined.statistic), "dof": int(combined.dof),
+                                    "pvalue": float(combined.pvalue), "flagged": bool(combined.flagged)},
+            "warnings": messages}
 
 
 def _thresholds(trials, null_fe, fp_dof, level=0.01):
