@@ -1,5 +1,7 @@
 """Options shared by the stage commands: dataset, output folder, seed, quiet, noise model."""
 
+from __future__ import annotations
+
 NOISE_MODEL_HELP = ("noise model every stage uses: 'estimate' (default: fit it from the residuals, or reuse "
                     "RUN_DIR/noise/ fitted on the same dataset), 'dataset' (the values in the dataset files, "
                     "fixed) or the path of a noise table (noise_model.ecsv)")
@@ -10,7 +12,6 @@ def add_noise_model_argument(parser):
     parser.add_argument("--noise-model", default="estimate", metavar="estimate|dataset|FILE", help=NOISE_MODEL_HELP)
 
 
-from __future__ import annotations
 
 
 def add_dataset_arguments(parser, out_required=True):
