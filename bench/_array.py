@@ -1,4 +1,4 @@
-"""The benchmark array of DESIGN.md §12, shared by every benchmark.
+"""The benchmark array of docs/design.md §12, shared by every benchmark.
 
 50 invented pulsars × 1000 TOAs over 15 years, each with power-law red
 noise on 30 Fourier pairs, plus a common red process (γ = 13/3) that is

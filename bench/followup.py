@@ -1,4 +1,4 @@
-"""Follow-up wall time on the DESIGN.md §12 bench array for an SNR ≈ 15 injection.
+"""Follow-up wall time on the docs/design.md §12 bench array for an SNR ≈ 15 injection.
 
 ``python -m bench.followup`` injects one binary (full evolution, Earth and
 pulsar terms, optimal SNR 15 measured with the noise engine) into the bench
@@ -49,7 +49,7 @@ def main(argv=None):
     data = array.with_residuals([simulate.postfit(p, p.residuals + s) for p, s in zip(array, signal)])
     options = FollowupOptions(frequency=binary.gw_frequency * 1.005, ra=np.degrees(binary.ra) + 1.5,
                               dec=np.degrees(binary.dec) - 1.5, ess=args.ess, max_time=args.max_time,
-                              walkers=args.walkers, temperatures=args.temperatures, plots=False)
+                              walkers=args.walkers, temperatures=args.temperatures, no_plots=True)
     out = args.out or tempfile.mkdtemp(prefix="cwsearch-bench-followup-")
     t = time.perf_counter()
     result = run_followup(data, out, options, noise=noise, seed=1, progress=True)

@@ -1,4 +1,4 @@
-"""Follow-up likelihood speed on the DESIGN.md §12 bench array (50 pulsars × 1000 TOAs, rank 65).
+"""Follow-up likelihood speed on the docs/design.md §12 bench array (50 pulsars × 1000 TOAs, rank 65).
 
 ``python -m bench.likelihood`` prints
 

@@ -1,4 +1,4 @@
-"""Benchmark of the upper-limits stage (DESIGN.md §12): ``python -m bench.limits``.
+"""Benchmark of the upper-limits stage (docs/design.md §12): ``python -m bench.limits``.
 
 On the bench array (50 pulsars × 1000 TOAs, 15 yr, red noise + common
 process; :mod:`bench._array`) it measures

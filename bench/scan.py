@@ -1,4 +1,4 @@
-"""Benchmark of the all-sky Fe scan (DESIGN.md §12): ``python -m bench.scan``.
+"""Benchmark of the all-sky Fe scan (docs/design.md §12): ``python -m bench.scan``.
 
 Bench array (50 pulsars × 1000 TOAs, 15 yr, red noise on 30 Fourier pairs
 plus a common process), 3072 pixels (nside 16) × 500 frequencies.

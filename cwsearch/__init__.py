@@ -14,16 +14,17 @@ Noise weighting
 Simulation
     :func:`invented_array`, :func:`simulate_residuals`, :class:`Binary`
     (``cwsearch.physics.simulate``).
-Stages (each: ``<Stage>Options`` and ``run_<stage>(array, run_dir, options, ...)``)
-    scan: :class:`ScanOptions`, :func:`run_scan` (``cwsearch.stages.scan.stage``, on ``cwsearch.physics.fstat``);
+Stages (registry ``cwsearch.stages.STAGES``; each stage package exports ``Options``,
+``run(array, run_dir, options, *, noise=None, seed=0, progress=True)`` and its old names)
+    scan: :class:`ScanOptions`, :func:`run_scan` (``cwsearch.stages.scan``, on ``cwsearch.physics.fstat``);
     follow-up: :class:`Likelihood`, :class:`FollowupOptions`, :func:`run_followup`
-    (``cwsearch.inference.likelihood``, ``cwsearch.inference.sampling``, ``cwsearch.stages.followup.stage``);
+    (``cwsearch.inference.likelihood``, ``cwsearch.inference.sampling``, ``cwsearch.stages.followup``);
     hosts: :func:`read_catalog`, :class:`HostsOptions`, :func:`run_hosts`
-    (``cwsearch.data.catalog``, ``cwsearch.physics.relations``, ``cwsearch.stages.hosts.stage``);
-    limits: :class:`LimitsOptions`, :func:`run_limits` (``cwsearch.stages.limits.stage``, ``cwsearch.inference.execution``).
+    (``cwsearch.data.catalog``, ``cwsearch.physics.relations``, ``cwsearch.stages.hosts``);
+    limits: :class:`LimitsOptions`, :func:`run_limits` (``cwsearch.stages.limits``, ``cwsearch.inference.execution``).
 Whole job
     :func:`load_config`, :func:`run_pipeline` (``cwsearch.job.config``, ``cwsearch.job.pipeline``,
-    ``cwsearch.job.report``).
+    ``cwsearch.job.runfolder``, ``cwsearch.job.report``).
 
 Example
 -------
@@ -43,10 +44,10 @@ _LAZY = {
     "NoiseWeighting": "physics.noise", "NoiseSettings": "physics.noise",
     "invented_array": "physics.simulate", "simulate_residuals": "physics.simulate", "Binary": "physics.simulate",
     "InputError": "core.errors",
-    "ScanOptions": "stages.scan.stage", "run_scan": "stages.scan.stage",
-    "Likelihood": "inference.likelihood", "FollowupOptions": "stages.followup.stage", "run_followup": "stages.followup.stage",
-    "read_catalog": "data.catalog", "HostsOptions": "stages.hosts.stage", "run_hosts": "stages.hosts.stage",
-    "LimitsOptions": "stages.limits.stage", "run_limits": "stages.limits.stage",
+    "ScanOptions": "stages.scan", "run_scan": "stages.scan",
+    "Likelihood": "inference.likelihood", "FollowupOptions": "stages.followup", "run_followup": "stages.followup",
+    "read_catalog": "data.catalog", "HostsOptions": "stages.hosts", "run_hosts": "stages.hosts",
+    "LimitsOptions": "stages.limits", "run_limits": "stages.limits",
     "load_config": "job.config", "run_pipeline": "job.pipeline",
 }
 

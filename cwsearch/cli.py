@@ -17,8 +17,11 @@ import errno
 import importlib
 import os
 import sys
+import traceback
+import warnings
 
 from . import __version__
+from .core.errors import InputError
 
 #: command name -> one-line summary (the module is cwsearch.commands.<name>)
 COMMANDS = {
@@ -85,10 +88,6 @@ def main(argv=None) -> int:
 
 def run_command(func, args) -> int:
     """Run ``func(args)``, mapping user errors to exit 2 and crashes to exit 1."""
-    import warnings
-
-    from .core.errors import InputError
-
     warnings.showwarning = _show_warning
     try:
         return int(func(args) or 0)
@@ -115,8 +114,6 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
     if getattr(category, "__module__", "").startswith("cwsearch"):
         print(f"cwsearch: warning: {message}", file=sys.stderr if file is None else file)
         return
-    import warnings
-
     print(warnings.formatwarning(message, category, filename, lineno, line), end="",
           file=sys.stderr if file is None else file)
 
@@ -128,8 +125,6 @@ _CANNOT_WRITE = _NO_SPACE | {errno.EROFS, errno.EACCES}
 
 def _internal_error() -> int:
     """Show the traceback of the exception being handled; exit status 1."""
-    import traceback
-
     traceback.print_exc()
     print("cwsearch: internal error (please report it with the traceback above)", file=sys.stderr)
     return 1
@@ -155,3 +150,6 @@ def _failed_path(exc: OSError) -> str:
 
 if __name__ == "__main__":  # pragma: no cover
     sys.exit(main())
+
+
+__all__ = ["COMMANDS", "main", "run_command"]

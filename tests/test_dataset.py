@@ -1,6 +1,6 @@
 """Dataset folder: validation messages, exact round trip, the reader writes nothing, fuzzing.
 
-The expectations are the input contract of DESIGN.md §3 and common practice for
+The expectations are the input contract of docs/design.md §3 and common practice for
 file readers (no source): every malformed input gives one specific message naming
 file, data row and column; reading never modifies the folder; arbitrary bytes
 either load or give that kind of message, never a crash.

@@ -157,9 +157,12 @@ def assert_same_numbers(got: Path, want: Path):
 # ------------------------------------------------------------------ scan (deterministic: same numbers)
 
 def test_kill_scan_then_resume_equals_uninterrupted(dataset, tmp_path, capsys):
-    ref = run_file(tmp_path / "ref.toml", dataset, "ref", ["scan"], scan=SCAN)
+    # enough null simulations that the kill lands inside them (with the imports at module top the stage no
+    # longer spends seconds importing astropy.table after them)
+    scan = dict(SCAN, null_sims=100)
+    ref = run_file(tmp_path / "ref.toml", dataset, "ref", ["scan"], scan=scan)
     assert cli.main(["run", str(ref), "--quiet"]) == 0
-    killed = run_file(tmp_path / "killed.toml", dataset, "killed", ["scan"], scan=SCAN)
+    killed = run_file(tmp_path / "killed.toml", dataset, "killed", ["scan"], scan=scan)
     inputs = tree(dataset)
 
     kill_when(["run", killed], "null simulations:", cwd=tmp_path)
@@ -220,7 +223,7 @@ def test_kill_followup_resumes_from_checkpoint(tmp_path, capsys):
     scan = dict(SCAN, null_sims=0)
     followup = {"fap_threshold": 0.5, "max_candidates": 1, "ess": 1.0e9, "walkers": 18, "temperatures": 3,
                 "checkpoint_every": 10, "adapt_iterations": 40, "max_iterations": 160, "earth_term_only": True,
-                "evolution": "monochromatic", "plots": False}
+                "evolution": "monochromatic", "no_plots": True}
     ref = run_file(tmp_path / "ref.toml", data, "ref", ["scan", "followup"], scan=scan, followup=followup)
     assert cli.main(["run", str(ref), "--quiet"]) == 0
     killed = run_file(tmp_path / "killed.toml", data, "killed", ["scan", "followup"], scan=scan, followup=followup)

@@ -83,7 +83,7 @@ def test_loud_injections_recovered_at_the_calibrated_rate(tmp_path, base_array):
     truths = {"frequency": binary.gw_frequency, "ra": np.degrees(binary.ra), "dec": np.degrees(binary.dec),
               "strain": binary.strain}
     options = FollowupOptions(frequency=binary.gw_frequency * 1.01, ra=truths["ra"] + 2, dec=truths["dec"] - 2,
-                              plots=False, **FAST)
+                              no_plots=True, **FAST)
     misses = []
     for seed in NOISE_SEEDS:
         array = base_array.with_residuals(simulate_residuals(base_array, seed=seed, binaries=[binary]))
@@ -95,7 +95,7 @@ def test_loud_injections_recovered_at_the_calibrated_rate(tmp_path, base_array):
 
 def test_noise_only_bayes_factor_not_positive(tmp_path, base_array):
     array = base_array.with_residuals(simulate_residuals(base_array, seed=33))
-    options = FollowupOptions(frequency=1.2e-8, ra=114.6, dec=22.9, plots=False, **FAST)
+    options = FollowupOptions(frequency=1.2e-8, ra=114.6, dec=22.9, no_plots=True, **FAST)
     s = run_followup(array, tmp_path, options, noise=WHITE, seed=4, progress=False).summary
     assert s["log_bayes_factor"] - 2 * s["log_bayes_factor_error"] < 1.0
 

@@ -195,7 +195,7 @@ def test_single_pulsar_fe_is_that_pulsars_fp():
 
 def test_pulsar_aligned_with_or_opposite_to_source_gives_no_nan():
     # a pulsar exactly in the source direction (1 + Omega.p = 0) and one exactly opposite: finite Fe,
-    # and the aligned pulsar contributes nothing (its full response vanishes, DESIGN.md section 4)
+    # and the aligned pulsar contributes nothing (its full response vanishes, docs/design.md section 4)
     src_ra, src_dec = 1.0, 0.3
     positions = (np.array([src_ra, src_ra + np.pi, 2.0, 4.0]), np.array([src_dec, -src_dec, -0.5, 0.9]))
     arr = invented_array(n_pulsars=4, years=8, seed=3, toas_per_pulsar=60, positions=positions)
@@ -256,7 +256,7 @@ def test_amplitude_parameter_round_trip():
 
 def test_noiseless_injection_gives_true_parameters_and_rho2():
     # Earth-term-only monochromatic injection at the true template: 2Fe = rho^2 = (s|s) exactly and
-    # M^-1 N gives back the injected (h0, cos i, psi, Phi0) (residual model of DESIGN.md section 4,
+    # M^-1 N gives back the injected (h0, cos i, psi, Phi0) (residual model of docs/design.md section 4,
     # Ellis, Siemens & Creighton 2012)
     arr = invented_array(n_pulsars=8, years=10, seed=4, toas_per_pulsar=150)
     f = 7 / arr.span

@@ -1,7 +1,7 @@
 """Tests of the follow-up likelihood (cwsearch.inference.likelihood).
 
 Check values come from outside the module: the signal rebuilt from scratch
-with waveform.residuals and weighted through the noise engine (DESIGN.md §7:
+with waveform.residuals and weighted through the noise engine (docs/design.md §7:
 ln Λ = (d|s) − ½(s|s)), brute-force quadrature (scipy.integrate.quad), the
 modified Bessel function (scipy.special), and numpy's sine and cosine.
 """
@@ -58,7 +58,7 @@ def _from_scratch(like, par, pulsar_phases):
 @pytest.mark.parametrize("evolution,pulsar_term", [("full", True), ("pulsar-frequency", True),
                                                    ("monochromatic", True), ("full", False)])
 def test_projection_fast_path_equals_from_scratch(small_array, evolution, pulsar_term):
-    # DESIGN.md §7: the cached (d|b_j), (b_i|b_j) give the same ln Λ as rebuilding the signal.
+    # docs/design.md §7: the cached (d|b_j), (b_i|b_j) give the same ln Λ as rebuilding the signal.
     # Relative error measured against (s|s), the size of the terms that make up ln Λ
     # (common practice, no source: ln Λ itself may be near 0 by cancellation).
     like = Likelihood(small_array, NOISE, evolution=evolution, pulsar_term=pulsar_term)
@@ -136,7 +136,7 @@ def test_batch_equals_marginal_projection(small_array):
 
 
 def test_marginalisation_equals_brute_force_quadrature(small_array):
-    # With block-diagonal noise ln Λ is a sum over pulsars (DESIGN.md §7), so the marginal over
+    # With block-diagonal noise ln Λ is a sum over pulsars (docs/design.md §7), so the marginal over
     # each pulsar phase is a 1-d integral; compare with scipy.integrate.quad of the coherent model.
     like = Likelihood(small_array, NOISE)
     rng = np.random.default_rng(8)

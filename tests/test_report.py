@@ -78,7 +78,7 @@ def _table(path, **cols):
 
 @pytest.fixture(scope="module")
 def run_folder(tmp_path_factory):
-    """A complete invented run folder (dummy numbers, real file formats of DESIGN.md §11)."""
+    """A complete invented run folder (dummy numbers, real file formats of docs/design.md §11)."""
     run = tmp_path_factory.mktemp("report") / "run"
     for stage in ("scan", "followup", "hosts", "limits"):
         (run / stage).mkdir(parents=True)

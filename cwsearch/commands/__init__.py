@@ -2,3 +2,6 @@
 
 Command modules import numerical code inside ``run`` only (keeps ``--help`` fast).
 """
+
+
+__all__ = []

@@ -25,7 +25,7 @@ def add_dataset_arguments(parser, out_required=True):
 
 
 def add_noise_arguments(parser):
-    """Noise-model options (DESIGN.md §5)."""
+    """Noise-model options (docs/design.md §5)."""
     g = parser.add_argument_group("noise model")
     add_noise_model_argument(g)
     g.add_argument("--red-components", type=int, default=30, metavar="K",
@@ -40,6 +40,7 @@ def add_noise_arguments(parser):
 
 def noise_settings(args):
     """:class:`~cwsearch.physics.noise.NoiseSettings` from parsed noise options."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..physics.noise import NoiseSettings
 
     return NoiseSettings(red_components=args.red_components,
@@ -51,8 +52,8 @@ def noise_settings(args):
 def resolve_noise(args, array, *, progress=None):
     """The run's noise model for a stage command (:func:`cwsearch.job.noisemodel.resolve_noise_model`):
     ``(array with noise, NoiseSettings, description)``; prints which model is used unless ``--quiet``."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
     import sys
-
     from ..data.dataset import dataset_checksum
     from ..job.noisemodel import format_description, resolve_noise_model
     from ..job.pipeline import stage_seed
@@ -70,10 +71,10 @@ def resolve_noise(args, array, *, progress=None):
 
 def check_same_model(run_dir, resolved):
     """Warn when the scan already in ``run_dir`` used another noise model than ``resolved``."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
     import json
     import warnings
     from pathlib import Path
-
     from ..job.noisemodel import NoiseModelWarning
 
     if run_dir is None:
@@ -96,6 +97,7 @@ def check_same_model(run_dir, resolved):
 
 def load_array(args):
     """Read and validate the dataset named on the command line."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..data.dataset import read_dataset
 
     return read_dataset(args.dataset)

@@ -2,6 +2,11 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
+from ..core.errors import InputError
+from .run import add_output_arguments, print_result, with_noise_model
+
 DESCRIPTION = """\
 Run the whole job on the bundled INVENTED demo data: 20 pulsars (SIMPSR01..20)
 over 12.5 years with one injected supermassive black-hole binary, and an
@@ -40,8 +45,6 @@ QUICK = {
 
 
 def add_arguments(parser):
-    from .run import add_output_arguments
-
     parser.add_argument("--out", default=None, metavar="RUN_DIR",
                         help="run folder (default runs/demo, or runs/demo-quick with --quick)")
     parser.add_argument("--quick", action="store_true",
@@ -52,8 +55,7 @@ def add_arguments(parser):
 
 def demo_paths():
     """Bundled demo dataset folder and galaxy catalogue (package data; repository copy as fallback)."""
-    from pathlib import Path
-
+    # lazy: keeps `cwsearch COMMAND --help` fast
     import cwsearch
 
     package = Path(cwsearch.__file__).resolve().parent
@@ -67,6 +69,7 @@ def demo_paths():
 
 def demo_settings(quick=False) -> dict:
     """The demo's stage settings (``DEMO`` with ``QUICK`` applied), only for installed stages."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..job.config import stage_options_class
 
     settings = {}
@@ -81,10 +84,8 @@ def demo_settings(quick=False) -> dict:
 
 def demo_config(out, *, quick=False, seed=0):
     """The demo's :class:`~cwsearch.job.config.RunConfig` (validated like any run file)."""
-    from pathlib import Path
-
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..job.config import parse_config, to_toml
-    from ..core.errors import InputError
 
     dataset, catalog = demo_paths()
     if not dataset.is_dir():
@@ -104,8 +105,8 @@ def demo_config(out, *, quick=False, seed=0):
 
 
 def run(args) -> int:
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..job.pipeline import run_pipeline
-    from .run import print_result, with_noise_model
 
     out = args.out or ("runs/demo-quick" if args.quick else "runs/demo")
     config = with_noise_model(demo_config(out, quick=args.quick, seed=args.seed), args.noise_model)
@@ -114,3 +115,9 @@ def run(args) -> int:
     if not args.json and not args.quiet:
         print(f"Settings used: {config.out / 'run.toml'}  (edit a copy, then: cwsearch run COPY.toml)")
     return 0
+
+
+__all__ = [
+    "DESCRIPTION", "EXAMPLE", "add_arguments", "run", "DEMO", "QUICK", "demo_paths", "demo_settings",
+    "demo_config",
+]

@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import json
+from dataclasses import fields
+
 from ._common import add_dataset_arguments, add_noise_arguments, load_array, resolve_noise
 
 DESCRIPTION = (
@@ -54,14 +57,12 @@ def add_arguments(parser):
     s.add_argument("--adapt-iterations", type=int, default=500, metavar="N",
                    help="adapt the temperature ladder during the first N iterations (default 500)")
     s.add_argument("--resume", action="store_true", help="continue from the checkpoint in the output folder")
-    parser.add_argument("--no-plots", dest="plots", action="store_false", help="skip the PNG plots")
+    parser.add_argument("--no-plots", action="store_true", help="skip the PNG plots")
     add_noise_arguments(parser)
 
 
 def run(args) -> int:
-    import json
-    from dataclasses import fields
-
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..stages.followup.stage import FollowupOptions, run_followup
 
     options = FollowupOptions(**{f.name: getattr(args, f.name) for f in fields(FollowupOptions)})
@@ -90,3 +91,6 @@ def run(args) -> int:
                                 result.summary["log_bayes_factor_error"]):
                 print(f"  {t}: ln Bayes factor {lb:.2f} ± {e:.2f}")
     return 0
+
+
+__all__ = ["DESCRIPTION", "EXAMPLE", "add_arguments", "run"]

@@ -57,6 +57,7 @@ def add_arguments(parser):
 
 
 def run(args) -> int:
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..stages.hosts.stage import HostsOptions, format_table, run_hosts, summary_json
 
     options = HostsOptions(catalog=args.catalog, columns=args.columns, completeness=args.completeness,
@@ -73,3 +74,6 @@ def run(args) -> int:
         print(format_table(result, args.top))
         print(f"wrote {result.out_dir}/ranking.ecsv, hosts_summary.json" + ("" if args.no_plots else " and plots"))
     return 0
+
+
+__all__ = ["DESCRIPTION", "EXAMPLE", "add_arguments", "run"]

@@ -2,6 +2,13 @@
 
 from __future__ import annotations
 
+import json
+import sys
+import warnings
+from pathlib import Path
+
+from ..core.constants import DAY_SECONDS, YEAR_SECONDS
+
 DESCRIPTION = """\
 Validate a dataset folder (pulsars.ecsv, residuals/NAME.ecsv, optional
 noise.ecsv) and print one line per pulsar: sky position [deg], distance
@@ -21,10 +28,7 @@ def add_arguments(parser):
 
 
 def run(args) -> int:
-    import json
-    import sys
-    import warnings
-
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..data.dataset import read_dataset
 
     with warnings.catch_warnings(record=True) as caught:
@@ -45,12 +49,8 @@ def run(args) -> int:
 
 def summarize(array, path=None) -> dict:
     """JSON-serialisable description of an :class:`~cwsearch.data.model.Array` (what ``inspect`` prints)."""
-    import json
-    from pathlib import Path
-
+    # lazy: keeps `cwsearch COMMAND --help` fast
     import numpy as np
-
-    from ..core.constants import DAY_SECONDS, YEAR_SECONDS
     from ..data.dataset import INJECTION_FILE, dataset_checksum
 
     pulsars = []
@@ -102,6 +102,7 @@ def summarize(array, path=None) -> dict:
 def goodness_of_fit_summary(array) -> dict:
     """Goodness of fit of every pulsar under the dataset's own noise values (always on; the same tests as the
     scan: :func:`cwsearch.stages.scan.stage.scan_goodness_of_fit`)."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..physics.noise import NoiseSettings
     from ..stages.scan.stage import scan_goodness_of_fit
 
@@ -162,3 +163,6 @@ def format_summary(summary) -> str:
                       if gof["array_low_frequency"]["flagged"] else ""))
     out.append("dataset is valid")
     return "\n".join(out)
+
+
+__all__ = ["DESCRIPTION", "EXAMPLE", "add_arguments", "run", "summarize", "format_summary"]

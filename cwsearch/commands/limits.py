@@ -3,7 +3,10 @@
 
 from __future__ import annotations
 
-from ._common import add_dataset_arguments, add_grid_arguments, add_noise_arguments
+import json
+
+from ._common import (add_dataset_arguments, add_grid_arguments, add_noise_arguments, load_array,
+                      resolve_noise)
 
 DESCRIPTION = """\
 Compute 95 % upper limits on the strain amplitude h0 of a circular binary at
@@ -69,6 +72,7 @@ def add_arguments(parser):
 
 def options_from_args(args):
     """:class:`cwsearch.stages.limits.stage.LimitsOptions` from parsed arguments."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..stages.limits.stage import LimitsOptions
 
     galaxy = tuple((str(n), ra, dec, dist) for n, ra, dec, dist in (args.galaxy or ()))
@@ -84,9 +88,7 @@ def _fmt(v):
 
 
 def run(args) -> int:
-    import json
-
-    from ._common import load_array, resolve_noise
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..stages.limits.stage import parse_galaxies, run_limits
 
     options = options_from_args(args)
@@ -119,3 +121,6 @@ def run(args) -> int:
               f"+- {check['sampled_error']:.1e} ({check['difference_in_errors']:+.1f} sigma)")
     print(f"outputs in {result.files['frequency_limits'].rsplit('/', 1)[0]}")
     return 0
+
+
+__all__ = ["DESCRIPTION", "EXAMPLE", "add_arguments", "run", "options_from_args"]

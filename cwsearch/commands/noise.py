@@ -3,7 +3,9 @@
 
 from __future__ import annotations
 
-from ._common import add_dataset_arguments
+import json
+
+from ._common import add_dataset_arguments, load_array
 
 DESCRIPTION = """\
 Fit the noise model from the residuals alone and write RUN_DIR/noise/:
@@ -50,6 +52,7 @@ def add_arguments(parser):
 
 def options_from_args(args):
     """:class:`cwsearch.stages.noise.stage.NoiseOptions` from parsed arguments."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..stages.noise.stage import NoiseOptions
 
     return NoiseOptions(model="estimate", fit_common=not args.no_common, fixed_common_index=args.fixed_common_index,
@@ -89,9 +92,8 @@ def format_fit(summary) -> str:
 
 
 def run(args) -> int:
-    import json
-
-    from ._common import load_array
+    # lazy: keeps `cwsearch COMMAND --help` fast
+    from ..core.errors import InputError
     from ..data.dataset import dataset_checksum
     from ..job.pipeline import stage_seed
     from ..physics.noise import NoiseSettings
@@ -99,8 +101,6 @@ def run(args) -> int:
 
     options = options_from_args(args)
     if args.red_components < 0:
-        from ..core.errors import InputError
-
         raise InputError("option --red-components: must be >= 0")
     array = load_array(args)
     result = run_noise(array, args.out, options, noise=NoiseSettings(red_components=args.red_components),
@@ -116,3 +116,6 @@ def run(args) -> int:
               f"{summary['n_failed_goodness_of_fit']} fail the goodness of fit; {summary['seconds']:.1f} s")
         print(f"outputs in {result.files['table'].parent}")
     return 0
+
+
+__all__ = ["DESCRIPTION", "EXAMPLE", "add_arguments", "run", "options_from_args", "format_fit"]

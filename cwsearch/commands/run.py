@@ -2,6 +2,12 @@
 
 from __future__ import annotations
 
+import json
+from dataclasses import replace
+from pathlib import Path
+
+from ..core.errors import InputError
+
 DESCRIPTION = """\
 Run the whole job from a TOML run file: noise model -> scan -> follow-up of
 every candidate below the false-alarm threshold -> host ranking -> upper
@@ -47,11 +53,6 @@ def add_output_arguments(parser):
 
 def with_noise_model(config, model):
     """``config`` with its [noise] model replaced by ``model`` (a FILE relative to the working directory)."""
-    from dataclasses import replace
-    from pathlib import Path
-
-    from ..core.errors import InputError
-
     if model is None:
         return config
     if model not in ("estimate", "dataset"):
@@ -74,8 +75,7 @@ def add_arguments(parser):
 
 def print_result(result, args) -> None:
     """The end-of-run message: report path and headline (or JSON)."""
-    import json
-
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..job.pipeline import format_headline
 
     if args.json:
@@ -90,6 +90,7 @@ def print_result(result, args) -> None:
 
 
 def run(args) -> int:
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..job.config import load_config
     from ..job.pipeline import run_pipeline
 
@@ -100,3 +101,9 @@ def run(args) -> int:
     result = run_pipeline(config, force=args.force, quiet=args.quiet)
     print_result(result, args)
     return 0
+
+
+__all__ = [
+    "DESCRIPTION", "EXAMPLE", "add_arguments", "run", "STAGE_CHOICES", "add_output_arguments",
+    "print_result",
+]

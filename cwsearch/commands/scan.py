@@ -2,7 +2,11 @@
 
 from __future__ import annotations
 
-from ._common import add_dataset_arguments, add_grid_arguments, add_noise_arguments
+import json
+import math
+
+from ._common import (add_dataset_arguments, add_grid_arguments, add_noise_arguments, load_array,
+                      resolve_noise)
 
 DESCRIPTION = """\
 Scan every GW frequency from 1/T_span (spacing 1/(oversample*T_span)) up to
@@ -51,6 +55,7 @@ def add_arguments(parser):
 
 def options_from_args(args):
     """:class:`cwsearch.stages.scan.stage.ScanOptions` from parsed arguments."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..stages.scan.stage import ScanOptions
 
     return ScanOptions(fmin=args.fmin, fmax=args.fmax, oversample=args.oversample, nside=args.nside,
@@ -60,8 +65,6 @@ def options_from_args(args):
 
 def format_candidates(table, n=10):
     """The top candidates as a plain-text table."""
-    import math
-
     lines = [f"{'#':>3} {'f_gw [Hz]':>11} {'ra[deg]':>8} {'dec[deg]':>8} {'Fe':>8} {'SNR':>6} "
              f"{'fap':>9} {'fap_emp':>9} {'Fp':>8} {'h0':>9}"]
 
@@ -78,9 +81,7 @@ def format_candidates(table, n=10):
 
 
 def run(args) -> int:
-    import json
-
-    from ._common import load_array, resolve_noise
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..stages.scan.stage import run_scan
 
     options = options_from_args(args).validate()
@@ -114,3 +115,6 @@ def run(args) -> int:
               + (f": {', '.join(gof['failed'])}" if gof["failed"] else ""))
         print(f"outputs in {result.files['candidates'].parent}")
     return 0
+
+
+__all__ = ["DESCRIPTION", "EXAMPLE", "add_arguments", "run", "options_from_args", "format_candidates"]

@@ -6,7 +6,14 @@ The library entry point is :func:`simulate_dataset` with a
 
 from __future__ import annotations
 
+import json
+import math
 from dataclasses import asdict, dataclass, fields
+from pathlib import Path
+
+from .. import __version__
+from ..core.constants import DAY_SECONDS, YEAR_SECONDS
+from ..core.errors import InputError
 
 DESCRIPTION = """\
 Write an invented dataset folder (pulsars.ecsv, residuals/, noise settings)
@@ -131,8 +138,6 @@ def options_from_args(args) -> SimulateOptions:
 
 
 def run(args) -> int:
-    import json
-
     summary = simulate_dataset(args.outdir, options_from_args(args), seed=args.seed, overwrite=args.overwrite)
     if args.json:
         print(json.dumps(summary, indent=2))
@@ -149,8 +154,6 @@ def run(args) -> int:
 
 # ---------------------------------------------------------------------- library
 def _check_options(o: SimulateOptions):
-    from ..core.errors import InputError
-
     checks = [
         (o.pulsars >= 1, "--pulsars must be at least 1"),
         (o.years > 0, "--years must be > 0"),
@@ -171,10 +174,8 @@ def _check_options(o: SimulateOptions):
 
 def _binary_from_dict(spec: dict, where: str, pulsar_names):
     """Validate one binary given in user units (deg, Hz, Msun, Mpc, rad) -> keyword dict in model units."""
-    import math
-
+    # lazy: keeps `cwsearch COMMAND --help` fast
     from ..physics import waveform
-    from ..core.errors import InputError
 
     unknown = set(spec) - _BINARY_KEYS - _DERIVED_KEYS
     if unknown:
@@ -233,11 +234,6 @@ def _binary_from_dict(spec: dict, where: str, pulsar_names):
 
 def _binary_specs(o: SimulateOptions, pulsar_names):
     """Binaries from --inject-* options and --inject-file, in model units."""
-    import json
-    from pathlib import Path
-
-    from ..core.errors import InputError
-
     specs = []
     if o.inject_file is not None:
         path = Path(o.inject_file)
@@ -274,8 +270,8 @@ def _binary_specs(o: SimulateOptions, pulsar_names):
 
 def _pulsar_phases(array, spec):
     """Pulsar-term orbital phases at the reference time [rad] for the coherent model (one per pulsar)."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
     import numpy as np
-
     from ..physics import waveform
 
     _, _, omega_dot_p = waveform.antenna_pattern(spec["ra"], spec["dec"], array.positions)
@@ -295,13 +291,9 @@ def simulate_dataset(outdir, options: SimulateOptions | None = None, *, seed=0, 
     (e.g. :class:`~cwsearch.core.errors.CoalescenceError` when an injected binary
     would merge inside the data span).
     """
-    import math
-
+    # lazy: keeps `cwsearch COMMAND --help` fast
     import numpy as np
-
-    from .. import __version__
     from ..physics import waveform
-    from ..core.constants import DAY_SECONDS, YEAR_SECONDS
     from ..data.dataset import write_dataset
     from ..physics.noise import NoiseSettings, NoiseWeighting
     from ..data.model import PulsarNoise
@@ -383,3 +375,9 @@ def simulate_dataset(outdir, options: SimulateOptions | None = None, *, seed=0, 
     return {"dataset": str(outdir), "n_pulsars": len(array), "n_toas": int(sum(p.n_toas for p in array)),
             "span_years": array.span / YEAR_SECONDS, **{k: injection[k] for k in
                                                         ("seed", "reference_mjd", "binaries", "optimal_snr")}}
+
+
+__all__ = [
+    "DESCRIPTION", "EXAMPLE", "add_arguments", "run", "SimulateOptions", "options_from_args",
+    "simulate_dataset",
+]

@@ -47,3 +47,6 @@ class InputError(ValueError):
 
 class CoalescenceError(InputError):
     """The binary would merge before the end of the observation."""
+
+
+__all__ = ["InputError", "CoalescenceError"]

@@ -23,6 +23,8 @@ import os
 import tempfile
 from pathlib import Path
 
+import numpy as np
+
 from .errors import InputError
 
 
@@ -78,8 +80,6 @@ def write_table_atomic(target, table) -> None:
 
 
 def _json_default(obj):
-    import numpy as np
-
     if isinstance(obj, np.generic):
         return obj.item()
     if isinstance(obj, np.ndarray):
@@ -87,3 +87,8 @@ def _json_default(obj):
     if isinstance(obj, Path):
         return str(obj)
     raise TypeError(f"not JSON serialisable: {type(obj).__name__}")
+
+
+__all__ = [
+    "atomic_path", "write_text_atomic", "write_bytes_atomic", "write_json_atomic", "write_table_atomic",
+]

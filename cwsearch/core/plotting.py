@@ -6,14 +6,20 @@ functions live in ``cwsearch/stages/<stage>/plots.py`` (and ``cwsearch/data/plot
 
 from __future__ import annotations
 
+import astropy.units as u
 import numpy as np
+from astropy_healpix import HEALPix
+
+from . import fileio  # fileio.atomic_path is looked up at each call (the fault tests replace it)
 
 
 def pyplot():
     """matplotlib.pyplot with the non-interactive Agg backend."""
+    # lazy: a heavy import, loaded only when this runs
     import matplotlib
 
     matplotlib.use("Agg")
+    # lazy, after the backend is chosen
     import matplotlib.pyplot as plt
 
     return plt
@@ -21,11 +27,9 @@ def pyplot():
 
 def save_figure(fig, path):
     """Save ``fig`` to ``path`` (PNG) atomically and close it."""
-    from .fileio import atomic_path
-
     plt = pyplot()
     try:
-        with atomic_path(path) as tmp:
+        with fileio.atomic_path(path) as tmp:
             fig.savefig(tmp, format="png", dpi=110, bbox_inches="tight")
     finally:  # closed also when the write fails (disk full), so no figure is left open
         plt.close(fig)
@@ -45,18 +49,20 @@ def sky_map(path, values, nside, *, title="", label="", pulsars=None, marks=None
     ``ra``, ``dec`` [rad], optional ``label``, ``color``, ``marker``, ``size``.
     ``contours``: optional list of (levels, map) drawn as contour lines.
     """
-    from ..physics import sky
-
     plt = pyplot()
     res = 360
     lon = np.linspace(-np.pi, np.pi, res)
     lat = np.linspace(-np.pi / 2, np.pi / 2, res // 2)
     lon_g, lat_g = np.meshgrid(lon, lat)
-    pix = sky.pixel_of(nside, np.remainder(-lon_g, 2 * np.pi), lat_g)
+    # the HEALPix RING lookup straight from astropy-healpix (the same call as cwsearch.physics.sky.pixel_of;
+    # this floor may not import physics)
+    pix = np.asarray(HEALPix(nside=int(nside), order="ring").lonlat_to_healpix(
+        np.remainder(-lon_g, 2 * np.pi) * u.rad, lat_g * u.rad))
     grid = np.asarray(values)[pix]
     fig = plt.figure(figsize=(8, 4.6))
     ax = fig.add_subplot(111, projection="mollweide")
     if log:
+        # lazy: a heavy import, loaded only when this runs
         from matplotlib.colors import LogNorm
 
         mesh = ax.pcolormesh(lon_g, lat_g, grid, cmap=cmap, shading="auto",
@@ -81,3 +87,6 @@ def sky_map(path, values, nside, *, title="", label="", pulsars=None, marks=None
     if pulsars is not None or marks:
         ax.legend(loc="lower right", fontsize=7, framealpha=0.6)
     save_figure(fig, path)
+
+
+__all__ = ["pyplot", "save_figure", "sky_map"]

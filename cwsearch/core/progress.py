@@ -10,6 +10,8 @@ from __future__ import annotations
 import contextlib
 import sys
 
+from tqdm import tqdm
+
 
 class _Silent:
     def update(self, n=1):
@@ -28,7 +30,6 @@ def progress(total=None, desc="", enabled=True, unit="it"):
     if not enabled:
         yield _Silent()
         return
-    from tqdm import tqdm
 
     bar = tqdm(total=total, desc=desc, unit=unit, file=sys.stderr, dynamic_ncols=True, leave=False,
                mininterval=0.5)
@@ -36,3 +37,6 @@ def progress(total=None, desc="", enabled=True, unit="it"):
         yield bar
     finally:
         bar.close()
+
+
+__all__ = ["progress"]

@@ -49,10 +49,16 @@ import re
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import astropy.units as u
 import numpy as np
+from astropy.io import ascii
+from astropy.table import Table
 
 from ..core.errors import InputError
-from ..physics.relations import MASS_PROXIES, luminosity_distance, redshift_at_distance, total_mass_prior
+from .cosmology import luminosity_distance, redshift_at_distance
+
+#: mass-proxy columns a catalogue may carry, in order of preference
+MASS_PROXIES = ("log10_bh_mass", "log10_bulge_mass", "log10_stellar_mass", "k_abs_mag")
 
 #: canonical column -> (unit, required?)
 COLUMNS = {
@@ -144,7 +150,7 @@ class Catalog:
         """Per galaxy: mean and σ of log10 total black-hole mass [Msun], and the proxy used ("" if none).
 
         Each galaxy uses the first proxy it has, in the order of
-        :data:`cwsearch.physics.relations.MASS_PROXIES` (black-hole mass, bulge mass,
+        :data:`MASS_PROXIES` (black-hole mass, bulge mass,
         stellar mass, K-band magnitude).
         """
         n = len(self)
@@ -157,7 +163,7 @@ class Catalog:
                 continue
             fill = np.isnan(mu) & np.isfinite(values)
             if fill.any():
-                m, s = total_mass_prior(proxy, values[fill], relation)
+                m, s = relation.total_mass_prior(proxy, values[fill])
                 mu[fill], sigma[fill], used[fill] = m, s, proxy
         return mu, sigma, used.astype(str)
 
@@ -177,9 +183,6 @@ def _check_bytes(path: Path, raw: bytes):
 
 def _read_table(path: Path):
     """Astropy table of the file and a dict of column units from the ECSV header (if any)."""
-    from astropy.io import ascii
-    from astropy.table import Table
-
     raw = path.read_bytes()
     _check_bytes(path, raw)
     text_head = raw[:200].decode("utf-8", errors="replace")
@@ -236,7 +239,6 @@ def _numeric(table, file_col, ours, path, units, required):
     unit_ours = COLUMNS[ours][0]
     unit_file = units.get(file_col)
     if unit_ours is not None and unit_file is not None and str(unit_file) not in ("", "None"):
-        import astropy.units as u
 
         try:
             values = (values * u.Unit(unit_file)).to_value(unit_ours)
@@ -395,3 +397,8 @@ def read_catalog(path, columns=None, *, distance_error=DEFAULT_DISTANCE_ERROR):
 
     return Catalog(str(path), names, ra, dec, distance, distance_err, redshift, period, period_err,
                    proxies, np.arange(1, n + 1))
+
+
+__all__ = [
+    "MASS_PROXIES", "COLUMNS", "DEFAULT_DISTANCE_ERROR", "parse_column_map", "Catalog", "read_catalog",
+]

@@ -21,7 +21,7 @@ files it cannot read as numbers.
 Example
 -------
 >>> import numpy as np
->>> from cwsearch.compare import compare_arrays
+>>> from cwsearch.data.compare import compare_arrays
 >>> a = np.array([1.0, 2.0, 0.0])
 >>> compare_arrays(a, a * (1 + 3e-16), where="x").ok
 True
@@ -38,6 +38,8 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
+
+from .dataset import _read_table, dataset_files  # the project's safe ECSV reader
 
 #: relative tolerance for recomputed float64 values
 RTOL = 1e-12
@@ -203,8 +205,6 @@ def compare_files(path_a, path_b, *, where: str | None = None, rtol: float = RTO
     if not out.ok:
         return out
     if path_b.suffix == ".ecsv":
-        from .dataset import _read_table   # the project's safe ECSV reader
-
         return compare_tables(_read_table(path_a), _read_table(path_b), where=where, rtol=rtol,
                               atol_scale=atol_scale)
     if path_b.suffix == ".json":
@@ -230,8 +230,6 @@ def compare_datasets(folder_a, folder_b, *, injection: bool = True, rtol: float 
 
     The file lists must agree exactly; then every column as in :func:`compare_tables`.
     """
-    from .dataset import dataset_files
-
     out = Comparison()
     files_a, files_b = dataset_files(folder_a), dataset_files(folder_b)
     if files_a != files_b:

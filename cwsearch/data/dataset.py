@@ -1,6 +1,6 @@
 """Reading, validating and writing a dataset folder (the input contract).
 
-A dataset is a folder (DESIGN.md §3)::
+A dataset is a folder (docs/design.md §3)::
 
     mydata/
       pulsars.ecsv          one row per pulsar
@@ -64,9 +64,15 @@ import warnings
 from pathlib import Path
 
 import numpy as np
+from astropy import units as u
+from astropy.io import ascii as astropy_ascii
+from astropy.table import Column, MaskedColumn, Table
+from astropy.units import UnitsWarning
 
+from ..core.constants import DAY_SECONDS
 from ..core.errors import InputError
-from .model import DEFAULT_DESIGN_COLUMNS, Array, Pulsar, PulsarNoise
+from ..core.fileio import write_json_atomic, write_table_atomic
+from .model import default_design_matrix, Array, DEFAULT_DESIGN_COLUMNS, Pulsar, PulsarNoise
 
 PULSARS_FILE = "pulsars.ecsv"
 NOISE_FILE = "noise.ecsv"
@@ -144,9 +150,6 @@ def read_dataset(path) -> Array:
 
 def _read_table(file: Path):
     """Parse one ECSV file into an astropy Table; every failure becomes an InputError."""
-    from astropy.table import Column, Table
-    from astropy.units import UnitsWarning
-
     try:
         raw = file.read_bytes()
     except OSError as exc:
@@ -194,8 +197,6 @@ def _locate_unconvertible(lines, column):
     Used only to name the row when astropy refuses a numeric column; the
     data lines are re-read as text with the ECSV header's delimiter.
     """
-    from astropy.io import ascii as astropy_ascii
-
     try:
         delimiter = "," if any(re.match(r"#\s*delimiter:\s*['\"]?,", ln) for ln in lines) else " "
         body = [ln for ln in lines if not ln.startswith("#")]
@@ -230,8 +231,6 @@ def _numeric(table, name, unit, file, *, allow_masked=False):
 
     Returns ``(values, mask)``; masked (empty) fields raise unless ``allow_masked``.
     """
-    from astropy import units as u
-
     col = table[name]
     mask = np.asarray(np.ma.getmaskarray(col), dtype=bool)
     if mask.any() and not allow_masked:
@@ -408,9 +407,6 @@ def _read_residual_table(file):
 
 def _check_design_rank(mjd, design, design_names, file):
     """Refuse a timing model whose columns are linearly dependent (the fit would be singular)."""
-    from ..core.constants import DAY_SECONDS
-    from .model import default_design_matrix
-
     full = np.hstack([default_design_matrix(mjd * DAY_SECONDS), design])
     norms = np.linalg.norm(full, axis=0)
     names = list(DEFAULT_DESIGN_COLUMNS) + list(design_names)
@@ -516,8 +512,6 @@ def _degrees_exact(radians: float) -> float:
 
 
 def _pulsar_table(array):
-    from astropy.table import MaskedColumn, Table
-
     table = Table()
     table["name"] = [p.name for p in array]
     ra = []
@@ -542,8 +536,6 @@ def _pulsar_table(array):
 
 
 def _residual_table(pulsar):
-    from astropy.table import Table
-
     table = Table()
     table["mjd"] = np.asarray(pulsar.mjd, dtype=float)
     table["mjd"].unit = "d"
@@ -559,8 +551,6 @@ def _residual_table(pulsar):
 
 
 def _noise_table(array):
-    from astropy.table import Table
-
     rows = []
     for p in array:
         keys = set(p.noise.sigma_scale) | set(p.noise.sigma_added)
@@ -596,8 +586,6 @@ def write_dataset(array, path, injection=None, *, overwrite=False) -> None:
         JSON-serialisable description of injected signals (``injection.json``).
     overwrite : bool
     """
-    from ..core.fileio import write_json_atomic, write_table_atomic
-
     target = Path(path)
     names = [p.name for p in array]
     for i, name in enumerate(names):

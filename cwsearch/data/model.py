@@ -218,3 +218,6 @@ class Array:
 
     def __repr__(self):
         return f"Array({len(self)} pulsars, span={self.span / 3.15576e7:.2f} yr)"
+
+
+__all__ = ["DEFAULT_DESIGN_COLUMNS", "PulsarNoise", "default_design_matrix", "Pulsar", "Array"]

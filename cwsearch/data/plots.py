@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from ..core.constants import DAY_SECONDS
 from ..core.plotting import _wrap_ra, pyplot, save_figure
 
 
@@ -12,8 +13,6 @@ def dataset_overview(array, path, *, marks=None):
 
     ``marks``: optional list of dicts (``ra``, ``dec`` [rad], ``label``) drawn on the sky panel.
     """
-    from ..core.constants import DAY_SECONDS
-
     plt = pyplot()
     fig = plt.figure(figsize=(11, 4.2))
     ax = fig.add_subplot(1, 2, 1, projection="mollweide")
@@ -50,3 +49,6 @@ def dataset_overview(array, path, *, marks=None):
     ax2.invert_yaxis()
     fig.tight_layout()
     save_figure(fig, path)
+
+
+__all__ = ["dataset_overview"]

@@ -11,8 +11,8 @@ upper limits: chunks of pixel × frequency rows) and hands them to a
 * ``scheduler="tcp://host:8786"``: the tasks go to an existing
   ``dask.distributed`` cluster.
 
-Results come back in task order whatever the engine and the number of
-workers, so a stage that reduces them in that order gets identical numbers
+Results come back in task order whatever the runner's kind and the number
+of workers, so a stage that reduces them in that order gets identical numbers
 everywhere. A task that fails because its worker died (a killed Dask worker,
 ``KilledWorker``; a crashed local process) is resubmitted up to ``retries``
 times; other errors are raised. ``on_done(weight)`` is called as each task
@@ -31,7 +31,10 @@ Examples
 
 from __future__ import annotations
 
+import multiprocessing
 import os
+from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
+from concurrent.futures.process import BrokenProcessPool
 
 from ..core.errors import InputError
 
@@ -45,7 +48,7 @@ def available_cpus() -> int:
 
 
 class TaskRunner:
-    """Context manager that maps a function over tasks on the chosen engine.
+    """Context manager that maps a function over tasks on the chosen kind of runner.
 
     Parameters
     ----------
@@ -90,11 +93,14 @@ class TaskRunner:
             self._client = None
 
     @property
-    def engine(self) -> str:
+    def kind(self) -> str:
         """``"dask"``, ``"processes"`` or ``"serial"``."""
         if self.scheduler:
             return "dask"
         return "processes" if self.workers > 1 else "serial"
+
+    #: the old name of :attr:`kind` ("engine" means the noise weighting everywhere else)
+    engine = kind
 
     def describe(self) -> str:
         """One line naming the engine, for logs and summaries."""
@@ -128,16 +134,10 @@ class TaskRunner:
         return results
 
     def _new_pool(self):
-        import multiprocessing
-        from concurrent.futures import ProcessPoolExecutor
-
         method = "forkserver" if "forkserver" in multiprocessing.get_all_start_methods() else "spawn"
         return ProcessPoolExecutor(max_workers=self.workers, mp_context=multiprocessing.get_context(method))
 
     def _map_processes(self, function, tasks, weights, on_done):
-        from concurrent.futures import FIRST_COMPLETED, wait
-        from concurrent.futures.process import BrokenProcessPool
-
         results = [None] * len(tasks)
         pending_ids = list(range(len(tasks)))
         attempts = 0
@@ -173,6 +173,7 @@ class TaskRunner:
             return self._map_dask_current(function, tasks, weights, on_done)
 
     def _map_dask_current(self, function, tasks, weights, on_done):
+        # lazy: a heavy import, loaded only when this runs
         from distributed import as_completed
 
         client = self._client
@@ -204,6 +205,7 @@ class TaskRunner:
 
 def _worker_died(error) -> bool:
     try:
+        # lazy: a heavy import, loaded only when this runs
         from distributed.scheduler import KilledWorker
     except ImportError:  # pragma: no cover
         return False
@@ -214,6 +216,7 @@ def _worker_died(error) -> bool:
 def _connect(address, timeout=10.0):
     """A ``distributed.Client`` for ``address``, or a clear :class:`InputError`."""
     try:
+        # lazy: a heavy import, loaded only when this runs
         from distributed import Client
     except ImportError:  # pragma: no cover - dask is a dependency
         raise InputError("--scheduler needs the 'distributed' package (pip install 'dask[distributed]')") from None

@@ -1,4 +1,4 @@
-"""Fast likelihood of one circular binary, with pulsar phases marginalised (DESIGN.md §7).
+"""Fast likelihood of one circular binary, with pulsar phases marginalised (docs/design.md §7).
 
 The log likelihood ratio against noise only is ``ln Λ = (d|s) − ½ (s|s)``.
 Each pulsar's signal is ``s = Σ_j c_j b_j`` with the four basis series
@@ -45,12 +45,14 @@ True
 from __future__ import annotations
 
 from dataclasses import dataclass
+from math import factorial
 
 import numpy as np
 from numba import njit, prange
+from scipy.special import jv
 
-from ..physics import waveform
 from ..core.constants import SOLAR_MASS_SECONDS
+from ..physics import waveform
 from ..physics.noise import NoiseSettings, NoiseWeighting
 
 PARAMETER_NAMES = ("ra", "sin_dec", "log10_frequency", "log10_chirp_mass", "log10_strain",
@@ -272,8 +274,6 @@ def _grid_size(r):
 # Series of I_k(z) = (z/2)^k Σ_j (z²/4)^j / (j! (j+k)!), k ≤ 16, j ≤ 14 (for z ≤ 2 the
 # truncation is below 1e-20 relative): coefficients 1/(j!(j+k)!) as a table.
 def _bessel_table(k_max=16, j_max=14):
-    from math import factorial
-
     return np.array([[1.0 / (factorial(j) * factorial(j + k)) for j in range(j_max + 1)]
                      for k in range(k_max + 1)])
 
@@ -483,8 +483,6 @@ def largest_bandwidth(m, tolerance=NODE_TOLERANCE):
     Chebyshev points errs by at most ``tolerance``. Its Chebyshev coefficients are ``2 iⁿ Jₙ(a)``
     (Jacobi–Anger expansion, Abramowitz & Stegun 9.1.44–45) and the interpolation error is at most
     twice the sum of the neglected coefficients (Trefethen 2013, thm 4.2; from memory)."""
-    from scipy.special import jv
-
     order = np.arange(m, m + 80)
     low, high = 0.0, float(m)
     for _ in range(50):
@@ -778,3 +776,10 @@ class Likelihood:
                    for p in self.array]
         ds, ss = self.engine.data_inner(signals)
         return ds - 0.5 * ss
+
+
+__all__ = [
+    "PARAMETER_NAMES", "UNIFORM_STRAIN_NAMES", "sincos", "marginal_log_factor", "NODE_LEVELS",
+    "NODE_TOLERANCE", "chebyshev_points", "interpolation_matrix", "largest_bandwidth", "ShapeCache",
+    "Likelihood",
+]

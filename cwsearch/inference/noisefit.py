@@ -87,15 +87,20 @@ True
 
 from __future__ import annotations
 
+import hashlib
 import warnings
 from dataclasses import dataclass, field, asdict
 from pathlib import Path
 
 import numpy as np
+from astropy.table import Table
 from scipy import optimize, stats
+from threadpoolctl import threadpool_limits
 
 from ..core.constants import YEAR_FREQUENCY
 from ..core.errors import InputError
+from ..core.fileio import write_table_atomic
+from ..data.dataset import _numeric, _read_table, _require_columns, _text
 from ..data.model import PulsarNoise
 from ..physics.noise import (NoiseSettings, PulsarLikelihood, PulsarWeighting, fourier_basis, powerlaw_variance)
 
@@ -813,12 +818,6 @@ def fit_noise(array, settings: FitSettings | None = None, bounds: FitBounds | No
 def _small_matrix_threads():
     """Single-threaded BLAS for the fit: its matrices are small (n × k, k ≈ 65), and a threaded BLAS on a
     loaded machine is then up to 100× slower than one thread (measured: 22 ms vs 0.26 ms for 200 × 65)."""
-    import contextlib
-
-    try:
-        from threadpoolctl import threadpool_limits
-    except ImportError:      # pragma: no cover - a declared dependency
-        return contextlib.nullcontext()
     return threadpool_limits(1, user_api="blas")
 
 
@@ -930,8 +929,6 @@ def _copy_noise(n: PulsarNoise) -> PulsarNoise:
 
 # ----------------------------------------------------------------- describing a model
 def _file_sha256(path) -> str:
-    import hashlib
-
     h = hashlib.sha256()
     with open(path, "rb") as fh:
         for chunk in iter(lambda: fh.read(1 << 20), b""):
@@ -1013,8 +1010,6 @@ _TABLE_COLUMNS = [
 
 def noise_table(fit: NoiseFit):
     """The fitted model as an astropy Table (one row per pulsar and backend; units and meta in the header)."""
-    from astropy.table import Table
-
     rows = []
     for f in fit.pulsars:
         g = f.gof
@@ -1044,8 +1039,6 @@ def noise_table(fit: NoiseFit):
 
 def write_noise_table(fit: NoiseFit, path) -> None:
     """Write :func:`noise_table` as ECSV, atomically."""
-    from ..core.fileio import write_table_atomic
-
     write_table_atomic(path, noise_table(fit))
 
 
@@ -1058,8 +1051,6 @@ def read_noise_table(path, array, *, dataset_checksum=None) -> NoiseModel:
     values out of range; a table fitted on another dataset (when
     ``dataset_checksum`` is given, it must equal the table's).
     """
-    from ..data.dataset import _numeric, _read_table, _require_columns, _text
-
     file = Path(path)
     if not file.is_file():
         raise InputError("noise table not found", file=file)

@@ -56,8 +56,14 @@ from __future__ import annotations
 import json
 import time
 from dataclasses import dataclass, field
+from pathlib import Path
 
 import numpy
+from scipy.special import erfcinv
+
+from ..core import fileio  # fileio.atomic_path is looked up at each call (the fault tests replace it)
+from ..core.errors import InputError
+from ..core.progress import progress as progress_bar
 
 np = numpy
 
@@ -85,6 +91,7 @@ _COMPAT = _NumpyForPtemcee()
 
 def load_ptemcee():
     """Import ptemcee and give its modules the compatibility namespace; returns ``ptemcee.sampler``."""
+    # lazy: a heavy import, loaded only when this runs
     import ptemcee.sampler
     import ptemcee.util
 
@@ -382,8 +389,6 @@ def extended_ladder(betas, acceptance, threshold, limit, target=0.25):
     step in ln β; common practice, no source), the lowest pairs first, until the ladder has ``limit``
     temperatures. Returns ``(new_betas, source)``, ``source[i]`` the old temperature whose walkers
     start the new temperature ``i`` (itself, or the colder neighbour of an inserted one)."""
-    from scipy.special import erfcinv
-
     betas = np.asarray(betas, dtype=float)
     acceptance = np.asarray(acceptance, dtype=float)
     need = np.zeros(acceptance.size, dtype=int)
@@ -409,9 +414,7 @@ def extended_ladder(betas, acceptance, threshold, limit, target=0.25):
 
 
 def _save_checkpoint(path, state):
-    from ..core.fileio import atomic_path
-
-    with atomic_path(path) as tmp:
+    with fileio.atomic_path(path) as tmp:
         with open(tmp, "wb") as fh:
             np.savez(fh, **state)
 
@@ -442,9 +445,6 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
     callback : called as ``callback(iteration)`` after each iteration (tests use it
         to interrupt a run)
     """
-    from ..core.errors import InputError
-    from ..core.progress import progress as progress_bar
-
     pt = load_ptemcee()
     initial = np.asarray(initial, dtype=float)
     ntemps, nwalkers, dim = initial.shape
@@ -655,8 +655,6 @@ def _unused(x):  # ptemcee wants per-walker functions; the vectorised pool never
 
 
 def _exists(path):
-    from pathlib import Path
-
     return Path(path).exists()
 
 

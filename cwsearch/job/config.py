@@ -38,24 +38,21 @@ pulsar_red_noise = true
 from __future__ import annotations
 
 import dataclasses
-import importlib
 import math
 import re
+import tomllib
 import types
 import typing
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..core.errors import InputError
+from ..core.fileio import write_text_atomic
+from ..physics.noise import NoiseSettings
+from ..stages import BY_NAME, STAGES as REGISTRY
 
-#: stage name -> (module, options class), in pipeline order
-STAGE_OPTIONS = {
-    "noise": ("cwsearch.stages.noise.stage", "NoiseOptions"),
-    "scan": ("cwsearch.stages.scan.stage", "ScanOptions"),
-    "followup": ("cwsearch.stages.followup.stage", "FollowupOptions"),
-    "hosts": ("cwsearch.stages.hosts.stage", "HostsOptions"),
-    "limits": ("cwsearch.stages.limits.stage", "LimitsOptions"),
-}
+#: stage name -> (module, options class), in pipeline order (from the registry cwsearch.stages.STAGES)
+STAGE_OPTIONS = {stage.name: (stage.options.__module__, stage.options.__name__) for stage in REGISTRY}
 STAGES = tuple(STAGE_OPTIONS)
 
 #: options the pipeline fills in itself (never run-file keys), per stage
@@ -132,15 +129,8 @@ ENGINE_KEYS = {
 
 
 def stage_options_class(stage):
-    """The options dataclass of ``stage``, or ``None`` if the stage module is not installed."""
-    module_name, class_name = STAGE_OPTIONS[stage]
-    try:
-        module = importlib.import_module(module_name)
-    except ModuleNotFoundError as exc:
-        if exc.name and (exc.name == module_name or module_name.startswith(exc.name + ".")):
-            return None
-        raise
-    return getattr(module, class_name, None)
+    """The options dataclass of ``stage`` (its ``Options`` in the stage registry)."""
+    return BY_NAME[stage].options
 
 
 def dataclass_keys(cls, exclude=frozenset()):
@@ -177,7 +167,6 @@ def section_keys(section):
         return dict(ENGINE_KEYS)
     if section == "noise":
         # [noise] holds the engine's noise settings and the noise stage's options (model, fit choices)
-        from ..physics.noise import NoiseSettings
 
         keys = dataclass_keys(NoiseSettings)
         cls = stage_options_class("noise")
@@ -376,8 +365,6 @@ class RunConfig:
 
     def write(self, path) -> None:
         """Write :meth:`to_toml` to ``path`` atomically."""
-        from ..core.fileio import write_text_atomic
-
         write_text_atomic(path, self.to_toml())
 
 
@@ -453,8 +440,6 @@ def load_config(path) -> RunConfig:
 
 def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunConfig:
     """Validate run-file ``text``; relative paths are relative to ``base`` (default: the run file's folder)."""
-    import tomllib
-
     path = Path(path) if path is not None else None
     fname = path if path is not None else "run file"
     base = Path(base) if base is not None else (path.parent if path is not None else Path.cwd())
@@ -512,7 +497,6 @@ def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunC
     if engine["workers"] < 0:
         fail("must be >= 0 (0: one per CPU)", "engine", "workers")
 
-    from ..physics.noise import NoiseSettings
 
     noise_values = _check_section("noise", data.get("noise", {}), section_keys("noise"), fail)
     settings_names = {f.name for f in dataclasses.fields(NoiseSettings)}
@@ -624,9 +608,8 @@ def _build(cls, values, section, fail):
     """
     try:
         obj = cls(**values)
-        for method in ("validate", "check"):
-            if callable(getattr(obj, method, None)):
-                getattr(obj, method)()
+        if callable(getattr(obj, "validate", None)):  # every stage's Options has it; NoiseSettings checks itself
+            obj.validate()
         return obj
     except InputError as exc:
         message, key = exc.message, exc.column if exc.column in values else None

@@ -28,11 +28,15 @@ Examples
 from __future__ import annotations
 
 import warnings
-from dataclasses import asdict, dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 from ..core.errors import InputError
+from ..data.dataset import _read_table
+from ..inference.noisefit import apply_noise_model, read_noise_table
 from ..inference.noisefit import describe_noise_model as describe
+from ..physics.noise import NoiseSettings
+from ..stages.noise.stage import TABLE_NAME, NoiseOptions, model_settings, run_noise
 
 
 class NoiseModelWarning(UserWarning):
@@ -56,14 +60,10 @@ class ResolvedNoise:
 
 def table_path(run_dir) -> Path:
     """``RUN_DIR/noise/noise_model.ecsv``."""
-    from ..stages.noise.stage import TABLE_NAME
-
     return Path(run_dir) / "noise" / TABLE_NAME
 
 
 def _table_meta(path) -> dict:
-    from ..data.dataset import _read_table
-
     return dict(_read_table(Path(path)).meta)
 
 
@@ -83,16 +83,12 @@ def _ignored_settings(noise) -> list:
 
 
 def _from_table(array, path, noise, source, dataset_checksum, reused, notes):
-    from ..inference.noisefit import apply_noise_model, read_noise_table
-
     meta = _table_meta(path)
     stored = meta.get("dataset_checksum")
     if stored is None:
         notes = list(notes) + [f"the noise table {path} records no dataset checksum; it was applied because every "
                                "pulsar and backend of the dataset has a row"]
     model = read_noise_table(path, array, dataset_checksum=dataset_checksum if stored is not None else None)
-    from ..stages.noise.stage import model_settings
-
     common = meta.get("common") or {}
     correlation = common.get("correlation") if isinstance(common, dict) else None
     correlation = "uncorrelated" if not correlation or "uncorrelated" in str(correlation) else str(correlation)
@@ -117,8 +113,6 @@ def resolve_noise_model(array, run_dir, model="estimate", *, noise=None, dataset
     options : :class:`~cwsearch.stages.noise.NoiseOptions` of a fit run here (default options)
     seed : seed of a fit run here
     """
-    from ..physics.noise import NoiseSettings
-
     noise = noise or NoiseSettings()
     model = str(model or "estimate")
     if model == "dataset":
@@ -135,8 +129,6 @@ def resolve_noise_model(array, run_dir, model="estimate", *, noise=None, dataset
             except InputError:
                 reused = False
         if not reused:
-            from ..stages.noise.stage import NoiseOptions, run_noise
-
             run_noise(array, run_dir, replace_model(options or NoiseOptions(), "estimate"), noise=noise, seed=seed,
                       progress=progress, dataset_checksum=dataset_checksum)
         resolved = _from_table(array, path, noise, "estimate", dataset_checksum, reused, _ignored_settings(noise))
@@ -154,8 +146,6 @@ def resolve_noise_model(array, run_dir, model="estimate", *, noise=None, dataset
 
 def replace_model(options, model):
     """``options`` (NoiseOptions) with another ``model``."""
-    from dataclasses import replace
-
     return replace(options, model=model)
 
 

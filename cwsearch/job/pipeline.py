@@ -1,7 +1,7 @@
 """The whole job in one call: noise → scan → follow-up → hosts → limits, with skipping, resume and provenance.
 
 :func:`run_pipeline` takes a validated :class:`~cwsearch.job.config.RunConfig`
-and fills its run folder (DESIGN.md §11)::
+and fills its run folder (docs/design.md §11)::
 
     RUN_DIR/
       run.toml          the fully resolved configuration
@@ -37,37 +37,37 @@ k-th stage), so a stage's numbers do not depend on which other stages ran.
 
 Examples
 --------
->>> from cwsearch.job.pipeline import stage_seed
+>>> from cwsearch.job.pipeline import stage_seed    # from cwsearch.job.runfolder
 >>> stage_seed(0, "scan") == stage_seed(0, "scan") != stage_seed(0, "limits")
 True
 """
 
 from __future__ import annotations
 
-import hashlib
+import dataclasses
 import json
 import os
-import platform
 import shutil
-import socket
 import sys
 import time
-from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from dataclasses import asdict, dataclass, field, fields, replace
 from pathlib import Path
 from typing import Callable
 
+import numpy as np
+
 from .. import __version__
-from .config import STAGES, RunConfig
+from ..core.constants import YEAR_SECONDS
 from ..core.errors import InputError
 from ..core.fileio import write_json_atomic
-
-STAGE_FILE = ".stage.json"
-DONE = ("complete", "empty")
-
-#: packages whose versions go into provenance.json
-PACKAGES = ("numpy", "scipy", "astropy", "astropy-healpix", "numba", "ptemcee", "matplotlib", "dask",
-            "distributed", "tqdm", "corner")
+from ..data.dataset import dataset_checksum, read_dataset
+from ..stages import STAGES as REGISTRY
+from .config import RunConfig
+from .noisemodel import resolve_noise_model
+from .report import build_report, format_headline, headline_result
+from .runfolder import (DONE, STAGE_FILE, RunLock, canonical_hash, file_checksum, folder_hash, json_default,
+                        package_versions, product_hash, provenance_record, read_json, read_record, read_table,
+                        record_is_current, stage_seed, utc_now)
 
 
 class NothingToDo(Exception):
@@ -173,178 +173,12 @@ class PipelineResult:
 
 
 # ---------------------------------------------------------------- hashing
-def stage_seed(seed: int, stage: str) -> int:
-    """Independent per-stage seed derived from the run seed (SeedSequence spawning)."""
-    import numpy as np
-
-    index = _SEED_ORDER.index(stage) if stage in _SEED_ORDER else sum(stage.encode())
-    return int(np.random.SeedSequence([int(seed), index]).generate_state(1, dtype=np.uint32)[0])
-
-
-#: stage -> index of its seed (fixed, so that adding a stage does not change the other stages' seeds)
-_SEED_ORDER = ("scan", "followup", "hosts", "limits", "noise")
-
-
-def canonical_hash(obj) -> str:
-    """SHA-256 of the canonical JSON of ``obj`` (sorted keys; floats by shortest repr)."""
-    text = json.dumps(obj, sort_keys=True, separators=(",", ":"), default=_json_default)
-    return hashlib.sha256(text.encode("utf-8")).hexdigest()
-
-
-def _json_default(obj):
-    if isinstance(obj, Path):
-        return str(obj)
-    if hasattr(obj, "item"):
-        return obj.item()
-    if hasattr(obj, "tolist"):
-        return obj.tolist()
-    return str(obj)
-
-
-def file_checksum(path) -> str:
-    """SHA-256 of a file's bytes."""
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for chunk in iter(lambda: fh.read(1 << 20), b""):
-            h.update(chunk)
-    return h.hexdigest()
-
-
-def folder_hash(folder) -> str:
-    """SHA-256 over the relative paths and bytes of every visible file under ``folder``.
-
-    Hidden names (starting with '.': the stage record, temporary files,
-    checkpoints) are left out.
-    """
-    folder = Path(folder)
-    h = hashlib.sha256()
-    if folder.is_dir():
-        for path in sorted(folder.rglob("*")):
-            rel = path.relative_to(folder)
-            if any(part.startswith(".") for part in rel.parts) or not path.is_file():
-                continue
-            h.update(str(rel.as_posix()).encode() + b"\0")
-            h.update(file_checksum(path).encode() + b"\n")
-    return h.hexdigest()
-
-
-def product_hash(folder, patterns) -> str:
-    """SHA-256 over the relative paths and bytes of the files matching ``patterns`` (globs relative
-    to ``folder``); the whole :func:`folder_hash` when no pattern is given."""
-    if not patterns:
-        return folder_hash(folder)
-    folder = Path(folder)
-    files = sorted({p for pattern in patterns for p in folder.glob(pattern) if p.is_file()})
-    h = hashlib.sha256()
-    for path in files:
-        h.update(str(path.relative_to(folder).as_posix()).encode() + b"\0")
-        h.update(file_checksum(path).encode() + b"\n")
-    return h.hexdigest()
-
-
-def read_record(stage_dir) -> dict | None:
-    """The stage record ``.stage.json`` of a stage folder, or None."""
-    path = Path(stage_dir) / STAGE_FILE
-    try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None
-
-
-def record_is_current(stage_dir, input_hash) -> bool:
-    """True if the stage finished with these inputs and its files are untouched."""
-    rec = read_record(stage_dir)
-    return bool(rec and rec.get("status") in DONE and rec.get("input_hash") == input_hash
-                and rec.get("output_hash") == folder_hash(stage_dir))
 
 
 # ---------------------------------------------------------------- provenance
-def package_versions() -> dict:
-    """Versions of Python, cwsearch and the numerical packages it uses."""
-    from importlib import metadata
-
-    versions = {"python": platform.python_version(), "cwsearch": __version__}
-    for name in PACKAGES:
-        try:
-            versions[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            versions[name] = None
-    return versions
-
-
-def _now() -> str:
-    return datetime.now(timezone.utc).isoformat(timespec="seconds")
-
-
-def _cpu_count() -> int:
-    try:
-        return len(os.sched_getaffinity(0))
-    except AttributeError:  # pragma: no cover - not Linux
-        return os.cpu_count() or 1
 
 
 # ---------------------------------------------------------------- run-folder lock
-class RunLock:
-    """Keeps two runs out of the same folder at once (``RUN_DIR/.lock`` with the owner's pid).
-
-    A lock left by a killed run (its process is gone) is taken over.
-    """
-
-    def __init__(self, run_dir):
-        self.path = Path(run_dir) / ".lock"
-        self.held = False
-
-    def __enter__(self):
-        try:
-            self.path.parent.mkdir(parents=True, exist_ok=True)
-        except OSError as exc:  # read-only file system, no permission, disk full
-            raise InputError(f"cannot write here ({exc.strerror})", file=self.path.parent) from None
-        for _ in range(2):
-            try:
-                fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
-            except FileExistsError:
-                owner = self._owner()
-                if owner and owner[0] == socket.gethostname() and _pid_alive(owner[1]):
-                    raise InputError(f"another cwsearch run (pid {owner[1]}) is using this run folder; "
-                                     "wait for it or choose another folder", file=self.path.parent) from None
-                self.path.unlink(missing_ok=True)  # stale lock of a killed run
-                continue
-            except OSError as exc:
-                raise InputError(f"cannot write here ({exc.strerror})", file=self.path.parent) from None
-            try:
-                with os.fdopen(fd, "w") as fh:
-                    fh.write(f"{socket.gethostname()} {os.getpid()}\n")
-            except OSError as exc:  # disk full: no half-written lock left behind
-                self.path.unlink(missing_ok=True)
-                raise InputError(f"cannot write ({exc.strerror})", file=self.path) from None
-            self.held = True
-            return self
-        raise InputError("cannot lock the run folder", file=self.path.parent)
-
-    def _owner(self):
-        try:
-            host, pid = self.path.read_text().split()
-            return host, int(pid)
-        except (OSError, ValueError):
-            return None
-
-    def __exit__(self, *exc):
-        if self.held:
-            self.path.unlink(missing_ok=True)
-            self.held = False
-        return False
-
-
-def _pid_alive(pid: int) -> bool:
-    if pid == os.getpid():
-        return True
-    try:
-        os.kill(pid, 0)
-    except ProcessLookupError:
-        return False
-    except PermissionError:
-        return True
-    return True
 
 
 # ---------------------------------------------------------------- the runner
@@ -426,7 +260,7 @@ def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: C
             shutil.rmtree(stage_dir)
         previous = read_record(stage_dir)
         stage_dir.mkdir(parents=True, exist_ok=True)
-        started, t0 = _now(), time.perf_counter()
+        started, t0 = utc_now(), time.perf_counter()
         ctx.resuming = bool(previous and previous.get("status") == "running"
                             and previous.get("input_hash") == input_hash)
         if ctx.resuming:
@@ -448,7 +282,7 @@ def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: C
         seconds = time.perf_counter() - t0
         record = {"stage": spec.name, "status": status, "reason": reason, "input_hash": input_hash,
                   "output_hash": folder_hash(stage_dir), "product_hash": product_hash(stage_dir, spec.products),
-                  "started": started, "finished": _now(),
+                  "started": started, "finished": utc_now(),
                   "seconds": round(seconds, 3), "seed": ctx.seed, "cwsearch": __version__,
                   "inputs": inputs, "summary": _jsonable(summary)}
         write_json_atomic(stage_dir / STAGE_FILE, record)
@@ -460,15 +294,13 @@ def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: C
 
 
 def _plain_dataclass(obj):
-    import dataclasses
-
     if obj is None:
         return None
     return {f.name: getattr(obj, f.name) for f in dataclasses.fields(obj)}
 
 
 def _jsonable(obj):
-    return json.loads(json.dumps(obj, default=_json_default))
+    return json.loads(json.dumps(obj, default=json_default))
 
 
 def run_pipeline(config: RunConfig, *, force=(), progress=True, quiet=False, specs=None,
@@ -487,8 +319,6 @@ def run_pipeline(config: RunConfig, *, force=(), progress=True, quiet=False, spe
     Returns a :class:`PipelineResult`; the headline is also written to
     ``summary.json``.
     """
-    from ..data.dataset import dataset_checksum, read_dataset
-
     run_dir = Path(config.out)
     log = (lambda msg: None) if quiet else (lambda msg: print(msg, file=sys.stderr, flush=True))
     progress = progress and not quiet
@@ -498,12 +328,13 @@ def run_pipeline(config: RunConfig, *, force=(), progress=True, quiet=False, spe
     array = read_dataset(config.dataset)
     checksum = dataset_checksum(config.dataset)
     with RunLock(run_dir):
-        started = _now()
+        started = utc_now()
         config.write(run_dir / "run.toml")
-        provenance = _provenance(config, checksum, started, previous=_read_json(run_dir / "provenance.json"))
+        provenance = provenance_record(config, checksum, started, previous=read_json(run_dir / "provenance.json"))
         write_json_atomic(run_dir / "provenance.json", provenance)
         write_json_atomic(run_dir / "dataset.json", dataset_summary(array, config.dataset, checksum))
         if write_report:
+            # lazy: matplotlib is loaded only when plots are drawn
             from ..data.plots import dataset_overview
 
             dataset_overview(array, run_dir / "dataset.png")
@@ -512,11 +343,12 @@ def run_pipeline(config: RunConfig, *, force=(), progress=True, quiet=False, spe
         try:
             reports = run_stages(config, specs, dataset_checksum=checksum, load_array=lambda: array,
                                  force=force, progress=progress, log=log,
-                                 noise_resolver=run_noise_resolver(config, array, checksum, progress))
+                                 noise_resolver=(run_noise_resolver(config, array, checksum, progress)
+                                                 if any(spec.name == "noise" for spec in specs) else None))
             status = "complete"
         except BaseException as exc:
             status = "interrupted" if isinstance(exc, KeyboardInterrupt) else "failed"
-            provenance.update(finished=_now(), status=status)
+            provenance.update(finished=utc_now(), status=status)
             try:
                 write_json_atomic(run_dir / "provenance.json", provenance)
             except InputError:
@@ -525,14 +357,12 @@ def run_pipeline(config: RunConfig, *, force=(), progress=True, quiet=False, spe
         headline = headline_result(run_dir, reports)
         write_json_atomic(run_dir / "summary.json", {"headline": headline,
                                                      "stages": [r.as_dict() for r in reports]})
-        provenance.update(finished=_now(), status=status, stages=[r.as_dict() for r in reports])
+        provenance.update(finished=utc_now(), status=status, stages=[r.as_dict() for r in reports])
         for r in provenance["stages"]:
             r.pop("summary", None)
         write_json_atomic(run_dir / "provenance.json", provenance)
         report_path = None
         if write_report:
-            from .report import build_report
-
             report_path = build_report(run_dir)
     return PipelineResult(run_dir, reports, headline, report_path)
 
@@ -544,8 +374,6 @@ def run_noise_resolver(config, array, checksum, progress=False):
 
     def resolver():
         if "resolved" not in cache:
-            from .noisemodel import resolve_noise_model
-
             options = config.options.get("noise")
             cache["resolved"] = resolve_noise_model(
                 array, config.out, getattr(options, "model", "estimate"), noise=config.noise,
@@ -554,44 +382,8 @@ def run_noise_resolver(config, array, checksum, progress=False):
     return resolver
 
 
-def _read_json(path):
-    try:
-        return json.loads(Path(path).read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None
-
-
-def _provenance(config, checksum, started, previous=None) -> dict:
-    history = []
-    if previous:
-        history = list(previous.get("history", []))
-        history.append({k: previous.get(k) for k in ("started", "finished", "status")})
-    return {
-        "cwsearch": __version__,
-        "command": " ".join([Path(sys.argv[0]).name] + sys.argv[1:]) if sys.argv else "",
-        "run_file": str(config.path) if config.path else None,
-        "seed": config.seed,
-        "stage_seeds": {s: stage_seed(config.seed, s) for s in STAGES},
-        "dataset": str(config.dataset),
-        "dataset_checksum": checksum,
-        "started": started,
-        "finished": None,
-        "status": "running",
-        "host": socket.gethostname(),
-        "cpu_count": _cpu_count(),
-        "platform": platform.platform(),
-        "engine": dict(config.engine),
-        "versions": package_versions(),
-        "history": history[-20:],
-    }
-
-
 def dataset_summary(array, path, checksum) -> dict:
     """Per-pulsar table and totals shown in the report's dataset section."""
-    import numpy as np
-
-    from ..core.constants import YEAR_SECONDS
-
     rows = []
     for p in array:
         rows.append({
@@ -618,178 +410,31 @@ def dataset_summary(array, path, checksum) -> dict:
 
 
 # ---------------------------------------------------------------- headline
-def _read_table(path):
-    from astropy.table import Table
-
-    try:
-        return Table.read(path, format="ascii.ecsv")
-    except Exception:
-        return None
-
-
-def headline_result(run_dir, reports=None) -> dict:
-    """The headline: candidate found or not and its significance, best host, best limit.
-
-    Read from the stage output files of DESIGN.md §11, so it works for any
-    run folder.
-    """
-    import numpy as np
-
-    run_dir = Path(run_dir)
-    statuses = {r.name: r for r in (reports or [])}
-    head = {"candidate_found": False, "candidate": None, "best_host": None, "best_limit": None}
-
-    fol = _read_json(run_dir / "followup" / "summary.json")
-    fol_rec = read_record(run_dir / "followup")
-    followed = fol_rec.get("summary", {}) if fol_rec and fol_rec.get("status") == "complete" else {}
-    cands = _read_table(run_dir / "scan" / "candidates.ecsv")
-    if cands is not None and len(cands):
-        best = cands[int(np.argmin(cands["fap"]))] if "fap" in cands.colnames else cands[0]
-        cand = {k: _num(best[k]) for k in ("frequency", "ra", "dec", "fe", "fap", "fap_empirical")
-                if k in cands.colnames}
-        threshold = _threshold(run_dir)
-        cand["fap_threshold"] = threshold
-        head["candidate_found"] = bool("fap" in cand and threshold is not None and cand["fap"] < threshold)
-        if isinstance(fol, dict) and fol.get("log_bayes_factor") is not None:
-            bf = fol["log_bayes_factor"]
-            err = fol.get("log_bayes_factor_error", fol.get("log_bayes_factor_err"))
-            if isinstance(bf, list):  # several candidates followed: the first is the best
-                bf = bf[0] if bf else None
-                err = err[0] if isinstance(err, list) and err else None
-            cand["log_bayes_factor"] = _num(bf)
-            if err is not None:
-                cand["log_bayes_factor_err"] = _num(err)
-        for key in ("log_bayes_factor", "log_bayes_factor_err"):
-            if key not in cand and key in followed:
-                cand[key] = _num(followed[key])
-        head["candidate"] = cand
-    hosts = _read_table(run_dir / "hosts" / "ranking.ecsv")
-    if hosts is not None and len(hosts) and "probability" in hosts.colnames:
-        i = int(np.argmax(hosts["probability"]))
-        head["best_host"] = {"name": str(hosts["name"][i]), "probability": _num(hosts["probability"][i])}
-    lim = _read_table(run_dir / "limits" / "frequency_limits.ecsv")
-    if lim is not None and len(lim) and "strain_95" in lim.colnames:
-        i = int(np.nanargmin(np.asarray(lim["strain_95"], dtype=float)))
-        head["best_limit"] = {"frequency": _num(lim["frequency"][i]), "strain_95": _num(lim["strain_95"][i])}
-    if statuses:
-        head["stages"] = {name: r.status for name, r in statuses.items()}
-    return head
-
-
-def _threshold(run_dir):
-    rec = read_record(Path(run_dir) / "followup")
-    if rec:
-        thr = rec.get("inputs", {}).get("options", {}).get("fap_threshold")
-        if thr is not None:
-            return float(thr)
-    try:
-        import tomllib
-
-        cfg = tomllib.loads((Path(run_dir) / "run.toml").read_text(encoding="utf-8"))
-        return float(cfg.get("followup", {}).get("fap_threshold", 0.01))
-    except (OSError, ValueError):
-        return 0.01
-
-
-def _num(v):
-    try:
-        v = v.item()
-    except AttributeError:
-        pass
-    if isinstance(v, float) and v != v:
-        return None
-    return v
-
-
-def format_headline(head: dict) -> str:
-    """The headline as a few plain-English lines."""
-    lines = []
-    cand = head.get("candidate")
-    if head.get("candidate_found") and cand:
-        line = (f"Candidate found: f_gw = {cand['frequency']:.4g} Hz at ra = {cand.get('ra', float('nan')):.1f} deg, "
-                f"dec = {cand.get('dec', float('nan')):.1f} deg, false-alarm probability {cand['fap']:.2g}")
-        if cand.get("log_bayes_factor") is not None:
-            line += f", ln Bayes factor {cand['log_bayes_factor']:.1f}"
-            if cand.get("log_bayes_factor_err") is not None:
-                line += f" ± {cand['log_bayes_factor_err']:.1f}"
-        lines.append(line + ".")
-    elif cand:
-        lines.append(f"No candidate: the strongest peak (f_gw = {cand['frequency']:.4g} Hz) has false-alarm "
-                     f"probability {cand.get('fap', float('nan')):.2g}, above the threshold "
-                     f"{cand.get('fap_threshold')}.")
-    else:
-        lines.append("No candidate (no scan result).")
-    host = head.get("best_host")
-    if host:
-        lines.append(f"Best host: {host['name']} with probability {host['probability']:.2f}.")
-    lim = head.get("best_limit")
-    if lim:
-        lines.append(f"Sky-averaged 95% strain upper limit: {lim['strain_95']:.3g} at {lim['frequency']:.4g} Hz "
-                     "(most sensitive frequency).")
-    return "\n".join(lines)
 
 
 # ---------------------------------------------------------------- the real stages
 def default_stages():
-    """The four stages of the job, wired to the stage modules."""
-    return [
-        StageSpec("noise", _run_noise, available=_availability("noise"), products=("noise_model.ecsv",)),
-        StageSpec("scan", _run_scan, available=_availability("scan"), products=("candidates.ecsv",)),
-        StageSpec("followup", _run_followup, upstream=("scan",), available=_availability("followup"),
-                  products=("posterior.ecsv", "*/posterior.ecsv")),
-        StageSpec("hosts", _run_hosts, upstream=("followup",), extra_inputs=_hosts_inputs,
-                  available=_availability("hosts")),
-        StageSpec("limits", _run_limits, available=_availability("limits")),
-    ]
+    """One :class:`StageSpec` per entry of the stage registry :data:`cwsearch.stages.STAGES`, in order."""
+    return [StageSpec(stage.name, _stage_runner(stage), upstream=stage.upstream,
+                      extra_inputs=_EXTRA_INPUTS.get(stage.name), products=stage.products)
+            for stage in REGISTRY]
 
 
-#: the function each stage module must provide
-_ENTRY = {"noise": "run_noise", "scan": "run_scan", "followup": "run_followup", "hosts": "run_hosts", "limits": "run_limits"}
-
-
-def _availability(name):
-    def check():
-        from .config import stage_options_class
-
-        try:
-            module = _stage_module(name)
-        except StageUnavailable as exc:
-            return str(exc)
-        if stage_options_class(name) is None or not hasattr(module, _ENTRY[name]):
-            return f"stage not available: cwsearch.{name} has no {_ENTRY[name]}() with its options class yet"
-        return None
-    return check
-
-
-def _stage_module(name):
-    import importlib
-
-    try:
-        return importlib.import_module(f"cwsearch.stages.{name}.stage")
-    except ModuleNotFoundError as exc:
-        if exc.name in (f"cwsearch.stages.{name}.stage", f"cwsearch.stages.{name}", "cwsearch"):
-            raise StageUnavailable(f"stage not available: cwsearch.{name} is not installed in this copy") from None
-        raise
-
-
-def _run_noise(ctx):
-    """Fit the noise model (only when the run's noise model is ``estimate``)."""
-    model = getattr(ctx.options, "model", "estimate")
-    if model != "estimate":
-        raise NothingToDo(f"the run uses the {'dataset' if model == 'dataset' else 'given'} noise model"
-                          + ("" if model == "dataset" else f" ({model})"))
-    mod = _stage_module("noise")
-    result = mod.run_noise(ctx.array, ctx.run_dir, ctx.options, noise=ctx.config.noise, seed=ctx.seed,
-                           progress=ctx.progress, dataset_checksum=ctx.dataset_checksum)
-    return dict(getattr(result, "summary", {}) or {})
-
-
-def _run_scan(ctx):
-    mod = _stage_module("scan")
-    options = engine_options(ctx.options, ctx.config.engine)
-    result = mod.run_scan(ctx.model_array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed,
-                          progress=ctx.progress)
-    return dict(getattr(result, "summary", {}) or {})
+def _stage_runner(stage):
+    """``run(ctx)`` of one registered stage: the pipeline's own check, then the stage's ``run`` (or the
+    pipeline's own way of running it), returning the stage summary."""
+    def run(ctx):
+        check = _PRECHECKS.get(stage.name)
+        if check is not None:
+            check(ctx)
+        custom = _CUSTOM_RUNS.get(stage.name)
+        if custom is not None:
+            return custom(ctx, stage)
+        options = runner_options(ctx.options, ctx.config.engine)
+        result = stage.run(ctx.model_array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed,
+                           progress=ctx.progress)
+        return dict(result.summary or {})
+    return run
 
 
 def followup_rows(candidates, fap_threshold, max_candidates, span):
@@ -801,8 +446,6 @@ def followup_rows(candidates, fap_threshold, max_candidates, span):
     source seen at another sky position: the follow-up fits the whole sky
     anyway), at most ``max_candidates``.
     """
-    import numpy as np
-
     if candidates is None or len(candidates) == 0 or "fap" not in candidates.colnames:
         return []
     fap = np.asarray(candidates["fap"], dtype=float)
@@ -820,16 +463,11 @@ def followup_rows(candidates, fap_threshold, max_candidates, span):
     return chosen
 
 
-def _run_followup(ctx):
+def _run_followup(ctx, stage):
     """Follow up every scan candidate below the false-alarm threshold (reads run_dir/scan/candidates.ecsv)."""
-    from dataclasses import asdict, replace
-
-    import numpy as np
-
-    mod = _stage_module("followup")
     threshold = float(ctx.extra.get("fap_threshold", 0.01))
     max_candidates = int(ctx.extra.get("max_candidates", 3))
-    cands = _read_table(ctx.run_dir / "scan" / "candidates.ecsv")
+    cands = read_table(ctx.run_dir / "scan" / "candidates.ecsv")
     rows = followup_rows(cands, threshold, max_candidates, ctx.array.span)
     if not rows:
         best = float(np.min(cands["fap"])) if cands is not None and len(cands) and "fap" in cands.colnames \
@@ -839,7 +477,7 @@ def _run_followup(ctx):
     if rows == list(range(len(rows))):
         # the chosen candidates are the best ones: one call (one sub-folder each when there are several)
         options = replace(ctx.options, top=len(rows), candidate=None, resume=ctx.resuming)
-        result = mod.run_followup(ctx.model_array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed,
+        result = stage.run(ctx.model_array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed,
                                   progress=ctx.progress)
         summary = dict(getattr(result, "summary", {}) or {})
     else:
@@ -852,7 +490,7 @@ def _run_followup(ctx):
             (scratch / "scan").mkdir(parents=True, exist_ok=True)
             shutil.copy2(ctx.run_dir / "scan" / "candidates.ecsv", scratch / "scan" / "candidates.ecsv")
             options = replace(ctx.options, top=1, candidate=row + 1, resume=ctx.resuming)
-            result = mod.run_followup(ctx.model_array, scratch, options, noise=ctx.noise, seed=int(seed),
+            result = stage.run(ctx.model_array, scratch, options, noise=ctx.noise, seed=int(seed),
                                       progress=ctx.progress)
             final = ctx.stage_dir / f"candidate_{row + 1}"
             if final.exists():
@@ -877,24 +515,20 @@ def _hosts_inputs(ctx):
     return {"catalog": file_checksum(catalog) if catalog and Path(catalog).is_file() else None}
 
 
-def _run_hosts(ctx):
-    """Rank catalogue galaxies for every followed-up candidate (reads run_dir/followup/)."""
+def _hosts_precheck(ctx):
+    """The host stage needs a followed-up candidate and a catalogue."""
     if ctx.upstream.get("followup", {}).get("status") == "empty":
         raise NothingToDo("no candidate was followed up, so there is no source to match")
     if not getattr(ctx.options, "catalog", None):
         raise NothingToDo("no galaxy catalogue given ([hosts] catalog)")
-    mod = _stage_module("hosts")
-    result = mod.run_hosts(ctx.model_array, ctx.run_dir, ctx.options, noise=ctx.noise, seed=ctx.seed,
-                           progress=ctx.progress)
-    return dict(getattr(result, "summary", {}) or {})
 
 
-def engine_options(options, engine: dict):
-    """``options`` with the [engine] settings filled into its ``workers``/``scheduler`` fields (if it has them).
+def runner_options(options, engine: dict):
+    """``options`` with the task-runner settings (run-file section ``[engine]``) filled into its
+    ``workers``/``scheduler`` fields (if it has them).
 
-    The engine decides where the work runs, not its result, so it is not part of any stage's input hash.
+    The runner decides where the work runs, not its result, so it is not part of any stage's input hash.
     """
-    from dataclasses import fields, replace
 
     names = {f.name for f in fields(options)}
     changes = {}
@@ -905,14 +539,28 @@ def engine_options(options, engine: dict):
     return replace(options, **changes) if changes else options
 
 
-def _run_limits(ctx):
-    mod = _stage_module("limits")
-    options = engine_options(ctx.options, ctx.config.engine)
-    result = mod.run_limits(ctx.model_array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed,
-                            progress=ctx.progress)
-    return dict(getattr(result, "summary", {}) or {})
+def _run_noise(ctx, stage):
+    """Fit the noise model (only when the run's noise model is ``estimate``; else nothing to do)."""
+    model = getattr(ctx.options, "model", "estimate")
+    if model != "estimate":
+        raise NothingToDo(f"the run uses the {'dataset' if model == 'dataset' else 'given'} noise model"
+                          + ("" if model == "dataset" else f" ({model})"))
+    result = stage.run(ctx.array, ctx.run_dir, ctx.options, noise=ctx.config.noise, seed=ctx.seed,
+                       progress=ctx.progress, dataset_checksum=ctx.dataset_checksum)
+    return dict(result.summary or {})
 
+
+#: what the pipeline adds around a stage, by stage name (every other stage is run as registered)
+_PRECHECKS = {"hosts": _hosts_precheck}          # checks that raise NothingToDo before the stage runs
+_CUSTOM_RUNS = {"followup": _run_followup,       # the follow-up picks its candidates from the scan's table
+                "noise": _run_noise}             # the noise stage fits only for the 'estimate' model
+_EXTRA_INPUTS = {"hosts": _hosts_inputs}         # more input-hash entries (the catalogue's checksum)
+
+
+#: the old name of :func:`runner_options`
+engine_options = runner_options
 
 __all__ = ["run_pipeline", "run_stages", "StageSpec", "StageContext", "StageReport", "PipelineResult",
            "NothingToDo", "StageUnavailable", "headline_result", "format_headline", "stage_seed",
-           "folder_hash", "product_hash", "canonical_hash", "default_stages", "package_versions"]
+           "folder_hash", "product_hash", "canonical_hash", "default_stages", "package_versions",
+           "runner_options", "engine_options", "followup_rows", "read_record", "RunLock", "STAGE_FILE"]

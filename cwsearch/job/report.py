@@ -1,6 +1,6 @@
 """The run report: one self-contained HTML page per run folder.
 
-:func:`build_report` reads a run folder (DESIGN.md §11) and writes
+:func:`build_report` reads a run folder (docs/design.md §11) and writes
 ``report.html`` next to it: every PNG of every stage folder embedded as a
 base64 ``data:`` URI, tables written out, inline CSS, no scripts and no
 links to anything outside the page, so it opens offline, can be mailed as
@@ -32,11 +32,14 @@ from __future__ import annotations
 
 import base64
 import html
-import json
+import tomllib
 from pathlib import Path
+
+import numpy as np
 
 from .. import __version__
 from ..core.fileio import write_text_atomic
+from .runfolder import read_json, read_record, read_table
 
 #: (id, title) of every report section, in page order
 SECTIONS = (
@@ -91,22 +94,6 @@ dl{display:grid;grid-template-columns:max-content auto;gap:.2em 1em;font-size:.9
 
 
 # ---------------------------------------------------------------- helpers
-def _read_json(path):
-    try:
-        return json.loads(Path(path).read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None
-
-
-def _read_table(path):
-    if not Path(path).is_file():
-        return None
-    from astropy.table import Table
-
-    try:
-        return Table.read(path, format="ascii.ecsv")
-    except Exception:
-        return None
 
 
 def _e(text) -> str:
@@ -217,18 +204,17 @@ class _Run:
 
     def __init__(self, run_dir):
         self.dir = Path(run_dir)
-        self.provenance = _read_json(self.dir / "provenance.json") or {}
-        self.dataset = _read_json(self.dir / "dataset.json") or {}
-        summary = _read_json(self.dir / "summary.json") or {}
+        self.provenance = read_json(self.dir / "provenance.json") or {}
+        self.dataset = read_json(self.dir / "dataset.json") or {}
+        summary = read_json(self.dir / "summary.json") or {}
         self.headline = summary.get("headline") or {}
         self.stages = {s["stage"]: s for s in summary.get("stages", []) if isinstance(s, dict)}
         self.records = {}
         for stage in ("noise", "scan", "followup", "hosts", "limits"):
-            rec = _read_json(self.dir / stage / ".stage.json")
+            rec = read_json(self.dir / stage / ".stage.json")
             if rec:
                 self.records[stage] = rec
         try:
-            import tomllib
 
             self.config = tomllib.loads((self.dir / "run.toml").read_text(encoding="utf-8"))
         except (OSError, ValueError):
@@ -251,8 +237,6 @@ class _Run:
 
 
 def _headline(run: _Run) -> str:
-    from .pipeline import format_headline
-
     head = run.headline
     if not head:
         return '<p class="note">No headline: the run has not finished.</p>'
@@ -370,7 +354,7 @@ def _scan(run: _Run) -> str:
 
 def _candidates(run: _Run) -> str:
     stage, name, max_rows, sort, desc = TABLES["candidates"]
-    table = _read_table(run.dir / stage / name)
+    table = read_table(run.dir / stage / name)
     if table is None:
         return run.status_note("scan") or '<p class="note">No candidate table.</p>'
     thr = (run.headline.get("candidate") or {}).get("fap_threshold")
@@ -387,7 +371,7 @@ def _candidates(run: _Run) -> str:
 def _followup_targets(run: _Run):
     """(name, summary dict, folder) per followed-up candidate."""
     folder = run.dir / "followup"
-    top = _read_json(folder / "summary.json")
+    top = read_json(folder / "summary.json")
     if not isinstance(top, dict):
         summary = run.stage_summary("followup")
         return [("candidate", summary, folder)] if summary.get("log_bayes_factor") is not None else []
@@ -395,7 +379,7 @@ def _followup_targets(run: _Run):
         out = []
         for name in top["targets"]:
             sub = folder / str(name)
-            out.append((str(name), _read_json(sub / "summary.json") or {}, sub))
+            out.append((str(name), read_json(sub / "summary.json") or {}, sub))
         return out
     return [(str(top.get("target", "candidate")), top, folder)]
 
@@ -448,7 +432,7 @@ def _followup(run: _Run) -> str:
 def _hosts(run: _Run) -> str:
     parts = [run.status_note("hosts")]
     stage, name, max_rows, sort, desc = TABLES["hosts"]
-    table = _read_table(run.dir / stage / name)
+    table = read_table(run.dir / stage / name)
     if table is not None:
         parts.append(html_table(table, max_rows, sort, desc))
     parts.append(_dl(_summary_items(run.stage_summary("hosts"))))
@@ -464,7 +448,7 @@ def _limits(run: _Run) -> str:
                      f"strain upper limit {_e(_fmt(best['strain_95']))}.</b></p>")
     parts.append(_dl(_summary_items(run.stage_summary("limits"))))
     for extra in ("galaxy_limits.ecsv", "chirp_mass_limits.ecsv"):
-        table = _read_table(run.dir / "limits" / extra)
+        table = read_table(run.dir / "limits" / extra)
         if table is not None and len(table):
             parts.append(f"<h3>{_e(extra.removesuffix('.ecsv').replace('_', ' '))}</h3>" + html_table(table, 20))
     parts.append(_figures(run.dir / "limits"))
@@ -506,7 +490,7 @@ def _cautions(run: _Run) -> str:
     return "<ul>" + "".join(f"<li>{_e(c)}</li>" for c in items) + "</ul>"
 
 
-def _provenance(run: _Run) -> str:
+def provenance_record(run: _Run) -> str:
     p = run.provenance
     if not p:
         return '<p class="note">No provenance.json in this run folder.</p>'
@@ -522,7 +506,7 @@ def _provenance(run: _Run) -> str:
 
 _BUILDERS = {"headline": _headline, "dataset": _dataset, "noise": _noise, "scan": _scan, "candidates": _candidates,
              "followup": _followup, "hosts": _hosts, "limits": _limits, "cautions": _cautions,
-             "provenance": _provenance}
+             "provenance": provenance_record}
 
 
 def render_report(run_dir) -> str:
@@ -552,4 +536,108 @@ def build_report(run_dir) -> Path:
     return path
 
 
-__all__ = ["build_report", "render_report", "embed_png", "html_table", "SECTIONS", "GENERAL_CAUTIONS"]
+
+
+# ---------------------------------------------------------------- headline
+def headline_result(run_dir, reports=None) -> dict:
+    """The headline: candidate found or not and its significance, best host, best limit.
+
+    Read from the stage output files of docs/design.md §11, so it works for any
+    run folder.
+    """
+
+    run_dir = Path(run_dir)
+    statuses = {r.name: r for r in (reports or [])}
+    head = {"candidate_found": False, "candidate": None, "best_host": None, "best_limit": None}
+
+    fol = read_json(run_dir / "followup" / "summary.json")
+    fol_rec = read_record(run_dir / "followup")
+    followed = fol_rec.get("summary", {}) if fol_rec and fol_rec.get("status") == "complete" else {}
+    cands = read_table(run_dir / "scan" / "candidates.ecsv")
+    if cands is not None and len(cands):
+        best = cands[int(np.argmin(cands["fap"]))] if "fap" in cands.colnames else cands[0]
+        cand = {k: _num(best[k]) for k in ("frequency", "ra", "dec", "fe", "fap", "fap_empirical")
+                if k in cands.colnames}
+        threshold = _threshold(run_dir)
+        cand["fap_threshold"] = threshold
+        head["candidate_found"] = bool("fap" in cand and threshold is not None and cand["fap"] < threshold)
+        if isinstance(fol, dict) and fol.get("log_bayes_factor") is not None:
+            bf = fol["log_bayes_factor"]
+            err = fol.get("log_bayes_factor_error", fol.get("log_bayes_factor_err"))
+            if isinstance(bf, list):  # several candidates followed: the first is the best
+                bf = bf[0] if bf else None
+                err = err[0] if isinstance(err, list) and err else None
+            cand["log_bayes_factor"] = _num(bf)
+            if err is not None:
+                cand["log_bayes_factor_err"] = _num(err)
+        for key in ("log_bayes_factor", "log_bayes_factor_err"):
+            if key not in cand and key in followed:
+                cand[key] = _num(followed[key])
+        head["candidate"] = cand
+    hosts = read_table(run_dir / "hosts" / "ranking.ecsv")
+    if hosts is not None and len(hosts) and "probability" in hosts.colnames:
+        i = int(np.argmax(hosts["probability"]))
+        head["best_host"] = {"name": str(hosts["name"][i]), "probability": _num(hosts["probability"][i])}
+    lim = read_table(run_dir / "limits" / "frequency_limits.ecsv")
+    if lim is not None and len(lim) and "strain_95" in lim.colnames:
+        i = int(np.nanargmin(np.asarray(lim["strain_95"], dtype=float)))
+        head["best_limit"] = {"frequency": _num(lim["frequency"][i]), "strain_95": _num(lim["strain_95"][i])}
+    if statuses:
+        head["stages"] = {name: r.status for name, r in statuses.items()}
+    return head
+
+
+def _threshold(run_dir):
+    rec = read_record(Path(run_dir) / "followup")
+    if rec:
+        thr = rec.get("inputs", {}).get("options", {}).get("fap_threshold")
+        if thr is not None:
+            return float(thr)
+    try:
+
+        cfg = tomllib.loads((Path(run_dir) / "run.toml").read_text(encoding="utf-8"))
+        return float(cfg.get("followup", {}).get("fap_threshold", 0.01))
+    except (OSError, ValueError):
+        return 0.01
+
+
+def _num(v):
+    try:
+        v = v.item()
+    except AttributeError:
+        pass
+    if isinstance(v, float) and v != v:
+        return None
+    return v
+
+
+def format_headline(head: dict) -> str:
+    """The headline as a few plain-English lines."""
+    lines = []
+    cand = head.get("candidate")
+    if head.get("candidate_found") and cand:
+        line = (f"Candidate found: f_gw = {cand['frequency']:.4g} Hz at ra = {cand.get('ra', float('nan')):.1f} deg, "
+                f"dec = {cand.get('dec', float('nan')):.1f} deg, false-alarm probability {cand['fap']:.2g}")
+        if cand.get("log_bayes_factor") is not None:
+            line += f", ln Bayes factor {cand['log_bayes_factor']:.1f}"
+            if cand.get("log_bayes_factor_err") is not None:
+                line += f" ± {cand['log_bayes_factor_err']:.1f}"
+        lines.append(line + ".")
+    elif cand:
+        lines.append(f"No candidate: the strongest peak (f_gw = {cand['frequency']:.4g} Hz) has false-alarm "
+                     f"probability {cand.get('fap', float('nan')):.2g}, above the threshold "
+                     f"{cand.get('fap_threshold')}.")
+    else:
+        lines.append("No candidate (no scan result).")
+    host = head.get("best_host")
+    if host:
+        lines.append(f"Best host: {host['name']} with probability {host['probability']:.2f}.")
+    lim = head.get("best_limit")
+    if lim:
+        lines.append(f"Sky-averaged 95% strain upper limit: {lim['strain_95']:.3g} at {lim['frequency']:.4g} Hz "
+                     "(most sensitive frequency).")
+    return "\n".join(lines)
+
+
+__all__ = ["build_report", "render_report", "embed_png", "html_table", "SECTIONS", "GENERAL_CAUTIONS",
+           "headline_result", "format_headline"]

@@ -82,7 +82,7 @@ from numba import njit, prange
 from scipy.linalg import cho_solve, lapack, solve_triangular
 
 from . import fstat
-from .fstat import _factor4, _quad4
+from .linalg import factor4, quad4
 from .noise import NoiseSettings, NoiseWeighting, fourier_basis, fourier_frequencies, hellings_downs, \
     powerlaw_variance
 
@@ -560,11 +560,11 @@ def _fe_correlated_products(nq, mq, yp, yx, fplus, fcross, n_chunk, n_sets, fe_o
             m22 = mq[sx, f] - xx_ss
             m23 = mq[sx, n_chunk + f] - xx_sc
             m33 = mq[sx, 2 * n_chunk + f] - xx_cc
-            fac = _factor4(m00, m01, m02, m03, m11, m12, m13, m22, m23, m33)
+            fac = factor4(m00, m01, m02, m03, m11, m12, m13, m22, m23, m33)
             for b in range(n_sets):
                 cx = 2 * b * n_chunk + f
                 cy = cx + n_chunk
-                fe_out[b, s, f] = 0.5 * _quad4(fac, nq[s, cx], nq[s, cy], nq[sp, cx], nq[sp, cy])
+                fe_out[b, s, f] = 0.5 * quad4(fac, nq[s, cx], nq[s, cy], nq[sp, cx], nq[sp, cy])
 
 
 def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, keep_map=True,

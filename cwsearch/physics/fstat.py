@@ -18,7 +18,7 @@ signal ``r = F+ (b1 sin + b2 cos) + Fx (b3 sin + b4 cos)``;
 Single pulsar: M is then rank 2 and the pseudo-inverse gives
 ``Fe = Fp`` of that pulsar (2Fe ~ χ²(2)).
 
-Speed (DESIGN.md §6): on a uniform frequency grid the sines and cosines are
+Speed (docs/design.md §6): on a uniform frequency grid the sines and cosines are
 stepped by one complex rotation per bin (:func:`sine_cosine_matrix`); all
 frequencies of a pulsar are whitened in one matrix product, one pulsar per
 thread (:func:`project`, :func:`project_batch` for many residual sets);
@@ -44,11 +44,17 @@ Examples
 from __future__ import annotations
 
 import contextlib
+import ctypes
+import re
+from concurrent.futures import as_completed, ThreadPoolExecutor
 from dataclasses import dataclass
 
+import numba
 import numpy as np
 from numba import njit, prange
 
+from ..core.errors import InputError
+from .linalg import factor4, quad4, solve_psd4
 from .waveform import antenna_pattern
 
 
@@ -221,8 +227,6 @@ def _blas_threads(n):
     """
     handles = []
     try:
-        import ctypes
-        import re
 
         with open("/proc/self/maps") as fh:
             paths = sorted(set(re.findall(r"(/\S*openblas\S*\.so\S*)", fh.read())))
@@ -261,9 +265,6 @@ def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i):
 
 
 def _project_core(engine, frequencies, residual_sets, on_pulsar=None, workers=None):
-    import numba
-    from concurrent.futures import ThreadPoolExecutor, as_completed
-
     frequencies = np.ascontiguousarray(frequencies, dtype=float)
     n_psr, n_freq = len(engine), frequencies.size
     n_sets = residual_sets[0].shape[1]
@@ -321,46 +322,6 @@ def project_batch(engine, frequencies, residual_sets, *, on_pulsar=None) -> Proj
     return Projections(freqs, x, y, z, engine.array.positions, z_scale)
 
 
-@njit(cache=True)
-def _solve_psd(m, v, out):
-    """Solve m a = v for symmetric positive semi-definite 4×4 m (LDLᵀ, tiny pivots dropped).
-
-    Dropping a pivot makes this the minimum-norm-like solution on the
-    column space, which gives the pseudo-inverse quadratic form vᵀ m⁺ v.
-    """
-    n = 4
-    lower = np.zeros((n, n))
-    diag = np.zeros(n)
-    scale = 0.0
-    for i in range(n):
-        scale = max(scale, m[i, i])
-    tol = 1e-10 * scale
-    for j in range(n):
-        s = m[j, j]
-        for k in range(j):
-            s -= lower[j, k] ** 2 * diag[k]
-        diag[j] = s if s > tol else 0.0
-        lower[j, j] = 1.0
-        for i in range(j + 1, n):
-            s = m[i, j]
-            for k in range(j):
-                s -= lower[i, k] * lower[j, k] * diag[k]
-            lower[i, j] = s / diag[j] if diag[j] > 0 else 0.0
-    tmp = np.zeros(n)
-    for i in range(n):
-        s = v[i]
-        for k in range(i):
-            s -= lower[i, k] * tmp[k]
-        tmp[i] = s
-    for i in range(n):
-        tmp[i] = tmp[i] / diag[i] if diag[i] > 0 else 0.0
-    for i in range(n - 1, -1, -1):
-        s = tmp[i]
-        for k in range(i + 1, n):
-            s -= lower[k, i] * out[k]
-        out[i] = s
-
-
 @njit(cache=True, parallel=True)
 def _sky_kernel(x, y, z, fplus, fcross, fe_out, amp_out, n_out, m_out, want_amp, want_nm):
     n_sky, n_psr = fplus.shape
@@ -398,7 +359,7 @@ def _sky_kernel(x, y, z, fplus, fcross, fe_out, amp_out, n_out, m_out, want_amp,
             for i in range(4):
                 for j in range(i):
                     mm[i, j] = mm[j, i]
-            _solve_psd(mm, nv, sol)
+            solve_psd4(mm, nv, sol)
             fe = 0.0
             for i in range(4):
                 fe += nv[i] * sol[i]
@@ -426,44 +387,6 @@ def _run_kernel(proj, fplus, fcross, want_amp=False, want_nm=False):
     return fe, amp, nvec, mmat
 
 
-@njit(cache=True, inline="always")
-def _factor4(m00, m01, m02, m03, m11, m12, m13, m22, m23, m33):
-    """Scalar LDLᵀ of a symmetric PSD 4×4 matrix, unrolled so that it stays in registers.
-
-    Pivots below 1e-10 × the largest diagonal element are dropped (the rule
-    of :func:`_solve_psd`), which makes :func:`_quad4` the pseudo-inverse
-    quadratic form. Returns the inverse pivots and the strict lower triangle.
-    """
-    tol = 1e-10 * max(max(m00, m11), max(m22, m33))
-    d0 = m00 if m00 > tol else 0.0
-    r0 = 1.0 / d0 if d0 > 0 else 0.0
-    l10 = m01 * r0
-    l20 = m02 * r0
-    l30 = m03 * r0
-    d1 = m11 - l10 * l10 * d0
-    d1 = d1 if d1 > tol else 0.0
-    r1 = 1.0 / d1 if d1 > 0 else 0.0
-    l21 = (m12 - l20 * l10 * d0) * r1
-    l31 = (m13 - l30 * l10 * d0) * r1
-    d2 = m22 - l20 * l20 * d0 - l21 * l21 * d1
-    d2 = d2 if d2 > tol else 0.0
-    r2 = 1.0 / d2 if d2 > 0 else 0.0
-    l32 = (m23 - l30 * l20 * d0 - l31 * l21 * d1) * r2
-    d3 = m33 - l30 * l30 * d0 - l31 * l31 * d1 - l32 * l32 * d2
-    r3 = 1.0 / d3 if d3 > tol else 0.0
-    return r0, r1, r2, r3, l10, l20, l30, l21, l31, l32
-
-
-@njit(cache=True, inline="always")
-def _quad4(fac, v0, v1, v2, v3):
-    """``vᵀ m⁺ v`` = Σ y_i² / d_i with L y = v, from :func:`_factor4`."""
-    r0, r1, r2, r3, l10, l20, l30, l21, l31, l32 = fac
-    y1 = v1 - l10 * v0
-    y2 = v2 - l20 * v0 - l21 * y1
-    y3 = v3 - l30 * v0 - l31 * y1 - l32 * y2
-    return v0 * v0 * r0 + y1 * y1 * r1 + y2 * y2 * r2 + y3 * y3 * r3
-
-
 @njit(cache=True, parallel=True)
 def _fe_from_products(nq, mq, n_sky, n_chunk, n_sets, fe_out):
     """Fe for every sky pixel, frequency of the chunk and residual set from the GEMM products.
@@ -484,11 +407,11 @@ def _fe_from_products(nq, mq, n_sky, n_chunk, n_sets, fe_out):
             m22 = mq[sx, f]
             m23 = mq[sx, n_chunk + f]
             m33 = mq[sx, 2 * n_chunk + f]
-            fac = _factor4(m00, m01, m02, m03, m11, m03, m13, m22, m23, m33)   # m12 = m03 = Σ F+Fx Zsc
+            fac = factor4(m00, m01, m02, m03, m11, m03, m13, m22, m23, m33)   # m12 = m03 = Σ F+Fx Zsc
             for b in range(n_sets):
                 cx = 2 * b * n_chunk + f
                 cy = cx + n_chunk
-                fe_out[b, s, f] = 0.5 * _quad4(fac, nq[s, cx], nq[s, cy], nq[sp, cx], nq[sp, cy])
+                fe_out[b, s, f] = 0.5 * quad4(fac, nq[s, cx], nq[s, cy], nq[sp, cx], nq[sp, cy])
 
 
 @dataclass
@@ -644,3 +567,49 @@ def parameters_to_amplitudes(strain, cos_inclination, polarization, phase, gw_fr
                      a_plus * c2p * s2f + a_cross * s2p * c2f,
                      a_plus * s2p * c2f + a_cross * c2p * s2f,
                      a_plus * s2p * s2f - a_cross * c2p * c2f], axis=-1)
+
+
+# ---------------------------------------------------------------- frequency grid
+#: cap of the default maximum frequency [Hz]
+MAX_DEFAULT_FREQUENCY = 1e-6
+
+
+def default_max_frequency(array) -> float:
+    """Nyquist-like limit ``1 / (2 × median TOA spacing)`` capped at 1e-6 Hz [Hz]."""
+    spacing = np.median([np.median(np.diff(p.toas)) for p in array if p.n_toas > 1])
+    return float(min(0.5 / spacing, MAX_DEFAULT_FREQUENCY))
+
+
+def frequency_grid(array, fmin=None, fmax=None, oversample=2):
+    """Uniform GW-frequency grid [Hz]: from ``fmin`` (default 1/T_span) to ``fmax``, step 1/(oversample·T_span).
+
+    >>> from cwsearch.physics.simulate import invented_array
+    >>> arr = invented_array(n_pulsars=2, years=10, seed=0)
+    >>> f = frequency_grid(arr, fmax=2e-8, oversample=2)
+    >>> bool(abs(f[0] * arr.span - 1) < 1e-12 and abs((f[1] - f[0]) * arr.span - 0.5) < 1e-12)
+    True
+    """
+    span = array.span
+    fmin = 1.0 / span if fmin is None else float(fmin)
+    fmax = default_max_frequency(array) if fmax is None else float(fmax)
+    if fmin < (1.0 - 1e-9) / span:
+        raise InputError(f"option --fmin: {fmin:.4g} Hz is below 1/T_span = {1.0 / span:.4g} Hz "
+                         "(less than one GW period fits in the data span)")
+    spacing = np.median([np.median(np.diff(p.toas)) for p in array if p.n_toas > 1])
+    if fmax > (1.0 + 1e-9) * 0.5 / spacing:
+        raise InputError(f"option --fmax: {fmax:.4g} Hz is above the Nyquist-like limit 1/(2 x median TOA "
+                         f"spacing) = {0.5 / spacing:.4g} Hz")
+    if not fmax > fmin:
+        raise InputError(f"option --fmax: the band is empty ({fmax:.4g} Hz <= fmin {fmin:.4g} Hz)")
+    step = 1.0 / (oversample * span)
+    n = int(np.floor((fmax - fmin) / step * (1 + 1e-12))) + 1
+    return fmin + step * np.arange(n)
+
+
+__all__ = [
+    "Projections", "Z_RELATIVE_TOLERANCE", "ANCHOR_EVERY", "sine_cosine_basis", "uniform_step",
+    "sine_cosine_matrix", "project", "project_batch", "SkyScan", "fe_sky", "fe_statistic",
+    "fe_with_amplitudes", "network_vectors", "sky_patterns", "fp_statistic", "fp_degrees_of_freedom",
+    "amplitudes_to_parameters", "parameters_to_amplitudes", "MAX_DEFAULT_FREQUENCY",
+    "default_max_frequency", "frequency_grid",
+]

@@ -1,6 +1,6 @@
 """The noise-weighting engine: the one place that inverts a covariance.
 
-For each pulsar the covariance is ``C = N + T B T^T`` (DESIGN.md §5):
+For each pulsar the covariance is ``C = N + T B T^T`` (docs/design.md §5):
 ``N`` diagonal white noise per backend, ``T = [design matrix | Fourier
 basis]`` and ``B`` the prior variances, infinite on the timing-model columns
 (analytic marginalisation) and a power law on the Fourier columns
@@ -34,7 +34,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.linalg import cho_factor, solve_triangular
+from scipy.linalg import cho_factor, lapack, qr, solve_triangular
 
 from ..core.constants import YEAR_FREQUENCY
 
@@ -211,7 +211,7 @@ class PulsarWeighting:
         _, logdet_mm = np.linalg.slogdet(self.design.T @ self.design)
         return float(logdet_n + logdet_phi + self._logdet_sigma - logdet_mm)
 
-    # -- additions for noise estimation (cwsearch.noisefit) --------------------
+    # -- additions for noise estimation (cwsearch.inference.noisefit) --------------------
     def log_likelihood(self, x=None) -> float:
         """Timing-model-marginalised Gaussian log-likelihood of ``x`` (default: the residuals).
 
@@ -235,8 +235,6 @@ class PulsarWeighting:
         N(0, 1) but correlated at O(m/n) (for plots against time). No n × n
         matrix is formed.
         """
-        from scipy.linalg import lapack, qr
-
         x = self.pulsar.residuals if x is None else np.asarray(x, dtype=float)
         inv_sigma, operator = self.whitening_operator()
         v = (operator / inv_sigma[None, :]).T                       # N^-½ T L^-ᵀ, shape (n, k)
@@ -293,7 +291,7 @@ class NoiseWeighting:
 class PulsarLikelihood:
     """Marginal likelihood of one pulsar's residuals as a function of its noise parameters.
 
-    For fitting (:mod:`cwsearch.noisefit`): the basis ``T = [normalised design
+    For fitting (:mod:`cwsearch.inference.noisefit`): the basis ``T = [normalised design
     | Fourier columns at k/span, k = 1..K]`` is built once; every call takes
     new white variances ``N_i`` [s²] and Fourier variances ``φ_j`` [s²] (one
     per column, 0 = column absent) and returns ``ln L`` (same value as
@@ -374,3 +372,9 @@ class PulsarLikelihood:
                 p_diag = inv - inv**2 * quad
                 grad_n = 0.5 * pr**2 - 0.5 * p_diag
         return float(lnl), grad_n, grad_phi
+
+
+__all__ = [
+    "NoiseSettings", "fourier_frequencies", "fourier_basis", "powerlaw_variance", "hellings_downs",
+    "PulsarWeighting", "NoiseWeighting", "PulsarLikelihood",
+]

@@ -48,6 +48,9 @@ from functools import lru_cache
 
 import numpy as np
 
+from ..data.catalog import MASS_PROXIES
+from ..data.cosmology import luminosity_distance, redshift_at_distance
+from .waveform import chirp_mass_from_masses
 LN10 = np.log(10.0)
 
 #: assumed uncertainty [dex] of a catalogued black-hole mass (no source; our choice)
@@ -55,8 +58,6 @@ BH_MASS_UNCERTAINTY_DEX = 0.1
 #: assumed scatter [dex] of the K-band stellar-mass proxy (no source; our choice)
 K_BAND_SCATTER_DEX = 0.1
 
-#: mass-proxy columns a catalogue may carry, in order of preference
-MASS_PROXIES = ("log10_bh_mass", "log10_bulge_mass", "log10_stellar_mass", "k_abs_mag")
 
 
 @dataclass(frozen=True)
@@ -74,6 +75,10 @@ class BulgeRelation:
         """Mean log10 black-hole mass [Msun] and scatter [dex] for a log10 bulge mass [Msun]."""
         x = np.asarray(log10_bulge_mass, dtype=float)
         return self.intercept + self.slope * (x - self.pivot), self.scatter
+
+    def total_mass_prior(self, proxy: str, values):
+        """:func:`total_mass_prior` with this relation (what a catalogue calls, knowing no relation)."""
+        return total_mass_prior(proxy, values, self)
 
 
 #: McConnell & Ma 2013, ApJ 764, 184 (from memory): 8.46 + 1.05 log10(M_bulge/1e11), 0.34 dex
@@ -129,8 +134,6 @@ class MassRatioPrior:
 
     def chirp_mass_offsets(self):
         """``ln(Mc / M_total)`` on the q grid and the grid weights (sum 1)."""
-        from .waveform import chirp_mass_from_masses
-
         if self.q_min >= 1.0:
             q = np.array([1.0])
         else:
@@ -169,49 +172,6 @@ def chirp_mass_log_density(ln_chirp_mass, log10_total_mass, sigma_dex, *, ln_red
     grid, dens = _offset_table(round(sigma_ln, 12), float(mass_ratio.q_min), int(mass_ratio.n_grid))
     u = np.asarray(ln_chirp_mass, dtype=float) - ln_redshift_factor - np.asarray(log10_total_mass) * LN10
     return np.interp(u, grid, dens, left=0.0, right=0.0)
-
-
-# --------------------------------------------------------------- cosmology
-@lru_cache(maxsize=4)
-def _distance_table(z_max: float):
-    from astropy.cosmology import Planck18
-
-    z = np.concatenate([[0.0], np.geomspace(1e-6, z_max, 3000)])
-    d = Planck18.luminosity_distance(z).to_value("Mpc")
-    return z, d
-
-
-def _z_max_for(z):
-    top = float(np.nanmax(z)) if np.size(z) else 1.0
-    return max(1.0, 2.0 ** np.ceil(np.log2(max(top, 1e-3) * 1.01)))
-
-
-def luminosity_distance(redshift):
-    """Luminosity distance [Mpc] for redshift(s), Planck18 (astropy), tabulated and interpolated.
-
-    Interpolation in log–log on 3000 points; relative error below 1e-6 for
-    z ≥ 1e-6 (checked against a direct astropy call in the tests). Fast for
-    millions of galaxies.
-    """
-    z = np.asarray(redshift, dtype=float)
-    zt, dt = _distance_table(_z_max_for(z))
-    out = np.exp(np.interp(np.log(np.maximum(z, 1e-12)), np.log(zt[1:]), np.log(dt[1:])))
-    out = np.where(z < zt[1], dt[1] * z / zt[1], out)
-    return out if out.ndim else float(out)
-
-
-def redshift_at_distance(luminosity_distance_mpc):
-    """Redshift at a luminosity distance [Mpc] (inverse of :func:`luminosity_distance`, Planck18)."""
-    d = np.asarray(luminosity_distance_mpc, dtype=float)
-    z_max = 1.0
-    while True:
-        zt, dt = _distance_table(z_max)
-        if not d.size or np.nanmax(d) <= dt[-1] or z_max > 1000:
-            break
-        z_max *= 2.0
-    out = np.exp(np.interp(np.log(np.maximum(d, 1e-12)), np.log(dt[1:]), np.log(zt[1:])))
-    out = np.where(d < dt[1], zt[1] * d / dt[1], out)
-    return out if out.ndim else float(out)
 
 
 def chirp_mass_offset_table(sigma_dex, mass_ratio=MassRatioPrior()):
@@ -259,3 +219,10 @@ def population_chirp_mass_table(log10_total_mass, sigma_dex, mass_ratio=MassRati
         total[max(start, 0):end] += conv[max(-start, 0):end - start]
     total /= mu_ln.size
     return grid, total
+
+
+__all__ = ["MASS_PROXIES", "luminosity_distance", "redshift_at_distance", 
+    "LN10", "BH_MASS_UNCERTAINTY_DEX", "K_BAND_SCATTER_DEX", "BulgeRelation", "MCCONNELL_MA_2013",
+    "KORMENDY_HO_2013", "RELATIONS", "stellar_mass_from_k_band", "total_mass_prior", "MassRatioPrior",
+    "chirp_mass_log_density", "chirp_mass_offset_table", "population_chirp_mass_table",
+]

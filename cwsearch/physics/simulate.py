@@ -23,8 +23,8 @@ from dataclasses import asdict, dataclass
 import numpy as np
 
 from ..data.model import Array, Pulsar, PulsarNoise
-from .noise import fourier_basis, hellings_downs, powerlaw_variance
 from . import waveform
+from .noise import fourier_basis, hellings_downs, powerlaw_variance
 
 
 @dataclass

@@ -13,14 +13,14 @@ Examples
 
 from __future__ import annotations
 
+import astropy.units as u
 import numpy as np
+from astropy_healpix import HEALPix
 
 ORDER = "ring"
 
 
 def _healpix(nside):
-    from astropy_healpix import HEALPix
-
     return HEALPix(nside=int(nside), order=ORDER)
 
 
@@ -42,8 +42,6 @@ def pixel_centres(nside):
 
 def pixel_of(nside, ra, dec):
     """Pixel index (RING order) containing each (ra, dec) [rad]."""
-    import astropy.units as u
-
     return np.asarray(_healpix(nside).lonlat_to_healpix(np.asarray(ra) * u.rad, np.asarray(dec) * u.rad))
 
 
@@ -71,3 +69,9 @@ def pixel_neighbours(nside):
     with np.errstate(invalid="ignore"):   # astropy-healpix flags the missing 8th neighbour at nside 1
         nb = _healpix(nside).neighbours(np.arange(n_pixels(nside)))
     return np.ascontiguousarray(np.asarray(nb, dtype=np.int64).T)
+
+
+__all__ = [
+    "ORDER", "n_pixels", "pixel_area", "pixel_centres", "pixel_of", "angular_separation",
+    "unit_vectors", "pixel_neighbours",
+]

@@ -1,6 +1,6 @@
 """Timing residuals of a circular supermassive black-hole binary.
 
-Physics of ``shared/DESIGN.md`` §4 (Ellis, Siemens & Creighton 2012; Peters
+Physics of ``docs/design.md`` §4 (Ellis, Siemens & Creighton 2012; Peters
 & Mathews 1963): leading-order chirp, Earth term and pulsar term, three
 evolution modes.
 
@@ -239,7 +239,7 @@ def residual_basis(toas, reference_time, gw_frequency, chirp_mass, pulsar_distan
     Parameters
     ----------
     toas : array (n,), s
-    reference_time : float, s (same clock as ``toas``; t0 of DESIGN.md §4)
+    reference_time : float, s (same clock as ``toas``; t0 of docs/design.md §4)
     gw_frequency : float, Hz (at the reference time, Earth term)
     chirp_mass : float, Msun (0 gives no evolution)
     pulsar_distance : float, kpc
@@ -270,7 +270,7 @@ def residual_basis(toas, reference_time, gw_frequency, chirp_mass, pulsar_distan
 
 def basis_coefficients(strain, inclination, polarization, phase, pulsar_phase, fplus, fcross,
                        pulsar_term=True):
-    """Weights of the four basis series (DESIGN.md §4 rewritten as a linear combination).
+    """Weights of the four basis series (docs/design.md §4 rewritten as a linear combination).
 
     With ``P = (1+cos²ι)(F+ cos2ψ + Fx sin2ψ)`` and ``Q = 2 cosι (F+ sin2ψ − Fx cos2ψ)``
     the Earth term is ``h0 e(t) [P sin2Φ + Q cos2Φ]`` and the pulsar term the
@@ -327,3 +327,11 @@ def residuals(toas, pulsar_position, pulsar_distance, *, ra, dec, gw_frequency, 
     coeffs = basis_coefficients(strain, inclination, polarization, phase, pulsar_phase,
                                 fplus[0], fcross[0], pulsar_term)
     return basis @ coeffs
+
+
+__all__ = [
+    "EVOLUTION_MODES", "chirp_mass_from_masses", "strain_amplitude", "luminosity_distance_for_strain",
+    "chirp_mass_for_strain", "time_to_coalescence", "gw_frequency_derivative", "orbital_period",
+    "source_frame", "antenna_pattern", "check_before_coalescence", "residual_basis",
+    "basis_coefficients", "residuals",
+]

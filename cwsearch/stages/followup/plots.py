@@ -9,6 +9,7 @@ from __future__ import annotations
 import numpy as np
 
 from ...core.plotting import pyplot, save_figure, sky_map
+from ...physics import sky
 
 CORNER_COLUMNS = (("ra", "ra [deg]"), ("dec", "dec [deg]"), ("frequency", "f [nHz]"),
                   ("chirp_mass", "log10 Mc [Msun]"), ("strain", "log10 h0"), ("inclination", "ι [rad]"),
@@ -17,6 +18,7 @@ CORNER_COLUMNS = (("ra", "ra [deg]"), ("dec", "dec [deg]"), ("frequency", "f [nH
 
 def corner_plot(path, table, truths=None):
     """Corner plot (the ``corner`` package) of the posterior table."""
+    # lazy: a heavy import, loaded only when this runs
     import corner
 
     plt = pyplot()
@@ -50,8 +52,6 @@ def credible_levels(probability):
 
 def sky_posterior(path, ra, dec, pulsars=None, target=None, nside=None):
     """Posterior sky density (HEALPix histogram) with 50 % and 90 % credible regions."""
-    from ...physics import sky
-
     ra, dec = np.asarray(ra), np.asarray(dec)
     if nside is None:
         nside = 16 if ra.size < 3000 else 32
@@ -90,3 +90,8 @@ def plot_followup(folder, table, result, likelihood, array, target):
                       pulsars=(np.array([p.ra for p in array]), np.array([p.dec for p in array])), target=start)
     if result.iterations:
         trace_plot(folder / "trace.png", result.chain, list(likelihood.names), result.burn_in)
+
+
+__all__ = [
+    "CORNER_COLUMNS", "corner_plot", "credible_levels", "sky_posterior", "trace_plot", "plot_followup",
+]

@@ -1,4 +1,4 @@
-"""Follow-up stage: a parallel-tempered MCMC fit of scan candidates (DESIGN.md §7–8).
+"""Follow-up stage: a parallel-tempered MCMC fit of scan candidates (docs/design.md §7–8).
 
 For each candidate (a row of ``RUN_DIR/scan/candidates.ecsv``, an explicit
 target, or the whole sky) the stage samples the 8 global parameters of one
@@ -8,7 +8,7 @@ posterior samples, a summary with the signal-versus-noise log Bayes factor,
 and plots, into ``RUN_DIR/followup/`` (``RUN_DIR/followup/candidate_K/``
 when several candidates are followed).
 
-Priors (DESIGN.md §8): isotropic sky; log-uniform GW frequency in a window
+Priors (docs/design.md §8): isotropic sky; log-uniform GW frequency in a window
 of ``frequency_window`` bins of 1/T_span either side of the target (in the
 band [1/T_span, ``max_frequency``] for ``all_sky``); log-uniform chirp mass
 in [1e7, 1e11] Msun, excluding binaries that merge within the data;
@@ -37,10 +37,19 @@ import time
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
 
+import astropy.units as u
 import numpy as np
+from astropy.table import Table
 
+from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
+from ...core.fileio import write_json_atomic, write_table_atomic
+from ...inference import sampling
+from ...inference.likelihood import Likelihood
+from ...inference.noisefit import stage_noise_statement
+from ...physics import fstat, waveform
 from ...physics.noise import NoiseSettings
+from ...physics.waveform import EVOLUTION_MODES
 
 STRAIN_RANGE = (1e-18, 1e-11)
 CHIRP_MASS_RANGE = (1e7, 1e11)
@@ -75,11 +84,9 @@ class FollowupOptions:
     phase_grid: int = 0
     checkpoint_every: int = 100
     adapt_iterations: int = 500
-    plots: bool = True                  # corner, sky and trace plots (PNG)
+    no_plots: bool = False              # skip the corner, sky and trace plots (PNG)
 
-    def check(self):
-        from ...physics.waveform import EVOLUTION_MODES
-
+    def validate(self):
         if self.evolution not in EVOLUTION_MODES:
             raise InputError(f"--evolution must be one of {', '.join(EVOLUTION_MODES)}, not {self.evolution!r}")
         if self.strain_prior not in ("log-uniform", "uniform"):
@@ -177,8 +184,6 @@ def initial_positions(prior, target: Target, span, shape, rng):
 # ---------------------------------------------------------------- targets
 def read_candidates(run_dir):
     """The scan's candidates table (astropy Table), best first (by ``fe`` when present)."""
-    from astropy.table import Table
-
     path = Path(run_dir) / "scan" / "candidates.ecsv"
     if not path.exists():
         raise InputError("no scan candidates found; run 'cwsearch scan' first, or give --frequency/--ra/--dec "
@@ -209,8 +214,6 @@ def _column_value(table, name, row, unit, default_unit):
 
 def select_targets(run_dir, options: FollowupOptions):
     """The list of :class:`Target` to follow for these options."""
-    import astropy.units as u
-
     if options.all_sky:
         return [Target("all-sky", None, None, None)]
     if options.frequency is not None:
@@ -252,8 +255,6 @@ def select_targets(run_dir, options: FollowupOptions):
 def earth_term_start(engine, target: Target) -> Target:
     """Fill strain, inclination, polarisation and phase of ``target`` with the Earth-term
     maximum-likelihood values of the F-statistic at its frequency and sky position."""
-    from ...physics import fstat
-
     proj = fstat.project(engine, np.array([target.frequency]))
     fplus, fcross = fstat.sky_patterns(proj, target.ra, target.dec)
     _, amp = fstat.fe_with_amplitudes(proj, fplus, fcross)
@@ -268,12 +269,6 @@ def earth_term_start(engine, target: Target) -> Target:
 # ---------------------------------------------------------------- outputs
 def posterior_table(likelihood, samples):
     """Astropy Table of physical posterior samples (columns :data:`OUTPUT_COLUMNS`)."""
-    import astropy.units as u
-    from astropy.table import Table
-
-    from ...physics import waveform
-    from ...core.constants import YEAR_SECONDS
-
     par = likelihood.physical(samples)
     table = Table()
     table["ra"] = np.degrees(par["ra"]) * u.deg
@@ -322,9 +317,6 @@ def _intervals(table):
 
 
 def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
-    from ...inference import sampling
-    from ...core.fileio import write_table_atomic
-
     span = array.span
     if target.frequency is None:
         band = (np.log10(1.0 / span), np.log10(options.max_frequency))
@@ -397,14 +389,14 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
     return summary, result, table
 
 
-def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *, noise=NoiseSettings(),
+def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *, noise=None,
                  seed=0, progress=True) -> FollowupResult:
-    """Follow up the chosen targets and write ``run_dir/followup/`` (see module docstring)."""
-    from ...core.fileio import write_json_atomic
-    from ...inference.likelihood import Likelihood
-    from ...inference.noisefit import stage_noise_statement
+    """Follow up the chosen targets and write ``run_dir/followup/`` (see module docstring).
 
-    options.check()
+    ``noise``: :class:`~cwsearch.physics.noise.NoiseSettings` (None: the default settings).
+    """
+    noise = NoiseSettings() if noise is None else noise
+    options.validate()
     run_dir = Path(run_dir)
     targets = select_targets(run_dir, options)
     start = time.monotonic()
@@ -419,7 +411,8 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
         summary["seed"] = seed
         summary["noise_model"] = stage_noise_statement(array, noise)
         write_json_atomic(folder / "summary.json", summary)
-        if options.plots:
+        if not options.no_plots:
+            # lazy: matplotlib is loaded only when plots are drawn
             from .plots import plot_followup
 
             plot_followup(folder, table, result, likelihood, array, target)

@@ -21,6 +21,9 @@ import math
 import numpy as np
 
 from ...core.plotting import pyplot, save_figure, sky_map
+from ...physics.relations import chirp_mass_log_density, LN10
+from ...physics.sky import unit_vectors
+from ...physics.waveform import chirp_mass_for_strain
 
 
 def _prob_colors(p):
@@ -93,10 +96,6 @@ def zoom_plot(path, res):
 
 
 def chirp_mass_plot(path, res, model, n_top):
-    from ...physics.relations import LN10, chirp_mass_log_density
-    from ...physics.sky import unit_vectors
-    from ...physics.waveform import chirp_mass_for_strain
-
     plt = pyplot()
     loc = res.localisation
     table = res.ranking
@@ -144,3 +143,6 @@ def chirp_mass_plot(path, res, model, n_top):
     fig.tight_layout()
     save_figure(fig, path)
     return path
+
+
+__all__ = ["make_plots", "sky_plot", "zoom_plot", "chirp_mass_plot"]

@@ -1,6 +1,6 @@
 """Host-galaxy crossmatch: which catalogued galaxy could host a candidate binary?
 
-Method (``shared/DESIGN.md`` §10, the README (Host galaxies))
+Method (``docs/design.md`` §10, the README (Host galaxies))
 ---------------------------------------------------------------
 For each galaxy *g* the Bayes factor of "the binary lives in *g*" against
 the search prior is the posterior average of the prior ratio,
@@ -79,15 +79,27 @@ from pathlib import Path
 from typing import Literal
 
 import numpy as np
+from astropy.table import Table, vstack
+from scipy.spatial import cKDTree
+from scipy.special import logsumexp
 
 from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
+from ...core.fileio import write_json_atomic, write_table_atomic
+from ...data.catalog import read_catalog
+from ...inference.noisefit import stage_noise_statement
+from ...physics import fstat
+from ...physics.noise import NoiseWeighting
+from ...physics.relations import (chirp_mass_offset_table, LN10, MassRatioPrior, population_chirp_mass_table,
+                                  redshift_at_distance, RELATIONS)
+from ...physics.sky import _healpix, pixel_centres, unit_vectors
+from ...physics.waveform import luminosity_distance_for_strain, orbital_period, time_to_coalescence
 
-#: search prior of the follow-up (DESIGN.md §8): log-uniform chirp mass range [Msun]
+#: search prior of the follow-up (docs/design.md §8): log-uniform chirp mass range [Msun]
 SEARCH_CHIRP_MASS_RANGE = (1e7, 1e11)
 #: log-uniform strain range assumed for the search prior (cancels in probabilities)
 SEARCH_STRAIN_RANGE = (1e-18, 1e-11)
-#: top of the search frequency band [Hz] (DESIGN.md §6 default cap); the bottom is 1/T_span
+#: top of the search frequency band [Hz] (docs/design.md §6 default cap); the bottom is 1/T_span
 SEARCH_FREQUENCY_MAX = 1e-6
 #: observed span assumed when neither the array nor ``observed_span`` gives one [yr]
 DEFAULT_SPAN_YEARS = 15.0
@@ -122,6 +134,33 @@ class HostsOptions:
     observed_span: float | None = _opt(None, "observed span [yr] (default: from the dataset, else 15)")
     max_samples: int = _opt(20000, "use at most this many posterior samples (random subset)")
     no_plots: bool = _opt(False, "skip the PNG plots")
+
+    def validate(self):
+        """Raise :class:`InputError` for values the host stage cannot use (the catalogue itself is checked when
+        the stage runs: a run file may leave it out); returns ``self``."""
+        if not 0.0 <= self.completeness <= 1.0:
+            raise InputError(f"--completeness must be within [0, 1] (got {self.completeness})")
+        if self.relation not in RELATIONS:
+            raise InputError(f"--relation must be one of {', '.join(RELATIONS)} (got {self.relation!r})")
+        if self.top < 1:
+            raise InputError("--top must be >= 1")
+        if not 0 < self.mass_ratio_min <= 1:
+            raise InputError("--mass-ratio-min must be within (0, 1]")
+        if not self.distance_error > 0:
+            raise InputError("--distance-error must be > 0")
+        if self.distance_limit is not None and not self.distance_limit > 0:
+            raise InputError("--distance-limit must be > 0 Mpc")
+        if self.sky_bandwidth is not None and not 0 < self.sky_bandwidth < 60:
+            raise InputError("--sky-bandwidth must be within (0, 60) deg")
+        if not 0 < self.resolution < 90:
+            raise InputError("--resolution must be within (0, 90) deg")
+        if not self.period_factor > 0:
+            raise InputError("--period-factor must be > 0")
+        if self.max_samples < 100:
+            raise InputError("--max-samples must be >= 100")
+        if self.observed_span is not None and not self.observed_span > 0:
+            raise InputError("--observed-span must be > 0 yr")
+        return self
 
 
 @dataclass
@@ -183,6 +222,7 @@ _KERNELS = {}
 def _kernels():
     """Compile (or load from cache) the two numba kernels on first use."""
     if not _KERNELS:
+        # lazy: a heavy import, loaded only when this runs
         from numba import njit, prange
 
         @njit(cache=True, parallel=True)
@@ -275,8 +315,6 @@ class SkyKernelDensity:
     """
 
     def __init__(self, ra, dec, bandwidth=None):
-        from ...physics.sky import unit_vectors
-
         self.vectors = np.ascontiguousarray(unit_vectors(np.atleast_1d(np.asarray(ra, float)),
                                                          np.atleast_1d(np.asarray(dec, float))))
         n = len(self.vectors)
@@ -294,7 +332,6 @@ class SkyKernelDensity:
     @property
     def tree(self):
         if self._tree is None:
-            from scipy.spatial import cKDTree
 
             self._tree = cKDTree(self.vectors)
         return self._tree
@@ -313,8 +350,6 @@ class SkyKernelDensity:
 
     def density(self, ra, dec):
         """Density [1/sr] at (ra, dec) [rad]."""
-        from ...physics.sky import unit_vectors
-
         v = unit_vectors(np.atleast_1d(ra), np.atleast_1d(dec))
         d = np.exp(self.log_density_vectors(v))
         return d if np.ndim(ra) else float(d[0])
@@ -341,8 +376,6 @@ class SkyKernelDensity:
 
     def healpix_map(self, nside):
         """Density [1/sr] on a HEALPix RING grid (0 far from every sample)."""
-        from ...physics.sky import pixel_centres, unit_vectors
-
         ra, dec = pixel_centres(nside)
         v = unit_vectors(ra, dec)
         out = np.zeros(len(v))
@@ -353,8 +386,6 @@ class SkyKernelDensity:
 
 def sample_fisher(ra0, dec0, sigma, n, rng):
     """Draw ``n`` directions from a von Mises–Fisher distribution (κ = 1/σ², σ in rad) around (ra0, dec0)."""
-    from ...physics.sky import unit_vectors
-
     kappa = 1.0 / sigma**2
     u = rng.uniform(size=n)
     w = 1.0 + np.log(u + (1.0 - u) * np.exp(-2.0 * kappa)) / kappa   # cos of the angle from the centre
@@ -390,8 +421,6 @@ def _column_values(table, name, unit, path, positive=False):
 
 def read_posterior(path, label=None):
     """Posterior samples from a follow-up ``posterior.ecsv`` as a :class:`Localisation`."""
-    from astropy.table import Table
-
     path = Path(path)
     try:
         table = Table.read(path, format="ascii.ecsv")
@@ -458,8 +487,6 @@ def _find_sky_map(scan_dir: Path, options):
 
 def _read_fe_map(path: Path, candidate_row: int, frequency: float):
     """(nside, pixels, fe) from an Fe map table, or None if it is not a usable map for this candidate."""
-    from astropy.table import Table
-
     try:
         table = Table.read(path, format="ascii.ecsv")
     except Exception:
@@ -489,10 +516,6 @@ def _read_fe_map(path: Path, candidate_row: int, frequency: float):
 
 def fe_sky_map(array, frequency, noise=None, nside=32):
     """Earth-term Fe on a HEALPix grid at one frequency [Hz], from the dataset (cwsearch.physics.fstat)."""
-    from ...physics import fstat
-    from ...physics.noise import NoiseWeighting
-    from ...physics.sky import pixel_centres
-
     engine = NoiseWeighting(array, noise)
     proj = fstat.project(engine, np.array([float(frequency)]))
     ra, dec = pixel_centres(nside)
@@ -508,8 +531,6 @@ def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000, *, a
     candidate's frequency from ``array`` (nside 32); a Fisher blob of
     ``options.resolution`` degrees around the candidate.
     """
-    from astropy.table import Table
-
     scan_dir = Path(run_dir) / "scan"
     path = scan_dir / "candidates.ecsv"
     try:
@@ -552,7 +573,6 @@ def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000, *, a
         fe_map = (nside, np.arange(12 * nside**2), fe_sky_map(array, f0, noise, nside))
         map_label = f"computed from the dataset at {f0:.4g} Hz"
     if fe_map is not None:
-        from ...physics.sky import _healpix
 
         nside, pixels, fe_values = fe_map
         prob = np.exp(fe_values - fe_values.max())
@@ -646,8 +666,6 @@ def inverse_search_prior(terms, model: HostModel):
 
 def build_host_model(catalog, options, span_seconds, distance_limit):
     """:class:`HostModel` for a catalogue and options (population mass table from the whole catalogue)."""
-    from ...physics.relations import RELATIONS, MassRatioPrior, population_chirp_mass_table
-
     relation = RELATIONS[options.relation]
     mass_ratio = MassRatioPrior(options.mass_ratio_min)
     mu, sigma, _ = catalog.total_mass_prior(relation)
@@ -659,8 +677,6 @@ def build_host_model(catalog, options, span_seconds, distance_limit):
 
 def sample_terms(loc: Localisation, model: HostModel):
     """Per-sample quantities: ln implied distance, ln chirp mass, orbital period [d], coalescence mask."""
-    from ...physics.waveform import luminosity_distance_for_strain, orbital_period, time_to_coalescence
-
     d_impl = np.asarray(luminosity_distance_for_strain(loc.strain, loc.chirp_mass, loc.frequency), float)
     t_c = np.asarray(time_to_coalescence(loc.chirp_mass, loc.frequency), float)
     return {
@@ -680,8 +696,6 @@ def not_catalogued_terms(terms, model: HostModel):
     (observed frame at the sample's implied distance); frequency as the
     search prior.
     """
-    from ...physics.relations import redshift_at_distance
-
     # ln of 1/prior density of the log-uniform search priors (ln h0, ln Mc, ln f): ln(ln(hi/lo))
     inv_h, inv_mc, _ = inverse_search_prior(terms, model)
     lnd = terms["ln_distance"]
@@ -700,8 +714,6 @@ def not_catalogued_terms(terms, model: HostModel):
 
 def _mass_tables(galaxies, model):
     """Per-galaxy table index and shift, and the stacked tables, for the numba scoring kernel."""
-    from ...physics.relations import LN10, chirp_mass_offset_table
-
     mu, sigma, _ = galaxies.total_mass_prior(model.relation)
     ln_zf = np.log1p(galaxies.redshift)
     tables, tab = [], np.full(len(galaxies), -1, dtype=np.int64)
@@ -726,8 +738,6 @@ def _mass_tables(galaxies, model):
 
 
 def _logmeanexp(a):
-    from scipy.special import logsumexp
-
     a = np.asarray(a, float)
     return float(logsumexp(a) - math.log(a.size)) if np.isfinite(a).any() else -np.inf
 
@@ -744,8 +754,6 @@ def score_galaxies(loc, kde, galaxies, model):
     ``ln_bayes_out`` (uncatalogued host against the search prior) and
     ``coalescence_out``.
     """
-    from ...physics.sky import unit_vectors
-
     terms = sample_terms(loc, model)
     out_d, out_m, out_c = not_catalogued_terms(terms, model)
     ln_beta_d = _logmeanexp(out_d)
@@ -791,8 +799,6 @@ def posterior_probabilities(ln_bayes, ln_bayes_out, completeness, n_catalogue):
     Prior: ``completeness / n_catalogue`` per galaxy, ``1 − completeness``
     for an uncatalogued host; Bayes factors against the search prior.
     """
-    from scipy.special import logsumexp
-
     ln_prior_g = math.log(completeness) - math.log(max(n_catalogue, 1)) if completeness > 0 else -np.inf
     ln_prior_out = math.log1p(-completeness) if completeness < 1 else -np.inf
     terms = np.concatenate([np.asarray(ln_bayes, float) + ln_prior_g, [ln_bayes_out + ln_prior_out]])
@@ -813,40 +819,13 @@ def _span_seconds(array, options):
 
 
 def _check_options(options):
-    from ...physics.relations import RELATIONS
-
     if not options.catalog:
         raise InputError("no galaxy catalogue given (--catalog FILE)")
-    if not 0.0 <= options.completeness <= 1.0:
-        raise InputError(f"--completeness must be within [0, 1] (got {options.completeness})")
-    if options.relation not in RELATIONS:
-        raise InputError(f"--relation must be one of {', '.join(RELATIONS)} (got {options.relation!r})")
-    if options.top < 1:
-        raise InputError("--top must be >= 1")
-    if not 0 < options.mass_ratio_min <= 1:
-        raise InputError("--mass-ratio-min must be within (0, 1]")
-    if not options.distance_error > 0:
-        raise InputError("--distance-error must be > 0")
-    if options.distance_limit is not None and not options.distance_limit > 0:
-        raise InputError("--distance-limit must be > 0 Mpc")
-    if options.sky_bandwidth is not None and not 0 < options.sky_bandwidth < 60:
-        raise InputError("--sky-bandwidth must be within (0, 60) deg")
-    if not 0 < options.resolution < 90:
-        raise InputError("--resolution must be within (0, 90) deg")
-    if not options.period_factor > 0:
-        raise InputError("--period-factor must be > 0")
-    if options.max_samples < 100:
-        raise InputError("--max-samples must be >= 100")
-    if options.observed_span is not None and not options.observed_span > 0:
-        raise InputError("--observed-span must be > 0 yr")
+    options.validate()
 
 
 def rank_candidate(loc, catalog, model, options, rng, *, n_catalogue):
     """Score the galaxies near one localisation; returns a :class:`CandidateHosts`."""
-    from astropy.table import Table
-
-    from ...physics.sky import unit_vectors
-
     if loc.prior:
         model = dataclasses.replace(model, **loc.prior)
     bandwidth = math.radians(options.sky_bandwidth) if options.sky_bandwidth else None
@@ -903,7 +882,7 @@ def rank_candidate(loc, catalog, model, options, rng, *, n_catalogue):
         "localisation_description": loc.description,
         "localisation_source": loc.source,
         "n_samples": len(loc),
-        "search_prior": {"source": "follow-up summary.json" if loc.prior else "defaults (DESIGN.md section 8)",
+        "search_prior": {"source": "follow-up summary.json" if loc.prior else "defaults (docs/design.md section 8)",
                          "frequency_band_hz": list(model.frequency_band),
                          "chirp_mass_range_msun": list(model.chirp_mass_range),
                          "strain_range": list(model.strain_range), "strain_prior": model.strain_prior},
@@ -947,12 +926,6 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
     ``hosts_summary.json`` and plots; with several follow-up candidates also
     one sub-folder per candidate with its own ranking and plots.
     """
-    from astropy.table import vstack
-
-    from ...data.catalog import read_catalog
-    from ...core.fileio import write_json_atomic, write_table_atomic
-    from ...physics.relations import RELATIONS
-
     _check_options(options)
     run_dir = Path(run_dir)
     if not run_dir.is_dir():
@@ -976,6 +949,7 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
         results.append(rank_candidate(loc, catalog, model, options, loc_rng, n_catalogue=len(catalog)))
     several = len(results) > 1
     if not options.no_plots:
+        # lazy: matplotlib is loaded only when plots are drawn
         from . import plots as host_plots
 
     for res in results:
@@ -1010,8 +984,6 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
         "caution": "A host association is a probability under the stated priors, not an identification.",
     }
     if array is not None:
-        from ...inference.noisefit import stage_noise_statement
-
         summary["noise_model"] = stage_noise_statement(array, noise)
     write_json_atomic(out_dir / "hosts_summary.json", summary)
     return HostsResult(ranking, summary, results, out_dir)
@@ -1045,3 +1017,13 @@ def format_table(result: HostsResult, top=10) -> str:
 
 def summary_json(result: HostsResult) -> str:
     return json.dumps(result.summary, indent=2, default=lambda o: o.item() if hasattr(o, "item") else str(o))
+
+
+__all__ = [
+    "SEARCH_CHIRP_MASS_RANGE", "SEARCH_STRAIN_RANGE", "SEARCH_FREQUENCY_MAX", "DEFAULT_SPAN_YEARS",
+    "POSTERIOR_COLUMNS", "HostsOptions", "Localisation", "CandidateHosts", "HostsResult",
+    "SkyKernelDensity", "sample_fisher", "read_posterior", "fe_sky_map", "scan_localisation",
+    "find_localisations", "HostModel", "inverse_search_prior", "build_host_model", "sample_terms",
+    "not_catalogued_terms", "score_galaxies", "posterior_probabilities", "rank_candidate", "run_hosts",
+    "format_table", "summary_json",
+]

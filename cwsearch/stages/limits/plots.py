@@ -65,3 +65,6 @@ def make_plots(folder, frequencies, freq_table, sky_table, galaxy_table, array, 
         galaxy_plot(folder / "galaxy_limits.png", galaxy_table)
         files["galaxy_plot"] = str(folder / "galaxy_limits.png")
     return files
+
+
+__all__ = ["frequency_plot", "sky_plot", "galaxy_plot", "make_plots"]

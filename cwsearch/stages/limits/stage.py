@@ -50,13 +50,28 @@ from __future__ import annotations
 
 import functools
 import math
+import time
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Literal
 
+import astropy.units as u
 import numpy as np
+from astropy.table import Table
 from numba import njit
+from scipy.special import log_ndtr, logsumexp
 
 from ...core.errors import InputError
+from ...core.fileio import write_json_atomic, write_table_atomic
+from ...core.progress import progress as progress_bar
+from ...data.catalog import read_catalog
+from ...inference.execution import TaskRunner
+from ...inference.sampling import run_sampler, SamplerSettings
+from ...inference.noisefit import stage_noise_statement
+from ...physics import fstat, sky
+from ...physics.fstat import default_max_frequency, frequency_grid, parameters_to_amplitudes
+from ...physics.noise import NoiseSettings, NoiseWeighting
+from ...physics.waveform import chirp_mass_for_strain
 
 #: credibility / confidence level of every limit
 LEVEL = 0.95
@@ -99,8 +114,6 @@ def angle_grid(nodes_per_panel, n_alpha, n_beta):
     >>> u.shape, round(float(w.sum()), 12)
     ((128, 4), 1.0)
     """
-    from ...physics.fstat import parameters_to_amplitudes
-
     x, wx = np.polynomial.legendre.leggauss(int(nodes_per_panel))
     cos_nodes, cos_weights = [], []
     for lo, hi in zip(COS_PANELS[:-1], COS_PANELS[1:]):
@@ -584,8 +597,6 @@ def posterior_cdf(nvec, mmat, gw_frequency, strains, *, grid=QUADRATURE["standar
 
     A plain numpy/scipy evaluation of the same mixture (used for checks).
     """
-    from scipy.special import log_ndtr, logsumexp
-
     u, w = angle_grid(*grid)
     a = u @ np.asarray(nvec, dtype=float)
     c = np.einsum("ji,ik,jk->j", u, np.asarray(mmat, dtype=float), u)
@@ -701,8 +712,6 @@ def galaxy_chirp_mass_limit(strain_limit, gw_frequency, distance_mpc):
     >>> f"{galaxy_chirp_mass_limit(2.76e-15, 1e-8, 100.0):.3g}"
     '1e+09'
     """
-    from ...physics.waveform import chirp_mass_for_strain
-
     return chirp_mass_for_strain(strain_limit, gw_frequency, distance_mpc)
 
 
@@ -752,8 +761,6 @@ def read_catalog_galaxies(path, select):
     Distances come from the ``distance`` column [Mpc] or, where only a
     redshift is given, from Planck18 (as in the hosts stage).
     """
-    from ...data.catalog import read_catalog
-
     names = [s.strip() for item in (select or ()) for s in str(item).split(",") if s.strip()]
     if not names:
         raise InputError("--catalog needs --select NAME[,NAME..] naming the galaxies to use")
@@ -770,16 +777,12 @@ def read_catalog_galaxies(path, select):
 
 # ----------------------------------------------------------------------------- Monte Carlo cross-checks
 def _unit_amplitudes(cos_inclination, polarization, phase):
-    from ...physics.fstat import parameters_to_amplitudes
-
     return parameters_to_amplitudes(2 * np.pi, cos_inclination, polarization, phase, 1.0)
 
 
 def log_likelihood_ratio(nvec, mmat, gw_frequency, strain, cos_inclination, polarization, phase):
     """Earth-term ``ln Λ = b·N − ½ bᵀ M b`` for parameter arrays (broadcast), b from
     :func:`cwsearch.physics.fstat.parameters_to_amplitudes`."""
-    from ...physics.fstat import parameters_to_amplitudes
-
     b = parameters_to_amplitudes(strain, cos_inclination, polarization, phase, gw_frequency)
     return b @ np.asarray(nvec, dtype=float) - 0.5 * np.einsum("...i,ij,...j->...", b, np.asarray(mmat), b)
 
@@ -832,8 +835,6 @@ def sampler_limit(nvec, mmat, gw_frequency, *, seed=0, ess=2000.0, progress=Fals
     Returns ``(h95, error, details)``; the error is ``√(p(1−p)/ESS)`` divided
     by the posterior density at the quantile (estimated from the samples).
     """
-    from ...inference.sampling import SamplerSettings, run_sampler
-
     nvec = np.asarray(nvec, dtype=float)
     mmat = np.asarray(mmat, dtype=float)
     u, _ = angle_grid(*QUADRATURE["fast"])
@@ -997,16 +998,12 @@ def compute_limits(proj, ra, dec, *, method="bayes", quadrature="standard", work
     proj : :class:`cwsearch.physics.fstat.Projections`
     ra, dec : arrays (S,) [rad] of sky positions (pixel centres, galaxies)
     method, quadrature : as in :class:`LimitsOptions`
-    workers, scheduler : the engine (:class:`cwsearch.inference.execution.TaskRunner`)
+    workers, scheduler : the task runner (:class:`cwsearch.inference.execution.TaskRunner`)
 
     Returns a dict of (S, F) arrays in strain: ``bayes`` (h95), ``bayes_log_evidence``,
     ``bayes_table`` (S, F, K, 2) in units of x; ``frequentist``, ``frequentist_p0``,
-    ``frequentist_scale``, ``frequentist_table``; and ``fe`` (S, F); plus the engine description.
+    ``frequentist_scale``, ``frequentist_table``; and ``fe`` (S, F); plus the task runner's description (key ``engine``, kept for old run folders).
     """
-    from ...physics import fstat
-    from ...inference.execution import TaskRunner
-    from ...core.progress import progress as progress_bar
-
     want_bayes = method in ("bayes", "both")
     want_freq = method in ("frequentist", "both")
     fplus, fcross = fstat.sky_patterns(proj, np.asarray(ra), np.asarray(dec))
@@ -1074,17 +1071,6 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     Files: ``frequency_limits.ecsv``, ``sky_limits.ecsv``, ``galaxy_limits.ecsv``
     (with galaxies), ``limits_summary.json`` and PNG plots.
     """
-    import time
-    from pathlib import Path
-
-    import astropy.units as u
-    from astropy.table import Table
-
-    from ...physics import fstat, sky
-    from ...core.fileio import write_json_atomic, write_table_atomic
-    from ...physics.noise import NoiseSettings, NoiseWeighting
-    from ..scan.stage import default_max_frequency, frequency_grid
-
     options.validate()
     noise = NoiseSettings() if noise is None else noise
     started = time.time()
@@ -1244,14 +1230,23 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     if check is not None:
         summary["mcmc_check"] = check
     if not options.no_plots:
+        # lazy: matplotlib is loaded only when plots are drawn
         from .plots import make_plots
 
         files.update(make_plots(folder, frequencies, ftab, stab, gtab, array, nside, primary))
     summary["files"] = sorted(Path(p).name for p in files.values())
-    from ...inference.noisefit import stage_noise_statement
-
     summary["noise_model"] = stage_noise_statement(array, noise)
     write_json_atomic(folder / "limits_summary.json", summary)
     files["summary"] = str(folder / "limits_summary.json")
     return LimitsResult(frequencies, pixel_limits, ftab, stab, gtab, summary, files,
                         res["frequentist"][:n_pix] if "frequentist" in res else None)
+
+
+__all__ = [
+    "LEVEL", "RELATIVE_GRID", "METHODS", "QUADRATURE", "FREQUENTIST_GRID", "COS_PANELS", "angle_grid",
+    "ncx2_sf", "bayes_rows", "frequentist_rows", "bayesian_limit", "frequentist_limit", "posterior_cdf",
+    "sky_averaged_bayes", "sky_averaged_frequentist", "galaxy_chirp_mass_limit", "Galaxy",
+    "parse_galaxies", "read_catalog_galaxies", "log_likelihood_ratio", "importance_sampled_limit",
+    "sampler_limit", "DEFAULT_FMAX", "ROWS_PER_TASK", "LimitsOptions", "LimitsResult", "compute_limits",
+    "run_limits",
+]

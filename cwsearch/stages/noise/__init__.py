@@ -7,6 +7,7 @@
 
 from __future__ import annotations
 
+from ..base import Stage
 from . import stage
 from .stage import *  # noqa: F401,F403  (the stage's public names, listed in stage.__all__)
 from .stage import NoiseOptions, run_noise
@@ -14,4 +15,7 @@ from .stage import NoiseOptions, run_noise
 Options = NoiseOptions
 run = run_noise
 
-__all__ = ["Options", "run", *stage.__all__]
+#: this stage's entry in the registry :data:`cwsearch.stages.STAGES` (first: every later stage uses its model)
+STAGE = Stage("noise", NoiseOptions, run_noise, upstream=(), products=("noise_model.ecsv",))
+
+__all__ = ["Options", "run", "STAGE", *stage.__all__]

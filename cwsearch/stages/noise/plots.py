@@ -6,6 +6,9 @@ from __future__ import annotations
 import numpy as np
 
 from ...core.constants import YEAR_FREQUENCY
+from ...core.plotting import pyplot, save_figure
+from ...physics.noise import (NoiseSettings, PulsarWeighting, fourier_basis, fourier_frequencies,
+                              powerlaw_variance)
 
 
 def residual_power(pulsar, start, span, components):
@@ -16,8 +19,6 @@ def residual_power(pulsar, start, span, components):
     ``(frequencies, power, white_level)``: ``power = ½ |c|²`` and ``white_level = ½ tr G⁻¹``, its
     expectation under white noise alone; a red process of Fourier variance φ adds about φ.
     """
-    from ...physics.noise import NoiseSettings, PulsarWeighting, fourier_basis, fourier_frequencies
-
     white = PulsarWeighting(pulsar, start, span, NoiseSettings(red_components=0, pulsar_red_noise=False))
     freqs = fourier_frequencies(span, components)
     basis = fourier_basis(pulsar.toas, start, span, components)
@@ -46,9 +47,6 @@ def residual_power(pulsar, start, span, components):
 
 def spectra_plot(path, array, settings, fit, max_panels=60):
     """Grid of per-pulsar panels: residual power (points), white level, fitted red + common + white model."""
-    from ...core.plotting import pyplot, save_figure
-    from ...physics.noise import powerlaw_variance
-
     plt = pyplot()
     pulsars = list(array)[:max_panels]
     n = len(pulsars)
@@ -113,8 +111,6 @@ def common_grid(log_likelihood, fit, points=16):
 def common_contour_plot(path, log_likelihood, fit, points, correlation):
     """Contours 2 Δln L = 2.30, 6.18, 11.8 (68, 95, 99.7 % for two parameters) of the common process; returns
     the grid as a JSON-ready dict."""
-    from ...core.plotting import pyplot, save_figure
-
     plt = pyplot()
     amps, idx, delta = common_grid(log_likelihood, fit, points)
     c = fit.common
@@ -137,3 +133,6 @@ def common_contour_plot(path, log_likelihood, fit, points, correlation):
     save_figure(fig, path)
     return {"log10_amplitude": [float(a) for a in amps], "index": [float(g) for g in idx],
             "delta_2lnL": [[float(v) for v in row] for row in delta]}
+
+
+__all__ = ["residual_power", "spectra_plot", "common_grid", "common_contour_plot"]

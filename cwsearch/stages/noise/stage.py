@@ -26,6 +26,7 @@ Examples
 
 from __future__ import annotations
 
+import dataclasses
 import time
 import warnings
 from dataclasses import asdict, dataclass, field, replace
@@ -34,7 +35,11 @@ from pathlib import Path
 import numpy as np
 
 from ...core.errors import InputError
+from ...core.fileio import write_json_atomic
+from ...inference.noisefit import (GOF_THRESHOLD, FitSettings, NoiseFitWarning, UncorrelatedCommonLikelihood,
+                                   apply_noise_model, fit_common, fit_noise, write_noise_table)
 from ...physics.noise import NoiseSettings
+from . import plots
 
 #: file names inside RUN_DIR/noise/
 TABLE_NAME = "noise_model.ecsv"
@@ -92,8 +97,6 @@ class NoiseOptions:
         return self
 
     def fit_settings(self, red_components: int):
-        from ...inference.noisefit import FitSettings
-
         return FitSettings(red_components=int(red_components), red_noise_threshold=float(self.red_noise_threshold),
                            min_toas_red=int(self.min_toas_red), n_starts=int(self.starts),
                            common=bool(self.fit_common), common_index=self.fixed_common_index,
@@ -120,6 +123,7 @@ def common_correlation(noise) -> str:
 def correlated_available() -> bool:
     """True when the Hellings–Downs array engine (:mod:`cwsearch.physics.correlated`) is installed."""
     try:
+        # lazy: the correlated engine is optional (numba kernels)
         from ...physics import correlated  # noqa: F401
     except ImportError:
         return False
@@ -135,6 +139,7 @@ class CorrelatedCommonLikelihood:
     """
 
     def __init__(self, array, red_components=30, correlation="hellings-downs"):
+        # lazy: the correlated engine is optional (numba kernels)
         from ...physics.correlated import ArrayWeighting, CommonProcess
 
         settings = NoiseSettings(red_components=int(red_components), pulsar_red_noise=True,
@@ -171,10 +176,6 @@ def run_noise(array, run_dir, options: NoiseOptions = NoiseOptions(), *, noise: 
     dataset_checksum : recorded in the table, so that it is only reused on the same dataset
     correlation : override of the common-process correlation (``hellings-downs`` or ``uncorrelated``)
     """
-    from ...core.fileio import write_json_atomic
-    from ...inference.noisefit import (GOF_THRESHOLD, NoiseFitWarning, UncorrelatedCommonLikelihood,
-                                       apply_noise_model, fit_common, write_noise_table)
-
     options = options.validate()
     noise = noise or NoiseSettings()
     started = time.time()
@@ -223,8 +224,6 @@ def run_noise(array, run_dir, options: NoiseOptions = NoiseOptions(), *, noise: 
     write_noise_table(fit, files["table"])
     contour = None
     if not options.no_plots:
-        from . import plots
-
         files["spectra_plot"] = out / "spectra.png"
         plots.spectra_plot(files["spectra_plot"], apply_noise_model(array, model), engine_settings, fit)
         if fit.common is not None:
@@ -244,8 +243,6 @@ def run_noise(array, run_dir, options: NoiseOptions = NoiseOptions(), *, noise: 
 
 def fit_noise_checked(array, settings, seed, dataset_checksum, factory):
     """:func:`~cwsearch.inference.noisefit.fit_noise` after the array-level input checks of this stage."""
-    from ...inference.noisefit import fit_noise
-
     if len(array) == 0:
         raise InputError("the dataset has no pulsars to fit")
     return fit_noise(array, settings, seed=seed, dataset_checksum=dataset_checksum, common_likelihood=factory)
@@ -254,8 +251,6 @@ def fit_noise_checked(array, settings, seed, dataset_checksum, factory):
 def model_settings(model, noise: NoiseSettings | None, correlation: str) -> NoiseSettings:
     """Engine settings for a fitted :class:`~cwsearch.inference.noisefit.NoiseModel`: its own settings,
     with the run's ``common_correlation`` (when the settings have that field) set to what was fitted."""
-    import dataclasses
-
     settings = model.noise_settings()
     names = {f.name for f in dataclasses.fields(settings)}
     if "common_correlation" in names:

@@ -70,3 +70,6 @@ def sky_plot(path, fe_values, nside, frequency, array, candidates):
     sky_map(path, np.asarray(fe_values, dtype=float), nside,
             title=f"Fe at f = {frequency:.4g} Hz", label="Fe",
             pulsars=(np.array([p.ra for p in array]), np.array([p.dec for p in array])), marks=marks)
+
+
+__all__ = ["spectrum_plot", "sky_plot"]

@@ -1,7 +1,7 @@
 """The all-sky hunt: Fe and Fp over frequency × sky, candidates and false-alarm probabilities.
 
 :func:`run_scan` scans every frequency of a uniform grid (from 1/T_span,
-spacing 1/(oversample·T_span)) on a HEALPix sky (DESIGN.md §6) and writes
+spacing 1/(oversample·T_span)) on a HEALPix sky (docs/design.md §6) and writes
 ``run_dir/scan/``:
 
 ``candidates.ecsv``
@@ -49,19 +49,30 @@ Examples
 from __future__ import annotations
 
 import time
+import warnings
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Literal
 
 import numpy as np
+from astropy.table import Table
+from scipy.optimize import brentq
+from scipy.stats import chi2
 
 from ...core.errors import InputError
-from ...physics.noise import NoiseSettings
+from ...core.fileio import write_json_atomic, write_table_atomic
+from ...core.progress import progress as bar
+from ...inference.noisefit import GOF_THRESHOLD, NoiseFitWarning, goodness_of_fit, stage_noise_statement
+from ...physics import fstat, sky
+from ...physics.fstat import default_max_frequency, frequency_grid
+from ...physics.noise import NoiseSettings, NoiseWeighting
+from ...physics.simulate import simulate_residuals
+from ...physics.sky import angular_separation
+from ...physics.waveform import antenna_pattern
 
 STATISTICS = ("fe", "fp", "both")
 
 #: default cap on the highest scanned frequency [Hz]
-MAX_DEFAULT_FREQUENCY = 1e-6
 
 #: largest Fe map (float32, pixels × frequencies) a scan keeps in memory [bytes]
 MAX_MAP_BYTES = 4e9
@@ -155,39 +166,6 @@ class ScanResult:
     null_fp_max: np.ndarray | None = None
 
 
-# ---------------------------------------------------------------- grid
-def default_max_frequency(array) -> float:
-    """Nyquist-like limit ``1 / (2 × median TOA spacing)`` capped at 1e-6 Hz [Hz]."""
-    spacing = np.median([np.median(np.diff(p.toas)) for p in array if p.n_toas > 1])
-    return float(min(0.5 / spacing, MAX_DEFAULT_FREQUENCY))
-
-
-def frequency_grid(array, fmin=None, fmax=None, oversample=2):
-    """Uniform GW-frequency grid [Hz]: from ``fmin`` (default 1/T_span) to ``fmax``, step 1/(oversample·T_span).
-
-    >>> from cwsearch.physics.simulate import invented_array
-    >>> arr = invented_array(n_pulsars=2, years=10, seed=0)
-    >>> f = frequency_grid(arr, fmax=2e-8, oversample=2)
-    >>> bool(abs(f[0] * arr.span - 1) < 1e-12 and abs((f[1] - f[0]) * arr.span - 0.5) < 1e-12)
-    True
-    """
-    span = array.span
-    fmin = 1.0 / span if fmin is None else float(fmin)
-    fmax = default_max_frequency(array) if fmax is None else float(fmax)
-    if fmin < (1.0 - 1e-9) / span:
-        raise InputError(f"option --fmin: {fmin:.4g} Hz is below 1/T_span = {1.0 / span:.4g} Hz "
-                         "(less than one GW period fits in the data span)")
-    spacing = np.median([np.median(np.diff(p.toas)) for p in array if p.n_toas > 1])
-    if fmax > (1.0 + 1e-9) * 0.5 / spacing:
-        raise InputError(f"option --fmax: {fmax:.4g} Hz is above the Nyquist-like limit 1/(2 x median TOA "
-                         f"spacing) = {0.5 / spacing:.4g} Hz")
-    if not fmax > fmin:
-        raise InputError(f"option --fmax: the band is empty ({fmax:.4g} Hz <= fmin {fmin:.4g} Hz)")
-    step = 1.0 / (oversample * span)
-    n = int(np.floor((fmax - fmin) / step * (1 + 1e-12))) + 1
-    return fmin + step * np.arange(n)
-
-
 # ---------------------------------------------------------------- statistics
 def fe_single_fap(fe):
     """Single-template false-alarm probability of Fe: ``(1 + F) e^(−F)`` (2Fe ~ χ²(4))."""
@@ -204,8 +182,6 @@ def trials_fap(single, n_trials):
 
 def fp_fap(fp, dof):
     """Single-frequency FAP of Fp: ``P(χ²(dof) ≥ 2Fp)`` (Ellis, Siemens & Creighton 2012)."""
-    from scipy.stats import chi2
-
     fp = np.asarray(fp, dtype=float)
     dof = np.asarray(dof)
     return np.where(dof > 0, chi2.sf(2 * fp, np.maximum(dof, 1)), 1.0)
@@ -250,8 +226,6 @@ class Trials:
 
     def fe_threshold(self, fap):
         """Fe at which :meth:`fe_fap` equals ``fap``."""
-        from scipy.optimize import brentq
-
         return float(brentq(lambda f: float(self.fe_fap(f)) - fap, 0.0, 1e4))
 
 
@@ -280,8 +254,6 @@ def effective_sky_templates(proj, fplus, fcross, seed=0, *, draws=SKY_TRIAL_DRAW
     maxima. With one or two pulsars Fe does not depend on the sky and
     N_sky = 1.
     """
-    from ...physics import fstat
-
     n_freq = proj.frequencies.size
     if frequency_indices is None:
         frequency_indices = np.unique(np.linspace(0, n_freq - 1, min(3, n_freq) + 2)[1:-1].round().astype(int))
@@ -326,9 +298,6 @@ def empirical_fap(values, null_max):
 # ---------------------------------------------------------------- maps
 def sky_grid(array, nside):
     """Pixel centres (ra, dec) [rad] and antenna patterns F+, Fx (N_pix, N_psr)."""
-    from ...physics import sky
-    from ...physics.waveform import antenna_pattern
-
     ra, dec = sky.pixel_centres(nside)
     fplus, fcross, _ = antenna_pattern(ra, dec, array.positions)
     return ra, dec, np.ascontiguousarray(fplus), np.ascontiguousarray(fcross)
@@ -341,9 +310,6 @@ def fe_map(engine, frequencies, fplus, fcross, residuals=None, *, progress=False
     (N_pix, N_freq) float32. Null simulations call this with simulated
     residuals (same TOAs, sigmas and noise model).
     """
-    from ...physics import fstat
-    from ...core.progress import progress as bar
-
     with bar(total=len(engine), desc=f"{desc}: projections", enabled=progress, unit="psr") as pb:
         proj = fstat.project(engine, frequencies, residuals, on_pulsar=lambda i: pb.update(1))
     with bar(total=len(frequencies), desc=f"{desc}: sky", enabled=progress, unit="freq") as pb:
@@ -354,8 +320,6 @@ def fe_map(engine, frequencies, fplus, fcross, residuals=None, *, progress=False
 def simulate_noise(array, noise: NoiseSettings, rng):
     """Noise-only residuals for ``array``: white noise, per-pulsar red noise and the common process
     when the noise settings include them (cwsearch.physics.simulate, timing model fitted out)."""
-    from ...physics.simulate import simulate_residuals
-
     return simulate_residuals(array, rng, white=True, red=noise.pulsar_red_noise and noise.red_components > 0,
                               background_log10_amplitude=noise.common_log10_amplitude,
                               background_index=noise.common_index,
@@ -370,9 +334,6 @@ def null_maxima(array, engine, noise, frequencies, fplus, fcross, n_sims, seed, 
     so results do not depend on the batch size. Returns two arrays (n_sims,)
     (the Fe one is None if ``want_fe`` is false).
     """
-    from ...physics import fstat
-    from ...core.progress import progress as bar
-
     root = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(seed)
     children = root.spawn(n_sims)
     fe_max = np.empty(n_sims) if want_fe else None
@@ -425,8 +386,6 @@ def local_maxima(fe, neighbours, threshold=-np.inf, chunk=200_000):
 def merge_peaks(values, frequencies, ra, dec, frequency_window, merge_angle, limit):
     """Greedy merge: best first, drop peaks within ``frequency_window`` [Hz] and ``merge_angle`` [rad]
     of a kept one. Returns kept indices (at most ``limit``)."""
-    from ...physics.sky import angular_separation
-
     order = np.argsort(-np.asarray(values), kind="stable")
     kept = []
     for i in order:
@@ -444,7 +403,7 @@ def merge_peaks(values, frequencies, ra, dec, frequency_window, merge_angle, lim
 
 
 # ---------------------------------------------------------------- the stage
-def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: NoiseSettings = NoiseSettings(),
+def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: NoiseSettings | None = None,
              seed=0, progress=True) -> ScanResult:
     """Scan ``array`` over frequency × sky and write ``run_dir/scan/`` (see the module docstring).
 
@@ -454,16 +413,11 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     run_dir : path of the run folder (created if missing)
     options : :class:`ScanOptions`
     noise : :class:`~cwsearch.physics.noise.NoiseSettings`, the noise model for weighting and null simulations
+        (None: the default settings)
     seed : int, seeds the null simulations
     progress : show progress bars
     """
-    from astropy.table import Table
-
-    from ...physics import fstat
-    from ...core.fileio import write_json_atomic, write_table_atomic
-    from ...physics.noise import NoiseWeighting
-    from ...inference.noisefit import stage_noise_statement
-
+    noise = NoiseSettings() if noise is None else noise
     options.validate()
     started = time.time()
     out = Path(run_dir) / "scan"
@@ -487,7 +441,6 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
         fe_max = sky_scan.fe_max[0]
         best_pixel = sky_scan.best_pixel[0]
     else:
-        from ...core.progress import progress as bar
 
         with bar(total=len(engine), desc="scan: projections", enabled=progress, unit="psr") as pb:
             proj = fstat.project(engine, frequencies, on_pulsar=lambda i: pb.update(1))
@@ -551,6 +504,7 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     write_table_atomic(files["spectrum"], spectrum)
     write_table_atomic(files["candidates"], candidates)
     if not options.no_plots:
+        # lazy: matplotlib is loaded only when plots are drawn
         from . import plots as scan_plots
 
         thresholds = _thresholds(trials, null_fe, fp_dof)
@@ -572,10 +526,6 @@ def scan_goodness_of_fit(array, noise, *, warn=True) -> dict:
     low-frequency-excess tests of :func:`cwsearch.inference.noisefit.goodness_of_fit`. Warns
     (:class:`~cwsearch.inference.noisefit.NoiseFitWarning`) naming each pulsar with p < 1e-3, and when the
     array shows a common low-frequency excess (pointing to the common-process fit)."""
-    import warnings
-
-    from ...inference.noisefit import GOF_THRESHOLD, NoiseFitWarning, goodness_of_fit
-
     checks, combined = goodness_of_fit(array, noise)
     failed = [c for c in checks if c.flagged]
     messages = [f"pulsar {c.name}: whitened residuals fail a check under the scan's noise model "
@@ -602,8 +552,6 @@ def scan_goodness_of_fit(array, noise, *, warn=True) -> dict:
 
 def _thresholds(trials, null_fe, fp_dof, level=0.01):
     """Lines for the spectrum plot: (label, value or per-frequency array)."""
-    from scipy.stats import chi2
-
     out = {"fe": [], "fp": []}
     if trials.sky is not None:
         fe_all = trials.fe_threshold(level)
@@ -622,9 +570,7 @@ def _thresholds(trials, null_fe, fp_dof, level=0.01):
 
 def _candidates(options, array, proj, frequencies, fe_full, fp, fp_dof, ra, dec, fplus, fcross, trials,
                 null_fe, null_fp, span):
-    from astropy.table import Table
 
-    from ...physics import fstat, sky
 
     limit = int(options.max_candidates)
     window = 1.0 / span * (1 + 1e-9)
