@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import base64
 import html
+import json
 import tomllib
 from pathlib import Path
 
@@ -278,7 +279,7 @@ def stage_noise_models(run: _Run) -> dict:
         desc = summary.get("noise_model")
         if desc is None:
             for name in names:
-                desc = (_read_json(run.dir / stage / name) or {}).get("noise_model")
+                desc = (read_json(run.dir / stage / name) or {}).get("noise_model")
                 if desc is not None:
                     break
         if desc is not None:
@@ -305,7 +306,7 @@ def _noise(run: _Run) -> str:
                          '--noise-model (or [noise] model) for the whole run.</p>')
         notes = sorted({n for d in used.values() for n in d.get("notes", [])})
         parts.extend(f'<p class="note">{_e(n)}</p>' for n in notes)
-    fit = _read_json(run.dir / "noise" / "summary.json")
+    fit = read_json(run.dir / "noise" / "summary.json")
     if fit:
         c = fit.get("common")
         items = [("method", fit.get("method")), ("uncertainties", fit.get("uncertainties")),
