@@ -54,11 +54,18 @@ def resolve_noise(args, array, *, progress=None):
     ``(array with noise, NoiseSettings, description)``; prints which model is used unless ``--quiet``."""
     # lazy: keeps `cwsearch COMMAND --help` fast
     import sys
+    from pathlib import Path
     from ..data.dataset import dataset_checksum
     from ..job.noisemodel import format_description, resolve_noise_model
     from ..job.pipeline import stage_seed
 
     quiet = getattr(args, "quiet", False)
+    out = getattr(args, "out", None)
+    created = []
+    if out is not None and getattr(args, "noise_model", "dataset") == "estimate":
+        for path in (Path(out), Path(out) / "noise"):
+            if not path.exists():
+                created.append(path)
     resolved = resolve_noise_model(array, getattr(args, "out", None), getattr(args, "noise_model", "dataset"),
                                    noise=noise_settings(args), dataset_checksum=dataset_checksum(args.dataset),
                                    seed=stage_seed(getattr(args, "seed", 0), "noise"),
@@ -66,7 +73,26 @@ def resolve_noise(args, array, *, progress=None):
     if not quiet and not getattr(args, "json", False):
         print(format_description(resolved.description), file=sys.stderr)
     check_same_model(getattr(args, "out", None), resolved)
+    resolved.created = created
     return resolved
+
+
+def run_stage_with_noise(resolved, call):
+    """``call()`` (a stage run); when it refuses its input (InputError), the noise fit made for it is removed
+    again, so that a refused command leaves the run folder as it was."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
+    import shutil
+    from ..core.errors import InputError
+    try:
+        return call()
+    except InputError:
+        for path in getattr(resolved, "created", []):
+            if path.name == "noise":
+                shutil.rmtree(path, ignore_errors=True)
+        for path in getattr(resolved, "created", []):
+            if path.name != "noise" and path.is_dir() and not any(path.iterdir()):
+                path.rmdir()
+        raise
 
 
 def check_same_model(run_dir, resolved):

@@ -5,7 +5,7 @@ from __future__ import annotations
 import json
 from dataclasses import fields
 
-from ._common import add_dataset_arguments, add_noise_arguments, load_array, resolve_noise
+from ._common import add_dataset_arguments, add_noise_arguments, load_array, resolve_noise, run_stage_with_noise
 
 DESCRIPTION = (
     "Fit one circular binary (Earth + pulsar term, pulsar phases marginalised) to the top candidate(s) of "
@@ -68,8 +68,9 @@ def run(args) -> int:
     options = FollowupOptions(**{f.name: getattr(args, f.name) for f in fields(FollowupOptions)})
     array = load_array(args)
     resolved = resolve_noise(args, array)
-    result = run_followup(resolved.array, args.out, options, noise=resolved.noise, seed=args.seed,
-                          progress=not args.quiet)
+    result = run_stage_with_noise(resolved, lambda: run_followup(resolved.array, args.out, options,
+                                                                 noise=resolved.noise, seed=args.seed,
+                                                                 progress=not args.quiet))
     if args.json:
         print(json.dumps(result.summary, indent=2, default=str))
     elif not args.quiet:

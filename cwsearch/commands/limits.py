@@ -6,7 +6,7 @@ from __future__ import annotations
 import json
 
 from ._common import (add_dataset_arguments, add_grid_arguments, add_noise_arguments, load_array,
-                      resolve_noise)
+                      resolve_noise, run_stage_with_noise)
 
 DESCRIPTION = """\
 Compute 95 % upper limits on the strain amplitude h0 of a circular binary at
@@ -96,8 +96,9 @@ def run(args) -> int:
     options.validate()
     array = load_array(args)
     resolved = resolve_noise(args, array)
-    result = run_limits(resolved.array, args.out, options, noise=resolved.noise, seed=args.seed,
-                        progress=not args.quiet)
+    result = run_stage_with_noise(resolved, lambda: run_limits(resolved.array, args.out, options,
+                                                               noise=resolved.noise, seed=args.seed,
+                                                               progress=not args.quiet))
     summary = result.summary
     if args.json:
         print(json.dumps(summary, indent=2))

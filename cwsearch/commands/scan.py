@@ -6,7 +6,7 @@ import json
 import math
 
 from ._common import (add_dataset_arguments, add_grid_arguments, add_noise_arguments, load_array,
-                      resolve_noise)
+                      resolve_noise, run_stage_with_noise)
 
 DESCRIPTION = """\
 Scan every GW frequency from 1/T_span (spacing 1/(oversample*T_span)) up to
@@ -87,8 +87,8 @@ def run(args) -> int:
     options = options_from_args(args).validate()
     array = load_array(args)
     resolved = resolve_noise(args, array)
-    result = run_scan(resolved.array, args.out, options, noise=resolved.noise, seed=args.seed,
-                      progress=not args.quiet)
+    result = run_stage_with_noise(resolved, lambda: run_scan(resolved.array, args.out, options, noise=resolved.noise,
+                                                             seed=args.seed, progress=not args.quiet))
     summary = result.summary
     if args.json:
         print(json.dumps(summary, indent=2))
