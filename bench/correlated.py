@@ -16,7 +16,9 @@ Prints, all measured in this run:
     :class:`cwsearch.inference.likelihood.Likelihood` on the same array, same path and batches.
 
 Options: ``--skip-build``, ``--skip-scan``, ``--skip-likelihood``, ``--components``
-(K of the likelihood array's common process, default 30). The machine has 2 cores
+(K of the likelihood array's common process, default 30), ``--common-components`` (K of the
+common process in (a) and (b), default 30; 0: 14 for (a) and, for (b),
+:func:`cwsearch.physics.correlated.common_components_needed` of the bench array). The machine has 2 cores
 shared with other jobs: every figure is slowed alike, and the load average is printed.
 """
 
@@ -46,7 +48,7 @@ def _header():
           f"numpy matrix multiply now {rate:.0f} GFLOP/s")
 
 
-def bench_build():
+def bench_build(k_common=30):
     from cwsearch.physics.correlated import ArrayWeighting, CommonProcess
     from cwsearch.physics.noise import NoiseSettings, NoiseWeighting
     from cwsearch.physics.simulate import invented_array, simulated_array
@@ -55,7 +57,7 @@ def bench_build():
                           full_span=True)
     array = simulated_array(base, seed=8, red=False, fit_timing_model=False)
     settings = NoiseSettings(red_components=30)
-    common = CommonProcess(-14.6, 13 / 3, 30, "hellings-downs")
+    common = CommonProcess(-14.6, 13 / 3, k_common, "hellings-downs")
     gc.collect()
     t = time.perf_counter()
     NoiseWeighting(array, settings)
@@ -75,14 +77,14 @@ def bench_build():
     aw = ArrayWeighting(array, settings, common)
     _, peak = tracemalloc.get_traced_memory()
     tracemalloc.stop()
-    print(f"(a) engine build, 116 pulsars x 2000 TOAs, K = 30 (S~ of size {aw.rank}):")
+    print(f"(a) engine build, 116 pulsars x 2000 TOAs, per-pulsar K = 30, common K = {k_common} (S~ of size {aw.rank}):")
     print(f"    build {t_build:.2f} s (target <= 10 s); per-pulsar engines alone {t_pulsar:.2f} s "
           f"(ratio {t_build / t_pulsar:.1f}); rebuild for new (log10 A, gamma) {t_rebuild:.2f} s")
     print(f"    peak numpy memory (tracemalloc) {peak / 2**30:.2f} GiB (target <= 2 GiB); "
           f"max-RSS growth {(rss1 - rss0) / 2**20:.2f} GiB")
 
 
-def bench_scan():
+def bench_scan(k_common=None):
     from bench._array import COMMON_INDEX, COMMON_LOG10_AMPLITUDE, RED_COMPONENTS, bench_array
     from cwsearch.physics import fstat
     from cwsearch.stages.scan import stage as scan
@@ -94,7 +96,13 @@ def bench_scan():
     frequencies = 1 / array.span + np.arange(500) / (2 * array.span)
     ra, dec, fplus, fcross = scan.sky_grid(array, 16)
     engine = NoiseWeighting(array, settings)
-    common = CommonProcess(COMMON_LOG10_AMPLITUDE, COMMON_INDEX, RED_COMPONENTS, "hellings-downs")
+    from cwsearch.physics.correlated import common_components_needed
+
+    needed = common_components_needed(array, NoiseSettings(red_components=RED_COMPONENTS,
+                                                           common_log10_amplitude=COMMON_LOG10_AMPLITUDE,
+                                                           common_index=COMMON_INDEX))
+    k_common = RED_COMPONENTS if k_common is None else (needed if k_common == 0 else k_common)
+    common = CommonProcess(COMMON_LOG10_AMPLITUDE, COMMON_INDEX, k_common, "hellings-downs")
     aw = ArrayWeighting(array, settings, common)
     # warm-up (numba compilation or cache load)
     small = aw.projections(frequencies[:4])
@@ -122,7 +130,8 @@ def bench_scan():
     print(f"(b) Fe sky scan, {len(array)} pulsars x {array[0].n_toas} TOAs, {ra.size} pixels x "
           f"{frequencies.size} frequencies:")
     print(f"    per-pulsar noise, no common process: {t_plain:.2f} s (reference)")
-    print(f"    correlated (Hellings-Downs, K = {RED_COMPONENTS}): {t_corr_total:.2f} s = projections of d~ "
+    print(f"    correlated (Hellings-Downs, common K = {k_common}; K where the background falls below 1 % of the "
+          f"best pulsar's white level: {needed}): {t_corr_total:.2f} s = projections of d~ "
           f"{t_proj:.2f} + cross-pulsar blocks W_pq(f) {t_corr:.2f} + sky kernel {t_sky:.2f}; "
           f"engine build {t_build:.2f} s")
     print(f"    ratio correlated / reference: {t_corr_total / t_plain:.2f} (target <= 3); "
@@ -173,12 +182,15 @@ def main(argv=None):
     parser.add_argument("--skip-scan", action="store_true")
     parser.add_argument("--skip-likelihood", action="store_true")
     parser.add_argument("--components", type=int, default=30)
+    parser.add_argument("--common-components", type=int, default=30,
+                        help="K of the common process for (a) and (b); 0: (b) takes the K where the background "
+                             "falls below 1 %% of the best pulsar's white level (common_components_needed), (a) 14")
     args = parser.parse_args(argv)
     _header()
     if not args.skip_build:
-        bench_build()
+        bench_build(args.common_components or 14)
     if not args.skip_scan:
-        bench_scan()
+        bench_scan(args.common_components)
     if not args.skip_likelihood:
         bench_likelihood(args.components)
 

@@ -22,6 +22,7 @@ import warnings
 
 from . import __version__
 from .core.errors import InputError
+from .core.safeio import escape_text
 
 #: command name -> one-line summary (the module is cwsearch.commands.<name>)
 COMMANDS = {
@@ -92,7 +93,8 @@ def run_command(func, args) -> int:
     try:
         return int(func(args) or 0)
     except InputError as exc:
-        print(f"cwsearch: error: {exc}", file=sys.stderr)
+        # one line, and nothing read from a file can drive the terminal (control characters escaped)
+        print(f"cwsearch: error: {escape_text(str(exc))}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:
         print("cwsearch: interrupted; finished outputs are kept, nothing half-written", file=sys.stderr)

@@ -21,7 +21,7 @@ from cwsearch.physics.simulate import Binary, invented_array, simulate_residuals
 
 WHITE = NoiseSettings(red_components=0)
 FAST = dict(walkers=18, temperatures=5, max_temperature=1e5, ess=400, max_iterations=260, adapt_iterations=60,
-            checkpoint_every=100)
+            checkpoint_every=100, max_temperatures=5)   # capped, fixed-ladder runs: fast, and warned as such
 
 
 @pytest.fixture(scope="module")
@@ -109,6 +109,7 @@ def _write_candidates(run_dir, rows):
     t["frequency"].unit, t["ra"].unit, t["dec"].unit = u.Hz, u.deg, u.deg
     (run_dir / "scan").mkdir(parents=True)
     t.write(run_dir / "scan" / "candidates.ecsv", format="ascii.ecsv")
+    (run_dir / "scan" / "scan_summary.json").write_text("{}\n")  # a finished scan writes its summary last
 
 
 def test_command_follows_candidates_and_resumes(tmp_path, dataset_dir):

@@ -1,12 +1,14 @@
 """Property-based fuzzing of every reader of user files, and a check that nothing is executed or unpickled.
 
-Property (issue 8; common practice for input validation, no source): any byte
-string given as ``pulsars.ecsv``, ``residuals/NAME.ecsv``, ``noise.ecsv``, a
-galaxy catalogue (ECSV or CSV) or a TOML run file either loads or raises
-:class:`cwsearch.core.errors.InputError` — never any other exception. Inputs are
-drawn three ways: arbitrary bytes, a valid file with random byte edits, and
-a valid file with random lines replaced by tokens that readers find hard
-(NaN, inf, quotes, YAML tags, huge numbers, separators). Hypothesis
+Property (issues 8 and 19; common practice for input validation, no source):
+any byte string given as ``pulsars.ecsv``, ``residuals/NAME.ecsv``,
+``noise.ecsv``, a galaxy catalogue (ECSV or CSV), a TOML run file, a scan
+candidates table, a follow-up posterior or a fitted noise table either loads
+or raises :class:`cwsearch.core.errors.InputError` — never any other exception.
+Inputs are drawn five ways: arbitrary bytes, random Unicode text, a valid file
+with random byte edits, a valid file with random fields replaced by tokens
+that readers find hard (NaN, inf, quotes, YAML tags, huge numbers,
+separators), and a valid file with a field replaced by a numeric extreme. Hypothesis
 (``max_examples`` modest, no deadline) shrinks any failure to a small case.
 
 YAML in ECSV headers: astropy reads the header with a safe YAML loader
@@ -92,7 +94,25 @@ def _mutations(base: bytes):
             new[i] = b" ".join(fields)
         return b"\n".join(new)
 
-    return st.one_of(st.binary(max_size=600), byte_edits(), token_edits())
+    @st.composite
+    def number_edits(draw):
+        """A data field replaced by a numeric extreme (issue 19): huge, tiny, subnormal, negative zero,
+        non-finite, integers beyond 64 bits."""
+        new = list(lines)
+        data_rows = [k for k, ln in enumerate(new) if ln and not ln.startswith(b"#")][1:] or [len(new) - 1]
+        i = draw(st.sampled_from(data_rows))
+        fields = new[i].split(b" ") if b" " in new[i] else new[i].split(b",")
+        j = draw(st.integers(0, len(fields) - 1))
+        value = draw(st.one_of(st.floats(allow_nan=True, allow_infinity=True).map(repr),
+                               st.integers(-(10 ** 30), 10 ** 30).map(str),
+                               st.sampled_from(["1e308", "-1e308", "5e-324", "1e-200", "-0.0", "1e-45",
+                                                "9" * 40, "-9e99", "1e15", "69999.999"])))
+        fields[j] = value.encode()
+        new[i] = (b" " if b" " in new[i] else b",").join(fields)
+        return b"\n".join(new)
+
+    unicode_text = st.text(max_size=300).map(lambda s: s.encode("utf-8", "surrogatepass"))
+    return st.one_of(st.binary(max_size=600), byte_edits(), token_edits(), number_edits(), unicode_text)
 
 
 def _loads_or_input_error(call):
@@ -162,6 +182,91 @@ def test_run_file_fuzz(valid, tmp_path):
     def check(data):
         target.write_bytes(data)
         _loads_or_input_error(lambda: load_config(target))
+
+    check()
+
+
+def _scan_and_posterior(root):
+    """A finished-looking scan folder and follow-up folder (summaries present) under ``root``."""
+    import numpy as np
+    from astropy.table import Table
+
+    t = Table({"frequency": [1e-8, 2e-8], "ra": [10.0, 20.0], "dec": [10.0, -5.0], "fe": [30.0, 20.0],
+               "fap": [1e-4, 0.1], "fp": [1.0, 2.0], "strain": [1e-14, 2e-14], "inclination": [1.0, 0.5],
+               "polarization": [0.5, 0.2], "phase": [1.0, 2.0]})
+    t["frequency"].unit, t["ra"].unit, t["dec"].unit = "Hz", "deg", "deg"
+    (root / "scan").mkdir(parents=True, exist_ok=True)
+    t.write(root / "scan" / "candidates.ecsv", format="ascii.ecsv", overwrite=True)
+    (root / "scan" / "scan_summary.json").write_text("{}\n")
+    n = 12
+    post = Table({"ra": np.linspace(9, 11, n), "dec": np.linspace(19, 21, n), "frequency": np.full(n, 1e-8),
+                  "chirp_mass": np.full(n, 1e9), "strain": np.full(n, 1e-14)})
+    post["ra"].unit = post["dec"].unit = "deg"
+    post["frequency"].unit, post["chirp_mass"].unit = "Hz", "solMass"
+    (root / "followup").mkdir(parents=True, exist_ok=True)
+    post.write(root / "followup" / "posterior.ecsv", format="ascii.ecsv", overwrite=True)
+    (root / "followup" / "summary.json").write_text('{"model": {"strain_prior": "log-uniform"}}\n')
+
+
+@pytest.mark.parametrize("which", ["candidates", "posterior", "posterior-summary"])
+def test_run_folder_reader_fuzz(tmp_path, which):
+    """The readers of a run folder's files (scan candidates for the follow-up, the posterior and its summary
+    for the host stage) see only InputError or success (issue 19)."""
+    from cwsearch.stages.followup.stage import read_candidates
+    from cwsearch.stages.hosts.stage import read_posterior
+
+    run = tmp_path / "run"
+    _scan_and_posterior(run)
+    target = {"candidates": run / "scan" / "candidates.ecsv", "posterior": run / "followup" / "posterior.ecsv",
+              "posterior-summary": run / "followup" / "summary.json"}[which]
+    load = (lambda: read_candidates(run)) if which == "candidates" else \
+        (lambda: read_posterior(run / "followup" / "posterior.ecsv"))
+
+    @FUZZ
+    @given(data=_mutations(target.read_bytes()))
+    def check(data):
+        target.write_bytes(data)
+        _loads_or_input_error(load)
+
+    check()
+
+
+def test_noise_table_reader_fuzz(valid, tmp_path):
+    """The fitted-noise-table reader (cwsearch.inference.noisefit.read_noise_table) sees only InputError or
+    success (issue 19), whatever the bytes."""
+    from cwsearch.data.dataset import read_dataset
+    from cwsearch.inference import noisefit
+
+    if not hasattr(noisefit, "read_noise_table") or not hasattr(noisefit, "write_noise_table"):
+        pytest.skip("noise table reader not in this copy")
+    from astropy.table import Table
+
+    array = read_dataset(valid / "data")
+    target = tmp_path / "noise_model.ecsv"
+    names = [c[0] for c in noisefit._TABLE_COLUMNS]
+    dtypes = [str, str, int, float, float, float, float, bool, bool] + [float] * 8 + [bool, float, float]
+    defaults = {str: "x", int: 10, float: 0.5, bool: False}
+    rows = []
+    for p in array:
+        for b in p.backend_names:
+            row = [defaults[t] for t in dtypes]
+            row[0], row[1], row[3], row[5] = p.name, b, 1.0, 1e-8
+            row[names.index("red_log10_amplitude")], row[names.index("red_index")] = -14.0, 3.0
+            rows.append(tuple(row))
+    table = Table(rows=rows, names=names, dtype=dtypes)
+    for name, unit, _ in noisefit._TABLE_COLUMNS:
+        if unit:
+            table[name].unit = unit
+    table.meta["format"] = noisefit.TABLE_FORMAT
+    table.write(target, format="ascii.ecsv", overwrite=True)
+    _loads_or_input_error(lambda: noisefit.read_noise_table(target, array))   # the seed itself is handled
+    seed = target.read_bytes()
+
+    @FUZZ
+    @given(data=_mutations(seed))
+    def check(data):
+        target.write_bytes(data)
+        _loads_or_input_error(lambda: noisefit.read_noise_table(target, array))
 
     check()
 

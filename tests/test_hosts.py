@@ -46,6 +46,8 @@ def write_posterior(path, loc):
     t["chirp_mass"].unit = "solMass"
     path.parent.mkdir(parents=True, exist_ok=True)
     t.write(path, format="ascii.ecsv", overwrite=True)
+    if not (path.parent / "summary.json").exists():   # a finished follow-up writes its summary last
+        (path.parent / "summary.json").write_text("{}\n")
 
 
 def _offset(sep, angle):
@@ -273,6 +275,7 @@ def test_scan_candidate_alone_uses_coarse_localisation_and_says_so(tmp_path):
                "pixel": [0]})
     (tmp_path / "run" / "scan").mkdir(parents=True)
     t.write(tmp_path / "run" / "scan" / "candidates.ecsv", format="ascii.ecsv")
+    (tmp_path / "run" / "scan" / "scan_summary.json").write_text("{}\n")  # a finished scan writes it last
     res = run_hosts(None, tmp_path / "run", HostsOptions(catalog=str(cat), resolution=5.0, max_samples=4000,
                                                            no_plots=True),
                     progress=False)
@@ -330,6 +333,7 @@ def test_missing_inputs_and_bad_options(tmp_path):
     (tmp_path / "r" / "followup").mkdir(parents=True)
     (tmp_path / "r" / "followup" / "posterior.ecsv").write_text("# %ECSV 1.0\n# ---\n# datatype:\n"
                                                                 "# - {name: ra, datatype: float64}\nra\n1.0\n")
+    (tmp_path / "r" / "followup" / "summary.json").write_text("{}\n")
     with pytest.raises(InputError, match="missing posterior column"):
         run_hosts(None, tmp_path / "r", HostsOptions(catalog=str(cat)), progress=False)
 

@@ -22,6 +22,14 @@ def add_dataset_arguments(parser, out_required=True):
     parser.add_argument("--seed", type=int, default=0, help="random seed for the whole run (default 0)")
     parser.add_argument("--quiet", action="store_true", help="no progress bars or tables")
     parser.add_argument("--json", action="store_true", help="print the summary as JSON")
+    add_mjd_range_argument(parser)
+
+
+def add_mjd_range_argument(parser):
+    """``--mjd-range LO HI``: widen the plausible TOA dates (default MJD 40000-70000)."""
+    parser.add_argument("--mjd-range", nargs=2, type=float, default=None, metavar=("LO", "HI"),
+                        help="accept TOAs between MJD LO and HI (default 40000 70000; TOAs outside are "
+                             "refused as implausible)")
 
 
 def add_noise_arguments(parser):
@@ -36,6 +44,13 @@ def add_noise_arguments(parser):
                    help="add a common red process with this log10 amplitude (--noise-model dataset; default: none)")
     g.add_argument("--common-index", type=float, default=13 / 3, metavar="GAMMA",
                    help="spectral index of the common process (default 13/3)")
+    g.add_argument("--common-correlation", choices=("hellings-downs", "uncorrelated", "none"),
+                   default="hellings-downs",
+                   help="how the common process couples the pulsars: hellings-downs (default; array-level "
+                        "engine), uncorrelated (same spectrum, independent pulsars) or none (leave it out)")
+    g.add_argument("--common-components", type=int, default=None, metavar="K",
+                   help="Fourier frequencies of the common process, at most --red-components (default: the same; "
+                        "fewer make the correlated engine much faster where the background is below the white noise)")
 
 
 def noise_settings(args):
@@ -46,7 +61,9 @@ def noise_settings(args):
     return NoiseSettings(red_components=args.red_components,
                          pulsar_red_noise=not args.no_pulsar_red_noise,
                          common_log10_amplitude=args.common_log10_amplitude,
-                         common_index=args.common_index)
+                         common_index=args.common_index,
+                         common_correlation=getattr(args, "common_correlation", "hellings-downs"),
+                         common_components=getattr(args, "common_components", None))
 
 
 def resolve_noise(args, array, *, progress=None):
@@ -126,7 +143,22 @@ def load_array(args):
     # lazy: keeps `cwsearch COMMAND --help` fast
     from ..data.dataset import read_dataset
 
-    return read_dataset(args.dataset)
+    return read_dataset(args.dataset, mjd_range=getattr(args, "mjd_range", None))
+
+
+def run_folder_guard(run_dir, array=None, dataset=None):
+    """The pipeline's run-folder guard for a stage command (:func:`cwsearch.job.runfolder.stage_guard`):
+    lock, ``.part`` clean-up, and (with ``dataset``) the dataset-checksum check; ``dataset.json`` is
+    recorded when the stage succeeds."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
+    from ..data.dataset import dataset_checksum
+    from ..job.pipeline import dataset_summary
+    from ..job.runfolder import stage_guard
+
+    if dataset is None:
+        return stage_guard(run_dir)
+    checksum = dataset_checksum(dataset)
+    return stage_guard(run_dir, checksum, dataset_record=lambda: dataset_summary(array, dataset, checksum))
 
 
 def add_grid_arguments(group, defaults, fmax_help):

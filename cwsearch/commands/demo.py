@@ -38,7 +38,8 @@ DEMO = {
 QUICK = {
     "noise": {"red_components": 10, "starts": 1, "iterations": 0, "upper_limits": False, "contour_points": 8},
     "scan": {"nside": 4, "fmax": 5.0e-8, "null_sims": 0},
-    "followup": {"ess": 100.0, "temperatures": 4, "walkers": 18, "adapt_iterations": 60, "max_iterations": 200},
+    "followup": {"ess": 100.0, "temperatures": 4, "walkers": 18, "adapt_iterations": 60, "max_iterations": 200,
+                 "max_temperatures": 4},
     "hosts": {},
     "limits": {"nside": 2, "fmax": 5.0e-8, "quadrature": "fast"},
 }

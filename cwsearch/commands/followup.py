@@ -5,7 +5,8 @@ from __future__ import annotations
 import json
 from dataclasses import fields
 
-from ._common import add_dataset_arguments, add_noise_arguments, load_array, resolve_noise, run_stage_with_noise
+from ._common import (add_dataset_arguments, add_noise_arguments, load_array, resolve_noise,
+                      run_folder_guard, run_stage_with_noise)
 
 DESCRIPTION = (
     "Fit one circular binary (Earth + pulsar term, pulsar phases marginalised) to the top candidate(s) of "
@@ -56,6 +57,9 @@ def add_arguments(parser):
                    help="write the checkpoint every N iterations (default 100)")
     s.add_argument("--adapt-iterations", type=int, default=500, metavar="N",
                    help="adapt the temperature ladder during the first N iterations (default 500)")
+    s.add_argument("--max-temperatures", type=int, default=None, metavar="N",
+                   help="the ladder may grow to N temperatures where neighbours rarely swap (default 3 x "
+                        "--temperatures, at most 40; --max-temperatures equal to --temperatures keeps it fixed)")
     s.add_argument("--resume", action="store_true", help="continue from the checkpoint in the output folder")
     parser.add_argument("--no-plots", action="store_true", help="skip the PNG plots")
     add_noise_arguments(parser)
@@ -67,10 +71,11 @@ def run(args) -> int:
 
     options = FollowupOptions(**{f.name: getattr(args, f.name) for f in fields(FollowupOptions)})
     array = load_array(args)
-    resolved = resolve_noise(args, array)
-    result = run_stage_with_noise(resolved, lambda: run_followup(resolved.array, args.out, options,
-                                                                 noise=resolved.noise, seed=args.seed,
-                                                                 progress=not args.quiet))
+    with run_folder_guard(args.out, array, args.dataset):
+        resolved = resolve_noise(args, array)
+        result = run_stage_with_noise(resolved, lambda: run_followup(resolved.array, args.out, options,
+                                                                     noise=resolved.noise, seed=args.seed,
+                                                                     progress=not args.quiet))
     if args.json:
         print(json.dumps(result.summary, indent=2, default=str))
     elif not args.quiet:

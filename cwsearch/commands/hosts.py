@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from ._common import run_folder_guard
+
 DESCRIPTION = (
     "Rank the galaxies of a catalogue as possible hosts of the run's candidate binary. Uses the follow-up "
     "posterior (RUN_DIR/followup/) when there is one, otherwise the best scan candidate with a coarse sky "
@@ -67,7 +69,8 @@ def run(args) -> int:
                            resolution=args.resolution, sky_map=args.sky_map, candidate=args.candidate,
                            observed_span=args.observed_span, max_samples=args.max_samples,
                            no_plots=args.no_plots)
-    result = run_hosts(None, args.run_dir, options, seed=args.seed, progress=not (args.quiet or args.json))
+    with run_folder_guard(args.run_dir):
+        result = run_hosts(None, args.run_dir, options, seed=args.seed, progress=not (args.quiet or args.json))
     if args.json:
         print(summary_json(result))
     elif not args.quiet:

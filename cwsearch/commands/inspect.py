@@ -8,6 +8,8 @@ import warnings
 from pathlib import Path
 
 from ..core.constants import DAY_SECONDS, YEAR_SECONDS
+from ..core.safeio import escape_text
+from ._common import add_mjd_range_argument
 
 DESCRIPTION = """\
 Validate a dataset folder (pulsars.ecsv, residuals/NAME.ecsv, optional
@@ -25,6 +27,7 @@ EXAMPLE = """\
 def add_arguments(parser):
     parser.add_argument("dataset", help="dataset folder (pulsars.ecsv, residuals/, optional noise.ecsv)")
     parser.add_argument("--json", action="store_true", help="print the summary as JSON instead of a table")
+    add_mjd_range_argument(parser)
 
 
 def run(args) -> int:
@@ -33,9 +36,9 @@ def run(args) -> int:
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        array = read_dataset(args.dataset)
+        array = read_dataset(args.dataset, mjd_range=args.mjd_range)
     for w in caught:
-        print(f"cwsearch: warning: {w.message}", file=sys.stderr)
+        print(f"cwsearch: warning: {escape_text(w.message)}", file=sys.stderr)
     summary = summarize(array, args.dataset)
     summary["goodness_of_fit"] = goodness_of_fit_summary(array)
     for message in summary["goodness_of_fit"]["warnings"]:
@@ -43,7 +46,7 @@ def run(args) -> int:
     if args.json:
         print(json.dumps(summary, indent=2))
     else:
-        print(format_summary(summary))
+        print(format_summary(summary))  # every text from the files is escaped there (escape_text)
     return 0
 
 
@@ -136,9 +139,9 @@ def format_summary(summary) -> str:
     for p in summary["pulsars"]:
         red = "-" if p["red_log10_amplitude"] is None else \
             f"log10A={p['red_log10_amplitude']:.2f} gamma={p['red_index']:.2f}"
-        rows.append([p["name"], f"{p['ra']:.3f}", f"{p['dec']:+.3f}",
+        rows.append([escape_text(p["name"]), f"{p['ra']:.3f}", f"{p['dec']:+.3f}",
                      f"{p['distance']:.3g}+-{p['distance_err']:.2g}", str(p["n_toas"]), f"{p['span_years']:.2f}",
-                     ",".join(p["backends"]), f"{p['median_sigma_ns']:.1f}", _white(p), red])
+                     escape_text(",".join(p["backends"])), f"{p['median_sigma_ns']:.1f}", escape_text(_white(p)), red])
     widths = [max(len(h), *(len(r[i]) for r in rows)) for i, h in enumerate(header)]
     right = {1, 2, 3, 4, 5, 7}
 

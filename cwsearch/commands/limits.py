@@ -5,8 +5,9 @@ from __future__ import annotations
 
 import json
 
+from ..core.safeio import escape_text
 from ._common import (add_dataset_arguments, add_grid_arguments, add_noise_arguments, load_array,
-                      resolve_noise, run_stage_with_noise)
+                      resolve_noise, run_folder_guard, run_stage_with_noise)
 
 DESCRIPTION = """\
 Compute 95 % upper limits on the strain amplitude h0 of a circular binary at
@@ -95,10 +96,11 @@ def run(args) -> int:
     parse_galaxies(options.galaxy)  # number errors before the dataset is read
     options.validate()
     array = load_array(args)
-    resolved = resolve_noise(args, array)
-    result = run_stage_with_noise(resolved, lambda: run_limits(resolved.array, args.out, options,
-                                                               noise=resolved.noise, seed=args.seed,
-                                                               progress=not args.quiet))
+    with run_folder_guard(args.out, array, args.dataset):
+        resolved = resolve_noise(args, array)
+        result = run_stage_with_noise(resolved, lambda: run_limits(resolved.array, args.out, options,
+                                                                   noise=resolved.noise, seed=args.seed,
+                                                                   progress=not args.quiet))
     summary = result.summary
     if args.json:
         print(json.dumps(summary, indent=2))
@@ -113,7 +115,7 @@ def run(args) -> int:
             print(f"  {method:<11} sky-averaged h95 = {_fmt(s['strain_95_at_best_frequency'])} at "
                   f"{summary['best_frequency']:.3e} Hz (best sky position {_fmt(s['best_pixel_strain_95'])})")
     for name, g in summary.get("galaxies", {}).items():
-        print(f"  galaxy {name} ({g['distance']:.3g} Mpc): chirp mass < {_fmt(g['chirp_mass_95_min'])} Msun "
+        print(f"  galaxy {escape_text(name)} ({g['distance']:.3g} Mpc): chirp mass < {_fmt(g['chirp_mass_95_min'])} Msun "
               f"at {g['at_frequency']:.3e} Hz")
     check = summary.get("mcmc_check")
     if check:

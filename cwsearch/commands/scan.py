@@ -4,9 +4,10 @@ from __future__ import annotations
 
 import json
 import math
+import time
 
 from ._common import (add_dataset_arguments, add_grid_arguments, add_noise_arguments, load_array,
-                      resolve_noise, run_stage_with_noise)
+                      resolve_noise, run_folder_guard, run_stage_with_noise)
 
 DESCRIPTION = """\
 Scan every GW frequency from 1/T_span (spacing 1/(oversample*T_span)) up to
@@ -50,6 +51,13 @@ def add_arguments(parser):
                    help=f"peaks within DEG degrees and one frequency bin 1/T_span are one candidate "
                         f"(default {d['merge_angle']:g})")
     g.add_argument("--no-plots", action="store_true", help="do not draw the PNG plots")
+    e = parser.add_argument_group("engine")
+    e.add_argument("--workers", type=int, default=None, metavar="N",
+                   help="run frequency chunks and noise-only scans in N local worker processes "
+                        "(default: in this process, every core through threads)")
+    e.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                   help="send them to a running Dask scheduler, e.g. tcp://10.0.0.5:8786 "
+                        "(the numbers do not depend on the engine)")
     add_noise_arguments(parser)
 
 
@@ -60,7 +68,8 @@ def options_from_args(args):
 
     return ScanOptions(fmin=args.fmin, fmax=args.fmax, oversample=args.oversample, nside=args.nside,
                        statistic=args.statistic, null_sims=args.null_sims, fap_threshold=args.fap_threshold,
-                       max_candidates=args.max_candidates, merge_angle=args.merge_angle, no_plots=args.no_plots)
+                       max_candidates=args.max_candidates, merge_angle=args.merge_angle, no_plots=args.no_plots,
+                       workers=args.workers, scheduler=args.scheduler)
 
 
 def format_candidates(table, n=10):
@@ -85,10 +94,15 @@ def run(args) -> int:
     from ..stages.scan.stage import run_scan
 
     options = options_from_args(args).validate()
+    t = time.time()
     array = load_array(args)
-    resolved = resolve_noise(args, array)
-    result = run_stage_with_noise(resolved, lambda: run_scan(resolved.array, args.out, options, noise=resolved.noise,
-                                                             seed=args.seed, progress=not args.quiet))
+    read_seconds = time.time() - t
+    with run_folder_guard(args.out, array, args.dataset):
+        resolved = resolve_noise(args, array)
+        result = run_stage_with_noise(resolved, lambda: run_scan(resolved.array, args.out, options,
+                                                                 noise=resolved.noise, seed=args.seed,
+                                                                 progress=not args.quiet,
+                                                                 timings={"read_seconds": read_seconds}))
     summary = result.summary
     if args.json:
         print(json.dumps(summary, indent=2))

@@ -41,7 +41,12 @@ def atomic_path(target):
         fd, tmp = tempfile.mkstemp(prefix="." + target.name + ".", suffix=".part", dir=target.parent)
     except OSError as exc:
         raise InputError(f"cannot write here ({exc.strerror})", file=target.parent) from None
-    os.close(fd)
+    try:
+        os.fchmod(fd, 0o666 & ~_umask())   # mkstemp makes 0600 files: give outputs the user's usual mode
+    except OSError:
+        pass
+    finally:
+        os.close(fd)
     tmp = Path(tmp)
     try:
         yield tmp
@@ -54,6 +59,13 @@ def atomic_path(target):
     except BaseException:
         tmp.unlink(missing_ok=True)
         raise
+
+
+def _umask() -> int:
+    """The process umask (read by setting and restoring it)."""
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
 
 
 def write_text_atomic(target, text: str) -> None:

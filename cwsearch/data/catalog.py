@@ -45,6 +45,7 @@ cwsearch.core.errors.InputError: ...g.csv, row 1, column dec: declination must b
 
 from __future__ import annotations
 
+import os
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -55,6 +56,7 @@ from astropy.io import ascii
 from astropy.table import Table
 
 from ..core.errors import InputError
+from ..core.safeio import escape_text, read_input_bytes
 from .cosmology import luminosity_distance, redshift_at_distance
 
 #: mass-proxy columns a catalogue may carry, in order of preference
@@ -182,21 +184,26 @@ def _check_bytes(path: Path, raw: bytes):
 
 
 def _read_table(path: Path):
-    """Astropy table of the file and a dict of column units from the ECSV header (if any)."""
-    raw = path.read_bytes()
+    """Astropy table of the file and a dict of column units from the ECSV header (if any).
+
+    The bytes are read once, through :func:`cwsearch.core.safeio.read_input_bytes` (a regular file,
+    size cap); a UTF-8 byte-order mark is dropped; astropy parses the text, never the path again.
+    """
+    raw = read_input_bytes(path, what="catalogue")
     _check_bytes(path, raw)
-    text_head = raw[:200].decode("utf-8", errors="replace")
-    is_ecsv = text_head.lstrip().startswith("# %ECSV")
+    if raw.startswith(b"\xef\xbb\xbf"):
+        raw = raw[3:]
+    text = raw.decode("utf-8")
+    if not text.endswith("\n"):
+        text += "\n"        # astropy reads a string holding a newline as the table itself, never as a file name
+    is_ecsv = text[:200].lstrip().startswith("# %ECSV")
     try:
         if not is_ecsv:
-            return ascii.read(str(path), format="csv", guess=False, fast_reader=True), {}
-        header_lines, pos = [], 0
-        while pos < len(raw):
-            end = raw.find(b"\n", pos)
-            end = len(raw) if end < 0 else end + 1
-            line = raw[pos:end].decode("utf-8")
+            return ascii.read(text, format="csv", guess=False, fast_reader=True), {}
+        lines = text.splitlines(keepends=True)
+        header_lines = []
+        for line in lines:
             header_lines.append(line)
-            pos = end
             if not line.startswith("#"):
                 break
         head = Table.read("".join(header_lines), format="ascii.ecsv")
@@ -204,16 +211,16 @@ def _read_table(path: Path):
         match = re.search(r"^#\s*delimiter:\s*'?(.)'?\s*$", "".join(header_lines), flags=re.M)
         delimiter = match.group(1) if match else " "
         try:
-            table = ascii.read(str(path), format="fast_basic", delimiter=delimiter, comment="#",
+            table = ascii.read(text, format="fast_basic", delimiter=delimiter, comment="#",
                                guess=False)
         except Exception:  # unusual ECSV content: let astropy's full reader handle (or explain) it
-            table = Table.read(str(path), format="ascii.ecsv")
+            table = Table.read(text, format="ascii.ecsv")
         return table, units
     except InputError:
         raise
     except Exception as exc:
         msg = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise InputError(f"cannot read the catalogue as {'ECSV' if is_ecsv else 'CSV'}: {msg}",
+        raise InputError(f"cannot read the catalogue as {'ECSV' if is_ecsv else 'CSV'}: {escape_text(msg[:300])}",
                          file=path) from None
 
 
@@ -245,6 +252,10 @@ def _numeric(table, file_col, ours, path, units, required):
         except Exception:
             raise InputError(f"unit '{unit_file}' cannot be converted to {unit_ours}", file=path,
                              column=file_col) from None
+    bad = np.flatnonzero(np.isinf(values))
+    if bad.size:
+        raise InputError(f"value is {values[bad[0]]} (give a finite number, or leave the field empty for unknown)",
+                         file=path, row=int(bad[0]) + 1, column=file_col)
     if required:
         bad = np.flatnonzero(mask)
         if bad.size:
@@ -276,7 +287,7 @@ def read_catalog(path, columns=None, *, distance_error=DEFAULT_DISTANCE_ERROR):
         column or value (default 0.1).
     """
     path = Path(path)
-    if not path.is_file():
+    if not os.path.lexists(path):
         raise InputError("catalogue file not found", file=path)
     mapping = parse_column_map(columns)
     table, units = _read_table(path)
@@ -324,11 +335,7 @@ def read_catalog(path, columns=None, *, distance_error=DEFAULT_DISTANCE_ERROR):
     if bad is not None:
         raise InputError(f"declination must be within [-90, 90] deg (got {dec[bad]:g})", file=path,
                          row=bad + 1, column=file_name["dec"])
-    bad = _first(np.abs(ra) > 360.0)
-    if bad is not None:
-        raise InputError(f"right ascension must be within [0, 360] deg (got {ra[bad]:g})", file=path,
-                         row=bad + 1, column=file_name["ra"])
-    ra = np.remainder(ra, 360.0)
+    ra = np.remainder(ra, 360.0)   # any finite right ascension is wrapped into [0, 360) (720.5 -> 0.5)
 
     n = len(table)
     distance = num("distance", not has_redshift) if has_distance else np.full(n, np.nan)

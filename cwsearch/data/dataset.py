@@ -72,6 +72,8 @@ from astropy.units import UnitsWarning
 from ..core.constants import DAY_SECONDS
 from ..core.errors import InputError
 from ..core.fileio import write_json_atomic, write_table_atomic
+from ..core.safeio import (MAX_RESIDUAL_OVER_SIGMA, MAX_RESIDUAL_SECONDS, MJD_RANGE, SIGMA_RANGE, check_folder,
+                           is_regular_file, read_input_bytes)
 from .model import default_design_matrix, Array, DEFAULT_DESIGN_COLUMNS, Pulsar, PulsarNoise
 
 PULSARS_FILE = "pulsars.ecsv"
@@ -95,27 +97,36 @@ class DatasetWarning(UserWarning):
 
 
 # ----------------------------------------------------------------- reading
-def read_dataset(path) -> Array:
+def read_dataset(path, *, mjd_range=None) -> Array:
     """Read and validate a dataset folder; return an :class:`~cwsearch.data.model.Array`.
 
     Pulsars keep the order of ``pulsars.ecsv``. Angles are converted to
     radians, distances to kpc, residuals and sigmas to seconds, TOAs to MJD
     days. Raises :class:`~cwsearch.core.errors.InputError` (file, row, column)
     on any problem; see the module docstring for the format.
+
+    Every file is read through :mod:`cwsearch.core.safeio`: regular files
+    only (never a FIFO or a device), symlinks only to places inside the
+    dataset folder, a size cap. Values must be plausible: TOAs within
+    ``mjd_range`` (default :data:`~cwsearch.core.safeio.MJD_RANGE`, MJD
+    40000-70000), sigmas within :data:`~cwsearch.core.safeio.SIGMA_RANGE`,
+    ``|residual|`` at most 1 s and at most 10^6 sigma.
     """
     folder = Path(path)
-    if not folder.exists():
+    if not os.path.lexists(folder):
         raise InputError("dataset folder not found", file=folder)
     if not folder.is_dir():
         raise InputError("not a folder (a dataset is a folder with pulsars.ecsv and residuals/)", file=folder)
+    mjd_range = _mjd_range(mjd_range)
     pulsar_file = folder / PULSARS_FILE
-    if not pulsar_file.is_file():
+    if not os.path.lexists(pulsar_file):
         raise InputError(f"dataset folder has no {PULSARS_FILE}", file=folder)
-    rows = _read_pulsar_table(pulsar_file)
+    rows = _read_pulsar_table(pulsar_file, folder)
 
     res_dir = folder / RESIDUALS_DIR
     if not res_dir.is_dir():
         raise InputError(f"dataset folder has no {RESIDUALS_DIR}/ folder", file=folder)
+    check_folder(res_dir)
     expected = {f"{row['name']}.ecsv" for row in rows}
     unused = sorted(e.name for e in res_dir.iterdir() if not e.name.startswith(".") and e.name not in expected)
     if unused:
@@ -126,16 +137,16 @@ def read_dataset(path) -> Array:
     residual_data = {}
     for i, row in enumerate(rows):
         rfile = res_dir / f"{row['name']}.ecsv"
-        if not rfile.is_file():
+        if not os.path.lexists(rfile):
             raise InputError(f"residual file for pulsar {row['name']} (row {i + 1} of {PULSARS_FILE}) "
                              "is missing", file=rfile)
-        residual_data[row["name"]] = _read_residual_table(rfile)
+        residual_data[row["name"]] = _read_residual_table(rfile, folder, mjd_range)
 
     noise_file = folder / NOISE_FILE
     noise = {row["name"]: PulsarNoise(red_log10_amplitude=row["red_log10_amplitude"],
                                       red_index=row["red_index"]) for row in rows}
-    if noise_file.exists():
-        _read_noise_table(noise_file, noise, residual_data)
+    if os.path.lexists(noise_file):
+        _read_noise_table(noise_file, noise, residual_data, folder)
 
     pulsars = []
     for row in rows:
@@ -148,12 +159,28 @@ def read_dataset(path) -> Array:
     return Array(pulsars)
 
 
-def _read_table(file: Path):
-    """Parse one ECSV file into an astropy Table; every failure becomes an InputError."""
+def _mjd_range(mjd_range):
+    """The plausible TOA range (lo, hi) [MJD] in force: ``mjd_range`` or :data:`MJD_RANGE`."""
+    if mjd_range is None:
+        return MJD_RANGE
     try:
-        raw = file.read_bytes()
-    except OSError as exc:
-        raise InputError(f"cannot read ({exc.strerror})", file=file) from None
+        lo, hi = (float(v) for v in mjd_range)
+    except (TypeError, ValueError):
+        raise InputError(f"--mjd-range needs two numbers LO HI, not {mjd_range!r}") from None
+    if not (math.isfinite(lo) and math.isfinite(hi) and lo < hi):
+        raise InputError(f"--mjd-range: need finite LO < HI, got {lo} {hi}")
+    return lo, hi
+
+
+def _read_table(file: Path, root=None):
+    """Parse one ECSV file into an astropy Table; every failure becomes an InputError.
+
+    The bytes come from :func:`cwsearch.core.safeio.read_input_bytes` (regular file, symlink inside
+    ``root``, size cap), for both paths. Plain files take the fast path (:func:`_fast_table`), anything
+    else astropy's reader (:func:`_strict_table`); both give identical tables, and the plausibility checks
+    after parsing (:func:`check_residual_values`) are the same for both.
+    """
+    raw = read_input_bytes(file, root, what="file")
     try:
         text = raw.decode("utf-8")
     except UnicodeDecodeError as exc:
@@ -166,6 +193,15 @@ def _read_table(file: Path):
     if not lines or not lines[0].startswith("# %ECSV"):
         raise InputError("not an ECSV table (the first line must start with '# %ECSV'); "
                          "write it with astropy: Table.write(path, format='ascii.ecsv')", file=file)
+    if FAST_READING:
+        table = _fast_table(lines)
+        if table is not None:
+            return table
+    return _strict_table(lines, file)
+
+
+def _strict_table(lines, file):
+    """The reference parse: astropy's ECSV reader on the whole file (every failure an InputError)."""
     try:
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", UnitsWarning)
@@ -189,6 +225,128 @@ def _read_table(file: Path):
             raise InputError("only plain one-dimensional columns are allowed "
                              f"(found {type(col).__name__} with shape {col.shape})", file=file, column=name)
     return table
+
+
+#: read plain data lines with the fast path (:func:`_fast_table`); False forces astropy's reader for every file
+FAST_READING = True
+
+#: characters the fast path accepts in data lines: printable ASCII except the quote '"' and the backslash
+_FAST_UNSAFE = re.compile(r'[^ !#-\[\]-~\n]')
+#: parsed ECSV headers (header text -> column template or None), shared by files with the same header
+_HEADER_CACHE: dict = {}
+_HEADER_CACHE_SIZE = 64
+
+
+def _header_template(header_lines):
+    """(names, dtypes, units, meta) of an ECSV header, parsed by astropy once per distinct header text.
+
+    None when the header asks for anything the fast path does not do (a
+    delimiter other than one space, mixin or multi-dimensional columns, a
+    datatype other than float/int/string, any warning from astropy, any
+    parse error): such files always go through :func:`_strict_table`.
+    """
+    key = "\n".join(header_lines)
+    if key in _HEADER_CACHE:
+        return _HEADER_CACHE[key]
+    template = None
+    if not any("delimiter" in ln or "__serialized_columns__" in ln for ln in header_lines[:-1]):
+        try:
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always")
+                table = Table.read(list(header_lines), format="ascii.ecsv", guess=False)
+            others = [w for w in caught if not issubclass(w.category, UnitsWarning)]
+            plain = all(isinstance(table[c], Column) and table[c].ndim == 1 and table[c].dtype.kind in "fiU"
+                        for c in table.colnames)
+            if not others and plain and len(table) == 0 and header_lines[-1].split(" ") == table.colnames:
+                template = (tuple(table.colnames),
+                            tuple(str if table[c].dtype.kind == "U" else table[c].dtype for c in table.colnames),
+                            tuple(table[c].unit for c in table.colnames), dict(table.meta))
+        except Exception:  # the strict path reports it
+            template = None
+    if len(_HEADER_CACHE) >= _HEADER_CACHE_SIZE:
+        _HEADER_CACHE.clear()
+    _HEADER_CACHE[key] = template
+    return template
+
+
+def _fast_table(lines):
+    """The table of an ECSV file whose data lines are plain, or None to use :func:`_strict_table`.
+
+    Fast path of issue 18 (docs/design.md §12): astropy parses the header
+    (cached per distinct header text: the residual files of a dataset share
+    one), and the data lines are split here and converted with the same
+    numpy call astropy's ECSV reader makes (``np.array(values, dtype)``), so
+    the values are identical. It only takes data lines that astropy's
+    splitter reads the same way: printable ASCII without quotes or
+    backslashes, fields separated by exactly one space, the declared
+    number of fields on every line, no comment or blank lines. Anything
+    else, and any conversion failure, returns None and the file is read by
+    the strict path, which gives the located error messages; the validation
+    after parsing is the same for both.
+    """
+    n_header = 0
+    for ln in lines:
+        if not ln.startswith("#"):
+            break
+        n_header += 1
+    if n_header + 1 >= len(lines):
+        return None           # no data rows: the strict path and the validators say what is wrong
+    template = _header_template(lines[: n_header + 1])
+    if template is None:
+        return None
+    names, dtypes, units, meta = template
+    data = lines[n_header + 1:]
+    body = "\n".join(data)
+    try:
+        codes = np.frombuffer(body.encode("ascii"), dtype=np.uint8)
+    except UnicodeEncodeError:
+        return None
+    # printable ASCII and newlines only, no quote (34) or backslash (92), no comment line
+    if (np.any((codes < 32) & (codes != 10)) or np.any(codes > 126) or np.any(codes == 34) or np.any(codes == 92)
+            or body.startswith("#") or "\n#" in body):
+        return None
+    n_col, n_row = len(names), len(data)
+    # exactly n_col - 1 spaces on every line, and no empty field
+    newlines = np.flatnonzero(codes == 10)
+    spaces = np.flatnonzero(codes == 32)
+    per_line = np.diff(np.searchsorted(spaces, np.concatenate([[-1], newlines, [codes.size]])))
+    if per_line.size != n_row or np.any(per_line != n_col - 1):
+        return None
+    tokens = body.split()
+    if len(tokens) != n_row * n_col:
+        return None
+    try:
+        values = [np.array(tokens[j::n_col], dtype) for j, dtype in enumerate(dtypes)]
+    except Exception:  # a value astropy's converter refuses: the strict path names it
+        return None
+    return _PlainTable(names, values, units, meta)
+
+
+class _PlainColumn(np.ndarray):
+    """A plain column of :func:`_fast_table`: a 1-D numpy array with the ``unit`` of its ECSV header."""
+
+    unit = None
+
+
+class _PlainTable:
+    """What the validators use of an astropy Table (``colnames``, ``len``, ``table[name]``, ``meta``),
+    without building astropy columns: the result of :func:`_fast_table`."""
+
+    def __init__(self, names, values, units, meta):
+        self.colnames = list(names)
+        self.meta = dict(meta)
+        self._columns = {}
+        for name, value, unit in zip(names, values, units):
+            column = value.view(_PlainColumn)
+            column.unit = unit
+            self._columns[name] = column
+        self._length = len(values[0]) if values else 0
+
+    def __len__(self):
+        return self._length
+
+    def __getitem__(self, name):
+        return self._columns[name]
 
 
 def _locate_unconvertible(lines, column):
@@ -283,7 +441,9 @@ def _text(table, name, file):
     mask = np.asarray(np.ma.getmaskarray(col), dtype=bool)
     if mask.any():
         raise InputError("empty value", file=file, row=_first_bad(mask), column=name)
-    values = [str(v) for v in np.ma.getdata(col)]
+    values = [str(v) for v in np.ma.getdata(col).tolist()]
+    if all(v.strip() and v == v.strip() for v in set(values)):
+        return values
     for i, v in enumerate(values):
         if not v.strip():
             raise InputError("empty value", file=file, row=i + 1, column=name)
@@ -292,7 +452,14 @@ def _text(table, name, file):
     return values
 
 
+#: longest pulsar name (it becomes a file name; file systems allow 255 bytes)
+MAX_NAME_LENGTH = 100
+
+
 def _check_name(name, file, row):
+    if len(name) > MAX_NAME_LENGTH:
+        raise InputError(f"pulsar name {name[:40]!r}... is {len(name)} characters long; at most {MAX_NAME_LENGTH} "
+                         "(it becomes a file name)", file=file, row=row, column="name")
     if not NAME_PATTERN.fullmatch(name):
         raise InputError(f"pulsar name {name[:40]!r} may only contain letters, digits and _ + . - "
                          "(it becomes a file name)", file=file, row=row, column="name")
@@ -301,8 +468,8 @@ def _check_name(name, file, row):
                          "(it becomes a file name)", file=file, row=row, column="name")
 
 
-def _read_pulsar_table(file):
-    table = _read_table(file)
+def _read_pulsar_table(file, root=None):
+    table = _read_table(file, root)
     _require_columns(table, _PULSAR_COLUMNS, file)
     if len(table) == 0:
         raise InputError("no pulsars (the table has no data rows)", file=file)
@@ -368,8 +535,8 @@ def _warn_unknown_columns(table, known, file, prefixes=()):
         warnings.warn(f"{file}: unknown column(s) ignored: {', '.join(unknown)}", DatasetWarning, stacklevel=4)
 
 
-def _read_residual_table(file):
-    table = _read_table(file)
+def _read_residual_table(file, root=None, mjd_range=None):
+    table = _read_table(file, root)
     _require_columns(table, _RESIDUAL_COLUMNS, file)
     if len(table) == 0:
         raise InputError("no TOAs (the table has no data rows)", file=file)
@@ -380,6 +547,7 @@ def _read_residual_table(file):
     if (sigma <= 0).any():
         row = _first_bad(sigma <= 0)
         raise InputError(f"sigma must be > 0 (got {float(sigma[row - 1])!r})", file=file, row=row, column="sigma")
+    check_residual_values(mjd, residual, sigma, file, mjd_range, mjd_unit=table["mjd"].unit)
     step = np.diff(mjd)
     if (step < 0).any():
         row = _first_bad(step < 0) + 1
@@ -426,8 +594,38 @@ def _check_design_rank(mjd, design, design_names, file):
                              column=where if where in design_names else None)
 
 
-def _read_noise_table(file, noise, residual_data):
-    table = _read_table(file)
+def check_residual_values(mjd, residual, sigma, file, mjd_range=None, *, mjd_unit=None):
+    """Refuse implausible TOAs, sigmas and residuals (the ranges of :mod:`cwsearch.core.safeio`).
+
+    Every reading path (the strict one and any faster one) calls this after parsing, so the
+    plausibility rules live in one place.
+    """
+    lo, hi = _mjd_range(mjd_range)
+    bad = (mjd < lo) | (mjd > hi)
+    if bad.any():
+        row = _first_bad(bad)
+        hint = ""
+        if mjd_unit is not None and str(mjd_unit) not in ("d", "day"):
+            hint = f"; the column's unit is '{mjd_unit}', but an MJD is a date counted in days (unit: d)"
+        raise InputError(f"mjd {float(mjd[row - 1])!r} is outside the plausible range {lo:g}-{hi:g} "
+                         f"(widen it with --mjd-range LO HI){hint}", file=file, row=row, column="mjd")
+    smin, smax = SIGMA_RANGE
+    bad = (sigma < smin) | (sigma > smax)
+    if bad.any():
+        row = _first_bad(bad)
+        raise InputError(f"sigma {float(sigma[row - 1])!r} s is outside the plausible range {smin:g}-{smax:g} s "
+                         "(check the column's unit)", file=file, row=row, column="sigma")
+    size = np.abs(residual)
+    bad = (size > MAX_RESIDUAL_SECONDS) | (size > MAX_RESIDUAL_OVER_SIGMA * sigma)
+    if bad.any():
+        row = _first_bad(bad)
+        raise InputError(f"|residual| {float(size[row - 1])!r} s is implausible (at most {MAX_RESIDUAL_SECONDS:g} s "
+                         f"and {MAX_RESIDUAL_OVER_SIGMA:g} x sigma; check the column's unit)", file=file, row=row,
+                         column="residual")
+
+
+def _read_noise_table(file, noise, residual_data, root=None):
+    table = _read_table(file, root)
     _require_columns(table, _NOISE_COLUMNS, file)
     if len(table) == 0:
         return  # an empty noise table means: defaults for everyone
@@ -465,12 +663,12 @@ def dataset_files(path):
     """
     folder = Path(path)
     files = [PULSARS_FILE]
-    if (folder / NOISE_FILE).is_file():
+    if is_regular_file(folder / NOISE_FILE):
         files.append(NOISE_FILE)
     res_dir = folder / RESIDUALS_DIR
     if res_dir.is_dir():
         files += sorted(f"{RESIDUALS_DIR}/{p.name}" for p in res_dir.iterdir()
-                        if p.is_file() and p.suffix == ".ecsv" and not p.name.startswith("."))
+                        if is_regular_file(p) and p.suffix == ".ecsv" and not p.name.startswith("."))
     return files
 
 
@@ -483,10 +681,7 @@ def dataset_checksum(path) -> str:
     folder = Path(path)
     digest = hashlib.sha256()
     for rel in dataset_files(folder):
-        try:
-            data = (folder / rel).read_bytes()
-        except OSError as exc:
-            raise InputError(f"cannot read ({exc.strerror})", file=folder / rel) from None
+        data = read_input_bytes(folder / rel, folder)
         digest.update(rel.encode("utf-8") + b"\0" + str(len(data)).encode() + b"\0")
         digest.update(data)
     return digest.hexdigest()
@@ -603,6 +798,11 @@ def write_dataset(array, path, injection=None, *, overwrite=False) -> None:
             if not (target / PULSARS_FILE).is_file():
                 raise InputError(f"refusing to overwrite a folder that is not a dataset (no {PULSARS_FILE})",
                                  file=target)
+            foreign = _non_dataset_entries(target)
+            if foreign:
+                shown = ", ".join(foreign[:3]) + (" ..." if len(foreign) > 3 else "")
+                raise InputError(f"refusing to overwrite: the folder holds more than a dataset ({shown}); "
+                                 "move those files away or choose another folder", file=target)
         replace = True
     noise_table = _noise_table(array)
     try:
@@ -636,6 +836,23 @@ def write_dataset(array, path, injection=None, *, overwrite=False) -> None:
         raise
 
 
+def _non_dataset_entries(folder: Path) -> list:
+    """Entries of ``folder`` that are not part of a dataset (what ``--overwrite`` would destroy besides it).
+
+    A dataset holds only pulsars.ecsv, noise.ecsv, injection.json and residuals/ with ``*.ecsv`` files
+    (regular files, no symlinks).
+    """
+    allowed = {PULSARS_FILE, NOISE_FILE, INJECTION_FILE}
+    foreign = []
+    for entry in sorted(folder.iterdir()):
+        if entry.name == RESIDUALS_DIR and entry.is_dir() and not entry.is_symlink():
+            foreign += [f"{RESIDUALS_DIR}/{p.name}" for p in sorted(entry.iterdir())
+                        if p.is_symlink() or not p.is_file() or p.suffix != ".ecsv"]
+        elif entry.name not in allowed or entry.is_symlink() or not entry.is_file():
+            foreign.append(entry.name)
+    return foreign
+
+
 def _umask() -> int:
     mask = os.umask(0)
     os.umask(mask)
@@ -643,4 +860,4 @@ def _umask() -> int:
 
 
 __all__ = ["read_dataset", "write_dataset", "dataset_checksum", "dataset_files", "DatasetWarning",
-           "NAME_PATTERN"]
+           "NAME_PATTERN", "check_residual_values", "MAX_NAME_LENGTH"]

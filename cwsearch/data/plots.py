@@ -1,4 +1,5 @@
-"""Dataset overview plot for the report: pulsar sky positions and observing spans per backend."""
+"""Dataset plots for the report and the stages: pulsar sky positions and observing spans per backend;
+measured inter-pulsar correlations against the Hellings–Downs curve."""
 
 from __future__ import annotations
 
@@ -52,3 +53,39 @@ def dataset_overview(array, path, *, marks=None):
 
 
 __all__ = ["dataset_overview"]
+
+
+def correlation_plot(path, pairs, *, title=None):
+    """Measured inter-pulsar correlations against angular separation, with the Hellings–Downs curve.
+
+    ``pairs``: :class:`cwsearch.physics.correlated.PairCorrelations` (from
+    :func:`cwsearch.physics.correlated.pair_correlations`). Grey points: every pair (ρ ± σ);
+    black: inverse-variance weighted bins (equal pair counts) with their errors; line: the
+    Hellings & Downs (1983) curve; shaded: its expected weak-signal scatter per bin (± the
+    binned σ around the bin-averaged curve). Used by the scan stage and callable from the
+    noise stage and the report.
+    """
+    plt = pyplot()
+    fig, ax = plt.subplots(figsize=(7.2, 4.4))
+    deg = np.degrees(pairs.angle)
+    ax.errorbar(deg, pairs.rho, yerr=pairs.sigma, fmt=".", color="0.65", ms=3, lw=0.5, alpha=0.6,
+                label=f"pairs ({deg.size})")
+    b = pairs.bins
+    ax.fill_between(np.degrees(b["centre"]), b["expected"] - b["sigma"], b["expected"] + b["sigma"],
+                    color="tab:orange", alpha=0.25, label="expected scatter of the bins (weak signal)")
+    zeta = np.linspace(1e-3, np.pi, 400)
+    x = 0.5 * (1 - np.cos(zeta))
+    ax.plot(np.degrees(zeta), 0.5 - 0.25 * x + 1.5 * x * np.log(x), color="tab:orange", lw=1.6,
+            label="Hellings-Downs")
+    ax.errorbar(np.degrees(b["centre"]), b["rho"], yerr=b["sigma"], fmt="o", color="black", ms=5, capsize=3,
+                label="binned measurement")
+    ax.axhline(0.0, color="0.3", lw=0.6)
+    ax.set_xlim(0, 180)
+    spread = np.concatenate([b["rho"] - 3 * b["sigma"], b["rho"] + 3 * b["sigma"], [-0.4, 0.7]])
+    ax.set_ylim(max(spread.min(), -3.0), min(spread.max(), 3.0))
+    ax.set_xlabel("angular separation [deg]")
+    ax.set_ylabel(f"correlation (units of A² at log10 A = {pairs.log10_amplitude:.2f})")
+    ax.set_title(title or "inter-pulsar correlations of the residuals", fontsize=10)
+    ax.legend(fontsize=7, loc="upper right")
+    save_figure(fig, path)
+    return path

@@ -15,13 +15,13 @@ likelihood is exact. The engine algebra lives in
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from numba import njit, prange
 
 from ..physics import fstat, waveform
-from ..physics.correlated import ArrayWeighting, CommonProcess, _engine_with_residuals
+from ..physics.correlated import ArrayNoise, ArrayWeighting, CommonProcess, _engine_with_residuals, array_noise
 from .likelihood import (Likelihood, _PARALLEL_BASIS, _basis_parallel, _basis_serial, _grid_size, _gram_parallel,
                          _gram_serial, _projection_batch)
 
@@ -429,3 +429,70 @@ class CorrelatedLikelihood(Likelihood):
 
 __all__ = ["earth_coefficients", "correlated_terms", "mean_field_log_likelihood", "CorrelatedShapeCache",
            "CorrelatedLikelihood"]
+
+
+# ---------------------------------------------------------------- the run's likelihood
+def likelihood_for(array, noise, **kwargs) -> Likelihood:
+    """The follow-up likelihood for the run's noise model: :class:`CorrelatedLikelihood` when the
+    common process is correlated, else :class:`~cwsearch.inference.likelihood.Likelihood` on the
+    per-pulsar engine. ``noise``: :class:`~cwsearch.physics.noise.NoiseSettings` or the run's
+    :class:`~cwsearch.physics.correlated.ArrayNoise` (the engine choice is made there, once).
+    Keyword arguments as :class:`~cwsearch.inference.likelihood.Likelihood`."""
+    model = noise if isinstance(noise, ArrayNoise) else array_noise(array, noise)
+    if model.correlated:
+        kwargs.pop("shape_path", None)
+        like = CorrelatedLikelihood(array, model.weighting, **kwargs)
+    else:
+        like = Likelihood(array, model.engine, **kwargs)
+    like.noise_model = model
+    return like
+
+
+def other_background(settings):
+    """The background model a candidate's Bayes factor is compared against: the uncorrelated common
+    process for a Hellings–Downs run and vice versa; None without a common process."""
+    if settings is None or settings.common_log10_amplitude is None or settings.common_correlation == "none":
+        return None
+    other = "uncorrelated" if settings.common_correlation != "uncorrelated" else "hellings-downs"
+    return replace(settings, common_correlation=other)
+
+
+def reweighted_log_bayes_factor(log_bayes_factor, samples, log_likelihood, other, *, chunk=512,
+                                chain_ess=None):
+    """ln B under another noise model from one run's posterior, by importance reweighting.
+
+    With ln Λ the log likelihood ratio (signal + background versus that background alone) and
+    ``B = ∫ Λ π dθ``, ``B_other = B · E_post[Λ_other/Λ]`` over the run's posterior; the
+    weights ``w_i = Λ_other(θ_i)/Λ(θ_i)`` are evaluated at the posterior samples ``samples``
+    (sampler coordinates) with their T = 1 ``log_likelihood``, by ``other`` (a likelihood with a
+    ``batch`` method). Returns a dict: ``log_bayes_factor``, ``log_weight_mean``,
+    ``importance_ess`` (Kish, (Σw)²/Σw²), ``n_samples``, and ``error``: the standard error
+    of ln E[w] by the delta method with the smaller of the chain's effective sample size
+    ``chain_ess`` and n (common practice, no source), without the error of ln B itself.
+    An ESS of a few percent of n means the two posteriors barely overlap and the figure is
+    unreliable (run the follow-up with the other model instead).
+    """
+    samples = np.atleast_2d(np.asarray(samples, dtype=float))
+    log_likelihood = np.asarray(log_likelihood, dtype=float)
+    with fstat._blas_threads(1):
+        other_ll = np.concatenate([np.asarray(other.batch(samples[i:i + chunk]), dtype=float)
+                                   for i in range(0, samples.shape[0], chunk)])
+    lw = other_ll - log_likelihood
+    ok = np.isfinite(lw)
+    n = int(ok.sum())
+    if n == 0:
+        return {"log_bayes_factor": None, "log_weight_mean": None, "importance_ess": 0.0, "n_samples": 0,
+                "error": None}
+    lw = lw[ok]
+    top = float(lw.max())
+    w = np.exp(lw - top)
+    mean = float(w.mean())
+    ess = float(w.sum() ** 2 / np.sum(w * w))
+    n_eff = float(min(n, chain_ess)) if chain_ess else float(n)
+    error = float(np.std(w) / mean / np.sqrt(max(n_eff, 1.0)))
+    log_mean = top + float(np.log(mean))
+    return {"log_bayes_factor": float(log_bayes_factor) + log_mean if log_bayes_factor is not None else None,
+            "log_weight_mean": log_mean, "importance_ess": ess, "n_samples": n, "error": error}
+
+
+__all__ += ["likelihood_for", "other_background", "reweighted_log_bayes_factor"]

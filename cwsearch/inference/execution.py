@@ -7,7 +7,8 @@ upper limits: chunks of pixel × frequency rows) and hands them to a
 * ``workers=1``: in this process, one after the other;
 * ``workers=N`` (default: the CPUs this process may use): N local worker
   processes (started by a fork server, so they never inherit threads of
-  the main process);
+  the main process); each watches the main process and exits within a
+  second of its death, so a ``kill -9`` of cwsearch leaves no orphans;
 * ``scheduler="tcp://host:8786"``: the tasks go to an existing
   ``dask.distributed`` cluster.
 
@@ -33,6 +34,8 @@ from __future__ import annotations
 
 import multiprocessing
 import os
+import threading
+import time
 from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, wait
 from concurrent.futures.process import BrokenProcessPool
 
@@ -135,7 +138,8 @@ class TaskRunner:
 
     def _new_pool(self):
         method = "forkserver" if "forkserver" in multiprocessing.get_all_start_methods() else "spawn"
-        return ProcessPoolExecutor(max_workers=self.workers, mp_context=multiprocessing.get_context(method))
+        return ProcessPoolExecutor(max_workers=self.workers, mp_context=multiprocessing.get_context(method),
+                                   initializer=_watch_parent, initargs=(os.getpid(),))
 
     def _map_processes(self, function, tasks, weights, on_done):
         results = [None] * len(tasks)
@@ -201,6 +205,39 @@ class TaskRunner:
                 continue
             raise error
         return results
+
+
+#: how often a local worker checks that the process that started it is still there [s]
+WATCHDOG_INTERVAL = 0.5
+
+
+def _watch_parent(parent_pid: int) -> None:
+    """Worker-process initializer: a daemon thread ends this worker as soon as the cwsearch process that
+    made the pool is gone (``kill -9`` of the main process gives it no chance to stop its workers).
+
+    The worker's own parent is the fork server, which exits when the main process does; the watchdog
+    checks both the main process's pid and a change of the worker's parent (reparenting to init),
+    so a reused pid cannot keep an orphan alive.
+    """
+    first_parent = os.getppid()
+
+    def watch():
+        while True:
+            time.sleep(WATCHDOG_INTERVAL)
+            if os.getppid() != first_parent or not _alive(parent_pid):
+                os._exit(1)
+
+    threading.Thread(target=watch, name="cwsearch-parent-watchdog", daemon=True).start()
+
+
+def _alive(pid: int) -> bool:
+    try:
+        os.kill(pid, 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
 
 
 def _worker_died(error) -> bool:

@@ -16,15 +16,20 @@
 * **Stopping** (:func:`_converged`). All of: the ladder adaptation is over
   and the burn-in (the first quarter of the run, at least the adaptation)
   covers it; the chain after burn-in is at least ``min_chain_taus`` (50)
-  integrated autocorrelation times τ long, τ the worst parameter's
-  (:func:`integrated_time`, guidance of the emcee documentation, Foreman-Mackey
-  et al. 2013); the effective sample size ``walkers × length / τ`` reaches
-  the target; τ has stopped changing (relative change below
-  ``tau_tolerance`` = 1 % per check, averaged over the last ``tau_checks``
-  checks); and the T=1 log-likelihood after burn-in shows no drift between
-  its two halves (:func:`stationary`). An iteration or wall-time cap stops
-  the run as well, but is reported as such (``stopped_by``) with a warning,
-  never as converged.
+  autocorrelation times τ long (guidance of the emcee documentation); the
+  effective sample size ``walkers × length / τ`` reaches the target; τ has
+  stopped changing (relative change below ``tau_tolerance`` = 1 % per check,
+  over the last quarter of the checks and at least ``tau_checks``); the
+  T=1 log-likelihood and every parameter show no drift between the two
+  halves of the chain (:func:`stationary`, :func:`drift_free`). τ is, per
+  parameter, the worse of the walker-averaged estimate
+  (:func:`integrated_time`, automatic window; Sokal 1997, Goodman & Weare
+  2010) and the ensemble estimate (:func:`ensemble_time`), which also sees
+  walkers moving together (temperature swaps make each walker's own series
+  decorrelate fast while the ensemble as a whole moves slowly); the stopping
+  rule uses the worst parameter. An iteration or wall-time cap stops the run
+  as well, but is reported as such (``stopped_by``) with a warning, never as
+  converged.
 * **Ladder.** ptemcee adapts the temperatures during the adaptation phase
   towards equal swap acceptance of adjacent pairs (Vousden, Farr & Mandel
   2016). At its end, every adjacent pair whose swap acceptance (over the
@@ -54,7 +59,9 @@ True
 from __future__ import annotations
 
 import json
+import os
 import time
+import zipfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -63,6 +70,7 @@ from scipy.special import erfcinv
 
 from ..core import fileio  # fileio.atomic_path is looked up at each call (the fault tests replace it)
 from ..core.errors import InputError
+from ..core.safeio import open_regular
 from ..core.progress import progress as progress_bar
 
 np = numpy
@@ -162,6 +170,24 @@ def integrated_time(chain, window_factor=5.0):
         m = int(np.argmax(ok)) if ok.any() else n - 1
         out[j] = max(taus[m, j], 1.0)
     return out
+
+
+def ensemble_time(chain, window_factor=5.0):
+    """Autocorrelation time [iterations] of each parameter including the correlation *between*
+    walkers: ``walkers · Var(x̄) / Var(x) · τ(x̄)``, x̄(t) the walker mean at each iteration and
+    τ(x̄) its integrated time (:func:`integrated_time` of that one series). Equal to τ for
+    independent walkers; larger when the ensemble moves collectively (for example the share of
+    walkers in each of two modes, which only temperature swaps change), which the walker-averaged
+    autocorrelation of :func:`integrated_time` does not see. Its Monte-Carlo error is that of a
+    single chain (large: about ``sqrt(4 window_factor τ / N)`` relative)."""
+    x = np.asarray(chain, dtype=float)
+    if x.shape[0] < 4:
+        return np.full(x.shape[2], np.inf)
+    mean = x.mean(axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ratio = x.shape[1] * mean.var(axis=0) / x.reshape(-1, x.shape[2]).var(axis=0)
+    tau = integrated_time(mean[:, None, :], window_factor)
+    return np.where(np.isfinite(ratio), ratio, 1.0) * tau
 
 
 def _batch_stderr(series, n_batches=20):
@@ -331,18 +357,40 @@ def stationary(log_likelihood, z_max=3.0):
     return bool(abs(a.mean() - b.mean()) <= z_max * np.sqrt(se2))
 
 
-def tau_change(history, checks):
+def drift_free(chain, z_max=3.0):
+    """Whether no parameter of the chain (iterations, walkers, dim) drifts: for each, the means of the
+    first and second halves agree within ``z_max`` standard errors, each ``sqrt(var · τ / size)`` with
+    τ the worse of :func:`integrated_time` and :func:`ensemble_time` of that half (split-chain Geweke
+    check as in :func:`stationary`, from memory). Catches an ensemble whose walkers share a slow
+    collective fluctuation, such as the split between two modes, before its τ shows it."""
+    x = np.asarray(chain, dtype=float)
+    half = x.shape[0] // 2
+    if half < 4:
+        return False
+    a, b = x[:half], x[x.shape[0] - half:]
+    tau_a = np.maximum(integrated_time(a), ensemble_time(a))
+    tau_b = np.maximum(integrated_time(b), ensemble_time(b))
+    size = a.shape[0] * a.shape[1]
+    se2 = a.reshape(-1, x.shape[2]).var(axis=0) * tau_a / size + b.reshape(-1, x.shape[2]).var(axis=0) * tau_b / size
+    with np.errstate(invalid="ignore"):
+        ok = np.abs(a.mean(axis=(0, 1)) - b.mean(axis=(0, 1))) <= z_max * np.sqrt(se2)
+    return bool(np.all(ok | (se2 == 0)))
+
+
+def tau_change(history, checks, grow_only=False):
     """Relative change of τ per check over the last ``checks`` checks: ``max_j |τ_j(now) −
-    τ_j(checks ago)| / (checks · τ_j(now))``; inf with fewer checks. ``history`` is a list of τ arrays."""
+    τ_j(checks ago)| / (checks · τ_j(now))`` (with ``grow_only``: the growth, ``τ_j(now) − τ_j(then)``,
+    not its absolute value); inf with fewer checks. ``history`` is a list of τ arrays."""
     if len(history) < checks + 1:
         return float("inf")
     now, then = np.asarray(history[-1], dtype=float), np.asarray(history[-1 - checks], dtype=float)
     if not (np.all(np.isfinite(now)) and np.all(np.isfinite(then))):
         return float("inf")
-    return float(np.max(np.abs(now - then) / now) / checks)
+    diff = now - then if grow_only else np.abs(now - then)
+    return float(np.max(diff / now) / checks)
 
 
-def _converged(n, burn, adapt_end, tau, ess, settings, log_likelihood, tau_history):
+def _converged(n, burn, adapt_end, tau, ess, settings, log_likelihood, tau_history, chain=None):
     """The stopping rule (see the module docstring): ``(True, "")`` when met, else ``(False, what is
     missing)``. The parts, in order: (1) past the ladder adaptation, which the burn-in covers (samples
     from an adapting, not yet stationary ensemble do not count); (2) the chain after burn-in is at least
@@ -359,26 +407,36 @@ def _converged(n, burn, adapt_end, tau, ess, settings, log_likelihood, tau_histo
         return False, f"chain {have:.0f}/{settings.min_chain_taus:g} tau"
     if ess < settings.ess:
         return False, "ESS below target"
-    change = tau_change(tau_history, settings.tau_checks)
+    # history rows: walker-averaged τ, then the τ used (the worse of walker-averaged and ensemble). The
+    # change is taken over the last quarter of the checks (at least `tau_checks`): the ensemble part
+    # scatters like a single chain, and over a longer baseline its scatter per check is smaller while a
+    # real growth of τ with the chain stays visible
+    worst_part = [np.asarray(h)[len(tau):] for h in tau_history]
+    change = tau_change(worst_part, max(settings.tau_checks, len(worst_part) // 4))
     if not change < settings.tau_tolerance:
         return False, "tau still changing" + (f" ({100 * change:.1f} %/check)" if np.isfinite(change) else "")
     if not stationary(log_likelihood[burn:n]):
         return False, "not yet stationary"
+    if chain is not None and not drift_free(chain[burn:n]):
+        return False, "parameters drifting"
     return True, ""
 
 
 def _diagnostics(chain_t1, mean_logl, n, burn, betas, ladder_from=0):
+    """(τ, walker-averaged τ, ESS, ln Z, its error) of the T=1 chain after burn-in; τ per parameter is
+    the worse of :func:`integrated_time` and :func:`ensemble_time`."""
     post = chain_t1[burn:n]
     if post.shape[0] < 8:
-        return np.full(chain_t1.shape[2], np.inf), 0.0, np.nan, np.inf
-    tau = integrated_time(post)
+        return np.full(chain_t1.shape[2], np.inf), np.full(chain_t1.shape[2], np.inf), 0.0, np.nan, np.inf
+    tau_walkers = integrated_time(post)
+    tau = np.maximum(tau_walkers, ensemble_time(post))    # the worse of the two, per parameter
     ess = post.shape[0] * post.shape[1] / float(np.max(tau))
     rows = mean_logl[max(burn, ladder_from):n]      # only rows with the final ladder
     if rows.shape[0] < 2:
-        return tau, ess, np.nan, np.inf
+        return tau, tau_walkers, ess, np.nan, np.inf
     err = _batch_stderr(rows)
     ln_z, ln_z_err = thermodynamic_log_evidence(betas, rows.mean(axis=0), err)
-    return tau, ess, ln_z, ln_z_err
+    return tau, tau_walkers, ess, ln_z, ln_z_err
 
 
 def extended_ladder(betas, acceptance, threshold, limit, target=0.25):
@@ -477,37 +535,43 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
     tau_history = []
     sampler = make_sampler(betas)
     if resume and checkpoint is not None and _exists(checkpoint):
-        with np.load(checkpoint, allow_pickle=False) as ck:
-            if "fingerprint" not in ck.files or str(ck["fingerprint"]) != ident:
-                raise InputError("the checkpoint was made with another model or other sampler settings; "
-                                 "run without --resume to start afresh", file=checkpoint)
-            n = int(ck["iterations"])
-            capacity = max(capacity, 2 * n)
-            betas = np.array(ck["betas"])
-            ntemps = betas.size
-            chain = _resized(ck["chain"], capacity)
-            logl_t1 = _resized(ck["log_likelihood"], capacity)
-            logp_t1 = _resized(ck["log_prior"], capacity)
-            mean_logl = _resized(ck["mean_log_likelihood"], capacity)
-            ratios = _resized(ck["swap_ratios"], capacity, fill=np.nan)
-            sampler = make_sampler(betas)
-            sampler._p0 = np.array(ck["positions"])
-            sampler._logposterior0 = np.array(ck["log_posterior"])
-            sampler._loglikelihood0 = np.array(ck["log_likelihood_all"])
-            sampler._betas = betas.copy()
-            sampler.nswap = np.array(ck["nswap"])
-            sampler.nswap_accepted = np.array(ck["nswap_accepted"])
-            sampler.nprop = np.array(ck["nprop"])
-            sampler.nprop_accepted = np.array(ck["nprop_accepted"])
-            random.set_state(("MT19937", np.array(ck["rng_key"], dtype=np.uint32), int(ck["rng_pos"]),
-                              int(ck["rng_has_gauss"]), float(ck["rng_gauss"])))
-            elapsed_before = float(ck["wall_time"])
-            pool.evaluations = int(ck["evaluations"])
-            adapt_start, adapt_end = int(ck["adapt_start"]), int(ck["adapt_end"])
-            rounds, ladder_done, ladder_from = int(ck["ladder_rounds"]), bool(ck["ladder_done"]), int(ck["ladder_from"])
-            ladder_history = json.loads(str(ck["ladder_history"]))
-            ladder_note = str(ck["ladder_note"])
-            tau_history = [row for row in np.array(ck["tau_history"])]
+        try:
+            with _checkpoint_file(checkpoint) as fh, np.load(fh, allow_pickle=False) as ck:
+                if "fingerprint" not in ck.files or str(ck["fingerprint"]) != ident:
+                    raise InputError("the checkpoint was made with another model or other sampler settings; "
+                                     "run without --resume to start afresh", file=checkpoint)
+                n = int(ck["iterations"])
+                capacity = max(capacity, 2 * n)
+                betas = np.array(ck["betas"])
+                ntemps = betas.size
+                chain = _resized(ck["chain"], capacity)
+                logl_t1 = _resized(ck["log_likelihood"], capacity)
+                logp_t1 = _resized(ck["log_prior"], capacity)
+                mean_logl = _resized(ck["mean_log_likelihood"], capacity)
+                ratios = _resized(ck["swap_ratios"], capacity, fill=np.nan)
+                sampler = make_sampler(betas)
+                sampler._p0 = np.array(ck["positions"])
+                sampler._logposterior0 = np.array(ck["log_posterior"])
+                sampler._loglikelihood0 = np.array(ck["log_likelihood_all"])
+                sampler._betas = betas.copy()
+                sampler.nswap = np.array(ck["nswap"])
+                sampler.nswap_accepted = np.array(ck["nswap_accepted"])
+                sampler.nprop = np.array(ck["nprop"])
+                sampler.nprop_accepted = np.array(ck["nprop_accepted"])
+                random.set_state(("MT19937", np.array(ck["rng_key"], dtype=np.uint32), int(ck["rng_pos"]),
+                                  int(ck["rng_has_gauss"]), float(ck["rng_gauss"])))
+                elapsed_before = float(ck["wall_time"])
+                pool.evaluations = int(ck["evaluations"])
+                adapt_start, adapt_end = int(ck["adapt_start"]), int(ck["adapt_end"])
+                rounds, ladder_done, ladder_from = int(ck["ladder_rounds"]), bool(ck["ladder_done"]), int(ck["ladder_from"])
+                ladder_history = json.loads(str(ck["ladder_history"]))
+                ladder_note = str(ck["ladder_note"])
+                tau_history = [row for row in np.array(ck["tau_history"])]
+        except InputError:
+            raise
+        except (OSError, EOFError, ValueError, KeyError, TypeError, IndexError, zipfile.BadZipFile) as exc:
+            raise InputError(f"checkpoint damaged ({type(exc).__name__}); run again without --resume to start "
+                             "afresh", file=checkpoint) from None
         p0 = None
 
     def state():
@@ -524,7 +588,7 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
                 "adapt_end": np.array(adapt_end), "ladder_rounds": np.array(rounds),
                 "ladder_done": np.array(ladder_done), "ladder_from": np.array(ladder_from),
                 "ladder_history": np.array(json.dumps(ladder_history)), "ladder_note": np.array(ladder_note),
-                "tau_history": np.array(tau_history, dtype=float).reshape(len(tau_history), dim)}
+                "tau_history": np.array(tau_history, dtype=float).reshape(len(tau_history), 2 * dim)}
 
     def pair_acceptance(lo, hi):
         rows = ratios[max(lo, 0):hi]
@@ -602,10 +666,10 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
                 _save_checkpoint(checkpoint, state())
             if n % settings.check_every == 0 or n >= settings.max_iterations:
                 burn = _burn_in(n, adapt_end)
-                tau, ess, _, _ = _diagnostics(chain, mean_logl, n, burn, sampler.betas, ladder_from)
+                tau, tau_walkers, ess, _, _ = _diagnostics(chain, mean_logl, n, burn, sampler.betas, ladder_from)
                 if n > adapt_end:
-                    tau_history.append(np.array(tau, dtype=float))
-                done, waiting = _converged(n, burn, adapt_end, tau, ess, settings, logl_t1, tau_history)
+                    tau_history.append(np.concatenate([tau_walkers, tau]).astype(float))
+                done, waiting = _converged(n, burn, adapt_end, tau, ess, settings, logl_t1, tau_history, chain)
                 acc = pair_acceptance(max(adapt_end, ladder_from) if n > adapt_end else n - settings.check_every, n)
                 swap = f"{np.nanmin(acc):.2f}" if acc.size and np.isfinite(acc).any() else "-"
                 bar.set_postfix_str(f"ESS {ess:.0f}/{settings.ess:.0f}  min swap {swap}  T {ntemps}  "
@@ -616,11 +680,11 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
     if checkpoint is not None and n > 0:
         _save_checkpoint(checkpoint, state())
     burn = _burn_in(n, adapt_end)
-    tau, ess, ln_z, ln_z_err = _diagnostics(chain, mean_logl, n, burn, sampler.betas, ladder_from)
+    tau, _, ess, ln_z, ln_z_err = _diagnostics(chain, mean_logl, n, burn, sampler.betas, ladder_from)
     converged = stopped_by == "converged"
     if not converged and n > 0:
         # the rule as it stands at the end (a cap can fall between checks)
-        done, waiting = _converged(n, burn, adapt_end, tau, ess, settings, logl_t1, tau_history)
+        done, waiting = _converged(n, burn, adapt_end, tau, ess, settings, logl_t1, tau_history, chain)
     swap = pair_acceptance(max(adapt_end, ladder_from) if n > adapt_end else ladder_from, n)
     warnings = []
     if not converged:
@@ -655,8 +719,15 @@ def _unused(x):  # ptemcee wants per-walker functions; the vectorised pool never
 
 
 def _exists(path):
-    return Path(path).exists()
+    return os.path.lexists(path)
 
 
-__all__ = ["load_ptemcee", "VectorisedPool", "integrated_time", "stationary", "tau_change", "extended_ladder",
+def _checkpoint_file(path):
+    """The checkpoint opened through :mod:`cwsearch.core.safeio` (a regular file inside its folder, size
+    cap): a FIFO, a device or a symlink elsewhere is refused before numpy reads anything."""
+    fh, _ = open_regular(path, Path(path).parent, what="checkpoint")
+    return fh
+
+
+__all__ = ["load_ptemcee", "VectorisedPool", "integrated_time", "ensemble_time", "stationary", "drift_free", "tau_change", "extended_ladder",
            "thermodynamic_log_evidence", "SamplerSettings", "SamplerResult", "run_sampler"]

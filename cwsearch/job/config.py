@@ -39,6 +39,7 @@ from __future__ import annotations
 
 import dataclasses
 import math
+import os
 import re
 import tomllib
 import types
@@ -47,6 +48,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..core.errors import InputError
+from ..core.safeio import read_input_text
 from ..core.fileio import write_text_atomic
 from ..physics.noise import NoiseSettings
 from ..stages import BY_NAME, STAGES as REGISTRY
@@ -58,13 +60,16 @@ STAGES = tuple(STAGE_OPTIONS)
 #: options the pipeline fills in itself (never run-file keys), per stage
 PIPELINE_SET = {
     "noise": frozenset(),
-    "scan": frozenset(),
+    "scan": frozenset({"workers", "scheduler"}),  # from [engine]
     "followup": frozenset({"candidate", "top", "frequency", "ra", "dec", "all_sky", "resume"}),
     "hosts": frozenset({"candidate"}),
     "limits": frozenset({"workers", "scheduler"}),  # from [engine]
 }
 
 ENGINE_KINDS = ("local", "dask")
+
+#: largest run file read [bytes] (a run file is a few hundred bytes; this refuses a device or a data file)
+RUN_FILE_MAX_BYTES = 1 << 20
 
 _PIPELINE_HINTS = {
     "workers": "set [engine] workers",
@@ -429,12 +434,9 @@ def load_config(path) -> RunConfig:
     a bad engine, or an option value that a stage rejects.
     """
     path = Path(path)
-    if not path.is_file():
+    if not os.path.lexists(path):
         raise InputError("run file not found", file=path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
-        raise InputError(f"cannot read the run file ({exc})", file=path) from None
+    text = read_input_text(path, what="run file", max_bytes=RUN_FILE_MAX_BYTES)
     return parse_config(text, path=path)
 
 
@@ -470,6 +472,9 @@ def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunC
         if key.name not in values and not key.required:
             values[key.name] = _copy(key.default)
     stages = tuple(values["stages"])
+    if not stages:
+        fail(f"names no stage; list at least one of {', '.join(STAGES)} (or leave the key out for all)",
+             None, "stages")
     for s in stages:
         if s not in STAGES:
             fail(f"unknown stage {s!r} (choose from {', '.join(STAGES)})", None, "stages")

@@ -488,7 +488,8 @@ def _run_followup(ctx, stage):
         for row, seed in zip(rows, seeds):
             scratch = ctx.stage_dir / f".work_{row + 1}"
             (scratch / "scan").mkdir(parents=True, exist_ok=True)
-            shutil.copy2(ctx.run_dir / "scan" / "candidates.ecsv", scratch / "scan" / "candidates.ecsv")
+            for name in ("candidates.ecsv", "scan_summary.json"):
+                shutil.copy2(ctx.run_dir / "scan" / name, scratch / "scan" / name)
             options = replace(ctx.options, top=1, candidate=row + 1, resume=ctx.resuming)
             result = stage.run(ctx.model_array, scratch, options, noise=ctx.noise, seed=int(seed),
                                       progress=ctx.progress)

@@ -18,12 +18,15 @@ True
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 import os
 import platform
+import shutil
 import socket
 import sys
+import time
 from datetime import datetime, timezone
 from importlib import metadata
 from pathlib import Path
@@ -33,6 +36,8 @@ from astropy.table import Table
 
 from .. import __version__
 from ..core.errors import InputError
+from ..core.fileio import write_json_atomic
+from ..core.safeio import escape_text, read_input_text
 from .config import STAGES
 
 STAGE_FILE = ".stage.json"
@@ -113,11 +118,8 @@ def product_hash(folder, patterns) -> str:
 
 def read_record(stage_dir) -> dict | None:
     """The stage record ``.stage.json`` of a stage folder, or None."""
-    path = Path(stage_dir) / STAGE_FILE
-    try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None
+    record = read_json(Path(stage_dir) / STAGE_FILE, stage_dir)
+    return record if isinstance(record, dict) else None
 
 
 def record_is_current(stage_dir, input_hash) -> bool:
@@ -149,30 +151,44 @@ def cpu_count() -> int:
         return os.cpu_count() or 1
 
 
-class RunLock:
-    """Keeps two runs out of the same folder at once (``RUN_DIR/.lock`` with the owner's pid).
+#: a lock naming ANOTHER host is trusted this long [s] (its pid cannot be checked from here); older, it is
+#: taken over. A lock naming this host is stale as soon as its process is gone.
+LOCK_STALE_SECONDS = 24 * 3600
 
-    A lock left by a killed run (its process is gone) is taken over.
+
+class RunLock:
+    """Keeps two runs out of the same folder at once (``RUN_DIR/.lock``: the owner's host name and pid).
+
+    Rule for shared file systems (docs/design.md §11): a lock written on
+    this host is stale once its process is gone (a killed run) and is taken
+    over. A lock naming another host is **not** stale: this host cannot see
+    that process, so the folder is refused until the lock is older than
+    :data:`LOCK_STALE_SECONDS` (24 h) or removed by hand (``rm RUN_DIR/.lock``
+    once that run is known to be dead). An unreadable lock (empty, garbled)
+    counts as written on this host by a dead process only when it is older
+    than a minute (a lock being written right now is left alone).
+
+    Once the lock is held, leftover temporary files of interrupted writes
+    (hidden ``.NAME.XXXX.part`` files and folders anywhere in the run folder)
+    are removed: no other process can be writing them.
     """
 
-    def __init__(self, run_dir):
+    def __init__(self, run_dir, *, clean=True):
         self.path = Path(run_dir) / ".lock"
         self.held = False
+        self.clean = clean
 
     def __enter__(self):
         try:
             self.path.parent.mkdir(parents=True, exist_ok=True)
         except OSError as exc:  # read-only file system, no permission, disk full
             raise InputError(f"cannot write here ({exc.strerror})", file=self.path.parent) from None
-        for _ in range(2):
+        for _ in range(3):
             try:
                 fd = os.open(self.path, os.O_CREAT | os.O_EXCL | os.O_WRONLY, 0o644)
             except FileExistsError:
-                owner = self._owner()
-                if owner and owner[0] == socket.gethostname() and _pid_alive(owner[1]):
-                    raise InputError(f"another cwsearch run (pid {owner[1]}) is using this run folder; "
-                                     "wait for it or choose another folder", file=self.path.parent) from None
-                self.path.unlink(missing_ok=True)  # stale lock of a killed run
+                self._refuse_unless_stale()
+                self.path.unlink(missing_ok=True)  # stale lock
                 continue
             except OSError as exc:
                 raise InputError(f"cannot write here ({exc.strerror})", file=self.path.parent) from None
@@ -183,14 +199,40 @@ class RunLock:
                 self.path.unlink(missing_ok=True)
                 raise InputError(f"cannot write ({exc.strerror})", file=self.path) from None
             self.held = True
+            if self.clean:
+                clean_partial_files(self.path.parent)
             return self
         raise InputError("cannot lock the run folder", file=self.path.parent)
+
+    def _refuse_unless_stale(self):
+        owner = self._owner()
+        try:
+            age = time.time() - os.lstat(self.path).st_mtime
+        except OSError:
+            return  # gone meanwhile
+        here = socket.gethostname()
+        if owner is None:
+            if age < 60:
+                raise InputError("another cwsearch run is starting in this run folder (its lock is being "
+                                 "written); wait for it or choose another folder", file=self.path.parent)
+            return
+        host, pid = owner
+        if host == here:
+            if _pid_alive(pid):
+                raise InputError(f"another cwsearch run (pid {pid}) is using this run folder; "
+                                 "wait for it or choose another folder", file=self.path.parent)
+            return
+        if age < LOCK_STALE_SECONDS:
+            raise InputError(f"another cwsearch run (pid {pid} on host {escape_text(host)}, lock written "
+                             f"{age / 3600:.1f} h ago) is using this run folder; a lock from another host is "
+                             f"trusted for {LOCK_STALE_SECONDS // 3600} h. If that run is dead, remove "
+                             f"{self.path} by hand", file=self.path.parent)
 
     def _owner(self):
         try:
             host, pid = self.path.read_text().split()
             return host, int(pid)
-        except (OSError, ValueError):
+        except (OSError, ValueError, UnicodeDecodeError):
             return None
 
     def __exit__(self, *exc):
@@ -198,6 +240,65 @@ class RunLock:
             self.path.unlink(missing_ok=True)
             self.held = False
         return False
+
+
+def clean_partial_files(run_dir) -> list:
+    """Remove the temporaries of interrupted atomic writes (hidden ``*.part`` files and folders) under
+    ``run_dir``; only call it while holding the run folder's lock. Returns what was removed."""
+    removed = []
+    root = Path(run_dir)
+    if not root.is_dir():
+        return removed
+    for path in sorted(root.rglob(".*.part"), key=lambda p: len(p.parts), reverse=True):
+        try:
+            if path.is_dir() and not path.is_symlink():
+                shutil.rmtree(path)
+            else:
+                path.unlink()
+            removed.append(path)
+        except OSError:
+            pass  # e.g. a read-only folder: nothing is written there either
+    return removed
+
+
+@contextlib.contextmanager
+def stage_guard(run_dir, checksum=None, *, dataset_record=None):
+    """The run-folder guard of a stage command (``cwsearch scan/followup/limits/hosts``), as the pipeline's.
+
+    * the lock (:class:`RunLock`, with its rule for other hosts) and the clean-up of ``.part`` files;
+    * the dataset check: a run folder whose ``dataset.json`` or ``provenance.json`` records another
+      dataset checksum is refused (its results belong to another dataset);
+    * on success, when no dataset was recorded yet, ``dataset_record()`` (a dict holding ``checksum``)
+      is written to ``dataset.json``;
+    * a run folder this guard created and left empty (the stage failed early) is removed again.
+    """
+    run_dir = Path(run_dir)
+    created = not os.path.lexists(run_dir)
+    recorded = recorded_checksum(run_dir)
+    if checksum is not None and recorded is not None and recorded != checksum:
+        raise InputError(f"this run folder holds results of another dataset (its dataset.json records checksum "
+                         f"{recorded[:12]}..., this dataset has {checksum[:12]}...); choose another --out, or "
+                         "give the dataset the folder was made from", file=run_dir)
+    try:
+        with RunLock(run_dir):
+            yield
+            if checksum is not None and recorded is None and dataset_record is not None:
+                write_json_atomic(run_dir / "dataset.json", dataset_record())
+    finally:
+        if created:
+            try:
+                run_dir.rmdir()  # only if empty
+            except OSError:
+                pass
+
+
+def recorded_checksum(run_dir):
+    """The dataset checksum a run folder records (``dataset.json`` or ``provenance.json``), or None."""
+    for name, key in (("dataset.json", "checksum"), ("provenance.json", "dataset_checksum")):
+        data = read_json(Path(run_dir) / name)
+        if isinstance(data, dict) and isinstance(data.get(key), str):
+            return data[key]
+    return None
 
 
 def _pid_alive(pid: int) -> bool:
@@ -212,11 +313,17 @@ def _pid_alive(pid: int) -> bool:
     return True
 
 
-def read_json(path):
+def read_json(path, root=None):
+    """The JSON content of a run-folder file, or None if it is missing, not a regular file, too big or
+    not JSON (read through :mod:`cwsearch.core.safeio`)."""
     try:
-        return json.loads(Path(path).read_text(encoding="utf-8"))
-    except (OSError, ValueError):
+        return json.loads(read_input_text(path, root, max_bytes=JSON_MAX_BYTES))
+    except (InputError, ValueError, RecursionError):
         return None
+
+
+#: largest JSON file of a run folder read [bytes]
+JSON_MAX_BYTES = 64 << 20
 
 
 def provenance_record(config, checksum, started, previous=None) -> dict:
@@ -245,14 +352,18 @@ def provenance_record(config, checksum, started, previous=None) -> dict:
 
 
 def read_table(path):
-    if not Path(path).is_file():
+    """An ECSV table of a run folder, or None if it is missing, not a regular file or unreadable."""
+    try:
+        text = read_input_text(path)
+    except InputError:
         return None
     try:
-        return Table.read(path, format="ascii.ecsv")
+        return Table.read(text if text.endswith("\n") else text + "\n", format="ascii.ecsv")
     except Exception:
         return None
 
 
 __all__ = ["STAGE_FILE", "DONE", "PACKAGES", "stage_seed", "canonical_hash", "file_checksum", "folder_hash",
            "product_hash", "read_record", "record_is_current", "read_json", "read_table", "package_versions", "RunLock",
-           "json_default", "utc_now", "cpu_count", "provenance_record"]
+           "json_default", "utc_now", "cpu_count", "provenance_record", "LOCK_STALE_SECONDS", "clean_partial_files",
+           "stage_guard", "recorded_checksum", "JSON_MAX_BYTES"]

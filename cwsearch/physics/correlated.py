@@ -75,7 +75,7 @@ True
 from __future__ import annotations
 
 import copy
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 from numba import njit, prange
@@ -83,7 +83,8 @@ from scipy.linalg import cho_solve, lapack, solve_triangular
 
 from . import fstat
 from .linalg import factor4, quad4
-from .noise import NoiseSettings, NoiseWeighting, fourier_basis, fourier_frequencies, hellings_downs, \
+from .simulate import postfit, simulate_residuals
+from .noise import NoiseSettings, NoiseWeighting, common_components, fourier_basis, fourier_frequencies, hellings_downs, \
     powerlaw_variance
 
 CORRELATION_KINDS = ("hellings-downs", "uncorrelated", "monopole", "dipole")
@@ -647,3 +648,371 @@ def correlated_fe(weighting: ArrayWeighting, frequencies, fplus, fcross, **kwarg
 
 __all__ = ["CORRELATION_KINDS", "correlation_matrix", "correlation_factor", "CommonProcess", "ArrayWeighting",
            "correlated_network", "fe_sky_correlated", "fp_correlated", "correlated_fe"]
+
+
+# ---------------------------------------------------------------- the one engine choice
+#: values of ``NoiseSettings.common_correlation`` (CLI ``--common-correlation``, run file ``[noise]``)
+COMMON_CORRELATIONS = ("hellings-downs", "uncorrelated", "none")
+
+
+def fp_moment_matched(proj: fstat.Projections, corrections=None):
+    """Scaled χ² approximation ``2Fp ≈ c·χ²(ν)`` of the noise distribution of Fp, per frequency.
+
+    2Fp = xᵀ A⁻¹ x with x the stacked (X_p, Y_p) of all pulsars (covariance Σ: diagonal blocks
+    A_p = Z_p − W_pp, off-diagonal −W_pq) and A = blockdiag(A_p). Its exact distribution is a
+    weighted sum of χ²(1) with the eigenvalues of A⁻¹Σ as weights; matching the mean
+    ``tr(A⁻¹Σ)`` and variance ``2 tr((A⁻¹Σ)²)`` with ``c·χ²(ν)`` (Satterthwaite 1946,
+    Biometrics Bull. 2, 110) gives ``ν = tr²/tr₂`` and ``c = tr/ν``. Without cross-pulsar
+    terms (``corrections`` None) ``c = 1`` and ``ν`` is :func:`cwsearch.physics.fstat.fp_degrees_of_freedom`,
+    the exact χ²(2N) law (Ellis, Siemens & Creighton 2012). Returns ``(ν (F,), c (F,))``.
+    """
+    dof = fstat.fp_degrees_of_freedom(proj).astype(float)
+    if corrections is None:
+        return dof, np.ones_like(dof)
+    n_psr = proj.z.shape[0]
+    idx = np.arange(n_psr)
+    z = proj.z.copy()                                            # (P, F, 3)
+    z[..., 0] -= corrections[:, 0, idx, idx].T
+    z[..., 1] -= corrections[:, 1, idx, idx].T
+    z[..., 2] -= corrections[:, 3, idx, idx].T
+    rank = fstat._z_rank(z)
+    zss, zsc, zcc = z[..., 0], z[..., 1], z[..., 2]
+    det = np.where(rank == 2, zss * zcc - zsc**2, 1.0)
+    # A_p⁻¹ (pseudo-inverse on rank 1), shape (F, P, 2, 2)
+    inv = np.zeros(z.shape[:2] + (2, 2))
+    full = rank == 2
+    inv[..., 0, 0] = np.where(full, zcc / det, 0.0)
+    inv[..., 1, 1] = np.where(full, zss / det, 0.0)
+    inv[..., 0, 1] = inv[..., 1, 0] = np.where(full, -zsc / det, 0.0)
+    one = rank == 1
+    tr = np.where(one, zss + zcc, 1.0)
+    for a, b, v in ((0, 0, zss), (1, 1, zcc), (0, 1, zsc), (1, 0, zsc)):
+        inv[..., a, b] += np.where(one, v / tr**2, 0.0)
+    inv = inv.transpose(1, 0, 2, 3)                              # (F, P, 2, 2)
+    w = corrections.reshape(corrections.shape[0], 2, 2, n_psr, n_psr).transpose(0, 3, 4, 1, 2)  # (F, P, Q, 2, 2)
+    off = w.copy()
+    off[:, idx, idx] = 0.0
+    # tr((A⁻¹Σ)²) = Σ_p rank_p + Σ_{p≠q} tr(A_p⁻¹ W_pq A_q⁻¹ W_qp)
+    left = np.einsum("fpab,fpqbc->fpqac", inv, off)              # A_p⁻¹ W_pq
+    tr2 = rank.sum(axis=0) + np.einsum("fpqac,fqpca->f", left, left)
+    dof_eff = np.where(tr2 > 0, dof**2 / np.where(tr2 > 0, tr2, 1.0), dof)
+    scale = np.where(dof_eff > 0, dof / np.where(dof_eff > 0, dof_eff, 1.0), 1.0)
+    return dof_eff, scale
+
+
+class ArrayNoise:
+    """The run's noise model behind one interface, whatever the common process does.
+
+    Built by :func:`array_noise` from the run's :class:`NoiseSettings`. ``kind`` is
+    ``'none'`` (no common process), ``'uncorrelated'`` (a common spectrum in each pulsar's
+    Fourier prior: the per-pulsar engine is exact) or a correlated kind of
+    :data:`CORRELATION_KINDS` (the :class:`ArrayWeighting` of this module). Stages call
+    these methods and never branch on the kind:
+
+    * :meth:`projections`, :meth:`fe_sky`, :meth:`network`, :meth:`fe_with_amplitudes`,
+      :meth:`fp`, :meth:`fp_distribution` — the scan statistics with the model's inner product;
+    * :meth:`draw_projections` — Gaussian draws of the sufficient statistics (sky trials);
+    * :meth:`simulate` — noise-only residuals drawn from the model (null simulations);
+    * :meth:`inner`, :meth:`optimal_snr`, :meth:`log_likelihood`, :meth:`describe`.
+
+    ``engine`` is the per-pulsar :class:`NoiseWeighting` (the K part when correlated),
+    ``weighting`` the :class:`ArrayWeighting` or None.
+    """
+
+    def __init__(self, array, settings: NoiseSettings | None = None):
+        settings = settings or NoiseSettings()
+        choice = getattr(settings, "common_correlation", "hellings-downs")
+        if choice not in COMMON_CORRELATIONS + CORRELATION_KINDS:
+            raise ValueError(f"common_correlation must be one of {COMMON_CORRELATIONS}, not {choice!r}")
+        has_common = settings.common_log10_amplitude is not None and common_components(settings) > 0
+        self.array = array
+        self.settings = settings
+        self.kind = choice if has_common else "none"
+        self.weighting = None
+        self._corrections = {}
+        if self.kind == "none":
+            self.engine = NoiseWeighting(array, replace(settings, common_log10_amplitude=None))
+        elif self.kind == "uncorrelated":
+            self.engine = NoiseWeighting(array, settings)
+        else:
+            common = CommonProcess(settings.common_log10_amplitude, settings.common_index,
+                                   common_components(settings), self.kind)
+            self.weighting = ArrayWeighting(array, replace(settings, common_log10_amplitude=None), common)
+            self.engine = self.weighting.engine
+
+    @classmethod
+    def from_engine(cls, engine: NoiseWeighting) -> ArrayNoise:
+        """Wrap an existing per-pulsar engine (its common process, if any, stays uncorrelated)."""
+        new = object.__new__(cls)
+        new.array, new.settings, new.engine, new.weighting, new._corrections = (
+            engine.array, engine.settings, engine, None, {})
+        new.kind = "uncorrelated" if engine.settings.common_log10_amplitude is not None else "none"
+        return new
+
+    @property
+    def correlated(self) -> bool:
+        """True when cross-pulsar terms enter (a correlated common process)."""
+        return self.weighting is not None
+
+    def __len__(self):
+        return len(self.engine)
+
+    def describe(self) -> dict:
+        """What the engine models, for summaries."""
+        out = {"common_correlation": self.kind, "engine": "array (Woodbury over stacked Fourier coefficients)"
+               if self.correlated else "per pulsar (block-diagonal)"}
+        if self.kind != "none":
+            out.update({"common_log10_amplitude": float(self.settings.common_log10_amplitude),
+                        "common_index": float(self.settings.common_index),
+                        "common_components": common_components(self.settings)})
+        return out
+
+    # -- scan statistics
+    def projections(self, frequencies, residuals=None, *, on_pulsar=None) -> fstat.Projections:
+        """X, Y (with the model's inner product) and the per-pulsar Z; a list of (n_p, B) residual
+        sets gives a batch."""
+        if self.correlated:
+            return self.weighting.projections(frequencies, residuals, on_pulsar=on_pulsar)
+        if residuals is not None and np.ndim(residuals[0]) == 2:
+            return fstat.project_batch(self.engine, frequencies, residuals, on_pulsar=on_pulsar)
+        return fstat.project(self.engine, frequencies, residuals, on_pulsar=on_pulsar)
+
+    def corrections(self, frequencies):
+        """Cross-pulsar blocks W (F, 4, P, P) of :meth:`ArrayWeighting.scan_corrections` (cached per
+        frequency grid), or None for a per-pulsar model."""
+        if not self.correlated:
+            return None
+        frequencies = np.ascontiguousarray(frequencies, dtype=float)
+        key = frequencies.tobytes()
+        if key not in self._corrections:
+            if len(self._corrections) > 8:
+                self._corrections.clear()
+            self._corrections[key] = self.weighting.scan_corrections(frequencies)
+        return self._corrections[key]
+
+    def fe_sky(self, proj, fplus, fcross, **kwargs) -> fstat.SkyScan:
+        """Fe over sky × frequency (× residual sets): :func:`cwsearch.physics.fstat.fe_sky` or
+        :func:`fe_sky_correlated`."""
+        if self.correlated:
+            return fe_sky_correlated(proj, self.corrections(proj.frequencies), fplus, fcross, **kwargs)
+        return fstat.fe_sky(proj, fplus, fcross, **kwargs)
+
+    def network(self, proj, fplus, fcross):
+        """N (S, F, 4) and M (S, F, 4, 4) with the model's inner product."""
+        if self.correlated:
+            return correlated_network(proj, self.corrections(proj.frequencies), fplus, fcross)
+        return fstat.network_vectors(proj, fplus, fcross)
+
+    def fe_with_amplitudes(self, proj, fplus, fcross):
+        """Fe (S, F) and maximum-likelihood amplitudes M⁺N (S, F, 4)."""
+        if not self.correlated:
+            return fstat.fe_with_amplitudes(proj, fplus, fcross)
+        nvec, mmat = self.network(proj, fplus, fcross)
+        amp = np.einsum("...ij,...j->...i", np.linalg.pinv(mmat, hermitian=True, rcond=1e-12), nvec)
+        return 0.5 * np.einsum("...i,...i->...", nvec, amp), amp
+
+    def fp(self, proj):
+        """Fp per frequency (F,) or (B, F)."""
+        if self.correlated:
+            return fp_correlated(proj, self.corrections(proj.frequencies))
+        return fstat.fp_statistic(proj)
+
+    def fp_distribution(self, proj):
+        """``(ν, c)`` per frequency with ``2Fp ≈ c·χ²(ν)`` in noise (:func:`fp_moment_matched`;
+        exact χ²(ν), c = 1, for a per-pulsar model)."""
+        return fp_moment_matched(proj, self.corrections(proj.frequencies))
+
+    def projection_covariance(self, proj, k):
+        """Noise covariance of the stacked (X_p, Y_p) at frequency index ``k``: (2P, 2P), ordered
+        (pulsar, sin/cos). Per pulsar it is Z_p; with a correlated common process
+        ``(sin_p|sin_q)_C = δ_pq Z_p,ss − W_pq,ss`` etc."""
+        z = proj.z[:, k]
+        n_psr = z.shape[0]
+        cov = np.zeros((n_psr, 2, n_psr, 2))
+        idx = np.arange(n_psr)
+        cov[idx, 0, idx, 0], cov[idx, 0, idx, 1] = z[:, 0], z[:, 1]
+        cov[idx, 1, idx, 0], cov[idx, 1, idx, 1] = z[:, 1], z[:, 2]
+        if self.correlated:
+            w = self.corrections(proj.frequencies[k:k + 1])[0]            # (4, P, P)
+            cov[:, 0, :, 0] -= w[0]
+            cov[:, 0, :, 1] -= w[1]
+            cov[:, 1, :, 0] -= w[2]
+            cov[:, 1, :, 1] -= w[3]
+        return cov.reshape(2 * n_psr, 2 * n_psr)
+
+    def draw_projections(self, proj, k, draws, rng):
+        """``draws`` Gaussian draws of (X, Y) at frequency index ``k`` with
+        :meth:`projection_covariance`: arrays (draws, P) each."""
+        cov = self.projection_covariance(proj, k)
+        n_psr = cov.shape[0] // 2
+        vals, vecs = np.linalg.eigh(0.5 * (cov + cov.T))
+        root = vecs * np.sqrt(np.clip(vals, 0.0, None))
+        xy = (rng.standard_normal((draws, 2 * n_psr)) @ root.T).reshape(draws, n_psr, 2)
+        return xy[..., 0], xy[..., 1]
+
+    # -- simulation
+    def simulate(self, rng):
+        """Noise-only post-fit residuals (list per pulsar) drawn from this model: white noise,
+        per-pulsar red noise (as :func:`cwsearch.physics.simulate.simulate_residuals`) and the
+        common process with the model's correlation (none, independent per pulsar, or Γ)."""
+        s = self.settings
+        total = simulate_residuals(self.array, rng, white=True, red=s.pulsar_red_noise and s.red_components > 0,
+                                   fit_timing_model=False)
+        if self.kind == "uncorrelated":
+            k_common = common_components(s)
+            freqs = fourier_frequencies(self.array.span, k_common)
+            root = np.sqrt(np.repeat(powerlaw_variance(freqs, s.common_log10_amplitude, s.common_index,
+                                                       self.array.span), 2))
+            for r, p in zip(total, self.array):
+                r += fourier_basis(p.toas, self.array.start, self.array.span, k_common) @ (
+                    rng.standard_normal(root.size) * root)
+        elif self.correlated:
+            for r, b in zip(total, self.weighting.draw_background(rng)):
+                r += b
+        return [postfit(p, r) for p, r in zip(self.array, total)]
+
+    # -- inner products
+    def inner(self, x, y=None):
+        """``(x|y)`` of per-pulsar lists with the model's covariance (scalar for (n_p,) entries)."""
+        if self.correlated:
+            return self.weighting.inner(x, y)
+        y = x if y is None else y
+        return float(sum(w.inner(a, b) for w, a, b in zip(self.engine, x, y)))
+
+    def optimal_snr(self, signals) -> float:
+        """``sqrt((s|s))``."""
+        return float(np.sqrt(self.inner(signals)))
+
+    def log_likelihood(self) -> float:
+        """Gaussian log-likelihood of the data residuals (timing models marginalised)."""
+        if self.correlated:
+            return self.weighting.log_likelihood()
+        return float(sum(w.log_likelihood() for w in self.engine))
+
+
+def common_components_needed(array, settings: NoiseSettings, ratio=0.01) -> int:
+    """The smallest K_common such that every dropped common-process component k > K_common has
+    prior variance φ_k below ``ratio`` times the white-noise variance of a Fourier coefficient
+    in the most sensitive pulsar, ``2 / Σ_i σ_i⁻²`` (the least-squares variance of a sinusoid's
+    amplitude in white noise; common practice, no source). Above it the background is far below
+    every pulsar's noise at those frequencies, so leaving them out changes the covariance by less
+    than ``ratio`` of the noise there. Capped at ``red_components``.
+
+    >>> from cwsearch.physics.simulate import invented_array
+    >>> arr = invented_array(n_pulsars=5, years=12, seed=1)
+    >>> k = common_components_needed(arr, NoiseSettings(common_log10_amplitude=-14.6))
+    >>> 1 <= k <= 30
+    True
+    """
+    if settings.common_log10_amplitude is None:
+        return 0
+    white = min(2.0 / float(np.sum(1.0 / np.asarray(p.effective_sigmas() if settings.white_noise_factors
+                                                     else p.sigmas) ** 2)) for p in array)
+    phi = powerlaw_variance(fourier_frequencies(array.span, settings.red_components),
+                            settings.common_log10_amplitude, settings.common_index, array.span)
+    above = np.flatnonzero(phi >= ratio * white)
+    return int(min(settings.red_components, max(1, above.max() + 1 if above.size else 1)))
+
+
+def array_noise(array, settings: NoiseSettings | None = None) -> ArrayNoise:
+    """The one place that decides the noise engine of a run (:class:`ArrayNoise`).
+
+    ``settings.common_correlation`` (default ``'hellings-downs'``) applies whenever
+    ``settings.common_log10_amplitude`` is set; without a common process the per-pulsar
+    engine is exact whatever the choice.
+
+    >>> from cwsearch.physics.simulate import invented_array
+    >>> arr = invented_array(n_pulsars=3, years=8, seed=1)
+    >>> array_noise(arr, NoiseSettings(red_components=6, common_log10_amplitude=-14.5)).kind
+    'hellings-downs'
+    >>> array_noise(arr, NoiseSettings(red_components=6)).kind
+    'none'
+    """
+    return ArrayNoise(array, settings)
+
+
+# ---------------------------------------------------------------- measured correlations
+@dataclass
+class PairCorrelations:
+    """Measured inter-pulsar correlations of the residuals (see :func:`pair_correlations`).
+
+    Per pair (i < j): ``angle`` [rad], ``rho`` (estimate of Γ_ij), ``sigma`` (its noise-only
+    standard deviation), ``expected`` (Γ_ij of Hellings & Downs 1983). ``bins``: dict of arrays
+    ``centre`` [rad], ``rho``, ``sigma``, ``expected``, ``count`` (inverse-variance weighted
+    means over pairs in angular bins of equal counts)."""
+
+    angle: np.ndarray
+    rho: np.ndarray
+    sigma: np.ndarray
+    expected: np.ndarray
+    pairs: np.ndarray
+    bins: dict
+    log10_amplitude: float
+    index: float
+
+
+def pair_correlations(array, settings: NoiseSettings, n_bins=8, residuals=None) -> PairCorrelations:
+    """Cross-correlation of every pulsar pair's whitened residuals, normalised to estimate Γ_ij.
+
+    Each pulsar is whitened with its own full noise covariance ``C_i`` (white, red and the
+    common process's auto-power: the per-pulsar engine with the common process in its prior).
+    With ``X_i = F_iᵀ C_i⁻¹ r_i`` and ``Z_i = F_iᵀ C_i⁻¹ F_i`` (F the common process's Fourier
+    basis, Φ = diag φ its spectrum at the settings' amplitude and index):
+
+    ``ρ_ij = X_iᵀ Φ X_j / tr(Z_i Φ Z_j Φ)``,   ``σ_ij = tr(Z_i Φ Z_j Φ)^(−½)``
+
+    (the optimal cross-correlation statistic of Anholm et al. 2009, Phys. Rev. D 79, 084030,
+    per pair, in units of the assumed amplitude). If the data hold a common process with that
+    spectrum and correlation Γ, ``E[ρ_ij] = Γ_ij`` exactly; σ_ij is its standard deviation
+    without cross-correlation (weak-signal scatter); pairs sharing a pulsar are correlated.
+    Needs ``settings.common_log10_amplitude`` (the spectrum's shape and size). ``residuals``:
+    per-pulsar (n_p,) arrays (default the data) or (n_p, B) sets, then ``rho`` is (B, pairs)
+    and ``bins`` empty.
+    """
+    if settings.common_log10_amplitude is None or settings.red_components < 1:
+        raise ValueError("pair correlations need a common process (common_log10_amplitude and red_components)")
+    with fstat._blas_threads(1):
+        engine = NoiseWeighting(array, settings)
+    span, start = array.span, array.start
+    k_common = common_components(settings)
+    phi = np.repeat(powerlaw_variance(fourier_frequencies(span, k_common),
+                                      settings.common_log10_amplitude, settings.common_index, span), 2)
+    res = [p.residuals for p in array] if residuals is None else residuals
+    xs, ms = [], []
+    with fstat._blas_threads(1):            # small products: threaded BLAS stalls on a shared machine
+        for w, p, r in zip(engine, array, res):
+            fb = fourier_basis(p.toas, start, span, k_common)
+            xs.append(w.inner(fb, r))
+            ms.append(w.inner(fb) * phi[None, :])             # Z_i Φ
+    xs, ms = np.array(xs), np.array(ms)                 # (P, 2K) or (P, 2K, B)
+    den = np.einsum("aij,bji->ab", ms, ms)
+    i, j = np.triu_indices(len(array), 1)
+    cos = np.clip(np.einsum("ik,ik->i", array.positions[i], array.positions[j]), -1, 1)
+    angle = np.arccos(cos)
+    if xs.ndim == 3:                                    # a batch of residual sets: rho (B, pairs), no bins
+        rho = np.einsum("pib,pi,pib->bp", xs[i], np.broadcast_to(phi, (i.size, phi.size)), xs[j]) / den[i, j]
+        return PairCorrelations(angle, rho, 1.0 / np.sqrt(den[i, j]), hellings_downs(cos), np.stack([i, j], 1),
+                                {}, float(settings.common_log10_amplitude), float(settings.common_index))
+    num = xs @ (phi[:, None] * xs.T)
+    rho = num[i, j] / den[i, j]
+    sigma = 1.0 / np.sqrt(den[i, j])
+    expected = hellings_downs(cos)
+    order = np.argsort(angle)
+    n_bins = int(max(1, min(n_bins, order.size)))
+    groups = np.array_split(order, n_bins)
+    bins = {k: np.empty(len(groups)) for k in ("centre", "rho", "sigma", "expected", "count", "low", "high")}
+    for b, g in enumerate(groups):
+        wgt = 1.0 / sigma[g] ** 2
+        bins["centre"][b] = np.sum(wgt * angle[g]) / wgt.sum()
+        bins["rho"][b] = np.sum(wgt * rho[g]) / wgt.sum()
+        bins["expected"][b] = np.sum(wgt * expected[g]) / wgt.sum()
+        bins["sigma"][b] = 1.0 / np.sqrt(wgt.sum())
+        bins["count"][b] = g.size
+        bins["low"][b], bins["high"][b] = angle[g].min(), angle[g].max()
+    return PairCorrelations(angle, rho, sigma, expected, np.stack([i, j], 1), bins,
+                            float(settings.common_log10_amplitude), float(settings.common_index))
+
+
+__all__ += ["COMMON_CORRELATIONS", "ArrayNoise", "array_noise", "common_components_needed", "fp_moment_matched",
+            "PairCorrelations",
+            "pair_correlations"]

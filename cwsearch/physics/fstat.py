@@ -140,7 +140,7 @@ def uniform_step(frequencies):
     return None
 
 
-def sine_cosine_matrix(toas, reference_time, frequencies, anchor_every=ANCHOR_EVERY):
+def sine_cosine_matrix(toas, reference_time, frequencies, anchor_every=ANCHOR_EVERY, step=None):
     """``[sin | cos]`` of ``2π f (t − t0)``: one (n, 2F) array, sines first.
 
     On a uniform grid each bin is reached from the previous one by one
@@ -159,7 +159,7 @@ def sine_cosine_matrix(toas, reference_time, frequencies, anchor_every=ANCHOR_EV
     times = np.ascontiguousarray(np.asarray(toas, dtype=float) - reference_time)
     frequencies = np.ascontiguousarray(frequencies, dtype=float)
     out = np.empty((times.size, 2 * frequencies.size))
-    step = uniform_step(frequencies)
+    step = uniform_step(frequencies) if step is None else float(step)   # a chunk of a grid passes the grid's step
     if step is None:
         _exact_trig(times, frequencies, out)
     else:
@@ -252,9 +252,9 @@ def _blas_threads(n):
             put(old)
 
 
-def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i):
+def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i, step=None):
     n_freq = frequencies.size
-    basis = sine_cosine_matrix(w.pulsar.toas, t0, frequencies)
+    basis = sine_cosine_matrix(w.pulsar.toas, t0, frequencies, step=step)
     wb, ub = w.whiten(basis)                  # the one whitening GEMM for all frequencies
     wr, ur = w.whiten(residual_set)           # (n, B), (r, B)
     xy = wr.T @ wb - ur.T @ ub                # (B, 2F)
@@ -264,7 +264,7 @@ def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i):
     z_scale[i] = 0.5 * float(np.sum(wb[:, 0] ** 2 + wb[:, n_freq] ** 2))
 
 
-def _project_core(engine, frequencies, residual_sets, on_pulsar=None, workers=None):
+def _project_core(engine, frequencies, residual_sets, on_pulsar=None, workers=None, step=None, z_scale_of=None):
     frequencies = np.ascontiguousarray(frequencies, dtype=float)
     n_psr, n_freq = len(engine), frequencies.size
     n_sets = residual_sets[0].shape[1]
@@ -276,22 +276,24 @@ def _project_core(engine, frequencies, residual_sets, on_pulsar=None, workers=No
     workers = min(n_psr, numba.get_num_threads() if workers is None else int(workers))
     if workers <= 1:
         for i, w in enumerate(engine):
-            _project_pulsar(w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i)
+            _project_pulsar(w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i, step)
             if on_pulsar is not None:
                 on_pulsar(i)
     else:
         with _blas_threads(1), ThreadPoolExecutor(max_workers=workers) as pool:
-            jobs = {pool.submit(_project_pulsar, w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i): i
+            jobs = {pool.submit(_project_pulsar, w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i, step): i
                     for i, w in enumerate(engine)}
             for job in as_completed(jobs):
                 job.result()
                 if on_pulsar is not None:
                     on_pulsar(jobs[job])
+    if z_scale_of is not None:           # a chunk of a grid: the whole grid's scale (its first frequency)
+        z_scale[:] = z_scale_of
     _drop_null_directions(x, y, z, z_scale)
     return frequencies, x, y, z, z_scale
 
 
-def project(engine, frequencies, residuals=None, *, on_pulsar=None) -> Projections:
+def project(engine, frequencies, residuals=None, *, on_pulsar=None, step=None, z_scale=None) -> Projections:
     """Compute X, Y, Z for every pulsar and frequency through the noise-weighting engine.
 
     ``residuals`` (list of arrays) replaces the dataset residuals, e.g. for
@@ -304,10 +306,14 @@ def project(engine, frequencies, residuals=None, *, on_pulsar=None) -> Projectio
     part, so they neither divide by zero nor add noise. ``on_pulsar(i)`` is
     called after each pulsar (progress bars). Pulsars run in parallel, one
     per thread (as many threads as numba uses), each single-threaded.
+    ``step`` and ``z_scale``: the spacing of the whole uniform grid and its
+    white-noise scales (``project(engine, grid[:1]).z_scale``) when
+    ``frequencies`` is a chunk of it, so that the chunk's numbers are those
+    of the whole grid.
     """
     sets = [np.asarray(w.pulsar.residuals if residuals is None else residuals[i], dtype=float)[:, None]
             for i, w in enumerate(engine)]
-    freqs, x, y, z, z_scale = _project_core(engine, frequencies, sets, on_pulsar)
+    freqs, x, y, z, z_scale = _project_core(engine, frequencies, sets, on_pulsar, step=step, z_scale_of=z_scale)
     return Projections(freqs, x[0], y[0], z, engine.array.positions, z_scale)
 
 

@@ -31,12 +31,20 @@ True
 
 from __future__ import annotations
 
+import math
+import os
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass
+from typing import Literal
 
 import numpy as np
 from scipy.linalg import cho_factor, lapack, qr, solve_triangular
 
+from threadpoolctl import threadpool_limits
+
 from ..core.constants import YEAR_FREQUENCY
+from ..core.errors import InputError
+from ..core.safeio import check_count
 
 
 @dataclass(frozen=True)
@@ -56,6 +64,23 @@ class NoiseSettings:
         circular binaries, Phinney 2001).
     white_noise_factors : bool
         Apply ``sigma_scale``/``sigma_added`` from the dataset.
+    common_correlation : ``"hellings-downs"``, ``"uncorrelated"`` or ``"none"``
+        How the common process couples the pulsars (used only when
+        ``common_log10_amplitude`` is set): Hellings–Downs correlated (default;
+        the array-level engine of :mod:`cwsearch.physics.correlated`), a common
+        spectrum uncorrelated between pulsars (in each pulsar's Fourier prior),
+        or ``"none"``: the common process is left out of the noise model.
+        :func:`cwsearch.physics.correlated.array_noise` is the one place that
+        turns this choice into an engine. :class:`NoiseWeighting` itself is the
+        per-pulsar engine and always puts a given common process in each
+        pulsar's prior.
+    common_components : int or None
+        Fourier frequencies of the common process, K_common ≤ ``red_components``
+        (None: ``red_components``). The correlated engine's cost grows as
+        (N_psr · 2K_common)³ while the background's power falls as f^−γ: above
+        the frequency where it drops below the white-noise level it adds
+        nothing measurable (:func:`cwsearch.physics.correlated.common_components_needed`
+        reports that K).
     """
 
     red_components: int = 30
@@ -63,6 +88,29 @@ class NoiseSettings:
     common_log10_amplitude: float | None = None
     common_index: float = 13.0 / 3.0
     white_noise_factors: bool = True
+    common_correlation: Literal["hellings-downs", "uncorrelated", "none"] = "hellings-downs"
+    common_components: int | None = None
+
+
+def common_components(settings: NoiseSettings) -> int:
+    """Fourier frequencies k/T_span (k = 1..K_common) of the common process: ``settings.common_components``,
+    or ``red_components`` when None, never more than ``red_components``."""
+    k = settings.red_components if settings.common_components is None else int(settings.common_components)
+    return max(0, min(k, settings.red_components))
+
+    def __post_init__(self):
+        check_count(self.red_components, "red_components", minimum=0, maximum=MAX_RED_COMPONENTS)
+        for name in ("common_log10_amplitude", "common_index"):
+            value = getattr(self, name)
+            if value is not None and not (isinstance(value, (int, float)) and math.isfinite(value)):
+                raise InputError(f"option --{name.replace('_', '-')}: must be a finite number, not {value!r}")
+        if self.common_log10_amplitude is not None and not -30 <= self.common_log10_amplitude <= -5:
+            raise InputError("option --common-log10-amplitude: must be between -30 and -5 "
+                             f"(a log10 strain amplitude), not {self.common_log10_amplitude}")
+
+
+#: most Fourier frequencies of a red process (k/T_span, k = 1..K): 1000 reaches daily cadence for 3 years
+MAX_RED_COMPONENTS = 1000
 
 
 def fourier_frequencies(span, n_components):
@@ -125,10 +173,13 @@ class PulsarWeighting:
             red_var = red_var + powerlaw_variance(freqs, pulsar.noise.red_log10_amplitude,
                                                   pulsar.noise.red_index, span)
         if settings.common_log10_amplitude is not None and settings.red_components:
-            red_var = red_var + powerlaw_variance(freqs, settings.common_log10_amplitude,
-                                                  settings.common_index, span)
+            common_var = powerlaw_variance(freqs, settings.common_log10_amplitude, settings.common_index, span)
+            common_var[common_components(settings):] = 0.0
+            red_var = red_var + common_var
         if np.any(red_var > 0):
-            fourier = fourier_basis(pulsar.toas, start, span, settings.red_components)
+            n_used = int(np.flatnonzero(red_var > 0).max()) + 1       # red noise: all K; common alone: K_common
+            red_var = red_var[:n_used]
+            fourier = fourier_basis(pulsar.toas, start, span, n_used)
             self.fourier_variance = np.repeat(red_var, 2)
             self.basis = np.hstack([self.design, fourier])
         else:
@@ -263,7 +314,7 @@ class NoiseWeighting:
     def __init__(self, array, settings: NoiseSettings | None = None):
         self.array = array
         self.settings = settings or NoiseSettings()
-        self.pulsars = [PulsarWeighting(p, array.start, array.span, self.settings) for p in array]
+        self.pulsars = _build_pulsars(array, self.settings)
 
     def __getitem__(self, i) -> PulsarWeighting:
         return self.pulsars[i]
@@ -285,6 +336,33 @@ class NoiseWeighting:
     def optimal_snr(self, signals) -> float:
         """Optimal signal-to-noise ratio ``sqrt(Σ_p (s_p|s_p))``."""
         return float(np.sqrt(sum(w.inner(s, s) for w, s in zip(self.pulsars, signals))))
+
+
+def single_threaded_blas():
+    """Context manager: numpy/scipy BLAS on one thread (no-op without threadpoolctl).
+
+    The per-pulsar products are small (n × k with k ~ 65); threaded BLAS on
+    them oversubscribes the cores and was measured 9× slower on the shared
+    2-core machine (bench/command.py). Parallelism comes from one pulsar per
+    thread instead.
+    """
+    return threadpool_limits(1, user_api="blas")
+
+
+def _build_pulsars(array, settings, workers=None):
+    """One :class:`PulsarWeighting` per pulsar, built one pulsar per thread with single-threaded BLAS.
+
+    Each pulsar's build is independent and runs the same operations whatever
+    the number of threads, so the result does not depend on it.
+    """
+    pulsars = list(array)
+    cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
+    workers = min(len(pulsars), cpus if workers is None else int(workers))
+    with single_threaded_blas():
+        if workers <= 1:
+            return [PulsarWeighting(p, array.start, array.span, settings) for p in pulsars]
+        with ThreadPoolExecutor(max_workers=workers) as pool:
+            return list(pool.map(lambda p: PulsarWeighting(p, array.start, array.span, settings), pulsars))
 
 
 # ----------------------------------------------------------------- noise estimation

@@ -18,6 +18,17 @@ and phase Φ0 in [0, π) (the waveform has period π in both). Pulsar distances
 are held at their catalogue values (with free pulsar phases they only set
 the pulsar-term frequency and amplitude in the evolving modes).
 
+Noise model: the run's (:func:`cwsearch.physics.correlated.array_noise`). With a
+Hellings–Downs common process the likelihood is
+:class:`cwsearch.inference.correlated_likelihood.CorrelatedLikelihood`, so the
+Bayes factor is *binary + correlated background versus correlated background
+alone*; ``background_comparison`` in ``summary.json`` puts it side by side
+with the Bayes factor under an uncorrelated common background (and vice versa
+for an uncorrelated run), the other one estimated by importance reweighting
+of the posterior samples with the likelihood ratio (method and effective
+sample size stated there). A candidate whose support holds only under the
+uncorrelated background is not a binary candidate.
+
 The walkers start from the prior (the whole search window), not around the
 scan point; the sampler's stopping rule and ladder adaptation are those of
 :mod:`cwsearch.sampling`, and every reason to distrust a run (an iteration or
@@ -33,6 +44,8 @@ Examples
 
 from __future__ import annotations
 
+import math
+import os
 import time
 from dataclasses import asdict, dataclass, field, replace
 from pathlib import Path
@@ -44,10 +57,13 @@ from astropy.table import Table
 from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
+from ...core.safeio import check_count, read_input_text, require_finished
 from ...inference import sampling
 from ...inference.likelihood import Likelihood
 from ...inference.noisefit import stage_noise_statement
+from ...inference.correlated_likelihood import likelihood_for, other_background, reweighted_log_bayes_factor
 from ...physics import fstat, waveform
+from ...physics.correlated import ArrayNoise
 from ...physics.noise import NoiseSettings
 from ...physics.waveform import EVOLUTION_MODES
 
@@ -84,6 +100,7 @@ class FollowupOptions:
     phase_grid: int = 0
     checkpoint_every: int = 100
     adapt_iterations: int = 500
+    max_temperatures: int | None = None  # the ladder may grow to this many (None: 3 x temperatures, at most 40)
     no_plots: bool = False              # skip the corner, sky and trace plots (PNG)
 
     def validate(self):
@@ -95,11 +112,21 @@ class FollowupOptions:
             raise InputError("--walkers must be even and at least 18 (ptemcee needs > 2 x 8 parameters)")
         if self.temperatures < 1 or self.max_temperature <= 1:
             raise InputError("--temperatures must be >= 1 and --max-temperature > 1")
+        if self.max_temperatures is not None and self.max_temperatures < 1:
+            raise InputError("--max-temperatures must be >= 1")
         explicit = [v is not None for v in (self.frequency, self.ra, self.dec)]
         if any(explicit) and not all(explicit):
             raise InputError("an explicit target needs all of --frequency, --ra and --dec")
         if self.ess <= 0 or self.max_iterations <= 0:
             raise InputError("--ess and --max-iterations must be positive")
+        if self.max_time is not None and not (math.isfinite(self.max_time) and self.max_time > 0):
+            raise InputError(f"--max-time must be a positive number of seconds, not {self.max_time}")
+        check_count(self.max_iterations, "max_iterations", minimum=1, maximum=10_000_000)
+        check_count(self.walkers, "walkers", minimum=18, maximum=10_000)
+        check_count(self.temperatures, "temperatures", minimum=1, maximum=200)
+        check_count(self.checkpoint_every, "checkpoint_every", minimum=1, maximum=10_000_000)
+        if not math.isfinite(self.ess):   # a huge --ess is legal: the iteration cap or --max-time stops the run
+            raise InputError(f"--ess must be a finite number, not {self.ess}")
 
 
 @dataclass
@@ -185,13 +212,15 @@ def initial_positions(prior, target: Target, span, shape, rng):
 def read_candidates(run_dir):
     """The scan's candidates table (astropy Table), best first (by ``fe`` when present)."""
     path = Path(run_dir) / "scan" / "candidates.ecsv"
-    if not path.exists():
+    if not os.path.lexists(path):
         raise InputError("no scan candidates found; run 'cwsearch scan' first, or give --frequency/--ra/--dec "
                          "or --all-sky", file=path)
+    require_finished(path, path.parent / "scan_summary.json", stage="scan", command="cwsearch scan")
+    text = read_input_text(path, Path(run_dir), what="candidates file")
     try:
-        table = Table.read(path, format="ascii.ecsv")
+        table = Table.read(text + "\n", format="ascii.ecsv")
     except Exception as exc:  # malformed file: one line naming it
-        raise InputError(f"cannot read candidates ({exc})", file=path) from None
+        raise InputError(f"cannot read candidates ({' '.join(str(exc).split())[:300]})", file=path) from None
     for col in ("frequency", "ra", "dec"):
         if col not in table.colnames:
             raise InputError(f"missing column '{col}'", file=path, column=col)
@@ -255,9 +284,10 @@ def select_targets(run_dir, options: FollowupOptions):
 def earth_term_start(engine, target: Target) -> Target:
     """Fill strain, inclination, polarisation and phase of ``target`` with the Earth-term
     maximum-likelihood values of the F-statistic at its frequency and sky position."""
-    proj = fstat.project(engine, np.array([target.frequency]))
+    noise = engine if isinstance(engine, ArrayNoise) else ArrayNoise.from_engine(engine)
+    proj = noise.projections(np.array([target.frequency]))
     fplus, fcross = fstat.sky_patterns(proj, target.ra, target.dec)
-    _, amp = fstat.fe_with_amplitudes(proj, fplus, fcross)
+    _, amp = noise.fe_with_amplitudes(proj, fplus, fcross)
     strain, cos_inc, psi, phase = (float(np.ravel(v)[0]) for v in
                                    fstat.amplitudes_to_parameters(amp[0, 0], target.frequency))
     if not (np.isfinite(strain) and strain > 0):
@@ -316,7 +346,8 @@ def _intervals(table):
     return out
 
 
-def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
+def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, other=None):
+
     span = array.span
     if target.frequency is None:
         band = (np.log10(1.0 / span), np.log10(options.max_frequency))
@@ -332,7 +363,8 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
         walkers=options.walkers, temperatures=options.temperatures, max_temperature=options.max_temperature,
         ess=options.ess, max_iterations=options.max_iterations,
         max_time=float("inf") if options.max_time is None else float(options.max_time),
-        checkpoint_every=options.checkpoint_every, adapt_iterations=options.adapt_iterations)
+        checkpoint_every=options.checkpoint_every, adapt_iterations=options.adapt_iterations,
+        max_temperatures=options.max_temperatures)
     initial = initial_positions(prior, target, span, (options.temperatures, options.walkers), rng)
     fingerprint = {"target": [target.frequency, target.ra, target.dec], "band": list(band),
                    "pulsar_term": likelihood.pulsar_term, "evolution": likelihood.evolution,
@@ -348,6 +380,7 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
     tau = dict(zip(names, map(float, result.autocorrelation_time)))
     write_table_atomic(folder / "posterior.ecsv", _with_sample_columns(table, details, result, tau))
     pairs = [[float(1 / a), float(1 / b)] for a, b in zip(result.betas[:-1], result.betas[1:])]
+    comparison = _background_comparison(likelihood, other, result, details, samples, progress)
     summary = {
         "target": target.label,
         "start": {"frequency": target.frequency,
@@ -356,6 +389,8 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
                   "candidate_row": target.source or None},
         "log_bayes_factor": result.log_evidence,
         "log_bayes_factor_error": result.log_evidence_error,
+        "bayes_factor_meaning": comparison["meaning"],
+        "background_comparison": comparison,
         "parameters": _intervals(table),
         "warnings": list(result.warnings),
         "converged": bool(result.converged),
@@ -386,7 +421,51 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress):
                   "strain_prior": options.strain_prior, "log10_frequency_band": list(band),
                   "chirp_mass_range": list(CHIRP_MASS_RANGE), "strain_range": list(STRAIN_RANGE)},
     }
+    noise_model = getattr(likelihood, "noise_model", None)
+    if noise_model is not None:
+        summary["noise_model"] = noise_model.describe()
+        if noise_model.correlated and likelihood.pulsar_term:
+            summary["model"]["pulsar_phases"] = ("marginalised (pulsar-term cross terms of different pulsars "
+                                                 "in variational mean field)")
     return summary, result, table
+
+
+def _background_comparison(likelihood, other, result, details, samples, progress):
+    """The Bayes factor under the run's background and under the other one (uncorrelated versus
+    Hellings–Downs), the second by importance reweighting of this run's posterior samples
+    (:func:`cwsearch.inference.correlated_likelihood.reweighted_log_bayes_factor`)."""
+
+    model = getattr(likelihood, "noise_model", None)
+    kind = model.kind if model is not None else "none"
+    label = {"hellings-downs": "Hellings-Downs correlated background", "uncorrelated":
+             "uncorrelated common background", "none": "noise without a common background"}
+    out = {"meaning": f"binary + {label.get(kind, kind)} versus {label.get(kind, kind)} alone",
+           "run_model": kind, "log_bayes_factor": {kind: result.log_evidence}}
+    if other is None or not result.iterations:
+        out["note"] = ("no common process in the noise model: nothing to compare" if other is None else
+                       "no samples")
+        return out
+    other_kind = other.noise_model.kind
+    t = time.monotonic()
+    rw = reweighted_log_bayes_factor(result.log_evidence, samples, details["log_likelihood"], other,
+                                     chain_ess=float(result.ess) if np.isfinite(result.ess) else None)
+    out["log_bayes_factor"][other_kind] = rw["log_bayes_factor"]
+    out.update({
+        "method": (f"{other_kind}: importance reweighting of the {kind} posterior samples with the likelihood "
+                   f"ratio exp(lnL_{other_kind} - lnL_{kind}) (ln B_other = ln B + ln mean(w)); not a second "
+                   "sampling run"),
+        "importance_effective_sample_size": rw["importance_ess"], "n_samples": rw["n_samples"],
+        "reweighting_error": rw["error"], "seconds": round(time.monotonic() - t, 2)})
+    if rw["n_samples"] and rw["importance_ess"] < max(20.0, 0.05 * rw["n_samples"]):
+        out["warning"] = (f"importance ESS {rw['importance_ess']:.0f} of {rw['n_samples']} samples: the two "
+                          "posteriors barely overlap and the reweighted Bayes factor is unreliable; follow up "
+                          f"again with --common-correlation {other_kind}")
+    if kind == "hellings-downs" or other_kind == "hellings-downs":
+        hd = out["log_bayes_factor"].get("hellings-downs")
+        unc = out["log_bayes_factor"].get("uncorrelated")
+        if hd is not None and unc is not None:
+            out["difference_uncorrelated_minus_hellings_downs"] = float(unc - hd)
+    return out
 
 
 def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *, noise=None,
@@ -400,14 +479,17 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
     run_dir = Path(run_dir)
     targets = select_targets(run_dir, options)
     start = time.monotonic()
-    likelihood = Likelihood(array, noise, pulsar_term=not options.earth_term_only, evolution=options.evolution,
-                            phase_grid=options.phase_grid, uniform_strain=options.strain_prior == "uniform")
+    model = dict(pulsar_term=not options.earth_term_only, evolution=options.evolution,
+                 phase_grid=options.phase_grid, uniform_strain=options.strain_prior == "uniform")
+    likelihood = likelihood_for(array, noise, **model)
+    other_noise = other_background(noise)
+    other = likelihood_for(array, other_noise, **model) if other_noise is not None else None
     seqs = np.random.SeedSequence(seed).spawn(len(targets))
     stage = run_dir / "followup"
     summaries, folders, runs = [], [], []
     for target, seq in zip(targets, seqs):
         folder = stage if len(targets) == 1 else stage / target.label
-        summary, result, table = _follow_one(likelihood, target, array, folder, options, seq, progress)
+        summary, result, table = _follow_one(likelihood, target, array, folder, options, seq, progress, other)
         summary["seed"] = seed
         summary["noise_model"] = stage_noise_statement(array, noise)
         write_json_atomic(folder / "summary.json", summary)
@@ -423,6 +505,8 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
                 "log_bayes_factor": [s["log_bayes_factor"] for s in summaries],
                 "log_bayes_factor_error": [s["log_bayes_factor_error"] for s in summaries],
                 "effective_sample_size": [s["effective_sample_size"] for s in summaries],
+                "bayes_factor_meaning": summaries[0]["bayes_factor_meaning"],
+                "background_comparison": [s["background_comparison"]["log_bayes_factor"] for s in summaries],
                 "folders": [str(f) for f in folders], "seed": seed,
                 "wall_time": time.monotonic() - start, "options": asdict(options),
                 "noise_model": stage_noise_statement(array, noise)}

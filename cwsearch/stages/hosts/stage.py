@@ -85,11 +85,12 @@ from scipy.special import logsumexp
 
 from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
+from ...core.safeio import escape_text, read_input_text, require_finished
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...data.catalog import read_catalog
 from ...inference.noisefit import stage_noise_statement
 from ...physics import fstat
-from ...physics.noise import NoiseWeighting
+from ...physics.correlated import array_noise
 from ...physics.relations import (chirp_mass_offset_table, LN10, MassRatioPrior, population_chirp_mass_table,
                                   redshift_at_distance, RELATIONS)
 from ...physics.sky import _healpix, pixel_centres, unit_vectors
@@ -422,8 +423,10 @@ def _column_values(table, name, unit, path, positive=False):
 def read_posterior(path, label=None):
     """Posterior samples from a follow-up ``posterior.ecsv`` as a :class:`Localisation`."""
     path = Path(path)
+    require_finished(path, path.parent / "summary.json", stage="follow-up", command="cwsearch followup")
+    text = read_input_text(path, path.parent.parent, what="posterior")
     try:
-        table = Table.read(path, format="ascii.ecsv")
+        table = Table.read(text + "\n", format="ascii.ecsv")
     except Exception as exc:
         raise InputError(f"cannot read the posterior: {str(exc).splitlines()[0] if str(exc) else exc}",
                          file=path) from None
@@ -448,8 +451,8 @@ def read_posterior(path, label=None):
 def _followup_prior(path: Path):
     """The follow-up's search prior from its ``summary.json`` (``model`` entry), or None if not found."""
     try:
-        model = json.loads(path.read_text()).get("model") or {}
-    except (OSError, ValueError, AttributeError):
+        model = json.loads(read_input_text(path, path.parent.parent, what="follow-up summary")).get("model") or {}
+    except (InputError, ValueError, AttributeError, RecursionError):
         return None
     out = {}
     try:
@@ -488,7 +491,7 @@ def _find_sky_map(scan_dir: Path, options):
 def _read_fe_map(path: Path, candidate_row: int, frequency: float):
     """(nside, pixels, fe) from an Fe map table, or None if it is not a usable map for this candidate."""
     try:
-        table = Table.read(path, format="ascii.ecsv")
+        table = Table.read(read_input_text(path) + "\n", format="ascii.ecsv")
     except Exception:
         return None
     if "pixel" not in table.colnames or "fe" not in table.colnames or len(table) == 0:
@@ -515,12 +518,13 @@ def _read_fe_map(path: Path, candidate_row: int, frequency: float):
 
 
 def fe_sky_map(array, frequency, noise=None, nside=32):
-    """Earth-term Fe on a HEALPix grid at one frequency [Hz], from the dataset (cwsearch.physics.fstat)."""
-    engine = NoiseWeighting(array, noise)
-    proj = fstat.project(engine, np.array([float(frequency)]))
+    """Earth-term Fe on a HEALPix grid at one frequency [Hz], from the dataset, with the run's noise
+    model (:func:`cwsearch.physics.correlated.array_noise`: correlated Fe with a Hellings–Downs background)."""
+    engine = array_noise(array, noise)
+    proj = engine.projections(np.array([float(frequency)]))
     ra, dec = pixel_centres(nside)
     fplus, fcross = fstat.sky_patterns(proj, ra, dec)
-    return np.asarray(fstat.fe_statistic(proj, fplus, fcross))[:, 0]
+    return np.asarray(engine.fe_sky(proj, fplus, fcross).fe_map)[:, 0]
 
 
 def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000, *, array=None, noise=None):
@@ -533,8 +537,11 @@ def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000, *, a
     """
     scan_dir = Path(run_dir) / "scan"
     path = scan_dir / "candidates.ecsv"
+    require_finished(path, scan_dir / "scan_summary.json", stage="scan", command="cwsearch scan")
     try:
-        table = Table.read(path, format="ascii.ecsv")
+        table = Table.read(read_input_text(path, Path(run_dir), what="candidates file") + "\n", format="ascii.ecsv")
+    except InputError:
+        raise
     except Exception as exc:
         raise InputError(f"cannot read scan candidates: {str(exc).splitlines()[0] if str(exc) else exc}",
                          file=path) from None
@@ -1003,7 +1010,7 @@ def format_table(result: HostsResult, top=10) -> str:
         t = res.ranking
         for k in range(min(top, len(t))):
             r = t[k]
-            lines.append(f"  {k + 1:>3} {str(r['name'])[:18]:<18} {r['ra']:7.2f} {r['dec']:7.2f} "
+            lines.append(f"  {k + 1:>3} {escape_text(str(r['name'])[:18]):<18} {r['ra']:7.2f} {r['dec']:7.2f} "
                          f"{r['distance']:7.1f} {r['probability']:7.4f} {r['log_bayes_factor']:7.2f} "
                          f"{r['sky_density']:8.3g} {r['distance_consistency']:7.3g} {r['mass_consistency']:7.3g} "
                          f"{r['period_consistency']:6.3g} {r['coalescence_ok']:5.2f}")

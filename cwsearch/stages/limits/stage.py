@@ -21,6 +21,13 @@ of Earth-term signals with random orientation give 2Fe above the observed
 value, using ``2Fe ~ χ'²(4, ρ²)``, ``ρ² = bᵀ M b`` (non-central χ²,
 Ellis, Siemens & Creighton 2012), averaged over the same kind of angle grid.
 
+Noise model: the run's (:func:`cwsearch.physics.correlated.array_noise`). With a
+Hellings–Downs (or other correlated) common process N and M use the array
+inner product (:func:`cwsearch.physics.correlated.correlated_network`: X, Y
+of the weighted data, M minus the cross-pulsar blocks), so both limits and
+the galaxies' chirp-mass limits are conditional on the correlated background;
+``2Fe ~ χ'²(4, ρ²)`` still holds exactly with the true covariance.
+
 Sky averages treat the source position as uniform over the sky (HEALPix
 pixels have equal areas): the Bayesian sky-averaged limit is the 95 %
 quantile of the posterior marginalised over pixels (each pixel weighted by
@@ -70,7 +77,8 @@ from ...inference.sampling import run_sampler, SamplerSettings
 from ...inference.noisefit import stage_noise_statement
 from ...physics import fstat, sky
 from ...physics.fstat import default_max_frequency, frequency_grid, parameters_to_amplitudes
-from ...physics.noise import NoiseSettings, NoiseWeighting
+from ...physics.correlated import array_noise
+from ...physics.noise import NoiseSettings
 from ...physics.waveform import chirp_mass_for_strain
 
 #: credibility / confidence level of every limit
@@ -725,6 +733,10 @@ class Galaxy:
     distance: float
 
 
+#: most local worker processes
+MAX_WORKERS = 1024
+
+
 def parse_galaxies(entries):
     """:class:`Galaxy` objects from ``(NAME, RA_DEG, DEC_DEG, DISTANCE_MPC)`` tuples (CLI/TOML)."""
     out = []
@@ -954,6 +966,9 @@ class LimitsOptions:
                 f"not {self.mcmc_check}")
         if self.select and not self.catalog:
             bad("select", "needs --catalog FILE")
+        if self.workers is not None and self.workers > MAX_WORKERS:
+            bad("workers", f"at most {MAX_WORKERS}, not {self.workers}")
+        parse_galaxies(self.galaxy)   # a bad galaxy is refused now (and by `run --check`), not mid-run
         return self
 
 
@@ -990,7 +1005,7 @@ def _network_dof(mmat):
 
 
 def compute_limits(proj, ra, dec, *, method="bayes", quadrature="standard", workers=1, scheduler=None,
-                   progress=False, level=LEVEL):
+                   progress=False, level=LEVEL, noise=None):
     """Per-position limits from projections at every frequency of ``proj``.
 
     Parameters
@@ -998,6 +1013,9 @@ def compute_limits(proj, ra, dec, *, method="bayes", quadrature="standard", work
     proj : :class:`cwsearch.physics.fstat.Projections`
     ra, dec : arrays (S,) [rad] of sky positions (pixel centres, galaxies)
     method, quadrature : as in :class:`LimitsOptions`
+    noise : the run's :class:`cwsearch.physics.correlated.ArrayNoise` that made ``proj``
+        (None: per-pulsar projections); with a correlated common process N and M carry
+        the cross-pulsar terms (:func:`cwsearch.physics.correlated.correlated_network`).
     workers, scheduler : the task runner (:class:`cwsearch.inference.execution.TaskRunner`)
 
     Returns a dict of (S, F) arrays in strain: ``bayes`` (h95), ``bayes_log_evidence``,
@@ -1007,8 +1025,12 @@ def compute_limits(proj, ra, dec, *, method="bayes", quadrature="standard", work
     want_bayes = method in ("bayes", "both")
     want_freq = method in ("frequentist", "both")
     fplus, fcross = fstat.sky_patterns(proj, np.asarray(ra), np.asarray(dec))
-    nvec, mmat = fstat.network_vectors(proj, fplus, fcross)
-    fe = fstat.fe_statistic(proj, fplus, fcross)
+    if noise is None:
+        nvec, mmat = fstat.network_vectors(proj, fplus, fcross)
+        fe = fstat.fe_statistic(proj, fplus, fcross)
+    else:
+        nvec, mmat = noise.network(proj, fplus, fcross)
+        fe = noise.fe_sky(proj, fplus, fcross).fe_map
     n_pos, n_freq = fe.shape
     rows_n = nvec.reshape(-1, 4)
     rows_m = mmat.reshape(-1, 4, 4)
@@ -1095,8 +1117,8 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
             raise InputError(f"option --sky-frequency: {options.sky_frequency:.4g} Hz is outside the band "
                              f"{frequencies[0]:.4g}-{frequencies[-1]:.4g} Hz")
 
-    engine = NoiseWeighting(array, noise)
-    proj = fstat.project(engine, frequencies)
+    engine = array_noise(array, noise)
+    proj = engine.projections(frequencies)
     nside = int(options.nside)
     n_pix = sky.n_pixels(nside)
     ra_pix, dec_pix = sky.pixel_centres(nside)
@@ -1105,7 +1127,7 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     # the frequentist limit costs ~5 % of the Bayesian one, so "bayes" reports it too
     computed = "frequentist" if options.method == "frequentist" else "both"
     res = compute_limits(proj, ra, dec, method=computed, quadrature=options.quadrature, workers=workers,
-                         scheduler=options.scheduler or None, progress=progress)
+                         scheduler=options.scheduler or None, progress=progress, noise=engine)
     averages = _sky_averages(res, frequencies, n_pix)
     primary = "frequentist" if options.method == "frequentist" else "bayes"
     pixel_limits = res[primary][:n_pix]
@@ -1176,7 +1198,7 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     if options.mcmc_check is not None:
         pix = int(options.mcmc_check)
         fplus, fcross = fstat.sky_patterns(proj, ra_pix[pix:pix + 1], dec_pix[pix:pix + 1])
-        nv, mm = fstat.network_vectors(proj, fplus, fcross)
+        nv, mm = engine.network(proj, fplus, fcross)
         nv, mm = nv[0, sky_index], mm[0, sky_index]
         quad = bayesian_limit(nv, mm, sky_frequency, grid=QUADRATURE[options.quadrature])
         check = {"pixel": pix, "frequency": sky_frequency, "quadrature": quad}
@@ -1209,6 +1231,7 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
         "sky_frequency": sky_frequency,
         "best_frequency": float(frequencies[best]),
         "engine": res["engine"],
+        "noise_model": engine.describe(),
         "wall_time": round(time.time() - started, 3),
     }
     if "bayes" in averages:

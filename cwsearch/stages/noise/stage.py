@@ -230,7 +230,9 @@ def run_noise(array, run_dir, options: NoiseOptions = NoiseOptions(), *, noise: 
             files["common_plot"] = out / "common_likelihood.png"
             like_array = apply_noise_model(array, replace(model, common_log10_amplitude=None), check=False)
             like = (factory or UncorrelatedCommonLikelihood)(like_array, settings.red_components)
-            contour = plots.common_contour_plot(files["common_plot"], like, fit, options.contour_points, used)
+            # the correlated likelihood costs one (N_psr 2K)^2 Cholesky per point: a coarser grid
+            points = options.contour_points if factory is None else min(options.contour_points, 8)
+            contour = plots.common_contour_plot(files["common_plot"], like, fit, points, used)
     summary = fit_summary(fit, options, dataset_checksum, used, messages, comparison, GOF_THRESHOLD)
     summary["engine_settings"] = asdict(engine_settings)
     if contour is not None:

@@ -8,6 +8,7 @@ from __future__ import annotations
 import numpy as np
 
 from ...core.plotting import pyplot, save_figure, sky_map
+from ...data.plots import correlation_plot  # noqa: F401  (the scan draws it; defined with the dataset plots)
 
 _LINE_STYLES = ("--", ":", "-.")
 

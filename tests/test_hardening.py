@@ -1,0 +1,453 @@
+"""Hardening (issue 19): every way a file, a folder or a second process can go wrong, one test each.
+
+Each test is named after what it guards. Expectations are the project's
+contract (docs/design.md §3, §11; common practice for command-line tools, no
+source): a user's mistake or a hostile file gives exit status 2 and one line
+naming the file (and row and column where they apply), never a traceback,
+a hang or a silently wrong result; legal input is accepted. The plausible
+ranges checked are those stated in ``cwsearch.core.safeio``.
+
+All datasets are tiny invented ones (tests/conftest.py), inputs only, never
+check values.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import signal
+import socket
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from cwsearch.core.errors import InputError
+from tests.test_bad_input import (check_user_error, noise, psr, res, run_cli, scan_argv, set_unit, set_value,
+                                  snapshot, template, work)  # noqa: F401 (fixtures)
+
+# ------------------------------------------------------------------ tracebacks that became one line
+
+
+def test_long_pulsar_name_is_one_line_error(work, capsys):
+    set_value(psr(work), 2, "name", "P" * 300)
+    code, err = run_cli(scan_argv(work), capsys)
+    check_user_error(code, err, ["pulsars.ecsv", "row 2", "column name", "characters"])
+
+
+def test_noise_table_symlink_to_dev_zero_refused(work, capsys):
+    noise(work).unlink()
+    noise(work).symlink_to("/dev/zero")
+    code, err = run_cli(scan_argv(work), capsys)
+    check_user_error(code, err, ["noise.ecsv", "outside the folder"])
+
+
+def test_device_refused_as_not_a_regular_file():
+    """A character device (endless /dev/zero) is refused before any byte is read."""
+    from cwsearch.core.safeio import read_input_bytes
+
+    with pytest.raises(InputError, match="device"):
+        read_input_bytes("/dev/zero")
+
+
+def test_sigma_underflow_refused(work, capsys):
+    set_value(res(work), 4, "sigma", "1e-200")
+    code, err = run_cli(scan_argv(work), capsys)
+    check_user_error(code, err, ["SIMPSR02.ecsv", "row 4", "column sigma", "plausible"])
+
+
+def test_run_file_negative_red_components_refused_before_writing(work, capsys):
+    runfile = work / "run.toml"
+    runfile.write_text('dataset = "data"\nout = "run"\nstages = ["scan"]\n\n[noise]\nred_components = -1\n')
+    before = snapshot(work)
+    code, err = run_cli(["run", runfile, "--quiet"], capsys)
+    check_user_error(code, err, ["run.toml", "red_components"])
+    assert snapshot(work) == before  # no dataset.json, provenance.json or scan/ written
+
+
+def _explicit_followup(work, *extra):
+    return ["followup", work / "data", "--out", work / "run", "--quiet", "--red-components", "3",
+            "--frequency", "1e-8", "--ra", "10", "--dec", "10", "--walkers", "18", "--temperatures", "2",
+            "--max-iterations", "10", "--no-plots", *extra]
+
+
+@pytest.mark.parametrize("damage", ["truncated", "object-array"])
+def test_resume_damaged_checkpoint_says_rerun_without_resume(work, capsys, damage):
+    ck = work / "run" / "followup" / "checkpoint.npz"
+    ck.parent.mkdir(parents=True)
+    if damage == "truncated":
+        np.savez(ck, fingerprint=np.array("x"), iterations=np.array(3))
+        ck.write_bytes(ck.read_bytes()[:40])
+    else:
+        np.savez(ck, fingerprint=np.array([{"a": 1}], dtype=object))
+    code, err = run_cli(_explicit_followup(work, "--resume"), capsys)
+    check_user_error(code, err, ["checkpoint.npz", "damaged", "without --resume"])
+
+
+# ------------------------------------------------------------------ hangs
+
+
+def test_noise_table_fifo_refused_without_blocking(work, capsys):
+    noise(work).unlink()
+    os.mkfifo(noise(work))
+    code, err = run_cli(scan_argv(work), capsys)   # a reader that blocked would never return here
+    check_user_error(code, err, ["noise.ecsv", "named pipe"])
+
+
+def test_pulsars_file_fifo_refused_without_blocking(work, capsys):
+    psr(work).unlink()
+    os.mkfifo(psr(work))
+    code, err = run_cli(["inspect", work / "data"], capsys)
+    check_user_error(code, err, ["pulsars.ecsv", "named pipe"])
+
+
+def test_huge_null_sims_refused_with_time_estimate(work, capsys):
+    code, err = run_cli(scan_argv(work, "--null-sims", "1000000000000"), capsys)
+    message = check_user_error(code, err, ["--null-sims", "at most", "times as long"])
+    assert "1e+12" in message
+
+
+# ------------------------------------------------------------------ wrong silent acceptance
+
+
+def test_mjd_in_years_refused_as_implausible(work, capsys):
+    set_unit(res(work), "mjd", "yr")
+    code, err = run_cli(scan_argv(work), capsys)
+    check_user_error(code, err, ["SIMPSR02.ecsv", "row 1", "column mjd", "plausible", "'yr'"])
+
+
+def test_mjd_range_flag_widens_the_plausible_dates(work, capsys):
+    from cwsearch.data.dataset import read_dataset
+
+    lo = float(read_dataset(work / "data")[0].mjd[0])
+    with pytest.raises(InputError, match="plausible range"):
+        read_dataset(work / "data", mjd_range=(lo + 1, 70000))
+    code, err = run_cli(["inspect", work / "data", "--mjd-range", "30000", "80000"], capsys)
+    assert code == 0, err
+
+
+def test_residual_symlink_outside_dataset_refused_unread(work, capsys, tmp_path_factory):
+    outside = tmp_path_factory.mktemp("elsewhere") / "x.ecsv"
+    outside.write_bytes(res(work).read_bytes())
+    res(work).unlink()
+    res(work).symlink_to(outside)
+    code, err = run_cli(scan_argv(work), capsys)
+    check_user_error(code, err, ["SIMPSR02.ecsv", "symbolic link", "outside"])
+    res(work).unlink()
+    res(work).symlink_to("/etc/passwd")
+    code, err = run_cli(scan_argv(work), capsys)
+    check_user_error(code, err, ["SIMPSR02.ecsv", "outside"])
+
+
+def test_residual_symlink_inside_dataset_accepted(work):
+    from cwsearch.data.dataset import read_dataset
+
+    target = work / "data" / "residuals" / "copy_of_SIMPSR02.ecsv.txt"
+    target.write_bytes(res(work).read_bytes())
+    res(work).unlink()
+    res(work).symlink_to(target.name)
+    assert len(read_dataset(work / "data")) == 3
+
+
+def test_huge_residual_refused(work, capsys):
+    set_value(res(work), 6, "residual", "1e300")
+    code, err = run_cli(scan_argv(work), capsys)
+    check_user_error(code, err, ["SIMPSR02.ecsv", "row 6", "column residual", "implausible"])
+
+
+def test_residual_a_million_sigma_away_refused(work, capsys):
+    set_value(res(work), 2, "residual", "0.5")   # 0.5 s against sigma ~1e-7 s
+    code, err = run_cli(scan_argv(work), capsys)
+    check_user_error(code, err, ["SIMPSR02.ecsv", "row 2", "column residual"])
+
+
+def test_negative_mjd_names_file_row_column(work, capsys):
+    set_value(res(work), 1, "mjd", "-1e9")
+    code, err = run_cli(scan_argv(work), capsys)
+    message = check_user_error(code, err, ["SIMPSR02.ecsv", "row 1", "column mjd"])
+    assert "--nside" not in message
+
+
+def test_run_file_empty_stages_refused(work, capsys):
+    runfile = work / "run.toml"
+    runfile.write_text('dataset = "data"\nout = "run"\nstages = []\n')
+    code, err = run_cli(["run", runfile, "--quiet"], capsys)
+    check_user_error(code, err, ["run.toml", "stages", "no stage"])
+    assert not (work / "run").exists()
+
+
+def test_run_file_bad_limits_galaxy_fails_check(work, capsys):
+    runfile = work / "run.toml"
+    runfile.write_text('dataset = "data"\nout = "run"\nstages = ["limits"]\n\n[limits]\n'
+                       'galaxy = [["G1", 10, 120, -5]]\n')
+    code, err = run_cli(["run", runfile, "--check"], capsys)
+    check_user_error(code, err, ["run.toml", "galaxy", "line 6"])
+
+
+@pytest.mark.parametrize("value", ["-10", "0", "nan"])
+def test_followup_nonpositive_max_time_refused(work, capsys, value):
+    code, err = run_cli(_explicit_followup(work, f"--max-time={value}"), capsys)
+    check_user_error(code, err, ["--max-time"])
+    assert not (work / "run").exists()
+
+
+def test_catalog_infinite_distance_refused_not_dropped(tmp_path):
+    from cwsearch.data.catalog import read_catalog
+
+    path = tmp_path / "g.csv"
+    path.write_text("name,ra,dec,distance,redshift\nA,10,20,40,0.01\nB,30,-5,inf,0.02\n")
+    with pytest.raises(InputError, match=r"row 2, column distance"):
+        read_catalog(path)
+
+
+def _finished_looking_scan(run_dir):
+    """A scan folder as a full disk during `scan` leaves it: candidates.ecsv but no scan_summary.json."""
+    from astropy.table import Table
+
+    t = Table({"frequency": [1e-8], "ra": [10.0], "dec": [10.0], "fe": [30.0], "fap": [1e-4], "fp": [1.0],
+               "strain": [1e-14], "inclination": [1.0], "polarization": [0.5], "phase": [1.0]})
+    t["frequency"].unit, t["ra"].unit, t["dec"].unit = "Hz", "deg", "deg"
+    (run_dir / "scan").mkdir(parents=True)
+    t.write(run_dir / "scan" / "candidates.ecsv", format="ascii.ecsv")
+
+
+def test_followup_refuses_scan_without_summary(work, capsys):
+    _finished_looking_scan(work / "run")
+    code, err = run_cli(["followup", work / "data", "--out", work / "run", "--quiet", "--red-components", "3",
+                         "--max-iterations", "10"], capsys)
+    check_user_error(code, err, ["candidates.ecsv", "scan_summary.json", "did not finish"])
+
+
+def test_hosts_refuses_scan_without_summary(work, capsys):
+    _finished_looking_scan(work / "run")
+    code, err = run_cli(["hosts", work / "run", "--catalog", work / "galaxies.csv", "--observed-span", "10",
+                         "--quiet"], capsys)
+    check_user_error(code, err, ["candidates.ecsv", "did not finish"])
+
+
+def test_hosts_refuses_posterior_without_summary(work, capsys):
+    from astropy.table import Table
+
+    n = 50
+    t = Table({"ra": np.full(n, 10.0), "dec": np.full(n, 20.0), "frequency": np.full(n, 1e-8),
+               "chirp_mass": np.full(n, 1e9), "strain": np.full(n, 1e-14)})
+    (work / "run" / "followup").mkdir(parents=True)
+    t.write(work / "run" / "followup" / "posterior.ecsv", format="ascii.ecsv")
+    code, err = run_cli(["hosts", work / "run", "--catalog", work / "galaxies.csv", "--observed-span", "10",
+                         "--quiet"], capsys)
+    check_user_error(code, err, ["posterior.ecsv", "summary.json", "did not finish"])
+
+
+def test_simulate_overwrite_keeps_unrelated_files(work, capsys):
+    target = work / "sim"
+    argv = ["simulate", target, "--pulsars", "3", "--years", "5", "--toas-per-pulsar", "30", "--quiet"]
+    assert run_cli(argv, capsys)[0] == 0
+    (target / "my_notes.txt").write_text("precious\n")
+    before = snapshot(target)
+    code, err = run_cli(argv + ["--overwrite", "--seed", "5"], capsys)
+    check_user_error(code, err, ["sim", "my_notes.txt", "more than a dataset"])
+    assert snapshot(target) == before
+    (target / "my_notes.txt").unlink()
+    code, err = run_cli(argv + ["--overwrite", "--seed", "5"], capsys)   # a pure dataset folder is replaced
+    assert code == 0, err
+
+
+# ------------------------------------------------------------------ legal input that was rejected
+
+
+def test_catalog_ra_720_5_wraps(tmp_path):
+    from cwsearch.data.catalog import read_catalog
+
+    path = tmp_path / "g.csv"
+    path.write_text("name,ra,dec,distance\nA,720.5,20,40\nB,-10,0,50\n")
+    cat = read_catalog(path)
+    np.testing.assert_allclose(cat.ra, [0.5, 350.0], rtol=0, atol=1e-12)   # ra modulo 360 (definition)
+
+
+def test_catalog_utf8_bom_csv_accepted(tmp_path):
+    from cwsearch.data.catalog import read_catalog
+
+    path = tmp_path / "g.csv"
+    path.write_bytes(b"\xef\xbb\xbfname,ra,dec,distance\nGAL\xc3\xa9,10,20,40\n")
+    cat = read_catalog(path)
+    assert list(cat.name) == ["GAL\u00e9"]
+
+
+# ------------------------------------------------------------------ faults: locks, checksums, leftovers, orphans
+
+
+def test_stage_command_refuses_run_folder_locked_by_live_run(work, capsys):
+    (work / "run").mkdir()
+    (work / "run" / ".lock").write_text(f"{socket.gethostname()} {os.getpid()}\n")
+    code, err = run_cli(scan_argv(work), capsys)
+    check_user_error(code, err, ["run", "another cwsearch run", str(os.getpid())])
+    assert not (work / "run" / "scan").exists()
+
+
+def test_lock_naming_another_host_is_not_stale(tmp_path):
+    from cwsearch.job.runfolder import LOCK_STALE_SECONDS, RunLock
+
+    lock = tmp_path / ".lock"
+    lock.write_text("some-other-node.cluster 12345\n")
+    with pytest.raises(InputError, match="some-other-node.cluster"):
+        with RunLock(tmp_path):
+            pass
+    assert lock.exists()   # never taken over while it may be live
+    old = time.time() - LOCK_STALE_SECONDS - 60
+    os.utime(lock, (old, old))
+    with RunLock(tmp_path):   # older than the stated age: taken over
+        assert socket.gethostname() in lock.read_text()
+    assert not lock.exists()
+
+
+def test_stage_command_refuses_run_of_another_dataset(work, capsys):
+    (work / "run").mkdir()
+    (work / "run" / "dataset.json").write_text(json.dumps({"checksum": "0" * 64}))
+    before = snapshot(work / "run")
+    for argv in (scan_argv(work), _explicit_followup(work)):
+        code, err = run_cli(argv, capsys)
+        check_user_error(code, err, ["run", "another dataset"])
+    assert snapshot(work / "run") == before
+
+
+def test_stage_command_records_its_dataset(work, capsys):
+    from cwsearch.data.dataset import dataset_checksum
+    from cwsearch.job.runfolder import recorded_checksum
+
+    code, err = run_cli(scan_argv(work), capsys)
+    assert code == 0, err
+    assert recorded_checksum(work / "run") == dataset_checksum(work / "data")
+    assert not (work / "run" / ".lock").exists()
+
+
+def test_part_files_cleaned_when_the_run_folder_is_locked(tmp_path):
+    from cwsearch.job.runfolder import RunLock
+
+    leftovers = [tmp_path / "scan" / ".spectrum.png.k3j2.part", tmp_path / ".provenance.json.x1.part",
+                 tmp_path / "limits" / "deep" / ".sky.ecsv.9.part"]
+    for p in leftovers:
+        p.parent.mkdir(parents=True, exist_ok=True)
+        p.write_text("half")
+    (tmp_path / ".data.x.part").mkdir()
+    keep = tmp_path / "scan" / "candidates.ecsv"
+    keep.write_text("kept")
+    with RunLock(tmp_path):
+        pass
+    assert not any(p.exists() for p in leftovers) and not (tmp_path / ".data.x.part").exists()
+    assert keep.read_text() == "kept"
+
+
+_ORPHAN_SCRIPT = """
+import sys, threading, time
+from cwsearch.inference.execution import TaskRunner
+runner = TaskRunner(workers=2).__enter__()
+threading.Thread(target=lambda: runner.map(time.sleep, [300, 300, 300]), daemon=True).start()
+while runner._pool is None or len(runner._pool._processes or {}) < 2:
+    time.sleep(0.05)
+print(" ".join(str(pid) for pid in runner._pool._processes), flush=True)
+time.sleep(300)
+"""
+
+
+def _gone(pid):
+    try:
+        with open(f"/proc/{pid}/stat") as fh:
+            return fh.read().rsplit(")", 1)[1].split()[0] == "Z"   # a zombie has ended
+    except FileNotFoundError:
+        return True
+
+
+def test_kill9_of_main_process_leaves_no_worker_processes():
+    proc = subprocess.Popen([sys.executable, "-c", _ORPHAN_SCRIPT], stdout=subprocess.PIPE, text=True)
+    try:
+        pids = [int(p) for p in proc.stdout.readline().split()]
+        assert len(pids) == 2 and not any(_gone(p) for p in pids)
+    finally:
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+    # liveness, not speed: the watchdog polls every 0.5 s; allow a generous minute on a loaded machine
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline and not all(_gone(p) for p in pids):
+        time.sleep(0.2)
+    alive = [p for p in pids if not _gone(p)]
+    for p in alive:
+        os.kill(p, signal.SIGKILL)
+    assert not alive, f"orphaned worker processes {alive}"
+
+
+# ------------------------------------------------------------------ security
+
+
+def _dataset_with_backend(folder, label):
+    from cwsearch.data.dataset import write_dataset
+    from cwsearch.data.model import Array, Pulsar
+    from tests.conftest import make_tiny_array
+
+    arr = make_tiny_array()
+    p = arr[0]
+    backends = np.array([label if b == p.backends[0] else b for b in p.backends])
+    q = Pulsar(p.name, ra=p.ra, dec=p.dec, distance=p.distance, distance_err=p.distance_err, mjd=p.mjd,
+               residuals=p.residuals, sigmas=p.sigmas, backends=backends, extra_design=p.extra_design,
+               extra_design_names=p.extra_design_names)
+    write_dataset(Array([q] + list(arr)[1:]), folder)
+
+
+def test_control_characters_escaped_in_inspect_output(tmp_path, capsys):
+    from cwsearch import cli
+
+    _dataset_with_backend(tmp_path / "d", "GBT\x1b]0;owned\x07\x1b[2J")
+    capsys.readouterr()
+    assert cli.main(["inspect", str(tmp_path / "d")]) == 0
+    out = capsys.readouterr().out
+    assert "\x1b" not in out and "\x07" not in out
+    assert "GBT\\x1b]0;owned\\x07" in out
+
+
+def test_control_characters_escaped_in_limits_galaxy_messages(work, capsys):
+    name = "G\x1b]0;owned\x07"
+    code, err = run_cli(["limits", work / "data", "--out", work / "run", "--quiet", "--galaxy", name, "10",
+                         "120", "5"], capsys)
+    check_user_error(code, err, ["--galaxy", "G\\x1b]0;owned\\x07"])
+    assert "\x1b" not in err and "\x07" not in err
+
+
+def test_escape_text_leaves_printable_text_alone():
+    from cwsearch.core.safeio import escape_text
+
+    assert escape_text("GAL 001 \u00e9\u4e2d") == "GAL 001 \u00e9\u4e2d"
+    assert escape_text("a\u202eb\x9bc\rd") == "a\\u202eb\\x9bc\\rd"   # bidi override, C1 CSI, carriage return
+
+
+def test_outputs_follow_the_umask(tmp_path):
+    from cwsearch.core.fileio import write_text_atomic
+
+    old = os.umask(0o022)
+    try:
+        write_text_atomic(tmp_path / "a.txt", "x")
+        os.umask(0o077)
+        write_text_atomic(tmp_path / "b.txt", "x")
+    finally:
+        os.umask(old)
+    assert (tmp_path / "a.txt").stat().st_mode & 0o777 == 0o644
+    assert (tmp_path / "b.txt").stat().st_mode & 0o777 == 0o600
+
+
+def test_size_cap_has_a_clear_message(tmp_path, monkeypatch):
+    from cwsearch.core.safeio import read_input_bytes
+
+    monkeypatch.setenv("CWSEARCH_MAX_INPUT_BYTES", "10")
+    (tmp_path / "big.ecsv").write_bytes(b"x" * 11)
+    with pytest.raises(InputError, match=r"big.ecsv: file is 11 bytes, above the 10-byte limit"):
+        read_input_bytes(tmp_path / "big.ecsv")
+
+
+def test_counts_have_upper_bounds():
+    from cwsearch.physics.noise import NoiseSettings
+
+    with pytest.raises(InputError, match="--red-components"):
+        NoiseSettings(red_components=10**9)
+    with pytest.raises(InputError, match="--red-components"):
+        NoiseSettings(red_components=-1)
