@@ -72,7 +72,11 @@ def test_stage_outputs_state_values_errors_bounds_and_choices(dataset):
         for w in p["white"].values():
             assert w["sigma_scale_err"] > 0 and np.isfinite(w["sigma_added_s"])
         assert p["goodness_of_fit"]["normality_pvalue"] is not None
-    assert s["common"]["statistic"] >= 0 and s["common"]["correlation"] == "uncorrelated"
+    # the run's default common_correlation is Hellings-Downs: the fit used the correlated array likelihood
+    # and states its likelihood ratio against the uncorrelated fit
+    assert s["common"]["statistic"] >= 0 and s["common"]["correlation"] == NoiseSettings().common_correlation
+    if s["common"]["correlation"] == "hellings-downs":
+        assert s["common"]["correlated_vs_uncorrelated"]["statistic"] is not None
     assert s["common"]["contour"]["delta_2lnL"]
 
 
