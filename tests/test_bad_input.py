@@ -290,7 +290,7 @@ def test_unknown_command(capsys):
 
 
 SIMULATE_CASES = [
-    # 1e11 Msun at 1e-7 Hz merges within hours (t_c formula, Peters 1964; CHECKS.md): far inside a 5-yr span
+    # 1e11 Msun at 1e-7 Hz merges within hours (t_c formula, Peters 1964, Phys. Rev. 136, B1224): far inside a 5-yr span
     ("chirp-mass-coalesces", ["--inject-strain", "1e-14", "--inject-frequency", "1e-7", "--inject-ra", "10",
                               "--inject-dec", "20", "--inject-chirp-mass", "1e11"], ["merges", "inside the data span"]),
     ("pulsars-zero", ["--pulsars", "0"], ["--pulsars"]),
@@ -407,7 +407,7 @@ def test_bad_catalog(work, capsys, damage, expect):
     (work / "run").mkdir()
     (work / "run" / "keep.txt").write_text("earlier results\n")
     before = snapshot(work)
-    code, err = run_cli(["hosts", work / "run", "--catalog", catalog, "--observed-span", "10", "--quiet"], capsys)
+    code, err = run_cli(["hosts", "--out", work / "run", "--catalog", catalog, "--observed-span", "10", "--quiet"], capsys)
     check_user_error(code, err, expect)
     assert snapshot(work) == before
 

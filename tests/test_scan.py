@@ -31,7 +31,7 @@ def noise_array():
 
 # ---------------------------------------------------------------- grid and options
 def test_frequency_grid_definition():
-    # docs/design.md section 6 / issue 3: from 1/T_span, spacing 1/(oversample T_span); default top = the
+    # docs/design.md §6 / issue 3: from 1/T_span, spacing 1/(oversample T_span); default top = the
     # Nyquist-like limit 1/(2 x median spacing) capped at 1e-6 Hz (common practice, no source)
     arr = invented_array(n_pulsars=3, years=10, seed=2, cadence_days=14.0)
     f = scan.frequency_grid(arr, oversample=3)

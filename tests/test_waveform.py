@@ -1,6 +1,6 @@
 """Waveform: frequency evolution, conversions, antenna patterns and the residual model against outside checks.
 
-Sources are named beside each check (see shared/CHECKS.md). Reference numbers are
+Sources are named beside each check (published papers, astropy, or common practice). Reference numbers are
 computed in the tests from astropy.constants / astropy.units, independently of
 cwsearch.core.constants.
 """
@@ -83,7 +83,7 @@ def test_frequency_derivative_formula():
 
 # ------------------------------------------------------------------ worked numbers
 @pytest.mark.parametrize("chirp_mass, years, rel", [
-    (1e9, 4.42e4, 5e-3),    # CHECKS.md: Peters & Mathews 1963, number computed with astropy (3 digits)
+    (1e9, 4.42e4, 5e-3),    # Peters & Mathews 1963; Peters 1964, number computed with astropy (3 digits)
     (1e10, 952.0, 1e-3),
 ])
 def test_time_to_coalescence_numbers(chirp_mass, years, rel):
@@ -95,7 +95,7 @@ def test_time_to_coalescence_numbers(chirp_mass, years, rel):
 
 def test_strain_amplitude_number():
     """h0 = 2 (G Mc)^(5/3) (π f)^(2/3) / (c^4 d_L): 1e9 Msun, 10 nHz, 100 Mpc -> 2.76e-15
-    (Sesana & Vecchio 2010 form; number computed with astropy, CHECKS.md)."""
+    (Sesana & Vecchio 2010 form; number computed with astropy)."""
     assert waveform.strain_amplitude(1e9, 10e-9, 100.0) == pytest.approx(2.76e-15, rel=2e-3)
     mc, f, d = 1e9 * u.M_sun, 10 * u.nHz, 100 * u.Mpc
     exact = (2 * (const.G * mc) ** (5 / 3) * (np.pi * f) ** (2 / 3) / (const.c**4 * d)).to_value(u.dimensionless_unscaled)
@@ -108,7 +108,7 @@ def test_strain_amplitude_number():
 ])
 def test_babak_2016_strain_distance_statement(chirp_mass, low, high):
     """Babak et al. 2016 (MNRAS 455, 1665, abstract): h0 ≈ 1e-14 at ≈ 6 nHz reaches Mc = 1e10 Msun to ≈ 1 Gpc and
-    1e9 Msun to ≈ 20-25 Mpc; tolerance ±30 % (CHECKS.md)."""
+    1e9 Msun to ≈ 20-25 Mpc; tolerance ±30 % (Babak et al. 2016, MNRAS 455, 1665, abstract)."""
     d = waveform.luminosity_distance_for_strain(1e-14, chirp_mass, 6e-9)
     assert 0.7 * low <= d <= 1.3 * high
     # the inverse conversions agree
@@ -117,7 +117,7 @@ def test_babak_2016_strain_distance_statement(chirp_mass, low, high):
 
 
 def test_chirp_mass_definition():
-    """Mc = (m1 m2)^(3/5) / (m1 + m2)^(1/5): 1e9 + 1e9 Msun -> 8.706e8 Msun (definition, CHECKS.md)."""
+    """Mc = (m1 m2)^(3/5) / (m1 + m2)^(1/5): 1e9 + 1e9 Msun -> 8.706e8 Msun (definition, common practice)."""
     assert waveform.chirp_mass_from_masses(1e9, 1e9) == pytest.approx(8.706e8, rel=1e-4)
     assert waveform.chirp_mass_from_masses(1e9 * u.M_sun, 1e9 * u.M_sun) == pytest.approx(8.706e8, rel=1e-4)
 
@@ -130,7 +130,7 @@ def test_orbital_period_fact():
 
 # ------------------------------------------------------------------ constants
 def test_constants_match_astropy():
-    """IAU 2015 / CODATA constants via astropy.constants (CHECKS.md units row)."""
+    """IAU 2015 / CODATA constants via astropy.constants."""
     assert constants.SOLAR_MASS_SECONDS == pytest.approx(MSUN_SECONDS, rel=1e-9)
     assert constants.SOLAR_MASS_SECONDS == pytest.approx(4.925491e-6, rel=1e-7)
     assert constants.KPC_SECONDS == pytest.approx((1 * u.kpc / const.c).to_value(u.s), rel=1e-14)
@@ -139,19 +139,19 @@ def test_constants_match_astropy():
     assert constants.SPEED_OF_LIGHT == const.c.to_value(u.m / u.s)
     assert constants.YEAR_SECONDS == YEAR
     assert constants.DAY_SECONDS == (1 * u.day).to_value(u.s)
-    # 1 kpc = 3261.6 light years (CHECKS.md)
+    # 1 kpc = 3261.6 light years (IAU 2015 constants via astropy.constants)
     assert constants.KPC_SECONDS / constants.YEAR_SECONDS == pytest.approx(3261.6, abs=0.05)
     assert (1 * u.kpc).to_value(u.lyr) == pytest.approx(3261.6, abs=0.05)
 
 
 def test_fact_strain_times_distance():
-    """Strain 1e-15 over 2035 ly is about 19.3 km (fact of the trade, CHECKS.md), with our constants."""
+    """Strain 1e-15 over 2035 ly is about 19.3 km (fact of the trade, common practice, no source), with our constants."""
     stretch_km = 1e-15 * 2035 * constants.YEAR_SECONDS * constants.SPEED_OF_LIGHT / 1e3
     assert stretch_km == pytest.approx(19.3, abs=0.05)
 
 
 def test_fact_residual_amplitude_31_8_ns():
-    """Residual amplitude h0/(2π f): 31.8 ns for h0 = 1e-15 at 5 nHz (fact of the trade, CHECKS.md):
+    """Residual amplitude h0/(2π f): 31.8 ns for h0 = 1e-15 at 5 nHz (fact of the trade, common practice, no source):
     the Earth-term basis envelope of a monochromatic source is 1/(2π f)."""
     t = np.linspace(0, 10 * YEAR, 500)
     basis, _ = waveform.residual_basis(t, 0.0, 5e-9, 1e9, 1.0, 0.0, "monochromatic")

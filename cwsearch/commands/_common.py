@@ -44,6 +44,10 @@ def add_noise_arguments(parser):
                    help="add a common red process with this log10 amplitude (--noise-model dataset; default: none)")
     g.add_argument("--common-index", type=float, default=13 / 3, metavar="GAMMA",
                    help="spectral index of the common process (default 13/3)")
+    g.add_argument("--no-white-noise-factors", action="store_true",
+                   help="ignore the dataset's per-backend white-noise factors (noise.ecsv sigma_scale, "
+                        "sigma_added); run-file key [noise] white_noise_factors")
+
     g.add_argument("--common-correlation", choices=("hellings-downs", "uncorrelated", "none"),
                    default="hellings-downs",
                    help="how the common process couples the pulsars: hellings-downs (default; array-level "
@@ -62,6 +66,7 @@ def noise_settings(args):
                          pulsar_red_noise=not args.no_pulsar_red_noise,
                          common_log10_amplitude=args.common_log10_amplitude,
                          common_index=args.common_index,
+                         white_noise_factors=not getattr(args, "no_white_noise_factors", False),
                          common_correlation=getattr(args, "common_correlation", "hellings-downs"),
                          common_components=getattr(args, "common_components", None))
 

@@ -3,7 +3,10 @@
 from __future__ import annotations
 
 import json
-from dataclasses import fields
+from dataclasses import fields, replace
+from pathlib import Path
+
+from ..core.errors import InputError
 
 from ._common import (add_dataset_arguments, add_noise_arguments, load_array, resolve_noise,
                       run_folder_guard, run_stage_with_noise)
@@ -25,10 +28,16 @@ EXAMPLE = (
 def add_arguments(parser):
     add_dataset_arguments(parser)
     g = parser.add_argument_group("what to follow")
-    g.add_argument("--candidate", type=int, default=None, metavar="K",
-                   help="follow row K (1-based) of scan/candidates.ecsv")
+    g.add_argument("--candidate", default=None, metavar="K|candidate_K",
+                   help="follow row K (1 = best) of scan/candidates.ecsv; its name candidate_K works too")
     g.add_argument("--top", type=int, default=1, metavar="N",
                    help="follow the N best candidates (default 1; a subfolder each when N > 1)")
+    g.add_argument("--fap-threshold", type=float, default=None, metavar="P",
+                   help="follow the best candidates whose analytic false-alarm probability is below P (at most "
+                        "--max-candidates); run-file key [followup] fap_threshold")
+    g.add_argument("--max-candidates", type=int, default=None, metavar="N",
+                   help="with --fap-threshold: at most N candidates (default 3); run-file key "
+                        "[followup] max_candidates")
     g.add_argument("--frequency", type=float, default=None, metavar="HZ", help="explicit target frequency [Hz]")
     g.add_argument("--ra", type=float, default=None, metavar="DEG", help="explicit target right ascension [deg]")
     g.add_argument("--dec", type=float, default=None, metavar="DEG", help="explicit target declination [deg]")
@@ -65,11 +74,33 @@ def add_arguments(parser):
     add_noise_arguments(parser)
 
 
+def threshold_top(run_dir, fap_threshold, max_candidates) -> int:
+    """How many of the best scan candidates have an analytic FAP below ``fap_threshold`` (at most
+    ``max_candidates``; at least 1 is an error message, not a silent empty run)."""
+    # lazy: the numerical code behind a command's run (keeps `cwsearch --help` fast)
+    import numpy as np
+    from ..job.runfolder import read_table as _read_table
+
+    path = Path(run_dir) / "scan" / "candidates.ecsv"
+    table = _read_table(path) if path.is_file() else None
+    if table is None or "fap" not in table.colnames:
+        raise InputError("--fap-threshold needs the scan's candidates.ecsv (run cwsearch scan first)", file=path)
+    threshold = 0.01 if fap_threshold is None else float(fap_threshold)
+    n = int(np.sum(np.asarray(table["fap"], dtype=float) < threshold))
+    if n == 0:
+        raise InputError(f"--fap-threshold {threshold:g}: no scan candidate is below it "
+                         f"(best {float(np.min(table['fap'])):.2g})", file=path)
+    return min(n, int(max_candidates))
+
+
 def run(args) -> int:
     # lazy: keeps `cwsearch COMMAND --help` fast
     from ..stages.followup.stage import FollowupOptions, run_followup
 
     options = FollowupOptions(**{f.name: getattr(args, f.name) for f in fields(FollowupOptions)})
+    if args.fap_threshold is not None or args.max_candidates is not None:
+        options = replace(options, top=threshold_top(args.out, args.fap_threshold,
+                                                     3 if args.max_candidates is None else args.max_candidates))
     array = load_array(args)
     with run_folder_guard(args.out, array, args.dataset):
         resolved = resolve_noise(args, array)

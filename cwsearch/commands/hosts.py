@@ -2,6 +2,9 @@
 
 from __future__ import annotations
 
+import sys
+
+from ..core.errors import InputError
 from ._common import run_folder_guard
 
 DESCRIPTION = (
@@ -13,13 +16,16 @@ DESCRIPTION = (
     "hosts_summary.json and plots. A host association is a probability, not an identification."
 )
 
-EXAMPLE = """  cwsearch hosts runs/first --catalog catalogs/demo_galaxies.ecsv
-  cwsearch hosts runs/first --catalog my.csv --columns ra=RAJ2000,dec=DEJ2000,distance=Dist --completeness 0.3
-  cwsearch hosts runs/first --catalog catalogs/demo_galaxies.ecsv --relation kormendy-ho --top 20 --json"""
+EXAMPLE = """  cwsearch hosts --out runs/first --catalog catalogs/demo_galaxies.ecsv
+  cwsearch hosts --out runs/first --catalog my.csv --columns ra=RAJ2000,dec=DEJ2000,distance=Dist --completeness 0.3
+  cwsearch hosts --out runs/first --catalog catalogs/demo_galaxies.ecsv --candidate candidate_2 --json"""
 
 
 def add_arguments(parser):
-    parser.add_argument("run_dir", metavar="RUN_DIR", help="run folder with followup/ or scan/ results")
+    parser.add_argument("--out", metavar="RUN_DIR", default=None,
+                        help="run folder with followup/ or scan/ results (as in every other command)")
+    parser.add_argument("run_dir", metavar="RUN_DIR", nargs="?", default=None,
+                        help="deprecated spelling of --out RUN_DIR (still accepted, with a note)")
     parser.add_argument("--catalog", required=True, metavar="FILE", help="galaxy catalogue (ECSV or CSV)")
     parser.add_argument("--columns", metavar="MAP", default=None,
                         help="map our column names to the file's, e.g. ra=RAJ2000,dec=DEJ2000,distance=Dist")
@@ -43,7 +49,8 @@ def add_arguments(parser):
                    help="observed span for the coalescence check (default 15 yr)")
     g = parser.add_argument_group("localisation")
     g.add_argument("--candidate", default=None, metavar="NAME",
-                   help="follow-up sub-folder, or scan candidate row (1 = best) when there is no posterior")
+                   help="candidate name candidate_K or row K (1 = best): its follow-up posterior, or the scan "
+                        "candidate when there is no posterior")
     g.add_argument("--sky-bandwidth", type=float, default=None, metavar="DEG",
                    help="sky kernel bandwidth (default: Scott's rule from the samples)")
     g.add_argument("--resolution", type=float, default=10.0, metavar="DEG",
@@ -58,6 +65,19 @@ def add_arguments(parser):
     parser.add_argument("--json", action="store_true", help="print the summary as JSON")
 
 
+def run_folder(args):
+    """The run folder: ``--out RUN_DIR`` (the convention of every command) or the old positional form."""
+    if args.out and args.run_dir and args.out != args.run_dir:
+        raise InputError(f"two run folders given ({args.run_dir} and --out {args.out}); give only --out")
+    if args.out:
+        return args.out
+    if args.run_dir:
+        print(f"cwsearch hosts: note: the positional run folder is deprecated; write --out {args.run_dir} "
+              "(the same as every other command)", file=sys.stderr)
+        return args.run_dir
+    raise InputError("give the run folder with --out RUN_DIR")
+
+
 def run(args) -> int:
     # lazy: keeps `cwsearch COMMAND --help` fast
     from ..stages.hosts.stage import HostsOptions, format_table, run_hosts, summary_json
@@ -69,8 +89,9 @@ def run(args) -> int:
                            resolution=args.resolution, sky_map=args.sky_map, candidate=args.candidate,
                            observed_span=args.observed_span, max_samples=args.max_samples,
                            no_plots=args.no_plots)
-    with run_folder_guard(args.run_dir):
-        result = run_hosts(None, args.run_dir, options, seed=args.seed, progress=not (args.quiet or args.json))
+    run_dir = run_folder(args)
+    with run_folder_guard(run_dir):
+        result = run_hosts(None, run_dir, options, seed=args.seed, progress=not (args.quiet or args.json))
     if args.json:
         print(summary_json(result))
     elif not args.quiet:

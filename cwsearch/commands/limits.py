@@ -88,6 +88,29 @@ def _fmt(v):
     return "-" if v is None else f"{v:.3e}"
 
 
+def method_lines(summary) -> list:
+    """One line per limit method: the sky-averaged limit and the best sky position's limit.
+
+    A frequentist limit of 0 at a pixel is empty (the observed Fe is below what noise alone gives 95 % of
+    the time), not a best sky position: those pixels are counted, never quoted as the best limit.
+    """
+    lines = []
+    for method in ("bayes", "frequentist"):
+        if method not in summary:
+            continue
+        s = summary[method]
+        best = s.get("best_pixel_strain_95")
+        text = (f"  {method:<11} sky-averaged h95 = {_fmt(s['strain_95_at_best_frequency'])} at "
+                f"{summary['best_frequency']:.3e} Hz (best sky position "
+                + (_fmt(best) if best else "none with a positive limit"))
+        empty = s.get("pixels_with_empty_limit") or 0
+        if empty:
+            text += (f"; {empty} of {summary.get('n_pixels', '?')} pixels have an empty limit: observed Fe below "
+                     "the noise-only 95 % range")
+        lines.append(text + ")")
+    return lines
+
+
 def run(args) -> int:
     # lazy: keeps `cwsearch COMMAND --help` fast
     from ..stages.limits.stage import parse_galaxies, run_limits
@@ -109,11 +132,10 @@ def run(args) -> int:
     print(f"95 % strain upper limits at {summary['n_frequencies']} frequencies {lo:.3e}-{hi:.3e} Hz x "
           f"{summary['n_pixels']} sky pixels (nside {summary['nside']}) in {summary['wall_time']:.1f} s "
           f"on {summary['engine']}")
-    for method in ("bayes", "frequentist"):
-        if method in summary:
-            s = summary[method]
-            print(f"  {method:<11} sky-averaged h95 = {_fmt(s['strain_95_at_best_frequency'])} at "
-                  f"{summary['best_frequency']:.3e} Hz (best sky position {_fmt(s['best_pixel_strain_95'])})")
+    if summary.get("fmax_note"):
+        print(f"  note: {summary['fmax_note']}")
+    for line in method_lines(summary):
+        print(line)
     for name, g in summary.get("galaxies", {}).items():
         print(f"  galaxy {escape_text(name)} ({g['distance']:.3g} Mpc): chirp mass < {_fmt(g['chirp_mass_95_min'])} Msun "
               f"at {g['at_frequency']:.3e} Hz")

@@ -41,13 +41,73 @@ def _wrap_ra(ra):
     return -lon
 
 
+def _pixels(nside, ra, dec):
+    """HEALPix RING pixel of each (ra, dec) [rad], straight from astropy-healpix (as physics.sky.pixel_of;
+    this floor may not import physics)."""
+    return np.asarray(HEALPix(nside=int(nside), order="ring").lonlat_to_healpix(
+        np.asarray(ra) * u.rad, np.asarray(dec) * u.rad))
+
+
+def _outlined(texts, color="black"):
+    """Give tick labels a white outline so they read on any colour of the map."""
+    # lazy: a heavy import, loaded only when this runs
+    import matplotlib.patheffects as pe
+
+    for t in texts:
+        t.set_path_effects([pe.withStroke(linewidth=2.5, foreground="white")])
+        t.set_color(color)
+
+
+def _zoom_panel(ax, values, nside, centre, radius, *, cmap, norm, contours, pulsars, marks, truth):
+    """A flat (cartesian, degrees) zoom of the map around ``centre`` = (ra, dec) [rad], half-width ``radius`` [deg]."""
+    ra0, dec0 = np.degrees(centre[0]), np.degrees(centre[1])
+    half_ra = min(radius / max(np.cos(np.radians(dec0)), 0.2), 180.0)
+    ra_grid = np.linspace(ra0 - half_ra, ra0 + half_ra, 240)
+    dec_grid = np.linspace(max(dec0 - radius, -90), min(dec0 + radius, 90), 200)
+    rg, dg = np.meshgrid(ra_grid, dec_grid)
+    pix = _pixels(nside, np.radians(np.remainder(rg, 360)), np.radians(dg))
+    ax.pcolormesh(rg, dg, np.asarray(values)[pix], cmap=cmap, norm=norm, shading="auto")
+    for levels, level_map in contours or []:
+        ax.contour(rg, dg, np.asarray(level_map)[pix], levels=levels, colors="black", linewidths=1.0,
+                   linestyles=["-", "--"][:len(levels)])
+
+    def near(ra, dec):
+        ra = np.degrees(np.asarray(ra, dtype=float))
+        ra = ra0 + (np.remainder(ra - ra0 + 180, 360) - 180)   # unwrap next to the centre
+        return ra, np.degrees(np.asarray(dec, dtype=float))
+
+    if pulsars is not None:
+        x, y = near(*pulsars)
+        ax.scatter(x, y, marker="*", s=70, c="white", edgecolors="black", linewidths=0.6, zorder=3)
+    for mark in marks or []:
+        x, y = near(mark["ra"], mark["dec"])
+        ax.scatter(x, y, marker=mark.get("marker", "x"), s=mark.get("size", 60), c=mark.get("color", "red"),
+                   zorder=4, edgecolors=mark.get("edge", None))
+        if mark.get("text"):
+            label = ax.annotate(mark["text"], (float(np.atleast_1d(x)[0]), float(np.atleast_1d(y)[0])),
+                                xytext=(6, 6), textcoords="offset points", fontsize=8)
+            _outlined([label])
+    if truth is not None:
+        x, y = near(*truth)
+        ax.scatter(x, y, marker="P", s=110, c="#e6007e", edgecolors="black", linewidths=0.7, zorder=5)
+    ax.set_xlim(ra0 + half_ra, ra0 - half_ra)     # east to the left
+    ax.set_ylim(dec_grid[0], dec_grid[-1])
+    ax.set_xlabel("right ascension [deg]")
+    ax.set_ylabel("declination [deg]")
+    ax.set_title(f"zoom: {2 * radius:.0f}° across", fontsize=9)
+    ax.set_aspect(1 / max(np.cos(np.radians(dec0)), 0.2))
+    ax.grid(alpha=0.3)
+
+
 def sky_map(path, values, nside, *, title="", label="", pulsars=None, marks=None, log=False,
-            cmap="viridis", contours=None):
-    """Mollweide map of a HEALPix (RING) map, pulsars as white stars, optional marked points.
+            cmap="viridis", contours=None, truth=None, zoom=None):
+    """Mollweide map of a HEALPix (RING) map: light background, pulsars as stars, marked points.
 
     ``pulsars``: (ra, dec) arrays [rad]; ``marks``: list of dicts with keys
-    ``ra``, ``dec`` [rad], optional ``label``, ``color``, ``marker``, ``size``.
-    ``contours``: optional list of (levels, map) drawn as contour lines.
+    ``ra``, ``dec`` [rad], optional ``label``, ``color``, ``marker``, ``size``, ``text`` (a label drawn in
+    the zoom panel). ``contours``: optional list of (levels, map) drawn as contour lines. ``truth``:
+    (ra, dec) [rad] of an injected source, drawn as a magenta plus. ``zoom``: (ra, dec [rad], half-width
+    [deg]) adds a flat zoom panel around that point. Legends sit below the map, never over it.
     """
     plt = pyplot()
     res = 360
@@ -59,33 +119,64 @@ def sky_map(path, values, nside, *, title="", label="", pulsars=None, marks=None
     pix = np.asarray(HEALPix(nside=int(nside), order="ring").lonlat_to_healpix(
         np.remainder(-lon_g, 2 * np.pi) * u.rad, lat_g * u.rad))
     grid = np.asarray(values)[pix]
-    fig = plt.figure(figsize=(8, 4.6))
-    ax = fig.add_subplot(111, projection="mollweide")
+    if zoom is not None:
+        fig = plt.figure(figsize=(12, 4.9))
+        ax = fig.add_axes([0.02, 0.2, 0.6, 0.72], projection="mollweide")
+        zax = fig.add_axes([0.69, 0.2, 0.29, 0.72])
+        cax = fig.add_axes([0.12, 0.1, 0.4, 0.035])
+    else:
+        fig = plt.figure(figsize=(8.5, 5.2))
+        ax = fig.add_axes([0.04, 0.22, 0.92, 0.7], projection="mollweide")
+        cax = fig.add_axes([0.25, 0.1, 0.5, 0.035])
+        zax = None
     if log:
         # lazy: a heavy import, loaded only when this runs
         from matplotlib.colors import LogNorm
 
-        mesh = ax.pcolormesh(lon_g, lat_g, grid, cmap=cmap, shading="auto",
-                             norm=LogNorm(vmin=np.nanmin(grid[grid > 0]), vmax=np.nanmax(grid)))
+        positive = grid[np.isfinite(grid) & (grid > 0)]
+        norm = LogNorm(vmin=positive.min(), vmax=positive.max()) if positive.size else None
     else:
-        mesh = ax.pcolormesh(lon_g, lat_g, grid, cmap=cmap, shading="auto")
+        # lazy: a heavy import, loaded only when this runs
+        from matplotlib.colors import Normalize
+
+        finite = grid[np.isfinite(grid)]
+        norm = Normalize(vmin=finite.min(), vmax=finite.max()) if finite.size else None
+    mesh = ax.pcolormesh(lon_g, lat_g, grid, cmap=cmap, norm=norm, shading="auto")
     if contours:
-        for levels, cmap_values in contours:
-            ax.contour(lon_g, lat_g, np.asarray(cmap_values)[pix], levels=levels, colors="white",
-                       linewidths=1.0)
+        for levels, level_map in contours:
+            ax.contour(lon_g, lat_g, np.asarray(level_map)[pix], levels=levels, colors="black",
+                       linewidths=0.9, linestyles=["-", "--"][:len(levels)])
+    handles = []
     if pulsars is not None:
-        ax.scatter(_wrap_ra(pulsars[0]), pulsars[1], marker="*", s=60, c="white", edgecolors="black",
-                   linewidths=0.5, label="pulsars", zorder=3)
+        handles.append(ax.scatter(_wrap_ra(pulsars[0]), pulsars[1], marker="*", s=60, c="white",
+                                  edgecolors="black", linewidths=0.6, label="pulsars", zorder=3))
     for mark in marks or []:
-        ax.scatter(_wrap_ra(mark["ra"]), mark["dec"], marker=mark.get("marker", "x"),
-                   s=mark.get("size", 60), c=mark.get("color", "red"), label=mark.get("label"), zorder=4)
-    ax.set_xticklabels([f"{int(h)}h" for h in np.linspace(10, -10, 11) % 24])
-    ax.grid(True, alpha=0.3)
-    fig.colorbar(mesh, ax=ax, orientation="horizontal", pad=0.06, fraction=0.05, label=label)
+        h = ax.scatter(_wrap_ra(mark["ra"]), mark["dec"], marker=mark.get("marker", "x"),
+                       s=mark.get("size", 60), c=mark.get("color", "red"), label=mark.get("label"), zorder=4,
+                       edgecolors=mark.get("edge", None))
+        if mark.get("label"):
+            handles.append(h)
+    if truth is not None:
+        handles.append(ax.scatter(_wrap_ra(truth[0]), truth[1], marker="P", s=110, c="#e6007e",
+                                  edgecolors="black", linewidths=0.7, label="truth (injection.json)", zorder=5))
+    if zoom is not None:
+        handles.append(ax.scatter(_wrap_ra(zoom[0]), zoom[1], marker="o", s=260, facecolors="none",
+                                  edgecolors="black", linewidths=1.0, label="zoomed region (right)", zorder=4))
+    ax.set_xticks(np.radians(np.arange(-150, 181, 30)))
+    ax.set_xticklabels([f"{int(h)}h" for h in (np.arange(-150, 181, 30) // -15) % 24], fontsize=8)
+    _outlined(ax.get_xticklabels())
+    _outlined(ax.get_yticklabels())
+    ax.tick_params(axis="y", labelsize=8)
+    ax.grid(True, color="grey", alpha=0.4)
+    fig.colorbar(mesh, cax=cax, orientation="horizontal", label=label)
     if title:
-        ax.set_title(title, pad=14)
-    if pulsars is not None or marks:
-        ax.legend(loc="lower right", fontsize=7, framealpha=0.6)
+        ax.set_title(title, pad=12)
+    if handles:
+        fig.legend(handles=handles, loc="lower right", bbox_to_anchor=(0.99 if zoom is None else 0.66, 0.0),
+                   fontsize=7.5, frameon=False, ncol=1)
+    if zax is not None:
+        _zoom_panel(zax, values, nside, zoom[:2], zoom[2], cmap=cmap, norm=norm, contours=contours,
+                    pulsars=pulsars, marks=marks, truth=truth)
     save_figure(fig, path)
 
 

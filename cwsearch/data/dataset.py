@@ -156,7 +156,9 @@ def read_dataset(path, *, mjd_range=None) -> Array:
                               sigmas=data["sigma"], backends=data["backend"],
                               extra_design=data["design"], extra_design_names=data["design_names"],
                               noise=noise[row["name"]]))
-    return Array(pulsars)
+    array = Array(pulsars)
+    array.source = folder  # the dataset folder (plots read its injection.json, when present, for the truth)
+    return array
 
 
 def _mjd_range(mjd_range):

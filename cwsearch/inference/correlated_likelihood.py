@@ -143,12 +143,12 @@ def _grid_moments(a, b, c, d, e, out):
 
 
 @njit(cache=True)
-def _mean_field_one(w, fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, cross, max_sweeps, tol, out,
+def _mean_field_one(w, fplus, fcross, strain, cos_inclination, psi, phase, dvec, gmat, cross, max_sweeps, tol, out,
                     sweeps):
     """ln Λ of walker w: per-pulsar factors as in the uncorrelated kernel, coupled by
     ``½ Σ_{p≠q} u_pᵀ J_pq u_q`` (u = (cosχ, sinχ), J_pq = a_p a_q Ω_pq) in mean field."""
     n_p = fplus.shape[1]
-    ci = cos_inc[w]
+    ci = cos_inclination[w]
     c2p, s2p = np.cos(2 * psi[w]), np.sin(2 * psi[w])
     c0, s0 = np.cos(2 * phase[w]), np.sin(2 * phase[w])
     h = strain[w]
@@ -210,18 +210,18 @@ def _mean_field_one(w, fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, c
 
 
 @njit(cache=True, parallel=True)
-def _mean_field_parallel(fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, cross, max_sweeps, tol, out,
+def _mean_field_parallel(fplus, fcross, strain, cos_inclination, psi, phase, dvec, gmat, cross, max_sweeps, tol, out,
                          sweeps):
     for w in prange(fplus.shape[0]):
-        _mean_field_one(w, fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, cross, max_sweeps, tol, out,
+        _mean_field_one(w, fplus, fcross, strain, cos_inclination, psi, phase, dvec, gmat, cross, max_sweeps, tol, out,
                         sweeps)
 
 
 @njit(cache=True)
-def _mean_field_serial(fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, cross, max_sweeps, tol, out,
+def _mean_field_serial(fplus, fcross, strain, cos_inclination, psi, phase, dvec, gmat, cross, max_sweeps, tol, out,
                        sweeps):
     for w in range(fplus.shape[0]):
-        _mean_field_one(w, fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, cross, max_sweeps, tol, out,
+        _mean_field_one(w, fplus, fcross, strain, cos_inclination, psi, phase, dvec, gmat, cross, max_sweeps, tol, out,
                         sweeps)
 
 
@@ -349,20 +349,20 @@ class CorrelatedLikelihood(Likelihood):
         par = self.physical(theta)
         fplus, fcross, dvec, gmat, beta = self.correlated_shape_batch(par["ra"], par["dec"], par["gw_frequency"],
                                                                       par["chirp_mass"])
-        cos_inc = np.ascontiguousarray(theta[:, 5])
-        earth = earth_coefficients(par["strain"], cos_inc, par["polarization"], par["phase"], fplus, fcross)
+        cos_inclination = np.ascontiguousarray(theta[:, 5])
+        earth = earth_coefficients(par["strain"], cos_inclination, par["polarization"], par["phase"], fplus, fcross)
         dvec, gmat, earth_corr, cross = correlated_terms(self._psi, earth, dvec, gmat, beta, self.pulsar_term)
-        return self._marginal(fplus, fcross, par["strain"], cos_inc, par["polarization"], par["phase"], dvec, gmat,
+        return self._marginal(fplus, fcross, par["strain"], cos_inclination, par["polarization"], par["phase"], dvec, gmat,
                               cross) + earth_corr
 
-    def _marginal(self, fplus, fcross, strain, cos_inc, polarization, phase, dvec, gmat, cross):
+    def _marginal(self, fplus, fcross, strain, cos_inclination, polarization, phase, dvec, gmat, cross):
         if cross is None:           # Earth term only: no pulsar phases
             out = np.empty(fplus.shape[0])
-            _projection_batch(fplus, fcross, np.ascontiguousarray(strain), np.ascontiguousarray(cos_inc),
+            _projection_batch(fplus, fcross, np.ascontiguousarray(strain), np.ascontiguousarray(cos_inclination),
                               np.ascontiguousarray(polarization), np.ascontiguousarray(phase), dvec, gmat,
                               False, self.phase_grid, out)
             return out
-        return mean_field_log_likelihood(fplus, fcross, strain, cos_inc, polarization, phase, dvec, gmat, cross)
+        return mean_field_log_likelihood(fplus, fcross, strain, cos_inclination, polarization, phase, dvec, gmat, cross)
 
     def shape_cache(self, ra, dec, gw_frequency, chirp_mass) -> CorrelatedShapeCache:
         """Exact products for one shape (direct basis series through the engines)."""
@@ -398,8 +398,8 @@ class CorrelatedLikelihood(Likelihood):
         n_w = strain.shape[0]
         fplus = np.ascontiguousarray(np.broadcast_to(cache.fplus, (n_w, self.n_pulsars)))
         fcross = np.ascontiguousarray(np.broadcast_to(cache.fcross, (n_w, self.n_pulsars)))
-        cos_inc = np.ascontiguousarray(np.cos(inclination))
-        earth = earth_coefficients(strain, cos_inc, polarization, phase, fplus, fcross)
+        cos_inclination = np.ascontiguousarray(np.cos(inclination))
+        earth = earth_coefficients(strain, cos_inclination, polarization, phase, fplus, fcross)
         # the cached Ω gives the same three terms as correlated_terms without Ψ
         omega = cache.omega
         earth_corr = 0.5 * np.einsum("wpi,piqj,wqj->w", earth, omega[:, :2, :, :2], earth)
@@ -413,7 +413,7 @@ class CorrelatedLikelihood(Likelihood):
             cross = omega[:, 2:, :, 2:].transpose(0, 2, 1, 3).copy()
             cross[idx, idx] = 0.0
             cross = np.broadcast_to(cross, (n_w,) + cross.shape)
-        return self._marginal(fplus, fcross, strain, cos_inc, polarization, phase, dvec, gmat, cross) + earth_corr
+        return self._marginal(fplus, fcross, strain, cos_inclination, polarization, phase, dvec, gmat, cross) + earth_corr
 
     def reference(self, theta):
         """Straightforward ln Λ through :meth:`ArrayWeighting.inner` for one parameter vector

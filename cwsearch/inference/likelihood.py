@@ -395,10 +395,10 @@ def marginal_log_factor(a, b, c, d, e, n_grid):
 
 
 @njit(cache=True)
-def _projection_one(w, fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, pulsar_term, n_grid, out):
+def _projection_one(w, fplus, fcross, strain, cos_inclination, psi, phase, dvec, gmat, pulsar_term, n_grid, out):
     """ln Λ of walker w with pulsar phases marginalised (or Earth term only)."""
     n_p = fplus.shape[1]
-    ci = cos_inc[w]
+    ci = cos_inclination[w]
     c2p, s2p = np.cos(2 * psi[w]), np.sin(2 * psi[w])
     c0, s0 = np.cos(2 * phase[w]), np.sin(2 * phase[w])
     h = strain[w]
@@ -428,15 +428,15 @@ def _projection_one(w, fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, p
 
 
 @njit(cache=True, parallel=True)
-def _projection_parallel(fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, pulsar_term, n_grid, out):
+def _projection_parallel(fplus, fcross, strain, cos_inclination, psi, phase, dvec, gmat, pulsar_term, n_grid, out):
     for w in prange(fplus.shape[0]):
-        _projection_one(w, fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, pulsar_term, n_grid, out)
+        _projection_one(w, fplus, fcross, strain, cos_inclination, psi, phase, dvec, gmat, pulsar_term, n_grid, out)
 
 
 @njit(cache=True)
-def _projection_serial(fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, pulsar_term, n_grid, out):
+def _projection_serial(fplus, fcross, strain, cos_inclination, psi, phase, dvec, gmat, pulsar_term, n_grid, out):
     for w in range(fplus.shape[0]):
-        _projection_one(w, fplus, fcross, strain, cos_inc, psi, phase, dvec, gmat, pulsar_term, n_grid, out)
+        _projection_one(w, fplus, fcross, strain, cos_inclination, psi, phase, dvec, gmat, pulsar_term, n_grid, out)
 
 
 def _projection_batch(fplus, *args):

@@ -599,9 +599,9 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
 
     start = time.monotonic()
     tau, ess, stopped_by, waiting = np.full(dim, np.inf), 0.0, "iterations", "not checked yet"
-    total = settings.max_iterations if np.isfinite(settings.max_iterations) else None
-    with progress_bar(total=total, desc=label, enabled=progress) as bar:
-        bar.update(n)
+    # the bar counts the stopping rule's progress (the least advanced of ESS / target and chain length /
+    # (min_chain_taus τ)), in per cent, not iterations towards the cap (a run normally stops long before it)
+    with progress_bar(total=100, desc=label, enabled=progress, unit="%") as bar:
         while n < settings.max_iterations:
             if elapsed_before + time.monotonic() - start >= settings.max_time:
                 stopped_by = "time"
@@ -626,7 +626,6 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
                 mean_logl[n] = logl.mean(axis=1)
                 ratios[n] = swaps
                 n += 1
-                bar.update(1)
                 if callback is not None:
                     callback(n)
             if n == adapt_end and not ladder_done:
@@ -672,8 +671,10 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
                 done, waiting = _converged(n, burn, adapt_end, tau, ess, settings, logl_t1, tau_history, chain)
                 acc = pair_acceptance(max(adapt_end, ladder_from) if n > adapt_end else n - settings.check_every, n)
                 swap = f"{np.nanmin(acc):.2f}" if acc.size and np.isfinite(acc).any() else "-"
-                bar.set_postfix_str(f"ESS {ess:.0f}/{settings.ess:.0f}  min swap {swap}  T {ntemps}  "
-                                    f"max lnL {logl_t1[:n].max():.1f}" + (f"  ({waiting})" if waiting else ""))
+                bar.n = 100 if done else int(100 * rule_progress(ess, tau, n, burn, settings))
+                bar.set_postfix_str(f"ESS {ess:.0f}/{settings.ess:.0f}  iteration {n}  min swap {swap}  "
+                                    f"T {ntemps}  max lnL {logl_t1[:n].max():.1f}"
+                                    + (f"  ({waiting})" if waiting else ""))
                 if done:
                     stopped_by = "converged"
                     break
@@ -714,6 +715,20 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
                          ladder_history=ladder_history, waiting_for="" if converged else waiting)
 
 
+def rule_progress(ess, tau, n, burn, settings) -> float:
+    """How far the stopping rule has come, 0 to 1: the least advanced of ESS / target and of the chain
+    length after burn-in over ``min_chain_taus`` autocorrelation times (the stable-τ check is not counted:
+    it is a yes/no, reported beside the bar).
+
+    >>> rule_progress(125.0, [10.0, 20.0], 1200, 200, SamplerSettings(ess=250.0))
+    0.5
+    """
+    tau_max = float(np.max(tau)) if np.size(tau) else float("inf")
+    chain_taus = (n - burn) / tau_max if np.isfinite(tau_max) and tau_max > 0 else 0.0
+    frac = min(float(ess) / float(settings.ess), chain_taus / float(settings.min_chain_taus))
+    return float(min(max(frac, 0.0), 1.0))
+
+
 def _unused(x):  # ptemcee wants per-walker functions; the vectorised pool never calls them
     raise RuntimeError("evaluated through VectorisedPool.map only")
 
@@ -729,5 +744,5 @@ def _checkpoint_file(path):
     return fh
 
 
-__all__ = ["load_ptemcee", "VectorisedPool", "integrated_time", "ensemble_time", "stationary", "drift_free", "tau_change", "extended_ladder",
+__all__ = ["rule_progress", "load_ptemcee", "VectorisedPool", "integrated_time", "ensemble_time", "stationary", "drift_free", "tau_change", "extended_ladder",
            "thermodynamic_log_evidence", "SamplerSettings", "SamplerResult", "run_sampler"]

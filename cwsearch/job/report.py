@@ -1,20 +1,29 @@
-"""The run report: one self-contained HTML page per run folder.
+"""The run report: one self-contained HTML page per run folder, built with Jinja2 (autoescaping).
 
 :func:`build_report` reads a run folder (docs/design.md §11) and writes
 ``report.html`` next to it: every PNG of every stage folder embedded as a
-base64 ``data:`` URI, tables written out, inline CSS, no scripts and no
-links to anything outside the page, so it opens offline, can be mailed as
-one file, and never contacts the network.
+base64 ``data:`` URI, inline CSS and a small inline script that makes the
+tables sortable (click a column header); no links to anything outside the
+page, so it opens offline, can be mailed as one file, and never contacts the
+network. The page is rendered from ``templates/report.html.j2`` with
+autoescaping on: every value read from the run folder is shown as text.
+
+The first screen answers, in words with numbers and units: is there a
+binary, where, how sure, which host, what limits, and lists every warning
+(sampler health, few effective samples behind a host probability). When the
+dataset folder holds ``injection.json`` (simulated data), the true values are
+listed beside every estimate.
 
 Sections (each is present even when its stage did not run, saying why):
 
-``headline``     the result in three lines
+``headline``     the first screen: the answers and the warnings
 ``dataset``      pulsars, TOAs, spans, backends, noise; pulsar sky positions
-``scan``         Fe/Fp spectrum and sky map
+``noise``        the noise model used (``RUN/noise/summary.json`` when the noise stage ran)
+``scan``         Fe/Fp spectrum, sky map, noise-only calibration
 ``candidates``   candidate table with false-alarm probabilities
-``followup``     posterior plots, Bayes factor, sampler diagnostics
+``followup``     posterior (with the truth when known), Bayes factor, sampler health
 ``hosts``        host ranking
-``limits``       strain limits versus frequency and sky, chirp-mass limits
+``limits``       strain limits versus frequency and sky, chirp-mass limits per galaxy
 ``cautions``     what the numbers do not say
 ``provenance``   versions, seed, checksum, times, host
 
@@ -33,18 +42,22 @@ from __future__ import annotations
 import base64
 import html
 import json
+import math
 import tomllib
 from pathlib import Path
 
 import numpy as np
+from markupsafe import escape
 
 from .. import __version__
 from ..core.fileio import write_text_atomic
-from .runfolder import read_json, read_record, read_table
+from .headline import COLD_SWAP_MIN, PAIR_SWAP_MIN, followup_targets, format_headline, headline_result, merge_sources, sampler_health
+from .runfolder import read_json as _read_json
+from .runfolder import read_table as _read_table
 
 #: (id, title) of every report section, in page order
 SECTIONS = (
-    ("headline", "Headline"),
+    ("headline", "Result at a glance"),
     ("dataset", "Dataset"),
     ("noise", "Noise model"),
     ("scan", "Scan: spectrum and sky map"),
@@ -56,12 +69,6 @@ SECTIONS = (
     ("provenance", "Provenance"),
 )
 
-#: run-folder files shown as tables: (stage, file, max rows, sort column, descending)
-TABLES = {
-    "candidates": ("scan", "candidates.ecsv", 25, "fap", False),
-    "hosts": ("hosts", "ranking.ecsv", 15, "probability", True),
-}
-
 GENERAL_CAUTIONS = (
     "The noise model decides the answer: false-alarm probabilities, Bayes factors and limits are only as good "
     "as the white-noise factors, red-noise spectra and common process used. A mis-modelled red process "
@@ -69,7 +76,8 @@ GENERAL_CAUTIONS = (
     "Trials: the scan tests every sky pixel and frequency. Quote the trials-corrected or empirical "
     "false-alarm probability, never the single-template one, as the significance of the loudest peak.",
     "Empirical false-alarm probabilities come from noise-only simulations drawn from the same noise model, "
-    "so they do not protect against a wrong noise model.",
+    "so they do not protect against a wrong noise model; with N simulations nothing below 1/(N+1) can be "
+    "resolved.",
     "Pulsar distances are known to only 10-30 %, much worse than a gravitational wavelength, so pulsar-term "
     "phases are free nuisance parameters: the pulsar term sharpens frequency and chirp mass, not distance.",
     "A host ranking is a probability under the catalogue, its completeness and the mass relations used, "
@@ -78,394 +86,711 @@ GENERAL_CAUTIONS = (
     "prior, random orientation).",
 )
 
+# column name -> (label, unit shown, kind); kind decides the number format (see _cell)
+LABELS = {
+    "rank": ("rank", "", "int"), "name": ("name", "", "text"), "candidate": ("candidate", "", "text"),
+    "frequency": ("GW frequency", "Hz", "g4"), "ra": ("right ascension", "deg", "f2"),
+    "dec": ("declination", "deg", "f2"), "pixel": ("sky pixel", "", "int"),
+    "frequency_index": ("frequency bin", "", "int"), "fe": ("Fe", "", "g4"), "snr": ("S/N", "", "f1"),
+    "fap": ("FAP (analytic, trials-corrected)", "", "g2"), "n_eff": ("effective trials", "", "g3"),
+    "fap_empirical": ("FAP (empirical)", "", "g2"), "fap_single": ("FAP (one template)", "", "g2"),
+    "fp": ("Fp", "", "g4"), "fp_fap": ("FAP of Fp (one frequency)", "", "g2"),
+    "strain": ("strain amplitude h0", "", "g3"), "inclination": ("inclination", "deg", "rad2deg"),
+    "polarization": ("polarization", "deg", "rad2deg"), "phase": ("phase", "deg", "rad2deg"),
+    "distance": ("distance", "Mpc", "g4"), "redshift": ("redshift", "", "g3"),
+    "probability": ("host probability", "", "g2"), "log_bayes_factor": ("ln Bayes factor", "", "f2"),
+    "sky_density": ("sky factor", "", "g3"), "distance_consistency": ("distance factor", "", "g3"),
+    "mass_consistency": ("mass factor", "", "g3"), "period_consistency": ("period factor", "", "g3"),
+    "coalescence_ok": ("coalescence factor", "", "g2"), "n_effective": ("effective samples", "", "f1"),
+    "log10_bh_mass": ("log10 black-hole mass", "Msun", "f2"), "mass_proxy": ("mass from", "", "text"),
+    "has_period": ("period known", "", "bool"), "strain_95": ("95 % strain limit", "", "g3"),
+    "chirp_mass_95": ("95 % chirp-mass limit", "Msun", "g3"), "chirp_mass": ("chirp mass", "Msun", "g3"),
+    "luminosity_distance": ("luminosity distance", "Mpc", "g3"), "orbital_period": ("orbital period", "yr", "g3"),
+}
+
+#: descriptive captions of the stage figures (file name -> caption)
+CAPTIONS = {
+    "dataset.png": "Pulsar sky positions and observing spans.",
+    "spectrum.png": "Scan: maximum over the sky of Fe, and Fp, against GW frequency, with false-alarm thresholds.",
+    "sky_fe.png": "Scan: Fe over the sky at the best candidate's frequency; stars are the pulsars.",
+    "null_fe.png": "Scan calibration: loudest Fe of each noise-only scan, with the observed loudest Fe marked.",
+    "corner.png": "Follow-up posterior: one- and two-dimensional marginals (dashed: 5 %, 50 %, 95 %).",
+    "sky.png": "Follow-up: posterior sky position with its 50 % and 90 % credible regions.",
+    "trace.png": "Follow-up: T = 1 chains of a few walkers (burn-in shaded), in physical units.",
+    "residuals.png": "Follow-up: timing residuals per pulsar with the fitted binary signal and its 90 % band.",
+    "hosts_sky.png": "Host galaxies: the binary's sky density with the catalogue galaxies.",
+    "hosts_sky_zoom.png": "Host galaxies: zoom around the candidate, top hosts labelled.",
+    "hosts_chirp_mass.png": "Host galaxies: chirp mass implied by each galaxy against the posterior.",
+    "strain_limits.png": "Upper limits: 95 % strain limit against GW frequency (sky average, best and worst sky position).",
+    "sky_limits.png": "Upper limits: 95 % strain limit over the sky at the most sensitive frequency.",
+    "galaxy_limits.png": "Upper limits: 95 % chirp-mass limit against GW frequency for the chosen galaxies.",
+}
+
 _CSS = """
-body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1100px;margin:2em auto;padding:0 1em;
-color:#1b1b1b;line-height:1.45}
+body{font-family:system-ui,-apple-system,'Segoe UI',sans-serif;max-width:1150px;margin:2em auto;padding:0 1em;
+color:#1b1b1b;background:#fff;line-height:1.45}
 h1{font-size:1.7em;margin-bottom:.2em}h2{border-bottom:2px solid #2b5c8a;padding-bottom:.2em;margin-top:2em}
-.sub{color:#666;margin-top:0}nav a{margin-right:1em}
-table{border-collapse:collapse;font-size:.85em;margin:.6em 0}
-th,td{border:1px solid #ccc;padding:.25em .5em;text-align:right}th{background:#eef3f8}
-td.t,th.t{text-align:left}
+.sub{color:#666;margin-top:0;font-size:.9em}nav a{margin-right:1em}
+.scroll{max-height:28em;overflow:auto;border:1px solid #ddd;margin:.6em 0;max-width:100%}
+table{border-collapse:collapse;font-size:.85em}
+th,td{border:1px solid #ccc;padding:.25em .5em;white-space:nowrap}
+th{background:#eef3f8;position:sticky;top:0;cursor:pointer}th .unit{font-weight:normal;color:#555}
+td.n,th.n{text-align:right;font-variant-numeric:tabular-nums}td.t,th.t{text-align:left}
+th.asc::after{content:" \\25B2"}th.desc::after{content:" \\25BC"}
+tr.truth td{background:#fff4d6}
+table.answers{font-size:1.02em;margin:.6em 0;border:none}
+table.answers th{text-align:left;vertical-align:top;background:#f3f8ee;cursor:default;position:static;
+width:12em;white-space:normal}
+table.answers td{white-space:normal;border-color:#dde5d5}
 figure{display:inline-block;margin:.5em;vertical-align:top;max-width:100%}
-figure img{max-width:100%;border:1px solid #ddd}figcaption{font-size:.85em;color:#555;text-align:center}
-.headline{background:#f3f8ee;border-left:5px solid #5a9a2c;padding:.6em 1em;font-size:1.05em}
+figure img{max-width:100%;border:1px solid #ddd}figcaption{font-size:.85em;color:#333;max-width:44em}
 .note{color:#8a5a00;background:#fff7e6;border-left:4px solid #e0a030;padding:.3em .8em}
+.warn{color:#7a1010;background:#fdecec;border-left:5px solid #c03030;padding:.4em 1em;margin:.8em 0}
+.warn ul{margin:.3em 0}
 dl{display:grid;grid-template-columns:max-content auto;gap:.2em 1em;font-size:.9em}dt{font-weight:600}
+pre{white-space:pre-wrap;font-size:.85em;background:#f6f6f6;padding:.5em}
+@media print{.scroll{max-height:none;overflow:visible}nav{display:none}}
+"""
+
+# sortable tables: click a header to sort by that column (numbers by data-sort, text otherwise)
+_JS = """
+document.querySelectorAll('table.sortable').forEach(function(table){
+  table.querySelectorAll('th').forEach(function(th, col){
+    th.addEventListener('click', function(){
+      var body = table.tBodies[0], rows = Array.prototype.slice.call(body.rows);
+      var asc = !th.classList.contains('asc');
+      table.querySelectorAll('th').forEach(function(h){h.classList.remove('asc','desc');});
+      th.classList.add(asc ? 'asc' : 'desc');
+      function key(r){var c = r.cells[col]; if(!c) return ''; var s = c.getAttribute('data-sort');
+        return s === null ? c.textContent.trim().toLowerCase() : parseFloat(s);}
+      rows.sort(function(a, b){var x = key(a), y = key(b);
+        if (typeof x === 'number' && isNaN(x)) return 1; if (typeof y === 'number' && isNaN(y)) return -1;
+        return (x < y ? -1 : x > y ? 1 : 0) * (asc ? 1 : -1);});
+      rows.forEach(function(r){body.appendChild(r);});
+    });
+  });
+});
 """
 
 
 # ---------------------------------------------------------------- helpers
-
-
-def _e(text) -> str:
-    return html.escape(str(text), quote=True)
-
-
-def _fmt(v) -> str:
-    """A table cell: 4 significant digits for floats, plain text otherwise."""
+def _scalar(v):
     try:
-        v = v.item()
-    except AttributeError:
-        pass
-    if isinstance(v, bool):
+        return v.item()
+    except (AttributeError, ValueError):
+        return v
+
+
+def fmt_number(v, kind="g4") -> str:
+    """A number with sensible significant figures for its kind (see :data:`LABELS`)."""
+    v = _scalar(v)
+    if v is None:
+        return "–"
+    if isinstance(v, bool) or kind == "bool":
         return "yes" if v else "no"
-    if isinstance(v, float):
-        if v != v:
-            return "–"
-        return f"{v:.4g}"
+    if isinstance(v, str):
+        return v
     if isinstance(v, (list, tuple)):
-        return ", ".join(_fmt(x) for x in v)
-    return str(v)
+        return ", ".join(fmt_number(x, kind) for x in v)
+    try:
+        x = float(v)
+    except (TypeError, ValueError):
+        return str(v)
+    if not math.isfinite(x):
+        return "–"
+    if kind == "int":
+        return f"{int(round(x))}"
+    if kind == "rad2deg":
+        return f"{math.degrees(x):.1f}"
+    if kind.startswith("f"):
+        return f"{x:.{int(kind[1:])}f}"
+    digits = int(kind[1:]) if kind.startswith("g") else 4
+    return f"{x:.{digits}g}"
 
 
-def embed_png(path, caption=None) -> str:
-    """An ``<figure>`` with the PNG at ``path`` embedded as a base64 data URI."""
-    data = Path(path).read_bytes()
-    b64 = base64.b64encode(data).decode("ascii")
-    caption = caption if caption is not None else _caption(Path(path))
-    return (f'<figure><img src="data:image/png;base64,{b64}" alt="{_e(caption)}">'
-            f"<figcaption>{_e(caption)}</figcaption></figure>")
+def _cell(v, kind):
+    v = _scalar(v)
+    numeric = kind not in ("text", "bool") and isinstance(v, (int, float)) and not isinstance(v, bool)
+    sort = None
+    if numeric:
+        x = float(v)
+        sort = repr(math.degrees(x) if kind == "rad2deg" else x) if math.isfinite(x) else "NaN"
+    return {"text": fmt_number(v, kind), "numeric": numeric, "sort": sort}
 
 
-def _caption(path: Path) -> str:
-    parts = list(path.parts[-2:]) if path.parent.name.startswith(("candidate", "galaxy")) else [path.name]
-    text = " / ".join(parts)
-    return text.removesuffix(".png").replace("_", " ")
+def _label(name, unit=None):
+    label, shown, kind = LABELS.get(name, (name.replace("_", " "), None, None))
+    if shown is None:
+        shown = "" if unit in (None, "") else str(unit)
+    if kind is None:
+        kind = "g4"
+    return label, shown, kind
 
 
-def _images(folder) -> list:
-    """PNG files of a stage folder (sub-folders too), sorted; hidden files left out."""
-    folder = Path(folder)
-    if not folder.is_dir():
-        return []
-    return sorted(p for p in folder.rglob("*.png")
-                  if not any(part.startswith(".") for part in p.relative_to(folder).parts))
+def table_view(table, columns=None, max_rows=None, sort=None, descending=False, title=None, truth=None):
+    """A table for the template: human labels and units in the header, formatted cells, sortable.
 
-
-def _figures(folder) -> str:
-    imgs = _images(folder)
-    return "\n".join(embed_png(p) for p in imgs)
-
-
-def html_table(table, max_rows=None, sort=None, descending=False) -> str:
-    """An astropy Table (or list of dicts) as an HTML table, units in the header."""
+    ``table``: an astropy Table or a list of dicts; ``columns``: names to show (default all 1-D ones);
+    ``truth``: optional dict (column -> true value) shown as a highlighted first row.
+    """
     if table is None:
-        return ""
+        return None
     if isinstance(table, list):
         if not table:
-            return ""
-        cols = list(table[0].keys())
-        rows = [[r.get(c) for c in cols] for r in table]
-        units = [""] * len(cols)
+            return None
+        names = columns or list(table[0].keys())
+        units = {}
+        rows = [[r.get(c) for c in names] for r in table]
     else:
         if sort and sort in table.colnames:
             table = table.copy()
             table.sort(sort, reverse=descending)
-        cols = [c for c in table.colnames if table[c].ndim == 1]
-        rows = [[row[c] for c in cols] for row in table]
-        units = [f" [{table[c].unit}]" if getattr(table[c], "unit", None) not in (None, "") else "" for c in cols]
+        names = [c for c in (columns or table.colnames) if c in table.colnames and table[c].ndim == 1]
+        units = {c: table[c].unit for c in names}
+        rows = [[row[c] for c in names] for row in table]
+    cols, kinds = [], []
+    for c in names:
+        label, unit, kind = _label(c, units.get(c))
+        kinds.append(kind)
+        cols.append({"label": label, "unit": unit, "numeric": kind not in ("text", "bool")})
     shown = rows if max_rows is None else rows[:max_rows]
-    out = ["<table><thead><tr>"]
-    for c, u in zip(cols, units):
-        out.append(f'<th class="t">{_e(c)}{_e(u)}</th>')
-    out.append("</tr></thead><tbody>")
+    out_rows = []
+    if truth:
+        cells = [_cell(truth.get(c), k) if c in truth else {"text": "truth" if i == 0 else "", "numeric": False,
+                                                               "sort": None} for i, (c, k) in
+                 enumerate(zip(names, kinds))]
+        out_rows.append({"cells": cells, "cls": "truth"})
     for r in shown:
-        cells = []
-        for v in r:
-            text = _fmt(v)
-            cls = ' class="t"' if isinstance(v, str) or isinstance(v, (list, tuple)) else ""
-            cells.append(f"<td{cls}>{_e(text)}</td>")
-        out.append("<tr>" + "".join(cells) + "</tr>")
-    out.append("</tbody></table>")
-    if max_rows is not None and len(rows) > max_rows:
-        out.append(f"<p class=sub>Showing {max_rows} of {len(rows)} rows; the full table is in the run folder.</p>")
-    return "".join(out)
+        out_rows.append({"cells": [_cell(v, k) for v, k in zip(r, kinds)], "cls": ""})
+    note = (f"Showing {max_rows} of {len(rows)} rows; the full table is in the run folder."
+            if max_rows is not None and len(rows) > max_rows else "")
+    return {"title": title, "columns": cols, "rows": out_rows, "note": note}
 
 
-def _dl(items) -> str:
-    rows = [f"<dt>{_e(k)}</dt><dd>{_e(_fmt(v))}</dd>" for k, v in items if v is not None and v != ""]
-    return "<dl>" + "".join(rows) + "</dl>" if rows else ""
+def _figure(path, caption=None):
+    path = Path(path)
+    caption = caption or CAPTIONS.get(path.name) or path.stem.replace("_", " ")
+    if path.parent.name.startswith(("candidate", "galaxy")):
+        caption = f"{path.parent.name.replace('_', ' ')}: {caption}"
+    return {"data": base64.b64encode(path.read_bytes()).decode("ascii"), "caption": caption, "alt": caption}
 
 
-def _summary_items(summary, skip=()):
-    """Flat scalar items of a stage summary dict, for a definition list."""
+def embed_png(path, caption=None) -> str:
+    """An ``<figure>`` with the PNG at ``path`` embedded as a base64 data URI (escaped caption)."""
+    f = _figure(path, caption)
+    return (f'<figure><img src="data:image/png;base64,{f["data"]}" alt="{escape(f["alt"])}">'
+            f"<figcaption>{escape(f['caption'])}</figcaption></figure>")
+
+
+def _images(folder, recursive=True) -> list:
+    """PNG files of a stage folder (sub-folders too), sorted; hidden files left out."""
+    folder = Path(folder)
+    if not folder.is_dir():
+        return []
+    found = folder.rglob("*.png") if recursive else folder.glob("*.png")
+    return sorted(p for p in found if not any(part.startswith(".") for part in p.relative_to(folder).parts))
+
+
+def _items(summary, skip=()):
+    """Flat scalar items of a stage summary dict, for a definition list (human keys, formatted numbers)."""
     items = []
     for k, v in (summary or {}).items():
-        if k in skip or isinstance(v, dict):
+        if k in skip or isinstance(v, dict) or v is None or v == "":
             continue
         if isinstance(v, list) and (len(v) > 8 or any(isinstance(x, (dict, list)) for x in v)):
             continue
-        items.append((k.replace("_", " "), v))
+        items.append((k.replace("_", " "), fmt_number(v, "g4")))
     return items
 
 
-# ---------------------------------------------------------------- sections
+# ---------------------------------------------------------------- the run folder
 class _Run:
     """Everything the report needs, read once from a run folder."""
 
     def __init__(self, run_dir):
         self.dir = Path(run_dir)
-        self.provenance = read_json(self.dir / "provenance.json") or {}
-        self.dataset = read_json(self.dir / "dataset.json") or {}
-        summary = read_json(self.dir / "summary.json") or {}
-        self.headline = summary.get("headline") or {}
+        self.provenance = _read_json(self.dir / "provenance.json") or {}
+        self.dataset = _read_json(self.dir / "dataset.json") or {}
+        summary = _read_json(self.dir / "summary.json") or {}
         self.stages = {s["stage"]: s for s in summary.get("stages", []) if isinstance(s, dict)}
         self.records = {}
-        for stage in ("noise", "scan", "followup", "hosts", "limits"):
-            rec = read_json(self.dir / stage / ".stage.json")
+        for stage in ("scan", "noise", "followup", "hosts", "limits"):
+            rec = _read_json(self.dir / stage / ".stage.json")
             if rec:
                 self.records[stage] = rec
         try:
-
             self.config = tomllib.loads((self.dir / "run.toml").read_text(encoding="utf-8"))
         except (OSError, ValueError):
             self.config = {}
+        # the headline is recomputed from the files (it is cheap) so that old run folders get the new rules
+        stored = summary.get("headline") or {}
+        self.headline = headline_result(self.dir) if stored or any(self.records) else {}
+        if stored.get("stages"):
+            self.headline["stages"] = stored["stages"]
+        self.targets = followup_targets(self.dir)
+        self.truth = self._truth()
+
+    def _truth(self):
+        """The injected binary (first one) from the dataset's ``injection.json``, or None."""
+        path = self.dataset.get("path")
+        inj = _read_json(Path(path) / "injection.json") if path else None
+        if not isinstance(inj, dict) or not inj.get("binaries"):
+            return None
+        b = inj["binaries"][0]
+        out = {k: b[k] for k in ("ra", "dec", "chirp_mass", "strain", "luminosity_distance", "inclination",
+                                 "polarization", "phase") if k in b}
+        if "gw_frequency" in b:
+            out["frequency"] = b["gw_frequency"]
+        if "orbital_period_yr" in b:
+            out["orbital_period"] = b["orbital_period_yr"]
+        out["optimal_snr"] = b.get("optimal_snr", inj.get("optimal_snr"))
+        return out
 
     def stage_summary(self, stage) -> dict:
         rec = self.records.get(stage) or {}
         return rec.get("summary") or {}
 
-    def status_note(self, stage) -> str:
+    def status_notes(self, stage) -> list:
         """A note when a stage has no result (not run, no candidate, unavailable)."""
         rec = self.records.get(stage)
         info = self.stages.get(stage, {})
         if rec and rec.get("status") == "complete":
-            return ""
+            return []
         if rec and rec.get("status") == "empty":
-            return f'<p class="note">No result: {_e(rec.get("reason") or "nothing to compute")}.</p>'
+            return [f"No result: {rec.get('reason') or 'nothing to compute'}."]
         reason = info.get("reason") or ("interrupted; run again to resume" if rec else "not run")
-        return f'<p class="note">Stage {_e(stage)}: {_e(info.get("status", "not run"))} — {_e(reason)}.</p>'
+        return [f"Stage {stage}: {info.get('status', 'not run')} — {reason}."]
 
 
-def _headline(run: _Run) -> str:
-    head = run.headline
+def _sec(sid, title, **kw):
+    base = {"id": sid, "title": title, "notes": [], "paragraphs": [], "items": [], "tables": [], "subsections": [],
+            "figures": [], "list": []}
+    base.update(kw)
+    return base
+
+
+def _truth_text(truth, key, fmt):
+    return f" (truth {fmt(truth[key])})" if truth and truth.get(key) is not None else ""
+
+
+# ---------------------------------------------------------------- first screen
+def first_screen(run: _Run) -> dict:
+    """The answers of the first screen: (question, answer) pairs in words with numbers and units."""
+    head, truth = run.headline, run.truth
     if not head:
-        return '<p class="note">No headline: the run has not finished.</p>'
-    lines = format_headline(head).splitlines()
-    return '<div class="headline">' + "<br>".join(_e(x) for x in lines) + "</div>"
+        return {"answers": [], "warnings": [], "lines": ""}
+    answers = []
+    cand = head.get("candidate")
+    if cand is None:
+        answers.append(("Is there a binary?", "No scan result in this run folder."))
+    else:
+        found = head.get("candidate_found")
+        src = (head.get("sources") or [None])[0]
+        fap = cand.get("fap_text") or ""
+        if found:
+            yes = "Yes, a candidate: " + fap
+            if cand.get("log_bayes_factor") is not None:
+                err = cand.get("log_bayes_factor_err")
+                yes += (f"; the follow-up prefers a binary over noise by ln B = {cand['log_bayes_factor']:.1f}"
+                        + (f" ± {err:.1f}" if err is not None else ""))
+            n_src = len(head.get("sources") or [])
+            if n_src > 1:
+                yes += f"; {n_src} distinct sources were followed up (see Follow-up)"
+            answers.append(("Is there a binary?", yes + "."))
+        else:
+            answers.append(("Is there a binary?",
+                            f"No: the loudest peak has {fap}, above the follow-up threshold "
+                            f"{cand.get('fap_threshold')}."))
+        pos = cand.get("position") or {}
+        if pos.get("ra") is not None:
+            where = f"ra {pos['ra']:.1f}°, dec {pos['dec']:.1f}°"
+            if pos.get("source") == "posterior":
+                area = pos.get("credible_area_90_deg2")
+                where += " (posterior mean direction" + (f"; 90 % credible area {area:.3g} deg²)" if area else ")")
+            else:
+                where += " (scan pixel; no follow-up posterior)"
+            where += (f" (truth ra {truth['ra']:.1f}°, dec {truth['dec']:.1f}°)" if truth and "ra" in truth else "")
+            pf = cand.get("posterior_frequency")
+            if pf and pf.get("interval_90"):
+                lo, hi = pf["interval_90"][:2]
+                where += (f"; GW frequency {pf['median'] * 1e9:.3g} nHz (90 %: {lo * 1e9:.3g}–{hi * 1e9:.3g} nHz)")
+            else:
+                where += f"; GW frequency {cand['frequency'] * 1e9:.3g} nHz (scan peak)"
+            where += _truth_text(truth, "frequency", lambda f: f"{f * 1e9:.3g} nHz")
+            if src and src.get("chirp_mass") and src["chirp_mass"].get("interval_90"):
+                cm = src["chirp_mass"]
+                where += (f"; chirp mass {cm['median']:.2g} Msun (90 %: {cm['interval_90'][0]:.2g}–"
+                          f"{cm['interval_90'][1]:.2g})" + _truth_text(truth, "chirp_mass", lambda m: f"{m:.2g} Msun"))
+            answers.append(("Where?", where + "."))
+        if src and len(src.get("scan_peaks", [])) > 1:
+            answers.append(("One source or several?",
+                            "One source: the follow-ups of scan peaks "
+                            + ", ".join(f"#{p}" for p in src["scan_peaks"]) + " converged on the same posterior."))
+    host = head.get("best_host")
+    if host:
+        text = f"{host['name']}, probability {host['probability']:.2g}"
+        if host.get("n_effective") is not None:
+            text += f" from {host['n_effective']:.1f} effective posterior samples"
+        if host.get("probability_not_in_catalogue") is not None:
+            text += f"; probability that the host is not in the catalogue {host['probability_not_in_catalogue']:.2g}"
+        answers.append(("Which host?", text + "."))
+    lim = head.get("best_limit")
+    if lim:
+        answers.append(("What limits?", f"Sky-averaged 95 % strain upper limit {lim['strain_95']:.3g} at "
+                                        f"{lim['frequency'] * 1e9:.3g} nHz, the most sensitive frequency "
+                                        "(see Upper limits for every frequency and sky position)."))
+    if truth:
+        snr = truth.get("optimal_snr")
+        answers.append(("Simulated data?", "Yes: the dataset holds injection.json; true values are listed beside "
+                                           "the estimates" + (f" (optimal S/N {snr:.1f})" if snr else "") + "."))
+    return {"answers": answers, "warnings": list(head.get("warnings") or []), "lines": format_headline(head)}
 
 
-def _dataset(run: _Run) -> str:
+# ---------------------------------------------------------------- sections
+def _dataset(run: _Run):
     d = run.dataset
+    s = _sec("dataset", dict(SECTIONS)["dataset"])
     if not d:
-        return '<p class="note">No dataset summary in this run folder.</p>'
-    parts = [_dl([("folder", d.get("path")), ("pulsars", d.get("n_pulsars")), ("TOAs", d.get("n_toas")),
-                  ("span [yr]", d.get("span_yr")), ("checksum (SHA-256)", d.get("checksum"))])]
+        s["notes"].append("No dataset summary in this run folder.")
+        return s
+    s["items"] = [(k, fmt_number(v)) for k, v in (("folder", d.get("path")), ("pulsars", d.get("n_pulsars")),
+                                                  ("TOAs", d.get("n_toas")), ("span [yr]", d.get("span_yr")),
+                                                  ("checksum (SHA-256)", d.get("checksum"))) if v is not None]
     rows = []
     for p in d.get("pulsars", []):
         red = p.get("red_noise")
-        rows.append({"name": p["name"], "ra [deg]": p["ra_deg"], "dec [deg]": p["dec_deg"],
-                     "distance [kpc]": p["distance_kpc"], "± [kpc]": p["distance_err_kpc"],
-                     "TOAs": p["n_toas"], "span [yr]": p["span_yr"], "backends": ", ".join(p["backends"]),
-                     "median σ [ns]": p["median_sigma_ns"],
-                     "red noise": (f"log10 A = {red['log10_amplitude']:.2f}, γ = {red['index']:.2f}"
+        rows.append({"name": p["name"], "ra": p["ra_deg"], "dec": p["dec_deg"], "distance_kpc": p["distance_kpc"],
+                     "distance_err_kpc": p["distance_err_kpc"], "n_toas": p["n_toas"], "span_yr": p["span_yr"],
+                     "backends": ", ".join(p["backends"]), "median_sigma_ns": p["median_sigma_ns"],
+                     "red_noise": (f"log10 A = {red['log10_amplitude']:.2f}, γ = {red['index']:.2f}"
                                    if red else "none")})
-    parts.append(html_table(rows))
-    for name in ("dataset.png",):
-        if (run.dir / name).is_file():
-            parts.append(embed_png(run.dir / name, "pulsar sky positions and observing spans"))
-    return "\n".join(parts)
+    extra = {"distance_kpc": ("distance", "kpc", "g3"), "distance_err_kpc": ("distance error", "kpc", "g2"),
+             "n_toas": ("TOAs", "", "int"), "span_yr": ("span", "yr", "f1"), "backends": ("backends", "", "text"),
+             "median_sigma_ns": ("median TOA error", "ns", "g3"), "red_noise": ("red noise", "", "text")}
+    with _extra_labels(extra):
+        s["tables"].append(table_view(rows))
+    if (run.dir / "dataset.png").is_file():
+        s["figures"].append(_figure(run.dir / "dataset.png"))
+    return s
 
 
-_STAGE_SUMMARY_FILES = {"scan": ("scan_summary.json",), "followup": ("summary.json",),
-                        "hosts": ("hosts_summary.json",), "limits": ("limits_summary.json",)}
+class _extra_labels:
+    """Temporarily add labels to :data:`LABELS` (for tables built in this module)."""
+
+    def __init__(self, extra):
+        self.extra = extra
+
+    def __enter__(self):
+        self.saved = {k: LABELS[k] for k in self.extra if k in LABELS}
+        LABELS.update(self.extra)
+
+    def __exit__(self, *exc):
+        for k in self.extra:
+            LABELS.pop(k, None)
+        LABELS.update(self.saved)
 
 
-def stage_noise_models(run: _Run) -> dict:
-    """stage -> the ``noise_model`` description its summary states (stages that ran)."""
-    out = {}
-    for stage, names in _STAGE_SUMMARY_FILES.items():
-        summary = run.stage_summary(stage)
-        desc = summary.get("noise_model")
-        if desc is None:
-            for name in names:
-                desc = (read_json(run.dir / stage / name) or {}).get("noise_model")
-                if desc is not None:
-                    break
-        if desc is not None:
-            out[stage] = desc
-    return out
+def _noise(run: _Run):
+    """The noise model: RUN/noise/summary.json rendered generically (scalars, per-pulsar table, figures)."""
+    s = _sec("noise", dict(SECTIONS)["noise"])
+    folder = run.dir / "noise"
+    summary = _read_json(folder / "summary.json")
+    if not isinstance(summary, dict):
+        noise = run.config.get("noise") or {}
+        s["paragraphs"].append("No noise-model stage output in this run folder (noise/summary.json): the noise "
+                               "model is the dataset's own noise table and the [noise] settings of the run file.")
+        if noise:
+            s["items"] = [(k.replace("_", " "), fmt_number(v)) for k, v in noise.items()
+                          if not isinstance(v, (dict, list))]
+        return s
+    s["notes"] = run.status_notes("noise") if "noise" in run.records else []
+    s["items"] = _items(summary, skip=("pulsars", "options"))
+    pulsars = summary.get("pulsars")
+    if isinstance(pulsars, list) and pulsars and all(isinstance(p, dict) for p in pulsars):
+        flat = [{k: v for k, v in p.items() if not isinstance(v, (dict, list))} for p in pulsars]
+        s["tables"].append(table_view(flat, title="Per pulsar"))
+    elif isinstance(pulsars, dict):
+        flat = [{"name": name, **{k: v for k, v in p.items() if not isinstance(v, (dict, list))}}
+                for name, p in pulsars.items() if isinstance(p, dict)]
+        s["tables"].append(table_view(flat, title="Per pulsar"))
+    for k, v in summary.items():
+        if isinstance(v, dict) and k not in ("options", "pulsars"):
+            s["subsections"].append({"title": k.replace("_", " "), "notes": [], "paragraphs": [],
+                                     "tables": [], "items": _items(v), "figures": []})
+    s["figures"] = [_figure(p) for p in _images(folder)]
+    return s
 
 
-def _noise(run: _Run) -> str:
-    parts = []
-    used = stage_noise_models(run)
-    if used:
-        rows = [{"stage": st, "source": d.get("source"), "meaning": d.get("meaning"),
-                 "table": Path(d["table"]).name if d.get("table") else "-",
-                 "table SHA-256": (d.get("table_checksum") or "-")[:16],
-                 "pulsars with red noise": d.get("n_red_noise"),
-                 "common process": (f"log10 A = {d['common']['log10_amplitude']:.2f}, γ = {d['common']['index']:.2f} "
-                                    f"({d['common'].get('correlation')})" if d.get("common") else "none")}
-                for st, d in used.items()]
-        parts.append("<p>The noise model each stage used (source, values, checksum):</p>" + html_table(rows))
-        keys = {(d.get("source"), d.get("table_checksum"), json.dumps(d.get("settings"), sort_keys=True))
-                for d in used.values()}
-        if len(keys) > 1:
-            parts.append('<p class="note">The stages did not all use the same noise model: rerun with one '
-                         '--noise-model (or [noise] model) for the whole run.</p>')
-        notes = sorted({n for d in used.values() for n in d.get("notes", [])})
-        parts.extend(f'<p class="note">{_e(n)}</p>' for n in notes)
-    fit = read_json(run.dir / "noise" / "summary.json")
-    if fit:
-        c = fit.get("common")
-        items = [("method", fit.get("method")), ("uncertainties", fit.get("uncertainties")),
-                 ("priors", fit.get("priors")), ("red-noise test", fit.get("red_noise_test")),
-                 ("red-noise threshold (2 ΔlnL)", fit.get("red_noise_threshold")),
-                 ("pulsars with red noise", f"{fit.get('n_red_noise')} of {fit.get('n_pulsars')}"),
-                 ("dataset checksum", fit.get("dataset_checksum"))]
-        if c:
-            items.append(("common process", f"log10 A = {c['log10_amplitude']:.3f} ± {c['log10_amplitude_err']:.3f}, "
-                          f"γ = {c['index']:.2f} ± {c['index_err']:.2f} ({c.get('correlation')}); 2 ΔlnL against "
-                          f"zero amplitude = {c['statistic']:.1f}"))
-            cmp = c.get("correlated_vs_uncorrelated")
-            if cmp:
-                items.append(("correlated vs uncorrelated", f"2 ΔlnL = {cmp['statistic']:.2f}"))
-        a = fit.get("array_low_frequency") or {}
-        items.append(("array low-frequency excess p", a.get("pvalue")))
-        parts.append(_dl(items))
-        rows = []
-        for p in fit.get("pulsars", []):
-            red, gof = p["red_noise"], p.get("goodness_of_fit") or {}
-            white = "; ".join(f"{b}: ×{w['sigma_scale']:.3f}±{w['sigma_scale_err']:.3f}, "
-                              f"+{w['sigma_added_s'] * 1e9:.1f}±{w['sigma_added_err_s'] * 1e9:.1f} ns"
-                              for b, w in p["white"].items())
-            rows.append({"pulsar": p["name"], "white noise (scale, added)": white, "model": red["model"],
-                         "2 ΔlnL": round(red["statistic"], 2),
-                         "red log10 A": (f"{red['log10_amplitude']:.2f} ± {red['log10_amplitude_err']:.2f}"
-                                         if red["claimed"] else "-"),
-                         "red γ": f"{red['index']:.2f} ± {red['index_err']:.2f}" if red["claimed"] else "-",
-                         "normality p": gof.get("normality_pvalue"), "low-freq. p": gof.get("low_frequency_pvalue"),
-                         "check": "FAIL" if gof.get("flagged") else "ok", "converged": p["converged"]})
-        parts.append(html_table(rows))
-        parts.extend(f'<p class="note">{_e(w)}</p>' for w in fit.get("warnings", []))
-        parts.append(_figures(run.dir / "noise"))
-    elif not used:
-        parts.append(run.status_note("noise") or '<p class="note">No noise model recorded.</p>')
-    return "\n".join(p for p in parts if p)
+def _null_table(run):
+    t = _read_table(run.dir / "scan" / "null_maxima.ecsv")
+    return t
 
 
-def _scan(run: _Run) -> str:
-    parts = [run.status_note("scan")]
-    summary = run.stage_summary("scan")
-    parts.append(_dl(_summary_items(summary)))
-    parts.append(_figures(run.dir / "scan"))
-    return "\n".join(p for p in parts if p)
+def _scan(run: _Run):
+    s = _sec("scan", dict(SECTIONS)["scan"], notes=run.status_notes("scan"))
+    summary = run.stage_summary("scan") or _read_json(run.dir / "scan" / "scan_summary.json") or {}
+    if summary:
+        items = []
+        for key, label, kind in (("n_pulsars", "pulsars", "int"), ("span_years", "span [yr]", "f2"),
+                                 ("fmin", "lowest frequency [Hz]", "g4"), ("fmax", "highest frequency [Hz]", "g4"),
+                                 ("n_frequencies", "frequencies", "int"), ("nside", "HEALPix nside", "int"),
+                                 ("n_pixels", "sky pixels", "int"), ("null_sims", "noise-only scans", "int"),
+                                 ("null_max_median", "median loudest noise-only Fe", "g3"),
+                                 ("n_eff_fitted_from_null_sims", "effective trials fitted to the noise-only scans",
+                                  "g3")):
+            if summary.get(key) is not None:
+                items.append((label, fmt_number(summary[key], kind)))
+        s["items"] = items
+        if summary.get("fap_meaning"):
+            s["paragraphs"].append(summary["fap_meaning"] + ".")
+        if summary.get("fap_empirical_meaning"):
+            s["paragraphs"].append(summary["fap_empirical_meaning"] + ".")
+        elif summary:
+            s["paragraphs"].append("No noise-only scans were run, so the false-alarm probabilities are analytic "
+                                   "only (set [scan] null_sims for an empirical calibration).")
+    s["figures"] = [_figure(p) for p in _images(run.dir / "scan")]
+    return s
 
 
-def _candidates(run: _Run) -> str:
-    stage, name, max_rows, sort, desc = TABLES["candidates"]
-    table = read_table(run.dir / stage / name)
+def _candidates(run: _Run):
+    s = _sec("candidates", dict(SECTIONS)["candidates"])
+    table = _read_table(run.dir / "scan" / "candidates.ecsv")
     if table is None:
-        return run.status_note("scan") or '<p class="note">No candidate table.</p>'
-    thr = (run.headline.get("candidate") or {}).get("fap_threshold")
+        s["notes"] = run.status_notes("scan") or ["No candidate table."]
+        return s
+    cand = run.headline.get("candidate") or {}
+    thr = cand.get("fap_threshold")
     followed = run.stage_summary("followup").get("followed_rows")
-    intro = (f"<p>Peaks of the scan, best first. Candidates with false-alarm probability (column fap) below "
-             f"{_e(_fmt(thr))} are followed up, one per frequency bin, at most [followup] max_candidates"
-             + (f"; followed up here: rank {_e(', '.join(str(r) for r in followed))}" if followed else "")
-             + ".</p>" if thr is not None else "")
+    if thr is not None:
+        s["paragraphs"].append(
+            f"Peaks of the scan, best first. Candidates whose analytic false-alarm probability is below {thr:g} "
+            "are followed up, one per frequency bin, at most [followup] max_candidates"
+            + (f"; followed up here: rank {', '.join(str(r) for r in followed)}" if followed else "") + ".")
     if not len(table):
-        return intro + "<p>The scan found no peaks.</p>"
-    return intro + html_table(table, max_rows, sort, desc)
+        s["paragraphs"].append("The scan found no peaks.")
+        return s
+    cols = [c for c in ("rank", "frequency", "ra", "dec", "fe", "snr", "fap", "fap_empirical", "fap_single", "fp",
+                        "fp_fap", "strain", "inclination", "polarization", "phase") if c in table.colnames]
+    s["tables"].append(table_view(table, cols, 25, "fap", False, truth=run.truth))
+    return s
 
 
-def _followup_targets(run: _Run):
-    """(name, summary dict, folder) per followed-up candidate."""
-    folder = run.dir / "followup"
-    top = read_json(folder / "summary.json")
-    if not isinstance(top, dict):
-        summary = run.stage_summary("followup")
-        return [("candidate", summary, folder)] if summary.get("log_bayes_factor") is not None else []
-    if isinstance(top.get("targets"), list) and isinstance(top.get("log_bayes_factor"), list):
-        out = []
-        for name in top["targets"]:
-            sub = folder / str(name)
-            out.append((str(name), read_json(sub / "summary.json") or {}, sub))
-        return out
-    return [(str(top.get("target", "candidate")), top, folder)]
+_PARAM_ORDER = (("ra", "right ascension", "deg", "f2"), ("dec", "declination", "deg", "f2"),
+                ("frequency", "GW frequency", "nHz", "nHz"), ("chirp_mass", "chirp mass", "Msun", "g3"),
+                ("strain", "strain amplitude h0", "", "g3"), ("inclination", "inclination", "deg", "rad2deg"),
+                ("polarization", "polarization", "deg", "rad2deg"), ("phase", "phase", "deg", "rad2deg"),
+                ("luminosity_distance", "luminosity distance", "Mpc", "g3"),
+                ("orbital_period", "orbital period", "yr", "g3"))
 
 
-def _bayes_line(summary) -> str:
-    bf = summary.get("log_bayes_factor")
-    if bf is None:
-        return ""
-    err = summary.get("log_bayes_factor_error", summary.get("log_bayes_factor_err"))
-    text = f"ln Bayes factor (signal vs noise) = {_fmt(bf)}" + (f" ± {_fmt(err)}" if err is not None else "")
-    return f"<p><b>{_e(text)}</b></p>"
+def _pfmt(v, kind):
+    if v is None:
+        return "–"
+    if kind == "nHz":
+        return f"{float(v) * 1e9:.4g}"
+    return fmt_number(v, kind)
 
 
-def _parameter_table(summary) -> str:
+def _parameter_table(summary, truth):
     params = summary.get("parameters")
     if not isinstance(params, dict) or not params:
-        return ""
+        return None
     rows = []
-    for name, p in params.items():
+    for name, label, unit, kind in _PARAM_ORDER:
+        p = params.get(name)
         if not isinstance(p, dict):
             continue
         lo, hi = (p.get("interval_90") or [None, None])[:2]
-        rows.append({"parameter": name, "median": p.get("median"), "5 %": lo, "95 %": hi,
-                     "unit": p.get("unit", "")})
-    return "<p>Posterior medians and 90 % intervals:</p>" + html_table(rows)
+        rows.append({"cells": [{"text": label, "numeric": False, "sort": None},
+                               {"text": unit, "numeric": False, "sort": None}] +
+                     [{"text": _pfmt(v, kind), "numeric": True, "sort": repr(float(v)) if v is not None else None}
+                      for v in (p.get("median"), lo, hi)] +
+                     ([{"text": _pfmt(truth.get(name), kind) if truth.get(name) is not None else "–",
+                        "numeric": True, "sort": None}] if truth else []),
+                     "cls": ""})
+    cols = [{"label": "parameter", "unit": "", "numeric": False}, {"label": "unit", "unit": "", "numeric": False},
+            {"label": "median", "unit": "", "numeric": True}, {"label": "5 %", "unit": "", "numeric": True},
+            {"label": "95 %", "unit": "", "numeric": True}]
+    if truth:
+        cols.append({"label": "truth (injection.json)", "unit": "", "numeric": True})
+    return {"title": "Posterior medians and 90 % intervals", "columns": cols, "rows": rows, "note": ""}
 
 
-_FOLLOWUP_SKIP = ("log_bayes_factor", "log_bayes_factor_error", "log_bayes_factor_err", "target", "seed",
-                  "parameters", "options", "folders", "targets")
+def _health_table(summary):
+    swaps = summary.get("swap_acceptance") or []
+    temps = summary.get("temperatures") or []
+    if not swaps:
+        return None
+    rows = []
+    for i, a in enumerate(swaps):
+        pair = f"{temps[i]:.3g} ↔ {temps[i + 1]:.3g}" if len(temps) > i + 1 else str(i + 1)
+        limit = COLD_SWAP_MIN if i == 0 else PAIR_SWAP_MIN
+        ok = a is not None and a >= limit
+        rows.append({"cells": [{"text": pair, "numeric": False, "sort": None},
+                               {"text": fmt_number(a, "g2"), "numeric": True,
+                                "sort": repr(float(a)) if a is not None else None},
+                               {"text": f"{limit:g}", "numeric": True, "sort": None},
+                               {"text": "ok" if ok else "LOW", "numeric": False, "sort": None}], "cls": ""})
+    return {"title": "Temperature swaps (adjacent pairs, cold chain first)",
+            "columns": [{"label": "temperatures", "unit": "", "numeric": False},
+                        {"label": "swap acceptance", "unit": "", "numeric": True},
+                        {"label": "warn below", "unit": "", "numeric": True},
+                        {"label": "", "unit": "", "numeric": False}], "rows": rows, "note": ""}
 
 
-def _followup(run: _Run) -> str:
-    parts = [run.status_note("followup")]
-    targets = _followup_targets(run)
+def _followup(run: _Run):
+    s = _sec("followup", dict(SECTIONS)["followup"], notes=run.status_notes("followup"))
+    targets = [t for t in run.targets if t[1]]
     stage = run.dir / "followup"
+    groups = merge_sources(targets) if targets else []
+    if len(targets) > 1:
+        s["paragraphs"].append(
+            f"{len(targets)} follow-ups, {len(groups)} distinct source(s): follow-ups whose 90 % frequency "
+            "intervals overlap and whose sky positions lie within their 90 % radii are one source.")
     shown = set()
-    for name, summary, folder in targets:
-        if len(targets) > 1:
-            parts.append(f"<h3>{_e(name)}</h3>")
-        parts.append(_bayes_line(summary))
-        parts.append(_parameter_table(summary))
-        parts.append(_dl(_summary_items(summary, skip=_FOLLOWUP_SKIP)))
-        imgs = sorted(folder.glob("*.png")) if folder != stage or len(targets) > 1 else _images(folder)
-        parts.extend(embed_png(p) for p in imgs)
-        shown.update(imgs)
-    parts.extend(embed_png(p) for p in _images(stage) if p not in shown)
-    return "\n".join(p for p in parts if p)
+    for gi, group in enumerate(groups):
+        for i in group:
+            name, summary, folder = targets[i]
+            sub = {"title": name + (f" (source {gi + 1})" if len(groups) > 1 or len(group) > 1 else ""),
+                   "notes": [f"Sampler: {h}." for h in sampler_health(summary)], "paragraphs": [], "tables": [],
+                   "items": [], "figures": []}
+            bf = summary.get("log_bayes_factor")
+            if bf is not None:
+                err = summary.get("log_bayes_factor_error", summary.get("log_bayes_factor_err"))
+                sub["paragraphs"].append(f"ln Bayes factor (signal vs noise) = {bf:.2f}"
+                                         + (f" ± {err:.2f}" if err is not None else "") + ".")
+            start = summary.get("start") or {}
+            row = start.get("candidate_row")
+            if isinstance(row, dict) and row.get("rank") is not None:
+                sub["paragraphs"].append(f"Started from scan peak #{int(row['rank'])} "
+                                         f"(f = {start.get('frequency', float('nan')):.4g} Hz).")
+            sky = summary.get("sky")
+            if sky:
+                sub["paragraphs"].append(
+                    f"Sky position: ra {sky['ra']:.2f}°, dec {sky['dec']:.2f}° (mean direction of the samples), "
+                    f"90 % of the samples within {sky['radius_90_deg']:.3g}° of it, 90 % credible area "
+                    f"{sky['credible_area_90_deg2']:.3g} deg² (HEALPix nside {sky['map_nside']}, "
+                    f"{sky['pixel_area_deg2']:.3g} deg² pixels; map in {sky.get('map_file', 'the run folder')}).")
+            sub["tables"] = [t for t in (_parameter_table(summary, run.truth or {}), _health_table(summary)) if t]
+            for key, label, kind in (("effective_sample_size", "effective samples", "f0"),
+                                     ("n_samples", "posterior samples", "int"), ("iterations", "iterations", "int"),
+                                     ("burn_in", "burn-in iterations", "int"), ("stopped_by", "stopped by", "text"),
+                                     ("waiting_for", "stopping rule waiting for", "text"),
+                                     ("wall_time", "wall time [s]", "f0")):
+                if summary.get(key) not in (None, ""):
+                    sub["items"].append((label, fmt_number(summary[key], kind)))
+            for w in summary.get("warnings") or []:
+                sub["notes"].append(w)
+            imgs = _images(folder, recursive=folder != stage)
+            sub["figures"] = [_figure(p) for p in imgs]
+            shown.update(imgs)
+            s["subsections"].append(sub)
+    s["figures"] = [_figure(p) for p in _images(stage) if p not in shown]
+    return s
 
 
-def _hosts(run: _Run) -> str:
-    parts = [run.status_note("hosts")]
-    stage, name, max_rows, sort, desc = TABLES["hosts"]
-    table = read_table(run.dir / stage / name)
+def _hosts(run: _Run):
+    s = _sec("hosts", dict(SECTIONS)["hosts"], notes=run.status_notes("hosts"))
+    table = _read_table(run.dir / "hosts" / "ranking.ecsv")
+    host = run.headline.get("best_host") or {}
+    if host.get("warning"):
+        s["notes"].append("Warning: " + host["warning"] + ".")
+    summ = _read_json(run.dir / "hosts" / "hosts_summary.json") or {}
+    for key, label, kind in (("n_catalogue", "galaxies in the catalogue", "int"),
+                             ("distance_limit_mpc", "catalogue distance limit [Mpc]", "g4"),
+                             ("completeness", "catalogue completeness", "g2"),
+                             ("probability_not_in_catalogue", "probability the host is not catalogued", "g2"),
+                             ("relation", "black-hole mass relation", "text"),
+                             ("localisation_description", "localisation", "text")):
+        if summ.get(key) is not None:
+            s["items"].append((label, fmt_number(summ[key], kind)))
     if table is not None:
-        parts.append(html_table(table, max_rows, sort, desc))
-    parts.append(_dl(_summary_items(run.stage_summary("hosts"))))
-    parts.append(_figures(run.dir / "hosts"))
-    return "\n".join(p for p in parts if p)
+        cols = [c for c in ("name", "candidate", "probability", "ra", "dec", "distance", "redshift", "log_bayes_factor",
+                            "n_effective", "sky_density", "distance_consistency", "mass_consistency",
+                            "period_consistency", "log10_bh_mass", "mass_proxy") if c in table.colnames]
+        s["tables"].append(table_view(table, cols, 15, "probability", True))
+    if summ.get("caution"):
+        s["paragraphs"].append(summ["caution"])
+    s["figures"] = [_figure(p) for p in _images(run.dir / "hosts")]
+    return s
 
 
-def _limits(run: _Run) -> str:
-    parts = [run.status_note("limits")]
+def galaxy_limits_view(table):
+    """One row per galaxy: its position, distance and its tightest chirp-mass limit (and where in frequency)."""
+    if table is None or not len(table) or "name" not in table.colnames:
+        return None
+    rows = []
+    names = list(dict.fromkeys(str(n) for n in table["name"]))
+    for name in names:
+        sel = table[np.asarray([str(n) == name for n in table["name"]])]
+        mc = np.asarray(sel["chirp_mass_95"], dtype=float) if "chirp_mass_95" in sel.colnames else None
+        i = int(np.nanargmin(mc)) if mc is not None and np.isfinite(mc).any() else 0
+        row = {"name": name}
+        for c in ("ra", "dec", "distance"):
+            if c in sel.colnames:
+                row[c] = float(sel[c][i])
+        row["chirp_mass_95"] = float(mc[i]) if mc is not None else None
+        row["frequency"] = float(sel["frequency"][i])
+        row["strain_95"] = float(sel["strain_95"][i]) if "strain_95" in sel.colnames else None
+        rows.append(row)
+    with _extra_labels({"chirp_mass_95": ("tightest 95 % chirp-mass limit", "Msun", "g3"),
+                        "frequency": ("at GW frequency", "Hz", "g4")}):
+        return table_view(rows, title="Chirp-mass limits per galaxy (tightest over frequency; the full "
+                                      "table against frequency is galaxy_limits.ecsv)")
+
+
+def _limits(run: _Run):
+    s = _sec("limits", dict(SECTIONS)["limits"], notes=run.status_notes("limits"))
     best = run.headline.get("best_limit")
     if best:
-        parts.append(f"<p><b>Most sensitive frequency: {_e(_fmt(best['frequency']))} Hz, sky-averaged 95 % "
-                     f"strain upper limit {_e(_fmt(best['strain_95']))}.</b></p>")
-    parts.append(_dl(_summary_items(run.stage_summary("limits"))))
-    for extra in ("galaxy_limits.ecsv", "chirp_mass_limits.ecsv"):
-        table = read_table(run.dir / "limits" / extra)
-        if table is not None and len(table):
-            parts.append(f"<h3>{_e(extra.removesuffix('.ecsv').replace('_', ' '))}</h3>" + html_table(table, 20))
-    parts.append(_figures(run.dir / "limits"))
-    return "\n".join(p for p in parts if p)
+        s["paragraphs"].append(f"Most sensitive frequency {best['frequency'] * 1e9:.3g} nHz: sky-averaged 95 % strain "
+                               f"upper limit {best['strain_95']:.3g}.")
+    summ = _read_json(run.dir / "limits" / "limits_summary.json") or run.stage_summary("limits")
+    for key, label, kind in (("method", "method", "text"), ("n_frequencies", "frequencies", "int"),
+                             ("nside", "HEALPix nside", "int"), ("quadrature", "quadrature", "text"),
+                             ("sky_frequency", "sky map at frequency [Hz]", "g4")):
+        if summ.get(key) is not None:
+            s["items"].append((label, fmt_number(summ[key], kind)))
+    if summ.get("fmax_note"):
+        s["paragraphs"].append("Note: " + summ["fmax_note"] + ".")
+    for method in ("bayes", "frequentist"):
+        m = summ.get(method)
+        if isinstance(m, dict):
+            text = (f"{method}: sky-averaged {fmt_number(m.get('strain_95_at_best_frequency'), 'g3')}, best sky "
+                    f"position {fmt_number(m.get('best_pixel_strain_95'), 'g3')}")
+            if m.get("pixels_with_empty_limit"):
+                text += (f"; {m['pixels_with_empty_limit']} pixels have an empty limit (observed Fe below the "
+                         "noise-only 95 % range)")
+            s["paragraphs"].append(text + ".")
+    ftab = _read_table(run.dir / "limits" / "frequency_limits.ecsv")
+    if ftab is not None and len(ftab):
+        cols = [c for c in ("frequency", "strain_95", "strain_95_best", "strain_95_median", "strain_95_worst",
+                            "strain_95_frequentist", "fe_max") if c in ftab.colnames]
+        with _extra_labels({"strain_95": ("95 % limit, sky average", "", "g3"),
+                            "strain_95_best": ("best sky position", "", "g3"),
+                            "strain_95_median": ("median sky position", "", "g3"),
+                            "strain_95_worst": ("worst sky position", "", "g3"),
+                            "strain_95_frequentist": ("frequentist, sky average", "", "g3"),
+                            "fe_max": ("loudest Fe over the sky", "", "g3")}):
+            s["tables"].append(table_view(ftab, cols, title="Strain limits against frequency"))
+    g = galaxy_limits_view(_read_table(run.dir / "limits" / "galaxy_limits.ecsv"))
+    if g:
+        s["tables"].append(g)
+    s["figures"] = [_figure(p) for p in _images(run.dir / "limits")]
+    return s
 
 
 def run_cautions(run: _Run) -> list:
     """Cautions that depend on this run's numbers (added to the general ones)."""
     out = []
     path = str(run.dataset.get("path", ""))
-    if "data/demo" in path.replace("\\", "/") or run.config.get("title", "").lower().startswith("demo"):
+    if "data/demo" in path.replace("\\", "/") or str(run.config.get("title", "")).lower().startswith(
+            ("demo", "cwsearch demo")):
         out.append("This is the bundled demo: the pulsars (SIMPSRnn), the binary and the galaxies are invented.")
     for stage, info in run.stages.items():
         if info.get("status") in ("unavailable", "blocked", "failed"):
             out.append(f"The {stage} stage did not run ({info.get('reason')}); its section is empty.")
-    for name, fol, _ in _followup_targets(run):
+    for name, fol, _ in run.targets:
         err = fol.get("log_bayes_factor_error", fol.get("log_bayes_factor_err"))
         if isinstance(err, (int, float)) and err > 1:
             out.append(f"{name}: the Bayes factor's thermodynamic-integration error (±{err:.1f} in ln) is large; "
@@ -477,56 +802,68 @@ def run_cautions(run: _Run) -> list:
         if fol.get("stopped_by") not in (None, "ess", "converged"):
             out.append(f"{name}: the sampler stopped by {fol.get('stopped_by')}, not by reaching its "
                        "effective-sample target.")
-    scan = run.stage_summary("scan")
-    gof = (scan or {}).get("goodness_of_fit") or {}
-    out.extend(f"Goodness of fit: {w}" for w in gof.get("warnings", []))
-    if scan and not any("empirical" in k for k in scan):
+    cand = run.headline.get("candidate") or {}
+    if cand and not cand.get("null_sims"):
         out.append("False-alarm probabilities are analytic (effective number of templates) only; "
                    "ask the scan for noise-only simulations for an empirical calibration.")
     return out
 
 
-def _cautions(run: _Run) -> str:
-    items = run_cautions(run) + list(GENERAL_CAUTIONS)
-    return "<ul>" + "".join(f"<li>{_e(c)}</li>" for c in items) + "</ul>"
+def _cautions(run: _Run):
+    return _sec("cautions", dict(SECTIONS)["cautions"], list=run_cautions(run) + list(GENERAL_CAUTIONS))
 
 
-def provenance_record(run: _Run) -> str:
+def _provenance(run: _Run):
+    s = _sec("provenance", dict(SECTIONS)["provenance"])
     p = run.provenance
     if not p:
-        return '<p class="note">No provenance.json in this run folder.</p>'
+        s["notes"].append("No provenance.json in this run folder.")
+        return s
     items = [("started", p.get("started")), ("finished", p.get("finished")), ("status", p.get("status")),
              ("seed", p.get("seed")), ("dataset checksum", p.get("dataset_checksum")), ("host", p.get("host")),
              ("CPUs", p.get("cpu_count")), ("run file", p.get("run_file"))]
-    versions = p.get("versions") or {}
-    items += [(f"{k}", v) for k, v in versions.items() if v]
-    stage_rows = [{"stage": s.get("stage"), "status": s.get("status"), "seconds": s.get("seconds"),
-                   "note": s.get("reason", "")} for s in run.stages.values()]
-    return _dl(items) + html_table(stage_rows)
+    items += list((p.get("versions") or {}).items())
+    s["items"] = [(k, fmt_number(v, "text")) for k, v in items if v not in (None, "")]
+    rows = [{"stage": st.get("stage"), "status": st.get("status"), "seconds": st.get("seconds"),
+             "note": st.get("reason", "")} for st in run.stages.values()]
+    with _extra_labels({"stage": ("stage", "", "text"), "status": ("status", "", "text"),
+                        "seconds": ("wall time", "s", "f1"), "note": ("note", "", "text")}):
+        t = table_view(rows)
+    if t:
+        s["tables"].append(t)
+    return s
 
 
-_BUILDERS = {"headline": _headline, "dataset": _dataset, "noise": _noise, "scan": _scan, "candidates": _candidates,
+_BUILDERS = {"dataset": _dataset, "noise": _noise, "scan": _scan, "candidates": _candidates,
              "followup": _followup, "hosts": _hosts, "limits": _limits, "cautions": _cautions,
-             "provenance": provenance_record}
+             "provenance": _provenance}
+
+
+def _environment():
+    # lazy: a heavy import, loaded only when this runs
+    import jinja2
+
+    return jinja2.Environment(loader=jinja2.FileSystemLoader(str(Path(__file__).parent / "templates")),
+                              autoescape=True, undefined=jinja2.StrictUndefined, trim_blocks=False)
 
 
 def render_report(run_dir) -> str:
     """The report of ``run_dir`` as an HTML string."""
     run = _Run(run_dir)
     title = run.config.get("title") or f"cwsearch run {run.dir.name}"
-    nav = "".join(f'<a href="#{sid}">{_e(t.split(":")[0])}</a>' for sid, t in SECTIONS)
-    body = []
+    sections = []
     for sid, heading in SECTIONS:
-        content = _BUILDERS[sid](run)
-        body.append(f'<section id="{sid}"><h2>{_e(heading)}</h2>\n{content}\n</section>')
+        if sid == "headline":
+            sections.append(_sec("headline", heading))
+        else:
+            sections.append(_BUILDERS[sid](run))
+    for s in sections:
+        s["tables"] = [t for t in s["tables"] if t]
     stamp = run.provenance.get("finished") or run.provenance.get("started") or ""
-    return (
-        "<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">"
-        f"<meta name=\"viewport\" content=\"width=device-width, initial-scale=1\"><title>{_e(title)}</title>"
-        f"<style>{_CSS}</style></head><body>\n"
-        f"<h1>{_e(title)}</h1><p class=\"sub\">cwsearch {_e(__version__)} · run folder {_e(run.dir)}"
-        f"{' · ' + _e(stamp) if stamp else ''}</p><nav>{nav}</nav>\n" + "\n".join(body) + "\n</body></html>\n"
-    )
+    nav = [(sid, t.split(":")[0]) for sid, t in SECTIONS]
+    return _environment().get_template("report.html.j2").render(
+        title=title, version=__version__, run_dir=str(run.dir), stamp=stamp, nav=nav, sections=sections,
+        first=first_screen(run), css=_CSS, js=_JS)
 
 
 def build_report(run_dir) -> Path:
@@ -537,108 +874,6 @@ def build_report(run_dir) -> Path:
     return path
 
 
-
-
-# ---------------------------------------------------------------- headline
-def headline_result(run_dir, reports=None) -> dict:
-    """The headline: candidate found or not and its significance, best host, best limit.
-
-    Read from the stage output files of docs/design.md §11, so it works for any
-    run folder.
-    """
-
-    run_dir = Path(run_dir)
-    statuses = {r.name: r for r in (reports or [])}
-    head = {"candidate_found": False, "candidate": None, "best_host": None, "best_limit": None}
-
-    fol = read_json(run_dir / "followup" / "summary.json")
-    fol_rec = read_record(run_dir / "followup")
-    followed = fol_rec.get("summary", {}) if fol_rec and fol_rec.get("status") == "complete" else {}
-    cands = read_table(run_dir / "scan" / "candidates.ecsv")
-    if cands is not None and len(cands):
-        best = cands[int(np.argmin(cands["fap"]))] if "fap" in cands.colnames else cands[0]
-        cand = {k: _num(best[k]) for k in ("frequency", "ra", "dec", "fe", "fap", "fap_empirical")
-                if k in cands.colnames}
-        threshold = _threshold(run_dir)
-        cand["fap_threshold"] = threshold
-        head["candidate_found"] = bool("fap" in cand and threshold is not None and cand["fap"] < threshold)
-        if isinstance(fol, dict) and fol.get("log_bayes_factor") is not None:
-            bf = fol["log_bayes_factor"]
-            err = fol.get("log_bayes_factor_error", fol.get("log_bayes_factor_err"))
-            if isinstance(bf, list):  # several candidates followed: the first is the best
-                bf = bf[0] if bf else None
-                err = err[0] if isinstance(err, list) and err else None
-            cand["log_bayes_factor"] = _num(bf)
-            if err is not None:
-                cand["log_bayes_factor_err"] = _num(err)
-        for key in ("log_bayes_factor", "log_bayes_factor_err"):
-            if key not in cand and key in followed:
-                cand[key] = _num(followed[key])
-        head["candidate"] = cand
-    hosts = read_table(run_dir / "hosts" / "ranking.ecsv")
-    if hosts is not None and len(hosts) and "probability" in hosts.colnames:
-        i = int(np.argmax(hosts["probability"]))
-        head["best_host"] = {"name": str(hosts["name"][i]), "probability": _num(hosts["probability"][i])}
-    lim = read_table(run_dir / "limits" / "frequency_limits.ecsv")
-    if lim is not None and len(lim) and "strain_95" in lim.colnames:
-        i = int(np.nanargmin(np.asarray(lim["strain_95"], dtype=float)))
-        head["best_limit"] = {"frequency": _num(lim["frequency"][i]), "strain_95": _num(lim["strain_95"][i])}
-    if statuses:
-        head["stages"] = {name: r.status for name, r in statuses.items()}
-    return head
-
-
-def _threshold(run_dir):
-    rec = read_record(Path(run_dir) / "followup")
-    if rec:
-        thr = rec.get("inputs", {}).get("options", {}).get("fap_threshold")
-        if thr is not None:
-            return float(thr)
-    try:
-
-        cfg = tomllib.loads((Path(run_dir) / "run.toml").read_text(encoding="utf-8"))
-        return float(cfg.get("followup", {}).get("fap_threshold", 0.01))
-    except (OSError, ValueError):
-        return 0.01
-
-
-def _num(v):
-    try:
-        v = v.item()
-    except AttributeError:
-        pass
-    if isinstance(v, float) and v != v:
-        return None
-    return v
-
-
-def format_headline(head: dict) -> str:
-    """The headline as a few plain-English lines."""
-    lines = []
-    cand = head.get("candidate")
-    if head.get("candidate_found") and cand:
-        line = (f"Candidate found: f_gw = {cand['frequency']:.4g} Hz at ra = {cand.get('ra', float('nan')):.1f} deg, "
-                f"dec = {cand.get('dec', float('nan')):.1f} deg, false-alarm probability {cand['fap']:.2g}")
-        if cand.get("log_bayes_factor") is not None:
-            line += f", ln Bayes factor {cand['log_bayes_factor']:.1f}"
-            if cand.get("log_bayes_factor_err") is not None:
-                line += f" ± {cand['log_bayes_factor_err']:.1f}"
-        lines.append(line + ".")
-    elif cand:
-        lines.append(f"No candidate: the strongest peak (f_gw = {cand['frequency']:.4g} Hz) has false-alarm "
-                     f"probability {cand.get('fap', float('nan')):.2g}, above the threshold "
-                     f"{cand.get('fap_threshold')}.")
-    else:
-        lines.append("No candidate (no scan result).")
-    host = head.get("best_host")
-    if host:
-        lines.append(f"Best host: {host['name']} with probability {host['probability']:.2f}.")
-    lim = head.get("best_limit")
-    if lim:
-        lines.append(f"Sky-averaged 95% strain upper limit: {lim['strain_95']:.3g} at {lim['frequency']:.4g} Hz "
-                     "(most sensitive frequency).")
-    return "\n".join(lines)
-
-
-__all__ = ["build_report", "render_report", "embed_png", "html_table", "SECTIONS", "GENERAL_CAUTIONS",
-           "headline_result", "format_headline"]
+__all__ = ["build_report", "render_report", "embed_png", "table_view", "fmt_number", "first_screen",
+           "headline_result", "format_headline",
+           "galaxy_limits_view", "SECTIONS", "GENERAL_CAUTIONS", "LABELS", "CAPTIONS"]

@@ -550,16 +550,16 @@ def amplitudes_to_parameters(amplitudes, gw_frequency):
     r1, r2 = np.sqrt(np.abs(plus)), np.sqrt(np.abs(minus))
     scaled = ((r1 + r2) / 2) ** 2
     with np.errstate(invalid="ignore", divide="ignore"):
-        cos_inc = np.where(r1 + r2 > 0, (r1 - r2) / (r1 + r2), 0.0)
+        cos_inclination = np.where(r1 + r2 > 0, (r1 - r2) / (r1 + r2), 0.0)
     a1, a2 = np.angle(plus), np.angle(minus)
     phase = np.mod((a1 + a2) / 4, np.pi / 2)
     psi = np.mod((a1 - a2) / 4, np.pi / 2)
     # (a1 + a2)/4 is defined modulo π/2; fix Φ0 modulo π by the sign of b1 reconstruction
     strain = scaled * 2 * np.pi * np.asarray(gw_frequency)
-    recon = parameters_to_amplitudes(strain, cos_inc, psi, phase, gw_frequency)
+    recon = parameters_to_amplitudes(strain, cos_inclination, psi, phase, gw_frequency)
     flip = np.sum(recon * b, axis=-1) < 0
     phase = np.where(flip, phase + np.pi / 2, phase)
-    return strain, cos_inc, psi, phase
+    return strain, cos_inclination, psi, phase
 
 
 def parameters_to_amplitudes(strain, cos_inclination, polarization, phase, gw_frequency):

@@ -54,6 +54,7 @@ import astropy.units as u
 import numpy as np
 from astropy.table import Table
 
+from ...core.candidates import candidate_row
 from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
@@ -63,8 +64,10 @@ from ...inference.likelihood import Likelihood
 from ...inference.noisefit import stage_noise_statement
 from ...inference.correlated_likelihood import likelihood_for, other_background, reweighted_log_bayes_factor
 from ...physics import fstat, waveform
+from ...data.healpix_fits import credible_area, posterior_sky_map, write_healpix_map
 from ...physics.correlated import ArrayNoise
 from ...physics.noise import NoiseSettings
+from ...physics.sky import angular_separation, unit_vectors
 from ...physics.waveform import EVOLUTION_MODES
 
 STRAIN_RANGE = (1e-18, 1e-11)
@@ -79,7 +82,7 @@ SAMPLE_COLUMNS = ("log_likelihood", "log_prior", "iteration", "walker")
 class FollowupOptions:
     """Options of the follow-up stage; names equal the CLI options (dashes -> underscores)."""
 
-    candidate: int | None = None        # 1-based row of the candidates file (None: the best `top`)
+    candidate: int | str | None = None  # row K (1-based) of the candidates file, or candidate_K (None: best `top`)
     top: int = 1                        # how many of the best candidates to follow
     frequency: float | None = None      # explicit target [Hz] (with ra, dec [deg])
     ra: float | None = None
@@ -255,9 +258,14 @@ def select_targets(run_dir, options: FollowupOptions):
                        source={"frequency": options.frequency, "ra": options.ra, "dec": options.dec})]
     table, path = read_candidates(run_dir)
     if options.candidate is not None:
-        if not 1 <= options.candidate <= len(table):
-            raise InputError(f"--candidate must be between 1 and {len(table)}", file=path)
-        rows = [options.candidate - 1]
+        try:
+            row = candidate_row(options.candidate)
+        except ValueError as exc:
+            raise InputError(f"--candidate: {exc}", file=path) from None
+        if not 1 <= row <= len(table):
+            raise InputError(f"--candidate must be between 1 and {len(table)} (or candidate_1 .. "
+                             f"candidate_{len(table)})", file=path)
+        rows = [row - 1]
     else:
         order = np.argsort(-np.asarray(table["fe"], dtype=float), kind="stable") if "fe" in table.colnames \
             else np.arange(len(table))
@@ -288,11 +296,11 @@ def earth_term_start(engine, target: Target) -> Target:
     proj = noise.projections(np.array([target.frequency]))
     fplus, fcross = fstat.sky_patterns(proj, target.ra, target.dec)
     _, amp = noise.fe_with_amplitudes(proj, fplus, fcross)
-    strain, cos_inc, psi, phase = (float(np.ravel(v)[0]) for v in
+    strain, cos_inclination, psi, phase = (float(np.ravel(v)[0]) for v in
                                    fstat.amplitudes_to_parameters(amp[0, 0], target.frequency))
     if not (np.isfinite(strain) and strain > 0):
         return target
-    return replace(target, strain=strain, inclination=float(np.arccos(np.clip(cos_inc, -1, 1))),
+    return replace(target, strain=strain, inclination=float(np.arccos(np.clip(cos_inclination, -1, 1))),
                    polarization=psi, phase=phase)
 
 
@@ -346,6 +354,51 @@ def _intervals(table):
     return out
 
 
+#: finest HEALPix resolution of the posterior sky map (posterior_sky.fits; nside 64: 0.84 deg² pixels)
+SKY_MAP_NSIDE = 64
+#: the map is coarsened until the occupied pixels hold at least this many samples on average: a histogram
+#: of few samples puts each in its own pixel and would make the credible area far too small
+SAMPLES_PER_PIXEL = 10
+
+
+def sky_summary(ra_deg, dec_deg, folder=None, nside=SKY_MAP_NSIDE):
+    """Posterior sky position: the direction of the mean unit vector of the samples (immune to the
+    0/360° wrap), the radius around it holding 90 % of the samples, and the 90 % credible area [deg²]:
+    the smallest set of HEALPix pixels holding 90 % of the samples, at the finest nside (≤ ``nside``)
+    whose occupied pixels hold :data:`SAMPLES_PER_PIXEL` samples on average (so a poorly sampled
+    posterior gets a coarse map and an honest, large area). With ``folder`` the map is also written as
+    ``posterior_sky.fits`` (HEALPix FITS)."""
+    ra, dec = np.radians(np.asarray(ra_deg, dtype=float)), np.radians(np.asarray(dec_deg, dtype=float))
+    ok = np.isfinite(ra) & np.isfinite(dec)
+    ra, dec = ra[ok], dec[ok]
+    if ra.size == 0:
+        return None
+    v = unit_vectors(ra, dec).mean(axis=0)
+    norm = float(np.linalg.norm(v))
+    ra0 = float(np.arctan2(v[1], v[0]) % (2 * np.pi))
+    dec0 = float(np.arcsin(np.clip(v[2] / norm, -1, 1))) if norm > 0 else 0.0
+    sep = np.degrees(angular_separation(ra0, dec0, ra, dec))
+    while True:
+        prob = posterior_sky_map(ra, dec, nside)
+        if nside == 1 or ra.size / max(np.count_nonzero(prob), 1) >= SAMPLES_PER_PIXEL:
+            break
+        nside //= 2
+    out = {"ra": float(np.degrees(ra0)), "dec": float(np.degrees(dec0)),
+           "median_offset_deg": float(np.median(sep)), "radius_90_deg": float(np.percentile(sep, 90)),
+           "credible_area_90_deg2": credible_area(prob, 0.9), "map_nside": int(nside),
+           "pixel_area_deg2": float(4 * np.pi / prob.size * (180 / np.pi) ** 2),
+           "n_samples": int(ra.size),
+           "method": "mean unit vector of the samples; 90 % area from the smallest set of HEALPix pixels "
+                     f"holding 90 % of the samples, at the finest nside with >= {SAMPLES_PER_PIXEL} samples per "
+                     "occupied pixel"}
+    if folder is not None:
+        write_healpix_map(Path(folder) / "posterior_sky.fits", {"PROB": prob}, nside=nside,
+                          units={"PROB": "pix-1"},
+                          description="posterior probability per pixel of the follow-up (sums to 1)")
+        out["map_file"] = "posterior_sky.fits"
+    return out
+
+
 def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, other=None):
 
     span = array.span
@@ -392,6 +445,7 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, 
         "bayes_factor_meaning": comparison["meaning"],
         "background_comparison": comparison,
         "parameters": _intervals(table),
+        "sky": sky_summary(table["ra"], table["dec"], folder),
         "warnings": list(result.warnings),
         "converged": bool(result.converged),
         "stopped_by": result.stopped_by,
@@ -497,7 +551,7 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
             # lazy: matplotlib is loaded only when plots are drawn
             from .plots import plot_followup
 
-            plot_followup(folder, table, result, likelihood, array, target)
+            plot_followup(folder, table, result, likelihood, array, target, sky=summary.get("sky"))
         summaries.append(summary)
         folders.append(folder)
         runs.append(result)

@@ -34,15 +34,15 @@ def _prob_colors(p):
     return cmap((lp + 6.0) / 6.0), lp
 
 
-def make_plots(folder, res, model, options):
-    """Write the three PNG files for one candidate; returns their paths."""
-    paths = [sky_plot(folder / "hosts_sky.png", res), zoom_plot(folder / "hosts_sky_zoom.png", res)]
+def make_plots(folder, res, model, options, truth=None):
+    """Write the three PNG files for one candidate; returns their paths (``truth``: injected binary, degrees)."""
+    paths = [sky_plot(folder / "hosts_sky.png", res, truth), zoom_plot(folder / "hosts_sky_zoom.png", res, truth)]
     if len(res.ranking):
         paths.append(chirp_mass_plot(folder / "hosts_chirp_mass.png", res, model, min(options.top, 6)))
     return paths
 
 
-def sky_plot(path, res):
+def sky_plot(path, res, truth=None):
     nside, dens, t90, t99 = res.sky_map
     table = res.ranking
     colors, _ = _prob_colors(table["probability"]) if len(table) else (None, None)
@@ -52,9 +52,11 @@ def sky_plot(path, res):
                       "color": [colors[k]], "marker": "o", "size": 18 if k else 40,
                       "label": (f"best host {table['name'][k]} (p={table['probability'][k]:.2f})" if k == 0
                                 else None)})
-    sky_map(path, dens, nside, title=f"Candidate {res.localisation.label}: sky density and catalogue galaxies",
+    sky_map(path, dens, nside, title=f"Candidate {res.localisation.label}: sky density and catalogue galaxies "
+                                     "(contours: 90 % and 99 % regions)",
             label="sky density of the binary [1/sr]", marks=marks, cmap="Blues",
-            contours=[([t99, t90], dens)] if t90 > t99 else None)
+            contours=[([t99, t90], dens)] if t90 > t99 else None,
+            truth=None if not truth else (math.radians(truth["ra"]), math.radians(truth["dec"])))
     return path
 
 
@@ -62,7 +64,7 @@ def _unwrap(ra_deg, centre):
     return (np.asarray(ra_deg) - centre + 180.0) % 360.0 - 180.0 + centre
 
 
-def zoom_plot(path, res):
+def zoom_plot(path, res, truth=None):
     plt = pyplot()
     loc = res.localisation
     ra_s, dec_s = np.degrees(loc.ra), np.degrees(loc.dec)
@@ -84,9 +86,20 @@ def zoom_plot(path, res):
         sc = ax.scatter(gra, table["dec"], s=sizes, c=lp, cmap="plasma", vmin=-6, vmax=0, edgecolors="black",
                         linewidths=0.5, zorder=3)
         fig.colorbar(sc, ax=ax, label="log10 host probability")
-        for k in range(min(5, len(table))):
-            ax.annotate(str(table["name"][k]), (gra[k], table["dec"][k]), fontsize=7, xytext=(4, 4),
-                        textcoords="offset points")
+        # rank numbers beside the top hosts (names collide when galaxies cluster), the names listed below
+        from ...core.plotting import _outlined
+
+        n_label = min(5, len(table))
+        for k in range(n_label):
+            _outlined([ax.annotate(str(k + 1), (gra[k], table["dec"][k]), fontsize=9, fontweight="bold",
+                                   xytext=(5, 5), textcoords="offset points")])
+        listing = "   ".join(f"{k + 1}: {table['name'][k]} (p = {table['probability'][k]:.2g})"
+                               for k in range(n_label))
+        fig.text(0.02, -0.02, "top hosts  " + listing, fontsize=8, ha="left", va="top", wrap=True)
+    if truth and "ra" in truth:
+        ax.scatter(_unwrap(truth["ra"], centre_ra), truth["dec"], marker="P", s=110, c="#e6007e",
+                   edgecolors="black", linewidths=0.7, zorder=5, label="truth (injection.json)")
+        ax.legend(fontsize=8, loc="lower left")
     ax.invert_xaxis()
     ax.set_xlabel("right ascension [deg]")
     ax.set_ylabel("declination [deg]")

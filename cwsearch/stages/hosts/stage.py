@@ -83,11 +83,13 @@ from astropy.table import Table, vstack
 from scipy.spatial import cKDTree
 from scipy.special import logsumexp
 
+from ...core.candidates import candidate_name, candidate_row
 from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
 from ...core.safeio import escape_text, read_input_text, require_finished
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...data.catalog import read_catalog
+from ...data.truth import injected_binary
 from ...inference.noisefit import stage_noise_statement
 from ...physics import fstat
 from ...physics.correlated import array_noise
@@ -553,10 +555,10 @@ def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000, *, a
     fe_all = np.asarray(table["fe"], float)
     if options.candidate is not None:
         try:
-            row = int(options.candidate)
+            row = candidate_row(options.candidate)
         except ValueError:
-            raise InputError(f"--candidate {options.candidate!r}: give a scan candidate row number (1 = best)",
-                             file=path) from None
+            raise InputError(f"--candidate {options.candidate!r}: give a scan candidate row number (1 = best) "
+                             "or its name candidate_K", file=path) from None
         if not 1 <= row <= len(table):
             raise InputError(f"--candidate {row}: the scan has {len(table)} candidate(s)", file=path)
         i = row - 1
@@ -619,7 +621,7 @@ def find_localisations(run_dir, options, span_seconds, rng, *, array=None, noise
                 found.append((sub / "posterior.ecsv", sub.name))
     if found:
         if options.candidate is not None:
-            found = [f for f in found if f[1] == str(options.candidate)]
+            found = [f for f in found if _same_candidate(f, options.candidate)]
             if not found:
                 raise InputError(f"--candidate {options.candidate}: no follow-up folder of that name", file=follow)
         return [read_posterior(p, label) for p, label in found]
@@ -889,7 +891,7 @@ def rank_candidate(loc, catalog, model, options, rng, *, n_catalogue):
         "localisation_description": loc.description,
         "localisation_source": loc.source,
         "n_samples": len(loc),
-        "search_prior": {"source": "follow-up summary.json" if loc.prior else "defaults (docs/design.md section 8)",
+        "search_prior": {"source": "follow-up summary.json" if loc.prior else "defaults (docs/design.md §8)",
                          "frequency_band_hz": list(model.frequency_band),
                          "chirp_mass_range_msun": list(model.chirp_mass_range),
                          "strain_range": list(model.strain_range), "strain_prior": model.strain_prior},
@@ -964,7 +966,8 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
         if several:
             write_table_atomic(folder / "ranking.ecsv", res.ranking)
             write_json_atomic(folder / "hosts_summary.json", res.summary)
-        res.plots = host_plots.make_plots(folder, res, model, options) if not options.no_plots else []
+        res.plots = (host_plots.make_plots(folder, res, model, options, truth=_truth(array, run_dir))
+                     if not options.no_plots else [])
     ranking = vstack([r.ranking for r in results], metadata_conflicts="silent") if several else results[0].ranking
     write_table_atomic(out_dir / "ranking.ecsv", ranking)
     first = results[0].summary
@@ -1025,6 +1028,31 @@ def format_table(result: HostsResult, top=10) -> str:
 def summary_json(result: HostsResult) -> str:
     return json.dumps(result.summary, indent=2, default=lambda o: o.item() if hasattr(o, "item") else str(o))
 
+
+def _truth(array, run_dir):
+    """The injected binary of a simulated dataset (for over-plotting), or None; without an array (the
+    ``cwsearch hosts`` command) it is found through the run folder's dataset.json."""
+    return injected_binary(array) or injected_binary(run_dir)
+
+
+def _same_candidate(found, wanted) -> bool:
+    """Whether a follow-up posterior ``(path, label)`` is the candidate named ``wanted`` (folder name, row K or
+    candidate_K; a single follow-up in followup/ itself is matched by the scan row it started from)."""
+    path, label = found
+    if label == str(wanted):
+        return True
+    try:
+        row = candidate_row(wanted)
+    except ValueError:
+        return False
+    if label == candidate_name(row):
+        return True
+    try:
+        start = json.loads((path.parent / "summary.json").read_text(encoding="utf-8")).get("start") or {}
+    except (OSError, ValueError):
+        return False
+    rank = (start.get("candidate_row") or {}).get("rank") if isinstance(start.get("candidate_row"), dict) else None
+    return rank is not None and int(rank) == row
 
 __all__ = [
     "SEARCH_CHIRP_MASS_RANGE", "SEARCH_STRAIN_RANGE", "SEARCH_FREQUENCY_MAX", "DEFAULT_SPAN_YEARS",

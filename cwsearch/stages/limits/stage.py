@@ -72,6 +72,7 @@ from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...core.progress import progress as progress_bar
 from ...data.catalog import read_catalog
+from ...data.healpix_fits import write_healpix_map
 from ...inference.execution import TaskRunner
 from ...inference.sampling import run_sampler, SamplerSettings
 from ...inference.noisefit import stage_noise_statement
@@ -1082,6 +1083,24 @@ def _sky_averages(res, frequencies, n_pix, level=LEVEL):
     return out
 
 
+def _positive_min(pixel_limits):
+    """Per column (frequency), the lowest positive per-pixel limit (NaN if none): an empty frequentist
+    limit (0, see :func:`_best_pixel`) is not a best sky position."""
+    x = np.asarray(pixel_limits, dtype=float)
+    m = np.where(x > 0, x, np.inf).min(axis=0)
+    return np.where(np.isfinite(m), m, np.nan)
+
+
+def _best_pixel(pixel_limits):
+    """Best (lowest) per-pixel limit among pixels with a positive, finite limit, and how many pixels have
+    an empty limit (0: the observed Fe is below what noise alone gives 95 % of the time, so the frequentist
+    construction excludes every strain; such a pixel has no informative limit, and is not "best")."""
+    x = np.asarray(pixel_limits, dtype=float)
+    ok = np.isfinite(x) & (x > 0)
+    return {"best_pixel_strain_95": float(x[ok].min()) if ok.any() else None,
+            "pixels_with_empty_limit": int(np.sum(x == 0))}
+
+
 def _finite_or_none(v):
     v = float(v)
     return v if math.isfinite(v) else None
@@ -1108,6 +1127,12 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     if fmin is not None and options.fmax is None and not fmax > fmin:
         fmax = default_max_frequency(array)
     frequencies = frequency_grid(array, fmin=fmin, fmax=fmax, oversample=int(options.oversample))
+    fmax_note = None
+    if options.fmax is None and fmax < default_max_frequency(array):
+        fmax_note = (f"highest frequency {fmax:.3g} Hz by default, lower than the scan's default "
+                     f"{default_max_frequency(array):.3g} Hz (1/(2 x median TOA spacing), at most 1e-6 Hz): every "
+                     "limit frequency costs a quadrature over every sky pixel, and limits matter most where the "
+                     "array is sensitive; set fmax (--fmax) to go higher")
     workers = None if not options.workers else int(options.workers)
     requested_sky_index = None
     if options.sky_frequency is not None:
@@ -1136,7 +1161,7 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     ftab = Table()
     ftab["frequency"] = frequencies * u.Hz
     ftab["strain_95"] = averages[primary]
-    ftab["strain_95_best"] = pixel_limits.min(axis=0)
+    ftab["strain_95_best"] = _positive_min(pixel_limits)
     ftab["strain_95_worst"] = pixel_limits.max(axis=0)
     ftab["strain_95_median"] = np.median(pixel_limits, axis=0)
     ftab["best_pixel"] = np.argmin(pixel_limits, axis=0)
@@ -1144,7 +1169,7 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     if primary == "bayes":
         pf = res["frequentist"][:n_pix]
         ftab["strain_95_frequentist"] = averages["frequentist"]
-        ftab["strain_95_frequentist_best"] = pf.min(axis=0)
+        ftab["strain_95_frequentist_best"] = _positive_min(pf)
         ftab["strain_95_frequentist_worst"] = pf.max(axis=0)
     ftab["fe_max"] = res["fe"][:n_pix].max(axis=0)
     ftab.meta.update({"method": primary, "level": LEVEL, "nside": nside,
@@ -1216,6 +1241,10 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     files["frequency_limits"] = str(folder / "frequency_limits.ecsv")
     write_table_atomic(folder / "sky_limits.ecsv", stab)
     files["sky_limits"] = str(folder / "sky_limits.ecsv")
+    write_healpix_map(folder / "sky_limits.fits", {"STRAIN_95": np.asarray(stab["strain_95"], dtype=float)},
+                      nside=nside, extra={"FREQ": sky_frequency, "METHOD": primary, "LEVEL": LEVEL},
+                      description=f"95 % strain upper limit ({primary}) per pixel at FREQ Hz")
+    files["sky_limits_map"] = str(folder / "sky_limits.fits")
     if gtab is not None:
         write_table_atomic(folder / "galaxy_limits.ecsv", gtab)
         files["galaxy_limits"] = str(folder / "galaxy_limits.ecsv")
@@ -1234,14 +1263,16 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
         "noise_model": engine.describe(),
         "wall_time": round(time.time() - started, 3),
     }
+    if fmax_note:
+        summary["fmax_note"] = fmax_note
     if "bayes" in averages:
         summary["bayes"] = {"strain_95_at_best_frequency": _finite_or_none(averages["bayes"][best]),
                             "strain_95_min": _finite_or_none(np.nanmin(averages["bayes"])),
-                            "best_pixel_strain_95": _finite_or_none(res["bayes"][:n_pix, best].min())}
+                            **_best_pixel(res["bayes"][:n_pix, best])}
     if "frequentist" in averages:
         summary["frequentist"] = {"strain_95_at_best_frequency": _finite_or_none(averages["frequentist"][best]),
                                   "strain_95_min": _finite_or_none(np.nanmin(averages["frequentist"])),
-                                  "best_pixel_strain_95": _finite_or_none(res["frequentist"][:n_pix, best].min())}
+                                  **_best_pixel(res["frequentist"][:n_pix, best])}
     summary["strain_95"] = summary[primary]["strain_95_at_best_frequency"]
     if galaxies:
         summary["galaxies"] = {g.name: {"distance": g.distance,

@@ -8,6 +8,7 @@ from __future__ import annotations
 import numpy as np
 
 from ...core.plotting import pyplot, save_figure, sky_map
+from ...data.truth import injected_binary
 from ...data.plots import correlation_plot  # noqa: F401  (the scan draws it; defined with the dataset plots)
 
 _LINE_STYLES = ("--", ":", "-.")
@@ -64,13 +65,42 @@ def spectrum_plot(path, spectrum, candidates, thresholds, *, want_fe=True):
 
 
 def sky_plot(path, fe_values, nside, frequency, array, candidates):
-    """Mollweide map of Fe at one frequency, pulsars as stars, candidates at that frequency marked."""
+    """Mollweide map of Fe at one frequency, pulsars as stars, candidates marked, a zoom on the best one,
+    and the truth (the dataset's injection.json) when there is one."""
     marks = [{"ra": np.radians(float(row["ra"])), "dec": np.radians(float(row["dec"])),
-              "label": f"candidate {int(row['rank'])}" if i < 3 else None, "color": "red", "marker": "x"}
+              "label": f"candidate {int(row['rank'])}" if i < 3 else None, "color": "#d62728", "marker": "x",
+              "text": f"#{int(row['rank'])}" if i < 3 else None}
              for i, row in enumerate(candidates)]
+    truth = injected_binary(array)
+    zoom = (marks[0]["ra"], marks[0]["dec"], 30.0) if marks else None
     sky_map(path, np.asarray(fe_values, dtype=float), nside,
-            title=f"Fe at f = {frequency:.4g} Hz", label="Fe",
-            pulsars=(np.array([p.ra for p in array]), np.array([p.dec for p in array])), marks=marks)
+            title=f"Fe over the sky at f = {frequency * 1e9:.4g} nHz", label="Fe (F-statistic)",
+            pulsars=(np.array([p.ra for p in array]), np.array([p.dec for p in array])), marks=marks,
+            cmap="YlGnBu", truth=None if not truth else (np.radians(truth["ra"]), np.radians(truth["dec"])),
+            zoom=zoom)
 
 
-__all__ = ["spectrum_plot", "sky_plot"]
+def null_plot(path, null_max, observed, statistic="Fe"):
+    """Histogram of the loudest noise-only values with the observed loudest value marked."""
+    plt = pyplot()
+    null_max = np.asarray(null_max, dtype=float)
+    n = null_max.size
+    k = int(np.sum(null_max >= observed))
+    fig, ax = plt.subplots(figsize=(7, 3.8))
+    top = max(float(null_max.max()), observed)
+    bins = np.linspace(min(float(null_max.min()), observed) * 0.95, top * 1.05, max(10, min(40, n // 2 + 5)))
+    ax.hist(null_max, bins=bins, color="#9ecae1", edgecolor="#3182bd", label=f"{n} noise-only scans")
+    ax.axvline(observed, color="#d62728", lw=2, label=f"observed loudest {statistic} = {observed:.3g}")
+    fap = (1 + k) / (1 + n)
+    text = (f"empirical FAP < {1 / (n + 1):.2g} (no noise-only scan reached it)" if k == 0
+            else f"empirical FAP = (1 + {k})/(1 + {n}) = {fap:.2g}")
+    ax.set_title(text, fontsize=10)
+    ax.set_xlabel(f"loudest {statistic} of a scan (over sky and frequency)")
+    ax.set_ylabel("number of scans")
+    ax.legend(fontsize=8, loc="upper center")
+    ax.grid(alpha=0.3)
+    fig.tight_layout()
+    save_figure(fig, path)
+
+
+__all__ = ["spectrum_plot", "sky_plot", "null_plot"]

@@ -43,7 +43,7 @@ Examples
 >>> arr = simulated_array(invented_array(n_pulsars=5, years=8, seed=1), seed=2)
 >>> res = run_scan(arr, tempfile.mkdtemp(), ScanOptions(nside=2, fmax=2e-8, no_plots=True), progress=False)
 >>> sorted(res.files)[:2]
-['candidates', 'spectrum']
+['candidates', 'sky_map']
 """
 
 from __future__ import annotations
@@ -61,6 +61,7 @@ from scipy.special import chdtrc, chdtri    # the chi-squared tails scipy.stats.
 from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...core.progress import progress as bar
+from ...data.healpix_fits import write_healpix_map
 from ...inference.noisefit import GOF_THRESHOLD, NoiseFitWarning, goodness_of_fit, stage_noise_statement
 from ...inference.execution import TaskRunner
 from ...physics import fstat, sky
@@ -680,6 +681,28 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     t = time.time()
     write_table_atomic(files["spectrum"], spectrum)
     write_table_atomic(files["candidates"], candidates)
+    if null_fe is not None or null_fp is not None:
+        null_table = Table()
+        null_table["simulation"] = np.arange(len(null_fe if null_fe is not None else null_fp))
+        if null_fe is not None:
+            null_table["fe_max"] = np.asarray(null_fe, dtype=float)
+        if null_fp is not None:
+            null_table["fp_max"] = np.asarray(null_fp, dtype=float)
+        null_table.meta["description"] = ("loudest Fe (over sky and frequency) and loudest Fp (over frequency) of "
+                                          "each noise-only scan of the same array and noise model")
+        files["null_maxima"] = out / "null_maxima.ecsv"
+        write_table_atomic(files["null_maxima"], null_table)
+    if want_fe and fe_full is not None:
+        files["sky_map"] = out / "fe_sky.fits"
+        maps = {"FE_MAX": fe_full.max(axis=1)}
+        extra = {}
+        if len(candidates):
+            k = int(candidates["frequency_index"][0])
+            maps["FE_BEST_FREQ"] = fe_full[:, k]
+            extra = {"BESTFREQ": float(frequencies[k])}
+        write_healpix_map(files["sky_map"], maps, nside=options.nside,
+                          description="FE_MAX: maximum Fe over all scanned frequencies per pixel; FE_BEST_FREQ: "
+                                      "Fe at the best candidate's frequency (BESTFREQ, Hz)", extra=extra)
     summary["write_seconds"] = round(time.time() - t, 3)
     summary["plots_seconds"] = 0.0
     if not options.no_plots:     # the tables are complete before any plot; the summary (the stage's
@@ -696,6 +719,11 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
             files["sky_plot"] = out / "sky_fe.png"
             scan_plots.sky_plot(files["sky_plot"], fe_full[:, k], options.nside, frequencies[k], array,
                                 candidates[candidates["frequency_index"] == k])
+        null = null_fe if want_fe else null_fp
+        if null is not None and len(candidates):
+            files["null_plot"] = out / "null_fe.png"
+            observed = float(np.nanmax(candidates["fe" if want_fe else "fp"]))
+            scan_plots.null_plot(files["null_plot"], null, observed, statistic="Fe" if want_fe else "Fp")
         if engine.kind != "none" and len(array) >= 2:
             pairs = pair_correlations(array, noise)
             files["correlation_plot"] = out / "hd_correlations.png"
@@ -795,7 +823,7 @@ def _candidates(options, array, proj, frequencies, fe_full, fp, fp_law, ra, dec,
             fe[i], amps[i] = val[0, 0], amp[0, 0]
         order = np.argsort(-fe, kind="stable")
         pix, fidx, fe, amps = pix[order], fidx[order], fe[order], amps[order]
-        strain, cos_inc, psi, phase = fstat.amplitudes_to_parameters(amps, frequencies[fidx])
+        strain, cos_inclination, psi, phase = fstat.amplitudes_to_parameters(amps, frequencies[fidx])
         table["rank"] = np.arange(1, pix.size + 1)
         table["frequency"] = frequencies[fidx]
         table["frequency"].unit = "Hz"
@@ -814,7 +842,7 @@ def _candidates(options, array, proj, frequencies, fe_full, fp, fp_law, ra, dec,
         table["fp"] = fp[fidx]
         table["fp_fap"] = trials_fap(fp_fap(fp[fidx], fp_dof[fidx], fp_scale[fidx]), trials.n_frequencies)
         table["strain"] = strain
-        table["inclination"] = np.arccos(np.clip(cos_inc, -1, 1))
+        table["inclination"] = np.arccos(np.clip(cos_inclination, -1, 1))
         table["inclination"].unit = "rad"
         table["polarization"] = psi
         table["polarization"].unit = "rad"
