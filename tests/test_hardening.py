@@ -223,7 +223,7 @@ def test_followup_refuses_scan_without_summary(work, capsys):
 
 def test_hosts_refuses_scan_without_summary(work, capsys):
     _finished_looking_scan(work / "run")
-    code, err = run_cli(["hosts", work / "run", "--catalog", work / "galaxies.csv", "--observed-span", "10",
+    code, err = run_cli(["hosts", "--out", work / "run", "--catalog", work / "galaxies.csv", "--observed-span", "10",
                          "--quiet"], capsys)
     check_user_error(code, err, ["candidates.ecsv", "did not finish"])
 
@@ -236,7 +236,7 @@ def test_hosts_refuses_posterior_without_summary(work, capsys):
                "chirp_mass": np.full(n, 1e9), "strain": np.full(n, 1e-14)})
     (work / "run" / "followup").mkdir(parents=True)
     t.write(work / "run" / "followup" / "posterior.ecsv", format="ascii.ecsv")
-    code, err = run_cli(["hosts", work / "run", "--catalog", work / "galaxies.csv", "--observed-span", "10",
+    code, err = run_cli(["hosts", "--out", work / "run", "--catalog", work / "galaxies.csv", "--observed-span", "10",
                          "--quiet"], capsys)
     check_user_error(code, err, ["posterior.ecsv", "summary.json", "did not finish"])
 
@@ -451,3 +451,11 @@ def test_counts_have_upper_bounds():
         NoiseSettings(red_components=10**9)
     with pytest.raises(InputError, match="--red-components"):
         NoiseSettings(red_components=-1)
+
+
+def test_fitted_noise_table_fifo_refused_without_blocking(tmp_path, tiny_array):
+    from cwsearch.inference.noisefit import read_noise_table
+
+    os.mkfifo(tmp_path / "noise_model.ecsv")
+    with pytest.raises(InputError, match="named pipe"):
+        read_noise_table(tmp_path / "noise_model.ecsv", tiny_array)

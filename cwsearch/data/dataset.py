@@ -73,7 +73,7 @@ from ..core.constants import DAY_SECONDS
 from ..core.errors import InputError
 from ..core.fileio import write_json_atomic, write_table_atomic
 from ..core.safeio import (MAX_RESIDUAL_OVER_SIGMA, MAX_RESIDUAL_SECONDS, MJD_RANGE, SIGMA_RANGE, check_folder,
-                           is_regular_file, read_input_bytes)
+                           escape_text, is_regular_file, read_input_bytes)
 from .model import default_design_matrix, Array, DEFAULT_DESIGN_COLUMNS, Pulsar, PulsarNoise
 
 PULSARS_FILE = "pulsars.ecsv"
@@ -130,7 +130,7 @@ def read_dataset(path, *, mjd_range=None) -> Array:
     expected = {f"{row['name']}.ecsv" for row in rows}
     unused = sorted(e.name for e in res_dir.iterdir() if not e.name.startswith(".") and e.name not in expected)
     if unused:
-        shown = ", ".join(unused[:5]) + (" ..." if len(unused) > 5 else "")
+        shown = escape_text(", ".join(unused[:5]) + (" ..." if len(unused) > 5 else ""))
         warnings.warn(f"{res_dir}: {len(unused)} file(s) not named in {PULSARS_FILE} are ignored: {shown}",
                       DatasetWarning, stacklevel=2)
 
@@ -534,7 +534,8 @@ def _read_pulsar_table(file, root=None):
 def _warn_unknown_columns(table, known, file, prefixes=()):
     unknown = [c for c in table.colnames if c not in known and not c.startswith(prefixes or ("\0",))]
     if unknown:
-        warnings.warn(f"{file}: unknown column(s) ignored: {', '.join(unknown)}", DatasetWarning, stacklevel=4)
+        warnings.warn(f"{file}: unknown column(s) ignored: {escape_text(', '.join(unknown))}", DatasetWarning,
+                      stacklevel=4)
 
 
 def _read_residual_table(file, root=None, mjd_range=None):

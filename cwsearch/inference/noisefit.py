@@ -88,6 +88,7 @@ True
 from __future__ import annotations
 
 import hashlib
+import os
 import warnings
 from dataclasses import dataclass, field, asdict
 from pathlib import Path
@@ -1052,7 +1053,7 @@ def read_noise_table(path, array, *, dataset_checksum=None) -> NoiseModel:
     ``dataset_checksum`` is given, it must equal the table's).
     """
     file = Path(path)
-    if not file.is_file():
+    if not os.path.lexists(file):   # anything else (a FIFO, a device, a folder) is refused by the safety layer
         raise InputError("noise table not found", file=file)
     table = _read_table(file)
     meta = dict(table.meta)

@@ -91,15 +91,10 @@ class NoiseSettings:
     common_correlation: Literal["hellings-downs", "uncorrelated", "none"] = "hellings-downs"
     common_components: int | None = None
 
-
-def common_components(settings: NoiseSettings) -> int:
-    """Fourier frequencies k/T_span (k = 1..K_common) of the common process: ``settings.common_components``,
-    or ``red_components`` when None, never more than ``red_components``."""
-    k = settings.red_components if settings.common_components is None else int(settings.common_components)
-    return max(0, min(k, settings.red_components))
-
     def __post_init__(self):
         check_count(self.red_components, "red_components", minimum=0, maximum=MAX_RED_COMPONENTS)
+        if self.common_components is not None:
+            check_count(self.common_components, "common_components", minimum=0, maximum=MAX_RED_COMPONENTS)
         for name in ("common_log10_amplitude", "common_index"):
             value = getattr(self, name)
             if value is not None and not (isinstance(value, (int, float)) and math.isfinite(value)):
@@ -111,6 +106,13 @@ def common_components(settings: NoiseSettings) -> int:
 
 #: most Fourier frequencies of a red process (k/T_span, k = 1..K): 1000 reaches daily cadence for 3 years
 MAX_RED_COMPONENTS = 1000
+
+
+def common_components(settings: NoiseSettings) -> int:
+    """Fourier frequencies k/T_span (k = 1..K_common) of the common process: ``settings.common_components``,
+    or ``red_components`` when None, never more than ``red_components``."""
+    k = settings.red_components if settings.common_components is None else int(settings.common_components)
+    return max(0, min(k, settings.red_components))
 
 
 def fourier_frequencies(span, n_components):
