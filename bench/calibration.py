@@ -39,6 +39,10 @@ residuals replaced by simulations from :func:`cwsearch.physics.simulate.simulate
    observed value, random orientation: the fraction with 2Fe above the
    observed 2Fe must be ≥ 0.95 within binomial error.
 
+``--realistic`` runs :mod:`bench.realistic` instead: the scan FAP on invented arrays with wrong quoted
+errors, red noise in half the pulsars and a Hellings–Downs background, with the default noise model
+(estimated by the noise stage); its options follow ``--realistic``.
+
 Quick run: ``python -m bench.calibration --scan-sims 20 --null-sims 50
 --posterior-injections 0 --limit-cases 40``.
 
@@ -441,6 +445,13 @@ def print_posterior(res):
 
 # ------------------------------------------------------------------ main
 def main(argv=None):
+    import sys
+
+    argv = list(sys.argv[1:] if argv is None else argv)
+    if "--realistic" in argv:   # realistic noise, default noise model (estimate): bench/realistic.py
+        from . import realistic
+
+        return realistic.main([a for a in argv if a != "--realistic"])
     parser = argparse.ArgumentParser(prog="python -m bench.calibration", description=__doc__.split("\n\n")[0])
     parser.add_argument("--scan-sims", type=int, default=200, help="noise-only scans to calibrate (default 200)")
     parser.add_argument("--null-sims", type=int, default=1000,

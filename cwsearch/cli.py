@@ -18,6 +18,7 @@ import importlib
 import os
 import sys
 import traceback
+import warnings
 
 from . import __version__
 from .core.errors import InputError
@@ -29,6 +30,7 @@ COMMANDS = {
     "run": "run the whole job from a TOML run file",
     "simulate": "write an invented dataset (noise, background, injected binaries)",
     "inspect": "validate a dataset and print a summary per pulsar",
+    "noise": "estimate the noise model (white, red per pulsar, common) from the residuals",
     "scan": "all-sky F-statistic scan over frequency x sky",
     "followup": "parallel-tempered MCMC fit of candidates (Earth + pulsar term)",
     "limits": "95% strain upper limits vs frequency and sky; chirp-mass limits for galaxies",
@@ -87,6 +89,7 @@ def main(argv=None) -> int:
 
 def run_command(func, args) -> int:
     """Run ``func(args)``, mapping user errors to exit 2 and crashes to exit 1."""
+    warnings.showwarning = _show_warning
     try:
         return int(func(args) or 0)
     except InputError as exc:
@@ -106,6 +109,15 @@ def run_command(func, args) -> int:
         return 2
     except Exception:
         return _internal_error()
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    """cwsearch's own warnings as one line ``cwsearch: warning: ...`` on stderr; others as Python shows them."""
+    if getattr(category, "__module__", "").startswith("cwsearch"):
+        print(f"cwsearch: warning: {message}", file=sys.stderr if file is None else file)
+        return
+    print(warnings.formatwarning(message, category, filename, lineno, line), end="",
+          file=sys.stderr if file is None else file)
 
 
 #: errno values of a place that cannot be written or read by this user (exit 2, no traceback)

@@ -61,7 +61,8 @@ def demo_options(sigma):
                            inject_strain=strain, inject_frequency=BINARY["gw_frequency"], inject_ra=BINARY["ra"],
                            inject_dec=BINARY["dec"], inject_chirp_mass=BINARY["chirp_mass"],
                            inject_inclination=BINARY["inclination"], inject_polarization=BINARY["polarization"],
-                           inject_phase=BINARY["phase"], evolution="full", earth_term_only=False)
+                           inject_phase=BINARY["phase"], evolution="full", earth_term_only=False,
+                           noise_in_files=True)  # the demo keeps its noise values in the files (dataset model)
 
 
 def make(folder: Path) -> dict:

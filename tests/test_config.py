@@ -125,7 +125,7 @@ def test_dask_engine_with_address(tmp_path, dataset_dir):
 
 
 def test_bad_stage_list(tmp_path, dataset_dir):
-    with pytest.raises(InputError, match="stages: 'scna' is not one of 'scan'"):
+    with pytest.raises(InputError, match="stages: 'scna' is not one of 'noise', 'scan'"):
         _parse('dataset = "data"\nstages = ["scna"]\n', tmp_path)
     cfg = _parse('dataset = "data"\nstages = ["limits", "scan"]\n', tmp_path)
     assert cfg.stages == ("scan", "limits")  # always pipeline order

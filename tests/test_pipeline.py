@@ -39,6 +39,9 @@ class Calls:
         return self.log.count(name)
 
 
+#: the stages of the dummy pipeline below (the real one starts with the noise stage)
+DUMMY_STAGES = ("scan", "followup", "hosts", "limits")
+
 def _dummy_specs(calls, *, interrupt=None, empty=None):
     """Four dummy stages with the real names and dependencies; each writes a file derived from its inputs."""
 
@@ -80,12 +83,12 @@ def _run(cfg, specs, **kw):
 def test_second_run_skips_everything(tmp_path):
     calls = Calls()
     cfg = _config(tmp_path)
-    assert _run(cfg, _dummy_specs(calls)) == dict.fromkeys(STAGES, "ran")
-    before = {s: folder_hash(cfg.out / s) for s in STAGES}
-    assert _run(cfg, _dummy_specs(calls)) == dict.fromkeys(STAGES, "skipped")
+    assert _run(cfg, _dummy_specs(calls)) == dict.fromkeys(DUMMY_STAGES, "ran")
+    before = {s: folder_hash(cfg.out / s) for s in DUMMY_STAGES}
+    assert _run(cfg, _dummy_specs(calls)) == dict.fromkeys(DUMMY_STAGES, "skipped")
     assert len(calls.log) == 4
     # exact on purpose: skipped stages must not rewrite their files at all, so their bytes stay the same
-    assert {s: folder_hash(cfg.out / s) for s in STAGES} == before
+    assert {s: folder_hash(cfg.out / s) for s in DUMMY_STAGES} == before
     rec = read_record(cfg.out / "scan")
     assert rec["status"] == "complete" and rec["summary"]["stage"] == "scan" and rec["seed"] == stage_seed(3, "scan")
 
@@ -240,7 +243,7 @@ def test_stage_left_out_of_the_run(tmp_path):
 
 def test_stage_seeds_are_distinct_and_stable():
     seeds = [stage_seed(0, s) for s in STAGES]
-    assert len(set(seeds)) == 4
+    assert len(set(seeds)) == len(STAGES)
     assert seeds == [stage_seed(0, s) for s in STAGES]
     assert stage_seed(1, "scan") != stage_seed(0, "scan")
 

@@ -8,8 +8,8 @@ from pathlib import Path
 
 from ..core.errors import InputError
 
-from ._common import (add_dataset_arguments, add_noise_arguments, load_array, noise_settings,
-                      run_folder_guard)
+from ._common import (add_dataset_arguments, add_noise_arguments, load_array, resolve_noise,
+                      run_folder_guard, run_stage_with_noise)
 
 DESCRIPTION = (
     "Fit one circular binary (Earth + pulsar term, pulsar phases marginalised) to the top candidate(s) of "
@@ -103,8 +103,10 @@ def run(args) -> int:
                                                      3 if args.max_candidates is None else args.max_candidates))
     array = load_array(args)
     with run_folder_guard(args.out, array, args.dataset):
-        result = run_followup(array, args.out, options, noise=noise_settings(args), seed=args.seed,
-                              progress=not args.quiet)
+        resolved = resolve_noise(args, array)
+        result = run_stage_with_noise(resolved, lambda: run_followup(resolved.array, args.out, options,
+                                                                     noise=resolved.noise, seed=args.seed,
+                                                                     progress=not args.quiet))
     if args.json:
         print(json.dumps(result.summary, indent=2, default=str))
     elif not args.quiet:

@@ -40,6 +40,9 @@ def run(args) -> int:
     for w in caught:
         print(f"cwsearch: warning: {escape_text(w.message)}", file=sys.stderr)
     summary = summarize(array, args.dataset)
+    summary["goodness_of_fit"] = goodness_of_fit_summary(array)
+    for message in summary["goodness_of_fit"]["warnings"]:
+        print(f"cwsearch: warning: {message}", file=sys.stderr)
     if args.json:
         print(json.dumps(summary, indent=2))
     else:
@@ -99,6 +102,20 @@ def summarize(array, path=None) -> dict:
     return summary
 
 
+def goodness_of_fit_summary(array) -> dict:
+    """Goodness of fit of every pulsar under the dataset's own noise values (always on; the same tests as the
+    scan: :func:`cwsearch.stages.scan.stage.scan_goodness_of_fit`)."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
+    from ..physics.noise import NoiseSettings
+    from ..stages.scan.stage import scan_goodness_of_fit
+
+    gof = scan_goodness_of_fit(array, NoiseSettings(), warn=False)
+    gof["noise_model"] = "the dataset's own noise values (pulsars.ecsv red noise, noise.ecsv white factors)"
+    gof["warnings"] = [m.replace("under the scan's noise model", "under the dataset's noise values")
+                       for m in gof["warnings"]]
+    return gof
+
+
 def _white(psr) -> str:
     parts = []
     for b in psr["backends"]:
@@ -141,6 +158,12 @@ def format_summary(summary) -> str:
         out.append(f"injection.json present: {s['injected_binaries']} injected binaries (simulated data)")
     if s["checksum"]:
         out.append(f"checksum (sha256): {s['checksum']}")
+    gof = s.get("goodness_of_fit")
+    if gof:
+        out.append(f"goodness of fit under the dataset's noise values: {gof['n_failed']} of {s['n_pulsars']} pulsars "
+                   f"fail (p < {gof['threshold']:g})" + (f": {', '.join(gof['failed'])}" if gof["failed"] else "")
+                   + ("; array-level low-frequency excess (run 'cwsearch noise' to fit a common process)"
+                      if gof["array_low_frequency"]["flagged"] else ""))
     out.append("dataset is valid")
     return "\n".join(out)
 

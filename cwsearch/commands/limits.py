@@ -7,7 +7,7 @@ import json
 
 from ..core.safeio import escape_text
 from ._common import (add_dataset_arguments, add_grid_arguments, add_noise_arguments, load_array,
-                      noise_settings, run_folder_guard)
+                      resolve_noise, run_folder_guard, run_stage_with_noise)
 
 DESCRIPTION = """\
 Compute 95 % upper limits on the strain amplitude h0 of a circular binary at
@@ -120,8 +120,10 @@ def run(args) -> int:
     options.validate()
     array = load_array(args)
     with run_folder_guard(args.out, array, args.dataset):
-        result = run_limits(array, args.out, options, noise=noise_settings(args), seed=args.seed,
-                            progress=not args.quiet)
+        resolved = resolve_noise(args, array)
+        result = run_stage_with_noise(resolved, lambda: run_limits(resolved.array, args.out, options,
+                                                                   noise=resolved.noise, seed=args.seed,
+                                                                   progress=not args.quiet))
     summary = result.summary
     if args.json:
         print(json.dumps(summary, indent=2))

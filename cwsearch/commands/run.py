@@ -3,10 +3,17 @@
 from __future__ import annotations
 
 import json
+from dataclasses import replace
+from pathlib import Path
+
+from ..core.errors import InputError
 
 DESCRIPTION = """\
-Run the whole job from a TOML run file: scan -> follow-up of every candidate
-below the false-alarm threshold -> host ranking -> upper limits -> report.html.
+Run the whole job from a TOML run file: noise model -> scan -> follow-up of
+every candidate below the false-alarm threshold -> host ranking -> upper
+limits -> report.html. Every stage uses one noise model ([noise] model or
+--noise-model: 'estimate', the default, fits it from the residuals in the
+noise stage; 'dataset' uses the dataset files' values; or a noise table).
 
 The run file names the dataset, the run folder, the seed, the engine and one
 section per stage ([noise], [scan], [followup], [hosts], [limits], [engine]);
@@ -27,17 +34,36 @@ EXAMPLE = """\
   cwsearch run runs/myrun.toml --check            (validate and print the resolved file; no work)
   cwsearch run runs/myrun.toml --json > summary.json"""
 
-STAGE_CHOICES = ("scan", "followup", "hosts", "limits", "all")
+STAGE_CHOICES = ("noise", "scan", "followup", "hosts", "limits", "all")
 
 
 def add_output_arguments(parser):
     """--force, --quiet, --json (shared with ``cwsearch demo``)."""
     parser.add_argument("--force", action="append", default=[], choices=STAGE_CHOICES, metavar="STAGE",
-                        help="recompute STAGE (scan, followup, hosts, limits or all) even if it is up to date; "
+                        help="recompute STAGE (noise, scan, followup, hosts, limits or all) even if it is up to date; "
                              "may be given more than once")
     parser.add_argument("--quiet", action="store_true", help="no progress bars or stage log; print only the result")
     parser.add_argument("--json", action="store_true",
                         help="print the summary (headline, stage statuses, report path) as JSON on stdout")
+    parser.add_argument("--noise-model", default=None, metavar="estimate|dataset|FILE",
+                        help="noise model of every stage, overriding the run file's [noise] model: 'estimate' "
+                             "(fit it in the noise stage, or reuse RUN_DIR/noise/ fitted on the same dataset), "
+                             "'dataset' (the dataset files' values, fixed) or the path of a noise table")
+
+
+def with_noise_model(config, model):
+    """``config`` with its [noise] model replaced by ``model`` (a FILE relative to the working directory)."""
+    if model is None:
+        return config
+    if model not in ("estimate", "dataset"):
+        path = Path(model).expanduser().resolve()
+        if not path.is_file():
+            raise InputError("noise table not found (--noise-model takes estimate, dataset or a noise table)",
+                             file=path)
+        model = str(path)
+    options = dict(config.options)
+    options["noise"] = replace(options["noise"], model=model)
+    return replace(config, options=options)
 
 
 def add_arguments(parser):
@@ -68,7 +94,7 @@ def run(args) -> int:
     from ..job.config import load_config
     from ..job.pipeline import run_pipeline
 
-    config = load_config(args.runfile)
+    config = with_noise_model(load_config(args.runfile), args.noise_model)
     if args.check:
         print(config.to_toml(), end="")
         return 0

@@ -7,7 +7,7 @@ import math
 import time
 
 from ._common import (add_dataset_arguments, add_grid_arguments, add_noise_arguments, load_array,
-                      noise_settings, run_folder_guard)
+                      resolve_noise, run_folder_guard, run_stage_with_noise)
 
 DESCRIPTION = """\
 Scan every GW frequency from 1/T_span (spacing 1/(oversample*T_span)) up to
@@ -98,8 +98,11 @@ def run(args) -> int:
     array = load_array(args)
     read_seconds = time.time() - t
     with run_folder_guard(args.out, array, args.dataset):
-        result = run_scan(array, args.out, options, noise=noise_settings(args), seed=args.seed,
-                          progress=not args.quiet, timings={"read_seconds": read_seconds})
+        resolved = resolve_noise(args, array)
+        result = run_stage_with_noise(resolved, lambda: run_scan(resolved.array, args.out, options,
+                                                                 noise=resolved.noise, seed=args.seed,
+                                                                 progress=not args.quiet,
+                                                                 timings={"read_seconds": read_seconds}))
     summary = result.summary
     if args.json:
         print(json.dumps(summary, indent=2))
@@ -121,6 +124,9 @@ def run(args) -> int:
                   "maximum reaches the candidate's value (prefer this one)")
         else:
             print("fap_emp = empirical FAP, not computed (use --null-sims N)")
+        gof = summary["goodness_of_fit"]
+        print(f"goodness of fit: {gof['n_failed']} of {summary['n_pulsars']} pulsars fail (p < {gof['threshold']:g})"
+              + (f": {', '.join(gof['failed'])}" if gof["failed"] else ""))
         print(f"outputs in {result.files['candidates'].parent}")
     return 0
 

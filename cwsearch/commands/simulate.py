@@ -64,6 +64,10 @@ class SimulateOptions:
     evolution: str = "full"
     earth_term_only: bool = False
     inject_file: str | None = None
+    wrong_sigmas: bool = False
+    sigma_scale_range: tuple = (0.8, 1.6)
+    sigma_added_range: tuple = (0.0, 0.5)
+    noise_in_files: bool = False
 
 
 def add_arguments(parser):
@@ -86,6 +90,18 @@ def add_arguments(parser):
                    help="spectral index of the background (default 13/3)")
     a.add_argument("--background-components", type=int, default=d.background_components, metavar="K",
                    help=f"Fourier frequencies of the background (default {d.background_components})")
+    n = parser.add_argument_group("noise as in real data (true values only in injection.json)")
+    n.add_argument("--wrong-sigmas", action="store_true",
+                   help="make the quoted TOA errors wrong per backend: the true white noise is "
+                        "(scale x quoted)^2 + added^2 with scale and added drawn from the ranges below")
+    n.add_argument("--sigma-scale-range", type=float, nargs=2, default=d.sigma_scale_range, metavar=("LO", "HI"),
+                   help="range of the true scale of the quoted errors (default %(default)s)")
+    n.add_argument("--sigma-added-range", type=float, nargs=2, default=d.sigma_added_range, metavar=("LO", "HI"),
+                   help="range of the true added white noise, as a fraction of the backend's median quoted "
+                        "error (default %(default)s)")
+    n.add_argument("--noise-in-files", action="store_true",
+                   help="also write the true red-noise values into pulsars.ecsv (default: only injection.json, so "
+                        "that the analysis must estimate them)")
     b = parser.add_argument_group("injected binary (all --inject-* options describe one binary)")
     b.add_argument("--inject-strain", type=float, default=None, metavar="H0", help="strain amplitude h0")
     b.add_argument("--inject-frequency", type=float, default=None, metavar="HZ",
@@ -115,7 +131,10 @@ def add_arguments(parser):
 
 
 def options_from_args(args) -> SimulateOptions:
-    return SimulateOptions(**{f.name: getattr(args, f.name) for f in fields(SimulateOptions)})
+    values = {f.name: getattr(args, f.name) for f in fields(SimulateOptions)}
+    for key in ("sigma_scale_range", "sigma_added_range"):
+        values[key] = tuple(float(v) for v in values[key])
+    return SimulateOptions(**values)
 
 
 def run(args) -> int:
@@ -143,6 +162,10 @@ def _check_options(o: SimulateOptions):
         (o.sigma > 0, "--sigma must be > 0 (seconds)"),
         (0 <= o.red_noise_fraction <= 1, "--red-noise-fraction must be between 0 and 1"),
         (o.background_components >= 1, "--background-components must be at least 1"),
+        (len(o.sigma_scale_range) == 2 and 0 < o.sigma_scale_range[0] <= o.sigma_scale_range[1],
+         "--sigma-scale-range needs 0 < LO <= HI"),
+        (len(o.sigma_added_range) == 2 and 0 <= o.sigma_added_range[0] <= o.sigma_added_range[1],
+         "--sigma-added-range needs 0 <= LO <= HI"),
     ]
     for ok, message in checks:
         if not ok:
@@ -273,11 +296,12 @@ def simulate_dataset(outdir, options: SimulateOptions | None = None, *, seed=0, 
     from ..physics import waveform
     from ..data.dataset import write_dataset
     from ..physics.noise import NoiseSettings, NoiseWeighting
-    from ..physics.simulate import Binary, binary_residuals, invented_array, simulate_residuals
+    from ..data.model import PulsarNoise
+    from ..physics.simulate import Binary, binary_residuals, invented_array, simulate_residuals, wrong_white_noise
 
     o = options or SimulateOptions()
     _check_options(o)
-    array_seed, noise_seed = np.random.SeedSequence(seed).spawn(2)
+    array_seed, noise_seed, white_seed = np.random.SeedSequence(seed).spawn(3)
     array = invented_array(n_pulsars=o.pulsars, years=o.years, seed=np.random.default_rng(array_seed),
                            cadence_days=o.cadence_days, toas_per_pulsar=o.toas_per_pulsar, sigma_median=o.sigma,
                            red_noise_fraction=o.red_noise_fraction, full_span=False)
@@ -289,11 +313,18 @@ def simulate_dataset(outdir, options: SimulateOptions | None = None, *, seed=0, 
             spec["pulsar_phases"] = _pulsar_phases(array, spec)
         binaries.append(Binary(**spec))
 
+    true_white = (wrong_white_noise(array, np.random.default_rng(white_seed), scale_range=o.sigma_scale_range,
+                                    added_fraction=o.sigma_added_range) if o.wrong_sigmas else None)
     residuals = simulate_residuals(array, np.random.default_rng(noise_seed),
                                    background_log10_amplitude=o.background_log10_amplitude,
                                    background_index=o.background_index,
-                                   background_components=o.background_components, binaries=binaries)
+                                   background_components=o.background_components, binaries=binaries,
+                                   true_white=true_white)
     simulated = array.with_residuals(residuals)
+    true_noise = {p.name: {"white": (true_white[p.name] if true_white is not None else
+                                     {b: {"sigma_scale": 1.0, "sigma_added": 0.0} for b in p.backend_names}),
+                           "red": ({"log10_amplitude": p.noise.red_log10_amplitude, "index": p.noise.red_index}
+                                   if p.noise.has_red_noise else None)} for p in array}
 
     engine = None
     if binaries:
@@ -333,8 +364,14 @@ def simulate_dataset(outdir, options: SimulateOptions | None = None, *, seed=0, 
                         "components": o.background_components}),
         "binaries": binary_records,
         "optimal_snr": engine.optimal_snr(signals_total) if binaries else 0.0,
+        "true_noise": true_noise,
+        "true_noise_units": {"sigma_scale": "", "sigma_added": "s", "log10_amplitude": "", "index": ""},
+        "true_noise_meaning": ("the noise the residuals were drawn from: white sigma_true^2 = (sigma_scale x quoted)^2 "
+                               "+ sigma_added^2 per backend; power-law red noise per pulsar"
+                               + ("" if o.noise_in_files else "; none of it is in the files the analysis reads")),
     }
-    write_dataset(simulated, outdir, injection=injection, overwrite=overwrite)
+    written = simulated if o.noise_in_files else simulated.with_noise({p.name: PulsarNoise() for p in simulated})
+    write_dataset(written, outdir, injection=injection, overwrite=overwrite)
     return {"dataset": str(outdir), "n_pulsars": len(array), "n_toas": int(sum(p.n_toas for p in array)),
             "span_years": array.span / YEAR_SECONDS, **{k: injection[k] for k in
                                                         ("seed", "reference_mjd", "binaries", "optimal_snr")}}

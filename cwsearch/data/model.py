@@ -173,6 +173,9 @@ class Array:
         self.start = min(float(p.toas[0]) for p in self.pulsars)
         self.end = max(float(p.toas[-1]) for p in self.pulsars)
         self.reference_time = self.start if reference_time is None else float(reference_time)
+        #: description of the noise model the pulsars carry (source, values, checksums), set by
+        #: cwsearch.job.noisemodel.resolve_noise_model; None: as read from the dataset
+        self.noise_model = None
 
     @property
     def span(self) -> float:

@@ -87,6 +87,7 @@ True
 
 from __future__ import annotations
 
+import hashlib
 import os
 import warnings
 from dataclasses import dataclass, field, asdict
@@ -300,6 +301,8 @@ class NoiseFit:
     bounds: FitBounds
     dataset_checksum: str | None = None
     evaluations: int = 0
+    #: correlation of the fitted common process between pulsars (set by the caller that chose the likelihood)
+    common_correlation: str = "uncorrelated"
 
     def __getitem__(self, name) -> PulsarFit:
         for p in self.pulsars:
@@ -345,7 +348,7 @@ class NoiseFit:
             "index": float(c.index), "index_err": float(c.index_err), "index_fixed": bool(c.index_fixed),
             "statistic": float(c.statistic), "converged": bool(c.converged),
             "log10_amplitude_95": float(c.log10_amplitude_95),
-            "correlation": "uncorrelated between pulsars" if s.common else None}
+            "correlation": self.common_correlation if s.common else None}
         return meta
 
 
@@ -925,6 +928,62 @@ def _copy_noise(n: PulsarNoise) -> PulsarNoise:
     return PulsarNoise(dict(n.sigma_scale), dict(n.sigma_added), n.red_log10_amplitude, n.red_index)
 
 
+# ----------------------------------------------------------------- describing a model
+def _file_sha256(path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for chunk in iter(lambda: fh.read(1 << 20), b""):
+            h.update(chunk)
+    return h.hexdigest()
+
+
+def describe_noise_model(array, noise, source, *, table=None, dataset_checksum=None, table_dataset_checksum=None,
+             reused=None, notes=(), common_correlation=None) -> dict:
+    """The JSON-ready description of the noise model ``array`` carries with engine settings ``noise``.
+
+    ``source``: ``estimate``, ``dataset`` or ``file``; every stage writes this into its summary (key
+    ``noise_model``) and the report shows it. ``table_checksum`` is the SHA-256 of the table file.
+    """
+    pulsars = {}
+    for p in array:
+        n = p.noise
+        pulsars[p.name] = {
+            "sigma_scale": {b: float(n.sigma_scale.get(b, 1.0)) for b in p.backend_names},
+            "sigma_added_s": {b: float(n.sigma_added.get(b, 0.0)) for b in p.backend_names},
+            "red_log10_amplitude": (float(n.red_log10_amplitude) if n.has_red_noise and noise.pulsar_red_noise
+                                    else None),
+            "red_index": float(n.red_index) if n.has_red_noise and noise.pulsar_red_noise else None,
+        }
+    common = None
+    if noise.common_log10_amplitude is not None:
+        common = {"log10_amplitude": float(noise.common_log10_amplitude), "index": float(noise.common_index),
+                  "correlation": common_correlation or getattr(noise, "common_correlation", None) or "uncorrelated"}
+    text = {"estimate": "estimated from the residuals (noise stage)", "dataset": "values of the dataset files",
+            "file": "noise table given by the user"}[source]
+    return {
+        "source": source,
+        "meaning": text,
+        "table": str(table) if table is not None else None,
+        "table_checksum": _file_sha256(table) if table is not None else None,
+        "dataset_checksum": dataset_checksum,
+        "table_dataset_checksum": table_dataset_checksum,
+        "reused": reused,
+        "settings": asdict(noise),
+        "n_red_noise": int(sum(v["red_log10_amplitude"] is not None for v in pulsars.values())),
+        "common": common,
+        "pulsars": pulsars,
+        "notes": list(notes),
+    }
+
+
+
+def stage_noise_statement(array, noise) -> dict:
+    """What a stage writes as its ``noise_model``: the description the array carries (set by
+    :func:`cwsearch.job.noisemodel.resolve_noise_model`), else the dataset values with ``noise``."""
+    desc = getattr(array, "noise_model", None)
+    return desc if desc is not None else describe_noise_model(array, noise or NoiseSettings(), "dataset")
+
+
 # ----------------------------------------------------------------- the table
 _TABLE_COLUMNS = [
     # name, unit, description
@@ -1092,7 +1151,7 @@ def apply_noise_table(array, path, *, dataset_checksum=None):
 
 
 __all__ = ["FitBounds", "FitSettings", "PulsarFit", "CommonFit", "NoiseModel", "NoiseFit", "GoodnessOfFit",
-           "ArrayCheck", "NoiseFitWarning", "UncorrelatedCommonLikelihood", "fit_noise", "fit_common",
+           "ArrayCheck", "NoiseFitWarning", "describe_noise_model", "stage_noise_statement", "UncorrelatedCommonLikelihood", "fit_noise", "fit_common",
            "amplitude_upper_limit", "check_pulsar", "check_array", "goodness_of_fit", "apply_noise_model",
            "noise_table", "write_noise_table", "read_noise_table", "apply_noise_table",
            "RED_NOISE_THRESHOLD", "GOF_THRESHOLD"]

@@ -59,6 +59,7 @@ STAGES = tuple(STAGE_OPTIONS)
 
 #: options the pipeline fills in itself (never run-file keys), per stage
 PIPELINE_SET = {
+    "noise": frozenset(),
     "scan": frozenset({"workers", "scheduler"}),  # from [engine]
     "followup": frozenset({"candidate", "top", "frequency", "ra", "dec", "all_sky", "resume"}),
     "hosts": frozenset({"candidate"}),
@@ -170,8 +171,13 @@ def section_keys(section):
     if section == "engine":
         return dict(ENGINE_KEYS)
     if section == "noise":
+        # [noise] holds the engine's noise settings and the noise stage's options (model, fit choices)
 
-        return dataclass_keys(NoiseSettings)
+        keys = dataclass_keys(NoiseSettings)
+        cls = stage_options_class("noise")
+        if cls is not None:
+            keys.update(dataclass_keys(cls))
+        return keys
     cls = stage_options_class(section)
     if cls is None:
         return None
@@ -181,7 +187,7 @@ def section_keys(section):
     return keys
 
 
-SECTIONS = ("engine", "noise") + STAGES
+SECTIONS = ("engine",) + tuple(dict.fromkeys(("noise",) + STAGES))
 
 
 # ---------------------------------------------------------------- type checking
@@ -350,6 +356,9 @@ class RunConfig:
             "noise": _dataclass_values(self.noise),
         }
         for stage in STAGES:
+            if stage == "noise":   # one [noise] section: the noise settings and the noise stage's options
+                out["noise"].update(self.stage_config("noise"))
+                continue
             out[stage] = self.stage_config(stage)
         return out
 
@@ -495,10 +504,25 @@ def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunC
 
 
     noise_values = _check_section("noise", data.get("noise", {}), section_keys("noise"), fail)
-    noise = _build(NoiseSettings, noise_values, "noise", fail)
+    settings_names = {f.name for f in dataclasses.fields(NoiseSettings)}
+    noise = _build(NoiseSettings, {k: v for k, v in noise_values.items() if k in settings_names}, "noise", fail)
 
     options, extra, raw = {}, {}, {}
+    noise_cls = stage_options_class("noise")
+    if noise_cls is not None:
+        stage_values = {k: v for k, v in noise_values.items() if k not in settings_names}
+        model = stage_values.get("model")
+        if isinstance(model, str) and model not in ("estimate", "dataset"):
+            table = _resolve(base, model)
+            if not table.is_file():
+                fail(f"noise table not found: {table} (model is 'estimate', 'dataset' or a noise table)",
+                     "noise", "model")
+            stage_values["model"] = str(table)
+        options["noise"] = _build(noise_cls, stage_values, "noise", fail)
+        extra["noise"] = {}
     for stage in STAGES:
+        if stage == "noise":
+            continue
         given = data.get(stage, {})
         keys = section_keys(stage)
         if keys is None:  # stage not installed: keep the section as given, unchecked

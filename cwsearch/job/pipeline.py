@@ -1,4 +1,4 @@
-"""The whole job in one call: scan → follow-up → hosts → limits, with skipping, resume and provenance.
+"""The whole job in one call: noise → scan → follow-up → hosts → limits, with skipping, resume and provenance.
 
 :func:`run_pipeline` takes a validated :class:`~cwsearch.job.config.RunConfig`
 and fills its run folder (docs/design.md §11)::
@@ -63,6 +63,7 @@ from ..core.fileio import write_json_atomic
 from ..data.dataset import dataset_checksum, read_dataset
 from ..stages import STAGES as REGISTRY
 from .config import RunConfig
+from .noisemodel import resolve_noise_model
 from .report import build_report, format_headline, headline_result
 from .runfolder import (DONE, STAGE_FILE, RunLock, canonical_hash, file_checksum, folder_hash, json_default,
                         package_versions, product_hash, provenance_record, read_json, read_record, read_table,
@@ -113,11 +114,24 @@ class StageContext:
     upstream: dict
     resuming: bool = False  # the same stage, same inputs, was interrupted before: continue its checkpoint
     _array_loader: Callable = field(repr=False, default=None)
+    dataset_checksum: str | None = None
+    #: () -> :class:`~cwsearch.job.noisemodel.ResolvedNoise`, the run's noise model (None: the dataset's)
+    _noise_resolver: Callable = field(repr=False, default=None)
 
     @property
     def array(self):
         """The dataset as a :class:`~cwsearch.data.model.Array` (read once per run)."""
         return self._array_loader()
+
+    @property
+    def model_array(self):
+        """The dataset carrying the run's noise model (what every stage after the noise stage uses)."""
+        return self._noise_resolver().array if self._noise_resolver is not None else self.array
+
+    @property
+    def noise(self):
+        """The engine noise settings of the run's noise model."""
+        return self._noise_resolver().noise if self._noise_resolver is not None else self.config.noise
 
     @property
     def options(self):
@@ -169,12 +183,14 @@ class PipelineResult:
 
 # ---------------------------------------------------------------- the runner
 def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: Callable, force=(),
-               progress=True, log=None) -> list:
+               progress=True, log=None, noise_resolver: Callable | None = None) -> list:
     """Run ``specs`` (list of :class:`StageSpec`, in order) into ``config.out`` with skipping.
 
     This is the machinery under :func:`run_pipeline`, usable with any stage
     functions (tests use tiny dummy stages). ``force``: stage names to rerun
-    from an empty folder. Returns a list of :class:`StageReport`.
+    from an empty folder. ``noise_resolver() -> ResolvedNoise`` gives the run's noise model to every
+    stage except ``noise`` (its fingerprint enters their input hashes). Returns a list of
+    :class:`StageReport`.
     """
     run_dir = Path(config.out)
     names = [s.name for s in specs]
@@ -210,13 +226,18 @@ def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: C
             continue
         ctx = StageContext(config=config, run_dir=run_dir, stage_dir=stage_dir, name=spec.name,
                            seed=stage_seed(config.seed, spec.name), progress=progress,
-                           upstream={u: records[u] for u in spec.upstream}, _array_loader=load_array)
+                           upstream={u: records[u] for u in spec.upstream}, _array_loader=load_array,
+                           dataset_checksum=dataset_checksum,
+                           _noise_resolver=noise_resolver if spec.name != "noise" else None)
+        stage_noise = noise
+        if noise_resolver is not None and spec.name != "noise":
+            stage_noise = {"settings": noise, "model": noise_resolver().fingerprint()}
         inputs = {
             "stage": spec.name,
             "cwsearch": __version__,
             "dataset": dataset_checksum,
             "options": config.stage_config(spec.name),
-            "noise": noise,
+            "noise": stage_noise,
             "seed": ctx.seed,
             "upstream": {u: records[u].get("product_hash", records[u].get("output_hash")) for u in spec.upstream},
         }
@@ -321,7 +342,9 @@ def run_pipeline(config: RunConfig, *, force=(), progress=True, quiet=False, spe
         status = "interrupted"
         try:
             reports = run_stages(config, specs, dataset_checksum=checksum, load_array=lambda: array,
-                                 force=force, progress=progress, log=log)
+                                 force=force, progress=progress, log=log,
+                                 noise_resolver=(run_noise_resolver(config, array, checksum, progress)
+                                                 if any(spec.name == "noise" for spec in specs) else None))
             status = "complete"
         except BaseException as exc:
             status = "interrupted" if isinstance(exc, KeyboardInterrupt) else "failed"
@@ -342,6 +365,21 @@ def run_pipeline(config: RunConfig, *, force=(), progress=True, quiet=False, spe
         if write_report:
             report_path = build_report(run_dir)
     return PipelineResult(run_dir, reports, headline, report_path)
+
+
+def run_noise_resolver(config, array, checksum, progress=False):
+    """``() -> ResolvedNoise`` for a run (resolved on first use, then cached): the run's ``[noise] model``
+    through :func:`cwsearch.job.noisemodel.resolve_noise_model`."""
+    cache = {}
+
+    def resolver():
+        if "resolved" not in cache:
+            options = config.options.get("noise")
+            cache["resolved"] = resolve_noise_model(
+                array, config.out, getattr(options, "model", "estimate"), noise=config.noise,
+                dataset_checksum=checksum, options=options, seed=stage_seed(config.seed, "noise"), progress=progress)
+        return cache["resolved"]
+    return resolver
 
 
 def dataset_summary(array, path, checksum) -> dict:
@@ -393,7 +431,7 @@ def _stage_runner(stage):
         if custom is not None:
             return custom(ctx, stage)
         options = runner_options(ctx.options, ctx.config.engine)
-        result = stage.run(ctx.array, ctx.run_dir, options, noise=ctx.config.noise, seed=ctx.seed,
+        result = stage.run(ctx.model_array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed,
                            progress=ctx.progress)
         return dict(result.summary or {})
     return run
@@ -439,7 +477,7 @@ def _run_followup(ctx, stage):
     if rows == list(range(len(rows))):
         # the chosen candidates are the best ones: one call (one sub-folder each when there are several)
         options = replace(ctx.options, top=len(rows), candidate=None, resume=ctx.resuming)
-        result = stage.run(ctx.array, ctx.run_dir, options, noise=ctx.config.noise, seed=ctx.seed,
+        result = stage.run(ctx.model_array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed,
                                   progress=ctx.progress)
         summary = dict(getattr(result, "summary", {}) or {})
     else:
@@ -453,7 +491,7 @@ def _run_followup(ctx, stage):
             for name in ("candidates.ecsv", "scan_summary.json"):
                 shutil.copy2(ctx.run_dir / "scan" / name, scratch / "scan" / name)
             options = replace(ctx.options, top=1, candidate=row + 1, resume=ctx.resuming)
-            result = stage.run(ctx.array, scratch, options, noise=ctx.config.noise, seed=int(seed),
+            result = stage.run(ctx.model_array, scratch, options, noise=ctx.noise, seed=int(seed),
                                       progress=ctx.progress)
             final = ctx.stage_dir / f"candidate_{row + 1}"
             if final.exists():
@@ -502,9 +540,21 @@ def runner_options(options, engine: dict):
     return replace(options, **changes) if changes else options
 
 
+def _run_noise(ctx, stage):
+    """Fit the noise model (only when the run's noise model is ``estimate``; else nothing to do)."""
+    model = getattr(ctx.options, "model", "estimate")
+    if model != "estimate":
+        raise NothingToDo(f"the run uses the {'dataset' if model == 'dataset' else 'given'} noise model"
+                          + ("" if model == "dataset" else f" ({model})"))
+    result = stage.run(ctx.array, ctx.run_dir, ctx.options, noise=ctx.config.noise, seed=ctx.seed,
+                       progress=ctx.progress, dataset_checksum=ctx.dataset_checksum)
+    return dict(result.summary or {})
+
+
 #: what the pipeline adds around a stage, by stage name (every other stage is run as registered)
 _PRECHECKS = {"hosts": _hosts_precheck}          # checks that raise NothingToDo before the stage runs
-_CUSTOM_RUNS = {"followup": _run_followup}       # the follow-up picks its candidates from the scan's table
+_CUSTOM_RUNS = {"followup": _run_followup,       # the follow-up picks its candidates from the scan's table
+                "noise": _run_noise}             # the noise stage fits only for the 'estimate' model
 _EXTRA_INPUTS = {"hosts": _hosts_inputs}         # more input-hash entries (the catalogue's checksum)
 
 

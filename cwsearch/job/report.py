@@ -40,6 +40,8 @@ True
 from __future__ import annotations
 
 import base64
+import html
+import json
 import math
 import tomllib
 from pathlib import Path

@@ -49,9 +49,13 @@ PACKAGES = ("numpy", "scipy", "astropy", "astropy-healpix", "numba", "ptemcee", 
             "distributed", "tqdm", "corner")
 
 
+#: stage -> index of its seed (fixed, so that adding a stage does not change the other stages' seeds)
+_SEED_ORDER = ("scan", "followup", "hosts", "limits", "noise")
+
+
 def stage_seed(seed: int, stage: str) -> int:
     """Independent per-stage seed derived from the run seed (SeedSequence spawning)."""
-    index = STAGES.index(stage) if stage in STAGES else sum(stage.encode())
+    index = _SEED_ORDER.index(stage) if stage in _SEED_ORDER else sum(stage.encode())
     return int(np.random.SeedSequence([int(seed), index]).generate_state(1, dtype=np.uint32)[0])
 
 

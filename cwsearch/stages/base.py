@@ -11,7 +11,7 @@ Examples
 --------
 >>> from cwsearch.stages import STAGES
 >>> [s.name for s in STAGES]
-['scan', 'followup', 'hosts', 'limits']
+['noise', 'scan', 'followup', 'hosts', 'limits']
 """
 
 from __future__ import annotations

@@ -60,6 +60,8 @@ from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...core.safeio import check_count, read_input_text, require_finished
 from ...inference import sampling
+from ...inference.likelihood import Likelihood
+from ...inference.noisefit import stage_noise_statement
 from ...inference.correlated_likelihood import likelihood_for, other_background, reweighted_log_bayes_factor
 from ...physics import fstat, waveform
 from ...data.healpix_fits import credible_area, posterior_sky_map, write_healpix_map
@@ -543,6 +545,7 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
         folder = stage if len(targets) == 1 else stage / target.label
         summary, result, table = _follow_one(likelihood, target, array, folder, options, seq, progress, other)
         summary["seed"] = seed
+        summary["noise_model"] = stage_noise_statement(array, noise)
         write_json_atomic(folder / "summary.json", summary)
         if not options.no_plots:
             # lazy: matplotlib is loaded only when plots are drawn
@@ -559,7 +562,8 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
                 "bayes_factor_meaning": summaries[0]["bayes_factor_meaning"],
                 "background_comparison": [s["background_comparison"]["log_bayes_factor"] for s in summaries],
                 "folders": [str(f) for f in folders], "seed": seed,
-                "wall_time": time.monotonic() - start, "options": asdict(options)}
+                "wall_time": time.monotonic() - start, "options": asdict(options),
+                "noise_model": stage_noise_statement(array, noise)}
     if len(targets) > 1:
         write_json_atomic(stage / "summary.json", headline)
     return FollowupResult(summary=headline if len(targets) > 1 else summaries[0], folders=folders, runs=runs)

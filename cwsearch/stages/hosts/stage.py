@@ -90,6 +90,7 @@ from ...core.safeio import escape_text, read_input_text, require_finished
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...data.catalog import read_catalog
 from ...data.truth import injected_binary
+from ...inference.noisefit import stage_noise_statement
 from ...physics import fstat
 from ...physics.correlated import array_noise
 from ...physics.relations import (chirp_mass_offset_table, LN10, MassRatioPrior, population_chirp_mass_table,
@@ -992,6 +993,8 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
         "options": asdict(options),
         "caution": "A host association is a probability under the stated priors, not an identification.",
     }
+    if array is not None:
+        summary["noise_model"] = stage_noise_statement(array, noise)
     write_json_atomic(out_dir / "hosts_summary.json", summary)
     return HostsResult(ranking, summary, results, out_dir)
 

@@ -75,6 +75,7 @@ from ...data.catalog import read_catalog
 from ...data.healpix_fits import write_healpix_map
 from ...inference.execution import TaskRunner
 from ...inference.sampling import run_sampler, SamplerSettings
+from ...inference.noisefit import stage_noise_statement
 from ...physics import fstat, sky
 from ...physics.fstat import default_max_frequency, frequency_grid, parameters_to_amplitudes
 from ...physics.correlated import array_noise
@@ -1288,6 +1289,7 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
 
         files.update(make_plots(folder, frequencies, ftab, stab, gtab, array, nside, primary))
     summary["files"] = sorted(Path(p).name for p in files.values())
+    summary["noise_model"] = stage_noise_statement(array, noise)
     write_json_atomic(folder / "limits_summary.json", summary)
     files["summary"] = str(folder / "limits_summary.json")
     return LimitsResult(frequencies, pixel_limits, ftab, stab, gtab, summary, files,

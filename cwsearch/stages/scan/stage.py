@@ -49,6 +49,7 @@ Examples
 from __future__ import annotations
 
 import time
+import warnings
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 from typing import Literal
@@ -61,6 +62,7 @@ from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...core.progress import progress as bar
 from ...data.healpix_fits import write_healpix_map
+from ...inference.noisefit import GOF_THRESHOLD, NoiseFitWarning, goodness_of_fit, stage_noise_statement
 from ...inference.execution import TaskRunner
 from ...physics import fstat, sky
 from ...physics.fstat import default_max_frequency, frequency_grid
@@ -663,7 +665,8 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
 
     summary = _summary(options, array, noise, frequencies, n_pix, trials, candidates, null_fe, null_fp, want_fe,
                        seed, timings)
-    summary["noise_model"] = engine.describe()
+    summary["noise_model"] = {**stage_noise_statement(array, noise), "engine": engine.describe()}
+    summary["goodness_of_fit"] = scan_goodness_of_fit(array, noise)
     if engine.correlated:
         summary["fap_validity"] = (
             "with the correlated common process in the noise model, 2Fe ~ chi2(4) stays exact for one template "
@@ -737,6 +740,35 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     summary["seconds"] = round(time.time() - started, 3)
     write_json_atomic(files["summary"], summary)
     return ScanResult(frequencies, fe_full, spectrum, candidates, summary, files, null_fe, null_fp)
+
+
+def scan_goodness_of_fit(array, noise, *, warn=True) -> dict:
+    """Goodness of fit of every pulsar under the scan's noise model (always on): the normality and
+    low-frequency-excess tests of :func:`cwsearch.inference.noisefit.goodness_of_fit`. Warns
+    (:class:`~cwsearch.inference.noisefit.NoiseFitWarning`) naming each pulsar with p < 1e-3, and when the
+    array shows a common low-frequency excess (pointing to the common-process fit)."""
+    checks, combined = goodness_of_fit(array, noise)
+    failed = [c for c in checks if c.flagged]
+    messages = [f"pulsar {c.name}: whitened residuals fail a check under the scan's noise model "
+                f"(normality p = {c.normality_pvalue:.2g}, low-frequency excess p = {c.lowfreq_pvalue:.2g})"
+                for c in failed]
+    if combined.flagged:
+        hint = ("the noise model's common process does not account for it: refit it (noise stage)"
+                if noise.common_log10_amplitude is not None else
+                "fit a common red process (noise stage, --noise-model estimate)")
+        messages.append(f"array: combined low-frequency excess (p = {combined.pvalue:.2g}) points to an unmodelled "
+                        f"common red process; {hint}")
+    if warn:
+        for m in messages:
+            warnings.warn(m, NoiseFitWarning, stacklevel=2)
+    return {"tests": "normality: scipy.stats.kstest of whitened residuals against N(0,1); low-frequency excess: "
+                     "chi2 over the lowest 4 sine/cosine pairs (scipy.stats.chi2.sf)",
+            "threshold": GOF_THRESHOLD, "n_failed": len(failed), "failed": [c.name for c in failed],
+            "pulsars": {c.name: {"normality_pvalue": float(c.normality_pvalue),
+                                 "low_frequency_pvalue": float(c.lowfreq_pvalue)} for c in checks},
+            "array_low_frequency": {"statistic": float(combined.statistic), "dof": int(combined.dof),
+                                    "pvalue": float(combined.pvalue), "flagged": bool(combined.flagged)},
+            "warnings": messages}
 
 
 def _thresholds(trials, null_fe, fp_law, level=0.01):
