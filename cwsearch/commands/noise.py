@@ -37,8 +37,10 @@ def add_arguments(parser):
     g.add_argument("--red-components", type=int, default=30, metavar="K",
                    help="Fourier frequencies k/T_span, k=1..K, of red processes (default 30)")
     g.add_argument("--no-common", action="store_true", help="do not fit a common red process")
-    g.add_argument("--fixed-common-index", type=float, default=None, metavar="GAMMA",
-                   help="fix the common spectral index (13/3 for a binary background; default: fitted)")
+    g.add_argument("--fixed-common-index", type=float, default=13 / 3, metavar="GAMMA",
+                   help="the common spectral index, fixed (default 13/3, a background of circular binaries)")
+    g.add_argument("--free-common-index", action="store_true",
+                   help="fit the common index too (a free index can absorb a loud binary into the noise)")
     g.add_argument("--red-noise-threshold", type=float, default=9.0, metavar="X",
                    help="2 dlnL needed to claim red noise in a pulsar (default 9)")
     g.add_argument("--min-toas-red", type=int, default=40, metavar="N",
@@ -56,6 +58,7 @@ def options_from_args(args):
     from ..stages.noise.stage import NoiseOptions
 
     return NoiseOptions(model="estimate", fit_common=not args.no_common, fixed_common_index=args.fixed_common_index,
+                        free_common_index=args.free_common_index,
                         red_noise_threshold=args.red_noise_threshold, min_toas_red=args.min_toas_red,
                         starts=args.starts, iterations=args.iterations, upper_limits=not args.no_upper_limits,
                         no_plots=args.no_plots).validate()

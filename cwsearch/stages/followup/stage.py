@@ -545,7 +545,7 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
         folder = stage if len(targets) == 1 else stage / target.label
         summary, result, table = _follow_one(likelihood, target, array, folder, options, seq, progress, other)
         summary["seed"] = seed
-        summary["noise_model"] = stage_noise_statement(array, noise)
+        summary["noise_model"] = {**stage_noise_statement(array, noise), **summary.get("noise_model", {})}
         write_json_atomic(folder / "summary.json", summary)
         if not options.no_plots:
             # lazy: matplotlib is loaded only when plots are drawn

@@ -1289,7 +1289,7 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
 
         files.update(make_plots(folder, frequencies, ftab, stab, gtab, array, nside, primary))
     summary["files"] = sorted(Path(p).name for p in files.values())
-    summary["noise_model"] = stage_noise_statement(array, noise)
+    summary["noise_model"] = {**stage_noise_statement(array, noise), **summary.get("noise_model", {})}
     write_json_atomic(folder / "limits_summary.json", summary)
     files["summary"] = str(folder / "limits_summary.json")
     return LimitsResult(frequencies, pixel_limits, ftab, stab, gtab, summary, files,

@@ -665,7 +665,7 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
 
     summary = _summary(options, array, noise, frequencies, n_pix, trials, candidates, null_fe, null_fp, want_fe,
                        seed, timings)
-    summary["noise_model"] = {**stage_noise_statement(array, noise), "engine": engine.describe()}
+    summary["noise_model"] = {**stage_noise_statement(array, noise), **engine.describe()}  # source, values, engine
     summary["goodness_of_fit"] = scan_goodness_of_fit(array, noise)
     if engine.correlated:
         summary["fap_validity"] = (
