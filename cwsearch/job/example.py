@@ -52,7 +52,7 @@ DOCS = {('', 'dataset'): 'dataset folder: pulsars.ecsv, residuals/NAME.ecsv, opt
  ('', 'out'): 'run folder; default: runs/<name of this file> next to this file',
  ('', 'seed'): 'random seed of the whole run; each stage gets its own seed derived from it (provenance.json lists '
                'them)',
- ('', 'stages'): 'stages to run, any of "scan", "followup", "hosts", "limits" (always run in this order). A stage '
+ ('', 'stages'): 'stages to run, any of "noise", "scan", "followup", "hosts", "limits" (always run in this order). A stage '
                  'left out keeps its earlier results in the run folder, and later stages may use them.',
  ('', 'title'): 'title shown at the top of report.html',
  ('engine', 'address'): 'Dask scheduler address, e.g. "tcp://10.0.0.5:8786" (only with kind = "dask")',
@@ -116,6 +116,24 @@ DOCS = {('', 'dataset'): 'dataset folder: pulsars.ecsv, residuals/NAME.ecsv, opt
  ('limits', 'select'): '',
  ('limits', 'sky_frequency'): 'frequency [Hz] of sky_limits.ecsv and the sky map; leave out for the most '
                               'sensitive frequency',
+ ('noise', 'model'): 'the noise model every stage uses: "estimate" (fit it from the residuals in the noise stage, the '
+                     'first stage; a fit of the same dataset in RUN_DIR/noise/ is reused), "dataset" (the values of '
+                     'the dataset files with the keys above, fixed) or the path of a noise table (noise_model.ecsv)',
+ ('noise', 'common_correlation'): 'correlation of the common process between pulsars: "hellings-downs", '
+                                  '"uncorrelated" or "none"',
+ ('noise', 'common_components'): 'Fourier frequencies of the common process (at most red_components; not set: the '
+                                 'same as red_components)',
+ ('noise', 'fit_common'): 'the noise fit (model = "estimate"): fit a common red process',
+ ('noise', 'fixed_common_index'): 'the common spectral index, fixed (13/3: a background of circular binaries; a '
+                                  'fitted index can absorb a loud binary into the noise model)',
+ ('noise', 'free_common_index'): 'fit the common index as well, within [0.5, 7]',
+ ('noise', 'red_noise_threshold'): '2 dlnL (white + red against white only) needed to claim red noise in a pulsar',
+ ('noise', 'min_toas_red'): 'pulsars with fewer TOAs are fitted with white noise only (with a warning)',
+ ('noise', 'starts'): 'optimiser starts per fit',
+ ('noise', 'iterations'): 'extra rounds of (common fit, pulsar refit)',
+ ('noise', 'upper_limits'): '95 % amplitude upper limits (prior uniform in amplitude)',
+ ('noise', 'contour_points'): 'grid points per axis of the common-process likelihood plot',
+ ('noise', 'no_plots'): 'skip the noise-stage plots (PNG)',
  ('noise', 'common_index'): 'spectral index gamma of the common process (13/3: a background of circular binaries)',
  ('noise', 'common_log10_amplitude'): 'log10 amplitude of a common red process added to every pulsar; leave the '
                                       'key out for none',
@@ -203,7 +221,7 @@ def example_toml() -> str:
     for name, key in TOP_KEYS.items():
         default = None if key.required else key.default
         emit("", name, default)
-    for section in ("engine", "noise") + tuple(STAGES):
+    for section in dict.fromkeys(("engine", "noise") + tuple(STAGES)):  # the noise stage shares [noise]
         keys = section_keys(section)
         if keys is None:
             continue
