@@ -489,7 +489,7 @@ def test_quick_demo_end_to_end(tmp_path, capsys):
     # a second run: nothing to do
     assert main(["demo", "--quick", "--out", str(out), "--quiet", "--json"]) == 0
     again = json.loads(capsys.readouterr().out)
-    assert [s["status"] for s in again["stages"]] == ["skipped"] * 4
+    assert [s["status"] for s in again["stages"]] == ["skipped"] * 5
     for h in (again["headline"], head):
         h.pop("stages")
     # exact on purpose: every stage was skipped, so the headline is read again from the same, unrewritten files
