@@ -120,6 +120,9 @@ CAPTIONS = {
     "residuals.png": "Follow-up: timing residuals per pulsar with the fitted binary signal and its 90 % band.",
     "hosts_sky.png": "Host galaxies: the binary's sky density with the catalogue galaxies.",
     "hosts_sky_zoom.png": "Host galaxies: zoom around the candidate, top hosts labelled.",
+    "hosts_followup_sky.png": "Host galaxies: the follow-up posterior sky map with its 90 % credible region, the "
+                              "pulsars (stars) and the top-ranked hosts (numbered, names listed under the map), "
+                              "with a zoom around the candidate.",
     "hosts_chirp_mass.png": "Host galaxies: chirp mass implied by each galaxy against the posterior.",
     "strain_limits.png": "Upper limits: 95 % strain limit against GW frequency (sky average, best and worst sky position).",
     "sky_limits.png": "Upper limits: 95 % strain limit over the sky at the most sensitive frequency.",
