@@ -64,6 +64,7 @@ PIPELINE_SET = {
     "followup": frozenset({"candidate", "top", "frequency", "ra", "dec", "all_sky", "resume"}),
     "hosts": frozenset({"candidate"}),
     "limits": frozenset({"workers", "scheduler"}),  # from [engine]
+    "targets": frozenset({"workers", "scheduler"}),  # from [engine]
 }
 
 ENGINE_KINDS = ("local", "dask")
@@ -123,7 +124,8 @@ PIPELINE_KEYS = {
 }
 
 #: keys holding file paths (relative paths are relative to the run file's folder)
-PATH_KEYS = {"hosts": ("catalog", "sky_map"), "limits": ("catalog", "galaxies", "galaxy_catalog")}
+PATH_KEYS = {"hosts": ("catalog", "sky_map"), "limits": ("catalog", "galaxies", "galaxy_catalog"),
+             "targets": ("catalog",)}
 
 ENGINE_KEYS = {
     "kind": Key("kind", str, "local", "'local' (worker processes on this machine) or 'dask' (a running scheduler)",

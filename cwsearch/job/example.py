@@ -24,7 +24,9 @@ True
 from __future__ import annotations
 
 import textwrap
+from dataclasses import fields
 
+from ..stages.targets.stage import TargetsOptions
 from .config import STAGES, TOP_KEYS, section_keys, toml_value
 
 HEADER = """\
@@ -45,14 +47,16 @@ HEADER = """\
 
 SECTION_TITLES = {"engine": "where the work runs", "noise": "noise model (docs/design.md §5)",
                   "scan": "1. all-sky F-statistic scan", "followup": "2. follow-up of candidates",
-                  "hosts": "3. host galaxies", "limits": "4. upper limits"}
+                  "hosts": "3. host galaxies", "limits": "4. upper limits",
+                  "targets": "5. targeted searches of a catalogue (every row at its own sky position)"}
 
 #: (section, key) -> explanation written above the key ("" section: top-level keys)
 DOCS = {('', 'dataset'): 'dataset folder: pulsars.ecsv, residuals/NAME.ecsv, optional noise.ecsv (required)',
  ('', 'out'): 'run folder; default: runs/<name of this file> next to this file',
  ('', 'seed'): 'random seed of the whole run; each stage gets its own seed derived from it (provenance.json lists '
                'them)',
- ('', 'stages'): 'stages to run, any of "noise", "scan", "followup", "hosts", "limits" (always run in this order). A stage '
+ ('', 'stages'): 'stages to run, any of "noise", "scan", "followup", "hosts", "limits", "targets" (always run in this '
+                 'order). A stage '
                  'left out keeps its earlier results in the run folder, and later stages may use them.',
  ('', 'title'): 'title shown at the top of report.html',
  ('engine', 'address'): 'Dask scheduler address, e.g. "tcp://10.0.0.5:8786" (only with kind = "dask")',
@@ -163,6 +167,9 @@ DOCS.update({
                         "sky pixel (the limits stage prints this reason)",
 })
 
+# the targets stage documents its keys in its options' field metadata
+DOCS.update({("targets", f.name): f.metadata["help"] for f in fields(TargetsOptions) if "help" in f.metadata})
+
 #: (section, key) -> a sample value (TOML text) for keys whose default is "not set"
 SAMPLES = {("scan", "fmax"): "1.0e-7", ('followup', 'max_time'): '3600.0',
  ('hosts', 'columns'): '"ra=RAJ2000,dec=DEJ2000"',
@@ -186,6 +193,7 @@ EXAMPLE_VALUES = {
     ("limits", "galaxy"): [["MYGAL-1", 150.0, -20.0, 25.0]],
     ("limits", "catalog"): "../catalogs/demo_galaxies.ecsv",
     ("limits", "select"): ["SIMGAL-01187", "SIMGAL-00009"],
+    ("targets", "catalog"): "../catalogs/demo_galaxies.ecsv",
 }
 
 
@@ -228,8 +236,8 @@ def example_toml() -> str:
         lines += ["", _rule(SECTION_TITLES.get(section, section)), f"[{section}]"]
         for name, key in keys.items():
             emit(section, name, key.default)
-        if section == "limits":
-            lines.append("# (the limits' worker processes or Dask scheduler come from [engine])")
+        if section in ("limits", "targets"):
+            lines.append(f"# (the {section}' worker processes or Dask scheduler come from [engine])")
     return "\n".join(lines) + "\n"
 
 
