@@ -313,6 +313,60 @@ def test_stage_command_refuses_run_of_another_dataset(work, capsys):
     assert snapshot(work / "run") == before
 
 
+def _dataset_b(work):
+    """Dataset B: dataset A (work/data) with one residual changed, so another checksum."""
+    import shutil
+
+    shutil.copytree(work / "data", work / "data_b")
+    set_value(work / "data_b" / "residuals" / "SIMPSR02.ecsv", 3, "residual", "1.5e-7")
+    return work / "data_b"
+
+
+def test_followup_and_limits_refuse_the_run_folder_of_another_dataset(work, capsys):
+    """`cwsearch followup B --out RUN_OF_A` (and `limits`) would use dataset A's candidates: one line, exit 2."""
+    code, err = run_cli(scan_argv(work, "--noise-model", "dataset"), capsys)
+    assert code == 0, err
+    data_b = _dataset_b(work)
+    before = snapshot(work / "run")
+    followup = ["followup", data_b, "--out", work / "run", "--quiet", "--red-components", "3", "--max-iterations",
+                "10", "--noise-model", "dataset"]
+    limits = ["limits", data_b, "--out", work / "run", "--nside", "1", "--fmax", "2e-8", "--no-plots", "--quiet",
+              "--workers", "1", "--red-components", "5", "--noise-model", "dataset"]
+    scan_b = [data_b if a == work / "data" else a for a in scan_argv(work)]
+    for argv in (followup, limits, scan_b):
+        code, err = run_cli(argv, capsys)
+        check_user_error(code, err, ["run", "another dataset", "choose another --out"])
+    assert snapshot(work / "run") == before
+
+
+def test_stage_command_checks_the_results_when_dataset_json_is_gone(work, capsys):
+    """A run folder without dataset.json (older, or edited by hand) is checked through its stage summaries."""
+    code, err = run_cli(scan_argv(work, "--noise-model", "dataset"), capsys)
+    assert code == 0, err
+    (work / "run" / "dataset.json").unlink()
+    data_b = _dataset_b(work)
+    before = snapshot(work / "run")
+    code, err = run_cli(["followup", data_b, "--out", work / "run", "--quiet", "--red-components", "3",
+                         "--max-iterations", "10", "--noise-model", "dataset"], capsys)
+    check_user_error(code, err, ["scan_summary.json", "another dataset"])
+    assert snapshot(work / "run") == before
+
+
+def test_hosts_refuses_results_of_another_dataset(work, capsys):
+    """`hosts` takes no dataset: the follow-up it ranks must come from the dataset the run folder records."""
+    from tests.test_fuzz_readers import _scan_and_posterior
+
+    run = work / "run"
+    _scan_and_posterior(run)
+    (run / "dataset.json").write_text(json.dumps({"checksum": "a" * 64}))
+    (run / "followup" / "summary.json").write_text(json.dumps({"noise_model": {"dataset_checksum": "b" * 64}}))
+    before = snapshot(run)
+    code, err = run_cli(["hosts", "--out", run, "--catalog", work / "galaxies.csv", "--observed-span", "10",
+                         "--quiet", "--no-plots"], capsys)
+    check_user_error(code, err, ["followup", "summary.json", "another dataset", "bbbbbbbbbbbb"])
+    assert snapshot(run) == before
+
+
 def test_stage_command_records_its_dataset(work, capsys):
     from cwsearch.data.dataset import dataset_checksum
     from cwsearch.job.runfolder import recorded_checksum
