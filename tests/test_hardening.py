@@ -129,6 +129,38 @@ def test_mjd_range_flag_widens_the_plausible_dates(work, capsys):
     assert code == 0, err
 
 
+def test_run_file_mjd_range_widens_the_plausible_dates(work, capsys):
+    """The run file's `mjd_range = [LO, HI]` is the --mjd-range of the stage commands: TOAs outside refused
+    (file, row, column), a wider range accepts older data (MJD 20000-ish here: shifted copies)."""
+    from cwsearch.data.dataset import read_dataset, write_dataset
+    from cwsearch.data.model import Array, Pulsar
+
+    lo = float(read_dataset(work / "data")[0].mjd[0])
+    runfile = work / "run.toml"
+    base = 'dataset = "{data}"\nout = "run"\nstages = ["scan"]\n{extra}\n[noise]\nmodel = "dataset"\n' \
+           'red_components = 5\n\n[scan]\nnside = 1\nfmax = 3e-8\nno_plots = true\n'
+    runfile.write_text(base.format(data="data", extra=f"mjd_range = [{lo + 1}, 70000]\n"))
+    before = snapshot(work)
+    code, err = run_cli(["run", runfile, "--quiet"], capsys)
+    check_user_error(code, err, ["row 1", "column mjd", "plausible range"])
+    assert snapshot(work) == before
+    runfile.write_text(base.format(data="data", extra="mjd_range = [70000, 40000]\n"))
+    code, err = run_cli(["run", runfile, "--check"], capsys)
+    check_user_error(code, err, ["run.toml", "line 4", "mjd_range", "LO < HI"])
+
+    old = [Pulsar(p.name, ra=p.ra, dec=p.dec, distance=p.distance, distance_err=p.distance_err, mjd=p.mjd - 30000,
+                  residuals=p.residuals, sigmas=p.sigmas, backends=p.backends, extra_design=p.extra_design,
+                  extra_design_names=p.extra_design_names) for p in read_dataset(work / "data")]
+    write_dataset(Array(old), work / "old")
+    runfile.write_text(base.format(data="old", extra=""))
+    code, err = run_cli(["run", runfile, "--quiet"], capsys)
+    check_user_error(code, err, ["column mjd", "plausible range"])
+    runfile.write_text(base.format(data="old", extra="mjd_range = [1000, 70000]\n"))
+    code, err = run_cli(["run", runfile, "--quiet"], capsys)
+    assert code == 0, err
+    assert (work / "run" / "scan" / "candidates.ecsv").is_file()
+
+
 def test_residual_symlink_outside_dataset_refused_unread(work, capsys, tmp_path_factory):
     outside = tmp_path_factory.mktemp("elsewhere") / "x.ecsv"
     outside.write_bytes(res(work).read_bytes())
