@@ -205,6 +205,17 @@ def test_content_of_the_sections(run_folder):
     assert "GW frequency" in text and "[Hz]" in text and "host probability" in text
     # galaxy-limits preview: one row per galaxy with its tightest limit (1e9 at 1e-8 Hz for GALA)
     assert text.count("GALA") == 1 and text.count("GALB") == 1 and "1e+09" in text and "7e+09" in text
+    # issue 15: every estimate lists the truth beside it. Sky: the truth (141.0, -27.5) lies 1.016° from the
+    # posterior mean direction (140.0, -28.0) (spherical law of cosines, evaluated independently of the report)
+    assert "truth (injection.json) ra 141.00°, dec -27.50°, 1.02° from the mean direction" in text
+    assert "inside the 90 % radius" in text
+    # hosts: a shaded truth row with the injected position
+    hosts = html_text[html_text.index('<section id="hosts">'):html_text.index('<section id="limits">')]
+    assert '<tr class="truth">' in hosts and "141.00" in hosts
+    # limits: the injected strain 1.2e-14 at 12 nHz beside the limit there; the limits (1e-14 at 10 nHz,
+    # 2e-14 at 20 nHz) lie on h ∝ f, a straight line in log-log, so log-log interpolation gives 1.2e-14 at 12 nHz
+    assert "Truth (injection.json): strain amplitude h0 = 1.2e-14 at 12 nHz" in text
+    assert "the sky-averaged 95 % limit there is 1.2e-14" in text
     # issue 14: the Bayes factor under both backgrounds side by side, human labels, and which one decides
     assert "Hellings–Downs-correlated background" in text and "uncorrelated common background" in text
     assert "61.90 ± 0.40" in text and "55.20 ± 1.80" in text and "importance ESS 180 of 400" in text

@@ -372,6 +372,23 @@ def _sec(sid, title, **kw):
     return base
 
 
+def _separation_deg(ra1, dec1, ra2, dec2):
+    """Great-circle angle [deg] between two directions given in degrees (haversine formula)."""
+    r1, d1, r2, d2 = (math.radians(x) for x in (ra1, dec1, ra2, dec2))
+    h = math.sin((d2 - d1) / 2) ** 2 + math.cos(d1) * math.cos(d2) * math.sin((r2 - r1) / 2) ** 2
+    return math.degrees(2 * math.asin(min(1.0, math.sqrt(h))))
+
+
+def _sky_truth_text(sky, truth):
+    """'; truth ra …, dec …, X° from the mean direction (inside/outside the 90 % radius)' or ''."""
+    if not truth or truth.get("ra") is None or truth.get("dec") is None:
+        return ""
+    sep = _separation_deg(sky["ra"], sky["dec"], truth["ra"], truth["dec"])
+    where = "inside" if sep <= sky.get("radius_90_deg", float("inf")) else "outside"
+    return (f"; truth (injection.json) ra {truth['ra']:.2f}°, dec {truth['dec']:.2f}°, {sep:.3g}° from the mean "
+            f"direction ({where} the 90 % radius)")
+
+
 def _truth_text(truth, key, fmt):
     return f" (truth {fmt(truth[key])})" if truth and truth.get(key) is not None else ""
 
@@ -744,7 +761,8 @@ def _followup(run: _Run):
                     f"Sky position: ra {sky['ra']:.2f}°, dec {sky['dec']:.2f}° (mean direction of the samples), "
                     f"90 % of the samples within {sky['radius_90_deg']:.3g}° of it, 90 % credible area "
                     f"{sky['credible_area_90_deg2']:.3g} deg² (HEALPix nside {sky['map_nside']}, "
-                    f"{sky['pixel_area_deg2']:.3g} deg² pixels; map in {sky.get('map_file', 'the run folder')}).")
+                    f"{sky['pixel_area_deg2']:.3g} deg² pixels; map in {sky.get('map_file', 'the run folder')})"
+                    + _sky_truth_text(sky, run.truth) + ".")
             sub["paragraphs"].extend(bg_text)
             sub["tables"] = [t for t in (bg_table, _parameter_table(summary, run.truth or {}), _health_table(summary))
                              if t]
@@ -784,7 +802,14 @@ def _hosts(run: _Run):
         cols = [c for c in ("name", "candidate", "probability", "ra", "dec", "distance", "redshift", "log_bayes_factor",
                             "n_effective", "sky_density", "distance_consistency", "mass_consistency",
                             "period_consistency", "log10_bh_mass", "mass_proxy") if c in table.colnames]
-        s["tables"].append(table_view(table, cols, 15, "probability", True))
+        truth = None
+        if run.truth and run.truth.get("ra") is not None:
+            truth = {k: run.truth[k] for k in ("ra", "dec") if k in run.truth}
+            if run.truth.get("luminosity_distance") is not None:
+                truth["distance"] = run.truth["luminosity_distance"]
+            s["paragraphs"].append("First row (shaded): the injected binary's position and luminosity distance "
+                                   "(injection.json), to compare with the ranked galaxies.")
+        s["tables"].append(table_view(table, cols, 15, "probability", True, truth=truth))
     if summ.get("caution"):
         s["paragraphs"].append(summ["caution"])
     s["figures"] = [_figure(p) for p in _images(run.dir / "hosts")]
@@ -815,6 +840,27 @@ def galaxy_limits_view(table):
                                       "table against frequency is galaxy_limits.ecsv)")
 
 
+def limits_truth_text(table, truth):
+    """The injected strain beside the sky-averaged 95 % limit at the injected frequency (log-log
+    interpolation of ``frequency_limits.ecsv``), or '' without a truth or a table."""
+    if table is None or not len(table) or not truth or truth.get("strain") is None or truth.get("frequency") is None:
+        return ""
+    f = np.asarray(table["frequency"], dtype=float)
+    h = np.asarray(table["strain_95"], dtype=float)
+    ok = np.isfinite(f) & np.isfinite(h) & (f > 0) & (h > 0)
+    f0, h0 = float(truth["frequency"]), float(truth["strain"])
+    text = f"Truth (injection.json): strain amplitude h0 = {h0:.3g} at {f0 * 1e9:.3g} nHz"
+    if ok.sum() >= 1 and f[ok].min() <= f0 <= f[ok].max():
+        order = np.argsort(f[ok])
+        limit = float(10 ** np.interp(np.log10(f0), np.log10(f[ok][order]), np.log10(h[ok][order])))
+        relation = "above" if h0 > limit else "below"
+        text += (f"; the sky-averaged 95 % limit there is {limit:.3g}: the injected strain lies {relation} it "
+                 "(a calibrated 95 % limit sits above a present signal in about 95 % of datasets)")
+    else:
+        text += " (outside the frequencies of the limits stage)"
+    return text + "."
+
+
 def _limits(run: _Run):
     s = _sec("limits", dict(SECTIONS)["limits"], notes=run.status_notes("limits"))
     best = run.headline.get("best_limit")
@@ -839,6 +885,9 @@ def _limits(run: _Run):
                          "noise-only 95 % range)")
             s["paragraphs"].append(text + ".")
     ftab = _read_table(run.dir / "limits" / "frequency_limits.ecsv")
+    truth_line = limits_truth_text(ftab, run.truth)
+    if truth_line:
+        s["paragraphs"].append(truth_line)
     if ftab is not None and len(ftab):
         cols = [c for c in ("frequency", "strain_95", "strain_95_best", "strain_95_median", "strain_95_worst",
                             "strain_95_frequentist", "fe_max") if c in ftab.colnames]
@@ -952,5 +1001,5 @@ def build_report(run_dir) -> Path:
 
 __all__ = ["build_report", "render_report", "embed_png", "table_view", "fmt_number", "first_screen",
            "headline_result", "format_headline",
-           "galaxy_limits_view", "background_comparison_view", "BACKGROUND_LABELS", "SECTIONS", "GENERAL_CAUTIONS",
+           "galaxy_limits_view", "limits_truth_text", "background_comparison_view", "BACKGROUND_LABELS", "SECTIONS", "GENERAL_CAUTIONS",
            "LABELS", "CAPTIONS"]
