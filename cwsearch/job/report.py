@@ -51,6 +51,7 @@ from markupsafe import escape
 
 from .. import __version__
 from ..core.fileio import write_text_atomic
+from ..data.truth import injected_noise
 from .headline import COLD_SWAP_MIN, PAIR_SWAP_MIN, followup_targets, format_headline, headline_result, merge_sources, sampler_health
 from .runfolder import read_json as _read_json
 from .runfolder import read_table as _read_table
@@ -510,6 +511,53 @@ class _extra_labels:
         LABELS.update(self.saved)
 
 
+def _pm(value, error, digits=3):
+    if not isinstance(value, (int, float)) or not math.isfinite(value):
+        return "–"
+    text = f"{value:.{digits}g}"
+    return text + (f" ± {error:.2g}" if isinstance(error, (int, float)) and math.isfinite(error) else "")
+
+
+def noise_pulsar_view(pulsars, true_noise=None):
+    """Per pulsar, the fitted noise of ``noise/summary.json`` (white factors per backend, red-noise
+    amplitude and index with their errors, goodness of fit) and, with ``true_noise``
+    (:func:`cwsearch.data.truth.injected_noise`), the true values beside them; None when the entries are
+    not in the noise stage's format."""
+    if not isinstance(pulsars, list) or not pulsars or not all(
+            isinstance(p, dict) and isinstance(p.get("white"), dict) for p in pulsars):
+        return None
+    truths = (true_noise or {}).get("pulsars") or {}
+    rows = []
+    for p in pulsars:
+        red = p.get("red_noise") if isinstance(p.get("red_noise"), dict) else {}
+        white = "; ".join(f"{b}: {_pm(w.get('sigma_scale'), w.get('sigma_scale_err'))}"
+                          for b, w in p["white"].items() if isinstance(w, dict))
+        gof = p.get("goodness_of_fit") or {}
+        row = {"name": p.get("name"), "model": red.get("model", ""),
+               "red_amplitude": _pm(red.get("log10_amplitude"), red.get("log10_amplitude_err")) if red.get("claimed")
+               else "–", "red_index": _pm(red.get("index"), red.get("index_err")) if red.get("claimed") else "–"}
+        if true_noise is not None:
+            t = truths.get(p.get("name")) or {}
+            t_red = t.get("red")
+            row["true_red"] = (f"log10 A {t_red['log10_amplitude']:.3g}, index {t_red['index']:.3g}" if t_red
+                               else "none")
+        row["white"] = white
+        if true_noise is not None:
+            t_white = (truths.get(p.get("name")) or {}).get("white") or {}
+            row["true_white"] = "; ".join(f"{b}: {w.get('sigma_scale', 1.0):.3g}" for b, w in t_white.items()
+                                          if isinstance(w, dict)) or "–"
+        row["flagged"] = "FAILED" if gof.get("flagged") else ("ok" if gof else "–")
+        rows.append(row)
+    extra = {"model": ("noise model", "", "text"), "red_amplitude": ("red log10 amplitude", "", "text"),
+             "red_index": ("red spectral index", "", "text"),
+             "true_red": ("true red noise (injection.json)", "", "text"),
+             "white": ("white-noise factor per backend", "", "text"),
+             "true_white": ("true white-noise factor", "", "text"), "flagged": ("goodness of fit", "", "text")}
+    with _extra_labels(extra):
+        return table_view(rows, title="Per pulsar: fitted noise" + (" and the truth (injection.json)" if true_noise
+                                                                    else ""))
+
+
 def _noise(run: _Run):
     """The noise model: RUN/noise/summary.json rendered generically (scalars, per-pulsar table, figures)."""
     s = _sec("noise", dict(SECTIONS)["noise"])
@@ -526,7 +574,11 @@ def _noise(run: _Run):
     s["notes"] = run.status_notes("noise") if "noise" in run.records else []
     s["items"] = _items(summary, skip=("pulsars", "options"))
     pulsars = summary.get("pulsars")
-    if isinstance(pulsars, list) and pulsars and all(isinstance(p, dict) for p in pulsars):
+    true_noise = injected_noise(run.dir)
+    fitted = noise_pulsar_view(pulsars, true_noise)
+    if fitted:
+        s["tables"].append(fitted)
+    elif isinstance(pulsars, list) and pulsars and all(isinstance(p, dict) for p in pulsars):
         flat = [{k: v for k, v in p.items() if not isinstance(v, (dict, list))} for p in pulsars]
         s["tables"].append(table_view(flat, title="Per pulsar"))
     elif isinstance(pulsars, dict):
@@ -535,8 +587,13 @@ def _noise(run: _Run):
         s["tables"].append(table_view(flat, title="Per pulsar"))
     for k, v in summary.items():
         if isinstance(v, dict) and k not in ("options", "pulsars"):
+            items = _items(v)
+            if k == "common" and true_noise is not None:
+                bg = true_noise.get("background")
+                items.append(("truth (injection.json)", "no background injected" if not bg else
+                              f"log10 amplitude {bg['log10_amplitude']:.3g}, index {bg['index']:.3g}"))
             s["subsections"].append({"title": k.replace("_", " "), "notes": [], "paragraphs": [],
-                                     "tables": [], "items": _items(v), "figures": []})
+                                     "tables": [], "items": items, "figures": []})
     s["figures"] = [_figure(p) for p in _images(folder)]
     return s
 
@@ -1001,5 +1058,5 @@ def build_report(run_dir) -> Path:
 
 __all__ = ["build_report", "render_report", "embed_png", "table_view", "fmt_number", "first_screen",
            "headline_result", "format_headline",
-           "galaxy_limits_view", "limits_truth_text", "background_comparison_view", "BACKGROUND_LABELS", "SECTIONS", "GENERAL_CAUTIONS",
+           "galaxy_limits_view", "limits_truth_text", "noise_pulsar_view", "background_comparison_view", "BACKGROUND_LABELS", "SECTIONS", "GENERAL_CAUTIONS",
            "LABELS", "CAPTIONS"]
