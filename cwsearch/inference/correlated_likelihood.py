@@ -71,39 +71,44 @@ def correlated_terms(psi, earth, dvec, gmat, beta, pulsar_term=True):
         return dvec, gmat, earth_corr, None
     psi_eps = psi_eps.reshape(n_w, n_psr, n_c, 1)
     dvec[..., 2:] += np.sum(beta[..., 2:] * psi_eps, axis=2)
-    # Ψ_{·q} β_q for every q and walker: batched GEMM (P: 2W × 2K) @ (P: 2K × P·2K) (Ψ symmetric)
-    bq = np.ascontiguousarray(beta[..., 2:].transpose(1, 0, 3, 2)).reshape(n_psr, 2 * n_w, n_c)
-    right = np.matmul(bq, psi.reshape(n_psr, n_c, n_psr * n_c)).reshape(n_psr, n_w, 2, n_psr, n_c)
+    # Ω_pq = β_pᵀ Ψ_pq β_q is symmetric in (p, q) (Ω_qp = Ω_pqᵀ): for every q one GEMM
+    # (2W × 2K) @ (2K × (q+1)·2K) gives β_qᵀ Ψ_qp for p ≤ q only, half the products of all pairs
     bp = np.ascontiguousarray(beta[..., 2:].transpose(0, 1, 3, 2))            # (W, P, 2, 2K)
     cross = np.empty((n_w, n_psr, n_psr, 2, 2))
-    _contract_cross(bp, right, cross)
+    for q in range(n_psr):
+        right = bp[:, q].reshape(2 * n_w, n_c) @ psi[q * n_c:(q + 1) * n_c, :(q + 1) * n_c]
+        _contract_column(bp, right.reshape(n_w, 2, q + 1, n_c), q, cross)
     idx = np.arange(n_psr)
     gmat[..., 2:, 2:] -= cross[:, idx, idx]
     cross[:, idx, idx] = 0.0
     return dvec, gmat, earth_corr, cross
 
 
-@njit(cache=True, parallel=True)
-def _contract_cross(bp, right, cross):
-    """cross[w, p, q, i, j] = Σ_k bp[w, p, i, k] right[q, w, j, p, k] (= β_pᵀ Ψ_pq β_q)."""
-    n_w, n_psr, n_c = bp.shape[0], bp.shape[1], bp.shape[3]
-    for w in prange(n_w):
-        for q in range(n_psr):
-            for p in range(n_psr):
-                a00 = a01 = a10 = a11 = 0.0
-                for k in range(n_c):
-                    b0 = bp[w, p, 0, k]
-                    b1 = bp[w, p, 1, k]
-                    r0 = right[q, w, 0, p, k]
-                    r1 = right[q, w, 1, p, k]
-                    a00 += b0 * r0
-                    a01 += b0 * r1
-                    a10 += b1 * r0
-                    a11 += b1 * r1
-                cross[w, p, q, 0, 0] = a00
-                cross[w, p, q, 0, 1] = a01
-                cross[w, p, q, 1, 0] = a10
-                cross[w, p, q, 1, 1] = a11
+@njit(cache=True)
+def _contract_column(bp, right, q, cross):
+    """cross[w, p, q, i, j] = Σ_k bp[w, p, i, k] right[w, j, p, k] (= β_pᵀ Ψ_pq β_q) for p ≤ q,
+    and its transpose into cross[w, q, p] (Ω_qp = Ω_pqᵀ)."""
+    n_w, n_c = bp.shape[0], bp.shape[3]
+    for w in range(n_w):
+        for p in range(q + 1):
+            a00 = a01 = a10 = a11 = 0.0
+            for k in range(n_c):
+                b0 = bp[w, p, 0, k]
+                b1 = bp[w, p, 1, k]
+                r0 = right[w, 0, p, k]
+                r1 = right[w, 1, p, k]
+                a00 += b0 * r0
+                a01 += b0 * r1
+                a10 += b1 * r0
+                a11 += b1 * r1
+            cross[w, p, q, 0, 0] = a00
+            cross[w, p, q, 0, 1] = a01
+            cross[w, p, q, 1, 0] = a10
+            cross[w, p, q, 1, 1] = a11
+            cross[w, q, p, 0, 0] = a00
+            cross[w, q, p, 0, 1] = a10
+            cross[w, q, p, 1, 0] = a01
+            cross[w, q, p, 1, 1] = a11
 
 
 @njit(cache=True)
