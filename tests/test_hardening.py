@@ -226,6 +226,47 @@ def test_followup_nonpositive_max_time_refused(work, capsys, value):
     assert not (work / "run").exists()
 
 
+def _strict_json(path):
+    """json.loads that refuses NaN and ±Infinity (not JSON: RFC 8259 has no such numbers)."""
+    def refuse(constant):
+        raise ValueError(f"{path}: {constant} is not JSON")
+    return json.loads(Path(path).read_text(encoding="utf-8"), parse_constant=refuse)
+
+
+@pytest.mark.parametrize("where", ["command", "run-file"])
+def test_run_file_and_command_refuse_nonpositive_max_time_and_huge_null_sims(work, capsys, where):
+    if where == "command":
+        code, err = run_cli(_explicit_followup(work, "--max-time=-10"), capsys)
+        check_user_error(code, err, ["--max-time"])
+        return
+    runfile = work / "run.toml"
+    for section, line in (("followup", "max_time = -10"), ("scan", "null_sims = 1000000000000")):
+        runfile.write_text(f'dataset = "data"\nout = "run"\n\n[{section}]\n{line}\n')
+        code, err = run_cli(["run", runfile, "--check"], capsys)
+        check_user_error(code, err, ["run.toml", "line 5", line.split(" ")[0]])
+    assert not (work / "run").exists()
+
+
+def test_followup_tiny_max_time_samples_and_writes_strict_json(work, capsys):
+    """A wall-time cap smaller than one step used to stop before the first iteration: exit 0, an empty
+    posterior and NaN in summary.json (not JSON). The cap now counts once there are samples, and a value
+    that is not a number is written as null."""
+    code, err = run_cli(_explicit_followup(work, "--max-time=1e-6", "--noise-model", "dataset"), capsys)
+    assert code == 0, err
+    summary = _strict_json(work / "run" / "followup" / "summary.json")
+    assert summary["iterations"] > 0
+    for path in (work / "run").rglob("*.json"):
+        _strict_json(path)
+
+
+def test_json_outputs_write_null_for_values_that_are_not_numbers(tmp_path):
+    from cwsearch.core.fileio import write_json_atomic
+
+    write_json_atomic(tmp_path / "a.json", {"x": float("nan"), "y": [np.inf, 1.5, np.float32(-np.inf)],
+                                            "z": np.array([np.nan, 2.0])})
+    assert _strict_json(tmp_path / "a.json") == {"x": None, "y": [None, 1.5, None], "z": [None, 2.0]}
+
+
 def test_catalog_infinite_distance_refused_not_dropped(tmp_path):
     from cwsearch.data.catalog import read_catalog
 
