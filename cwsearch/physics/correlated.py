@@ -261,12 +261,18 @@ class ArrayWeighting:
         flat = scaled.reshape(n_psr, n_c * n_c)
         size = rank * n_c
         s_tilde = np.empty((size, size), order="F")                               # I + Lᵀ E L
+        # only the lower triangle is formed (dpotrf reads no more), column blocks r0..r1 against
+        # rows s ≥ r0; with L_Γ lower triangular (Cholesky of Γ) L[a, r] L[a, s] vanishes for
+        # a < max(r, s), so the sum over pulsars starts at a = r0: about a sixth of the full product
+        triangular = not np.any(np.triu(lg, 1))
         rows = max(1, min(rank, chunk_elements // max(1, rank * n_c * n_c)))
         for r0 in range(0, rank, rows):
             r1 = min(rank, r0 + rows)
-            pair = (lg[:, r0:r1, None] * lg[:, None, :]).reshape(n_psr, -1)        # L[a,r] L[a,s]
-            block = (pair.T @ flat).reshape(r1 - r0, rank, n_c, n_c).transpose(0, 2, 1, 3)
-            s_tilde[r0 * n_c:r1 * n_c, :] = block.reshape((r1 - r0) * n_c, size)
+            a0 = r0 if triangular else 0
+            pair = (lg[a0:, r0:r1, None] * lg[a0:, None, r0:]).reshape(n_psr - a0, -1)   # L[a,r] L[a,s]
+            block = (pair.T @ flat[a0:]).reshape(r1 - r0, rank - r0, n_c, n_c).transpose(0, 2, 1, 3)
+            # S̃ symmetric: block rows (r, i) are the columns (r, i) of the lower part (contiguous in F order)
+            s_tilde[r0 * n_c:, r0 * n_c:r1 * n_c] = block.reshape((r1 - r0) * n_c, (rank - r0) * n_c).T
         s_tilde[np.diag_indices(size)] += 1.0
         chol, info = lapack.dpotrf(s_tilde, lower=1, clean=1, overwrite_a=1)
         if info != 0:
