@@ -454,9 +454,14 @@ class ArrayWeighting:
         """``u_p = F_pᵀ K_p⁻¹ [sin | cos]`` of 2πf(t − t0) for every frequency: (P, 2K, 2F)."""
         t0 = self.array.reference_time
         out = np.empty((self.n_pulsars, self.n_fourier, 2 * len(frequencies)))
-        with fstat._blas_threads(1):
-            for p, (w, kf) in enumerate(zip(self.engine, self.weighted_fourier())):
-                out[p] = kf.T @ fstat.sine_cosine_matrix(w.pulsar.toas, t0, frequencies)
+        pairs = list(zip(self.engine, self.weighted_fourier()))
+
+        def one(p):                  # one pulsar per thread, single-threaded BLAS (as fstat.project)
+            w, kf = pairs[p]
+            out[p] = kf.T @ fstat.sine_cosine_matrix(w.pulsar.toas, t0, frequencies)
+
+        with fstat._blas_threads(1), ThreadPoolExecutor(max_workers=int(max(1, min(_cpu_count(), len(pairs))))) as pool:
+            list(pool.map(one, range(len(pairs))))
         return out
 
     def scan_corrections(self, frequencies):
@@ -468,12 +473,17 @@ class ArrayWeighting:
         u = np.ascontiguousarray(self.trig_fourier_products(frequencies))
         psi = self.correction_matrix()
         out = np.empty((n_freq, 4, n_psr, n_psr))
+
         # W_ab(q, p) = W_ba(p, q): the blocks p ≤ q give the rest, so for each q only the rows
-        # p ≤ q of Ψ_{·q} u_q are formed (half the products)
-        with fstat._blas_threads(1):
-            for q in range(n_psr):
-                v = (psi[q * n_c:(q + 1) * n_c, :(q + 1) * n_c].T @ u[q]).reshape(q + 1, n_c, 2 * n_freq)
-                _pair_blocks(u, v, q, n_freq, out)
+        # p ≤ q of Ψ_{·q} u_q are formed (half the products). One q per job, a job per core, each
+        # with single-threaded BLAS and a GIL-free kernel; jobs write disjoint blocks of ``out``.
+        def column(q):
+            v = (psi[q * n_c:(q + 1) * n_c, :(q + 1) * n_c].T @ u[q]).reshape(q + 1, n_c, 2 * n_freq)
+            _pair_blocks(u, v, q, n_freq, out)
+
+        workers = int(max(1, min(_cpu_count(), n_psr)))
+        with fstat._blas_threads(1), ThreadPoolExecutor(max_workers=workers) as pool:
+            list(pool.map(column, range(n_psr - 1, -1, -1)))          # largest first
         return out
 
     # -- simulation
@@ -494,12 +504,13 @@ class ArrayWeighting:
         return np.kron(self.correlation, np.diag(self.fourier_variance))
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, nogil=True)
 def _pair_blocks(u, v, q, n_freq, out):
     """out[f, ab, p, q] = Σ_i u[p, i, a·F+f] v[p, i, b·F+f] for a, b ∈ (sin, cos) and p ≤ q
-    (``v`` holds the rows p ≤ q of Ψ_{·q} u_q), mirrored as out[f, ba, q, p]."""
+    (``v`` holds the rows p ≤ q of Ψ_{·q} u_q), mirrored as out[f, ba, q, p]. Serial and
+    GIL-free: :meth:`ArrayWeighting.scan_corrections` runs one q per thread."""
     n_c = u.shape[1]
-    for p in prange(q + 1):
+    for p in range(q + 1):
         ss = np.zeros(n_freq)
         sc = np.zeros(n_freq)
         cs = np.zeros(n_freq)
