@@ -55,6 +55,8 @@ DOCS = {('', 'dataset'): 'dataset folder: pulsars.ecsv, residuals/NAME.ecsv, opt
  ('', 'stages'): 'stages to run, any of "noise", "scan", "followup", "hosts", "limits" (always run in this order). A stage '
                  'left out keeps its earlier results in the run folder, and later stages may use them.',
  ('', 'title'): 'title shown at the top of report.html',
+ ('', 'mjd_range'): 'plausible TOA dates [LO, HI] in MJD; TOAs outside are refused as implausible (a unit mix-up). '
+                    'Default: 40000-70000 (as the stage commands\' --mjd-range)',
  ('engine', 'address'): 'Dask scheduler address, e.g. "tcp://10.0.0.5:8786" (only with kind = "dask")',
  ('engine', 'kind'): '"local": worker processes on this machine; "dask": a running Dask scheduler (needs address)',
  ('engine', 'workers'): 'local worker processes; 0 means one per CPU',
@@ -164,7 +166,7 @@ DOCS.update({
 })
 
 #: (section, key) -> a sample value (TOML text) for keys whose default is "not set"
-SAMPLES = {("scan", "fmax"): "1.0e-7", ('followup', 'max_time'): '3600.0',
+SAMPLES = {("", "mjd_range"): "[30000.0, 80000.0]", ("scan", "fmax"): "1.0e-7", ('followup', 'max_time'): '3600.0',
  ('hosts', 'columns'): '"ra=RAJ2000,dec=DEJ2000"',
  ('hosts', 'distance_limit'): '300.0',
  ('hosts', 'observed_span'): '12.5',
