@@ -254,7 +254,7 @@ def test_run_from_followup_posterior_writes_outputs(tmp_path, capsys):
     assert prior["source"] == "follow-up summary.json"
     assert prior["frequency_band_hz"] == pytest.approx([10**-8.1, 10**-7.8])
     assert 0 <= summary["probability_not_in_catalogue"] <= 1
-    for png in ("hosts_sky.png", "hosts_sky_zoom.png", "hosts_chirp_mass.png"):
+    for png in ("hosts_sky.png", "hosts_sky_zoom.png", "hosts_followup_sky.png", "hosts_chirp_mass.png"):
         assert (tmp_path / "run" / "hosts" / png).stat().st_size > 1000
     # a bad catalogue through the CLI: exit 2, one line
     (tmp_path / "bad.csv").write_text("name,ra,dec,distance\nA,1,95,3\n")
@@ -380,3 +380,55 @@ def test_same_seed_same_numbers(tmp_path):
     # recomputed probabilities: to 1e-12 relative, never bit for bit
     np.testing.assert_allclose(np.asarray(b.ranking["probability"]), np.asarray(a.ranking["probability"]),
                                rtol=1e-12, atol=1e-15)
+
+
+def _drawn_texts(fig):
+    """Every non-empty text matplotlib draws in ``fig`` (tick labels only of ticks inside the view)."""
+    from matplotlib.text import Text
+
+    fig.canvas.draw()
+    ticks = set()
+    for ax in fig.axes:
+        for axis, (lo, hi) in ((ax.xaxis, sorted(ax.get_xlim())), (ax.yaxis, sorted(ax.get_ylim()))):
+            for tick in axis.get_major_ticks() + axis.get_minor_ticks():
+                ticks.add(id(tick.label1))
+                ticks.add(id(tick.label2))
+                if lo - 1e-9 <= tick.get_loc() <= hi + 1e-9 and tick.label1.get_visible():
+                    ticks.discard(id(tick.label1))
+    return [t for t in fig.findobj(Text) if t.get_visible() and t.get_text().strip() and id(t) not in ticks]
+
+
+def test_followup_sky_figure_marks_hosts_without_overlaps(tmp_path):
+    """hosts_followup_sky.png: the 90 % credible region holds 90 % of the map's probability (its definition:
+    the densest pixels up to 90 %), the top hosts are numbered in the zoom, the truth and the pulsars are drawn,
+    axes and colorbar are labelled in degrees, the background is light, and no two drawn texts overlap
+    (readability rules for figures: common practice, no source)."""
+    from matplotlib.colors import to_rgb
+
+    from cwsearch.stages.hosts.plots import SKY_MAP_HOSTS, _credible_levels, followup_sky_figure, followup_sky_map
+
+    rng = np.random.default_rng(3)
+    cat = write_catalogue(tmp_path / "c.csv", rng)
+    res = _rank(synthetic_posterior(rng, n=3000), cat, rng)
+    nside, prob, _ = followup_sky_map(res)
+    inside = _credible_levels(prob) < 0.9
+    assert 0.9 <= prob[inside].sum() <= 0.9 + prob.max() + 1e-12
+    pulsars = (rng.uniform(0, 2 * np.pi, 20), np.arcsin(rng.uniform(-1, 1, 20)))
+    fig = followup_sky_figure(res, pulsars, {"ra": TRUE["ra"], "dec": TRUE["dec"]})
+    texts = _drawn_texts(fig)
+    words = [t.get_text() for t in texts]
+    assert [w for w in words if w.isdigit()] == [str(k + 1) for k in range(SKY_MAP_HOSTS)]
+    assert any("HOST" in w and "top hosts" in w for w in words)              # names listed under the map
+    assert "truth (injection.json)" in words and "pulsars" in words
+    assert sum(w == "right ascension [deg]" for w in words) == 2 and any("per square degree" in w for w in words)
+    main, zoom = fig.axes[0], fig.axes[1]
+    assert all(t.get_text().endswith("°") for t in main.get_xticklabels() + zoom.get_xticklabels()
+               if t.get_text())
+    assert min(to_rgb(fig.get_facecolor())) > 0.95 and min(main.collections[0].cmap(0.0)[:3]) > 0.9
+    renderer = fig.canvas.get_renderer()
+    boxes = [(t.get_text(), t.get_window_extent(renderer)) for t in texts]
+    clashes = [(a, b) for i, (a, box) in enumerate(boxes) for b, other in boxes[i + 1:] if box.overlaps(other)]
+    assert clashes == []
+    from cwsearch.core.plotting import pyplot
+
+    pyplot().close(fig)

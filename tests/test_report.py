@@ -112,6 +112,9 @@ def run_folder(tmp_path_factory):
         "effective_sample_size": 600.0, "stopped_by": "ess", "iterations": 3000,
         "swap_acceptance": [0.0055, 0.3], "temperatures": [1.0, 2.0, 4.0],
         "start": {"frequency": 1.2e-8, "candidate_row": {"rank": 1.0}},
+        "background_comparison": {"run_model": "hellings-downs", "n_samples": 400,
+                                  "log_bayes_factor": {"hellings-downs": 55.2, "uncorrelated": 61.9},
+                                  "importance_effective_sample_size": 180.0, "reweighting_error": 0.4},
         "sky": {"ra": 140.0, "dec": -28.0, "radius_90_deg": 5.0, "credible_area_90_deg2": 80.0, "map_nside": 32,
                 "pixel_area_deg2": 3.36},
         "parameters": {"frequency": {"median": 1.2e-8, "interval_90": [1.19e-8, 1.21e-8], "unit": "Hz"},
@@ -202,6 +205,10 @@ def test_content_of_the_sections(run_folder):
     assert "GW frequency" in text and "[Hz]" in text and "host probability" in text
     # galaxy-limits preview: one row per galaxy with its tightest limit (1e9 at 1e-8 Hz for GALA)
     assert text.count("GALA") == 1 and text.count("GALB") == 1 and "1e+09" in text and "7e+09" in text
+    # issue 14: the Bayes factor under both backgrounds side by side, human labels, and which one decides
+    assert "Hellings–Downs-correlated background" in text and "uncorrelated common background" in text
+    assert "61.90 ± 0.40" in text and "55.20 ± 1.80" in text and "importance ESS 180 of 400" in text
+    assert "The Hellings–Downs row decides" in text and "the binary is preferred" in text
     # the noise-model section is there even without a noise stage
     assert "noise/summary.json" in text
     # run-specific cautions: invented demo data, large evidence error, few effective samples
@@ -248,3 +255,24 @@ def test_renders_in_headless_chromium(run_folder, tmp_path):
     dom = subprocess.run([exe, "--headless", "--no-sandbox", "--disable-gpu", "--dump-dom", path.as_uri()],
                          capture_output=True, timeout=120, text=True)
     assert 'id="cautions"' in dom.stdout and dom.stdout.count("<img") == 8
+
+
+def test_background_comparison_names_the_deciding_model():
+    """Support only without the Hellings–Downs correlations is the background, not a binary (a nanohertz
+    background is correlated by the Hellings & Downs 1983 curve; common practice, no source)."""
+    from cwsearch.job.report import background_comparison_view
+
+    table, text = background_comparison_view({"log_bayes_factor_error": 0.3, "background_comparison": {
+        "run_model": "hellings-downs", "log_bayes_factor": {"hellings-downs": -0.7, "uncorrelated": 4.2},
+        "n_samples": 300, "importance_effective_sample_size": 9.0, "reweighting_error": 1.1,
+        "warning": "importance ESS 9 of 300 samples: unreliable"}})
+    labels = [row["cells"][0]["text"] for row in table["rows"]]
+    assert labels == ["Hellings–Downs-correlated background", "uncorrelated common background (pulsars independent)"]
+    assert [row["cells"][2]["text"] for row in table["rows"]] == ["background alone preferred", "binary preferred"]
+    joined = " ".join(text)
+    assert "not a binary candidate" in joined and "Warning: importance ESS 9 of 300" in joined
+    # without a common process there is nothing to compare: one row and the stage's note
+    table, text = background_comparison_view({"background_comparison": {
+        "run_model": "none", "log_bayes_factor": {"none": 3.0}, "note": "no common process in the noise model"}})
+    assert len(table["rows"]) == 1 and "Only one background model" in " ".join(text)
+    assert background_comparison_view({}) == (None, [])

@@ -58,6 +58,55 @@ def _outlined(texts, color="black"):
         t.set_color(color)
 
 
+#: offsets [points] tried, in order, for a label beside its marker (then the same twice as far out)
+_LABEL_OFFSETS = ((6, 5), (6, -13), (-14, 5), (-14, -13), (9, -4), (-20, -4), (-4, 9), (-4, -17))
+
+
+def place_labels(ax, points, texts, *, fontsize=8, avoid=()):
+    """Annotate ``points`` (data coordinates) with ``texts`` so that no two labels overlap each other or a
+    marker: each label takes the first offset of :data:`_LABEL_OFFSETS` (then twice as far, with a leader
+    line) whose box is free and inside the axes; a label with no free place goes to the least crowded one.
+    ``avoid``: extra display-coordinate boxes (``Bbox``) to keep clear. Returns the annotations."""
+    # lazy: a heavy import, loaded only when this runs
+    from matplotlib.transforms import Bbox
+
+    fig = ax.figure
+    renderer = fig.canvas.get_renderer()
+    frame = ax.get_window_extent(renderer)
+    marker_boxes = []
+    for x, y in points:
+        px, py = ax.transData.transform((x, y))
+        r = 4.0 * fig.dpi / 72.0
+        marker_boxes.append(Bbox.from_extents(px - r, py - r, px + r, py + r))
+    taken = list(avoid)
+    out = []
+    for (x, y), text in zip(points, texts):
+        best, best_score = None, None
+        for scale in (1, 2):
+            for dx, dy in _LABEL_OFFSETS:
+                label = ax.annotate(text, (x, y), xytext=(dx * scale, dy * scale), textcoords="offset points",
+                                    fontsize=fontsize, fontweight="bold", zorder=6,
+                                    arrowprops=dict(arrowstyle="-", lw=0.5, color="0.25") if scale > 1 else None)
+                box = label.get_window_extent(renderer).expanded(1.08, 1.15)
+                clash = sum(box.overlaps(b) for b in taken + marker_boxes)
+                outside = not (frame.contains(box.x0, box.y0) and frame.contains(box.x1, box.y1))
+                score = clash + 10 * outside
+                if best is None or score < best_score:
+                    if best is not None:
+                        best[0].remove()
+                    best, best_score = (label, box), score
+                else:
+                    label.remove()
+                if best_score == 0:
+                    break
+            if best_score == 0:
+                break
+        _outlined([best[0]])
+        taken.append(best[1])
+        out.append(best[0])
+    return out
+
+
 def _zoom_panel(ax, values, nside, centre, radius, *, cmap, norm, contours, pulsars, marks, truth):
     """A flat (cartesian, degrees) zoom of the map around ``centre`` = (ra, dec) [rad], half-width ``radius`` [deg]."""
     ra0, dec0 = np.degrees(centre[0]), np.degrees(centre[1])
@@ -79,14 +128,13 @@ def _zoom_panel(ax, values, nside, centre, radius, *, cmap, norm, contours, puls
     if pulsars is not None:
         x, y = near(*pulsars)
         ax.scatter(x, y, marker="*", s=70, c="white", edgecolors="black", linewidths=0.6, zorder=3)
+    labelled = []
     for mark in marks or []:
         x, y = near(mark["ra"], mark["dec"])
         ax.scatter(x, y, marker=mark.get("marker", "x"), s=mark.get("size", 60), c=mark.get("color", "red"),
                    zorder=4, edgecolors=mark.get("edge", None))
         if mark.get("text"):
-            label = ax.annotate(mark["text"], (float(np.atleast_1d(x)[0]), float(np.atleast_1d(y)[0])),
-                                xytext=(6, 6), textcoords="offset points", fontsize=8)
-            _outlined([label])
+            labelled.append(((float(np.atleast_1d(x)[0]), float(np.atleast_1d(y)[0])), mark["text"]))
     if truth is not None:
         x, y = near(*truth)
         ax.scatter(x, y, marker="P", s=110, c="#e6007e", edgecolors="black", linewidths=0.7, zorder=5)
@@ -94,20 +142,41 @@ def _zoom_panel(ax, values, nside, centre, radius, *, cmap, norm, contours, puls
     ax.set_ylim(dec_grid[0], dec_grid[-1])
     ax.set_xlabel("right ascension [deg]")
     ax.set_ylabel("declination [deg]")
-    ax.set_title(f"zoom: {2 * radius:.0f}° across", fontsize=9)
+    ax.set_title(f"zoom: {2 * radius:.0g}° across" if radius < 5 else f"zoom: {2 * radius:.0f}° across", fontsize=9)
     ax.set_aspect(1 / max(np.cos(np.radians(dec0)), 0.2))
     ax.grid(alpha=0.3)
+    ax.xaxis.set_major_formatter(_degree_formatter())
+    ax.yaxis.set_major_formatter(_degree_formatter(wrap=False))
+    if labelled:
+        inside = [(pt, t) for pt, t in labelled
+                  if min(ax.get_xlim()) <= pt[0] <= max(ax.get_xlim()) and ax.get_ylim()[0] <= pt[1] <= ax.get_ylim()[1]]
+        place_labels(ax, [pt for pt, _ in inside], [t for _, t in inside])
 
 
-def sky_map(path, values, nside, *, title="", label="", pulsars=None, marks=None, log=False,
-            cmap="viridis", contours=None, truth=None, zoom=None):
-    """Mollweide map of a HEALPix (RING) map: light background, pulsars as stars, marked points.
+def _degree_formatter(wrap=True):
+    """Tick labels in degrees (right ascension wrapped into [0, 360))."""
+    # lazy: a heavy import, loaded only when this runs
+    from matplotlib.ticker import FuncFormatter
+
+    def fmt(x, _pos):
+        v = float(np.remainder(x, 360.0)) if wrap else float(x)
+        return f"{v:.0f}°" if abs(v - round(v)) < 1e-6 else f"{v:.1f}°"
+
+    return FuncFormatter(fmt)
+
+
+def sky_figure(values, nside, *, title="", label="", pulsars=None, marks=None, log=False,
+               cmap="viridis", contours=None, truth=None, zoom=None, footer=None):
+    """Mollweide map of a HEALPix (RING) map: light background, pulsars as stars, marked points; returns the
+    figure (see :func:`sky_map`, which saves it).
 
     ``pulsars``: (ra, dec) arrays [rad]; ``marks``: list of dicts with keys
     ``ra``, ``dec`` [rad], optional ``label``, ``color``, ``marker``, ``size``, ``text`` (a label drawn in
-    the zoom panel). ``contours``: optional list of (levels, map) drawn as contour lines. ``truth``:
-    (ra, dec) [rad] of an injected source, drawn as a magenta plus. ``zoom``: (ra, dec [rad], half-width
-    [deg]) adds a flat zoom panel around that point. Legends sit below the map, never over it.
+    the zoom panel, placed clear of the other labels and markers). ``contours``: optional list of
+    (levels, map) drawn as contour lines. ``truth``: (ra, dec) [rad] of an injected source, drawn as a
+    magenta plus. ``zoom``: (ra, dec [rad], half-width [deg]) adds a flat zoom panel around that point.
+    ``footer``: a line of text under the figure. Axes in degrees (right ascension increasing to the
+    left, east); legends sit below the map, never over it.
     """
     plt = pyplot()
     res = 360
@@ -119,15 +188,16 @@ def sky_map(path, values, nside, *, title="", label="", pulsars=None, marks=None
     pix = np.asarray(HEALPix(nside=int(nside), order="ring").lonlat_to_healpix(
         np.remainder(-lon_g, 2 * np.pi) * u.rad, lat_g * u.rad))
     grid = np.asarray(values)[pix]
+    bottom = 0.06 if footer else 0.0
     if zoom is not None:
-        fig = plt.figure(figsize=(12, 4.9))
-        ax = fig.add_axes([0.02, 0.2, 0.6, 0.72], projection="mollweide")
-        zax = fig.add_axes([0.69, 0.2, 0.29, 0.72])
-        cax = fig.add_axes([0.12, 0.1, 0.4, 0.035])
+        fig = plt.figure(figsize=(12, 5.2 + (0.4 if footer else 0)))
+        ax = fig.add_axes([0.02, 0.26 + bottom, 0.6, 0.66 - bottom], projection="mollweide")
+        zax = fig.add_axes([0.69, 0.26 + bottom, 0.29, 0.66 - bottom])
+        cax = fig.add_axes([0.08, 0.15 + bottom, 0.42, 0.03])
     else:
-        fig = plt.figure(figsize=(8.5, 5.2))
-        ax = fig.add_axes([0.04, 0.22, 0.92, 0.7], projection="mollweide")
-        cax = fig.add_axes([0.25, 0.1, 0.5, 0.035])
+        fig = plt.figure(figsize=(8.5, 5.2 + (0.4 if footer else 0)))
+        ax = fig.add_axes([0.04, 0.26 + bottom, 0.92, 0.66 - bottom], projection="mollweide")
+        cax = fig.add_axes([0.1, 0.15 + bottom, 0.45, 0.03])
         zax = None
     if log:
         # lazy: a heavy import, loaded only when this runs
@@ -162,22 +232,33 @@ def sky_map(path, values, nside, *, title="", label="", pulsars=None, marks=None
     if zoom is not None:
         handles.append(ax.scatter(_wrap_ra(zoom[0]), zoom[1], marker="o", s=260, facecolors="none",
                                   edgecolors="black", linewidths=1.0, label="zoomed region (right)", zorder=4))
-    ax.set_xticks(np.radians(np.arange(-150, 181, 30)))
-    ax.set_xticklabels([f"{int(h)}h" for h in (np.arange(-150, 181, 30) // -15) % 24], fontsize=8)
+    ticks = np.arange(-150, 181, 30)
+    ax.set_xticks(np.radians(ticks))
+    # right ascension in degrees, increasing to the left (east): plotted longitude -λ is ra λ
+    ax.set_xticklabels([f"{int(t)}°" for t in np.remainder(-ticks, 360)], fontsize=8)
     _outlined(ax.get_xticklabels())
     _outlined(ax.get_yticklabels())
     ax.tick_params(axis="y", labelsize=8)
     ax.grid(True, color="grey", alpha=0.4)
+    ax.set_xlabel("right ascension [deg]", fontsize=8, labelpad=2)
+    ax.set_ylabel("declination [deg]", fontsize=8)
     fig.colorbar(mesh, cax=cax, orientation="horizontal", label=label)
     if title:
-        ax.set_title(title, pad=12)
+        ax.set_title(title, pad=12, fontsize=10)
     if handles:
-        fig.legend(handles=handles, loc="lower right", bbox_to_anchor=(0.99 if zoom is None else 0.66, 0.0),
+        fig.legend(handles=handles, loc="lower left", bbox_to_anchor=(0.55 if zoom is None else 0.54, bottom),
                    fontsize=7.5, frameon=False, ncol=1)
+    if footer:
+        fig.text(0.02, 0.012, footer, fontsize=7.5, ha="left", va="bottom")
     if zax is not None:
         _zoom_panel(zax, values, nside, zoom[:2], zoom[2], cmap=cmap, norm=norm, contours=contours,
                     pulsars=pulsars, marks=marks, truth=truth)
-    save_figure(fig, path)
+    return fig
 
 
-__all__ = ["pyplot", "save_figure", "sky_map"]
+def sky_map(path, values, nside, **kwargs):
+    """Write the :func:`sky_figure` of a HEALPix (RING) map to ``path`` (PNG); keywords as there."""
+    save_figure(sky_figure(values, nside, **kwargs), path)
+
+
+__all__ = ["pyplot", "save_figure", "sky_figure", "sky_map", "place_labels"]

@@ -13,6 +13,15 @@ Examples
 (141.0, -27.5, 1.2e-08)
 >>> injected_binary("/nonexistent") is None
 True
+
+:func:`injected_signal` returns the same binary in the units of
+:func:`cwsearch.physics.waveform.residuals` (radians, Hz, Msun), with the
+per-pulsar pulsar-term phases and the reference epoch, so that the true
+residuals can be drawn over the fitted ones:
+
+>>> signal = injected_signal(demo_paths()[0])
+>>> round(signal["ra"], 4), signal["evolution"], len(signal["pulsar_phases"])
+(2.4609, 'full', 20)
 """
 
 from __future__ import annotations
@@ -21,24 +30,59 @@ import json
 import math
 from pathlib import Path
 
+from ..core.constants import DAY_SECONDS
+
 INJECTION_FILE = "injection.json"
 
 
-def injected_binary(source):
-    """The truth for ``source``: a dataset folder, a run folder (via its dataset.json) or an Array."""
+def _read_injection(source):
+    """(injection dict, first binary dict) of ``source`` (see :func:`injected_binary`), or (None, None)."""
     folder = getattr(source, "source", source)
     if not isinstance(folder, (str, Path)):
-        return None   # an Array built in memory (not read from a folder): no injection.json to read
+        return None, None   # an Array built in memory (not read from a folder): no injection.json to read
     folder = Path(folder)
     if not (folder / INJECTION_FILE).is_file() and (folder / "dataset.json").is_file():
         try:
             folder = Path(json.loads((folder / "dataset.json").read_text(encoding="utf-8"))["path"])
         except (OSError, ValueError, KeyError, TypeError):
-            return None
+            return None, None
     try:
         inj = json.loads((folder / INJECTION_FILE).read_text(encoding="utf-8"))
-        b = inj["binaries"][0]
+        return inj, inj["binaries"][0]
     except (OSError, ValueError, KeyError, IndexError, TypeError):
+        return None, None
+
+
+def injected_signal(source):
+    """The first injected binary in waveform units, or None.
+
+    Keys: ``ra``, ``dec``, ``inclination``, ``polarization``, ``phase`` [rad], ``gw_frequency`` [Hz],
+    ``chirp_mass`` [Msun], ``strain``, ``evolution``, ``pulsar_term``, ``pulsar_phases`` (pulsar name ->
+    pulsar-term phase at the reference epoch [rad]; empty when not recorded: then the coherent phase from
+    the pulsar distance applies) and ``reference_time`` [s] (None when not recorded).
+    """
+    inj, b = _read_injection(source)
+    if b is None:
+        return None
+    try:
+        out = {"ra": math.radians(float(b["ra"])), "dec": math.radians(float(b["dec"])),
+               "gw_frequency": float(b["gw_frequency"]), "chirp_mass": float(b.get("chirp_mass", 0.0)),
+               "strain": float(b["strain"]), "inclination": float(b.get("inclination", 0.5)),
+               "polarization": float(b.get("polarization", 0.3)), "phase": float(b.get("phase", 1.0)),
+               "evolution": str(b.get("evolution", "full")), "pulsar_term": bool(b.get("pulsar_term", True))}
+        phases = b.get("pulsar_phases") or {}
+        out["pulsar_phases"] = {str(k): float(v) for k, v in phases.items()} if isinstance(phases, dict) else {}
+        mjd = inj.get("reference_mjd")
+        out["reference_time"] = None if mjd is None else float(mjd) * DAY_SECONDS
+    except (KeyError, TypeError, ValueError):
+        return None
+    return out
+
+
+def injected_binary(source):
+    """The truth for ``source``: a dataset folder, a run folder (via its dataset.json) or an Array."""
+    _, b = _read_injection(source)
+    if b is None:
         return None
     out = {k: float(b[k]) for k in ("ra", "dec", "chirp_mass", "strain", "luminosity_distance") if k in b}
     for k in ("inclination", "polarization", "phase"):
@@ -49,4 +93,4 @@ def injected_binary(source):
     return out
 
 
-__all__ = ["injected_binary"]
+__all__ = ["injected_binary", "injected_signal"]

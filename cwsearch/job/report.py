@@ -120,6 +120,9 @@ CAPTIONS = {
     "residuals.png": "Follow-up: timing residuals per pulsar with the fitted binary signal and its 90 % band.",
     "hosts_sky.png": "Host galaxies: the binary's sky density with the catalogue galaxies.",
     "hosts_sky_zoom.png": "Host galaxies: zoom around the candidate, top hosts labelled.",
+    "hosts_followup_sky.png": "Host galaxies: the follow-up posterior sky map with its 90 % credible region, the "
+                              "pulsars (stars) and the top-ranked hosts (numbered, names listed under the map), "
+                              "with a zoom around the candidate.",
     "hosts_chirp_mass.png": "Host galaxies: chirp mass implied by each galaxy against the posterior.",
     "strain_limits.png": "Upper limits: 95 % strain limit against GW frequency (sky average, best and worst sky position).",
     "sky_limits.png": "Upper limits: 95 % strain limit over the sky at the most sensitive frequency.",
@@ -638,6 +641,76 @@ def _health_table(summary):
                         {"label": "", "unit": "", "numeric": False}], "rows": rows, "note": ""}
 
 
+#: human labels of the common-background models of ``background_comparison`` (follow-up summary.json)
+BACKGROUND_LABELS = {"uncorrelated": "uncorrelated common background (pulsars independent)",
+                     "hellings-downs": "Hellings–Downs-correlated background",
+                     "none": "no common background (pulsar noise only)"}
+
+
+def background_comparison_view(summary):
+    """Per candidate, the Bayes factor of binary versus background under each background model of the
+    follow-up's ``background_comparison`` (docs/design.md §5b) as a small table, and the sentences saying
+    which one decides and what it says here. Returns ``(table or None, [sentences])``."""
+    comp = summary.get("background_comparison")
+    if not isinstance(comp, dict) or not isinstance(comp.get("log_bayes_factor"), dict):
+        return None, []
+    values = {k: v for k, v in comp["log_bayes_factor"].items() if isinstance(v, (int, float))}
+    run_model = comp.get("run_model")
+    if not values:
+        return None, []
+    err = summary.get("log_bayes_factor_error", summary.get("log_bayes_factor_err"))
+    order = [k for k in ("hellings-downs", "uncorrelated", "none") if k in values] + \
+        [k for k in values if k not in ("hellings-downs", "uncorrelated", "none")]
+    rows = []
+    for k in order:
+        v = float(values[k])
+        if k == run_model:
+            how = "sampled (thermodynamic integration over the tempered chains)"
+            unc = err
+        else:
+            ess, n = comp.get("importance_effective_sample_size"), comp.get("n_samples")
+            how = "importance reweighting of the posterior samples"
+            if isinstance(ess, (int, float)) and n:
+                how += f" (importance ESS {ess:.0f} of {int(n)})"
+            unc = comp.get("reweighting_error")
+        text = f"{v:.2f}" + (f" ± {float(unc):.2f}" if isinstance(unc, (int, float)) and math.isfinite(unc) else "")
+        verdict = "binary preferred" if v > 0 else "background alone preferred"
+        rows.append({"cells": [{"text": BACKGROUND_LABELS.get(k, k), "numeric": False, "sort": None},
+                               {"text": text, "numeric": True, "sort": repr(v)},
+                               {"text": verdict, "numeric": False, "sort": None},
+                               {"text": how, "numeric": False, "sort": None}], "cls": ""})
+    table = {"title": "Bayes factor of a binary against the background, under each background model",
+             "columns": [{"label": "background model", "unit": "", "numeric": False},
+                         {"label": "ln Bayes factor (binary + background vs background)", "unit": "",
+                          "numeric": True},
+                         {"label": "verdict", "unit": "", "numeric": False},
+                         {"label": "how computed", "unit": "", "numeric": False}],
+             "rows": rows, "note": ""}
+    sentences = []
+    hd, unc = values.get("hellings-downs"), values.get("uncorrelated")
+    if hd is not None:
+        sentences.append(
+            "The Hellings–Downs row decides: a gravitational-wave background is correlated between pulsars by "
+            "the Hellings–Downs curve, so a binary must stand out against that background; support that holds "
+            "only under the uncorrelated background is the background itself, not a binary.")
+        if unc is not None:
+            if hd > 0:
+                sentences.append(f"Here ln B = {hd:.2f} under the Hellings–Downs background"
+                                 f" ({unc:.2f} uncorrelated): the binary is preferred.")
+            elif unc > 0:
+                sentences.append(f"Here ln B = {hd:.2f} under the Hellings–Downs background but {unc:.2f} "
+                                 "uncorrelated: the support holds only without the correlations, so this is "
+                                 "not a binary candidate.")
+            else:
+                sentences.append(f"Here ln B = {hd:.2f} under the Hellings–Downs background and {unc:.2f} "
+                                 "uncorrelated: neither prefers a binary.")
+    if comp.get("warning"):
+        sentences.append("Warning: " + str(comp["warning"]) + ".")
+    if comp.get("note") and len(values) < 2:
+        sentences.append(f"Only one background model: {comp['note']}.")
+    return table, sentences
+
+
 def _followup(run: _Run):
     s = _sec("followup", dict(SECTIONS)["followup"], notes=run.status_notes("followup"))
     targets = [t for t in run.targets if t[1]]
@@ -659,6 +732,7 @@ def _followup(run: _Run):
                 err = summary.get("log_bayes_factor_error", summary.get("log_bayes_factor_err"))
                 sub["paragraphs"].append(f"ln Bayes factor (signal vs noise) = {bf:.2f}"
                                          + (f" ± {err:.2f}" if err is not None else "") + ".")
+            bg_table, bg_text = background_comparison_view(summary)
             start = summary.get("start") or {}
             row = start.get("candidate_row")
             if isinstance(row, dict) and row.get("rank") is not None:
@@ -671,7 +745,9 @@ def _followup(run: _Run):
                     f"90 % of the samples within {sky['radius_90_deg']:.3g}° of it, 90 % credible area "
                     f"{sky['credible_area_90_deg2']:.3g} deg² (HEALPix nside {sky['map_nside']}, "
                     f"{sky['pixel_area_deg2']:.3g} deg² pixels; map in {sky.get('map_file', 'the run folder')}).")
-            sub["tables"] = [t for t in (_parameter_table(summary, run.truth or {}), _health_table(summary)) if t]
+            sub["paragraphs"].extend(bg_text)
+            sub["tables"] = [t for t in (bg_table, _parameter_table(summary, run.truth or {}), _health_table(summary))
+                             if t]
             for key, label, kind in (("effective_sample_size", "effective samples", "f0"),
                                      ("n_samples", "posterior samples", "int"), ("iterations", "iterations", "int"),
                                      ("burn_in", "burn-in iterations", "int"), ("stopped_by", "stopped by", "text"),
@@ -876,4 +952,5 @@ def build_report(run_dir) -> Path:
 
 __all__ = ["build_report", "render_report", "embed_png", "table_view", "fmt_number", "first_screen",
            "headline_result", "format_headline",
-           "galaxy_limits_view", "SECTIONS", "GENERAL_CAUTIONS", "LABELS", "CAPTIONS"]
+           "galaxy_limits_view", "background_comparison_view", "BACKGROUND_LABELS", "SECTIONS", "GENERAL_CAUTIONS",
+           "LABELS", "CAPTIONS"]

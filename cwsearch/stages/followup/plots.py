@@ -1,7 +1,18 @@
-"""Plots of the follow-up stage: corner plot, posterior sky map, trace plots.
+"""Plots of the follow-up stage: corner plot, posterior sky map, trace plots, fitted residuals.
 
 ``plot_followup(folder, table, result, likelihood, array, target)`` writes
-``corner.png``, ``sky.png`` and ``trace.png`` into ``folder``.
+``corner.png``, ``sky.png``, ``trace.png`` and ``residuals.png`` into ``folder``.
+
+``residuals.png``: per pulsar, the timing residuals with the binary signal of
+the posterior (Earth + pulsar term, :func:`cwsearch.physics.waveform.residuals`
+through its basis series): pointwise median and 90 % band of the signals of
+:data:`RESIDUAL_DRAWS` posterior draws. The likelihood marginalises the
+pulsar-term phases (docs/design.md §7), so each draw gets its pulsar phases
+drawn from their conditional posterior given the draw's eight parameters (each
+pulsar's own likelihood on a phase grid; for a Hellings–Downs background the
+cross-pulsar terms are left out of this one step). Every signal passes through
+the pulsar's timing-model fit, as the residuals did. With ``injection.json``
+the true signal is drawn too (dashed magenta).
 """
 
 from __future__ import annotations
@@ -9,8 +20,10 @@ from __future__ import annotations
 import numpy as np
 
 from ...core.plotting import pyplot, save_figure, sky_map
-from ...data.truth import injected_binary
-from ...physics import sky
+from ...core.constants import YEAR_SECONDS
+from ...data.truth import injected_binary, injected_signal
+from ...physics import sky, waveform
+from ...physics.simulate import postfit
 
 #: (posterior column, axis label, transform to the plotted unit)
 CORNER_COLUMNS = (("ra", "RA [deg]", None), ("dec", "Dec [deg]", None), ("frequency", "f [nHz]", "nHz"),
@@ -139,6 +152,123 @@ def trace_plot(path, chain, names, burn_in, max_walkers=8, truth=None):
     save_figure(fig, path)
 
 
+#: posterior draws behind the median signal and its 90 % band in ``residuals.png``
+RESIDUAL_DRAWS = 100
+#: points of the pulsar-phase grid the conditional pulsar phases are drawn on (the phase has period π)
+PHASE_POINTS = 64
+#: at most this many pulsar panels (the pulsars with the largest fitted signal first)
+MAX_RESIDUAL_PANELS = 20
+
+
+def _draw_pulsar_phases(coeffs_of, dvec, gmat, rng):
+    """One draw of a pulsar-term phase from exp(ln Λ_p(χ)) on a grid over [0, π) (uniform prior)."""
+    grid = (np.arange(PHASE_POINTS) + 0.5) * np.pi / PHASE_POINTS
+    c = coeffs_of(grid)                                   # (K, 4)
+    log_like = c @ dvec - 0.5 * np.einsum("ki,ij,kj->k", c, gmat, c)
+    w = np.exp(log_like - log_like.max())
+    k = rng.choice(PHASE_POINTS, p=w / w.sum())
+    return grid[k] + rng.uniform(-0.5, 0.5) * np.pi / PHASE_POINTS
+
+
+def signal_draws(likelihood, array, table, n_draws=RESIDUAL_DRAWS, seed=0):
+    """Binary signals [s] at every pulsar's TOAs for ``n_draws`` posterior samples of ``table``
+    (the follow-up posterior, degrees/Hz/Msun/rad): a list (one per pulsar) of arrays (draws, TOAs),
+    after the pulsar's timing-model fit. Pulsar phases as in the module docstring."""
+    rng = np.random.default_rng(seed)
+    n = len(table)
+    pick = rng.choice(n, size=min(n_draws, n), replace=False) if n else np.zeros(0, dtype=int)
+    col = {name: np.asarray(table[name], dtype=float)[pick] for name in
+           ("ra", "dec", "frequency", "chirp_mass", "strain", "inclination", "polarization", "phase")}
+    ra, dec = np.radians(col["ra"]), np.radians(col["dec"])
+    out = [np.empty((pick.size, p.n_toas)) for p in array]
+    pulsar_term = bool(likelihood.pulsar_term)
+    for k in range(pick.size):
+        cache = likelihood.shape_cache(ra[k], dec[k], col["frequency"][k], col["chirp_mass"][k])
+        _, _, odp = waveform.antenna_pattern(ra[k], dec[k], array.positions)
+        for i, p in enumerate(array):
+            basis, _ = waveform.residual_basis(p.toas, likelihood.reference_time, col["frequency"][k],
+                                               col["chirp_mass"][k], p.distance, odp[i], likelihood.evolution)
+
+            def coeffs_of(pulsar_phase, i=i):
+                return np.atleast_2d(waveform.basis_coefficients(
+                    col["strain"][k], col["inclination"][k], col["polarization"][k], col["phase"][k],
+                    pulsar_phase, cache.fplus[i], cache.fcross[i], pulsar_term))
+
+            chi = _draw_pulsar_phases(coeffs_of, cache.dvec[i], cache.gmat[i], rng) if pulsar_term else 0.0
+            out[i][k] = postfit(p, basis @ coeffs_of(chi)[0])
+    return out
+
+
+def true_signals(array, truth):
+    """The injected binary's residuals [s] at every pulsar's TOAs (after the timing-model fit), from
+    :func:`cwsearch.data.truth.injected_signal`; None without a truth."""
+    if not truth:
+        return None
+    ref = truth["reference_time"] if truth.get("reference_time") is not None else array.reference_time
+    out = []
+    for p in array:
+        out.append(postfit(p, waveform.residuals(
+            p.toas, p.position, p.distance, ra=truth["ra"], dec=truth["dec"], gw_frequency=truth["gw_frequency"],
+            chirp_mass=truth["chirp_mass"], strain=truth["strain"], inclination=truth["inclination"],
+            polarization=truth["polarization"], phase=truth["phase"], reference_time=ref,
+            pulsar_phase=truth["pulsar_phases"].get(p.name), evolution=truth["evolution"],
+            pulsar_term=truth["pulsar_term"])))
+    return out
+
+
+def residual_plot(path, array, signals, truth_signals=None, max_panels=MAX_RESIDUAL_PANELS):
+    """Multi-panel figure: per pulsar the residuals (error bars: effective white-noise σ) against time
+    [yr], the pointwise median of ``signals`` (list of (draws, TOAs) arrays) and its 90 % band; the
+    true signal (dashed magenta) when given. Pulsars with the largest median signal first."""
+    plt = pyplot()
+    medians = [np.median(s, axis=0) if s.size else np.zeros(s.shape[1]) for s in signals]
+    snr2 = [float(np.sum((m / p.effective_sigmas()) ** 2)) for m, p in zip(medians, array)]
+    order = np.argsort(snr2)[::-1][:max_panels]
+    n = len(order)
+    cols = min(4, max(n, 1))
+    rows = int(np.ceil(n / cols))
+    fig, axes = plt.subplots(rows, cols, figsize=(3.6 * cols, 2.5 * rows + 0.9), squeeze=False, sharex=True)
+    t0 = array.start
+    for ax, i in zip(axes.flat, order):
+        p = array[int(i)]
+        years = (p.toas - t0) / YEAR_SECONDS
+        ns = 1e9
+        ax.errorbar(years, p.residuals * ns, yerr=p.effective_sigmas() * ns, fmt=".", ms=2.5, lw=0.5,
+                    color="0.55", ecolor="0.8", zorder=1)
+        s = signals[int(i)]
+        if s.size:
+            lo, hi = np.percentile(s, [5, 95], axis=0)
+            ax.fill_between(years, lo * ns, hi * ns, color="tab:blue", alpha=0.3, lw=0, zorder=2)
+            ax.plot(years, medians[int(i)] * ns, color="tab:blue", lw=1.3, zorder=3)
+        if truth_signals is not None:
+            ax.plot(years, truth_signals[int(i)] * ns, color="#e6007e", lw=1.1, ls="--", zorder=4)
+        ax.set_title(p.name, fontsize=9)
+        ax.tick_params(labelsize=7)
+        ax.grid(alpha=0.3)
+    for ax in list(axes.flat)[n:]:
+        ax.axis("off")
+    for ax in axes[:, 0]:
+        ax.set_ylabel("residual [ns]", fontsize=8)
+    for ax in axes[-1, :]:
+        ax.set_xlabel("years since first TOA", fontsize=8)
+    # lazy: a heavy import, loaded only when this runs
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import Patch
+
+    handles = [Line2D([], [], color="0.55", marker=".", ls="", label="residuals (±1σ white noise)"),
+               Line2D([], [], color="tab:blue", lw=1.3, label="fitted binary: posterior median"),
+               Patch(color="tab:blue", alpha=0.3, label="90 % band of posterior draws")]
+    if truth_signals is not None:
+        handles.append(Line2D([], [], color="#e6007e", ls="--", lw=1.1, label="true signal (injection.json)"))
+    shown = f"the {n} with the largest fitted signal of {len(array)} pulsars" if n < len(array) else \
+        f"all {n} pulsars, largest fitted signal first"
+    fig.suptitle(f"Timing residuals with the fitted binary signal (Earth + pulsar term, after the timing-model "
+                 f"fit); {shown}", fontsize=10)
+    fig.tight_layout(rect=(0, 0.06 if rows > 1 else 0.1, 1, 0.96))
+    fig.legend(handles=handles, loc="lower center", ncol=len(handles), fontsize=8, frameon=False)
+    save_figure(fig, path)
+
+
 def plot_followup(folder, table, result, likelihood, array, target, sky=None):
     """All follow-up plots into ``folder`` (truth from the dataset's injection.json when there is one)."""
     truth = injected_binary(array)
@@ -151,9 +281,12 @@ def plot_followup(folder, table, result, likelihood, array, target, sky=None):
                       truth=truth, centre=sky)
     if result.iterations:
         trace_plot(folder / "trace.png", result.chain, list(likelihood.names), result.burn_in, truth=truth)
+    if len(table) >= 1:
+        residual_plot(folder / "residuals.png", array, signal_draws(likelihood, array, table),
+                      true_signals(array, injected_signal(array)))
 
 
 __all__ = [
     "CORNER_COLUMNS", "TRACE_UNITS", "corner_plot", "credible_levels", "sky_posterior", "trace_plot",
-    "plot_followup",
+    "plot_followup", "RESIDUAL_DRAWS", "signal_draws", "true_signals", "residual_plot",
 ]

@@ -7,6 +7,12 @@ Files (PNG, in the hosts folder):
   99 % region coloured by host probability, the best one labelled.
 * ``hosts_sky_zoom.png`` — the same region in right ascension/declination,
   samples as a 2-D histogram, galaxies sized and coloured by probability.
+* ``hosts_followup_sky.png`` — the follow-up's posterior sky map
+  (``posterior_sky.fits`` next to the posterior; a histogram of the
+  localisation's samples otherwise) with its 90 % credible region, the
+  pulsars, the top-ranked hosts numbered (names and probabilities listed
+  under the map) and a zoom panel around the candidate; degrees throughout,
+  labels placed clear of each other and of the markers.
 * ``hosts_chirp_mass.png`` — for the top hosts: the chirp mass implied by
   the measured strain and frequency at the galaxy's distance (samples
   weighted by the sky kernel at the galaxy), against the chirp-mass range
@@ -17,10 +23,13 @@ Files (PNG, in the hosts folder):
 from __future__ import annotations
 
 import math
+from pathlib import Path
 
 import numpy as np
 
-from ...core.plotting import pyplot, save_figure, sky_map
+from ...core.plotting import pyplot, save_figure, sky_figure, sky_map
+from ...data.healpix_fits import posterior_sky_map, read_healpix_map
+from ...physics import sky as sky_geometry
 from ...physics.relations import chirp_mass_log_density, LN10
 from ...physics.sky import unit_vectors
 from ...physics.waveform import chirp_mass_for_strain
@@ -34,9 +43,15 @@ def _prob_colors(p):
     return cmap((lp + 6.0) / 6.0), lp
 
 
-def make_plots(folder, res, model, options, truth=None):
-    """Write the three PNG files for one candidate; returns their paths (``truth``: injected binary, degrees)."""
-    paths = [sky_plot(folder / "hosts_sky.png", res, truth), zoom_plot(folder / "hosts_sky_zoom.png", res, truth)]
+#: hosts numbered on the follow-up sky map
+SKY_MAP_HOSTS = 5
+
+
+def make_plots(folder, res, model, options, truth=None, pulsars=None):
+    """Write the PNG files for one candidate; returns their paths (``truth``: injected binary, degrees;
+    ``pulsars``: (ra, dec) arrays [rad] or None)."""
+    paths = [sky_plot(folder / "hosts_sky.png", res, truth), zoom_plot(folder / "hosts_sky_zoom.png", res, truth),
+             followup_sky_plot(folder / "hosts_followup_sky.png", res, pulsars, truth)]
     if len(res.ranking):
         paths.append(chirp_mass_plot(folder / "hosts_chirp_mass.png", res, model, min(options.top, 6)))
     return paths
@@ -57,6 +72,71 @@ def sky_plot(path, res, truth=None):
             label="sky density of the binary [1/sr]", marks=marks, cmap="Blues",
             contours=[([t99, t90], dens)] if t90 > t99 else None,
             truth=None if not truth else (math.radians(truth["ra"]), math.radians(truth["dec"])))
+    return path
+
+
+def followup_sky_map(res):
+    """(nside, probability per pixel, where it came from) of the candidate's localisation: the follow-up's
+    ``posterior_sky.fits`` when it sits next to the posterior file, else a histogram of the samples at the
+    coarsest nside that still resolves them (nside 16)."""
+    loc = res.localisation
+    fits_path = Path(loc.source).parent / "posterior_sky.fits" if loc.kind == "posterior" else None
+    if fits_path is not None and fits_path.is_file():
+        try:
+            maps, header = read_healpix_map(fits_path)
+            prob = np.asarray(maps["PROB"], dtype=float)
+            nside = int(header.get("NSIDE") or round(math.sqrt(prob.size / 12)))
+            if prob.size == 12 * nside ** 2 and prob.sum() > 0:
+                return nside, prob / prob.sum(), "follow-up posterior_sky.fits"
+        except (OSError, KeyError, ValueError, TypeError):
+            pass
+    nside = 16
+    return nside, posterior_sky_map(loc.ra, loc.dec, nside), f"histogram of {len(loc)} samples"
+
+
+def _credible_levels(prob):
+    """Per pixel, the probability in strictly denser pixels (its region is the 90 % one when below 0.9)."""
+    order = np.argsort(-prob)
+    levels = np.empty_like(prob)
+    levels[order] = np.cumsum(prob[order]) - prob[order]
+    return levels
+
+
+def followup_sky_figure(res, pulsars=None, truth=None, n_hosts=SKY_MAP_HOSTS):
+    """The figure of ``hosts_followup_sky.png`` (module docstring); returned, not saved."""
+    loc = res.localisation
+    nside, prob, origin = followup_sky_map(res)
+    density = prob / (4 * math.pi / prob.size * (180 / math.pi) ** 2)     # per deg²
+    levels = _credible_levels(prob)
+    v = sky_geometry.unit_vectors(loc.ra, loc.dec).mean(axis=0)
+    centre = (math.atan2(v[1], v[0]) % (2 * math.pi), math.asin(float(np.clip(v[2] / max(np.linalg.norm(v), 1e-300),
+                                                                              -1, 1))))
+    sep = np.degrees(sky_geometry.angular_separation(centre[0], centre[1], loc.ra, loc.dec))
+    radius = float(np.clip(1.6 * np.percentile(sep, 90), 3.0, 45.0))
+    table = res.ranking
+    n = min(n_hosts, len(table))
+    marks = []
+    colors = pyplot().get_cmap("tab10")
+    for k in range(n):
+        marks.append({"ra": math.radians(float(table["ra"][k])), "dec": math.radians(float(table["dec"][k])),
+                      "marker": "o", "size": 36, "color": [colors(1)], "edge": "black", "text": str(k + 1),
+                      "label": "top hosts (numbered in the zoom)" if k == 0 else None})
+    footer = None
+    if n:
+        footer = "top hosts  " + "   ".join(f"{k + 1}: {table['name'][k]} (p = {table['probability'][k]:.2g})"
+                                          for k in range(n))
+    what = "posterior" if loc.kind == "posterior" else "localisation (no follow-up posterior)"
+    return sky_figure(density, nside, title=f"Candidate {loc.label}: {what} sky map, 90 % credible region "
+                                            "(contour), pulsars and top hosts",
+                      label=f"probability per square degree ({origin}, HEALPix nside {nside})", pulsars=pulsars,
+                      marks=marks, cmap="Blues", contours=[([0.9], levels)],
+                      truth=None if not truth or "ra" not in truth else
+                      (math.radians(truth["ra"]), math.radians(truth["dec"])),
+                      zoom=(centre[0], centre[1], radius), footer=footer)
+
+
+def followup_sky_plot(path, res, pulsars=None, truth=None):
+    save_figure(followup_sky_figure(res, pulsars, truth), path)
     return path
 
 
@@ -158,4 +238,5 @@ def chirp_mass_plot(path, res, model, n_top):
     return path
 
 
-__all__ = ["make_plots", "sky_plot", "zoom_plot", "chirp_mass_plot"]
+__all__ = ["make_plots", "sky_plot", "zoom_plot", "chirp_mass_plot", "followup_sky_map", "followup_sky_figure",
+           "followup_sky_plot", "SKY_MAP_HOSTS"]

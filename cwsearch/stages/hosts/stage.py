@@ -911,7 +911,8 @@ def run_hosts(array, run_dir, options: HostsOptions, *, noise=None, seed=0, prog
         if several:
             write_table_atomic(folder / "ranking.ecsv", res.ranking)
             write_json_atomic(folder / "hosts_summary.json", res.summary)
-        res.plots = (host_plots.make_plots(folder, res, model, options, truth=_truth(array, run_dir))
+        res.plots = (host_plots.make_plots(folder, res, model, options, truth=_truth(array, run_dir),
+                                           pulsars=_pulsar_positions(array, run_dir))
                      if not options.no_plots else [])
     ranking = vstack([r.ranking for r in results], metadata_conflicts="silent") if several else results[0].ranking
     write_table_atomic(out_dir / "ranking.ecsv", ranking)
@@ -978,6 +979,18 @@ def _truth(array, run_dir):
     """The injected binary of a simulated dataset (for over-plotting), or None; without an array (the
     ``cwsearch hosts`` command) it is found through the run folder's dataset.json."""
     return injected_binary(array) or injected_binary(run_dir)
+
+
+def _pulsar_positions(array, run_dir):
+    """(ra, dec) arrays [rad] of the pulsars, from the array or else the run folder's dataset.json; None if
+    neither is there."""
+    if array is not None:
+        return np.array([p.ra for p in array]), np.array([p.dec for p in array])
+    try:
+        pulsars = json.loads((Path(run_dir) / "dataset.json").read_text(encoding="utf-8"))["pulsars"]
+        return (np.radians([float(p["ra_deg"]) for p in pulsars]), np.radians([float(p["dec_deg"]) for p in pulsars]))
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
 
 
 def _same_candidate(found, wanted) -> bool:

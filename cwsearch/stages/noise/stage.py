@@ -27,6 +27,8 @@ Examples
 from __future__ import annotations
 
 import dataclasses
+import hashlib
+import json
 import time
 import warnings
 from dataclasses import asdict, dataclass, replace
@@ -35,9 +37,9 @@ from pathlib import Path
 import numpy as np
 
 from ...core.errors import InputError
-from ...core.fileio import write_json_atomic
+from ...core.fileio import write_json_atomic, write_table_atomic
 from ...inference.noisefit import (GOF_THRESHOLD, NoiseFitWarning, UncorrelatedCommonLikelihood,
-                                   apply_noise_model, fit_common, fit_noise, write_noise_table)
+                                   apply_noise_model, fit_common, fit_noise, noise_table)
 from ...physics.noise import NoiseSettings
 from . import plots
 from .options import MODEL_CHOICES, NoiseOptions  # the options live beside (standard library only)
@@ -105,6 +107,26 @@ def _correlated_factory(correlation):
     return factory
 
 
+def fit_fingerprint(options: NoiseOptions, noise: NoiseSettings | None, seed, dataset_checksum,
+                    correlation=None) -> str:
+    """SHA-256 of everything that decides a fit's numbers: the fit settings (from ``options`` and the
+    basis size ``noise.red_components``), the common-process correlation asked for, the seed of the extra
+    optimiser starts and the dataset checksum (docs/design.md §5a).
+
+    :func:`run_noise` records it in the table's header (``fit_fingerprint``); the ``estimate`` noise model
+    reuses a fitted table only when its fingerprint equals the one of the run at hand, so a table fitted
+    with other options, another seed or by an interrupted fit is fitted again, never silently reused.
+    """
+    noise = noise or NoiseSettings()
+    settings = options.validate().fit_settings(noise.red_components)
+    wanted = correlation or common_correlation(noise)
+    if wanted == "none":
+        settings = replace(settings, common=False)
+    record = {"settings": asdict(settings), "correlation": wanted, "seed": int(seed) if isinstance(seed, (int, np.integer)) else None,
+              "dataset_checksum": None if dataset_checksum is None else str(dataset_checksum)}
+    return hashlib.sha256(json.dumps(record, sort_keys=True).encode()).hexdigest()
+
+
 def run_noise(array, run_dir, options: NoiseOptions = NoiseOptions(), *, noise: NoiseSettings | None = None,
               seed=0, progress=True, dataset_checksum=None, correlation=None) -> NoiseResult:
     """Fit the noise model of ``array`` and write ``run_dir/noise/`` (see the module docstring).
@@ -165,7 +187,12 @@ def run_noise(array, run_dir, options: NoiseOptions = NoiseOptions(), *, noise: 
 
     files = {"table": out / TABLE_NAME, "summary": out / SUMMARY_NAME}
     out.mkdir(parents=True, exist_ok=True)
-    write_noise_table(fit, files["table"])
+    # the summary is written last: a noise folder with a table but no summary is an interrupted fit (the
+    # estimate noise model then fits again); an old summary must not vouch for the new table
+    files["summary"].unlink(missing_ok=True)
+    table = noise_table(fit)
+    table.meta["fit_fingerprint"] = fit_fingerprint(options, noise, seed, dataset_checksum, correlation)
+    write_table_atomic(files["table"], table)
     contour = None
     if not options.no_plots:
         files["spectra_plot"] = out / "spectra.png"
@@ -274,5 +301,5 @@ def fit_summary(fit, options, dataset_checksum, correlation, messages, compariso
     }
 
 
-__all__ = ["NoiseOptions", "NoiseResult", "run_noise", "fit_summary", "model_settings", "common_correlation",
+__all__ = ["NoiseOptions", "NoiseResult", "run_noise", "fit_fingerprint", "fit_summary", "model_settings", "common_correlation",
            "CorrelatedCommonLikelihood", "TABLE_NAME", "SUMMARY_NAME", "MODEL_CHOICES"]
