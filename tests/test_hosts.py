@@ -432,3 +432,24 @@ def test_followup_sky_figure_marks_hosts_without_overlaps(tmp_path):
     from cwsearch.core.plotting import pyplot
 
     pyplot().close(fig)
+
+
+def test_chirp_mass_plot_marks_the_true_chirp_mass(tmp_path, monkeypatch):
+    """hosts_chirp_mass.png draws the injected chirp mass (observed frame) in every panel."""
+    import cwsearch.stages.hosts.plots as host_plots
+    from cwsearch.core.plotting import pyplot
+    from cwsearch.data.catalog import read_catalog
+
+    rng = np.random.default_rng(5)
+    cat_path = write_catalogue(tmp_path / "c.csv", rng)
+    options = HostsOptions(catalog=str(cat_path))
+    catalog = read_catalog(cat_path)
+    model = build_host_model(catalog, options, 15 * 3.15576e7, float(catalog.distance.max()))
+    res = rank_candidate(synthetic_posterior(rng, n=2000), catalog, model, options, rng, n_catalogue=len(catalog))
+    figures = []
+    monkeypatch.setattr(host_plots, "save_figure", lambda fig, path: figures.append(fig))
+    host_plots.chirp_mass_plot("m.png", res, model, 3, {"chirp_mass": TRUE["chirp_mass"]})
+    (fig,) = figures
+    lines = [ln for ax in fig.axes for ln in ax.lines if "injection.json" in str(ln.get_label())]
+    assert len(lines) == 3 and all(np.allclose(ln.get_xdata(), math.log10(TRUE["chirp_mass"])) for ln in lines)
+    pyplot().close(fig)

@@ -113,6 +113,8 @@ TOP_KEYS = {
     "seed": Key("seed", int, 0, "random seed of the whole run"),
     "title": Key("title", str, "", "title shown on the report"),
     "stages": Key("stages", list[str], list(STAGES), "stages to run, in pipeline order", STAGES),
+    "mjd_range": Key("mjd_range", list[float], None,
+                     "plausible TOA dates [LO, HI] in MJD (default 40000-70000; as --mjd-range)"),
 }
 
 #: keys the pipeline adds to a stage section (they select what the stage sees)
@@ -335,6 +337,8 @@ class RunConfig:
     options: dict = field(default_factory=dict)
     extra: dict = field(default_factory=dict)
     raw: dict = field(default_factory=dict)
+    #: (LO, HI) plausible TOA dates [MJD] (run-file key ``mjd_range``); None: the default 40000-70000
+    mjd_range: tuple | None = None
 
     @property
     def engine(self) -> dict:
@@ -360,6 +364,7 @@ class RunConfig:
             "seed": self.seed,
             "title": self.title,
             "stages": list(self.stages),
+            "mjd_range": None if self.mjd_range is None else list(self.mjd_range),
             "execution": dict(self.execution),
             "noise": _dataclass_values(self.noise),
         }
@@ -502,6 +507,11 @@ def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunC
         out = (base / "runs" / stem).resolve() if base.name != "runs" else (base / stem).resolve()
     if values["seed"] < 0:
         fail("must be >= 0", None, "seed")
+    mjd_range = values["mjd_range"]
+    if mjd_range is not None:
+        if len(mjd_range) != 2 or not all(math.isfinite(v) for v in mjd_range) or not mjd_range[0] < mjd_range[1]:
+            fail(f"needs two finite numbers [LO, HI] with LO < HI (MJD), got {list(mjd_range)}", None, "mjd_range")
+        mjd_range = (float(mjd_range[0]), float(mjd_range[1]))
 
     # ---- sections
     execution = _execution_section(data, fname, fail)
@@ -551,7 +561,8 @@ def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunC
             fail("must be >= 1", "followup", "max_candidates")
 
     return RunConfig(path=path, dataset=dataset, out=out, seed=values["seed"], title=values["title"],
-                     stages=stages, execution=execution, noise=noise, options=options, extra=extra, raw=raw)
+                     stages=stages, execution=execution, noise=noise, options=options, extra=extra, raw=raw,
+                     mjd_range=mjd_range)
 
 
 def _execution_section(data, fname, fail) -> dict:

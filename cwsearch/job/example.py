@@ -60,6 +60,8 @@ DOCS = {
                     'order). A stage left out keeps its earlier results in the run folder, and later stages may '
                     'use them.',
     ('', 'title'): 'title shown at the top of report.html',
+    ('', 'mjd_range'): 'plausible TOA dates [LO, HI] in MJD; TOAs outside are refused as implausible (a unit '
+                       "mix-up). Default: 40000-70000 (as the stage commands' --mjd-range)",
     ('followup', 'fap_threshold'): 'follow up every scan candidate whose trials-corrected analytic FAP '
                                    '(candidates.ecsv column fap) is below this; candidates within one frequency '
                                    'bin 1/T_span of a better one are the same source and are skipped '
@@ -69,7 +71,7 @@ DOCS = {
 }
 
 #: (section, key) -> a sample value (TOML text) for keys whose default is "not set"
-SAMPLES = {("scan", "fmax"): "1.0e-7", ('followup', 'max_time'): '3600.0',
+SAMPLES = {("", "mjd_range"): "[30000.0, 80000.0]", ("scan", "fmax"): "1.0e-7", ('followup', 'max_time'): '3600.0',
  ('hosts', 'columns'): '"ra=RAJ2000,dec=DEJ2000"',
  ('hosts', 'distance_limit'): '300.0',
  ('hosts', 'observed_span'): '12.5',

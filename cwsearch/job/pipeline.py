@@ -325,7 +325,7 @@ def run_pipeline(config: RunConfig, *, force=(), progress=True, quiet=False, spe
     specs = default_stages() if specs is None else specs
 
     # everything a user can get wrong is checked before any work
-    array = read_dataset(config.dataset)
+    array = read_dataset(config.dataset, mjd_range=getattr(config, "mjd_range", None))
     checksum = dataset_checksum(config.dataset)
     with RunLock(run_dir):
         started = utc_now()

@@ -456,9 +456,11 @@ class ArrayWeighting:
         u = np.ascontiguousarray(self.trig_fourier_products(frequencies))
         psi = self.correction_matrix()
         out = np.empty((n_freq, 4, n_psr, n_psr))
+        # W_ab(q, p) = W_ba(p, q): the blocks p ≤ q give the rest, so for each q only the rows
+        # p ≤ q of Ψ_{·q} u_q are formed (half the products)
         with fstat._blas_threads(1):
             for q in range(n_psr):
-                v = (psi[q * n_c:(q + 1) * n_c, :].T @ u[q]).reshape(n_psr, n_c, 2 * n_freq)   # Ψ symmetric
+                v = (psi[q * n_c:(q + 1) * n_c, :(q + 1) * n_c].T @ u[q]).reshape(q + 1, n_c, 2 * n_freq)
                 _pair_blocks(u, v, q, n_freq, out)
         return out
 
@@ -482,23 +484,35 @@ class ArrayWeighting:
 
 @njit(cache=True, parallel=True)
 def _pair_blocks(u, v, q, n_freq, out):
-    """out[f, ab, p, q] = Σ_i u[p, i, a·F+f] v[p, i, b·F+f] for a, b ∈ (sin, cos)."""
-    n_psr, n_c = u.shape[0], u.shape[1]
-    for p in prange(n_psr):
-        acc = np.zeros((n_freq, 4))
+    """out[f, ab, p, q] = Σ_i u[p, i, a·F+f] v[p, i, b·F+f] for a, b ∈ (sin, cos) and p ≤ q
+    (``v`` holds the rows p ≤ q of Ψ_{·q} u_q), mirrored as out[f, ba, q, p]."""
+    n_c = u.shape[1]
+    for p in prange(q + 1):
+        ss = np.zeros(n_freq)
+        sc = np.zeros(n_freq)
+        cs = np.zeros(n_freq)
+        cc = np.zeros(n_freq)
         for i in range(n_c):
-            for f in range(n_freq):
-                us = u[p, i, f]
-                uc = u[p, i, n_freq + f]
-                vs = v[p, i, f]
-                vc = v[p, i, n_freq + f]
-                acc[f, 0] += us * vs
-                acc[f, 1] += us * vc
-                acc[f, 2] += uc * vs
-                acc[f, 3] += uc * vc
+            up = u[p, i]
+            vp = v[p, i]
+            for f in range(n_freq):          # contiguous in f: vectorised
+                us = up[f]
+                uc = up[n_freq + f]
+                vs = vp[f]
+                vc = vp[n_freq + f]
+                ss[f] += us * vs
+                sc[f] += us * vc
+                cs[f] += uc * vs
+                cc[f] += uc * vc
         for f in range(n_freq):
-            for k in range(4):
-                out[f, k, p, q] = acc[f, k]
+            out[f, 0, p, q] = ss[f]
+            out[f, 1, p, q] = sc[f]
+            out[f, 2, p, q] = cs[f]
+            out[f, 3, p, q] = cc[f]
+            out[f, 0, q, p] = ss[f]
+            out[f, 1, q, p] = cs[f]
+            out[f, 2, q, p] = sc[f]
+            out[f, 3, q, p] = cc[f]
 
 
 # ---------------------------------------------------------------- Fe, Fp
@@ -523,13 +537,13 @@ def correlated_network(proj: fstat.Projections, corrections, fplus, fcross):
 @njit(cache=True, parallel=True)
 def _fe_correlated_products(nq, mq, yp, yx, fplus, fcross, n_chunk, n_sets, fe_out):
     """Fe for every pixel, frequency of the chunk and residual set: M from the per-pulsar
-    GEMM products ``mq`` minus the cross-pulsar rowsums of ``yp = F+ W``, ``yx = Fx W``."""
+    GEMM products ``mq`` minus the cross-pulsar rowsums of ``yp = F+ W``, ``yx = Fx W`` (blocks
+    ss, sc, cc; the (+, ×) cs form is F+ᵀ W_cs Fx = Fxᵀ W_sc F+, a rowsum of ``yx``)."""
     n_sky, n_psr = fplus.shape
     for s in prange(n_sky):
         sp = n_sky + s
         sx = 2 * n_sky + s
         for f in range(n_chunk):
-            b4 = 4 * f * n_psr
             b3 = 3 * f * n_psr
             pp_ss = pp_sc = pp_cc = 0.0
             px_ss = px_sc = px_cs = px_cc = 0.0
@@ -537,20 +551,22 @@ def _fe_correlated_products(nq, mq, yp, yx, fplus, fcross, n_chunk, n_sets, fe_o
             for q in range(n_psr):
                 fp = fplus[s, q]
                 fx = fcross[s, q]
-                y0 = yp[s, b4 + q]
-                y1 = yp[s, b4 + n_psr + q]
-                y2 = yp[s, b4 + 2 * n_psr + q]
-                y3 = yp[s, b4 + 3 * n_psr + q]
+                y0 = yp[s, b3 + q]
+                y1 = yp[s, b3 + n_psr + q]
+                y3 = yp[s, b3 + 2 * n_psr + q]
+                x0 = yx[s, b3 + q]
+                x1 = yx[s, b3 + n_psr + q]
+                x3 = yx[s, b3 + 2 * n_psr + q]
                 pp_ss += y0 * fp
                 pp_sc += y1 * fp
                 pp_cc += y3 * fp
                 px_ss += y0 * fx
                 px_sc += y1 * fx
-                px_cs += y2 * fx
+                px_cs += x1 * fp
                 px_cc += y3 * fx
-                xx_ss += yx[s, b3 + q] * fx
-                xx_sc += yx[s, b3 + n_psr + q] * fx
-                xx_cc += yx[s, b3 + 2 * n_psr + q] * fx
+                xx_ss += x0 * fx
+                xx_sc += x1 * fx
+                xx_cc += x3 * fx
             m00 = mq[s, f] - pp_ss
             m01 = mq[s, n_chunk + f] - pp_sc
             m11 = mq[s, 2 * n_chunk + f] - pp_cc
@@ -576,8 +592,9 @@ def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, ke
     ``corrections`` from :meth:`ArrayWeighting.scan_corrections` on the same frequencies.
     Per chunk of frequencies: the per-pulsar sums as in :func:`cwsearch.physics.fstat.fe_sky`,
     then for the pattern pairs (+,+), (+,×), (×,×) the cross-pulsar part
-    ``rowsum((P_i W_ab) ∘ P_j)`` — two matrix products ``F+ W`` (4 blocks) and ``Fx W``
-    (3 blocks) of (pixels × pulsars) by (pulsars × pulsars·frequencies) — and a numba
+    ``rowsum((P_i W_ab) ∘ P_j)`` — two matrix products ``F+ W`` and ``Fx W`` (3 blocks each:
+    ss, sc, cc; W_cs(p, q) = W_sc(q, p) gives the fourth) of (pixels × pulsars) by
+    (pulsars × pulsars·frequencies) — and a numba
     kernel factors each corrected 4×4 M and evaluates ``Fe = ½ Nᵀ M⁺ N``.
     2Fe ~ χ²(4) in noise when C is the true covariance (Ellis, Siemens & Creighton 2012).
     """
@@ -594,7 +611,7 @@ def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, ke
         raise ValueError("keep_map needs a single residual set")
     pn = np.vstack([fplus, fcross])
     pm = np.vstack([fplus * fplus, fplus * fcross, fcross * fcross])
-    per_freq = n_sky * (4 * n_sets + 9 + 7 * n_psr)
+    per_freq = n_sky * (4 * n_sets + 9 + 6 * n_psr)
     n_chunk = int(max(1, min(n_freq, chunk_elements // per_freq)))
     fe_map = np.empty((n_sky, n_freq), dtype=map_dtype) if keep_map else None
     fe_max = np.empty((n_sets, n_freq))
@@ -607,11 +624,9 @@ def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, ke
         zc = np.ascontiguousarray(proj.z[:, f0:f1, :].transpose(0, 2, 1)).reshape(n_psr, 3 * fc)
         nq = pn @ data
         mq = pm @ zc
-        w = corrections[f0:f1]
-        wp = np.ascontiguousarray(w.transpose(2, 0, 1, 3)).reshape(n_psr, fc * 4 * n_psr)
-        wx = np.ascontiguousarray(w[:, [0, 1, 3]].transpose(2, 0, 1, 3)).reshape(n_psr, fc * 3 * n_psr)
-        yp = fplus @ wp
-        yx = fcross @ wx
+        w = np.ascontiguousarray(corrections[f0:f1][:, [0, 1, 3]].transpose(2, 0, 1, 3)).reshape(n_psr, fc * 3 * n_psr)
+        yp = fplus @ w
+        yx = fcross @ w
         fe = np.empty((n_sets, n_sky, fc))
         _fe_correlated_products(nq, mq, yp, yx, fplus, fcross, fc, n_sets, fe)
         idx = np.argmax(fe, axis=1)

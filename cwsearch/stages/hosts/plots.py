@@ -53,7 +53,7 @@ def make_plots(folder, res, model, options, truth=None, pulsars=None):
     paths = [sky_plot(folder / "hosts_sky.png", res, truth), zoom_plot(folder / "hosts_sky_zoom.png", res, truth),
              followup_sky_plot(folder / "hosts_followup_sky.png", res, pulsars, truth)]
     if len(res.ranking):
-        paths.append(chirp_mass_plot(folder / "hosts_chirp_mass.png", res, model, min(options.top, 6)))
+        paths.append(chirp_mass_plot(folder / "hosts_chirp_mass.png", res, model, min(options.top, 6), truth))
     return paths
 
 
@@ -188,7 +188,7 @@ def zoom_plot(path, res, truth=None):
     return path
 
 
-def chirp_mass_plot(path, res, model, n_top):
+def chirp_mass_plot(path, res, model, n_top, truth=None):
     plt = pyplot()
     loc = res.localisation
     table = res.ranking
@@ -226,6 +226,9 @@ def chirp_mass_plot(path, res, model, n_top):
             ax.plot(x, dens, color="tab:red", lw=1.5, label=f"expected ({used[i]})")
         else:
             ax.text(0.02, 0.9, "no mass proxy", transform=ax.transAxes, fontsize=8)
+        if truth and truth.get("chirp_mass"):
+            ax.axvline(math.log10(truth["chirp_mass"]), color="#e6007e", ls="--", lw=1.3,
+                       label="true chirp mass (injection.json)")
         ax.set_title(f"{table['name'][k]}  d={table['distance'][k]:.0f} Mpc  p={table['probability'][k]:.3f}",
                      fontsize=8)
         ax.set_xlabel("log10 chirp mass [Msun] (observed frame)", fontsize=8)

@@ -38,6 +38,7 @@ import numpy as np
 
 from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
+from ...data.truth import injected_noise
 from ...inference.noisefit import (GOF_THRESHOLD, NoiseFitWarning, UncorrelatedCommonLikelihood,
                                    apply_noise_model, fit_common, fit_noise, noise_table)
 from ...physics.noise import NoiseSettings
@@ -196,14 +197,15 @@ def run_noise(array, run_dir, options: NoiseOptions = NoiseOptions(), *, noise: 
     contour = None
     if not options.no_plots:
         files["spectra_plot"] = out / "spectra.png"
-        plots.spectra_plot(files["spectra_plot"], apply_noise_model(array, model), engine_settings, fit)
+        truth = injected_noise(array)
+        plots.spectra_plot(files["spectra_plot"], apply_noise_model(array, model), engine_settings, fit, truth=truth)
         if fit.common is not None:
             files["common_plot"] = out / "common_likelihood.png"
             like_array = apply_noise_model(array, replace(model, common_log10_amplitude=None), check=False)
             like = (factory or UncorrelatedCommonLikelihood)(like_array, settings.red_components)
             # the correlated likelihood costs one (N_psr 2K)^2 Cholesky per point: a coarser grid
             points = options.contour_points if factory is None else min(options.contour_points, 8)
-            contour = plots.common_contour_plot(files["common_plot"], like, fit, points, used)
+            contour = plots.common_contour_plot(files["common_plot"], like, fit, points, used, truth=truth)
     summary = fit_summary(fit, options, dataset_checksum, used, messages, comparison, GOF_THRESHOLD)
     summary["engine_settings"] = asdict(engine_settings)
     if contour is not None:

@@ -61,6 +61,7 @@ from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...core.progress import progress as bar
 from ...data.healpix_fits import write_healpix_map
+from ...data.truth import injected_binary
 from ...inference.noisefit import GOF_THRESHOLD, NoiseFitWarning, goodness_of_fit, stage_noise_statement
 from ...inference.execution import TaskRunner
 from ...physics import fstat, sky
@@ -616,7 +617,8 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
 
         thresholds = _thresholds(trials, null_fe, (fp_dof, fp_scale))
         files["spectrum_plot"] = out / "spectrum.png"
-        scan_plots.spectrum_plot(files["spectrum_plot"], spectrum, candidates, thresholds, want_fe=want_fe)
+        scan_plots.spectrum_plot(files["spectrum_plot"], spectrum, candidates, thresholds, want_fe=want_fe,
+                                 truth=injected_binary(array))
         if want_fe and len(candidates):
             k = int(candidates["frequency_index"][0])
             files["sky_plot"] = out / "sky_fe.png"
