@@ -129,6 +129,38 @@ def test_mjd_range_flag_widens_the_plausible_dates(work, capsys):
     assert code == 0, err
 
 
+def test_run_file_mjd_range_widens_the_plausible_dates(work, capsys):
+    """The run file's `mjd_range = [LO, HI]` is the --mjd-range of the stage commands: TOAs outside refused
+    (file, row, column), a wider range accepts older data (MJD 20000-ish here: shifted copies)."""
+    from cwsearch.data.dataset import read_dataset, write_dataset
+    from cwsearch.data.model import Array, Pulsar
+
+    lo = float(read_dataset(work / "data")[0].mjd[0])
+    runfile = work / "run.toml"
+    base = 'dataset = "{data}"\nout = "run"\nstages = ["scan"]\n{extra}\n[noise]\nmodel = "dataset"\n' \
+           'red_components = 5\n\n[scan]\nnside = 1\nfmax = 3e-8\nno_plots = true\n'
+    runfile.write_text(base.format(data="data", extra=f"mjd_range = [{lo + 1}, 70000]\n"))
+    before = snapshot(work)
+    code, err = run_cli(["run", runfile, "--quiet"], capsys)
+    check_user_error(code, err, ["row 1", "column mjd", "plausible range"])
+    assert snapshot(work) == before
+    runfile.write_text(base.format(data="data", extra="mjd_range = [70000, 40000]\n"))
+    code, err = run_cli(["run", runfile, "--check"], capsys)
+    check_user_error(code, err, ["run.toml", "line 4", "mjd_range", "LO < HI"])
+
+    old = [Pulsar(p.name, ra=p.ra, dec=p.dec, distance=p.distance, distance_err=p.distance_err, mjd=p.mjd - 30000,
+                  residuals=p.residuals, sigmas=p.sigmas, backends=p.backends, extra_design=p.extra_design,
+                  extra_design_names=p.extra_design_names) for p in read_dataset(work / "data")]
+    write_dataset(Array(old), work / "old")
+    runfile.write_text(base.format(data="old", extra=""))
+    code, err = run_cli(["run", runfile, "--quiet"], capsys)
+    check_user_error(code, err, ["column mjd", "plausible range"])
+    runfile.write_text(base.format(data="old", extra="mjd_range = [1000, 70000]\n"))
+    code, err = run_cli(["run", runfile, "--quiet"], capsys)
+    assert code == 0, err
+    assert (work / "run" / "scan" / "candidates.ecsv").is_file()
+
+
 def test_residual_symlink_outside_dataset_refused_unread(work, capsys, tmp_path_factory):
     outside = tmp_path_factory.mktemp("elsewhere") / "x.ecsv"
     outside.write_bytes(res(work).read_bytes())
@@ -311,6 +343,60 @@ def test_stage_command_refuses_run_of_another_dataset(work, capsys):
         code, err = run_cli(argv, capsys)
         check_user_error(code, err, ["run", "another dataset"])
     assert snapshot(work / "run") == before
+
+
+def _dataset_b(work):
+    """Dataset B: dataset A (work/data) with one residual changed, so another checksum."""
+    import shutil
+
+    shutil.copytree(work / "data", work / "data_b")
+    set_value(work / "data_b" / "residuals" / "SIMPSR02.ecsv", 3, "residual", "1.5e-7")
+    return work / "data_b"
+
+
+def test_followup_and_limits_refuse_the_run_folder_of_another_dataset(work, capsys):
+    """`cwsearch followup B --out RUN_OF_A` (and `limits`) would use dataset A's candidates: one line, exit 2."""
+    code, err = run_cli(scan_argv(work, "--noise-model", "dataset"), capsys)
+    assert code == 0, err
+    data_b = _dataset_b(work)
+    before = snapshot(work / "run")
+    followup = ["followup", data_b, "--out", work / "run", "--quiet", "--red-components", "3", "--max-iterations",
+                "10", "--noise-model", "dataset"]
+    limits = ["limits", data_b, "--out", work / "run", "--nside", "1", "--fmax", "2e-8", "--no-plots", "--quiet",
+              "--workers", "1", "--red-components", "5", "--noise-model", "dataset"]
+    scan_b = [data_b if a == work / "data" else a for a in scan_argv(work)]
+    for argv in (followup, limits, scan_b):
+        code, err = run_cli(argv, capsys)
+        check_user_error(code, err, ["run", "another dataset", "choose another --out"])
+    assert snapshot(work / "run") == before
+
+
+def test_stage_command_checks_the_results_when_dataset_json_is_gone(work, capsys):
+    """A run folder without dataset.json (older, or edited by hand) is checked through its stage summaries."""
+    code, err = run_cli(scan_argv(work, "--noise-model", "dataset"), capsys)
+    assert code == 0, err
+    (work / "run" / "dataset.json").unlink()
+    data_b = _dataset_b(work)
+    before = snapshot(work / "run")
+    code, err = run_cli(["followup", data_b, "--out", work / "run", "--quiet", "--red-components", "3",
+                         "--max-iterations", "10", "--noise-model", "dataset"], capsys)
+    check_user_error(code, err, ["scan_summary.json", "another dataset"])
+    assert snapshot(work / "run") == before
+
+
+def test_hosts_refuses_results_of_another_dataset(work, capsys):
+    """`hosts` takes no dataset: the follow-up it ranks must come from the dataset the run folder records."""
+    from tests.test_fuzz_readers import _scan_and_posterior
+
+    run = work / "run"
+    _scan_and_posterior(run)
+    (run / "dataset.json").write_text(json.dumps({"checksum": "a" * 64}))
+    (run / "followup" / "summary.json").write_text(json.dumps({"noise_model": {"dataset_checksum": "b" * 64}}))
+    before = snapshot(run)
+    code, err = run_cli(["hosts", "--out", run, "--catalog", work / "galaxies.csv", "--observed-span", "10",
+                         "--quiet", "--no-plots"], capsys)
+    check_user_error(code, err, ["followup", "summary.json", "another dataset", "bbbbbbbbbbbb"])
+    assert snapshot(run) == before
 
 
 def test_stage_command_records_its_dataset(work, capsys):

@@ -103,7 +103,7 @@ def demo_config(out, *, quick=False, seed=0):
     data = {"title": "cwsearch demo (invented data)" + (", quick settings" if quick else ""),
             "dataset": str(dataset), "out": str(Path(out).resolve()), "seed": int(seed), **settings}
     if quick:  # the reduced limits grid is smaller than the cost of starting worker processes
-        data["engine"] = {"kind": "local", "workers": 1}
+        data["execution"] = {"workers": 1}
     return parse_config(to_toml(data), path=None, base=Path.cwd())
 
 

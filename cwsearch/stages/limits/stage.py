@@ -59,7 +59,6 @@ import math
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Literal
 
 import astropy.units as u
 import numpy as np
@@ -81,8 +80,7 @@ from ...physics.fstat import default_max_frequency, frequency_grid, parameters_t
 from ...physics.correlated import array_noise
 from ...physics.noise import NoiseSettings
 from ...physics.waveform import chirp_mass_for_strain
-
-METHODS = ("bayes", "frequentist", "both")
+from .options import Galaxy, LimitsOptions, METHODS, parse_galaxies  # the options live beside (standard library)
 
 
 # ----------------------------------------------------------------------------- sky averages
@@ -189,49 +187,6 @@ def galaxy_chirp_mass_limit(strain_limit, gw_frequency, distance_mpc):
     '1e+09'
     """
     return chirp_mass_for_strain(strain_limit, gw_frequency, distance_mpc)
-
-
-@dataclass(frozen=True)
-class Galaxy:
-    """A named galaxy: position [deg] and luminosity distance [Mpc]."""
-
-    name: str
-    ra: float
-    dec: float
-    distance: float
-
-
-#: most local worker processes
-MAX_WORKERS = 1024
-
-
-def parse_galaxies(entries):
-    """:class:`Galaxy` objects from ``(NAME, RA_DEG, DEC_DEG, DISTANCE_MPC)`` tuples (CLI/TOML)."""
-    out = []
-    for k, entry in enumerate(entries or (), start=1):
-        if isinstance(entry, Galaxy):
-            out.append(entry)
-            continue
-        if len(entry) != 4:
-            raise InputError(f"--galaxy number {k} needs NAME RA DEC DISTANCE_MPC, got {len(entry)} values")
-        name = str(entry[0])
-        try:
-            ra, dec, dist = (float(v) for v in entry[1:])
-        except (TypeError, ValueError):
-            raise InputError(f"--galaxy {name}: RA, DEC and DISTANCE_MPC must be numbers") from None
-        _check_galaxy(name, ra, dec, dist, where=f"--galaxy {name}")
-        out.append(Galaxy(name, ra, dec, dist))
-    return out
-
-
-def _check_galaxy(name, ra, dec, dist, where, file=None, row=None):
-    if not (0.0 <= ra <= 360.0):
-        raise InputError(f"{where}: ra must be in [0, 360] deg, got {ra}", file=file, row=row, column="ra")
-    if not (-90.0 <= dec <= 90.0):
-        raise InputError(f"{where}: dec must be in [-90, 90] deg, got {dec}", file=file, row=row, column="dec")
-    if not (dist > 0 and np.isfinite(dist)):
-        raise InputError(f"{where}: distance must be > 0 Mpc, got {dist}", file=file, row=row,
-                         column="distance")
 
 
 def read_catalog_galaxies(path, select):
@@ -353,91 +308,6 @@ def sampler_limit(nvec, mmat, gw_frequency, *, seed=0, ess=2000.0, progress=Fals
 DEFAULT_FMAX = 1e-7
 #: pixel × frequency rows per task
 ROWS_PER_TASK = 48
-
-
-@dataclass(frozen=True)
-class LimitsOptions:
-    """Options of the limits stage (CLI options of ``cwsearch limits``; ``[limits]`` in a run file).
-
-    Attributes
-    ----------
-    fmin, fmax : float or None
-        Frequency band [Hz]; defaults 1/T_span and min(1e-7 Hz, the scan's Nyquist-like limit).
-    oversample : int
-        Frequency spacing 1/(oversample · T_span).
-    nside : int
-        HEALPix resolution (power of two) of the sky grid.
-    sky_frequency : float or None
-        Frequency [Hz] of ``sky_limits.ecsv`` (nearest bin); default the most sensitive bin.
-    method : ``"bayes"``, ``"frequentist"`` or ``"both"``
-        ``strain_95`` columns use bayes unless the method is ``frequentist``.
-        ``bayes`` also reports the (cheap) frequentist limit in the frequency
-        table and the summary; ``both`` adds it to the sky and galaxy tables;
-        ``frequentist`` computes only that one.
-    workers : int or None
-        Local worker processes (None or 0: one per CPU).
-    scheduler : str or None
-        Address of a running dask.distributed scheduler (overrides ``workers``).
-    galaxy : tuple of (name, ra [deg], dec [deg], distance [Mpc])
-        Galaxies for chirp-mass limits.
-    catalog : str or None
-        Galaxy catalogue (ECSV/CSV) to take ``select`` galaxies from.
-    select : tuple of str
-        Galaxy names in ``catalog`` (each item may list several, comma-separated).
-    mcmc_check : int or None
-        Pixel at which to compare the quadrature limit with the sampler (at the sky frequency).
-    quadrature : ``"fast"``, ``"standard"`` or ``"fine"``
-        Angle-grid size of the Bayesian quadrature (see :data:`QUADRATURE`).
-    no_plots : bool
-        Skip the PNG plots.
-    """
-
-    fmin: float | None = None
-    fmax: float | None = None
-    oversample: int = 1
-    nside: int = 8
-    sky_frequency: float | None = None
-    method: Literal["bayes", "frequentist", "both"] = "bayes"
-    workers: int | None = None
-    scheduler: str | None = None
-    galaxy: tuple[tuple[str, float, float, float], ...] = ()
-    catalog: str | None = None
-    select: tuple[str, ...] = ()
-    mcmc_check: int | None = None
-    quadrature: Literal["fast", "standard", "fine"] = "standard"
-    no_plots: bool = False
-
-    def validate(self):
-        """Raise :class:`InputError` for values the stage cannot use; returns self."""
-        def bad(name, why):
-            raise InputError(f"option --{name.replace('_', '-')}: {why}")
-
-        for name in ("fmin", "fmax", "sky_frequency"):
-            v = getattr(self, name)
-            if v is not None and not (float(v) > 0 and math.isfinite(float(v))):
-                bad(name, f"must be > 0 Hz, not {v}")
-        if self.fmin is not None and self.fmax is not None and not self.fmax > self.fmin:
-            bad("fmax", f"must be above --fmin ({self.fmax} <= {self.fmin})")
-        if not (isinstance(self.oversample, (int, np.integer)) and self.oversample >= 1):
-            bad("oversample", f"must be an integer >= 1, not {self.oversample}")
-        nside = int(self.nside)
-        if nside != self.nside or nside < 1 or nside & (nside - 1) or nside > 256:
-            bad("nside", f"must be a power of two between 1 and 256, not {self.nside}")
-        if self.method not in METHODS:
-            bad("method", f"must be one of {', '.join(METHODS)}, not {self.method!r}")
-        if self.quadrature not in QUADRATURE:
-            bad("quadrature", f"must be one of {', '.join(QUADRATURE)}, not {self.quadrature!r}")
-        if self.workers is not None and (int(self.workers) != self.workers or self.workers < 0):
-            bad("workers", f"must be an integer >= 1 (0: one per CPU), not {self.workers}")
-        if self.mcmc_check is not None and not (0 <= int(self.mcmc_check) < 12 * nside * nside):
-            bad("mcmc_check", f"pixel must be in 0..{12 * nside * nside - 1} for nside {nside}, "
-                f"not {self.mcmc_check}")
-        if self.select and not self.catalog:
-            bad("select", "needs --catalog FILE")
-        if self.workers is not None and self.workers > MAX_WORKERS:
-            bad("workers", f"at most {MAX_WORKERS}, not {self.workers}")
-        parse_galaxies(self.galaxy)   # a bad galaxy is refused now (and by `run --check`), not mid-run
-        return self
 
 
 @dataclass
