@@ -7,6 +7,7 @@ from dataclasses import replace
 from pathlib import Path
 
 from ..core.errors import InputError
+from ..stages import STAGES
 
 DESCRIPTION = """\
 Run the whole job from a TOML run file: noise model -> scan -> follow-up of
@@ -35,7 +36,8 @@ EXAMPLE = """\
   cwsearch run runs/myrun.toml --check            (validate and print the resolved file; no work)
   cwsearch run runs/myrun.toml --json > summary.json"""
 
-STAGE_CHOICES = ("noise", "scan", "followup", "hosts", "limits", "all")
+#: --force choices: every stage of the registry (cheap to import: options only), and "all"
+STAGE_CHOICES = tuple(stage.name for stage in STAGES) + ("all",)
 
 
 def add_output_arguments(parser):
