@@ -213,11 +213,12 @@ LIMITS = {"nside": 2, "fmax": 3e-8, "oversample": 1, "no_plots": True}
 @pytest.mark.skipif(not stage_available("limits"), reason="limits stage not in place yet")
 def test_kill_limits_keeps_scan_and_resumes(dataset, tmp_path, capsys):
     scan = dict(SCAN, null_sims=0)
-    engine = {"workers": 1}
-    ref = run_file(tmp_path / "ref.toml", dataset, "ref", ["scan", "limits"], scan=scan, limits=LIMITS, engine=engine)
+    execution = {"workers": 1}
+    ref = run_file(tmp_path / "ref.toml", dataset, "ref", ["scan", "limits"], scan=scan, limits=LIMITS,
+                   execution=execution)
     assert cli.main(["run", str(ref), "--quiet"]) == 0
     killed = run_file(tmp_path / "killed.toml", dataset, "killed", ["scan", "limits"], scan=scan, limits=LIMITS,
-                      engine=engine)
+                      execution=execution)
     kill_when(["run", killed], "limits: running", cwd=tmp_path, settle=1.0)
     scan_after_kill = tree(tmp_path / "killed" / "scan")
     assert json.loads((tmp_path / "killed" / "scan" / STAGE_FILE).read_text())["status"] == "complete"

@@ -377,7 +377,7 @@ def provenance_record(config, checksum, started, previous=None) -> dict:
         "host": socket.gethostname(),
         "cpu_count": cpu_count(),
         "platform": platform.platform(),
-        "engine": dict(config.engine),
+        "execution": dict(config.execution),
         "versions": package_versions(),
         "history": history[-20:],
     }

@@ -78,7 +78,7 @@ def sky_plot(path, res, truth=None):
 def followup_sky_map(res):
     """(nside, probability per pixel, where it came from) of the candidate's localisation: the follow-up's
     ``posterior_sky.fits`` when it sits next to the posterior file, else a histogram of the samples at the
-    coarsest nside that still resolves them (nside 16)."""
+    finest nside (at most 64) whose occupied pixels hold at least 10 samples on average."""
     loc = res.localisation
     fits_path = Path(loc.source).parent / "posterior_sky.fits" if loc.kind == "posterior" else None
     if fits_path is not None and fits_path.is_file():
@@ -90,8 +90,12 @@ def followup_sky_map(res):
                 return nside, prob / prob.sum(), "follow-up posterior_sky.fits"
         except (OSError, KeyError, ValueError, TypeError):
             pass
-    nside = 16
-    return nside, posterior_sky_map(loc.ra, loc.dec, nside), f"histogram of {len(loc)} samples"
+    nside = 64      # coarsened until the occupied pixels hold >= 10 samples on average, as the follow-up's map
+    prob = posterior_sky_map(loc.ra, loc.dec, nside)
+    while nside > 1 and len(loc) / max(np.count_nonzero(prob), 1) < 10:
+        nside //= 2
+        prob = posterior_sky_map(loc.ra, loc.dec, nside)
+    return nside, prob, f"histogram of {len(loc)} samples"
 
 
 def _credible_levels(prob):
@@ -120,7 +124,7 @@ def followup_sky_figure(res, pulsars=None, truth=None, n_hosts=SKY_MAP_HOSTS):
     for k in range(n):
         marks.append({"ra": math.radians(float(table["ra"][k])), "dec": math.radians(float(table["dec"][k])),
                       "marker": "o", "size": 36, "color": [colors(1)], "edge": "black", "text": str(k + 1),
-                      "label": "top hosts (numbered in the zoom)" if k == 0 else None})
+                      "label": "top hosts (numbered; names below)" if k == 0 else None})
     footer = None
     if n:
         footer = "top hosts  " + "   ".join(f"{k + 1}: {table['name'][k]} (p = {table['probability'][k]:.2g})"
