@@ -302,3 +302,22 @@ def test_execution_section_and_the_old_engine_name(tmp_path, dataset_dir):
         _parse('dataset = "data"\n[execution]\nworkers = -1\n', tmp_path)
     with pytest.raises(InputError, match=r"set \[execution\] scheduler"):
         _parse('dataset = "data"\n[scan]\nscheduler = "tcp://h:8786"\n', tmp_path)
+
+
+def test_run_command_line_overrides_execution(tmp_path, dataset_dir):
+    """`cwsearch run --workers N --scheduler ADDRESS` (and `demo`) set [execution] as the run file would
+    (issue 15: every run-file option a command-line option where it makes sense). Common practice, no source."""
+    import argparse
+
+    from cwsearch.commands import run as command
+
+    parser = argparse.ArgumentParser()
+    command.add_arguments(parser)
+    cfg = _parse('dataset = "data"\n[execution]\nworkers = 2\n', tmp_path)
+    args = parser.parse_args(["r.toml", "--scheduler", "tcp://h:8786"])
+    got = command.with_execution(cfg, args.workers, args.scheduler)
+    assert got.execution == {"workers": 2, "scheduler": "tcp://h:8786"}
+    assert command.with_execution(cfg, 0, None).execution == {"workers": 0, "scheduler": ""}
+    assert command.with_execution(cfg).execution == cfg.execution
+    with pytest.raises(InputError, match="--workers"):
+        command.with_execution(cfg, -1)

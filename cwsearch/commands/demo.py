@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from ..core.errors import InputError
-from .run import add_output_arguments, print_result, with_noise_model
+from .run import add_output_arguments, print_result, with_execution, with_noise_model
 
 DESCRIPTION = """\
 Run the whole job on the bundled INVENTED demo data: 20 pulsars (SIMPSR01..20)
@@ -112,7 +112,8 @@ def run(args) -> int:
     from ..job.pipeline import run_pipeline
 
     out = args.out or ("runs/demo-quick" if args.quick else "runs/demo")
-    config = with_noise_model(demo_config(out, quick=args.quick, seed=args.seed), args.noise_model)
+    config = with_execution(with_noise_model(demo_config(out, quick=args.quick, seed=args.seed), args.noise_model),
+                            args.workers, args.scheduler)
     result = run_pipeline(config, force=args.force, quiet=args.quiet)
     print_result(result, args)
     if not args.json and not args.quiet:

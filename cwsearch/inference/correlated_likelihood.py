@@ -320,14 +320,18 @@ class CorrelatedLikelihood(Likelihood):
         self._batch_size = np.atleast_1d(ra).shape[0]
         return super().shape_batch(ra, dec, gw_frequency, chirp_mass)
 
-    def _store_beta(self, p, beta):
-        """β of pulsar p (walkers of the current node level, ``self._group``) into the batch's β."""
+    def _store_beta(self, p, rows):
+        """β of pulsar p, as rows (walkers, column, 2K) for the walkers of the current node level
+        (``self._group``), into the batch's β. Kept as (W, P, column, 2K), contiguous along the
+        Fourier coefficients where :func:`correlated_terms` contracts; ``self._beta`` is its
+        (W, P, 2K, column) view."""
         if self._beta is None:
-            self._beta = np.zeros((self._batch_size, self.n_pulsars, self._n_fourier, beta.shape[2]))
+            self._beta_rows = np.zeros((self._batch_size, self.n_pulsars, rows.shape[1], self._n_fourier))
+            self._beta = self._beta_rows.transpose(0, 1, 3, 2)
         if self._group.size == self._batch_size:          # one node level for the whole batch
-            self._beta[:, p] = beta
+            self._beta_rows[:, p] = rows
         else:
-            self._beta[self._group, p] = beta
+            self._beta_rows[self._group, p] = rows
 
     def _node_columns(self, m):
         """Per pulsar [Lᵀ K⁻¹ d̃ | Lᵀ K⁻¹ F | Lᵀ K⁻¹ L] (m, 1 + 2K + m), L the interpolation matrix
@@ -360,7 +364,7 @@ class CorrelatedLikelihood(Likelihood):
                           np.ascontiguousarray(kappa_p[:, p]), np.ascontiguousarray(amp_p[:, p]), t_max, values)
             prod = (values.reshape(n_w * ncol, m) @ columns[p]).reshape(n_w, ncol, 1 + n_c + m)
             dvec[:, p] = prod[:, :, 0]
-            self._store_beta(p, prod[:, :, 1:1 + n_c].transpose(0, 2, 1))
+            self._store_beta(p, prod[:, :, 1:1 + n_c])
             g = np.matmul(prod[:, :, 1 + n_c:], values.transpose(0, 2, 1))
             gmat[:, p] = 0.5 * (g + g.transpose(0, 2, 1))
 
@@ -379,7 +383,7 @@ class CorrelatedLikelihood(Likelihood):
             flat = basis.reshape(n_w * ncol, -1)
             prod = (flat @ self._weighted_columns[p]).reshape(n_w, ncol, 1 + self._n_fourier)
             dvec[:, p] = prod[:, :, 0]
-            self._store_beta(p, prod[:, :, 1:].transpose(0, 2, 1))
+            self._store_beta(p, prod[:, :, 1:])
             whitened = (flat @ self._operator[p].T).reshape(n_w, ncol, -1)
             gram_kernel(basis, self._inv_var[p], whitened, g)
             gmat[:, p] = g
