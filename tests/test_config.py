@@ -186,7 +186,7 @@ def test_example_run_file_validates():
     assert cfg.dataset.is_dir()
     # every key of every installed section is documented in the example (by name, in a comment or as a key)
     text = example.read_text()
-    for section in ("engine", "noise") + STAGES:
+    for section in ("execution", "noise") + STAGES:
         keys = section_keys(section)
         if keys is None:
             continue
@@ -275,3 +275,49 @@ def test_engine_fills_workers_and_scheduler_but_not_the_hash(tmp_path, dataset_d
     assert local.stage_config("limits") == dask.stage_config("limits")  # where it runs is not an input
     with pytest.raises(InputError, match="set by the pipeline"):
         _parse('dataset = "data"\n[limits]\nworkers = 2\n', tmp_path)
+
+
+def test_execution_section_and_the_old_engine_name(tmp_path, dataset_dir):
+    """[execution] workers / scheduler (the stage commands' --workers / --scheduler); the old [engine]
+    (kind, workers, address) is still read, with a deprecation warning, as the same thing; both at once
+    is an error. Common practice, no source: a renamed setting stays readable for a while."""
+    import warnings
+
+    from cwsearch.job.config import RunFileDeprecationWarning
+    from cwsearch.job.pipeline import runner_options
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", RunFileDeprecationWarning)   # the new name is not deprecated
+        new = _parse('dataset = "data"\n[execution]\nworkers = 3\nscheduler = "tcp://h:8786"\n', tmp_path)
+    assert new.execution == {"workers": 3, "scheduler": "tcp://h:8786"}
+    with pytest.warns(RunFileDeprecationWarning, match=r"\[engine\] section is now called \[execution\]"):
+        old = _parse('dataset = "data"\n[engine]\nworkers = 3\nkind = "dask"\naddress = "tcp://h:8786"\n', tmp_path)
+    assert old.execution == new.execution and old.to_dict() == new.to_dict()
+    opts = runner_options(new.options["limits"], new.execution)
+    assert (opts.workers, opts.scheduler) == (3, "tcp://h:8786")
+    assert "[execution]" in new.to_toml() and "[engine]" not in new.to_toml()
+    with pytest.raises(InputError, match=r"give \[execution\] only"):
+        _parse('dataset = "data"\n[engine]\nworkers = 1\n[execution]\nworkers = 1\n', tmp_path)
+    with pytest.raises(InputError, match=r"\[execution\] workers: must be >= 0"):
+        _parse('dataset = "data"\n[execution]\nworkers = -1\n', tmp_path)
+    with pytest.raises(InputError, match=r"set \[execution\] scheduler"):
+        _parse('dataset = "data"\n[scan]\nscheduler = "tcp://h:8786"\n', tmp_path)
+
+
+def test_run_command_line_overrides_execution(tmp_path, dataset_dir):
+    """`cwsearch run --workers N --scheduler ADDRESS` (and `demo`) set [execution] as the run file would
+    (issue 15: every run-file option a command-line option where it makes sense). Common practice, no source."""
+    import argparse
+
+    from cwsearch.commands import run as command
+
+    parser = argparse.ArgumentParser()
+    command.add_arguments(parser)
+    cfg = _parse('dataset = "data"\n[execution]\nworkers = 2\n', tmp_path)
+    args = parser.parse_args(["r.toml", "--scheduler", "tcp://h:8786"])
+    got = command.with_execution(cfg, args.workers, args.scheduler)
+    assert got.execution == {"workers": 2, "scheduler": "tcp://h:8786"}
+    assert command.with_execution(cfg, 0, None).execution == {"workers": 0, "scheduler": ""}
+    assert command.with_execution(cfg).execution == cfg.execution
+    with pytest.raises(InputError, match="--workers"):
+        command.with_execution(cfg, -1)

@@ -427,3 +427,76 @@ def test_uncorrelated_likelihood_reproduces_per_pulsar_likelihood():
                              np.full(6, 8.7), np.full(6, -13.2), rng.uniform(-1, 1, 6), rng.uniform(0, 3, 6),
                              rng.uniform(0, 3, 6)])
     np.testing.assert_allclose(mine.batch(theta), per.batch(theta), rtol=1e-8, atol=1e-8)
+
+
+def test_correlated_terms_equal_the_dense_cross_products():
+    """The half-triangle products of ``correlated_terms`` (Ω_pq for p ≤ q, mirrored) against the
+    full dense form written from its definition: Ω = Bᵀ Ψ B with B the block-diagonal stack of
+    β_p, ε = Σ_j earth_j β_j; corrections ½ εᵀΨε, β_Pᵀ(Ψε), Ω_pp[PP] and Ω_pq[PP] (p ≠ q)."""
+    from cwsearch.inference.correlated_likelihood import correlated_terms
+
+    rng = np.random.default_rng(5)
+    n_w, n_psr, n_c = 7, 6, 8
+    root = rng.normal(size=(n_psr * n_c, n_psr * n_c))
+    psi = root @ root.T / (n_psr * n_c)
+    earth = rng.normal(size=(n_w, n_psr, 2))
+    dvec = rng.normal(size=(n_w, n_psr, 4))
+    gmat = rng.normal(size=(n_w, n_psr, 4, 4))
+    beta = rng.normal(size=(n_w, n_psr, n_c, 4))
+    got_d, got_g, got_e, got_x = correlated_terms(psi, earth, dvec, gmat, beta)
+    for w in range(n_w):
+        spread = scipy.linalg.block_diag(*beta[w])                      # (P·2K, P·4)
+        omega = (spread.T @ psi @ spread).reshape(n_psr, 4, n_psr, 4)
+        eps = np.concatenate([beta[w, p, :, :2] @ earth[w, p] for p in range(n_psr)])
+        psi_eps = (psi @ eps).reshape(n_psr, n_c)
+        assert got_e[w] == pytest.approx(0.5 * eps @ psi @ eps, rel=1e-12)
+        for p in range(n_psr):
+            np.testing.assert_allclose(got_d[w, p, 2:], dvec[w, p, 2:] + beta[w, p, :, 2:].T @ psi_eps[p], rtol=1e-12)
+            np.testing.assert_allclose(got_g[w, p, 2:, 2:], gmat[w, p, 2:, 2:] - omega[p, 2:, p, 2:], rtol=1e-12,
+                                       atol=1e-12)
+            for q in range(n_psr):
+                want = np.zeros((2, 2)) if p == q else omega[p, 2:, q, 2:]
+                np.testing.assert_allclose(got_x[w, p, q], want, rtol=1e-12, atol=1e-12)
+
+
+@pytest.mark.parametrize("evolution", ["full", "monochromatic"])
+def test_node_shape_path_equals_direct_path(evolution):
+    """Basis products at Chebyshev nodes (with the cached Lᵀ K⁻¹ F) against the TOA-by-TOA
+    path: ln Λ and β = Fᵀ K⁻¹ b agree to 1e-8 relative (interpolation error bound 1e-13 of the
+    amplitude, docs/design.md §7); walkers spread over frequencies so that several node
+    levels (and the direct path for the highest) occur in one batch."""
+    arr, common, aw, *_ = _likelihood_setup(evolution)
+    direct = CorrelatedLikelihood(arr, aw, evolution=evolution, shape_path="direct")
+    nodes = CorrelatedLikelihood(arr, aw, evolution=evolution, shape_path="nodes")
+    rng = np.random.default_rng(8)
+    n = 12
+    theta = np.column_stack([rng.uniform(0, 6, n), rng.uniform(-1, 1, n), np.linspace(-8.9, -7.0, n),
+                             rng.uniform(8.0, 9.3, n), np.full(n, -14.0), rng.uniform(-1, 1, n),
+                             rng.uniform(0, 3, n), rng.uniform(0, 3, n)])
+    par = direct.physical(theta)
+    levels = nodes._node_count(np.pi * par["gw_frequency"], np.zeros(n))
+    assert np.unique(levels).size >= 3
+    want = direct.batch(theta)
+    got = nodes.batch(theta)
+    np.testing.assert_allclose(got, want, rtol=1e-8, atol=1e-8 * np.abs(want).max())
+    args = (par["ra"], par["dec"], par["gw_frequency"], par["chirp_mass"])
+    beta_d = direct.correlated_shape_batch(*args)[4]
+    beta_n = nodes.correlated_shape_batch(*args)[4]
+    np.testing.assert_allclose(beta_n, beta_d, rtol=1e-8, atol=1e-8 * np.abs(beta_d).max())
+
+
+@pytest.mark.parametrize("kind", ["hellings-downs", "dipole"])
+def test_woodbury_matrix_built_in_small_chunks_equals_dense(kind):
+    """S̃ formed one Γ-mode column block at a time (so the sums over pulsars start at the first
+    non-zero row of the triangular Cholesky factor of Γ; dipole: its eigen-factor, not
+    triangular) gives the dense log det(GᵀCG) (numpy.linalg.slogdet) and (d|d)_C to 1e-8."""
+    arr = _array(seed=9, n_pulsars=5)
+    common = CommonProcess(-13.7, 13 / 3, 6, kind)
+    aw = ArrayWeighting(arr, SETTINGS, common)
+    aw._factorise(chunk_elements=1)
+    dense = _Dense(arr, SETTINGS, common, aw.correlation)
+    sign, logdet = np.linalg.slogdet(dense.gcg)
+    assert sign > 0
+    assert aw.logdet() == pytest.approx(logdet, rel=RTOL)
+    gd = dense.g.T @ dense.stack([p.residuals for p in arr])[:, 0]
+    assert aw.data_norm() == pytest.approx(float(gd @ np.linalg.solve(dense.gcg, gd)), rel=RTOL)

@@ -33,6 +33,7 @@ from pathlib import Path
 import pytest
 
 from cwsearch import cli
+from cwsearch.data.compare import compare_files
 from cwsearch.job.pipeline import STAGE_FILE
 
 REPO = Path(__file__).resolve().parents[1]
@@ -160,11 +161,11 @@ def test_kill_scan_then_resume_equals_uninterrupted(dataset, tmp_path, capsys):
     # enough null simulations that the kill lands inside them (with the imports at module top the stage no
     # longer spends seconds importing astropy.table after them)
     scan = dict(SCAN, null_sims=1000)
-    # the dataset's noise model: this test is about resuming the scan's null simulations (a scan-only run
-    # that estimates its noise model first did not resume to the same numbers: see the README's known issues)
-    ref = run_file(tmp_path / "ref.toml", dataset, "ref", ["scan"], noise_model="dataset", scan=scan)
+    # the default (estimate) noise model: the run fits the noise first, and the resumed run reuses that
+    # finished fit (same options and seed); recomputed numbers compared to 1e-9 relative (stated tolerance)
+    ref = run_file(tmp_path / "ref.toml", dataset, "ref", ["scan"], scan=scan)
     assert cli.main(["run", str(ref), "--quiet"]) == 0
-    killed = run_file(tmp_path / "killed.toml", dataset, "killed", ["scan"], noise_model="dataset", scan=scan)
+    killed = run_file(tmp_path / "killed.toml", dataset, "killed", ["scan"], scan=scan)
     inputs = tree(dataset)
 
     kill_when(["run", killed], "null simulations:", cwd=tmp_path)
@@ -174,12 +175,34 @@ def test_kill_scan_then_resume_equals_uninterrupted(dataset, tmp_path, capsys):
 
     capsys.readouterr()
     assert cli.main(["run", str(killed), "--quiet"]) == 0
-    for name in ("candidates.ecsv", "spectrum.ecsv"):
-        assert_same_numbers(tmp_path / "killed" / "scan" / name, tmp_path / "ref" / "scan" / name)
+    for name in ("noise/noise_model.ecsv", "scan/candidates.ecsv", "scan/spectrum.ecsv"):
+        result = compare_files(tmp_path / "killed" / name, tmp_path / "ref" / name, rtol=1e-9)
+        assert result.ok, f"{name}: {result.describe()}"
     assert json.loads((tmp_path / "killed" / "scan" / STAGE_FILE).read_text())["status"] == "complete"
     leftovers = [p.name for p in (tmp_path / "killed").rglob("*.part")]
     assert not leftovers, f"temporary files left after the resumed run: {leftovers}"
     assert tree(dataset) == inputs
+
+
+def test_kill_during_noise_fit_then_resume_equals_uninterrupted(dataset, tmp_path, capsys):
+    """The default ``estimate`` noise model: a scan-only run fits the noise first (into RUN_DIR/noise/).
+    Killed during that fit and run again, it must give the numbers of an uninterrupted run (recomputed
+    floats: 1e-9 relative, a stated tolerance; cwsearch.data.compare). The resumed run may reuse a finished
+    fit only (summary.json written last, same options and seed: cwsearch.job.noisemodel.reusable_fit)."""
+    scan = dict(SCAN, null_sims=20)
+    ref = run_file(tmp_path / "ref.toml", dataset, "ref", ["scan"], scan=scan)
+    assert cli.main(["run", str(ref), "--quiet"]) == 0
+    killed = run_file(tmp_path / "killed.toml", dataset, "killed", ["scan"], scan=scan)
+    # the fit starts right after the noise stage's "off" line (it takes about a second here)
+    kill_when(["run", killed], "noise: off", cwd=tmp_path, settle=0.3,
+              also=lambda: not (tmp_path / "killed" / "scan" / STAGE_FILE).exists())
+    assert_no_half_written(tmp_path / "killed")
+    capsys.readouterr()
+    assert cli.main(["run", str(killed), "--quiet"]) == 0
+    for name in ("noise/noise_model.ecsv", "scan/candidates.ecsv", "scan/spectrum.ecsv"):
+        result = compare_files(tmp_path / "killed" / name, tmp_path / "ref" / name, rtol=1e-9)
+        assert result.ok, f"{name}: {result.describe()}"
+    assert not list((tmp_path / "killed").rglob("*.part"))
 
 
 # ------------------------------------------------------------------ limits (deterministic) after a finished scan
@@ -190,11 +213,12 @@ LIMITS = {"nside": 2, "fmax": 3e-8, "oversample": 1, "no_plots": True}
 @pytest.mark.skipif(not stage_available("limits"), reason="limits stage not in place yet")
 def test_kill_limits_keeps_scan_and_resumes(dataset, tmp_path, capsys):
     scan = dict(SCAN, null_sims=0)
-    engine = {"workers": 1}
-    ref = run_file(tmp_path / "ref.toml", dataset, "ref", ["scan", "limits"], scan=scan, limits=LIMITS, engine=engine)
+    execution = {"workers": 1}
+    ref = run_file(tmp_path / "ref.toml", dataset, "ref", ["scan", "limits"], scan=scan, limits=LIMITS,
+                   execution=execution)
     assert cli.main(["run", str(ref), "--quiet"]) == 0
     killed = run_file(tmp_path / "killed.toml", dataset, "killed", ["scan", "limits"], scan=scan, limits=LIMITS,
-                      engine=engine)
+                      execution=execution)
     kill_when(["run", killed], "limits: running", cwd=tmp_path, settle=1.0)
     scan_after_kill = tree(tmp_path / "killed" / "scan")
     assert json.loads((tmp_path / "killed" / "scan" / STAGE_FILE).read_text())["status"] == "complete"

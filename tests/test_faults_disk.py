@@ -75,7 +75,7 @@ def _argv(stage, run_dir, inp, *, plots=False):
         runfile.write_text(
             f'dataset = "{inp["data"]}"\nout = "{run_dir}"\nseed = 5\nstages = ["scan", "limits"]\n\n'
             "[noise]\nred_components = 5\n\n[scan]\nnside = 2\nfmax = 3e-8\nnull_sims = 0\nno_plots = true\n\n"
-            "[limits]\nnside = 1\nfmax = 2e-8\nno_plots = true\n\n[engine]\nworkers = 1\n")
+            "[limits]\nnside = 1\nfmax = 2e-8\nno_plots = true\n\n[execution]\nworkers = 1\n")
         return ["run", str(runfile), "--quiet"]
     raise ValueError(stage)
 

@@ -271,6 +271,78 @@ def test_noise_table_reader_fuzz(valid, tmp_path):
     check()
 
 
+# ------------------------------------------------------------------ follow-up checkpoints
+
+def _toy_sampler(folder, max_iterations, resume):
+    """A 2-D Gaussian in a box, 3 temperatures x 8 walkers: the follow-up sampler at its cheapest."""
+    import numpy as np
+
+    from cwsearch.inference.sampling import SamplerSettings, run_sampler
+
+    settings = SamplerSettings(walkers=8, temperatures=3, max_temperature=100, ess=1e9, max_iterations=max_iterations,
+                               adapt_iterations=20, checkpoint_every=20, check_every=20)
+    p0 = np.random.default_rng(6).uniform(-1, 1, (3, 8, 2))
+    prior = lambda x: np.where(np.all(np.abs(x) <= 5, axis=1), 0.0, -np.inf)  # noqa: E731
+    like = lambda x: -0.5 * np.sum(x ** 2, axis=1)  # noqa: E731
+    return run_sampler(prior, like, p0, settings, seed=7, checkpoint=folder / "checkpoint.npz", resume=resume,
+                       fingerprint={"toy": 1}, progress=False)
+
+
+def _extreme_arrays():
+    """Arrays a damaged or hostile checkpoint may hold in place of a field: other shapes and dtypes, NaN,
+    ±inf, huge and negative integers, text, empty and 0-d arrays (issue 19: random numeric extremes)."""
+    import numpy as np
+    from hypothesis.extra import numpy as hnp
+
+    dtypes = st.sampled_from([np.float64, np.float32, np.int64, np.int8, np.uint32, np.bool_, np.complex128])
+    shapes = hnp.array_shapes(min_dims=0, max_dims=3, min_side=0, max_side=5)
+    numeric = hnp.arrays(dtypes, shapes)
+    special = st.sampled_from([np.array(np.nan), np.array(np.inf), np.array(-1), np.array(10 ** 18),
+                               np.array(2 ** 62, dtype=np.int64), np.array(-(2 ** 63), dtype=np.int64),
+                               np.array(1e308), np.array(5e-324), np.array("x" * 50), np.array([]),
+                               np.array(["a", "b"]), np.full((3, 8, 2), np.nan), np.full((3,), 0.0),
+                               np.full((3,), -1.0), np.full((20, 8, 2), np.inf)])
+    text = st.text(max_size=60).map(lambda t: np.array(t))
+    return st.one_of(numeric, special, text)
+
+
+def test_checkpoint_reader_fuzz(tmp_path):
+    """``run_sampler(..., resume=True)`` on a damaged ``checkpoint.npz`` (random bytes, random Unicode, byte
+    edits of a real checkpoint, or one field replaced by an array of random shape, dtype or extreme values)
+    either resumes or raises InputError, never another exception (issue 19)."""
+    import io
+
+    import numpy as np
+
+    base = tmp_path / "base"
+    base.mkdir()
+    _toy_sampler(base, 20, resume=False)
+    valid = (base / "checkpoint.npz").read_bytes()
+    with np.load(io.BytesIO(valid), allow_pickle=False) as ck:
+        fields = {k: np.array(ck[k]) for k in ck.files}
+    target_dir = tmp_path / "fuzzed"
+    target_dir.mkdir()
+    target = target_dir / "checkpoint.npz"
+
+    @st.composite
+    def field_edits(draw):
+        edited = dict(fields)
+        for _ in range(draw(st.integers(1, 2))):
+            key = draw(st.sampled_from(sorted(k for k in fields if k != "fingerprint")))
+            edited[key] = draw(_extreme_arrays())
+        buf = io.BytesIO()
+        np.savez(buf, **edited)
+        return buf.getvalue()
+
+    @FUZZ
+    @given(data=st.one_of(_mutations(valid), field_edits(), field_edits()))
+    def check(data):
+        target.write_bytes(data)
+        _loads_or_input_error(lambda: _toy_sampler(target_dir, 24, resume=True))
+
+    check()
+
+
 # ------------------------------------------------------------------ nothing executed, nothing unpickled
 
 YAML_ATTACKS = [

@@ -400,35 +400,58 @@ def _drawn_texts(fig):
 
 def test_followup_sky_figure_marks_hosts_without_overlaps(tmp_path):
     """hosts_followup_sky.png: the 90 % credible region holds 90 % of the map's probability (its definition:
-    the densest pixels up to 90 %), the top hosts are numbered in the zoom, the truth and the pulsars are drawn,
+    the densest pixels up to 90 %), the top hosts are numbered (in the zoom, or on the map when outside it), the truth and the pulsars are drawn,
     axes and colorbar are labelled in degrees, the background is light, and no two drawn texts overlap
     (readability rules for figures: common practice, no source)."""
     from matplotlib.colors import to_rgb
 
+    from cwsearch.core.plotting import pyplot
     from cwsearch.stages.hosts.plots import SKY_MAP_HOSTS, _credible_levels, followup_sky_figure, followup_sky_map
 
     rng = np.random.default_rng(3)
     cat = write_catalogue(tmp_path / "c.csv", rng)
-    res = _rank(synthetic_posterior(rng, n=3000), cat, rng)
-    nside, prob, _ = followup_sky_map(res)
-    inside = _credible_levels(prob) < 0.9
-    assert 0.9 <= prob[inside].sum() <= 0.9 + prob.max() + 1e-12
-    pulsars = (rng.uniform(0, 2 * np.pi, 20), np.arcsin(rng.uniform(-1, 1, 20)))
-    fig = followup_sky_figure(res, pulsars, {"ra": TRUE["ra"], "dec": TRUE["dec"]})
-    texts = _drawn_texts(fig)
-    words = [t.get_text() for t in texts]
-    assert [w for w in words if w.isdigit()] == [str(k + 1) for k in range(SKY_MAP_HOSTS)]
-    assert any("HOST" in w and "top hosts" in w for w in words)              # names listed under the map
-    assert "truth (injection.json)" in words and "pulsars" in words
-    assert sum(w == "right ascension [deg]" for w in words) == 2 and any("per square degree" in w for w in words)
-    main, zoom = fig.axes[0], fig.axes[1]
-    assert all(t.get_text().endswith("°") for t in main.get_xticklabels() + zoom.get_xticklabels()
-               if t.get_text())
-    assert min(to_rgb(fig.get_facecolor())) > 0.95 and min(main.collections[0].cmap(0.0)[:3]) > 0.9
-    renderer = fig.canvas.get_renderer()
-    boxes = [(t.get_text(), t.get_window_extent(renderer)) for t in texts]
-    clashes = [(a, b) for i, (a, box) in enumerate(boxes) for b, other in boxes[i + 1:] if box.overlaps(other)]
-    assert clashes == []
-    from cwsearch.core.plotting import pyplot
+    # a compact posterior (hosts inside the zoom) and a broad one (hosts all over the map, numbered there)
+    for sky_sigma in (3.0, 40.0):
+        res = _rank(synthetic_posterior(rng, n=3000, sky_sigma_deg=sky_sigma), cat, rng)
+        nside, prob, _ = followup_sky_map(res)
+        inside = _credible_levels(prob) < 0.9
+        assert 0.9 <= prob[inside].sum() <= 0.9 + prob.max() + 1e-12
+        pulsars = (rng.uniform(0, 2 * np.pi, 20), np.arcsin(rng.uniform(-1, 1, 20)))
+        fig = followup_sky_figure(res, pulsars, {"ra": TRUE["ra"], "dec": TRUE["dec"]})
+        texts = _drawn_texts(fig)
+        words = [t.get_text() for t in texts]
+        numbers = [t.get_text() for ax in fig.axes[:2] for t in ax.texts if t.get_visible()]
+        assert sorted(numbers) == [str(k + 1) for k in range(SKY_MAP_HOSTS)]     # each host numbered once
+        assert any("HOST" in w and "top hosts" in w for w in words)              # names listed under the map
+        assert "truth (injection.json)" in words and "pulsars" in words
+        assert sum(w == "right ascension [deg]" for w in words) == 2 and any("per square degree" in w for w in words)
+        main, zoom = fig.axes[0], fig.axes[1]
+        assert all(t.get_text().endswith("°") for t in main.get_xticklabels() + zoom.get_xticklabels()
+                   if t.get_text())
+        assert min(to_rgb(fig.get_facecolor())) > 0.95 and min(main.collections[0].cmap(0.0)[:3]) > 0.9
+        renderer = fig.canvas.get_renderer()
+        boxes = [(t.get_text(), t.get_window_extent(renderer)) for t in texts]
+        clashes = [(a, b) for i, (a, box) in enumerate(boxes) for b, other in boxes[i + 1:] if box.overlaps(other)]
+        assert clashes == [], sky_sigma
+        pyplot().close(fig)
 
+
+def test_chirp_mass_plot_marks_the_true_chirp_mass(tmp_path, monkeypatch):
+    """hosts_chirp_mass.png draws the injected chirp mass (observed frame) in every panel."""
+    import cwsearch.stages.hosts.plots as host_plots
+    from cwsearch.core.plotting import pyplot
+    from cwsearch.data.catalog import read_catalog
+
+    rng = np.random.default_rng(5)
+    cat_path = write_catalogue(tmp_path / "c.csv", rng)
+    options = HostsOptions(catalog=str(cat_path))
+    catalog = read_catalog(cat_path)
+    model = build_host_model(catalog, options, 15 * 3.15576e7, float(catalog.distance.max()))
+    res = rank_candidate(synthetic_posterior(rng, n=2000), catalog, model, options, rng, n_catalogue=len(catalog))
+    figures = []
+    monkeypatch.setattr(host_plots, "save_figure", lambda fig, path: figures.append(fig))
+    host_plots.chirp_mass_plot("m.png", res, model, 3, {"chirp_mass": TRUE["chirp_mass"]})
+    (fig,) = figures
+    lines = [ln for ax in fig.axes for ln in ax.lines if "injection.json" in str(ln.get_label())]
+    assert len(lines) == 3 and all(np.allclose(ln.get_xdata(), math.log10(TRUE["chirp_mass"])) for ln in lines)
     pyplot().close(fig)

@@ -175,3 +175,45 @@ def test_stage_registry_is_in_pipeline_order():
 
     assert [s.name for s in STAGES] == ["noise", "scan", "followup", "hosts", "limits", "targets"]
     assert tuple(s.name for s in STAGES) == CONFIG_STAGES
+
+
+def test_stage_registry_and_options_load_no_numerical_stack():
+    """The stage registry, every stage's options module, the noise settings and every command module import
+    only the standard library (and cwsearch's own light modules): ``cwsearch COMMAND --help`` builds its
+    options from the dataclasses without numpy, scipy, astropy, numba, matplotlib or dask."""
+    code = ("import sys, importlib, pkgutil\nimport cwsearch.stages, cwsearch.commands\n"
+            "for m in pkgutil.iter_modules(cwsearch.commands.__path__):\n"
+            "    importlib.import_module('cwsearch.commands.' + m.name)\n"
+            "for s in cwsearch.stages.STAGES:\n"
+            "    importlib.import_module(f'cwsearch.stages.{s.name}.options')\n"
+            "import cwsearch.physics.noise_settings, cwsearch.core.options\n"
+            "print(sorted(m for m in sys.modules if m.split('.')[0] in ('numpy', 'scipy', 'astropy', 'numba', "
+            "'matplotlib', 'dask', 'distributed', 'tqdm')))\n")
+    env = dict(os.environ, PYTHONPATH=str(REPO))
+    out = subprocess.run([sys.executable, "-c", code], cwd=REPO, env=env, capture_output=True, text=True,
+                         timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "[]"
+
+
+def test_options_modules_import_only_the_standard_library_and_core():
+    """Read from the source (the check above sees only what one run imports): a stage's options.py imports
+    the standard library and cwsearch.core only."""
+    bad = []
+    for name, path in _modules().items():
+        if not (name.endswith(".options") or name == "cwsearch.physics.noise_settings"):
+            continue
+        for node in ast.parse(path.read_text(encoding="utf-8")).body:
+            if isinstance(node, ast.Import):
+                targets = [a.name for a in node.names]
+            elif isinstance(node, ast.ImportFrom):
+                targets = [_resolve(name, False, node)]
+            else:
+                continue
+            for target in targets:
+                top = target.split(".")[0]
+                if top == "cwsearch" and not target.startswith("cwsearch.core"):
+                    bad.append(f"{name}: {target}")
+                elif top != "cwsearch" and top not in sys.stdlib_module_names and top != "__future__":
+                    bad.append(f"{name}: {target}")
+    assert bad == []

@@ -274,6 +274,32 @@ def test_stage_same_answers_twice(stage_run):
     np.testing.assert_allclose(again.pixel_limits, first.pixel_limits, rtol=1e-12, atol=0)
 
 
+def test_stage_pieces_compute_without_writing(stage_run, tmp_path):
+    """run_limits = compute_stage_limits (no file) -> limits_tables -> write_limits / plot_limits ->
+    limits_summary: the pieces on their own give what the stage wrote (recomputed: 1e-12 relative, never bit
+    for bit; common practice, no source)."""
+    from astropy.table import Table
+
+    arr, out, first = stage_run
+    options = limits.LimitsOptions(nside=1, fmax=4.5e-9, method="both", workers=1, quadrature="fast",
+                                   galaxy=(("GAL0001", 120.0, -20.0, 30.0),), no_plots=True)
+    before = sorted(tmp_path.rglob("*"))
+    computation = limits.compute_stage_limits(arr, options, progress=False)
+    assert sorted(tmp_path.rglob("*")) == before   # computing writes nothing
+    np.testing.assert_allclose(computation.pixel_limits, first.pixel_limits, rtol=1e-12, atol=0)
+    tables = limits.limits_tables(computation)
+    written = Table.read(out / "limits" / "frequency_limits.ecsv")
+    np.testing.assert_allclose(np.asarray(tables.frequency["strain_95"]), np.asarray(written["strain_95"]),
+                               rtol=1e-12, atol=0)
+    summary = limits.limits_summary(computation, tables)
+    assert summary["sky_frequency"] == pytest.approx(first.summary["sky_frequency"], rel=1e-12)
+    assert set(summary["galaxies"]) == {"GAL0001"}
+    files = limits.write_limits(tmp_path / "limits", computation, tables)
+    assert sorted(files) == ["frequency_limits", "galaxy_limits", "sky_limits", "sky_limits_map"]
+    assert all((tmp_path / "limits" / name).is_file() for name in
+               ("frequency_limits.ecsv", "sky_limits.ecsv", "sky_limits.fits", "galaxy_limits.ecsv"))
+
+
 @pytest.mark.parametrize("kwargs, word", [
     ({"nside": 3}, "nside"), ({"method": "median"}, "method"), ({"oversample": 0}, "oversample"),
     ({"mcmc_check": 12, "nside": 1}, "mcmc-check"), ({"select": ("A",)}, "select"),

@@ -105,6 +105,35 @@ def test_estimate_reuses_the_fit_of_the_same_dataset_and_refits_another(dataset,
     assert not again.description["reused"] and again.description["table_dataset_checksum"] == "0" * 64
 
 
+def test_estimate_refits_an_interrupted_fit_or_one_with_other_options_or_seed(dataset, tmp_path):
+    """A run's numbers must not depend on what an earlier run left in RUN_DIR/noise/ (issue 19: a resumed
+    scan-only run): a fit is reused only when finished (summary.json, written last, is there) and, for a
+    run that states its options (a run file), made with the same options and seed (common practice for
+    resumable batch jobs, no source)."""
+    from cwsearch.job.noisemodel import reusable_fit
+
+    data, _, _ = dataset
+    arr, checksum = read_dataset(data), dataset_checksum(data)
+    run = tmp_path / "run"
+    table, summary = run / "noise" / "noise_model.ecsv", run / "noise" / "summary.json"
+
+    def resolve(options=FAST, seed=0):
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            return resolve_noise_model(arr, run, "estimate", noise=NoiseSettings(red_components=K),
+                                       dataset_checksum=checksum, options=options, seed=seed).description["reused"]
+
+    assert not resolve() and resolve()                 # fitted, then reused
+    assert not resolve(seed=1) and resolve(seed=1)     # another seed: fitted again
+    assert not resolve(options=NoiseOptions(starts=2, iterations=0, upper_limits=False, no_plots=True))
+    summary.unlink()                                   # as a kill between the table and the summary leaves it
+    assert not reusable_fit(table, checksum)
+    assert not resolve() and summary.is_file()
+    # a stage command states no fit options: any finished fit of this dataset is reused (`cwsearch noise` sets them)
+    assert resolve(options=None, seed=7)
+    assert not reusable_fit(table, "0" * 64)
+
+
 def test_dataset_model_is_todays_behaviour_and_ignored_settings_are_not_silent(dataset):
     data, run, _ = dataset
     arr = read_dataset(data)

@@ -205,9 +205,23 @@ def test_content_of_the_sections(run_folder):
     assert "GW frequency" in text and "[Hz]" in text and "host probability" in text
     # galaxy-limits preview: one row per galaxy with its tightest limit (1e9 at 1e-8 Hz for GALA)
     assert text.count("GALA") == 1 and text.count("GALB") == 1 and "1e+09" in text and "7e+09" in text
+    # issue 15: every estimate lists the truth beside it. Sky: the truth (141.0, -27.5) lies 1.016° from the
+    # posterior mean direction (140.0, -28.0) (spherical law of cosines, evaluated independently of the report)
+    assert "truth (injection.json) ra 141.00°, dec -27.50°, 1.02° from the mean direction" in text
+    assert "inside the 90 % radius" in text
+    # hosts: a shaded truth row with the injected position
+    hosts = html_text[html_text.index('<section id="hosts">'):html_text.index('<section id="limits">')]
+    assert '<tr class="truth">' in hosts and "141.00" in hosts
+    # limits: the injected strain 1.2e-14 at 12 nHz beside the limit there; the limits (1e-14 at 10 nHz,
+    # 2e-14 at 20 nHz) lie on h ∝ f, a straight line in log-log, so log-log interpolation gives 1.2e-14 at 12 nHz
+    assert "Truth (injection.json): strain amplitude h0 = 1.2e-14 at 12 nHz" in text
+    assert "the sky-averaged 95 % limit there is 1.2e-14" in text
     # issue 14: the Bayes factor under both backgrounds side by side, human labels, and which one decides
     assert "Hellings–Downs-correlated background" in text and "uncorrelated common background" in text
-    assert "61.90 ± 0.40" in text and "55.20 ± 1.80" in text and "importance ESS 180 of 400" in text
+    # the reweighted figure carries the sampled error and the reweighting one: sqrt(1.8² + 0.4²) = 1.84; their
+    # difference only the reweighting one (ln B_unc - ln B_HD = ln mean(w)): 61.9 - 55.2 = 6.70 ± 0.4
+    assert "61.90 ± 1.84" in text and "55.20 ± 1.80" in text and "importance ESS 180 of 400" in text
+    assert "Difference (uncorrelated minus Hellings–Downs): 6.70 ± 0.4" in text
     assert "The Hellings–Downs row decides" in text and "the binary is preferred" in text
     # the noise-model section is there even without a noise stage
     assert "noise/summary.json" in text
@@ -276,3 +290,107 @@ def test_background_comparison_names_the_deciding_model():
         "run_model": "none", "log_bayes_factor": {"none": 3.0}, "note": "no common process in the noise model"}})
     assert len(table["rows"]) == 1 and "Only one background model" in " ".join(text)
     assert background_comparison_view({}) == (None, [])
+
+
+def test_noise_table_lists_the_true_noise(run_folder, tmp_path):
+    """Fitted noise per pulsar with the true noise of injection.json beside it (issue 15: every estimate
+    lists the truth); the common process with the injected background."""
+    import shutil as sh
+
+    run = tmp_path / "run"
+    sh.copytree(run_folder, run)
+    data = tmp_path / "data"
+    sh.copytree(run_folder.parent / "data", data)
+    dataset = json.loads((run / "dataset.json").read_text())
+    dataset["path"] = str(data / "demo")
+    (run / "dataset.json").write_text(json.dumps(dataset))
+    injection = json.loads((data / "demo" / "injection.json").read_text())
+    injection["true_noise"] = {"SIMPSR01": {"white": {"RCVR1": {"sigma_scale": 1.3, "sigma_added": 0.0}},
+                                            "red": {"log10_amplitude": -14.1, "index": 3.5}}}
+    injection["background"] = {"log10_amplitude": -14.5, "index": 13 / 3, "components": 30}
+    (data / "demo" / "injection.json").write_text(json.dumps(injection))
+    (run / "noise").mkdir()
+    (run / "noise" / "summary.json").write_text(json.dumps({
+        "common": {"log10_amplitude": -14.4, "log10_amplitude_err": 0.2, "index": 13 / 3},
+        "pulsars": [{"name": "SIMPSR01", "white": {"RCVR1": {"sigma_scale": 1.27, "sigma_scale_err": 0.04}},
+                     "red_noise": {"model": "white + red", "claimed": True, "log10_amplitude": -14.2,
+                                   "log10_amplitude_err": 0.3, "index": 3.3, "index_err": 0.6},
+                     "goodness_of_fit": {"flagged": False}}]}))
+    text = parse(build_report(run)).joined
+    assert "red log10 amplitude" in text and "-14.2 ± 0.3" in text and "3.3 ± 0.6" in text
+    assert "true red noise (injection.json)" in text and "log10 A -14.1, index 3.5" in text
+    assert "RCVR1: 1.27 ± 0.04" in text and "RCVR1: 1.3" in text
+    assert "log10 amplitude -14.5, index 4.33" in text
+
+
+def _captured(monkeypatch, *modules):
+    """Replace save_figure in ``modules`` so that the figures are kept for inspection (and closed later)."""
+    figures = []
+    for module in modules:
+        monkeypatch.setattr(module, "save_figure", lambda fig, path: figures.append(fig))
+    return figures
+
+
+def _truth_artists(fig):
+    """Artists labelled as the truth, across every axes and legend of ``fig``."""
+    found = []
+    for ax in fig.axes:
+        for artist in list(ax.lines) + list(ax.collections):
+            label = str(artist.get_label())
+            if "injection.json" in label or label.startswith("true"):
+                found.append(artist)
+    return found
+
+
+def test_report_figures_overplot_the_truth(monkeypatch):
+    """Issue 15: the scan spectrum, the dataset sky and the galaxy chirp-mass limits draw the injected binary
+    at its true values (frequency, position, chirp mass); invented inputs, the check is the position drawn."""
+    from astropy.table import Table
+
+    import cwsearch.data.plots as data_plots
+    import cwsearch.stages.limits.plots as limits_plots
+    import cwsearch.stages.scan.plots as scan_plots
+    from cwsearch.core.plotting import _wrap_ra, pyplot
+
+    truth = {"ra": 141.0, "dec": -27.5, "frequency": 1.2e-8, "chirp_mass": 2e9, "strain": 1.2e-14}
+    figures = _captured(monkeypatch, data_plots, limits_plots, scan_plots)
+    spectrum = Table({"frequency": [5e-9, 1e-8, 2e-8], "fe_max": [3.0, 9.0, 4.0], "fp": [40.0, 41.0, 39.0]})
+    candidates = Table({"frequency": [1e-8], "fe": [9.0]})
+    scan_plots.spectrum_plot("x.png", spectrum, candidates, {"fe": [("t", 8.0)], "fp": [("t", 50.0)]}, truth=truth)
+    lines = _truth_artists(figures[-1])
+    assert len(lines) == 2 and all(np.allclose(line.get_xdata(), 1.2e-8, rtol=1e-12) for line in lines)
+    galaxies = Table({"name": ["GALA", "GALA"], "distance": [16.0, 16.0], "frequency": [5e-9, 2e-8],
+                      "chirp_mass_95": [3e9, 1e9]})
+    limits_plots.galaxy_plot("y.png", galaxies, truth)
+    (points,) = _truth_artists(figures[-1])
+    assert np.allclose(points.get_offsets(), [[12.0, 2e9]], rtol=1e-12)
+    monkeypatch.setattr(data_plots, "injected_binary", lambda array: truth)
+    from conftest import make_tiny_array
+
+    data_plots.dataset_overview(make_tiny_array(), "z.png")
+    (points,) = _truth_artists(figures[-1])
+    assert np.allclose(points.get_offsets(), [[_wrap_ra(np.radians(141.0)), np.radians(-27.5)]], rtol=1e-12)
+    for fig in figures:
+        pyplot().close(fig)
+
+
+def test_noise_figures_overplot_the_true_noise(monkeypatch):
+    """The common-process likelihood map marks the injected background; the per-pulsar power spectra draw the
+    true red noise as a power law P(f) of the injected amplitude and index (invented inputs)."""
+    from types import SimpleNamespace
+
+    import cwsearch.stages.noise.plots as noise_plots
+    from cwsearch.core.plotting import pyplot
+
+    figures = _captured(monkeypatch, noise_plots)
+    truth = {"background": {"log10_amplitude": -14.5, "index": 13 / 3}, "pulsars": {}}
+    common = SimpleNamespace(log10_amplitude=-14.4, log10_amplitude_err=0.1, index=13 / 3, index_err=0.3,
+                             index_fixed=False, log_likelihood=0.0, statistic=12.0)
+    fit = SimpleNamespace(common=common, bounds=SimpleNamespace(common_log10_amplitude=(-18.0, -11.0),
+                                                                common_index=(0.0, 7.0)))
+    noise_plots.common_contour_plot("c.png", lambda a, g: -0.5 * ((a + 14.4) / 0.1) ** 2 - 0.5 * (g - 4.3) ** 2,
+                                    fit, 6, "hellings-downs", truth=truth)
+    (points,) = _truth_artists(figures[-1])
+    assert np.allclose(points.get_offsets(), [[-14.5, 13 / 3]], rtol=1e-12)
+    for fig in figures:
+        pyplot().close(fig)

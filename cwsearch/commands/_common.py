@@ -2,16 +2,14 @@
 
 from __future__ import annotations
 
-NOISE_MODEL_HELP = ("noise model every stage uses: 'estimate' (default: fit it from the residuals, or reuse "
-                    "RUN_DIR/noise/ fitted on the same dataset), 'dataset' (the values in the dataset files, "
-                    "fixed) or the path of a noise table (noise_model.ecsv)")
+from ..core.options import add_options, options_from_args
+from ..physics.noise_settings import NoiseSettings
+from ..stages.noise.options import NoiseOptions
 
 
 def add_noise_model_argument(parser):
-    """``--noise-model estimate|dataset|FILE``."""
-    parser.add_argument("--noise-model", default="estimate", metavar="estimate|dataset|FILE", help=NOISE_MODEL_HELP)
-
-
+    """``--noise-model estimate|dataset|FILE`` (the ``[noise] model`` field of the noise stage's options)."""
+    add_options(parser, NoiseOptions, include=("model",))
 
 
 def add_dataset_arguments(parser, out_required=True):
@@ -33,42 +31,16 @@ def add_mjd_range_argument(parser):
 
 
 def add_noise_arguments(parser):
-    """Noise-model options (docs/design.md §5)."""
-    g = parser.add_argument_group("noise model")
-    add_noise_model_argument(g)
-    g.add_argument("--red-components", type=int, default=30, metavar="K",
-                   help="Fourier frequencies k/T_span, k=1..K, for red processes (default 30)")
-    g.add_argument("--no-pulsar-red-noise", action="store_true",
-                   help="ignore per-pulsar red noise given in the dataset (--noise-model dataset)")
-    g.add_argument("--common-log10-amplitude", type=float, default=None, metavar="LOG10A",
-                   help="add a common red process with this log10 amplitude (--noise-model dataset; default: none)")
-    g.add_argument("--common-index", type=float, default=13 / 3, metavar="GAMMA",
-                   help="spectral index of the common process (default 13/3)")
-    g.add_argument("--no-white-noise-factors", action="store_true",
-                   help="ignore the dataset's per-backend white-noise factors (noise.ecsv sigma_scale, "
-                        "sigma_added); run-file key [noise] white_noise_factors")
-
-    g.add_argument("--common-correlation", choices=("hellings-downs", "uncorrelated", "none"),
-                   default="hellings-downs",
-                   help="how the common process couples the pulsars: hellings-downs (default; array-level "
-                        "engine), uncorrelated (same spectrum, independent pulsars) or none (leave it out)")
-    g.add_argument("--common-components", type=int, default=None, metavar="K",
-                   help="Fourier frequencies of the common process, at most --red-components (default: the same; "
-                        "fewer make the correlated engine much faster where the background is below the white noise)")
+    """Noise-model options (docs/design.md §5): ``--noise-model`` and every field of
+    :class:`~cwsearch.physics.noise_settings.NoiseSettings` (the run file's ``[noise]`` keys)."""
+    add_noise_model_argument(parser)
+    add_options(parser, NoiseSettings)
 
 
 def noise_settings(args):
-    """:class:`~cwsearch.physics.noise.NoiseSettings` from parsed noise options."""
-    # lazy: keeps `cwsearch COMMAND --help` fast
-    from ..physics.noise import NoiseSettings
-
-    return NoiseSettings(red_components=args.red_components,
-                         pulsar_red_noise=not args.no_pulsar_red_noise,
-                         common_log10_amplitude=args.common_log10_amplitude,
-                         common_index=args.common_index,
-                         white_noise_factors=not getattr(args, "no_white_noise_factors", False),
-                         common_correlation=getattr(args, "common_correlation", "hellings-downs"),
-                         common_components=getattr(args, "common_components", None))
+    """:class:`~cwsearch.physics.noise_settings.NoiseSettings` from parsed noise options (options not on
+    this command line take their defaults)."""
+    return options_from_args(NoiseSettings, args)
 
 
 def resolve_noise(args, array, *, progress=None):
@@ -164,14 +136,3 @@ def run_folder_guard(run_dir, array=None, dataset=None):
         return stage_guard(run_dir)
     checksum = dataset_checksum(dataset)
     return stage_guard(run_dir, checksum, dataset_record=lambda: dataset_summary(array, dataset, checksum))
-
-
-def add_grid_arguments(group, defaults, fmax_help):
-    """Frequency grid and sky resolution options shared by ``scan`` and ``limits``."""
-    group.add_argument("--fmin", type=float, default=None, metavar="HZ",
-                       help="lowest GW frequency (default 1/T_span)")
-    group.add_argument("--fmax", type=float, default=None, metavar="HZ", help=fmax_help)
-    group.add_argument("--oversample", type=int, default=defaults["oversample"], metavar="N",
-                       help=f"frequency spacing 1/(N*T_span) (default {defaults['oversample']})")
-    group.add_argument("--nside", type=int, default=defaults["nside"],
-                       help=f"HEALPix resolution, a power of two; 12*nside^2 pixels (default {defaults['nside']})")

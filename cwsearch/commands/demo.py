@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from ..core.errors import InputError
-from .run import add_output_arguments, print_result, with_noise_model
+from .run import add_output_arguments, print_result, with_execution, with_noise_model
 
 DESCRIPTION = """\
 Run the whole job on the bundled INVENTED demo data: 20 pulsars (SIMPSR01..20)
@@ -108,7 +108,7 @@ def demo_config(out, *, quick=False, seed=0):
     data = {"title": "cwsearch demo (invented data)" + (", quick settings" if quick else ""),
             "dataset": str(dataset), "out": str(Path(out).resolve()), "seed": int(seed), **settings}
     if quick:  # the reduced limits grid is smaller than the cost of starting worker processes
-        data["engine"] = {"kind": "local", "workers": 1}
+        data["execution"] = {"workers": 1}
     return parse_config(to_toml(data), path=None, base=Path.cwd())
 
 
@@ -117,7 +117,8 @@ def run(args) -> int:
     from ..job.pipeline import run_pipeline
 
     out = args.out or ("runs/demo-quick" if args.quick else "runs/demo")
-    config = with_noise_model(demo_config(out, quick=args.quick, seed=args.seed), args.noise_model)
+    config = with_execution(with_noise_model(demo_config(out, quick=args.quick, seed=args.seed), args.noise_model),
+                            args.workers, args.scheduler)
     result = run_pipeline(config, force=args.force, quiet=args.quiet)
     print_result(result, args)
     if not args.json and not args.quiet:

@@ -3,11 +3,12 @@
 from __future__ import annotations
 
 import json
-from dataclasses import fields, replace
+from dataclasses import replace
 from pathlib import Path
 
 from ..core.errors import InputError
-
+from ..core.options import add_options, argument_group, options_from_args as build_options
+from ..stages.followup.options import FollowupOptions
 from ._common import (add_dataset_arguments, add_noise_arguments, load_array, resolve_noise,
                       run_folder_guard, run_stage_with_noise)
 
@@ -27,51 +28,20 @@ EXAMPLE = (
 
 def add_arguments(parser):
     add_dataset_arguments(parser)
-    g = parser.add_argument_group("what to follow")
-    g.add_argument("--candidate", default=None, metavar="K|candidate_K",
-                   help="follow row K (1 = best) of scan/candidates.ecsv; its name candidate_K works too")
-    g.add_argument("--top", type=int, default=1, metavar="N",
-                   help="follow the N best candidates (default 1; a subfolder each when N > 1)")
+    add_options(parser, FollowupOptions)   # names, defaults and help: the fields of FollowupOptions
+    g = argument_group(parser, "what to follow")   # the [followup] keys the pipeline reads (not options fields)
     g.add_argument("--fap-threshold", type=float, default=None, metavar="P",
                    help="follow the best candidates whose analytic false-alarm probability is below P (at most "
                         "--max-candidates); run-file key [followup] fap_threshold")
     g.add_argument("--max-candidates", type=int, default=None, metavar="N",
                    help="with --fap-threshold: at most N candidates (default 3); run-file key "
                         "[followup] max_candidates")
-    g.add_argument("--frequency", type=float, default=None, metavar="HZ", help="explicit target frequency [Hz]")
-    g.add_argument("--ra", type=float, default=None, metavar="DEG", help="explicit target right ascension [deg]")
-    g.add_argument("--dec", type=float, default=None, metavar="DEG", help="explicit target declination [deg]")
-    g.add_argument("--all-sky", action="store_true", help="no target: start from the prior over the whole band")
-    g.add_argument("--frequency-window", type=float, default=5.0, metavar="BINS",
-                   help="frequency prior: this many bins of 1/T_span either side of the target (default 5)")
-    g.add_argument("--max-frequency", type=float, default=1e-7, metavar="HZ",
-                   help="upper edge of the --all-sky frequency band (default 1e-7 Hz)")
-    m = parser.add_argument_group("signal model")
-    m.add_argument("--earth-term-only", action="store_true", help="drop the pulsar term")
-    m.add_argument("--evolution", default="full", choices=("full", "pulsar-frequency", "monochromatic"),
-                   help="frequency evolution (default full)")
-    m.add_argument("--strain-prior", default="log-uniform", choices=("log-uniform", "uniform"),
-                   help="log-uniform for detection (default), uniform for upper limits")
-    m.add_argument("--phase-grid", type=int, default=0, metavar="K",
-                   help="points of the pulsar-phase grid (default 0: chosen per pulsar, error < 1e-13)")
-    s = parser.add_argument_group("sampler")
-    s.add_argument("--ess", type=float, default=1000, help="stop at this effective sample size (default 1000)")
-    s.add_argument("--max-iterations", type=int, default=20000, metavar="N", help="iteration cap (default 20000)")
-    s.add_argument("--max-time", type=float, default=None, metavar="SECONDS", help="wall-time cap (default none)")
-    s.add_argument("--temperatures", type=int, default=10, metavar="N", help="temperatures (default 10)")
-    s.add_argument("--max-temperature", type=float, default=1e6, metavar="T",
-                   help="hottest temperature (default 1e6; raise it if the evidence error is large)")
-    s.add_argument("--walkers", type=int, default=32, metavar="N", help="walkers per temperature (default 32)")
-    s.add_argument("--checkpoint-every", type=int, default=100, metavar="N",
-                   help="write the checkpoint every N iterations (default 100)")
-    s.add_argument("--adapt-iterations", type=int, default=500, metavar="N",
-                   help="adapt the temperature ladder during the first N iterations (default 500)")
-    s.add_argument("--max-temperatures", type=int, default=None, metavar="N",
-                   help="the ladder may grow to N temperatures where neighbours rarely swap (default 3 x "
-                        "--temperatures, at most 40; --max-temperatures equal to --temperatures keeps it fixed)")
-    s.add_argument("--resume", action="store_true", help="continue from the checkpoint in the output folder")
-    parser.add_argument("--no-plots", action="store_true", help="skip the PNG plots")
     add_noise_arguments(parser)
+
+
+def options_from_args(args):
+    """:class:`cwsearch.stages.followup.options.FollowupOptions` from parsed arguments."""
+    return build_options(FollowupOptions, args)
 
 
 def threshold_top(run_dir, fap_threshold, max_candidates) -> int:
@@ -95,9 +65,9 @@ def threshold_top(run_dir, fap_threshold, max_candidates) -> int:
 
 def run(args) -> int:
     # lazy: keeps `cwsearch COMMAND --help` fast
-    from ..stages.followup.stage import FollowupOptions, run_followup
+    from ..stages.followup.stage import run_followup
 
-    options = FollowupOptions(**{f.name: getattr(args, f.name) for f in fields(FollowupOptions)})
+    options = options_from_args(args)
     if args.fap_threshold is not None or args.max_candidates is not None:
         options = replace(options, top=threshold_top(args.out, args.fap_threshold,
                                                      3 if args.max_candidates is None else args.max_candidates))
@@ -130,4 +100,4 @@ def run(args) -> int:
     return 0
 
 
-__all__ = ["DESCRIPTION", "EXAMPLE", "add_arguments", "run"]
+__all__ = ["DESCRIPTION", "EXAMPLE", "add_arguments", "run", "options_from_args", "threshold_top"]

@@ -6,8 +6,10 @@ from __future__ import annotations
 import json
 
 from ..core.safeio import escape_text
-from ._common import (add_dataset_arguments, add_grid_arguments, add_noise_arguments, load_array,
-                      resolve_noise, run_folder_guard, run_stage_with_noise)
+from ..core.options import add_options, options_from_args as build_options
+from ..stages.limits.options import LimitsOptions
+from ._common import (add_dataset_arguments, add_noise_arguments, load_array, resolve_noise, run_folder_guard,
+                      run_stage_with_noise)
 
 DESCRIPTION = """\
 Compute 95 % upper limits on the strain amplitude h0 of a circular binary at
@@ -35,53 +37,15 @@ EXAMPLE = """\
   cwsearch limits mydata --out runs/first --scheduler tcp://10.0.0.5:8786
   cwsearch limits mydata --out runs/first --mcmc-check 300"""
 
-#: defaults (equal to cwsearch.stages.limits.stage.LimitsOptions; a test checks they agree)
-_DEFAULTS = {"oversample": 1, "nside": 8, "method": "bayes", "quadrature": "standard"}
-
-
 def add_arguments(parser):
     add_dataset_arguments(parser)
-    d = _DEFAULTS
-    g = parser.add_argument_group("limits")
-    add_grid_arguments(g, d, "highest GW frequency (default 1e-7, at most 1/(2 x median TOA spacing))")
-    g.add_argument("--sky-frequency", type=float, default=None, metavar="HZ",
-                   help="frequency of sky_limits.ecsv and the sky map (default: the most sensitive bin)")
-    g.add_argument("--method", choices=("bayes", "frequentist", "both"), default=d["method"],
-                   help="bayes (default): quadrature posterior, uniform strain prior (the frequentist "
-                        "limit is reported alongside); frequentist: Fe-based only; both: frequentist "
-                        "columns in the sky and galaxy tables too")
-    g.add_argument("--quadrature", choices=("fast", "standard", "fine"), default=d["quadrature"],
-                   help="angle-grid size of the Bayesian quadrature (default standard, ~0.3 %% worst case)")
-    g.add_argument("--galaxy", nargs=4, action="append", default=None,
-                   metavar=("NAME", "RA", "DEC", "DISTANCE_MPC"),
-                   help="chirp-mass limits for a galaxy at RA, DEC [deg] and luminosity distance [Mpc] "
-                        "(repeatable)")
-    g.add_argument("--catalog", default=None, metavar="FILE",
-                   help="galaxy catalogue (ECSV or CSV: name, ra, dec, distance [Mpc] or redshift)")
-    g.add_argument("--select", action="append", default=None, metavar="NAME[,NAME..]",
-                   help="galaxies of --catalog to compute chirp-mass limits for (repeatable)")
-    g.add_argument("--mcmc-check", type=int, default=None, metavar="PIXEL",
-                   help="also sample the posterior at PIXEL (sky frequency) and print both limits")
-    g.add_argument("--no-plots", action="store_true", help="do not draw the PNG plots")
-    e = parser.add_argument_group("execution")
-    e.add_argument("--workers", type=int, default=None, metavar="N",
-                   help="local worker processes (default: one per CPU; 1 = no extra processes)")
-    e.add_argument("--scheduler", default=None, metavar="ADDRESS",
-                   help="run the pixel x frequency tasks on a running Dask cluster, e.g. tcp://10.0.0.5:8786")
+    add_options(parser, LimitsOptions)   # names, defaults and help: the fields of LimitsOptions
     add_noise_arguments(parser)
 
 
 def options_from_args(args):
-    """:class:`cwsearch.stages.limits.stage.LimitsOptions` from parsed arguments."""
-    # lazy: keeps `cwsearch COMMAND --help` fast
-    from ..stages.limits.stage import LimitsOptions
-
-    galaxy = tuple((str(n), ra, dec, dist) for n, ra, dec, dist in (args.galaxy or ()))
-    return LimitsOptions(fmin=args.fmin, fmax=args.fmax, oversample=args.oversample, nside=args.nside,
-                         sky_frequency=args.sky_frequency, method=args.method, workers=args.workers,
-                         scheduler=args.scheduler, galaxy=galaxy, catalog=args.catalog,
-                         select=tuple(args.select or ()), mcmc_check=args.mcmc_check,
-                         quadrature=args.quadrature, no_plots=args.no_plots)
+    """:class:`cwsearch.stages.limits.options.LimitsOptions` from parsed arguments."""
+    return build_options(LimitsOptions, args)
 
 
 def _fmt(v):
@@ -131,7 +95,7 @@ def run(args) -> int:
     lo, hi = summary["frequency_range"]
     print(f"95 % strain upper limits at {summary['n_frequencies']} frequencies {lo:.3e}-{hi:.3e} Hz x "
           f"{summary['n_pixels']} sky pixels (nside {summary['nside']}) in {summary['wall_time']:.1f} s "
-          f"on {summary['engine']}")
+          f"on {summary['runner']}")
     if summary.get("fmax_note"):
         print(f"  note: {summary['fmax_note']}")
     for line in method_lines(summary):

@@ -5,6 +5,9 @@ from __future__ import annotations
 
 import json
 
+from ..core.options import add_options, options_from_args as build_options
+from ..physics.noise_settings import NoiseSettings
+from ..stages.noise.options import NoiseOptions
 from ._common import add_dataset_arguments, load_array
 
 DESCRIPTION = """\
@@ -33,35 +36,14 @@ EXAMPLE = """\
 
 def add_arguments(parser):
     add_dataset_arguments(parser)
-    g = parser.add_argument_group("noise fit")
-    g.add_argument("--red-components", type=int, default=30, metavar="K",
-                   help="Fourier frequencies k/T_span, k=1..K, of red processes (default 30)")
-    g.add_argument("--no-common", action="store_true", help="do not fit a common red process")
-    g.add_argument("--fixed-common-index", type=float, default=13 / 3, metavar="GAMMA",
-                   help="the common spectral index, fixed (default 13/3, a background of circular binaries)")
-    g.add_argument("--free-common-index", action="store_true",
-                   help="fit the common index too (a free index can absorb a loud binary into the noise)")
-    g.add_argument("--red-noise-threshold", type=float, default=9.0, metavar="X",
-                   help="2 dlnL needed to claim red noise in a pulsar (default 9)")
-    g.add_argument("--min-toas-red", type=int, default=40, metavar="N",
-                   help="pulsars with fewer TOAs are fitted white only (default 40)")
-    g.add_argument("--starts", type=int, default=3, metavar="N", help="optimiser starts per fit (default 3)")
-    g.add_argument("--iterations", type=int, default=1, metavar="N",
-                   help="extra rounds of common fit and pulsar refit (default 1)")
-    g.add_argument("--no-upper-limits", action="store_true", help="skip the 95%% amplitude upper limits")
-    g.add_argument("--no-plots", action="store_true", help="do not draw the PNG plots")
+    # the noise command always fits (model 'estimate'); of the noise settings it uses the Fourier basis size
+    add_options(parser, NoiseSettings, include=("red_components",), group="noise fit")
+    add_options(parser, NoiseOptions, exclude=("model",))   # names, defaults and help: the fields of NoiseOptions
 
 
 def options_from_args(args):
-    """:class:`cwsearch.stages.noise.stage.NoiseOptions` from parsed arguments."""
-    # lazy: keeps `cwsearch COMMAND --help` fast
-    from ..stages.noise.stage import NoiseOptions
-
-    return NoiseOptions(model="estimate", fit_common=not args.no_common, fixed_common_index=args.fixed_common_index,
-                        free_common_index=args.free_common_index,
-                        red_noise_threshold=args.red_noise_threshold, min_toas_red=args.min_toas_red,
-                        starts=args.starts, iterations=args.iterations, upper_limits=not args.no_upper_limits,
-                        no_plots=args.no_plots).validate()
+    """:class:`cwsearch.stages.noise.options.NoiseOptions` from parsed arguments (model: ``estimate``)."""
+    return build_options(NoiseOptions, args, exclude=("model",), model="estimate").validate()
 
 
 def format_fit(summary) -> str:
@@ -99,7 +81,6 @@ def run(args) -> int:
     from ..core.errors import InputError
     from ..data.dataset import dataset_checksum
     from ..job.pipeline import stage_seed
-    from ..physics.noise import NoiseSettings
     from ..stages.noise.stage import run_noise
 
     options = options_from_args(args)

@@ -7,6 +7,7 @@ from dataclasses import replace
 from pathlib import Path
 
 from ..core.errors import InputError
+from ..stages import STAGES
 
 DESCRIPTION = """\
 Run the whole job from a TOML run file: noise model -> scan -> follow-up of
@@ -15,9 +16,10 @@ limits -> report.html. Every stage uses one noise model ([noise] model or
 --noise-model: 'estimate', the default, fits it from the residuals in the
 noise stage; 'dataset' uses the dataset files' values; or a noise table).
 
-The run file names the dataset, the run folder, the seed, the engine and one
-section per stage ([noise], [scan], [followup], [hosts], [limits], [engine]);
-runs/example.toml documents every key. The whole file is checked before any
+The run file names the dataset, the run folder, the seed, where the work runs
+([execution]: --workers, --scheduler override it) and one section per stage
+([noise], [scan], [followup], [hosts], [limits]); runs/example.toml documents
+every key (each is the matching command's option, dashes -> underscores). The whole file is checked before any
 work starts: unknown keys and wrong types are errors (exit status 2).
 
 Finished stages whose inputs have not changed (dataset checksum, resolved
@@ -34,7 +36,8 @@ EXAMPLE = """\
   cwsearch run runs/myrun.toml --check            (validate and print the resolved file; no work)
   cwsearch run runs/myrun.toml --json > summary.json"""
 
-STAGE_CHOICES = ("noise", "scan", "followup", "hosts", "limits", "all")
+#: --force choices: every stage of the registry (cheap to import: options only), and "all"
+STAGE_CHOICES = tuple(stage.name for stage in STAGES) + ("all",)
 
 
 def add_output_arguments(parser):
@@ -49,6 +52,13 @@ def add_output_arguments(parser):
                         help="noise model of every stage, overriding the run file's [noise] model: 'estimate' "
                              "(fit it in the noise stage, or reuse RUN_DIR/noise/ fitted on the same dataset), "
                              "'dataset' (the dataset files' values, fixed) or the path of a noise table")
+    g = parser.add_argument_group("execution (overrides the run file's [execution]; never changes a result)")
+    g.add_argument("--workers", type=int, default=None, metavar="N",
+                   help="local worker processes of the scan and limits stages (0: one per CPU); run-file key "
+                        "[execution] workers")
+    g.add_argument("--scheduler", default=None, metavar="ADDRESS",
+                   help="address of a running Dask scheduler, e.g. tcp://10.0.0.5:8786; run-file key [execution] "
+                        "scheduler")
 
 
 def with_noise_model(config, model):
@@ -64,6 +74,20 @@ def with_noise_model(config, model):
     options = dict(config.options)
     options["noise"] = replace(options["noise"], model=model)
     return replace(config, options=options)
+
+
+def with_execution(config, workers=None, scheduler=None):
+    """``config`` with its ``[execution]`` workers / scheduler replaced by the command line's (when given)."""
+    if workers is None and scheduler is None:
+        return config
+    if workers is not None and workers < 0:
+        raise InputError(f"option --workers: must be >= 0 (0: one per CPU), not {workers}")
+    execution = dict(config.execution)
+    if workers is not None:
+        execution["workers"] = int(workers)
+    if scheduler is not None:
+        execution["scheduler"] = str(scheduler)
+    return replace(config, execution=execution)
 
 
 def add_arguments(parser):
@@ -94,7 +118,8 @@ def run(args) -> int:
     from ..job.config import load_config
     from ..job.pipeline import run_pipeline
 
-    config = with_noise_model(load_config(args.runfile), args.noise_model)
+    config = with_execution(with_noise_model(load_config(args.runfile), args.noise_model), args.workers,
+                            args.scheduler)
     if args.check:
         print(config.to_toml(), end="")
         return 0
@@ -104,6 +129,6 @@ def run(args) -> int:
 
 
 __all__ = [
-    "DESCRIPTION", "EXAMPLE", "add_arguments", "run", "STAGE_CHOICES", "add_output_arguments",
+    "DESCRIPTION", "EXAMPLE", "add_arguments", "run", "STAGE_CHOICES", "add_output_arguments", "with_execution",
     "print_result",
 ]

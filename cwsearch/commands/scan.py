@@ -6,8 +6,10 @@ import json
 import math
 import time
 
-from ._common import (add_dataset_arguments, add_grid_arguments, add_noise_arguments, load_array,
-                      resolve_noise, run_folder_guard, run_stage_with_noise)
+from ..core.options import add_options, options_from_args as build_options
+from ..stages.scan.options import ScanOptions
+from ._common import (add_dataset_arguments, add_noise_arguments, load_array, resolve_noise, run_folder_guard,
+                      run_stage_with_noise)
 
 DESCRIPTION = """\
 Scan every GW frequency from 1/T_span (spacing 1/(oversample*T_span)) up to
@@ -28,48 +30,15 @@ EXAMPLE = """\
   cwsearch scan mydata --out runs/deep --fmax 2e-7 --oversample 4 --nside 32 --null-sims 100
   cwsearch scan mydata --out runs/fp --statistic fp --common-log10-amplitude -14.6"""
 
-#: defaults (equal to cwsearch.stages.scan.stage.ScanOptions; a test checks they agree)
-_DEFAULTS = {"oversample": 2, "nside": 16, "statistic": "both", "null_sims": 0, "fap_threshold": 0.5,
-             "max_candidates": 20, "merge_angle": 180.0}
-
-
 def add_arguments(parser):
     add_dataset_arguments(parser)
-    d = _DEFAULTS
-    g = parser.add_argument_group("scan")
-    add_grid_arguments(g, d, "highest GW frequency (default 1/(2 x median TOA spacing), at most 1e-6)")
-    g.add_argument("--statistic", choices=("fe", "fp", "both"), default=d["statistic"],
-                   help="fe: Earth-term sky scan; fp: pulsar-term (no sky); both (default)")
-    g.add_argument("--null-sims", type=int, default=d["null_sims"], metavar="N",
-                   help="noise-only scans of the same array for the empirical FAP (default 0: none)")
-    g.add_argument("--fap-threshold", type=float, default=d["fap_threshold"], metavar="P",
-                   help=f"list candidates with analytic FAP below P; the loudest is always listed "
-                        f"(default {d['fap_threshold']})")
-    g.add_argument("--max-candidates", type=int, default=d["max_candidates"], metavar="N",
-                   help=f"at most N candidates (default {d['max_candidates']})")
-    g.add_argument("--merge-angle", type=float, default=d["merge_angle"], metavar="DEG",
-                   help=f"peaks within DEG degrees and one frequency bin 1/T_span are one candidate "
-                        f"(default {d['merge_angle']:g})")
-    g.add_argument("--no-plots", action="store_true", help="do not draw the PNG plots")
-    e = parser.add_argument_group("engine")
-    e.add_argument("--workers", type=int, default=None, metavar="N",
-                   help="run frequency chunks and noise-only scans in N local worker processes "
-                        "(default: in this process, every core through threads)")
-    e.add_argument("--scheduler", default=None, metavar="ADDRESS",
-                   help="send them to a running Dask scheduler, e.g. tcp://10.0.0.5:8786 "
-                        "(the numbers do not depend on the engine)")
+    add_options(parser, ScanOptions)   # names, defaults and help: the fields of ScanOptions
     add_noise_arguments(parser)
 
 
 def options_from_args(args):
-    """:class:`cwsearch.stages.scan.stage.ScanOptions` from parsed arguments."""
-    # lazy: keeps `cwsearch COMMAND --help` fast
-    from ..stages.scan.stage import ScanOptions
-
-    return ScanOptions(fmin=args.fmin, fmax=args.fmax, oversample=args.oversample, nside=args.nside,
-                       statistic=args.statistic, null_sims=args.null_sims, fap_threshold=args.fap_threshold,
-                       max_candidates=args.max_candidates, merge_angle=args.merge_angle, no_plots=args.no_plots,
-                       workers=args.workers, scheduler=args.scheduler)
+    """:class:`cwsearch.stages.scan.options.ScanOptions` from parsed arguments."""
+    return build_options(ScanOptions, args)
 
 
 def format_candidates(table, n=10):

@@ -5,7 +5,9 @@ from __future__ import annotations
 
 import json
 
+from ..core.options import add_options, options_from_args as build_options
 from ..core.safeio import escape_text
+from ..stages.targets.options import TargetsOptions
 from ._common import (add_dataset_arguments, add_noise_arguments, load_array, resolve_noise, run_folder_guard,
                       run_stage_with_noise)
 
@@ -32,64 +34,13 @@ EXAMPLE = """\
 
 def add_arguments(parser):
     add_dataset_arguments(parser)
-    g = parser.add_argument_group("targets")
-    g.add_argument("--catalog", required=True, metavar="FILE",
-                   help="target catalogue, ECSV or CSV: name, ra, dec [deg], distance [Mpc] or redshift; "
-                        "optional period, period_err [d]")
-    g.add_argument("--columns", default=None, metavar="MAP",
-                   help="map our column names to the file's, e.g. ra=RAJ2000,dec=DEJ2000,distance=Dist")
-    g.add_argument("--fmin", type=float, default=None, metavar="HZ", help="lowest GW frequency (default 1/T_span)")
-    g.add_argument("--fmax", type=float, default=None, metavar="HZ",
-                   help="highest GW frequency (default 1/(2 x median TOA spacing), at most 1e-6)")
-    g.add_argument("--oversample", type=int, default=2, metavar="N",
-                   help="frequency spacing 1/(N*T_span) (default 2)")
-    g.add_argument("--ignore-periods", action="store_true",
-                   help="search every target over the whole band, even where a period is given")
-    g.add_argument("--period-frame", choices=("observed", "rest"), default="observed",
-                   help="frame of the catalogue periods (default observed; rest: P_obs = (1+z) P)")
-    g.add_argument("--period-factor", type=float, default=1.0, metavar="X",
-                   help="EM period = X times the orbital period; f_gw = 2 X / P (default 1)")
-    g.add_argument("--period-sigmas", type=float, default=3.0, metavar="K",
-                   help="half-width of a period target's window in period errors (default 3; at least "
-                        "half a Fourier bin)")
-    c = parser.add_argument_group("p-values and corrections")
-    c.add_argument("--null", choices=("simulations", "scrambles", "both"), default="simulations",
-                   help="null distribution: noise-only simulations (default), sky scrambles, or both "
-                        "(the simulated p-value is quoted, the scramble one reported beside it)")
-    c.add_argument("--null-sims", type=int, default=100, metavar="N",
-                   help="noise-only simulated datasets (default 100)")
-    c.add_argument("--scrambles", type=int, default=1000, metavar="N",
-                   help="random sky positions for the scramble null (default 1000)")
-    c.add_argument("--fdr-method", choices=("bh", "by"), default="bh",
-                   help="false-discovery-rate correction: bh Benjamini-Hochberg (default), by Benjamini-Yekutieli")
-    c.add_argument("--followup-threshold", type=float, default=0.01, metavar="P",
-                   help="list targets with family-wise p below P for the follow-up (default 0.01)")
-    c.add_argument("--followup-top", type=int, default=5, metavar="N",
-                   help="at most N targets for the follow-up (default 5)")
-    lim = parser.add_argument_group("limits")
-    lim.add_argument("--no-limits", action="store_true", help="skip the 95 %% chirp-mass limits per target")
-    lim.add_argument("--quadrature", choices=("fast", "standard", "fine"), default="standard",
-                     help="angle grid of the limits' quadrature (default standard)")
-    lim.add_argument("--workers", type=int, default=None, metavar="N",
-                     help="local worker processes for the limits (default one per CPU)")
-    lim.add_argument("--scheduler", default=None, metavar="ADDRESS", help="a running Dask scheduler for the limits")
-    lim.add_argument("--no-plots", action="store_true", help="do not draw the PNG plots")
+    add_options(parser, TargetsOptions)   # names, defaults and help: the fields of TargetsOptions
     add_noise_arguments(parser)
 
 
 def options_from_args(args):
-    """:class:`cwsearch.stages.targets.stage.TargetsOptions` from parsed arguments."""
-    # lazy: keeps `cwsearch COMMAND --help` fast
-    from ..stages.targets.stage import TargetsOptions
-
-    return TargetsOptions(catalog=args.catalog, columns=args.columns, fmin=args.fmin, fmax=args.fmax,
-                          oversample=args.oversample, ignore_periods=args.ignore_periods,
-                          period_frame=args.period_frame, period_factor=args.period_factor,
-                          period_sigmas=args.period_sigmas, null=args.null, null_sims=args.null_sims,
-                          scrambles=args.scrambles, fdr_method=args.fdr_method,
-                          followup_threshold=args.followup_threshold, followup_top=args.followup_top,
-                          no_limits=args.no_limits, quadrature=args.quadrature, workers=args.workers,
-                          scheduler=args.scheduler, no_plots=args.no_plots)
+    """:class:`cwsearch.stages.targets.options.TargetsOptions` from parsed arguments."""
+    return build_options(TargetsOptions, args)
 
 
 def _g(v):

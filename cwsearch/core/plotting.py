@@ -108,7 +108,8 @@ def place_labels(ax, points, texts, *, fontsize=8, avoid=()):
 
 
 def _zoom_panel(ax, values, nside, centre, radius, *, cmap, norm, contours, pulsars, marks, truth):
-    """A flat (cartesian, degrees) zoom of the map around ``centre`` = (ra, dec) [rad], half-width ``radius`` [deg]."""
+    """A flat (cartesian, degrees) zoom of the map around ``centre`` = (ra, dec) [rad], half-width ``radius`` [deg];
+    returns the texts of the marks labelled in it (those inside the panel)."""
     ra0, dec0 = np.degrees(centre[0]), np.degrees(centre[1])
     half_ra = min(radius / max(np.cos(np.radians(dec0)), 0.2), 180.0)
     ra_grid = np.linspace(ra0 - half_ra, ra0 + half_ra, 240)
@@ -147,10 +148,12 @@ def _zoom_panel(ax, values, nside, centre, radius, *, cmap, norm, contours, puls
     ax.grid(alpha=0.3)
     ax.xaxis.set_major_formatter(_degree_formatter())
     ax.yaxis.set_major_formatter(_degree_formatter(wrap=False))
-    if labelled:
-        inside = [(pt, t) for pt, t in labelled
-                  if min(ax.get_xlim()) <= pt[0] <= max(ax.get_xlim()) and ax.get_ylim()[0] <= pt[1] <= ax.get_ylim()[1]]
+    inside = [(pt, t) for pt, t in labelled
+              if min(ax.get_xlim()) <= pt[0] <= max(ax.get_xlim()) and ax.get_ylim()[0] <= pt[1] <= ax.get_ylim()[1]]
+    if inside:
+        ax.apply_aspect()
         place_labels(ax, [pt for pt, _ in inside], [t for _, t in inside])
+    return [t for _, t in inside]
 
 
 def _degree_formatter(wrap=True):
@@ -242,7 +245,15 @@ def sky_figure(values, nside, *, title="", label="", pulsars=None, marks=None, l
     ax.grid(True, color="grey", alpha=0.4)
     ax.set_xlabel("right ascension [deg]", fontsize=8, labelpad=2)
     ax.set_ylabel("declination [deg]", fontsize=8)
-    fig.colorbar(mesh, cax=cax, orientation="horizontal", label=label)
+    bar = fig.colorbar(mesh, cax=cax, orientation="horizontal", label=label)
+    if not log:
+        # lazy: a heavy import, loaded only when this runs
+        from matplotlib.ticker import FormatStrFormatter, MaxNLocator
+
+        # every tick carries its own exponent: no separate offset text to collide with the label
+        bar.locator = MaxNLocator(5)
+        bar.formatter = FormatStrFormatter("%.3g")
+        bar.update_ticks()
     if title:
         ax.set_title(title, pad=12, fontsize=10)
     if handles:
@@ -250,9 +261,19 @@ def sky_figure(values, nside, *, title="", label="", pulsars=None, marks=None, l
                    fontsize=7.5, frameon=False, ncol=1)
     if footer:
         fig.text(0.02, 0.012, footer, fontsize=7.5, ha="left", va="bottom")
+    zoomed = []
     if zax is not None:
-        _zoom_panel(zax, values, nside, zoom[:2], zoom[2], cmap=cmap, norm=norm, contours=contours,
-                    pulsars=pulsars, marks=marks, truth=truth)
+        zoomed = _zoom_panel(zax, values, nside, zoom[:2], zoom[2], cmap=cmap, norm=norm, contours=contours,
+                             pulsars=pulsars, marks=marks, truth=truth)
+    outside = [m for m in marks or [] if m.get("text") and m["text"] not in zoomed]
+    if outside:
+        # marks the zoom panel does not show are numbered on the map itself, clear of the tick labels
+        fig.canvas.draw()
+        renderer = fig.canvas.get_renderer()
+        ticks = [t.get_window_extent(renderer) for t in ax.get_xticklabels() + ax.get_yticklabels()
+                 if t.get_text()]
+        place_labels(ax, [(float(np.atleast_1d(_wrap_ra(m["ra"]))[0]), float(np.atleast_1d(m["dec"])[0]))
+                          for m in outside], [m["text"] for m in outside], avoid=ticks)
     return fig
 
 

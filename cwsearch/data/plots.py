@@ -7,12 +7,15 @@ import numpy as np
 
 from ..core.constants import DAY_SECONDS
 from ..core.plotting import _wrap_ra, pyplot, save_figure
+from .truth import injected_binary
 
 
 def dataset_overview(array, path, *, marks=None):
     """Two panels: pulsars on a Mollweide sky (size ~ 1/median sigma) and TOA coverage per backend.
 
-    ``marks``: optional list of dicts (``ra``, ``dec`` [rad], ``label``) drawn on the sky panel.
+    ``marks``: optional list of dicts (``ra``, ``dec`` [rad], ``label``) drawn on the sky panel. The
+    injected binary of a simulated dataset (its ``injection.json``) is drawn as a magenta plus.
+    Right ascension in degrees, increasing to the left (east).
     """
     plt = pyplot()
     fig = plt.figure(figsize=(11, 4.2))
@@ -25,7 +28,13 @@ def dataset_overview(array, path, *, marks=None):
                label="pulsars (larger: lower TOA sigma)")
     for mark in marks or []:
         ax.scatter(_wrap_ra(mark["ra"]), mark["dec"], marker="x", s=70, c="red", label=mark.get("label"))
-    ax.set_xticklabels([f"{int(h)}h" for h in np.linspace(10, -10, 11) % 24])
+    truth = injected_binary(array)
+    if truth and "ra" in truth:
+        ax.scatter(_wrap_ra(np.radians(truth["ra"])), np.radians(truth["dec"]), marker="P", s=110, c="#e6007e",
+                   edgecolors="black", linewidths=0.7, zorder=5, label="injected binary (injection.json)")
+    ticks = np.arange(-150, 181, 30)
+    ax.set_xticks(np.radians(ticks))
+    ax.set_xticklabels([f"{int(t)}°" for t in np.remainder(-ticks, 360)], fontsize=7)
     ax.grid(True, alpha=0.3)
     ax.legend(loc="lower right", fontsize=7)
     ax.set_title("pulsar positions (equatorial)", pad=12)

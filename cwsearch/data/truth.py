@@ -48,9 +48,15 @@ def _read_injection(source):
             return None, None
     try:
         inj = json.loads((folder / INJECTION_FILE).read_text(encoding="utf-8"))
-        return inj, inj["binaries"][0]
-    except (OSError, ValueError, KeyError, IndexError, TypeError):
+    except (OSError, ValueError):
         return None, None
+    if not isinstance(inj, dict):
+        return None, None
+    try:
+        first = inj["binaries"][0]
+    except (KeyError, IndexError, TypeError):
+        return inj, None
+    return inj, first if isinstance(first, dict) else None
 
 
 def injected_signal(source):
@@ -79,6 +85,22 @@ def injected_signal(source):
     return out
 
 
+def injected_noise(source):
+    """The noise a simulated dataset was drawn from, or None (no ``injection.json`` or no noise record).
+
+    Returns ``{"pulsars": {name: {"white": {backend: {"sigma_scale", "sigma_added" [s]}}, "red":
+    {"log10_amplitude", "index"} or None}}, "background": {"log10_amplitude", "index"} or None}``.
+    """
+    inj, _ = _read_injection(source)     # a noise-only simulation has no binary but records its noise
+    if inj is None:
+        return None
+    pulsars = inj.get("true_noise") if isinstance(inj.get("true_noise"), dict) else {}
+    background = inj.get("background") if isinstance(inj.get("background"), dict) else None
+    if not pulsars and background is None:
+        return None
+    return {"pulsars": pulsars, "background": background}
+
+
 def injected_binary(source):
     """The truth for ``source``: a dataset folder, a run folder (via its dataset.json) or an Array."""
     _, b = _read_injection(source)
@@ -93,4 +115,4 @@ def injected_binary(source):
     return out
 
 
-__all__ = ["injected_binary", "injected_signal"]
+__all__ = ["injected_binary", "injected_signal", "injected_noise"]

@@ -23,7 +23,7 @@ from numba import njit, prange
 from ..physics import fstat, waveform
 from ..physics.correlated import ArrayNoise, ArrayWeighting, CommonProcess, _engine_with_residuals, array_noise
 from .likelihood import (Likelihood, _PARALLEL_BASIS, _basis_parallel, _basis_serial, _grid_size, _gram_parallel,
-                         _gram_serial, _projection_batch)
+                         _gram_serial, _projection_batch, interpolation_matrix)
 
 
 # ---------------------------------------------------------------- likelihood
@@ -71,39 +71,44 @@ def correlated_terms(psi, earth, dvec, gmat, beta, pulsar_term=True):
         return dvec, gmat, earth_corr, None
     psi_eps = psi_eps.reshape(n_w, n_psr, n_c, 1)
     dvec[..., 2:] += np.sum(beta[..., 2:] * psi_eps, axis=2)
-    # Ψ_{·q} β_q for every q and walker: batched GEMM (P: 2W × 2K) @ (P: 2K × P·2K) (Ψ symmetric)
-    bq = np.ascontiguousarray(beta[..., 2:].transpose(1, 0, 3, 2)).reshape(n_psr, 2 * n_w, n_c)
-    right = np.matmul(bq, psi.reshape(n_psr, n_c, n_psr * n_c)).reshape(n_psr, n_w, 2, n_psr, n_c)
+    # Ω_pq = β_pᵀ Ψ_pq β_q is symmetric in (p, q) (Ω_qp = Ω_pqᵀ): for every q one GEMM
+    # (2W × 2K) @ (2K × (q+1)·2K) gives β_qᵀ Ψ_qp for p ≤ q only, half the products of all pairs
     bp = np.ascontiguousarray(beta[..., 2:].transpose(0, 1, 3, 2))            # (W, P, 2, 2K)
     cross = np.empty((n_w, n_psr, n_psr, 2, 2))
-    _contract_cross(bp, right, cross)
+    for q in range(n_psr):
+        right = bp[:, q].reshape(2 * n_w, n_c) @ psi[q * n_c:(q + 1) * n_c, :(q + 1) * n_c]
+        _contract_column(bp, right.reshape(n_w, 2, q + 1, n_c), q, cross)
     idx = np.arange(n_psr)
     gmat[..., 2:, 2:] -= cross[:, idx, idx]
     cross[:, idx, idx] = 0.0
     return dvec, gmat, earth_corr, cross
 
 
-@njit(cache=True, parallel=True)
-def _contract_cross(bp, right, cross):
-    """cross[w, p, q, i, j] = Σ_k bp[w, p, i, k] right[q, w, j, p, k] (= β_pᵀ Ψ_pq β_q)."""
-    n_w, n_psr, n_c = bp.shape[0], bp.shape[1], bp.shape[3]
-    for w in prange(n_w):
-        for q in range(n_psr):
-            for p in range(n_psr):
-                a00 = a01 = a10 = a11 = 0.0
-                for k in range(n_c):
-                    b0 = bp[w, p, 0, k]
-                    b1 = bp[w, p, 1, k]
-                    r0 = right[q, w, 0, p, k]
-                    r1 = right[q, w, 1, p, k]
-                    a00 += b0 * r0
-                    a01 += b0 * r1
-                    a10 += b1 * r0
-                    a11 += b1 * r1
-                cross[w, p, q, 0, 0] = a00
-                cross[w, p, q, 0, 1] = a01
-                cross[w, p, q, 1, 0] = a10
-                cross[w, p, q, 1, 1] = a11
+@njit(cache=True)
+def _contract_column(bp, right, q, cross):
+    """cross[w, p, q, i, j] = Σ_k bp[w, p, i, k] right[w, j, p, k] (= β_pᵀ Ψ_pq β_q) for p ≤ q,
+    and its transpose into cross[w, q, p] (Ω_qp = Ω_pqᵀ)."""
+    n_w, n_c = bp.shape[0], bp.shape[3]
+    for w in range(n_w):
+        for p in range(q + 1):
+            a00 = a01 = a10 = a11 = 0.0
+            for k in range(n_c):
+                b0 = bp[w, p, 0, k]
+                b1 = bp[w, p, 1, k]
+                r0 = right[w, 0, p, k]
+                r1 = right[w, 1, p, k]
+                a00 += b0 * r0
+                a01 += b0 * r1
+                a10 += b1 * r0
+                a11 += b1 * r1
+            cross[w, p, q, 0, 0] = a00
+            cross[w, p, q, 0, 1] = a01
+            cross[w, p, q, 1, 0] = a10
+            cross[w, p, q, 1, 1] = a11
+            cross[w, q, p, 0, 0] = a00
+            cross[w, q, p, 0, 1] = a10
+            cross[w, q, p, 1, 0] = a01
+            cross[w, q, p, 1, 1] = a11
 
 
 @njit(cache=True)
@@ -282,13 +287,15 @@ class CorrelatedLikelihood(Likelihood):
     signal products as the per-pulsar ones plus the cross-pulsar corrections of
     :func:`correlated_terms`; pulsar phases marginalised with
     :func:`mean_field_log_likelihood`, or exact with explicit pulsar phases.
-    Shape products take the direct path (basis series at every TOA) so that one
-    matrix product per pulsar gives both (d̃|b) and Fᵀ K⁻¹ b.
+    Shape products: one matrix product per pulsar gives (d̃|b) and Fᵀ K⁻¹ b together, from
+    the basis series at every TOA (``shape_path="direct"``) or at the Chebyshev nodes of
+    :class:`~cwsearch.inference.likelihood.Likelihood` (``"nodes"``; ``"auto"``, the default,
+    picks per pulsar as there) with the cached ``Lᵀ K⁻¹ F`` of the interpolation matrix L.
     Other arguments as :class:`cwsearch.inference.likelihood.Likelihood`.
     """
 
     def __init__(self, array, noise=None, common: CommonProcess | None = None, *, pulsar_term=True,
-                 evolution="full", phase_grid=0, uniform_strain=False):
+                 evolution="full", phase_grid=0, uniform_strain=False, shape_path="auto"):
         if isinstance(noise, ArrayWeighting):
             weighting = noise
         else:
@@ -298,7 +305,7 @@ class CorrelatedLikelihood(Likelihood):
         self.weighting = weighting
         engine = _engine_with_residuals(weighting.engine, weighting.weighted_data())
         super().__init__(array, engine, pulsar_term=pulsar_term, evolution=evolution, phase_grid=phase_grid,
-                         uniform_strain=uniform_strain, shape_path="direct")
+                         uniform_strain=uniform_strain, shape_path=shape_path)
         self._psi = weighting.correction_matrix()
         self._n_fourier = weighting.n_fourier
         # per pulsar [K⁻¹ d̃ | K⁻¹ F]: (d̃|b) and Fᵀ K⁻¹ b in one product
@@ -306,11 +313,64 @@ class CorrelatedLikelihood(Likelihood):
         for p, kinv_f in enumerate(weighting.weighted_fourier()):
             self._weighted_columns.append(np.ascontiguousarray(np.column_stack([self._weighted_data[p], kinv_f])))
         self._beta = None
+        self._node_fourier = {}
+
+    def shape_batch(self, ra, dec, gw_frequency, chirp_mass):
+        self._beta = None
+        self._batch_size = np.atleast_1d(ra).shape[0]
+        return super().shape_batch(ra, dec, gw_frequency, chirp_mass)
+
+    def _store_beta(self, p, rows):
+        """β of pulsar p, as rows (walkers, column, 2K) for the walkers of the current node level
+        (``self._group``), into the batch's β. Kept as (W, P, column, 2K), contiguous along the
+        Fourier coefficients where :func:`correlated_terms` contracts; ``self._beta`` is its
+        (W, P, 2K, column) view."""
+        if self._beta is None:
+            self._beta_rows = np.zeros((self._batch_size, self.n_pulsars, rows.shape[1], self._n_fourier))
+            self._beta = self._beta_rows.transpose(0, 1, 3, 2)
+        if self._group.size == self._batch_size:          # one node level for the whole batch
+            self._beta_rows[:, p] = rows
+        else:
+            self._beta_rows[self._group, p] = rows
+
+    def _node_columns(self, m):
+        """Per pulsar [Lᵀ K⁻¹ d̃ | Lᵀ K⁻¹ F | Lᵀ K⁻¹ L] (m, 1 + 2K + m), L the interpolation matrix
+        at m Chebyshev nodes (cached per m; None where the pulsar takes the direct path)."""
+        if m not in self._node_fourier:
+            _, data_products, gram_products = self._interpolation_products(m)
+            cols = []
+            for p, (dt, kinv_f) in enumerate(zip(self._dt, self.weighting.weighted_fourier())):
+                if self._node_limit[p] >= m:
+                    interp = interpolation_matrix((dt - self._node_centre) / self._node_half, m)
+                    cols.append(np.ascontiguousarray(np.column_stack([data_products[p], interp.T @ kinv_f,
+                                                                      gram_products[p]])))
+                else:
+                    cols.append(None)
+            self._node_fourier[m] = cols
+        return self._node_fourier[m]
+
+    def _nodes_products(self, m, pulsars, omega0, kappa_e, amp0, omega_p, kappa_p, amp_p, dvec, gmat):
+        """As :meth:`Likelihood._nodes_products` (basis series at m Chebyshev nodes), with
+        β = (Lᵀ K⁻¹ F)ᵀ v from the same node values v: one matrix product per pulsar gives
+        (d̃|b), β and (Lᵀ K⁻¹ L) v."""
+        node_dt = self._interpolation_products(m)[0]
+        columns = self._node_columns(m)
+        n_w, ncol = omega0.shape[0], dvec.shape[2]
+        t_max = float(np.max(np.abs(node_dt)))
+        n_c = self._n_fourier
+        values = np.empty((n_w, ncol, m))
+        for p in pulsars:
+            _basis_serial(node_dt, omega0, kappa_e, amp0, np.ascontiguousarray(omega_p[:, p]),
+                          np.ascontiguousarray(kappa_p[:, p]), np.ascontiguousarray(amp_p[:, p]), t_max, values)
+            prod = (values.reshape(n_w * ncol, m) @ columns[p]).reshape(n_w, ncol, 1 + n_c + m)
+            dvec[:, p] = prod[:, :, 0]
+            self._store_beta(p, prod[:, :, 1:1 + n_c])
+            g = np.matmul(prod[:, :, 1 + n_c:], values.transpose(0, 2, 1))
+            gmat[:, p] = 0.5 * (g + g.transpose(0, 2, 1))
 
     def _direct_products(self, pulsars, omega0, kappa_e, amp0, omega_p, kappa_p, amp_p, dvec, gmat):
         n_w, ncol = omega0.shape[0], dvec.shape[2]
         g = np.empty((n_w, ncol, ncol))
-        beta = np.zeros((n_w, self.n_pulsars, self._n_fourier, ncol))
         parallel = n_w * self._mean_toas >= _PARALLEL_BASIS
         basis_kernel = _basis_parallel if parallel else _basis_serial
         gram_kernel = _gram_parallel if parallel else _gram_serial
@@ -323,11 +383,10 @@ class CorrelatedLikelihood(Likelihood):
             flat = basis.reshape(n_w * ncol, -1)
             prod = (flat @ self._weighted_columns[p]).reshape(n_w, ncol, 1 + self._n_fourier)
             dvec[:, p] = prod[:, :, 0]
-            beta[:, p] = prod[:, :, 1:].transpose(0, 2, 1)
+            self._store_beta(p, prod[:, :, 1:])
             whitened = (flat @ self._operator[p].T).reshape(n_w, ncol, -1)
             gram_kernel(basis, self._inv_var[p], whitened, g)
             gmat[:, p] = g
-        self._beta = beta
 
     def correlated_shape_batch(self, ra, dec, gw_frequency, chirp_mass):
         """:meth:`shape_batch` plus ``beta`` (W, P, 2K, 4) = F_pᵀ K_p⁻¹ b_pj."""
@@ -440,7 +499,6 @@ def likelihood_for(array, noise, **kwargs) -> Likelihood:
     Keyword arguments as :class:`~cwsearch.inference.likelihood.Likelihood`."""
     model = noise if isinstance(noise, ArrayNoise) else array_noise(array, noise)
     if model.correlated:
-        kwargs.pop("shape_path", None)
         like = CorrelatedLikelihood(array, model.weighting, **kwargs)
     else:
         like = Likelihood(array, model.engine, **kwargs)

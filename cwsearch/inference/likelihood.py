@@ -650,6 +650,7 @@ class Likelihood:
         nodes = self._node_count(omega0, kappa_e)
         for m in np.unique(nodes):
             pick = np.flatnonzero(nodes == m)
+            self._group = pick            # walkers of this node level (subclasses keep extra products per walker)
             terms = (omega0[pick], kappa_e[pick], amp0[pick], omega_p[pick], kappa_p[pick], amp_p[pick])
             sub_dvec = np.empty((pick.size, self.n_pulsars, ncol))
             sub_gmat = np.empty((pick.size, self.n_pulsars, ncol, ncol))

@@ -536,42 +536,40 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
     sampler = make_sampler(betas)
     if resume and checkpoint is not None and _exists(checkpoint):
         try:
-            with _checkpoint_file(checkpoint) as fh, np.load(fh, allow_pickle=False) as ck:
-                if "fingerprint" not in ck.files or str(ck["fingerprint"]) != ident:
-                    raise InputError("the checkpoint was made with another model or other sampler settings; "
-                                     "run without --resume to start afresh", file=checkpoint)
-                n = int(ck["iterations"])
-                capacity = max(capacity, 2 * n)
-                betas = np.array(ck["betas"])
-                ntemps = betas.size
-                chain = _resized(ck["chain"], capacity)
-                logl_t1 = _resized(ck["log_likelihood"], capacity)
-                logp_t1 = _resized(ck["log_prior"], capacity)
-                mean_logl = _resized(ck["mean_log_likelihood"], capacity)
-                ratios = _resized(ck["swap_ratios"], capacity, fill=np.nan)
-                sampler = make_sampler(betas)
-                sampler._p0 = np.array(ck["positions"])
-                sampler._logposterior0 = np.array(ck["log_posterior"])
-                sampler._loglikelihood0 = np.array(ck["log_likelihood_all"])
-                sampler._betas = betas.copy()
-                sampler.nswap = np.array(ck["nswap"])
-                sampler.nswap_accepted = np.array(ck["nswap_accepted"])
-                sampler.nprop = np.array(ck["nprop"])
-                sampler.nprop_accepted = np.array(ck["nprop_accepted"])
-                random.set_state(("MT19937", np.array(ck["rng_key"], dtype=np.uint32), int(ck["rng_pos"]),
-                                  int(ck["rng_has_gauss"]), float(ck["rng_gauss"])))
-                elapsed_before = float(ck["wall_time"])
-                pool.evaluations = int(ck["evaluations"])
-                adapt_start, adapt_end = int(ck["adapt_start"]), int(ck["adapt_end"])
-                rounds, ladder_done, ladder_from = int(ck["ladder_rounds"]), bool(ck["ladder_done"]), int(ck["ladder_from"])
-                ladder_history = json.loads(str(ck["ladder_history"]))
-                ladder_note = str(ck["ladder_note"])
-                tau_history = [row for row in np.array(ck["tau_history"])]
+            with _checkpoint_file(checkpoint) as fh, np.load(fh, allow_pickle=False) as npz:
+                ck = _checked_checkpoint(npz, ident, nwalkers, dim, settings.temperature_limit(), checkpoint)
         except InputError:
             raise
-        except (OSError, EOFError, ValueError, KeyError, TypeError, IndexError, zipfile.BadZipFile) as exc:
+        except (OSError, EOFError, ValueError, KeyError, TypeError, IndexError, OverflowError,
+                zipfile.BadZipFile) as exc:
             raise InputError(f"checkpoint damaged ({type(exc).__name__}); run again without --resume to start "
                              "afresh", file=checkpoint) from None
+        n = ck["iterations"]
+        capacity = max(capacity, 2 * n)
+        betas = ck["betas"]
+        ntemps = betas.size
+        chain = _resized(ck["chain"], capacity)
+        logl_t1 = _resized(ck["log_likelihood"], capacity)
+        logp_t1 = _resized(ck["log_prior"], capacity)
+        mean_logl = _resized(ck["mean_log_likelihood"], capacity)
+        ratios = _resized(ck["swap_ratios"], capacity, fill=np.nan)
+        sampler = make_sampler(betas)
+        sampler._p0 = ck["positions"]
+        sampler._logposterior0 = ck["log_posterior"]
+        sampler._loglikelihood0 = ck["log_likelihood_all"]
+        sampler._betas = betas.copy()
+        sampler.nswap = ck["nswap"]
+        sampler.nswap_accepted = ck["nswap_accepted"]
+        sampler.nprop = ck["nprop"]
+        sampler.nprop_accepted = ck["nprop_accepted"]
+        random.set_state(("MT19937", ck["rng_key"], ck["rng_pos"], ck["rng_has_gauss"], ck["rng_gauss"]))
+        elapsed_before = ck["wall_time"]
+        pool.evaluations = ck["evaluations"]
+        adapt_start, adapt_end = ck["adapt_start"], ck["adapt_end"]
+        rounds, ladder_done, ladder_from = ck["ladder_rounds"], ck["ladder_done"], ck["ladder_from"]
+        ladder_history = ck["ladder_history"]
+        ladder_note = ck["ladder_note"]
+        tau_history = [row for row in ck["tau_history"]]
         p0 = None
 
     def state():
@@ -603,7 +601,8 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
     # (min_chain_taus τ)), in per cent, not iterations towards the cap (a run normally stops long before it)
     with progress_bar(total=100, desc=label, enabled=progress, unit="%") as bar:
         while n < settings.max_iterations:
-            if elapsed_before + time.monotonic() - start >= settings.max_time:
+            # the wall-time cap counts only once there are samples: a run always makes its first block
+            if n > 0 and elapsed_before + time.monotonic() - start >= settings.max_time:
                 stopped_by = "time"
                 break
             step = settings.check_every - n % settings.check_every
@@ -731,6 +730,98 @@ def rule_progress(ess, tau, n, burn, settings) -> float:
 
 def _unused(x):  # ptemcee wants per-walker functions; the vectorised pool never calls them
     raise RuntimeError("evaluated through VectorisedPool.map only")
+
+
+def _checked_checkpoint(npz, ident, nwalkers, dim, max_temps, path) -> dict:
+    """The fields of a checkpoint (an open ``np.load`` of ``checkpoint.npz``), checked before any is used:
+    every field present, of its kind (number, integer, text), with the shapes that the walkers, the
+    dimension and the stored ladder imply, finite where the sampler needs it (a damaged or hand-made file
+    must not reach ptemcee, nor ask for an array of 10^18 rows). Raises InputError ("checkpoint damaged").
+    Returns plain Python numbers and arrays."""
+    def bad(what):
+        raise InputError(f"checkpoint damaged ({what}); run again without --resume to start afresh", file=path)
+
+    if "fingerprint" not in npz.files or npz["fingerprint"].dtype.kind != "U" or str(npz["fingerprint"]) != ident:
+        raise InputError("the checkpoint was made with another model or other sampler settings; "
+                         "run without --resume to start afresh", file=path)
+
+    def field(name):
+        if name not in npz.files:
+            bad(f"no {name!r}")
+        return np.array(npz[name])
+
+    def text(name):
+        value = field(name)
+        if value.dtype.kind != "U" or value.ndim != 0:
+            bad(f"{name!r} is not text")
+        return str(value)
+
+    def integer(name, lo=0, hi=10 ** 9):
+        value = field(name)
+        if value.ndim != 0 or value.dtype.kind not in "iub" or not lo <= int(value) <= hi:
+            bad(f"{name!r} is not an integer in [{lo}, {hi}]")
+        return int(value)
+
+    def numbers(name, shape, *, finite=True, nan=False):
+        value = field(name)
+        if value.dtype.kind not in "fiu" or value.shape != tuple(shape):
+            bad(f"{name!r} has shape {value.shape} and type {value.dtype}, expected {tuple(shape)} numbers")
+        value = value.astype(float)
+        if finite and not np.all(np.isfinite(value) | (nan & np.isnan(value))):
+            bad(f"{name!r} holds values that are not finite")
+        if not finite and (np.any(np.isnan(value)) and not nan or np.any(value == np.inf)):
+            bad(f"{name!r} holds NaN or +inf")
+        return value
+
+    out = {"iterations": integer("iterations")}
+    n = out["iterations"]
+    betas = field("betas")
+    if betas.dtype.kind != "f" or betas.ndim != 1 or not 1 <= betas.size <= max_temps:
+        bad(f"'betas' is not a ladder of 1 to {max_temps} temperatures")
+    if not (np.all(np.isfinite(betas)) and np.all(betas > 0) and np.all(betas <= 1) and np.all(np.diff(betas) <= 0)):
+        bad("'betas' is not a decreasing ladder in (0, 1]")
+    out["betas"] = betas.astype(float)
+    t = betas.size
+    out["chain"] = numbers("chain", (n, nwalkers, dim))
+    out["log_likelihood"] = numbers("log_likelihood", (n, nwalkers), finite=False)
+    out["log_prior"] = numbers("log_prior", (n, nwalkers), finite=False)
+    out["mean_log_likelihood"] = numbers("mean_log_likelihood", (n, t), finite=False, nan=True)
+    out["swap_ratios"] = numbers("swap_ratios", (n, t - 1), nan=True)
+    out["positions"] = numbers("positions", (t, nwalkers, dim))
+    out["log_posterior"] = numbers("log_posterior", (t, nwalkers), finite=False)
+    out["log_likelihood_all"] = numbers("log_likelihood_all", (t, nwalkers), finite=False)
+    for name, shape in (("nswap", (t,)), ("nswap_accepted", (t,)), ("nprop", (t, nwalkers)),
+                        ("nprop_accepted", (t, nwalkers))):
+        out[name] = numbers(name, shape)
+        if np.any(out[name] < 0):
+            bad(f"{name!r} holds negative counts")
+    key = field("rng_key")
+    if key.dtype.kind not in "iu" or key.shape != (624,) or np.any(key < 0) or np.any(key > 2 ** 32 - 1):
+        bad("'rng_key' is not a generator state")
+    out["rng_key"] = key.astype(np.uint32)
+    out["rng_pos"] = integer("rng_pos", 0, 624)
+    out["rng_has_gauss"] = integer("rng_has_gauss", 0, 1)
+    out["rng_gauss"] = float(numbers("rng_gauss", ()))
+    out["wall_time"] = float(numbers("wall_time", ()))
+    if out["wall_time"] < 0:
+        bad("'wall_time' is negative")
+    out["evaluations"] = integer("evaluations", 0, 10 ** 15)
+    for name in ("adapt_start", "adapt_end", "ladder_rounds", "ladder_from"):
+        out[name] = integer(name)
+    out["ladder_done"] = bool(integer("ladder_done", 0, 1))
+    try:
+        history = json.loads(text("ladder_history"))
+    except ValueError:
+        bad("'ladder_history' is not JSON")
+    if not isinstance(history, list) or not all(isinstance(h, dict) for h in history):
+        bad("'ladder_history' is not a list of records")
+    out["ladder_history"] = history
+    out["ladder_note"] = text("ladder_note")
+    tau = field("tau_history")
+    if tau.dtype.kind not in "fiu" or tau.ndim != 2 or tau.shape[1] != 2 * dim or tau.shape[0] > 10 ** 6:
+        bad("'tau_history' has the wrong shape")
+    out["tau_history"] = tau.astype(float)
+    return out
 
 
 def _exists(path):

@@ -58,8 +58,6 @@ from ..physics import fstat, sky
 from ..physics.waveform import chirp_mass_for_strain
 from .upper_limits import QUADRATURE, bayes_rows
 
-#: the null method of the p-values: noise-only simulations, sky scrambles, or both (simulations quoted)
-NULL_METHODS = ("simulations", "scrambles", "both")
 #: empirical p-values are used while at least this many null draws reach the observed value
 TAIL_COUNT = 10
 
@@ -490,7 +488,7 @@ def sky_separation_deg(ra1, dec1, ra2, dec2):
 
 
 __all__ = [
-    "NULL_METHODS", "TAIL_COUNT", "gw_frequency_from_period", "frequency_windows", "window_maxima",
+    "TAIL_COUNT", "gw_frequency_from_period", "frequency_windows", "window_maxima",
     "batch_window_maxima",
     "target_statistics", "simulated_window_maxima", "random_sky", "scrambled_window_maxima",
     "single_template_survival", "calibrated_p_values", "bonferroni", "holm", "benjamini_hochberg",

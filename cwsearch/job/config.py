@@ -9,7 +9,7 @@ dashes turned into underscores. The schema is *built from those dataclasses*
 automatically a valid run-file key, with the same default.
 
 Every problem (TOML syntax, unknown section or key, wrong type, missing
-dataset, bad engine, a value the stage rejects) raises
+dataset, bad [execution] section, a value the stage rejects) raises
 :class:`~cwsearch.core.errors.InputError` naming the file, the key and its line,
 before any work starts.
 
@@ -44,37 +44,38 @@ import re
 import tomllib
 import types
 import typing
+import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 
 from ..core.errors import InputError
 from ..core.safeio import read_input_text
 from ..core.fileio import write_text_atomic
-from ..physics.noise import NoiseSettings
+from ..core.options import choices_of, option_specs
+from ..physics.noise_settings import NoiseSettings
 from ..stages import BY_NAME, STAGES as REGISTRY
 
 #: stage name -> (module, options class), in pipeline order (from the registry cwsearch.stages.STAGES)
 STAGE_OPTIONS = {stage.name: (stage.options.__module__, stage.options.__name__) for stage in REGISTRY}
 STAGES = tuple(STAGE_OPTIONS)
 
-#: options the pipeline fills in itself (never run-file keys), per stage
-PIPELINE_SET = {
-    "noise": frozenset(),
-    "scan": frozenset({"workers", "scheduler"}),  # from [engine]
-    "followup": frozenset({"candidate", "top", "frequency", "ra", "dec", "all_sky", "resume"}),
-    "hosts": frozenset({"candidate"}),
-    "limits": frozenset({"workers", "scheduler"}),  # from [engine]
-    "targets": frozenset({"workers", "scheduler"}),  # from [engine]
-}
+#: options the pipeline fills in itself (never run-file keys), per stage: the fields marked command-line only
+#: (``only="cli"``, with the reason, in the stage's options; workers and scheduler come from [execution])
+PIPELINE_SET = {stage.name: frozenset(spec.name for spec in option_specs(stage.options) if not spec.in_file)
+                for stage in REGISTRY}
 
 ENGINE_KINDS = ("local", "dask")
+
+
+class RunFileDeprecationWarning(DeprecationWarning):
+    """A run file uses an old spelling that is still read (e.g. the ``[engine]`` section, now ``[execution]``)."""
 
 #: largest run file read [bytes] (a run file is a few hundred bytes; this refuses a device or a data file)
 RUN_FILE_MAX_BYTES = 1 << 20
 
 _PIPELINE_HINTS = {
-    "workers": "set [engine] workers",
-    "scheduler": "set [engine] kind = \"dask\" and address",
+    "workers": "set [execution] workers",
+    "scheduler": "set [execution] scheduler",
     "candidate": "the pipeline follows every candidate below [followup] fap_threshold",
     "top": "use [followup] max_candidates",
     "resume": "an interrupted run resumes by itself",
@@ -112,6 +113,8 @@ TOP_KEYS = {
     "seed": Key("seed", int, 0, "random seed of the whole run"),
     "title": Key("title", str, "", "title shown on the report"),
     "stages": Key("stages", list[str], list(STAGES), "stages to run, in pipeline order", STAGES),
+    "mjd_range": Key("mjd_range", list[float], None,
+                     "plausible TOA dates [LO, HI] in MJD (default 40000-70000; as --mjd-range)"),
 }
 
 #: keys the pipeline adds to a stage section (they select what the stage sees)
@@ -127,6 +130,16 @@ PIPELINE_KEYS = {
 PATH_KEYS = {"hosts": ("catalog", "sky_map"), "limits": ("catalog", "galaxies", "galaxy_catalog"),
              "targets": ("catalog",)}
 
+#: [execution]: where the work runs (the task runner, cwsearch.inference.execution), the same keys as the
+#: stage commands' --workers and --scheduler; never part of a stage's input hash
+EXECUTION_KEYS = {
+    "workers": Key("workers", int, 0, "local worker processes (0: one per CPU); the --workers of the stage commands"),
+    "scheduler": Key("scheduler", str, "", "address of a running Dask scheduler, e.g. \"tcp://10.0.0.5:8786\" (not "
+                                           "set: worker processes on this machine); the --scheduler of the stage "
+                                           "commands"),
+}
+
+#: the old [engine] section (read, with a RunFileDeprecationWarning, as [execution])
 ENGINE_KEYS = {
     "kind": Key("kind", str, "local", "'local' (worker processes on this machine) or 'dask' (a running scheduler)",
                 ENGINE_KINDS),
@@ -141,36 +154,22 @@ def stage_options_class(stage):
 
 
 def dataclass_keys(cls, exclude=frozenset()):
-    """Run-file keys from the fields of a dataclass (type hints resolved, defaults kept)."""
-    try:
-        hints = typing.get_type_hints(cls)
-    except Exception:  # an unresolvable annotation: fall back to the default's type
-        hints = {}
+    """Run-file keys from the fields of an options dataclass (:func:`cwsearch.core.options.option_specs`: the
+    same names, defaults and help as the command line), without the command-line-only fields."""
     keys = {}
-    for f in dataclasses.fields(cls):
-        if f.name.startswith("_") or f.name in exclude or not f.init:
+    for spec in option_specs(cls):
+        if spec.name in exclude or not spec.in_file:
             continue
-        if f.default is not dataclasses.MISSING:
-            default = f.default
-        elif f.default_factory is not dataclasses.MISSING:  # type: ignore[misc]
-            default = f.default_factory()  # type: ignore[misc]
-        else:
-            default = REQUIRED
-        hint = hints.get(f.name, type(default) if default is not None and default is not REQUIRED else object)
-        doc = f.metadata.get("help", "") if f.metadata else ""
-        keys[f.name] = Key(f.name, hint, default, doc, tuple(_literal_choices(hint)))
+        default = REQUIRED if spec.default is dataclasses.MISSING else spec.default
+        keys[spec.name] = Key(spec.name, spec.hint, default, spec.help, tuple(choices_of(spec.hint)))
     return keys
-
-
-def _literal_choices(hint):
-    if typing.get_origin(hint) is typing.Literal:
-        return typing.get_args(hint)
-    return ()
 
 
 def section_keys(section):
     """All keys of a section, or ``None`` if its stage is not installed (then the section is not checked)."""
-    if section == "engine":
+    if section == "execution":
+        return dict(EXECUTION_KEYS)
+    if section == "engine":   # the old name of [execution]
         return dict(ENGINE_KEYS)
     if section == "noise":
         # [noise] holds the engine's noise settings and the noise stage's options (model, fit choices)
@@ -189,7 +188,9 @@ def section_keys(section):
     return keys
 
 
-SECTIONS = ("engine",) + tuple(dict.fromkeys(("noise",) + STAGES))
+SECTIONS = ("execution",) + tuple(dict.fromkeys(("noise",) + STAGES))
+#: old section names still read (with a RunFileDeprecationWarning) -> the section they now are
+OLD_SECTIONS = {"engine": "execution"}
 
 
 # ---------------------------------------------------------------- type checking
@@ -318,7 +319,8 @@ class RunConfig:
     seed : int
     title : str
     stages : tuple of stage names to run, in pipeline order
-    engine : dict with ``kind``, ``workers``, ``address``
+    execution : dict with ``workers`` (0: one per CPU) and ``scheduler`` ("" : this machine), the
+        ``[execution]`` section (``engine`` gives it in the old ``[engine]`` shape)
     noise : :class:`~cwsearch.physics.noise.NoiseSettings`
     options : dict stage -> options dataclass instance (``None`` if the stage is not installed)
     extra : dict stage -> dict of pipeline keys (``fap_threshold``, ``catalog``, ...)
@@ -331,11 +333,20 @@ class RunConfig:
     seed: int = 0
     title: str = ""
     stages: tuple = STAGES
-    engine: dict = field(default_factory=lambda: {"kind": "local", "workers": 0, "address": ""})
+    execution: dict = field(default_factory=lambda: {"workers": 0, "scheduler": ""})
     noise: object = None
     options: dict = field(default_factory=dict)
     extra: dict = field(default_factory=dict)
     raw: dict = field(default_factory=dict)
+    #: (LO, HI) plausible TOA dates [MJD] (run-file key ``mjd_range``); None: the default 40000-70000
+    mjd_range: tuple | None = None
+
+    @property
+    def engine(self) -> dict:
+        """:attr:`execution` in the shape of the old ``[engine]`` section: ``kind``, ``workers``, ``address``."""
+        scheduler = self.execution.get("scheduler") or ""
+        return {"kind": "dask" if scheduler else "local", "workers": int(self.execution.get("workers") or 0),
+                "address": scheduler}
 
     def stage_config(self, stage) -> dict:
         """Everything that determines a stage's result (for hashing): its options plus pipeline keys."""
@@ -354,7 +365,8 @@ class RunConfig:
             "seed": self.seed,
             "title": self.title,
             "stages": list(self.stages),
-            "engine": dict(self.engine),
+            "mjd_range": None if self.mjd_range is None else list(self.mjd_range),
+            "execution": dict(self.execution),
             "noise": _dataclass_values(self.noise),
         }
         for stage in STAGES:
@@ -459,7 +471,7 @@ def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunC
     values = {}
     for name, value in data.items():
         if isinstance(value, dict):
-            if name not in SECTIONS:
+            if name not in SECTIONS and name not in OLD_SECTIONS:
                 fail(f"unknown section (known sections: {', '.join(SECTIONS)})", name)
             continue
         key = TOP_KEYS.get(name)
@@ -496,14 +508,14 @@ def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunC
         out = (base / "runs" / stem).resolve() if base.name != "runs" else (base / stem).resolve()
     if values["seed"] < 0:
         fail("must be >= 0", None, "seed")
+    mjd_range = values["mjd_range"]
+    if mjd_range is not None:
+        if len(mjd_range) != 2 or not all(math.isfinite(v) for v in mjd_range) or not mjd_range[0] < mjd_range[1]:
+            fail(f"needs two finite numbers [LO, HI] with LO < HI (MJD), got {list(mjd_range)}", None, "mjd_range")
+        mjd_range = (float(mjd_range[0]), float(mjd_range[1]))
 
     # ---- sections
-    engine = _check_section("engine", data.get("engine", {}), section_keys("engine"), fail)
-    if engine["kind"] == "dask" and not engine["address"]:
-        fail("kind = 'dask' needs the scheduler address, e.g. address = \"tcp://10.0.0.5:8786\"", "engine", "kind")
-    if engine["workers"] < 0:
-        fail("must be >= 0 (0: one per CPU)", "engine", "workers")
-
+    execution = _execution_section(data, fname, fail)
 
     noise_values = _check_section("noise", data.get("noise", {}), section_keys("noise"), fail)
     settings_names = {f.name for f in dataclasses.fields(NoiseSettings)}
@@ -550,7 +562,30 @@ def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunC
             fail("must be >= 1", "followup", "max_candidates")
 
     return RunConfig(path=path, dataset=dataset, out=out, seed=values["seed"], title=values["title"],
-                     stages=stages, engine=engine, noise=noise, options=options, extra=extra, raw=raw)
+                     stages=stages, execution=execution, noise=noise, options=options, extra=extra, raw=raw,
+                     mjd_range=mjd_range)
+
+
+def _execution_section(data, fname, fail) -> dict:
+    """The ``[execution]`` section, or the old ``[engine]`` one (kind, workers, address; read with a
+    :class:`RunFileDeprecationWarning`): ``{"workers": int, "scheduler": str}``."""
+    if "engine" in data:
+        if "execution" in data:
+            fail("give [execution] only ([engine] is its old name)", "engine")
+        warnings.warn(f"{fname}: the [engine] section is now called [execution] (with workers = N and scheduler = "
+                      "\"ADDRESS\" instead of kind and address); [engine] is still read for now",
+                      RunFileDeprecationWarning, stacklevel=3)
+        engine = _check_section("engine", data["engine"], section_keys("engine"), fail)
+        if engine["kind"] == "dask" and not engine["address"]:
+            fail("kind = 'dask' needs the scheduler address, e.g. address = \"tcp://10.0.0.5:8786\"", "engine",
+                 "kind")
+        if engine["workers"] < 0:
+            fail("must be >= 0 (0: one per CPU)", "engine", "workers")
+        return {"workers": engine["workers"], "scheduler": engine["address"] if engine["kind"] == "dask" else ""}
+    execution = _check_section("execution", data.get("execution", {}), section_keys("execution"), fail)
+    if execution["workers"] < 0:
+        fail("must be >= 0 (0: one per CPU)", "execution", "workers")
+    return execution
 
 
 def _field_names(stage):
@@ -721,4 +756,4 @@ def to_toml(data: dict, comments: dict | None = None) -> str:
 
 
 __all__ = ["RunConfig", "load_config", "parse_config", "to_toml", "toml_value", "section_keys",
-           "STAGES", "SECTIONS", "Key"]
+           "STAGES", "SECTIONS", "OLD_SECTIONS", "Key", "RunFileDeprecationWarning", "EXECUTION_KEYS"]

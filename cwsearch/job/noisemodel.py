@@ -5,7 +5,9 @@
 every stage writes into its summary and the report shows:
 
 * ``estimate`` (default): the model fitted by the noise stage. ``RUN_DIR/noise/noise_model.ecsv`` is
-  reused when it was fitted on the same dataset checksum; otherwise the noise stage runs first.
+  reused when it is a finished fit (its summary.json is there) of the same dataset and, in a run
+  (``cwsearch run``), with the run file's fit options and seed (:func:`reusable_fit`); otherwise the
+  noise stage runs first.
 * ``dataset``: the values of the dataset files (``pulsars.ecsv`` red noise, ``noise.ecsv`` white
   factors) with the run's noise settings, fixed (the behaviour before the noise stage existed).
 * a FILE: a noise table (written by the noise stage or by hand). A table that records another
@@ -36,7 +38,7 @@ from ..data.dataset import _read_table
 from ..inference.noisefit import apply_noise_model, read_noise_table
 from ..inference.noisefit import describe_noise_model as describe
 from ..physics.noise import NoiseSettings
-from ..stages.noise.stage import TABLE_NAME, NoiseOptions, model_settings, run_noise
+from ..stages.noise.stage import SUMMARY_NAME, TABLE_NAME, NoiseOptions, fit_fingerprint, model_settings, run_noise
 
 
 class NoiseModelWarning(UserWarning):
@@ -122,12 +124,11 @@ def resolve_noise_model(array, run_dir, model="estimate", *, noise=None, dataset
         if run_dir is None:
             raise InputError("the estimated noise model needs a run folder (--out)")
         path = table_path(run_dir)
-        reused = False
-        if path.is_file() and dataset_checksum is not None:
-            try:
-                reused = str(_table_meta(path).get("dataset_checksum")) == str(dataset_checksum)
-            except InputError:
-                reused = False
+        # a run file states the fit's options: a table must match them; a stage command states none (the
+        # `noise` command sets them), so any finished fit of this dataset is reused
+        fingerprint = None if options is None else fit_fingerprint(replace_model(options, "estimate"), noise, seed,
+                                                                   dataset_checksum)
+        reused = dataset_checksum is not None and reusable_fit(path, dataset_checksum, fingerprint)
         if not reused:
             run_noise(array, run_dir, replace_model(options or NoiseOptions(), "estimate"), noise=noise, seed=seed,
                       progress=progress, dataset_checksum=dataset_checksum)
@@ -142,6 +143,25 @@ def resolve_noise_model(array, run_dir, model="estimate", *, noise=None, dataset
         warnings.warn(note, NoiseModelWarning, stacklevel=2)
     resolved.array.noise_model = resolved.description
     return resolved
+
+
+def reusable_fit(path, dataset_checksum, fingerprint=None) -> bool:
+    """True when ``path`` (RUN_DIR/noise/noise_model.ecsv) is a finished fit of the dataset with checksum
+    ``dataset_checksum``: the stage's summary.json (written last) is there, and, when ``fingerprint`` is
+    given (:func:`cwsearch.stages.noise.stage.fit_fingerprint` of a run file's options and seed), the
+    table's header records that same fingerprint. Anything else (an interrupted fit, a fit with other
+    options or another seed, an unreadable table) is fitted again, so that a run's numbers never depend
+    on what an earlier, interrupted or different run left in the folder."""
+    path = Path(path)
+    if not (path.is_file() and (path.parent / SUMMARY_NAME).is_file()):
+        return False
+    try:
+        meta = _table_meta(path)
+    except InputError:
+        return False
+    if str(meta.get("dataset_checksum")) != str(dataset_checksum):
+        return False
+    return fingerprint is None or str(meta.get("fit_fingerprint")) == str(fingerprint)
 
 
 def replace_model(options, model):

@@ -325,7 +325,7 @@ def run_pipeline(config: RunConfig, *, force=(), progress=True, quiet=False, spe
     specs = default_stages() if specs is None else specs
 
     # everything a user can get wrong is checked before any work
-    array = read_dataset(config.dataset)
+    array = read_dataset(config.dataset, mjd_range=getattr(config, "mjd_range", None))
     checksum = dataset_checksum(config.dataset)
     with RunLock(run_dir):
         started = utc_now()
@@ -430,7 +430,7 @@ def _stage_runner(stage):
         custom = _CUSTOM_RUNS.get(stage.name)
         if custom is not None:
             return custom(ctx, stage)
-        options = runner_options(ctx.options, ctx.config.engine)
+        options = runner_options(ctx.options, ctx.config.execution)
         result = stage.run(ctx.model_array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed,
                            progress=ctx.progress)
         return dict(result.summary or {})
@@ -524,8 +524,9 @@ def _hosts_precheck(ctx):
         raise NothingToDo("no galaxy catalogue given ([hosts] catalog)")
 
 
-def runner_options(options, engine: dict):
-    """``options`` with the task-runner settings (run-file section ``[engine]``) filled into its
+def runner_options(options, execution: dict):
+    """``options`` with the task-runner settings (run-file section ``[execution]``: ``workers``, ``scheduler``;
+    or a dict in the old ``[engine]`` shape: ``kind``, ``workers``, ``address``) filled into its
     ``workers``/``scheduler`` fields (if it has them).
 
     The runner decides where the work runs, not its result, so it is not part of any stage's input hash.
@@ -534,9 +535,12 @@ def runner_options(options, engine: dict):
     names = {f.name for f in fields(options)}
     changes = {}
     if "workers" in names:
-        changes["workers"] = int(engine.get("workers") or 0) or None
+        changes["workers"] = int(execution.get("workers") or 0) or None
     if "scheduler" in names:
-        changes["scheduler"] = engine.get("address") or None if engine.get("kind") == "dask" else None
+        if "scheduler" in execution:
+            changes["scheduler"] = execution.get("scheduler") or None
+        else:   # the old [engine] shape
+            changes["scheduler"] = execution.get("address") or None if execution.get("kind") == "dask" else None
     return replace(options, **changes) if changes else options
 
 

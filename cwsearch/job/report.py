@@ -51,6 +51,7 @@ from markupsafe import escape
 
 from .. import __version__
 from ..core.fileio import write_text_atomic
+from ..data.truth import injected_noise
 from .headline import COLD_SWAP_MIN, PAIR_SWAP_MIN, followup_targets, format_headline, headline_result, merge_sources, sampler_health
 from .runfolder import read_json as _read_json
 from .runfolder import read_table as _read_table
@@ -377,6 +378,23 @@ def _sec(sid, title, **kw):
     return base
 
 
+def _separation_deg(ra1, dec1, ra2, dec2):
+    """Great-circle angle [deg] between two directions given in degrees (haversine formula)."""
+    r1, d1, r2, d2 = (math.radians(x) for x in (ra1, dec1, ra2, dec2))
+    h = math.sin((d2 - d1) / 2) ** 2 + math.cos(d1) * math.cos(d2) * math.sin((r2 - r1) / 2) ** 2
+    return math.degrees(2 * math.asin(min(1.0, math.sqrt(h))))
+
+
+def _sky_truth_text(sky, truth):
+    """'; truth ra …, dec …, X° from the mean direction (inside/outside the 90 % radius)' or ''."""
+    if not truth or truth.get("ra") is None or truth.get("dec") is None:
+        return ""
+    sep = _separation_deg(sky["ra"], sky["dec"], truth["ra"], truth["dec"])
+    where = "inside" if sep <= sky.get("radius_90_deg", float("inf")) else "outside"
+    return (f"; truth (injection.json) ra {truth['ra']:.2f}°, dec {truth['dec']:.2f}°, {sep:.3g}° from the mean "
+            f"direction ({where} the 90 % radius)")
+
+
 def _truth_text(truth, key, fmt):
     return f" (truth {fmt(truth[key])})" if truth and truth.get(key) is not None else ""
 
@@ -498,6 +516,53 @@ class _extra_labels:
         LABELS.update(self.saved)
 
 
+def _pm(value, error, digits=3):
+    if not isinstance(value, (int, float)) or not math.isfinite(value):
+        return "–"
+    text = f"{value:.{digits}g}"
+    return text + (f" ± {error:.2g}" if isinstance(error, (int, float)) and math.isfinite(error) else "")
+
+
+def noise_pulsar_view(pulsars, true_noise=None):
+    """Per pulsar, the fitted noise of ``noise/summary.json`` (white factors per backend, red-noise
+    amplitude and index with their errors, goodness of fit) and, with ``true_noise``
+    (:func:`cwsearch.data.truth.injected_noise`), the true values beside them; None when the entries are
+    not in the noise stage's format."""
+    if not isinstance(pulsars, list) or not pulsars or not all(
+            isinstance(p, dict) and isinstance(p.get("white"), dict) for p in pulsars):
+        return None
+    truths = (true_noise or {}).get("pulsars") or {}
+    rows = []
+    for p in pulsars:
+        red = p.get("red_noise") if isinstance(p.get("red_noise"), dict) else {}
+        white = "; ".join(f"{b}: {_pm(w.get('sigma_scale'), w.get('sigma_scale_err'))}"
+                          for b, w in p["white"].items() if isinstance(w, dict))
+        gof = p.get("goodness_of_fit") or {}
+        row = {"name": p.get("name"), "model": red.get("model", ""),
+               "red_amplitude": _pm(red.get("log10_amplitude"), red.get("log10_amplitude_err")) if red.get("claimed")
+               else "–", "red_index": _pm(red.get("index"), red.get("index_err")) if red.get("claimed") else "–"}
+        if true_noise is not None:
+            t = truths.get(p.get("name")) or {}
+            t_red = t.get("red")
+            row["true_red"] = (f"log10 A {t_red['log10_amplitude']:.3g}, index {t_red['index']:.3g}" if t_red
+                               else "none")
+        row["white"] = white
+        if true_noise is not None:
+            t_white = (truths.get(p.get("name")) or {}).get("white") or {}
+            row["true_white"] = "; ".join(f"{b}: {w.get('sigma_scale', 1.0):.3g}" for b, w in t_white.items()
+                                          if isinstance(w, dict)) or "–"
+        row["flagged"] = "FAILED" if gof.get("flagged") else ("ok" if gof else "–")
+        rows.append(row)
+    extra = {"model": ("noise model", "", "text"), "red_amplitude": ("red log10 amplitude", "", "text"),
+             "red_index": ("red spectral index", "", "text"),
+             "true_red": ("true red noise (injection.json)", "", "text"),
+             "white": ("white-noise factor per backend", "", "text"),
+             "true_white": ("true white-noise factor", "", "text"), "flagged": ("goodness of fit", "", "text")}
+    with _extra_labels(extra):
+        return table_view(rows, title="Per pulsar: fitted noise" + (" and the truth (injection.json)" if true_noise
+                                                                    else ""))
+
+
 def _noise(run: _Run):
     """The noise model: RUN/noise/summary.json rendered generically (scalars, per-pulsar table, figures)."""
     s = _sec("noise", dict(SECTIONS)["noise"])
@@ -514,7 +579,11 @@ def _noise(run: _Run):
     s["notes"] = run.status_notes("noise") if "noise" in run.records else []
     s["items"] = _items(summary, skip=("pulsars", "options"))
     pulsars = summary.get("pulsars")
-    if isinstance(pulsars, list) and pulsars and all(isinstance(p, dict) for p in pulsars):
+    true_noise = injected_noise(run.dir)
+    fitted = noise_pulsar_view(pulsars, true_noise)
+    if fitted:
+        s["tables"].append(fitted)
+    elif isinstance(pulsars, list) and pulsars and all(isinstance(p, dict) for p in pulsars):
         flat = [{k: v for k, v in p.items() if not isinstance(v, (dict, list))} for p in pulsars]
         s["tables"].append(table_view(flat, title="Per pulsar"))
     elif isinstance(pulsars, dict):
@@ -523,8 +592,13 @@ def _noise(run: _Run):
         s["tables"].append(table_view(flat, title="Per pulsar"))
     for k, v in summary.items():
         if isinstance(v, dict) and k not in ("options", "pulsars"):
+            items = _items(v)
+            if k == "common" and true_noise is not None:
+                bg = true_noise.get("background")
+                items.append(("truth (injection.json)", "no background injected" if not bg else
+                              f"log10 amplitude {bg['log10_amplitude']:.3g}, index {bg['index']:.3g}"))
             s["subsections"].append({"title": k.replace("_", " "), "notes": [], "paragraphs": [],
-                                     "tables": [], "items": _items(v), "figures": []})
+                                     "tables": [], "items": items, "figures": []})
     s["figures"] = [_figure(p) for p in _images(folder)]
     return s
 
@@ -652,6 +726,10 @@ BACKGROUND_LABELS = {"uncorrelated": "uncorrelated common background (pulsars in
                      "none": "no common background (pulsar noise only)"}
 
 
+def _finite(x):
+    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+
+
 def background_comparison_view(summary):
     """Per candidate, the Bayes factor of binary versus background under each background model of the
     follow-up's ``background_comparison`` (docs/design.md §5b) as a small table, and the sentences saying
@@ -677,8 +755,12 @@ def background_comparison_view(summary):
             how = "importance reweighting of the posterior samples"
             if isinstance(ess, (int, float)) and n:
                 how += f" (importance ESS {ess:.0f} of {int(n)})"
-            unc = comp.get("reweighting_error")
-        text = f"{v:.2f}" + (f" ± {float(unc):.2f}" if isinstance(unc, (int, float)) and math.isfinite(unc) else "")
+            rw = comp.get("reweighting_error")
+            # ln B_other = ln B + ln mean(w): its error holds the sampled one and the reweighting one
+            unc = math.hypot(err, rw) if _finite(err) and _finite(rw) else (rw if _finite(rw) else None)
+            if _finite(rw):
+                how += f"; error: the sampled one and ±{rw:.2g} from the reweighting"
+        text = f"{v:.2f}" + (f" ± {float(unc):.2f}" if _finite(unc) else "")
         verdict = "binary preferred" if v > 0 else "background alone preferred"
         rows.append({"cells": [{"text": BACKGROUND_LABELS.get(k, k), "numeric": False, "sort": None},
                                {"text": text, "numeric": True, "sort": repr(v)},
@@ -709,6 +791,10 @@ def background_comparison_view(summary):
             else:
                 sentences.append(f"Here ln B = {hd:.2f} under the Hellings–Downs background and {unc:.2f} "
                                  "uncorrelated: neither prefers a binary.")
+            rw = comp.get("reweighting_error")
+            sentences.append(f"Difference (uncorrelated minus Hellings–Downs): {unc - hd:.2f}"
+                             + (f" ± {rw:.2g} (the sampled error is common to both and cancels)" if _finite(rw)
+                                else "") + ".")
     if comp.get("warning"):
         sentences.append("Warning: " + str(comp["warning"]) + ".")
     if comp.get("note") and len(values) < 2:
@@ -749,7 +835,8 @@ def _followup(run: _Run):
                     f"Sky position: ra {sky['ra']:.2f}°, dec {sky['dec']:.2f}° (mean direction of the samples), "
                     f"90 % of the samples within {sky['radius_90_deg']:.3g}° of it, 90 % credible area "
                     f"{sky['credible_area_90_deg2']:.3g} deg² (HEALPix nside {sky['map_nside']}, "
-                    f"{sky['pixel_area_deg2']:.3g} deg² pixels; map in {sky.get('map_file', 'the run folder')}).")
+                    f"{sky['pixel_area_deg2']:.3g} deg² pixels; map in {sky.get('map_file', 'the run folder')})"
+                    + _sky_truth_text(sky, run.truth) + ".")
             sub["paragraphs"].extend(bg_text)
             sub["tables"] = [t for t in (bg_table, _parameter_table(summary, run.truth or {}), _health_table(summary))
                              if t]
@@ -789,7 +876,14 @@ def _hosts(run: _Run):
         cols = [c for c in ("name", "candidate", "probability", "ra", "dec", "distance", "redshift", "log_bayes_factor",
                             "n_effective", "sky_density", "distance_consistency", "mass_consistency",
                             "period_consistency", "log10_bh_mass", "mass_proxy") if c in table.colnames]
-        s["tables"].append(table_view(table, cols, 15, "probability", True))
+        truth = None
+        if run.truth and run.truth.get("ra") is not None:
+            truth = {k: run.truth[k] for k in ("ra", "dec") if k in run.truth}
+            if run.truth.get("luminosity_distance") is not None:
+                truth["distance"] = run.truth["luminosity_distance"]
+            s["paragraphs"].append("First row (shaded): the injected binary's position and luminosity distance "
+                                   "(injection.json), to compare with the ranked galaxies.")
+        s["tables"].append(table_view(table, cols, 15, "probability", True, truth=truth))
     if summ.get("caution"):
         s["paragraphs"].append(summ["caution"])
     s["figures"] = [_figure(p) for p in _images(run.dir / "hosts")]
@@ -820,6 +914,27 @@ def galaxy_limits_view(table):
                                       "table against frequency is galaxy_limits.ecsv)")
 
 
+def limits_truth_text(table, truth):
+    """The injected strain beside the sky-averaged 95 % limit at the injected frequency (log-log
+    interpolation of ``frequency_limits.ecsv``), or '' without a truth or a table."""
+    if table is None or not len(table) or not truth or truth.get("strain") is None or truth.get("frequency") is None:
+        return ""
+    f = np.asarray(table["frequency"], dtype=float)
+    h = np.asarray(table["strain_95"], dtype=float)
+    ok = np.isfinite(f) & np.isfinite(h) & (f > 0) & (h > 0)
+    f0, h0 = float(truth["frequency"]), float(truth["strain"])
+    text = f"Truth (injection.json): strain amplitude h0 = {h0:.3g} at {f0 * 1e9:.3g} nHz"
+    if ok.sum() >= 1 and f[ok].min() <= f0 <= f[ok].max():
+        order = np.argsort(f[ok])
+        limit = float(10 ** np.interp(np.log10(f0), np.log10(f[ok][order]), np.log10(h[ok][order])))
+        relation = "above" if h0 > limit else "below"
+        text += (f"; the sky-averaged 95 % limit there is {limit:.3g}: the injected strain lies {relation} it "
+                 "(a calibrated 95 % limit sits above a present signal in about 95 % of datasets)")
+    else:
+        text += " (outside the frequencies of the limits stage)"
+    return text + "."
+
+
 def _limits(run: _Run):
     s = _sec("limits", dict(SECTIONS)["limits"], notes=run.status_notes("limits"))
     best = run.headline.get("best_limit")
@@ -844,6 +959,9 @@ def _limits(run: _Run):
                          "noise-only 95 % range)")
             s["paragraphs"].append(text + ".")
     ftab = _read_table(run.dir / "limits" / "frequency_limits.ecsv")
+    truth_line = limits_truth_text(ftab, run.truth)
+    if truth_line:
+        s["paragraphs"].append(truth_line)
     if ftab is not None and len(ftab):
         cols = [c for c in ("frequency", "strain_95", "strain_95_best", "strain_95_median", "strain_95_worst",
                             "strain_95_frequentist", "fe_max") if c in ftab.colnames]
@@ -993,5 +1111,5 @@ def build_report(run_dir) -> Path:
 
 __all__ = ["build_report", "render_report", "embed_png", "table_view", "fmt_number", "first_screen",
            "headline_result", "format_headline",
-           "galaxy_limits_view", "background_comparison_view", "BACKGROUND_LABELS", "SECTIONS", "GENERAL_CAUTIONS",
+           "galaxy_limits_view", "limits_truth_text", "noise_pulsar_view", "background_comparison_view", "BACKGROUND_LABELS", "SECTIONS", "GENERAL_CAUTIONS",
            "LABELS", "CAPTIONS"]

@@ -279,6 +279,9 @@ def stage_guard(run_dir, checksum=None, *, dataset_record=None):
         raise InputError(f"this run folder holds results of another dataset (its dataset.json records checksum "
                          f"{recorded[:12]}..., this dataset has {checksum[:12]}...); choose another --out, or "
                          "give the dataset the folder was made from", file=run_dir)
+    # the stage summaries record the dataset too: a folder without dataset.json (older, or edited by hand)
+    # is checked through them, and one whose summaries disagree with its dataset.json is refused
+    check_results_dataset(run_dir, checksum if checksum is not None else recorded)
     try:
         with RunLock(run_dir):
             yield
@@ -290,6 +293,35 @@ def stage_guard(run_dir, checksum=None, *, dataset_record=None):
                 run_dir.rmdir()  # only if empty
             except OSError:
                 pass
+
+
+#: stage summaries that record the dataset checksum of their results (``noise_model.dataset_checksum``)
+RESULT_SUMMARIES = ("scan/scan_summary.json", "followup/summary.json", "followup/candidate_*/summary.json",
+                    "limits/limits_summary.json")
+
+
+def check_results_dataset(run_dir, checksum):
+    """Refuse (InputError naming the file) a run folder whose stage results were made from another dataset
+    than ``checksum`` (the dataset at hand, or the one the folder records): each summary of
+    :data:`RESULT_SUMMARIES` that states ``noise_model.dataset_checksum`` must state this one. Without a
+    ``checksum`` the summaries must agree with each other."""
+    run_dir = Path(run_dir)
+    if not run_dir.is_dir():
+        return
+    seen = None
+    for pattern in RESULT_SUMMARIES:
+        for path in sorted(run_dir.glob(pattern)):
+            data = read_json(path)
+            model = data.get("noise_model") if isinstance(data, dict) else None
+            theirs = model.get("dataset_checksum") if isinstance(model, dict) else None
+            if not isinstance(theirs, str):
+                continue
+            want = checksum if checksum is not None else seen
+            if want is not None and theirs != want:
+                raise InputError(f"these results were made from another dataset (checksum {escape_text(theirs[:12])}"
+                                 f"..., not {want[:12]}...): the run folder mixes datasets; choose another --out "
+                                 "or rerun the stage", file=path)
+            seen = theirs
 
 
 def recorded_checksum(run_dir):
@@ -345,7 +377,7 @@ def provenance_record(config, checksum, started, previous=None) -> dict:
         "host": socket.gethostname(),
         "cpu_count": cpu_count(),
         "platform": platform.platform(),
-        "engine": dict(config.engine),
+        "execution": dict(config.execution),
         "versions": package_versions(),
         "history": history[-20:],
     }

@@ -46,6 +46,7 @@ from __future__ import annotations
 import contextlib
 import ctypes
 import re
+import sys
 from concurrent.futures import as_completed, ThreadPoolExecutor
 from dataclasses import dataclass
 
@@ -217,17 +218,20 @@ def _drop_null_directions(x, y, z, z_scale):
         x[..., p, f], y[..., p, f] = xy[..., 0], xy[..., 1]
 
 
-@contextlib.contextmanager
-def _blas_threads(n):
-    """Temporarily set the OpenBLAS thread count of numpy/scipy (no-op where it cannot be found).
+#: (number of imported modules, [(get, set) thread-count functions]) of the last scan of the loaded
+#: OpenBLAS libraries: scanning /proc/self/maps costs milliseconds, the likelihood calls this per batch
+_BLAS_LIBRARIES = (-1, [])
 
-    :func:`project` runs one pulsar per thread; letting each skinny whitening
-    product spawn BLAS threads as well oversubscribes the cores, which costs
-    a factor of several on a busy machine (measured in bench.scan).
-    """
-    handles = []
+
+def _blas_functions():
+    """The (get, set) thread-count functions of every loaded OpenBLAS, found again only after new
+    imports (which may load another BLAS)."""
+    global _BLAS_LIBRARIES
+    n_modules = len(sys.modules)
+    if _BLAS_LIBRARIES[0] == n_modules:
+        return _BLAS_LIBRARIES[1]
+    found = []
     try:
-
         with open("/proc/self/maps") as fh:
             paths = sorted(set(re.findall(r"(/\S*openblas\S*\.so\S*)", fh.read())))
         for path in paths:
@@ -237,14 +241,29 @@ def _blas_threads(n):
                     get = getattr(lib, f"{prefix}get_num_threads{suffix}", None)
                     put = getattr(lib, f"{prefix}set_num_threads{suffix}", None)
                     if get is not None and put is not None:
-                        handles.append((put, int(get())))
-                        put(int(n))
+                        found.append((get, put))
                         break
                 else:
                     continue
                 break
     except (OSError, AttributeError, ValueError):
         pass
+    _BLAS_LIBRARIES = (n_modules, found)
+    return found
+
+
+@contextlib.contextmanager
+def _blas_threads(n):
+    """Temporarily set the OpenBLAS thread count of numpy/scipy (no-op where it cannot be found).
+
+    :func:`project` runs one pulsar per thread; letting each skinny whitening
+    product spawn BLAS threads as well oversubscribes the cores, which costs
+    a factor of several on a busy machine (measured in bench.scan).
+    """
+    handles = []
+    for get, put in _blas_functions():
+        handles.append((put, int(get())))
+        put(int(n))
     try:
         yield
     finally:

@@ -31,11 +31,8 @@ True
 
 from __future__ import annotations
 
-import math
 import os
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass
-from typing import Literal
 
 import numpy as np
 from scipy.linalg import cho_factor, lapack, qr, solve_triangular
@@ -43,69 +40,7 @@ from scipy.linalg import cho_factor, lapack, qr, solve_triangular
 from threadpoolctl import threadpool_limits
 
 from ..core.constants import YEAR_FREQUENCY
-from ..core.errors import InputError
-from ..core.safeio import check_count
-
-
-@dataclass(frozen=True)
-class NoiseSettings:
-    """Run-level noise-model choices (per-pulsar values come from the dataset).
-
-    Attributes
-    ----------
-    red_components : int
-        Number of Fourier frequencies k/T_span, k = 1..K, for red processes.
-    pulsar_red_noise : bool
-        Use the per-pulsar red noise given in the dataset.
-    common_log10_amplitude : float or None
-        log10 amplitude of a common red process added to every pulsar (None: off).
-    common_index : float
-        Spectral index γ of the common process (13/3 for a background of
-        circular binaries, Phinney 2001).
-    white_noise_factors : bool
-        Apply ``sigma_scale``/``sigma_added`` from the dataset.
-    common_correlation : ``"hellings-downs"``, ``"uncorrelated"`` or ``"none"``
-        How the common process couples the pulsars (used only when
-        ``common_log10_amplitude`` is set): Hellings–Downs correlated (default;
-        the array-level engine of :mod:`cwsearch.physics.correlated`), a common
-        spectrum uncorrelated between pulsars (in each pulsar's Fourier prior),
-        or ``"none"``: the common process is left out of the noise model.
-        :func:`cwsearch.physics.correlated.array_noise` is the one place that
-        turns this choice into an engine. :class:`NoiseWeighting` itself is the
-        per-pulsar engine and always puts a given common process in each
-        pulsar's prior.
-    common_components : int or None
-        Fourier frequencies of the common process, K_common ≤ ``red_components``
-        (None: ``red_components``). The correlated engine's cost grows as
-        (N_psr · 2K_common)³ while the background's power falls as f^−γ: above
-        the frequency where it drops below the white-noise level it adds
-        nothing measurable (:func:`cwsearch.physics.correlated.common_components_needed`
-        reports that K).
-    """
-
-    red_components: int = 30
-    pulsar_red_noise: bool = True
-    common_log10_amplitude: float | None = None
-    common_index: float = 13.0 / 3.0
-    white_noise_factors: bool = True
-    common_correlation: Literal["hellings-downs", "uncorrelated", "none"] = "hellings-downs"
-    common_components: int | None = None
-
-    def __post_init__(self):
-        check_count(self.red_components, "red_components", minimum=0, maximum=MAX_RED_COMPONENTS)
-        if self.common_components is not None:
-            check_count(self.common_components, "common_components", minimum=0, maximum=MAX_RED_COMPONENTS)
-        for name in ("common_log10_amplitude", "common_index"):
-            value = getattr(self, name)
-            if value is not None and not (isinstance(value, (int, float)) and math.isfinite(value)):
-                raise InputError(f"option --{name.replace('_', '-')}: must be a finite number, not {value!r}")
-        if self.common_log10_amplitude is not None and not -30 <= self.common_log10_amplitude <= -5:
-            raise InputError("option --common-log10-amplitude: must be between -30 and -5 "
-                             f"(a log10 strain amplitude), not {self.common_log10_amplitude}")
-
-
-#: most Fourier frequencies of a red process (k/T_span, k = 1..K): 1000 reaches daily cadence for 3 years
-MAX_RED_COMPONENTS = 1000
+from .noise_settings import MAX_RED_COMPONENTS, NoiseSettings  # re-exported: the engine's settings
 
 
 def common_components(settings: NoiseSettings) -> int:
@@ -455,6 +390,6 @@ class PulsarLikelihood:
 
 
 __all__ = [
-    "NoiseSettings", "fourier_frequencies", "fourier_basis", "powerlaw_variance", "hellings_downs",
+    "NoiseSettings", "MAX_RED_COMPONENTS", "fourier_frequencies", "fourier_basis", "powerlaw_variance", "hellings_downs",
     "PulsarWeighting", "NoiseWeighting", "PulsarLikelihood",
 ]

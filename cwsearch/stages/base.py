@@ -16,7 +16,9 @@ Examples
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
+from importlib import import_module
 from typing import Callable, Protocol
 
 
@@ -39,4 +41,37 @@ class Stage:
     products: tuple = ()
 
 
-__all__ = ["Stage", "StageResult"]
+def lazy_run(package: str, name: str) -> Callable:
+    """The stage's ``run``: ``package.stage.<name>``, imported at the first call (so that importing the
+    registry and the options stays cheap: ``cwsearch COMMAND --help`` loads no numpy, numba or matplotlib)."""
+
+    def run(array, run_dir, options, **kwargs):
+        return getattr(import_module(f"{package}.stage"), name)(array, run_dir, options, **kwargs)
+
+    run.__name__ = run.__qualname__ = name
+    run.__doc__ = f"Run the stage: :func:`{package}.stage.{name}` (imported at the first call)."
+    return run
+
+
+def lazy_module_getattr(package: str) -> Callable:
+    """A module ``__getattr__`` (PEP 562) for a stage package: its submodules, and the public names of
+    its ``stage.py``, imported at their first use."""
+
+    @functools.lru_cache(maxsize=None)
+    def _stage():
+        return import_module(f"{package}.stage")
+
+    def __getattr__(name):
+        if name in ("stage", "plots", "options"):
+            return import_module(f"{package}.{name}")
+        if name.startswith("__"):
+            raise AttributeError(f"module {package!r} has no attribute {name!r}")
+        try:
+            return getattr(_stage(), name)
+        except AttributeError:
+            raise AttributeError(f"module {package!r} has no attribute {name!r}") from None
+
+    return __getattr__
+
+
+__all__ = ["Stage", "StageResult", "lazy_run", "lazy_module_getattr"]

@@ -181,20 +181,23 @@ def signal_draws(likelihood, array, table, n_draws=RESIDUAL_DRAWS, seed=0):
            ("ra", "dec", "frequency", "chirp_mass", "strain", "inclination", "polarization", "phase")}
     ra, dec = np.radians(col["ra"]), np.radians(col["dec"])
     out = [np.empty((pick.size, p.n_toas)) for p in array]
+    if not pick.size:
+        return out
     pulsar_term = bool(likelihood.pulsar_term)
+    # per-pulsar products (d|b_j), (b_i|b_j) of every draw at once: the sampler's batched path
+    fplus, fcross, dvec, gmat = likelihood.shape_batch(ra, dec, col["frequency"], col["chirp_mass"])
+    _, _, odp = waveform.antenna_pattern(ra, dec, array.positions)
     for k in range(pick.size):
-        cache = likelihood.shape_cache(ra[k], dec[k], col["frequency"][k], col["chirp_mass"][k])
-        _, _, odp = waveform.antenna_pattern(ra[k], dec[k], array.positions)
         for i, p in enumerate(array):
             basis, _ = waveform.residual_basis(p.toas, likelihood.reference_time, col["frequency"][k],
-                                               col["chirp_mass"][k], p.distance, odp[i], likelihood.evolution)
+                                               col["chirp_mass"][k], p.distance, odp[k, i], likelihood.evolution)
 
             def coeffs_of(pulsar_phase, i=i):
                 return np.atleast_2d(waveform.basis_coefficients(
                     col["strain"][k], col["inclination"][k], col["polarization"][k], col["phase"][k],
-                    pulsar_phase, cache.fplus[i], cache.fcross[i], pulsar_term))
+                    pulsar_phase, fplus[k, i], fcross[k, i], pulsar_term))
 
-            chi = _draw_pulsar_phases(coeffs_of, cache.dvec[i], cache.gmat[i], rng) if pulsar_term else 0.0
+            chi = _draw_pulsar_phases(coeffs_of, dvec[k, i], gmat[k, i], rng) if pulsar_term else 0.0
             out[i][k] = postfit(p, basis @ coeffs_of(chi)[0])
     return out
 
@@ -242,6 +245,15 @@ def residual_plot(path, array, signals, truth_signals=None, max_panels=MAX_RESID
             ax.plot(years, medians[int(i)] * ns, color="tab:blue", lw=1.3, zorder=3)
         if truth_signals is not None:
             ax.plot(years, truth_signals[int(i)] * ns, color="#e6007e", lw=1.1, ls="--", zorder=4)
+        # the y range follows the bulk of the residuals and the curves, not a few outlying TOAs
+        curves = [p.residuals * 0]
+        if s.size:
+            curves += [lo, hi]
+        if truth_signals is not None:
+            curves.append(truth_signals[int(i)])
+        top = max(float(np.percentile(np.abs(p.residuals), 99)), float(np.max(np.abs(np.concatenate(curves)))))
+        if top > 0:
+            ax.set_ylim(-1.25 * top * ns, 1.25 * top * ns)
         ax.set_title(p.name, fontsize=9)
         ax.tick_params(labelsize=7)
         ax.grid(alpha=0.3)

@@ -44,7 +44,6 @@ Examples
 
 from __future__ import annotations
 
-import math
 import os
 import time
 from dataclasses import asdict, dataclass, field, replace
@@ -58,7 +57,7 @@ from ...core.candidates import candidate_row
 from ...core.constants import YEAR_SECONDS
 from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
-from ...core.safeio import check_count, read_input_text, require_finished
+from ...core.safeio import read_input_text, require_finished
 from ...inference import sampling
 from ...inference.likelihood import Likelihood
 from ...inference.noisefit import stage_noise_statement
@@ -68,7 +67,7 @@ from ...data.healpix_fits import credible_area, posterior_sky_map, write_healpix
 from ...physics.correlated import ArrayNoise
 from ...physics.noise import NoiseSettings
 from ...physics.sky import angular_separation, unit_vectors
-from ...physics.waveform import EVOLUTION_MODES
+from .options import FollowupOptions  # the options live beside (standard library only)
 
 STRAIN_RANGE = (1e-18, 1e-11)
 CHIRP_MASS_RANGE = (1e7, 1e11)
@@ -76,60 +75,6 @@ OUTPUT_COLUMNS = ("ra", "dec", "frequency", "chirp_mass", "strain", "inclination
                   "luminosity_distance", "orbital_period")
 #: per-sample bookkeeping columns of ``posterior.ecsv`` after :data:`OUTPUT_COLUMNS`
 SAMPLE_COLUMNS = ("log_likelihood", "log_prior", "iteration", "walker")
-
-
-@dataclass(frozen=True)
-class FollowupOptions:
-    """Options of the follow-up stage; names equal the CLI options (dashes -> underscores)."""
-
-    candidate: int | str | None = None  # row K (1-based) of the candidates file, or candidate_K (None: best `top`)
-    top: int = 1                        # how many of the best candidates to follow
-    frequency: float | None = None      # explicit target [Hz] (with ra, dec [deg])
-    ra: float | None = None
-    dec: float | None = None
-    all_sky: bool = False
-    resume: bool = False
-    ess: float = 1000.0
-    max_iterations: int = 20000
-    max_time: float | None = None       # seconds
-    temperatures: int = 10
-    walkers: int = 32
-    max_temperature: float = 1e6
-    earth_term_only: bool = False
-    evolution: str = "full"
-    frequency_window: float = 5.0       # bins of 1/T_span either side of the target
-    max_frequency: float = 1e-7         # Hz, upper edge of the all-sky band
-    strain_prior: str = "log-uniform"
-    phase_grid: int = 0
-    checkpoint_every: int = 100
-    adapt_iterations: int = 500
-    max_temperatures: int | None = None  # the ladder may grow to this many (None: 3 x temperatures, at most 40)
-    no_plots: bool = False              # skip the corner, sky and trace plots (PNG)
-
-    def validate(self):
-        if self.evolution not in EVOLUTION_MODES:
-            raise InputError(f"--evolution must be one of {', '.join(EVOLUTION_MODES)}, not {self.evolution!r}")
-        if self.strain_prior not in ("log-uniform", "uniform"):
-            raise InputError("--strain-prior must be 'log-uniform' or 'uniform'")
-        if self.walkers < 18 or self.walkers % 2:
-            raise InputError("--walkers must be even and at least 18 (ptemcee needs > 2 x 8 parameters)")
-        if self.temperatures < 1 or self.max_temperature <= 1:
-            raise InputError("--temperatures must be >= 1 and --max-temperature > 1")
-        if self.max_temperatures is not None and self.max_temperatures < 1:
-            raise InputError("--max-temperatures must be >= 1")
-        explicit = [v is not None for v in (self.frequency, self.ra, self.dec)]
-        if any(explicit) and not all(explicit):
-            raise InputError("an explicit target needs all of --frequency, --ra and --dec")
-        if self.ess <= 0 or self.max_iterations <= 0:
-            raise InputError("--ess and --max-iterations must be positive")
-        if self.max_time is not None and not (math.isfinite(self.max_time) and self.max_time > 0):
-            raise InputError(f"--max-time must be a positive number of seconds, not {self.max_time}")
-        check_count(self.max_iterations, "max_iterations", minimum=1, maximum=10_000_000)
-        check_count(self.walkers, "walkers", minimum=18, maximum=10_000)
-        check_count(self.temperatures, "temperatures", minimum=1, maximum=200)
-        check_count(self.checkpoint_every, "checkpoint_every", minimum=1, maximum=10_000_000)
-        if not math.isfinite(self.ess):   # a huge --ess is legal: the iteration cap or --max-time stops the run
-            raise InputError(f"--ess must be a finite number, not {self.ess}")
 
 
 @dataclass

@@ -53,7 +53,7 @@ def make_plots(folder, res, model, options, truth=None, pulsars=None):
     paths = [sky_plot(folder / "hosts_sky.png", res, truth), zoom_plot(folder / "hosts_sky_zoom.png", res, truth),
              followup_sky_plot(folder / "hosts_followup_sky.png", res, pulsars, truth)]
     if len(res.ranking):
-        paths.append(chirp_mass_plot(folder / "hosts_chirp_mass.png", res, model, min(options.top, 6)))
+        paths.append(chirp_mass_plot(folder / "hosts_chirp_mass.png", res, model, min(options.top, 6), truth))
     return paths
 
 
@@ -78,7 +78,7 @@ def sky_plot(path, res, truth=None):
 def followup_sky_map(res):
     """(nside, probability per pixel, where it came from) of the candidate's localisation: the follow-up's
     ``posterior_sky.fits`` when it sits next to the posterior file, else a histogram of the samples at the
-    coarsest nside that still resolves them (nside 16)."""
+    finest nside (at most 64) whose occupied pixels hold at least 10 samples on average."""
     loc = res.localisation
     fits_path = Path(loc.source).parent / "posterior_sky.fits" if loc.kind == "posterior" else None
     if fits_path is not None and fits_path.is_file():
@@ -90,8 +90,12 @@ def followup_sky_map(res):
                 return nside, prob / prob.sum(), "follow-up posterior_sky.fits"
         except (OSError, KeyError, ValueError, TypeError):
             pass
-    nside = 16
-    return nside, posterior_sky_map(loc.ra, loc.dec, nside), f"histogram of {len(loc)} samples"
+    nside = 64      # coarsened until the occupied pixels hold >= 10 samples on average, as the follow-up's map
+    prob = posterior_sky_map(loc.ra, loc.dec, nside)
+    while nside > 1 and len(loc) / max(np.count_nonzero(prob), 1) < 10:
+        nside //= 2
+        prob = posterior_sky_map(loc.ra, loc.dec, nside)
+    return nside, prob, f"histogram of {len(loc)} samples"
 
 
 def _credible_levels(prob):
@@ -120,7 +124,7 @@ def followup_sky_figure(res, pulsars=None, truth=None, n_hosts=SKY_MAP_HOSTS):
     for k in range(n):
         marks.append({"ra": math.radians(float(table["ra"][k])), "dec": math.radians(float(table["dec"][k])),
                       "marker": "o", "size": 36, "color": [colors(1)], "edge": "black", "text": str(k + 1),
-                      "label": "top hosts (numbered in the zoom)" if k == 0 else None})
+                      "label": "top hosts (numbered; names below)" if k == 0 else None})
     footer = None
     if n:
         footer = "top hosts  " + "   ".join(f"{k + 1}: {table['name'][k]} (p = {table['probability'][k]:.2g})"
@@ -188,7 +192,7 @@ def zoom_plot(path, res, truth=None):
     return path
 
 
-def chirp_mass_plot(path, res, model, n_top):
+def chirp_mass_plot(path, res, model, n_top, truth=None):
     plt = pyplot()
     loc = res.localisation
     table = res.ranking
@@ -226,6 +230,9 @@ def chirp_mass_plot(path, res, model, n_top):
             ax.plot(x, dens, color="tab:red", lw=1.5, label=f"expected ({used[i]})")
         else:
             ax.text(0.02, 0.9, "no mass proxy", transform=ax.transAxes, fontsize=8)
+        if truth and truth.get("chirp_mass"):
+            ax.axvline(math.log10(truth["chirp_mass"]), color="#e6007e", ls="--", lw=1.3,
+                       label="true chirp mass (injection.json)")
         ax.set_title(f"{table['name'][k]}  d={table['distance'][k]:.0f} Mpc  p={table['probability'][k]:.3f}",
                      fontsize=8)
         ax.set_xlabel("log10 chirp mass [Msun] (observed frame)", fontsize=8)

@@ -76,7 +76,6 @@ import json
 import math
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Literal
 
 import numpy as np
 from astropy.table import Table, vstack
@@ -97,6 +96,7 @@ from ...physics.relations import (chirp_mass_offset_table, LN10, MassRatioPrior,
                                   redshift_at_distance, RELATIONS)
 from ...physics.sky import _healpix, pixel_centres, unit_vectors
 from ...physics.waveform import luminosity_distance_for_strain, orbital_period, time_to_coalescence
+from .options import HostsOptions  # the options live beside (standard library only)
 
 #: search prior of the follow-up (docs/design.md §8): log-uniform chirp mass range [Msun]
 SEARCH_CHIRP_MASS_RANGE = (1e7, 1e11)
@@ -109,61 +109,6 @@ DEFAULT_SPAN_YEARS = 15.0
 #: posterior columns needed
 POSTERIOR_COLUMNS = ("ra", "dec", "frequency", "chirp_mass", "strain")
 _LN4PI = math.log(4 * math.pi)
-
-
-def _opt(default, help_text):
-    return field(default=default, metadata={"help": help_text})
-
-
-@dataclass(frozen=True)
-class HostsOptions:
-    """Options of the host stage (names = CLI options with dashes -> underscores)."""
-
-    catalog: str | None = _opt(None, "galaxy catalogue, ECSV or CSV")
-    columns: str | None = _opt(None, "column-name mapping, e.g. 'ra=RAJ2000,dec=DEJ2000,distance=Dist'")
-    completeness: float = _opt(0.5, "prior probability that the host is in the catalogue (within its "
-                                    "distance limit)")
-    relation: Literal["mcconnell-ma", "kormendy-ho"] = _opt("mcconnell-ma", "black-hole mass - bulge mass relation")
-    top: int = _opt(10, "rows in the printed table and hosts in the chirp-mass plot (max 6 there)")
-    distance_limit: float | None = _opt(None, "catalogue distance limit [Mpc] (default: its largest distance)")
-    distance_error: float = _opt(0.1, "fractional distance error where the catalogue gives none")
-    mass_ratio_min: float = _opt(0.1, "smallest mass ratio q of the log-uniform q prior")
-    period_factor: float = _opt(1.0, "EM period = period_factor x orbital period (1: EM period is the orbital "
-                                     "period 2/f_gw; 0.5: it is the GW period)")
-    sky_bandwidth: float | None = _opt(None, "sky kernel bandwidth [deg] (default: Scott's rule)")
-    resolution: float = _opt(10.0, "sky resolution [deg, 1 sigma] for a scan candidate without an Fe map")
-    sky_map: str | None = _opt(None, "Fe sky map (ECSV with pixel, fe) for a scan candidate")
-    candidate: str | None = _opt(None, "follow-up sub-folder name or scan candidate row (1 = best)")
-    observed_span: float | None = _opt(None, "observed span [yr] (default: from the dataset, else 15)")
-    max_samples: int = _opt(20000, "use at most this many posterior samples (random subset)")
-    no_plots: bool = _opt(False, "skip the PNG plots")
-
-    def validate(self):
-        """Raise :class:`InputError` for values the host stage cannot use (the catalogue itself is checked when
-        the stage runs: a run file may leave it out); returns ``self``."""
-        if not 0.0 <= self.completeness <= 1.0:
-            raise InputError(f"--completeness must be within [0, 1] (got {self.completeness})")
-        if self.relation not in RELATIONS:
-            raise InputError(f"--relation must be one of {', '.join(RELATIONS)} (got {self.relation!r})")
-        if self.top < 1:
-            raise InputError("--top must be >= 1")
-        if not 0 < self.mass_ratio_min <= 1:
-            raise InputError("--mass-ratio-min must be within (0, 1]")
-        if not self.distance_error > 0:
-            raise InputError("--distance-error must be > 0")
-        if self.distance_limit is not None and not self.distance_limit > 0:
-            raise InputError("--distance-limit must be > 0 Mpc")
-        if self.sky_bandwidth is not None and not 0 < self.sky_bandwidth < 60:
-            raise InputError("--sky-bandwidth must be within (0, 60) deg")
-        if not 0 < self.resolution < 90:
-            raise InputError("--resolution must be within (0, 90) deg")
-        if not self.period_factor > 0:
-            raise InputError("--period-factor must be > 0")
-        if self.max_samples < 100:
-            raise InputError("--max-samples must be >= 100")
-        if self.observed_span is not None and not self.observed_span > 0:
-            raise InputError("--observed-span must be > 0 yr")
-        return self
 
 
 @dataclass

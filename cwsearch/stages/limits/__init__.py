@@ -1,20 +1,24 @@
 """Stage 4, upper limits: 95 % strain limits versus frequency and sky, chirp-mass limits for galaxies.
 
-``Options`` is :class:`LimitsOptions`, ``run`` is :func:`run_limits`; the computation is in
+``Options`` is :class:`LimitsOptions` (``options.py``, standard library only), ``run`` is :func:`run_limits`; the computation is in
 ``stage.py``, the figures in ``plots.py``.
+Importing this package loads only the options; ``stage.py`` is imported at the first use of ``run``
+or of any other name, so the registry and ``cwsearch COMMAND --help`` stay fast.
 """
 
 from __future__ import annotations
 
-from ..base import Stage
-from . import stage
-from .stage import *  # noqa: F401,F403  (the stage's public names, listed in stage.__all__)
-from .stage import LimitsOptions, run_limits
+from ..base import Stage, lazy_module_getattr, lazy_run
+from .options import LimitsOptions
 
 Options = LimitsOptions
-run = run_limits
+#: :func:`run_limits` of ``stage.py``, imported at the first call
+run = lazy_run(__name__, "run_limits")
 
 #: this stage's entry in the registry :data:`cwsearch.stages.STAGES`
-STAGE = Stage("limits", LimitsOptions, run_limits, upstream=(), products=())
+STAGE = Stage("limits", LimitsOptions, run, upstream=(), products=())
 
-__all__ = ["Options", "run", "STAGE", *stage.__all__]
+#: the stage's other public names (``stage.__all__``), from ``stage.py`` at their first use
+__getattr__ = lazy_module_getattr(__name__)
+
+__all__ = ["Options", "run", "STAGE", "LimitsOptions", "run_limits"]

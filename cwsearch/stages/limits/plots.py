@@ -53,8 +53,9 @@ def sky_plot(path, sky_table, nside, array, truth=None):
             truth=None if not truth else (np.radians(truth["ra"]), np.radians(truth["dec"])))
 
 
-def galaxy_plot(path, galaxy_table):
-    """Chirp-mass 95 % limit versus frequency, one line per galaxy."""
+def galaxy_plot(path, galaxy_table, truth=None):
+    """Chirp-mass 95 % limit versus frequency, one line per galaxy; the injected binary's (frequency, chirp
+    mass) as a magenta plus when ``truth`` is given."""
     plt = pyplot()
     fig, ax = plt.subplots(figsize=(7, 4.5))
     names = list(dict.fromkeys(str(n) for n in galaxy_table["name"]))
@@ -63,6 +64,9 @@ def galaxy_plot(path, galaxy_table):
         d = float(np.asarray(galaxy_table["distance"])[sel][0])
         ax.plot(np.asarray(galaxy_table["frequency"])[sel] * 1e9, np.asarray(galaxy_table["chirp_mass_95"])[sel],
                 lw=1.5, label=f"{name} ({d:.3g} Mpc)")
+    if truth and "chirp_mass" in truth and "frequency" in truth:
+        ax.scatter([truth["frequency"] * 1e9], [truth["chirp_mass"]], marker="P", s=110, c="#e6007e",
+                   edgecolors="black", linewidths=0.7, zorder=5, label="truth (injection.json)")
     _nhz_axis(ax)
     ax.set_yscale("log")
     ax.set_ylabel(r"95 % upper limit on chirp mass [$M_\odot$]")
@@ -78,7 +82,7 @@ def make_plots(folder, frequencies, freq_table, sky_table, galaxy_table, array, 
     frequency_plot(folder / "strain_limits.png", freq_table, truth)
     sky_plot(folder / "sky_limits.png", sky_table, nside, array, truth)
     if galaxy_table is not None:
-        galaxy_plot(folder / "galaxy_limits.png", galaxy_table)
+        galaxy_plot(folder / "galaxy_limits.png", galaxy_table, truth)
         files["galaxy_plot"] = str(folder / "galaxy_limits.png")
     return files
 

@@ -59,7 +59,6 @@ import math
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Literal
 
 import astropy.units as u
 import numpy as np
@@ -81,8 +80,7 @@ from ...physics.fstat import default_max_frequency, frequency_grid, parameters_t
 from ...physics.correlated import array_noise
 from ...physics.noise import NoiseSettings
 from ...physics.waveform import chirp_mass_for_strain
-
-METHODS = ("bayes", "frequentist", "both")
+from .options import Galaxy, LimitsOptions, METHODS, parse_galaxies  # the options live beside (standard library)
 
 
 # ----------------------------------------------------------------------------- sky averages
@@ -189,49 +187,6 @@ def galaxy_chirp_mass_limit(strain_limit, gw_frequency, distance_mpc):
     '1e+09'
     """
     return chirp_mass_for_strain(strain_limit, gw_frequency, distance_mpc)
-
-
-@dataclass(frozen=True)
-class Galaxy:
-    """A named galaxy: position [deg] and luminosity distance [Mpc]."""
-
-    name: str
-    ra: float
-    dec: float
-    distance: float
-
-
-#: most local worker processes
-MAX_WORKERS = 1024
-
-
-def parse_galaxies(entries):
-    """:class:`Galaxy` objects from ``(NAME, RA_DEG, DEC_DEG, DISTANCE_MPC)`` tuples (CLI/TOML)."""
-    out = []
-    for k, entry in enumerate(entries or (), start=1):
-        if isinstance(entry, Galaxy):
-            out.append(entry)
-            continue
-        if len(entry) != 4:
-            raise InputError(f"--galaxy number {k} needs NAME RA DEC DISTANCE_MPC, got {len(entry)} values")
-        name = str(entry[0])
-        try:
-            ra, dec, dist = (float(v) for v in entry[1:])
-        except (TypeError, ValueError):
-            raise InputError(f"--galaxy {name}: RA, DEC and DISTANCE_MPC must be numbers") from None
-        _check_galaxy(name, ra, dec, dist, where=f"--galaxy {name}")
-        out.append(Galaxy(name, ra, dec, dist))
-    return out
-
-
-def _check_galaxy(name, ra, dec, dist, where, file=None, row=None):
-    if not (0.0 <= ra <= 360.0):
-        raise InputError(f"{where}: ra must be in [0, 360] deg, got {ra}", file=file, row=row, column="ra")
-    if not (-90.0 <= dec <= 90.0):
-        raise InputError(f"{where}: dec must be in [-90, 90] deg, got {dec}", file=file, row=row, column="dec")
-    if not (dist > 0 and np.isfinite(dist)):
-        raise InputError(f"{where}: distance must be > 0 Mpc, got {dist}", file=file, row=row,
-                         column="distance")
 
 
 def read_catalog_galaxies(path, select):
@@ -355,91 +310,6 @@ DEFAULT_FMAX = 1e-7
 ROWS_PER_TASK = 48
 
 
-@dataclass(frozen=True)
-class LimitsOptions:
-    """Options of the limits stage (CLI options of ``cwsearch limits``; ``[limits]`` in a run file).
-
-    Attributes
-    ----------
-    fmin, fmax : float or None
-        Frequency band [Hz]; defaults 1/T_span and min(1e-7 Hz, the scan's Nyquist-like limit).
-    oversample : int
-        Frequency spacing 1/(oversample · T_span).
-    nside : int
-        HEALPix resolution (power of two) of the sky grid.
-    sky_frequency : float or None
-        Frequency [Hz] of ``sky_limits.ecsv`` (nearest bin); default the most sensitive bin.
-    method : ``"bayes"``, ``"frequentist"`` or ``"both"``
-        ``strain_95`` columns use bayes unless the method is ``frequentist``.
-        ``bayes`` also reports the (cheap) frequentist limit in the frequency
-        table and the summary; ``both`` adds it to the sky and galaxy tables;
-        ``frequentist`` computes only that one.
-    workers : int or None
-        Local worker processes (None or 0: one per CPU).
-    scheduler : str or None
-        Address of a running dask.distributed scheduler (overrides ``workers``).
-    galaxy : tuple of (name, ra [deg], dec [deg], distance [Mpc])
-        Galaxies for chirp-mass limits.
-    catalog : str or None
-        Galaxy catalogue (ECSV/CSV) to take ``select`` galaxies from.
-    select : tuple of str
-        Galaxy names in ``catalog`` (each item may list several, comma-separated).
-    mcmc_check : int or None
-        Pixel at which to compare the quadrature limit with the sampler (at the sky frequency).
-    quadrature : ``"fast"``, ``"standard"`` or ``"fine"``
-        Angle-grid size of the Bayesian quadrature (see :data:`QUADRATURE`).
-    no_plots : bool
-        Skip the PNG plots.
-    """
-
-    fmin: float | None = None
-    fmax: float | None = None
-    oversample: int = 1
-    nside: int = 8
-    sky_frequency: float | None = None
-    method: Literal["bayes", "frequentist", "both"] = "bayes"
-    workers: int | None = None
-    scheduler: str | None = None
-    galaxy: tuple[tuple[str, float, float, float], ...] = ()
-    catalog: str | None = None
-    select: tuple[str, ...] = ()
-    mcmc_check: int | None = None
-    quadrature: Literal["fast", "standard", "fine"] = "standard"
-    no_plots: bool = False
-
-    def validate(self):
-        """Raise :class:`InputError` for values the stage cannot use; returns self."""
-        def bad(name, why):
-            raise InputError(f"option --{name.replace('_', '-')}: {why}")
-
-        for name in ("fmin", "fmax", "sky_frequency"):
-            v = getattr(self, name)
-            if v is not None and not (float(v) > 0 and math.isfinite(float(v))):
-                bad(name, f"must be > 0 Hz, not {v}")
-        if self.fmin is not None and self.fmax is not None and not self.fmax > self.fmin:
-            bad("fmax", f"must be above --fmin ({self.fmax} <= {self.fmin})")
-        if not (isinstance(self.oversample, (int, np.integer)) and self.oversample >= 1):
-            bad("oversample", f"must be an integer >= 1, not {self.oversample}")
-        nside = int(self.nside)
-        if nside != self.nside or nside < 1 or nside & (nside - 1) or nside > 256:
-            bad("nside", f"must be a power of two between 1 and 256, not {self.nside}")
-        if self.method not in METHODS:
-            bad("method", f"must be one of {', '.join(METHODS)}, not {self.method!r}")
-        if self.quadrature not in QUADRATURE:
-            bad("quadrature", f"must be one of {', '.join(QUADRATURE)}, not {self.quadrature!r}")
-        if self.workers is not None and (int(self.workers) != self.workers or self.workers < 0):
-            bad("workers", f"must be an integer >= 1 (0: one per CPU), not {self.workers}")
-        if self.mcmc_check is not None and not (0 <= int(self.mcmc_check) < 12 * nside * nside):
-            bad("mcmc_check", f"pixel must be in 0..{12 * nside * nside - 1} for nside {nside}, "
-                f"not {self.mcmc_check}")
-        if self.select and not self.catalog:
-            bad("select", "needs --catalog FILE")
-        if self.workers is not None and self.workers > MAX_WORKERS:
-            bad("workers", f"at most {MAX_WORKERS}, not {self.workers}")
-        parse_galaxies(self.galaxy)   # a bad galaxy is refused now (and by `run --check`), not mid-run
-        return self
-
-
 @dataclass
 class LimitsResult:
     """What :func:`run_limits` returns; every table is also written to ``run_dir/limits/``."""
@@ -513,11 +383,11 @@ def compute_limits(proj, ra, dec, *, method="bayes", quadrature="standard", work
                       "grid": QUADRATURE[quadrature], "level": float(level)})
         weights.append(sl.stop - sl.start)
     with TaskRunner(workers=workers, scheduler=scheduler) as runner:
-        engine = runner.describe()
+        where = runner.describe()
         with progress_bar(total=n_rows, desc="limits (pixel x frequency)", enabled=progress, unit="px") as bar:
             results = runner.map(_limits_task, tasks, weights=weights, on_done=bar.update)
     scale = 2 * np.pi * proj.frequencies[None, :]
-    out = {"fe": fe, "engine": engine}
+    out = {"fe": fe, "runner": where}
     if want_bayes:
         x95 = np.concatenate([r["bayes"][0] for r in results]).reshape(n_pos, n_freq)
         out["bayes"] = x95 * scale
@@ -573,22 +443,56 @@ def _finite_or_none(v):
     return v if math.isfinite(v) else None
 
 
-def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, noise=None, seed=0, progress=True):
-    """The limits stage: write ``run_dir/limits/`` and return a :class:`LimitsResult`.
+@dataclass
+class LimitsComputation:
+    """Everything the limits stage computed, before any file is written (:func:`compute_stage_limits`).
 
-    Files: ``frequency_limits.ecsv``, ``sky_limits.ecsv``, ``galaxy_limits.ecsv``
-    (with galaxies), ``limits_summary.json`` and PNG plots.
+    ``limits`` holds the per-point 95 % strain limits of each method computed, shape
+    (N_pix + N_galaxies, N_freq) (sky pixels first, then the galaxies' exact positions), the ``fe`` values
+    and the runner's description (``limits["runner"]``, from :func:`compute_limits`); ``averages`` the
+    sky-averaged limits per method, (N_freq,).
     """
-    options.validate()
-    noise = NoiseSettings() if noise is None else noise
-    started = time.time()
-    folder = Path(run_dir) / "limits"
-    galaxies = parse_galaxies(options.galaxy)
-    if options.catalog:
-        galaxies += read_catalog_galaxies(options.catalog, options.select)
-    names = [g.name for g in galaxies]
-    if len(set(names)) != len(names):
-        raise InputError("option --galaxy/--select: galaxy names must be unique")
+
+    frequencies: np.ndarray
+    nside: int
+    pixel_ra: np.ndarray                  # rad, HEALPix RING pixel centres
+    pixel_dec: np.ndarray                 # rad
+    galaxies: list
+    limits: dict
+    averages: dict
+    primary: str                          # the method of the strain_95 columns
+    method: str                           # the option as given (bayes, frequentist or both)
+    quadrature: str
+    sky_index: int                        # frequency bin of the sky table
+    noise_description: dict
+    check: dict | None = None             # the sampler check (--mcmc-check), if asked for
+    fmax_note: str | None = None
+
+    @property
+    def n_pixels(self) -> int:
+        return int(self.pixel_ra.size)
+
+    @property
+    def pixel_limits(self) -> np.ndarray:
+        """(N_pix, N_freq) limits of the primary method."""
+        return self.limits[self.primary][:self.n_pixels]
+
+    @property
+    def sky_frequency(self) -> float:
+        return float(self.frequencies[self.sky_index])
+
+
+@dataclass
+class LimitsTables:
+    """The stage's tables (astropy): per frequency, per pixel at the sky frequency, per galaxy (or None)."""
+
+    frequency: object
+    sky: object
+    galaxy: object | None
+
+
+def _band(array, options):
+    """The frequency grid of the limits, the note on its default top, and the bin of ``--sky-frequency``."""
     fmax = options.fmax if options.fmax is not None else min(DEFAULT_FMAX, default_max_frequency(array))
     fmin = options.fmin
     if fmin is not None and options.fmax is None and not fmax > fmin:
@@ -600,7 +504,6 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
                      f"{default_max_frequency(array):.3g} Hz (1/(2 x median TOA spacing), at most 1e-6 Hz): every "
                      "limit frequency costs a quadrature over every sky pixel, and limits matter most where the "
                      "array is sensitive; set fmax (--fmax) to go higher")
-    workers = None if not options.workers else int(options.workers)
     requested_sky_index = None
     if options.sky_frequency is not None:
         requested_sky_index = int(np.argmin(np.abs(frequencies - options.sky_frequency)))
@@ -608,7 +511,48 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
         if abs(frequencies[requested_sky_index] - options.sky_frequency) > step:
             raise InputError(f"option --sky-frequency: {options.sky_frequency:.4g} Hz is outside the band "
                              f"{frequencies[0]:.4g}-{frequencies[-1]:.4g} Hz")
+    return frequencies, fmax_note, requested_sky_index
 
+
+def _galaxies(options):
+    """The galaxies of ``--galaxy`` and ``--catalog/--select`` (names unique)."""
+    galaxies = parse_galaxies(options.galaxy)
+    if options.catalog:
+        galaxies += read_catalog_galaxies(options.catalog, options.select)
+    names = [g.name for g in galaxies]
+    if len(set(names)) != len(names):
+        raise InputError("option --galaxy/--select: galaxy names must be unique")
+    return galaxies
+
+
+def _sampler_check(engine, proj, computation, pixel, quadrature, *, seed, progress):
+    """The quadrature limit at one pixel and the sky frequency compared with a sampled posterior."""
+    ra, dec = computation.pixel_ra, computation.pixel_dec
+    fplus, fcross = fstat.sky_patterns(proj, ra[pixel:pixel + 1], dec[pixel:pixel + 1])
+    nv, mm = engine.network(proj, fplus, fcross)
+    nv, mm = nv[0, computation.sky_index], mm[0, computation.sky_index]
+    frequency = computation.sky_frequency
+    quad = bayesian_limit(nv, mm, frequency, grid=QUADRATURE[quadrature])
+    check = {"pixel": pixel, "frequency": frequency, "quadrature": quad}
+    try:
+        h, err, details = sampler_limit(nv, mm, frequency, seed=seed, progress=progress)
+        check.update({"sampled": h, "sampled_error": err, "sampler": "cwsearch.inference.sampling (ptemcee)",
+                      **details})
+    except ImportError:
+        h, err = importance_sampled_limit(nv, mm, frequency, seed=seed)
+        check.update({"sampled": h, "sampled_error": err, "sampler": "importance sampling"})
+    check["difference_in_errors"] = (check["sampled"] - quad) / max(check["sampled_error"], 1e-300)
+    return check
+
+
+def compute_stage_limits(array, options: LimitsOptions = LimitsOptions(), *, noise=None, seed=0,
+                         progress=True) -> LimitsComputation:
+    """The limits stage's numbers (no file is written): per-pixel and per-galaxy limits at every frequency,
+    their sky averages, the sky-table frequency and the optional sampler check."""
+    options.validate()
+    noise = NoiseSettings() if noise is None else noise
+    galaxies = _galaxies(options)
+    frequencies, fmax_note, requested_sky_index = _band(array, options)
     engine = array_noise(array, noise)
     proj = engine.projections(frequencies)
     nside = int(options.nside)
@@ -618,16 +562,33 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     dec = np.concatenate([dec_pix, np.radians([g.dec for g in galaxies])])
     # the frequentist limit costs ~5 % of the Bayesian one, so "bayes" reports it too
     computed = "frequentist" if options.method == "frequentist" else "both"
-    res = compute_limits(proj, ra, dec, method=computed, quadrature=options.quadrature, workers=workers,
+    res = compute_limits(proj, ra, dec, method=computed, quadrature=options.quadrature,
+                         workers=None if not options.workers else int(options.workers),
                          scheduler=options.scheduler or None, progress=progress, noise=engine)
     averages = _sky_averages(res, frequencies, n_pix)
     primary = "frequentist" if options.method == "frequentist" else "bayes"
-    pixel_limits = res[primary][:n_pix]
+    if requested_sky_index is not None:
+        sky_index = requested_sky_index
+    else:
+        finite = np.isfinite(averages[primary])
+        sky_index = int(np.nanargmin(np.where(finite, averages[primary], np.inf))) if finite.any() else 0
+    computation = LimitsComputation(frequencies, nside, ra_pix, dec_pix, galaxies, res, averages, primary,
+                                    options.method, options.quadrature, sky_index, engine.describe(),
+                                    fmax_note=fmax_note)
+    if options.mcmc_check is not None:
+        computation.check = _sampler_check(engine, proj, computation, int(options.mcmc_check), options.quadrature,
+                                           seed=seed, progress=progress)
+    return computation
 
-    # ------------------------------------------------ frequency table
+
+def limits_tables(c: LimitsComputation) -> LimitsTables:
+    """The frequency, sky and galaxy tables of a computation (with units and metadata)."""
+    n_pix, frequencies, primary, res = c.n_pixels, c.frequencies, c.primary, c.limits
+    pixel_limits = c.pixel_limits
+
     ftab = Table()
     ftab["frequency"] = frequencies * u.Hz
-    ftab["strain_95"] = averages[primary]
+    ftab["strain_95"] = c.averages[primary]
     ftab["strain_95_best"] = _positive_min(pixel_limits)
     ftab["strain_95_worst"] = pixel_limits.max(axis=0)
     ftab["strain_95_median"] = np.median(pixel_limits, axis=0)
@@ -635,133 +596,141 @@ def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, nois
     ftab["worst_pixel"] = np.argmax(pixel_limits, axis=0)
     if primary == "bayes":
         pf = res["frequentist"][:n_pix]
-        ftab["strain_95_frequentist"] = averages["frequentist"]
+        ftab["strain_95_frequentist"] = c.averages["frequentist"]
         ftab["strain_95_frequentist_best"] = _positive_min(pf)
         ftab["strain_95_frequentist_worst"] = pf.max(axis=0)
     ftab["fe_max"] = res["fe"][:n_pix].max(axis=0)
-    ftab.meta.update({"method": primary, "level": LEVEL, "nside": nside,
+    ftab.meta.update({"method": primary, "level": LEVEL, "nside": c.nside,
                       "sky_average": "posterior (bayes) or detection probability (frequentist) averaged over "
                                     "equal-area pixels, i.e. a uniformly distributed sky position"})
 
-    # ------------------------------------------------ sky table
-    finite = np.isfinite(averages[primary])
-    if options.sky_frequency is not None:
-        sky_index = requested_sky_index
-    else:
-        sky_index = int(np.nanargmin(np.where(finite, averages[primary], np.inf))) if finite.any() else 0
-    sky_frequency = float(frequencies[sky_index])
     stab = Table()
     stab["pixel"] = np.arange(n_pix)
-    stab["ra"] = np.degrees(ra_pix) * u.deg
-    stab["dec"] = np.degrees(dec_pix) * u.deg
-    stab["strain_95"] = pixel_limits[:, sky_index]
-    if options.method == "both":
-        stab["strain_95_frequentist"] = res["frequentist"][:n_pix, sky_index]
-    stab["fe"] = res["fe"][:n_pix, sky_index]
-    stab.meta.update({"frequency": sky_frequency, "frequency_unit": "Hz", "method": primary, "nside": nside,
+    stab["ra"] = np.degrees(c.pixel_ra) * u.deg
+    stab["dec"] = np.degrees(c.pixel_dec) * u.deg
+    stab["strain_95"] = pixel_limits[:, c.sky_index]
+    if c.method == "both":
+        stab["strain_95_frequentist"] = res["frequentist"][:n_pix, c.sky_index]
+    stab["fe"] = res["fe"][:n_pix, c.sky_index]
+    stab.meta.update({"frequency": c.sky_frequency, "frequency_unit": "Hz", "method": primary, "nside": c.nside,
                       "order": "ring"})
 
-    # ------------------------------------------------ galaxies
     gtab = None
-    if galaxies:
+    if c.galaxies:
         rows = []
-        for k, g in enumerate(galaxies):
+        for k, g in enumerate(c.galaxies):
             strain = res[primary][n_pix + k]
             mc = np.asarray(galaxy_chirp_mass_limit(strain, frequencies, g.distance), dtype=float)
             extra = [[]] * len(frequencies)
-            if options.method == "both":
+            if c.method == "both":
                 hf = res["frequentist"][n_pix + k]
                 mf = np.atleast_1d(np.asarray(galaxy_chirp_mass_limit(hf, frequencies, g.distance), dtype=float))
                 extra = [[a, b] for a, b in zip(hf, mf)]
             for f, h, m, e in zip(frequencies, strain, np.atleast_1d(mc), extra):
                 rows.append((g.name, g.ra, g.dec, g.distance, f, h, m, *e))
         names = ["name", "ra", "dec", "distance", "frequency", "strain_95", "chirp_mass_95"]
-        if options.method == "both":
+        if c.method == "both":
             names += ["strain_95_frequentist", "chirp_mass_95_frequentist"]
         gtab = Table(rows=rows, names=names)
-        if options.method == "both":
+        if c.method == "both":
             gtab["chirp_mass_95_frequentist"].unit = u.solMass
         gtab["ra"].unit, gtab["dec"].unit, gtab["distance"].unit = u.deg, u.deg, u.Mpc
         gtab["frequency"].unit, gtab["chirp_mass_95"].unit = u.Hz, u.solMass
         gtab.meta.update({"method": primary, "position": "exact galaxy position"})
+    return LimitsTables(ftab, stab, gtab)
 
-    # ------------------------------------------------ optional sampler check
-    check = None
-    if options.mcmc_check is not None:
-        pix = int(options.mcmc_check)
-        fplus, fcross = fstat.sky_patterns(proj, ra_pix[pix:pix + 1], dec_pix[pix:pix + 1])
-        nv, mm = engine.network(proj, fplus, fcross)
-        nv, mm = nv[0, sky_index], mm[0, sky_index]
-        quad = bayesian_limit(nv, mm, sky_frequency, grid=QUADRATURE[options.quadrature])
-        check = {"pixel": pix, "frequency": sky_frequency, "quadrature": quad}
-        try:
-            h, err, details = sampler_limit(nv, mm, sky_frequency, seed=seed, progress=progress)
-            check.update({"sampled": h, "sampled_error": err, "sampler": "cwsearch.inference.sampling (ptemcee)", **details})
-        except ImportError:
-            h, err = importance_sampled_limit(nv, mm, sky_frequency, seed=seed)
-            check.update({"sampled": h, "sampled_error": err, "sampler": "importance sampling"})
-        check["difference_in_errors"] = (check["sampled"] - quad) / max(check["sampled_error"], 1e-300)
 
-    # ------------------------------------------------ write
-    files = {}
-    write_table_atomic(folder / "frequency_limits.ecsv", ftab)
-    files["frequency_limits"] = str(folder / "frequency_limits.ecsv")
-    write_table_atomic(folder / "sky_limits.ecsv", stab)
-    files["sky_limits"] = str(folder / "sky_limits.ecsv")
-    write_healpix_map(folder / "sky_limits.fits", {"STRAIN_95": np.asarray(stab["strain_95"], dtype=float)},
-                      nside=nside, extra={"FREQ": sky_frequency, "METHOD": primary, "LEVEL": LEVEL},
-                      description=f"95 % strain upper limit ({primary}) per pixel at FREQ Hz")
-    files["sky_limits_map"] = str(folder / "sky_limits.fits")
-    if gtab is not None:
-        write_table_atomic(folder / "galaxy_limits.ecsv", gtab)
-        files["galaxy_limits"] = str(folder / "galaxy_limits.ecsv")
-    best = int(sky_index)
+def limits_summary(c: LimitsComputation, tables: LimitsTables) -> dict:
+    """The JSON-ready summary of a computation (without ``files``, ``wall_time`` and the dataset's noise
+    statement, which :func:`run_limits` adds)."""
+    n_pix, frequencies, res, best = c.n_pixels, c.frequencies, c.limits, int(c.sky_index)
     summary = {
-        "method": options.method,
+        "method": c.method,
         "level": LEVEL,
         "n_frequencies": int(len(frequencies)),
         "frequency_range": [float(frequencies[0]), float(frequencies[-1])],
-        "nside": nside,
+        "nside": c.nside,
         "n_pixels": int(n_pix),
-        "quadrature": options.quadrature,
-        "sky_frequency": sky_frequency,
+        "quadrature": c.quadrature,
+        "sky_frequency": c.sky_frequency,
         "best_frequency": float(frequencies[best]),
-        "engine": res["engine"],
-        "noise_model": engine.describe(),
-        "wall_time": round(time.time() - started, 3),
+        "runner": res["runner"],
+        "noise_model": c.noise_description,
     }
-    if fmax_note:
-        summary["fmax_note"] = fmax_note
-    if "bayes" in averages:
-        summary["bayes"] = {"strain_95_at_best_frequency": _finite_or_none(averages["bayes"][best]),
-                            "strain_95_min": _finite_or_none(np.nanmin(averages["bayes"])),
-                            **_best_pixel(res["bayes"][:n_pix, best])}
-    if "frequentist" in averages:
-        summary["frequentist"] = {"strain_95_at_best_frequency": _finite_or_none(averages["frequentist"][best]),
-                                  "strain_95_min": _finite_or_none(np.nanmin(averages["frequentist"])),
-                                  **_best_pixel(res["frequentist"][:n_pix, best])}
-    summary["strain_95"] = summary[primary]["strain_95_at_best_frequency"]
-    if galaxies:
+    if c.fmax_note:
+        summary["fmax_note"] = c.fmax_note
+    for method in ("bayes", "frequentist"):
+        if method in c.averages:
+            summary[method] = {"strain_95_at_best_frequency": _finite_or_none(c.averages[method][best]),
+                               "strain_95_min": _finite_or_none(np.nanmin(c.averages[method])),
+                               **_best_pixel(res[method][:n_pix, best])}
+    summary["strain_95"] = summary[c.primary]["strain_95_at_best_frequency"]
+    if c.galaxies:
+        gtab = tables.galaxy
         summary["galaxies"] = {g.name: {"distance": g.distance,
                                         "chirp_mass_95_min": _finite_or_none(
                                             np.nanmin(gtab["chirp_mass_95"][gtab["name"] == g.name])),
                                         "at_frequency": float(frequencies[int(np.nanargmin(
-                                            res[primary][n_pix + k]))])}
-                               for k, g in enumerate(galaxies)}
-    if check is not None:
-        summary["mcmc_check"] = check
-    if not options.no_plots:
-        # lazy: matplotlib is loaded only when plots are drawn
-        from .plots import make_plots
+                                            res[c.primary][n_pix + k]))])}
+                               for k, g in enumerate(c.galaxies)}
+    if c.check is not None:
+        summary["mcmc_check"] = c.check
+    return summary
 
-        files.update(make_plots(folder, frequencies, ftab, stab, gtab, array, nside, primary))
+
+def write_limits(folder, c: LimitsComputation, tables: LimitsTables) -> dict:
+    """Write the tables (ECSV) and the sky map (HEALPix FITS) into ``folder``; returns name -> path."""
+    folder = Path(folder)
+    files = {}
+    write_table_atomic(folder / "frequency_limits.ecsv", tables.frequency)
+    files["frequency_limits"] = str(folder / "frequency_limits.ecsv")
+    write_table_atomic(folder / "sky_limits.ecsv", tables.sky)
+    files["sky_limits"] = str(folder / "sky_limits.ecsv")
+    write_healpix_map(folder / "sky_limits.fits", {"STRAIN_95": np.asarray(tables.sky["strain_95"], dtype=float)},
+                      nside=c.nside, extra={"FREQ": c.sky_frequency, "METHOD": c.primary, "LEVEL": LEVEL},
+                      description=f"95 % strain upper limit ({c.primary}) per pixel at FREQ Hz")
+    files["sky_limits_map"] = str(folder / "sky_limits.fits")
+    if tables.galaxy is not None:
+        write_table_atomic(folder / "galaxy_limits.ecsv", tables.galaxy)
+        files["galaxy_limits"] = str(folder / "galaxy_limits.ecsv")
+    return files
+
+
+def plot_limits(folder, c: LimitsComputation, tables: LimitsTables, array) -> dict:
+    """Draw the stage's PNG figures into ``folder`` (:mod:`cwsearch.stages.limits.plots`); returns name -> path."""
+    # lazy: matplotlib is loaded only when plots are drawn
+    from .plots import make_plots
+
+    return make_plots(Path(folder), c.frequencies, tables.frequency, tables.sky, tables.galaxy, array, c.nside,
+                      c.primary)
+
+
+def run_limits(array, run_dir, options: LimitsOptions = LimitsOptions(), *, noise=None, seed=0, progress=True):
+    """The limits stage: compute (:func:`compute_stage_limits`), tabulate (:func:`limits_tables`), write
+    (:func:`write_limits`), plot (:func:`plot_limits`) and summarise (:func:`limits_summary`) into
+    ``run_dir/limits/``; returns a :class:`LimitsResult`.
+
+    Files: ``frequency_limits.ecsv``, ``sky_limits.ecsv``, ``sky_limits.fits``, ``galaxy_limits.ecsv``
+    (with galaxies), ``limits_summary.json`` (written last) and PNG plots.
+    """
+    started = time.time()
+    noise = NoiseSettings() if noise is None else noise
+    folder = Path(run_dir) / "limits"
+    computation = compute_stage_limits(array, options, noise=noise, seed=seed, progress=progress)
+    tables = limits_tables(computation)
+    files = write_limits(folder, computation, tables)
+    summary = limits_summary(computation, tables)
+    summary["wall_time"] = round(time.time() - started, 3)
+    if not options.no_plots:
+        files.update(plot_limits(folder, computation, tables, array))
     summary["files"] = sorted(Path(p).name for p in files.values())
     summary["noise_model"] = {**stage_noise_statement(array, noise), **summary.get("noise_model", {})}
     write_json_atomic(folder / "limits_summary.json", summary)
     files["summary"] = str(folder / "limits_summary.json")
-    return LimitsResult(frequencies, pixel_limits, ftab, stab, gtab, summary, files,
-                        res["frequentist"][:n_pix] if "frequentist" in res else None)
-
+    limits = computation.limits
+    return LimitsResult(computation.frequencies, computation.pixel_limits, tables.frequency, tables.sky,
+                        tables.galaxy, summary, files,
+                        limits["frequentist"][:computation.n_pixels] if "frequentist" in limits else None)
 
 __all__ = [
     "LEVEL", "RELATIVE_GRID", "METHODS", "QUADRATURE", "FREQUENTIST_GRID", "COS_PANELS", "angle_grid",
@@ -769,5 +738,6 @@ __all__ = [
     "sky_averaged_bayes", "sky_averaged_frequentist", "galaxy_chirp_mass_limit", "Galaxy",
     "parse_galaxies", "read_catalog_galaxies", "log_likelihood_ratio", "importance_sampled_limit",
     "sampler_limit", "DEFAULT_FMAX", "ROWS_PER_TASK", "LimitsOptions", "LimitsResult", "compute_limits",
-    "run_limits",
+    "run_limits", "LimitsComputation", "LimitsTables", "compute_stage_limits", "limits_tables", "limits_summary",
+    "write_limits", "plot_limits",
 ]

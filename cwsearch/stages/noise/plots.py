@@ -45,8 +45,10 @@ def residual_power(pulsar, start, span, components):
     return freqs, power, level
 
 
-def spectra_plot(path, array, settings, fit, max_panels=60):
-    """Grid of per-pulsar panels: residual power (points), white level, fitted red + common + white model."""
+def spectra_plot(path, array, settings, fit, max_panels=60, truth=None):
+    """Grid of per-pulsar panels: residual power (points), white level, fitted red + common + white model;
+    with ``truth`` (:func:`cwsearch.data.truth.injected_noise`) the true red noise and background spectra
+    as dashed magenta lines."""
     plt = pyplot()
     pulsars = list(array)[:max_panels]
     n = len(pulsars)
@@ -73,6 +75,14 @@ def spectra_plot(path, array, settings, fit, max_panels=60):
             ax.loglog(x, red, "--", color="tab:orange", lw=0.8)
         if common is not None:
             ax.loglog(x, com, "--", color="tab:blue", lw=0.8)
+        true_red = ((truth or {}).get("pulsars") or {}).get(p.name, {}).get("red")
+        if true_red:
+            ax.loglog(x, powerlaw_variance(freqs, true_red["log10_amplitude"], true_red["index"], array.span), "--",
+                      color="#e6007e", lw=1.0)
+        background = (truth or {}).get("background")
+        if background:
+            ax.loglog(x, powerlaw_variance(freqs, background["log10_amplitude"], background["index"], array.span),
+                      ":", color="#e6007e", lw=1.0)
         pf = fit[p.name]
         flag = " !" if pf.gof is not None and pf.gof.flagged else ""
         ax.set_title(f"{p.name}{flag}" + (" (red)" if pf.red_noise else ""), fontsize=8)
@@ -84,7 +94,9 @@ def spectra_plot(path, array, settings, fit, max_panels=60):
     for ax in axes[:, 0]:
         ax.set_ylabel("power [s²]", fontsize=7)
     fig.suptitle("Residual power (points, white-noise weighted) against the fitted model: white (dotted), "
-                 "red (orange), common (blue), total (red line); '!' = failed goodness of fit", fontsize=8)
+                 "red (orange), common (blue), total (red line); '!' = failed goodness of fit"
+                 + ("; truth (injection.json, magenta): red noise dashed, background dotted" if truth else ""),
+                 fontsize=8)
     fig.tight_layout()
     save_figure(fig, path)
 
@@ -108,12 +120,14 @@ def common_grid(log_likelihood, fit, points=16):
     return amps, idx, 2.0 * (top - grid)
 
 
-def common_contour_plot(path, log_likelihood, fit, points, correlation):
+def common_contour_plot(path, log_likelihood, fit, points, correlation, truth=None):
     """Contours 2 Δln L = 2.30, 6.18, 11.8 (68, 95, 99.7 % for two parameters) of the common process; returns
-    the grid as a JSON-ready dict."""
+    the grid as a JSON-ready dict. The injected background (``truth["background"]``, from
+    :func:`cwsearch.data.truth.injected_noise`) is drawn as a magenta plus, or a line when the index is fixed."""
     plt = pyplot()
     amps, idx, delta = common_grid(log_likelihood, fit, points)
     c = fit.common
+    background = (truth or {}).get("background")
     fig, ax = plt.subplots(figsize=(5.2, 4.0))
     if idx.size > 1:
         cs = ax.contourf(amps, idx, np.minimum(delta, 30), levels=30, cmap="viridis_r")
@@ -121,10 +135,17 @@ def common_contour_plot(path, log_likelihood, fit, points, correlation):
         ax.contour(amps, idx, delta, levels=[2.30, 6.18, 11.8], colors="w", linewidths=1)
         ax.plot([c.log10_amplitude], [c.index], "r*", ms=10, label="maximum likelihood")
         ax.axhline(13 / 3, color="w", ls=":", lw=0.8)
+        if background:
+            ax.scatter([background["log10_amplitude"]], [background["index"]], marker="P", s=110, c="#e6007e",
+                       edgecolors="black", linewidths=0.7, zorder=5, label="truth (injection.json)")
         ax.set_ylabel("common spectral index γ")
     else:
         ax.plot(amps, delta[0], "-")
         ax.axhline(4.0, color="k", ls=":", lw=0.8)
+        if background:
+            ax.axvline(background["log10_amplitude"], color="#e6007e", ls="--", lw=1.2,
+                       label=f"truth (injection.json, γ = {background['index']:.3g})")
+            ax.legend(loc="upper center", fontsize=7)
         ax.set_ylabel(f"2 Δln L (index fixed at {c.index:.3g})")
     ax.set_xlabel("common log10 amplitude")
     ax.set_title(f"Common process ({correlation}): 2 ΔlnL = {c.statistic:.1f} against zero amplitude", fontsize=9)

@@ -27,84 +27,27 @@ Examples
 from __future__ import annotations
 
 import dataclasses
+import hashlib
+import json
 import time
 import warnings
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import asdict, dataclass, replace
 from pathlib import Path
 
 import numpy as np
 
 from ...core.errors import InputError
-from ...core.fileio import write_json_atomic
-from ...inference.noisefit import (GOF_THRESHOLD, FitSettings, NoiseFitWarning, UncorrelatedCommonLikelihood,
-                                   apply_noise_model, fit_common, fit_noise, write_noise_table)
+from ...core.fileio import write_json_atomic, write_table_atomic
+from ...data.truth import injected_noise
+from ...inference.noisefit import (GOF_THRESHOLD, NoiseFitWarning, UncorrelatedCommonLikelihood,
+                                   apply_noise_model, fit_common, fit_noise, noise_table)
 from ...physics.noise import NoiseSettings
 from . import plots
+from .options import MODEL_CHOICES, NoiseOptions  # the options live beside (standard library only)
 
 #: file names inside RUN_DIR/noise/
 TABLE_NAME = "noise_model.ecsv"
 SUMMARY_NAME = "summary.json"
-#: the special values of ``model`` (anything else is a noise-table path)
-MODEL_CHOICES = ("estimate", "dataset")
-
-
-@dataclass(frozen=True)
-class NoiseOptions:
-    """Options of the noise stage (run-file section ``[noise]``, next to the noise settings).
-
-    Attributes
-    ----------
-    model : which noise model every stage uses: ``estimate`` (fit it here, default; a fit of the same
-        dataset in RUN_DIR/noise/ is reused), ``dataset`` (the values in the dataset files, fixed), or
-        the path of a noise table (written by this stage or by hand).
-    fit_common : fit a common red process.
-    fixed_common_index : the common spectral index, fixed (default 13/3: a background of circular binaries,
-        Phinney 2001). A fitted index lets a flat "common process" absorb a loud binary: on the demo data a
-        free index gave γ = 1.4, log10 A = −13.6, and the scan then lost the injected SNR-15 binary.
-    free_common_index : fit the common index as well (within [0.5, 7]) instead of fixing it.
-    red_noise_threshold : 2 Δln L needed to claim red noise in a pulsar.
-    min_toas_red : pulsars with fewer TOAs are fitted white only (with a warning).
-    starts : optimiser starts per fit.
-    iterations : extra rounds of (common fit, pulsar refit).
-    upper_limits : 95 % amplitude upper limits (prior uniform in amplitude).
-    contour_points : grid points per axis of the common-process likelihood plot.
-    no_plots : do not draw the PNG plots.
-    """
-
-    model: str = field(default="estimate", metadata={"help": "estimate | dataset | path of a noise table"})
-    fit_common: bool = True
-    fixed_common_index: float = 13.0 / 3.0
-    free_common_index: bool = False
-    red_noise_threshold: float = 9.0
-    min_toas_red: int = 40
-    starts: int = 3
-    iterations: int = 1
-    upper_limits: bool = True
-    contour_points: int = 16
-    no_plots: bool = False
-
-    def validate(self) -> "NoiseOptions":
-        if not isinstance(self.model, str) or not self.model.strip():
-            raise InputError("option --noise-model: give estimate, dataset or the path of a noise table")
-        if self.red_noise_threshold < 0:
-            raise InputError("option --red-noise-threshold: must be >= 0")
-        if self.min_toas_red < 1:
-            raise InputError("option --min-toas-red: must be >= 1")
-        if self.starts < 1:
-            raise InputError("option --starts: must be >= 1")
-        if self.iterations < 0:
-            raise InputError("option --iterations: must be >= 0")
-        if self.contour_points < 3:
-            raise InputError("option --contour-points: must be >= 3")
-        if not 0.5 <= self.fixed_common_index <= 7.0:
-            raise InputError("option --fixed-common-index: must be in [0.5, 7] (the fitted range)")
-        return self
-
-    def fit_settings(self, red_components: int):
-        return FitSettings(red_components=int(red_components), red_noise_threshold=float(self.red_noise_threshold),
-                           min_toas_red=int(self.min_toas_red), n_starts=int(self.starts),
-                           common=bool(self.fit_common), common_index=None if self.free_common_index else self.fixed_common_index,
-                           iterations=int(self.iterations), upper_limits=bool(self.upper_limits))
 
 
 @dataclass
@@ -163,6 +106,26 @@ def _correlated_factory(correlation):
     def factory(array, red_components):
         return CorrelatedCommonLikelihood(array, red_components, correlation)
     return factory
+
+
+def fit_fingerprint(options: NoiseOptions, noise: NoiseSettings | None, seed, dataset_checksum,
+                    correlation=None) -> str:
+    """SHA-256 of everything that decides a fit's numbers: the fit settings (from ``options`` and the
+    basis size ``noise.red_components``), the common-process correlation asked for, the seed of the extra
+    optimiser starts and the dataset checksum (docs/design.md §5a).
+
+    :func:`run_noise` records it in the table's header (``fit_fingerprint``); the ``estimate`` noise model
+    reuses a fitted table only when its fingerprint equals the one of the run at hand, so a table fitted
+    with other options, another seed or by an interrupted fit is fitted again, never silently reused.
+    """
+    noise = noise or NoiseSettings()
+    settings = options.validate().fit_settings(noise.red_components)
+    wanted = correlation or common_correlation(noise)
+    if wanted == "none":
+        settings = replace(settings, common=False)
+    record = {"settings": asdict(settings), "correlation": wanted, "seed": int(seed) if isinstance(seed, (int, np.integer)) else None,
+              "dataset_checksum": None if dataset_checksum is None else str(dataset_checksum)}
+    return hashlib.sha256(json.dumps(record, sort_keys=True).encode()).hexdigest()
 
 
 def run_noise(array, run_dir, options: NoiseOptions = NoiseOptions(), *, noise: NoiseSettings | None = None,
@@ -225,18 +188,24 @@ def run_noise(array, run_dir, options: NoiseOptions = NoiseOptions(), *, noise: 
 
     files = {"table": out / TABLE_NAME, "summary": out / SUMMARY_NAME}
     out.mkdir(parents=True, exist_ok=True)
-    write_noise_table(fit, files["table"])
+    # the summary is written last: a noise folder with a table but no summary is an interrupted fit (the
+    # estimate noise model then fits again); an old summary must not vouch for the new table
+    files["summary"].unlink(missing_ok=True)
+    table = noise_table(fit)
+    table.meta["fit_fingerprint"] = fit_fingerprint(options, noise, seed, dataset_checksum, correlation)
+    write_table_atomic(files["table"], table)
     contour = None
     if not options.no_plots:
         files["spectra_plot"] = out / "spectra.png"
-        plots.spectra_plot(files["spectra_plot"], apply_noise_model(array, model), engine_settings, fit)
+        truth = injected_noise(array)
+        plots.spectra_plot(files["spectra_plot"], apply_noise_model(array, model), engine_settings, fit, truth=truth)
         if fit.common is not None:
             files["common_plot"] = out / "common_likelihood.png"
             like_array = apply_noise_model(array, replace(model, common_log10_amplitude=None), check=False)
             like = (factory or UncorrelatedCommonLikelihood)(like_array, settings.red_components)
             # the correlated likelihood costs one (N_psr 2K)^2 Cholesky per point: a coarser grid
             points = options.contour_points if factory is None else min(options.contour_points, 8)
-            contour = plots.common_contour_plot(files["common_plot"], like, fit, points, used)
+            contour = plots.common_contour_plot(files["common_plot"], like, fit, points, used, truth=truth)
     summary = fit_summary(fit, options, dataset_checksum, used, messages, comparison, GOF_THRESHOLD)
     summary["engine_settings"] = asdict(engine_settings)
     if contour is not None:
@@ -334,5 +303,5 @@ def fit_summary(fit, options, dataset_checksum, correlation, messages, compariso
     }
 
 
-__all__ = ["NoiseOptions", "NoiseResult", "run_noise", "fit_summary", "model_settings", "common_correlation",
+__all__ = ["NoiseOptions", "NoiseResult", "run_noise", "fit_fingerprint", "fit_summary", "model_settings", "common_correlation",
            "CorrelatedCommonLikelihood", "TABLE_NAME", "SUMMARY_NAME", "MODEL_CHOICES"]

@@ -1,20 +1,25 @@
 """Stage 1, the all-sky Fe/Fp scan over frequency x sky: candidates and their false-alarm probabilities.
 
-``Options`` is :class:`ScanOptions`, ``run`` is :func:`run_scan`; the computation is in
-``stage.py``, the figures in ``plots.py``.
+``Options`` is :class:`ScanOptions` (``options.py``, standard library only), ``run`` is :func:`run_scan`;
+the computation is in ``stage.py``, the figures in ``plots.py``. Importing this package loads only the
+options; ``stage.py`` (numpy, numba) is imported at the first use of any other name or of ``run``, so
+the registry and ``cwsearch COMMAND --help`` stay fast.
 """
 
 from __future__ import annotations
 
-from ..base import Stage
-from . import stage
-from .stage import *  # noqa: F401,F403  (the stage's public names, listed in stage.__all__)
-from .stage import ScanOptions, run_scan
+
+from ..base import Stage, lazy_module_getattr, lazy_run
+from .options import ScanOptions
 
 Options = ScanOptions
-run = run_scan
+#: :func:`cwsearch.stages.scan.stage.run_scan`, imported at the first call
+run = lazy_run(__name__, "run_scan")
 
 #: this stage's entry in the registry :data:`cwsearch.stages.STAGES`
-STAGE = Stage("scan", ScanOptions, run_scan, upstream=(), products=('candidates.ecsv',))
+STAGE = Stage("scan", ScanOptions, run, upstream=(), products=('candidates.ecsv',))
 
-__all__ = ["Options", "run", "STAGE", *stage.__all__]
+#: the stage's other public names (``stage.__all__``), from ``stage.py`` at their first use
+__getattr__ = lazy_module_getattr(__name__)
+
+__all__ = ["Options", "run", "STAGE", "ScanOptions", "run_scan"]

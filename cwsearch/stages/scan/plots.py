@@ -24,10 +24,12 @@ def _log_if_wide(ax, values, levels):
         ax.set_ylim(bottom=max(values.min(), 0.05 * min(levels)))
 
 
-def spectrum_plot(path, spectrum, candidates, thresholds, *, want_fe=True):
+def spectrum_plot(path, spectrum, candidates, thresholds, *, want_fe=True, truth=None):
     """Two panels against frequency: the sky maximum of Fe (if scanned) and Fp, with threshold lines.
 
-    ``thresholds``: ``{"fe": [(label, value)], "fp": [(label, value or per-frequency array)]}``.
+    ``thresholds``: ``{"fe": [(label, value)], "fp": [(label, value or per-frequency array)]}``;
+    ``truth``: the injected binary (:func:`cwsearch.data.truth.injected_binary`), its GW frequency drawn
+    as a dashed magenta line in every panel.
     """
     plt = pyplot()
     freq = np.asarray(spectrum["frequency"], dtype=float)
@@ -57,6 +59,12 @@ def spectrum_plot(path, spectrum, candidates, thresholds, *, want_fe=True):
     ax.set_ylabel("Fp")
     ax.set_xlabel("GW frequency [Hz]")
     ax.set_xscale("log")
+    if truth and truth.get("frequency"):
+        for panel in axes:
+            panel.axvline(truth["frequency"], color="#e6007e", ls="--", lw=1.2, zorder=1,
+                          label="true frequency (injection.json)")
+        if want_fe:
+            axes[0].legend(fontsize=7, loc="upper right")
     ax.legend(fontsize=7, loc="upper right")
     ax.grid(alpha=0.3)
     axes[0].set_title("F-statistic spectrum")

@@ -52,7 +52,6 @@ import time
 import warnings
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
-from typing import Literal
 
 import numpy as np
 from astropy.table import Table
@@ -62,6 +61,7 @@ from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...core.progress import progress as bar
 from ...data.healpix_fits import write_healpix_map
+from ...data.truth import injected_binary
 from ...inference.noisefit import GOF_THRESHOLD, NoiseFitWarning, goodness_of_fit, stage_noise_statement
 from ...inference.execution import TaskRunner
 from ...physics import fstat, sky
@@ -70,8 +70,8 @@ from ...physics.correlated import ArrayNoise, array_noise, pair_correlations
 from ...physics.noise import NoiseSettings, NoiseWeighting
 from ...physics.sky import angular_separation
 from ...physics.waveform import antenna_pattern
+from .options import MAX_NULL_SIMS, STATISTICS, ScanOptions  # the options live beside (standard library only)
 
-STATISTICS = ("fe", "fp", "both")
 
 #: default cap on the highest scanned frequency [Hz]
 
@@ -80,102 +80,6 @@ MAX_MAP_BYTES = 4e9
 
 #: Monte Carlo draws per frequency for the effective number of sky templates
 SKY_TRIAL_DRAWS = 1000
-
-
-@dataclass(frozen=True)
-class ScanOptions:
-    """Options of the scan stage (CLI options of ``cwsearch scan``, ``[scan]`` in a run file).
-
-    Attributes
-    ----------
-    fmin, fmax : float or None
-        Frequency range [Hz]. Defaults: 1/T_span, and the Nyquist-like limit
-        1/(2 × median TOA spacing) capped at 1e-6 Hz.
-    oversample : int
-        Frequency spacing 1/(oversample · T_span).
-    nside : int
-        HEALPix resolution (power of two); 12 nside² pixels.
-    statistic : ``"fe"``, ``"fp"`` or ``"both"``
-        Earth-term Fe (sky scan), pulsar-term Fp (no sky), or both.
-    null_sims : int
-        Noise-only scans of the same array for the empirical FAP (0: none).
-    fap_threshold : float
-        List candidates whose (trials-corrected analytic) FAP is below this;
-        the loudest is always listed.
-    max_candidates : int
-        At most this many rows in ``candidates.ecsv``.
-    merge_angle : float
-        Local maxima closer than this [deg] and within one independent
-        frequency bin (1/T_span) are one candidate. The default 180 keeps
-        one candidate per frequency bin (the sky sidelobes of one source
-        are not separate candidates).
-    no_plots : bool
-        Skip the PNG plots.
-    workers : int or None
-        Task-runner engine for the scan's independent loops (frequency chunks
-        of the sky scan, batches of noise-only scans): None or 1 runs them in
-        this process (default; the kernels use every core with threads), N > 1
-        in N local worker processes (:mod:`cwsearch.inference.execution`).
-    scheduler : str or None
-        Address of a running Dask scheduler; the same tasks go to its workers.
-        Numbers agree with the serial run to 1e-12 relative.
-    """
-
-    fmin: float | None = None
-    fmax: float | None = None
-    oversample: int = 2
-    nside: int = 16
-    statistic: Literal["fe", "fp", "both"] = "both"
-    null_sims: int = 0
-    fap_threshold: float = 0.5
-    max_candidates: int = 20
-    merge_angle: float = 180.0
-    no_plots: bool = False
-    workers: int | None = None
-    scheduler: str | None = None
-
-    def validate(self):
-        """Raise :class:`InputError` for values the scan cannot use."""
-        def bad(name, why):
-            raise InputError(f"option --{name.replace('_', '-')}: {why}")
-
-        if self.fmin is not None and not self.fmin > 0:
-            bad("fmin", f"must be > 0 Hz, not {self.fmin}")
-        if self.fmax is not None and not self.fmax > 0:
-            bad("fmax", f"must be > 0 Hz, not {self.fmax}")
-        if self.fmin is not None and self.fmax is not None and not self.fmax > self.fmin:
-            bad("fmax", f"must be above --fmin ({self.fmax} <= {self.fmin})")
-        if not (isinstance(self.oversample, (int, np.integer)) and self.oversample >= 1):
-            bad("oversample", f"must be an integer >= 1, not {self.oversample}")
-        nside = int(self.nside)
-        if nside != self.nside or nside < 1 or nside & (nside - 1) or nside > 1024:
-            bad("nside", f"must be a power of two between 1 and 1024, not {self.nside}")
-        if self.statistic not in STATISTICS:
-            bad("statistic", f"must be one of {', '.join(STATISTICS)}, not {self.statistic!r}")
-        if int(self.null_sims) != self.null_sims or self.null_sims < 0:
-            bad("null_sims", f"must be an integer >= 0, not {self.null_sims}")
-        if self.null_sims > MAX_NULL_SIMS:
-            bad("null_sims", f"at most {MAX_NULL_SIMS:,}, not {int(self.null_sims):,}: each is a full noise-only "
-                             f"scan, so this many take about {int(self.null_sims):.3g} times as long as the scan "
-                             "itself")
-        if not 0 < self.fap_threshold <= 1:
-            bad("fap_threshold", f"must be in (0, 1], not {self.fap_threshold}")
-        if int(self.max_candidates) != self.max_candidates or self.max_candidates < 1:
-            bad("max_candidates", f"must be an integer >= 1, not {self.max_candidates}")
-        if not 0 <= self.merge_angle <= 180:
-            bad("merge_angle", f"must be between 0 and 180 degrees, not {self.merge_angle}")
-        if self.workers is not None and (int(self.workers) != self.workers or self.workers < 1):
-            bad("workers", f"must be an integer >= 1, not {self.workers}")
-        return self
-
-    @property
-    def distributed(self) -> bool:
-        """Whether the scan's loops go to worker processes or a Dask cluster."""
-        return bool(self.scheduler) or (self.workers or 1) > 1
-
-
-#: most noise-only scans for the empirical false-alarm probability (resolves FAPs down to 1e-5)
-MAX_NULL_SIMS = 100_000
 
 
 @dataclass
@@ -713,7 +617,8 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
 
         thresholds = _thresholds(trials, null_fe, (fp_dof, fp_scale))
         files["spectrum_plot"] = out / "spectrum.png"
-        scan_plots.spectrum_plot(files["spectrum_plot"], spectrum, candidates, thresholds, want_fe=want_fe)
+        scan_plots.spectrum_plot(files["spectrum_plot"], spectrum, candidates, thresholds, want_fe=want_fe,
+                                 truth=injected_binary(array))
         if want_fe and len(candidates):
             k = int(candidates["frequency_index"][0])
             files["sky_plot"] = out / "sky_fe.png"
@@ -935,6 +840,6 @@ def _summary(options, array, noise, frequencies, n_pix, trials, candidates, null
     return summary
 
 
-__all__ = ["ScanOptions", "ScanResult", "run_scan", "frequency_grid", "default_max_frequency", "fe_map",
+__all__ = ["ScanOptions", "STATISTICS", "MAX_NULL_SIMS", "ScanResult", "run_scan", "frequency_grid", "default_max_frequency", "fe_map",
            "null_maxima", "simulate_noise", "effective_sky_templates", "fe_single_fap", "trials_fap", "fp_fap",
            "empirical_fap", "local_maxima", "merge_peaks", "sky_grid", "Trials", "SkyTrials", "fitted_trials"]

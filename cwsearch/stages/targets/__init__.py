@@ -2,21 +2,25 @@
 position, with calibrated p-values, family-wise and false-discovery-rate corrections, and a chirp-mass limit
 per target.
 
-``Options`` is :class:`TargetsOptions`, ``run`` is :func:`run_targets`; the computation is in ``stage.py``
-(and :mod:`cwsearch.inference.targeted`), the figures in ``plots.py``.
+``Options`` is :class:`TargetsOptions` (``options.py``, standard library only), ``run`` is
+:func:`run_targets`; the computation is in ``stage.py`` (and :mod:`cwsearch.inference.targeted`), the
+figures in ``plots.py``. Importing this package loads only the options; ``stage.py`` is imported at the
+first use of ``run`` or of any other name.
 """
 
 from __future__ import annotations
 
-from ..base import Stage
-from . import stage
-from .stage import *  # noqa: F401,F403  (the stage's public names, listed in stage.__all__)
-from .stage import TargetsOptions, run_targets
+from ..base import Stage, lazy_module_getattr, lazy_run
+from .options import TargetsOptions
 
 Options = TargetsOptions
-run = run_targets
+#: :func:`run_targets` of ``stage.py``, imported at the first call
+run = lazy_run(__name__, "run_targets")
 
 #: this stage's entry in the registry :data:`cwsearch.stages.STAGES`
-STAGE = Stage("targets", TargetsOptions, run_targets, upstream=(), products=("results.ecsv",))
+STAGE = Stage("targets", TargetsOptions, run, upstream=(), products=("results.ecsv",))
 
-__all__ = ["Options", "run", "STAGE", *stage.__all__]
+#: the stage's other public names (``stage.__all__``), from ``stage.py`` at their first use
+__getattr__ = lazy_module_getattr(__name__)
+
+__all__ = ["Options", "run", "STAGE", "TargetsOptions", "run_targets"]

@@ -43,7 +43,6 @@ import math
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Literal
 
 import astropy.units as u
 import numpy as np
@@ -55,99 +54,14 @@ from ...core.progress import progress as progress_bar
 from ...data.catalog import read_catalog
 from ...inference.execution import TaskRunner
 from ...inference.noisefit import stage_noise_statement
-from ...inference.targeted import (NULL_METHODS, benjamini_hochberg, benjamini_yekutieli, bonferroni,
+from ...inference.targeted import (benjamini_hochberg, benjamini_yekutieli, bonferroni,
                                    calibrated_p_values, frequency_windows, gw_frequency_from_period, holm,
                                    scrambled_window_maxima, simulated_window_maxima, target_limits,
                                    target_statistics)
-from ...inference.upper_limits import QUADRATURE
 from ...physics.correlated import array_noise
 from ...physics.fstat import frequency_grid
 from ...physics.noise import NoiseSettings
-
-#: most noise-only simulations / sky scrambles accepted
-MAX_NULL_SIMS = 100_000
-MAX_SCRAMBLES = 1_000_000
-
-
-def _opt(default, help_text):
-    return field(default=default, metadata={"help": help_text})
-
-
-@dataclass(frozen=True)
-class TargetsOptions:
-    """Options of the targets stage (names = CLI options of ``cwsearch targets`` with dashes -> underscores;
-    ``[targets]`` in a run file)."""
-
-    catalog: str | None = _opt(None, "target catalogue, ECSV or CSV (name, ra, dec, distance [Mpc] or redshift; "
-                                     "optional period, period_err [d])")
-    columns: str | None = _opt(None, "column-name mapping, e.g. 'ra=RAJ2000,dec=DEJ2000,distance=Dist'")
-    fmin: float | None = _opt(None, "lowest GW frequency [Hz] (default 1/T_span)")
-    fmax: float | None = _opt(None, "highest GW frequency [Hz] (default 1/(2 x median TOA spacing), at most 1e-6)")
-    oversample: int = _opt(2, "frequency spacing 1/(oversample x T_span)")
-    ignore_periods: bool = _opt(False, "search every target over the whole band, even where a period is given")
-    period_frame: Literal["observed", "rest"] = _opt("observed", "frame of the catalogue periods: observed "
-                                                                 "(Earth) or rest (source frame; redshifted with "
-                                                                 "the catalogue redshift)")
-    period_factor: float = _opt(1.0, "EM period = period_factor x orbital period (f_gw = 2 period_factor / P)")
-    period_sigmas: float = _opt(3.0, "half-width of a period target's window in units of its period error "
-                                     "(at least half a Fourier bin 1/(2 T_span))")
-    null: Literal["simulations", "scrambles", "both"] = _opt("simulations", "null distribution of the p-values: "
-                                                                            "noise-only simulations, sky "
-                                                                            "scrambles, or both")
-    null_sims: int = _opt(100, "noise-only simulated datasets for the p-values")
-    scrambles: int = _opt(1000, "random sky positions for the scramble p-values")
-    fdr_method: Literal["bh", "by"] = _opt("bh", "false-discovery-rate correction: bh (Benjamini-Hochberg) or "
-                                                 "by (Benjamini-Yekutieli, any dependence)")
-    followup_threshold: float = _opt(0.01, "hand targets with a family-wise corrected p-value below this to the "
-                                           "follow-up")
-    followup_top: int = _opt(5, "at most this many targets go to the follow-up")
-    no_limits: bool = _opt(False, "skip the 95 % chirp-mass limits per target")
-    quadrature: Literal["fast", "standard", "fine"] = _opt("standard", "angle grid of the limits' quadrature")
-    workers: int | None = _opt(None, "local worker processes for the limits (default one per CPU)")
-    scheduler: str | None = _opt(None, "address of a running Dask scheduler for the limits")
-    no_plots: bool = _opt(False, "skip the PNG plots")
-
-    def validate(self):
-        """Raise :class:`InputError` for values the stage cannot use (the catalogue itself is read when the
-        stage runs); returns ``self``."""
-        def bad(name, why):
-            raise InputError(f"option --{name.replace('_', '-')}: {why}")
-
-        for name in ("fmin", "fmax"):
-            v = getattr(self, name)
-            if v is not None and not (float(v) > 0 and math.isfinite(float(v))):
-                bad(name, f"must be > 0 Hz, not {v}")
-        if self.fmin is not None and self.fmax is not None and not self.fmax > self.fmin:
-            bad("fmax", f"must be above --fmin ({self.fmax} <= {self.fmin})")
-        if not (isinstance(self.oversample, (int, np.integer)) and 1 <= self.oversample <= 64):
-            bad("oversample", f"must be an integer in 1..64, not {self.oversample}")
-        if self.period_frame not in ("observed", "rest"):
-            bad("period_frame", f"must be 'observed' or 'rest', not {self.period_frame!r}")
-        if not (self.period_factor > 0 and math.isfinite(self.period_factor)):
-            bad("period_factor", f"must be > 0, not {self.period_factor}")
-        if not (self.period_sigmas > 0 and math.isfinite(self.period_sigmas)):
-            bad("period_sigmas", f"must be > 0, not {self.period_sigmas}")
-        if self.null not in NULL_METHODS:
-            bad("null", f"must be one of {', '.join(NULL_METHODS)}, not {self.null!r}")
-        for name, top in (("null_sims", MAX_NULL_SIMS), ("scrambles", MAX_SCRAMBLES)):
-            v = getattr(self, name)
-            if int(v) != v or not 0 <= v <= top:
-                bad(name, f"must be an integer in 0..{top:,}, not {v}")
-        if self.null in ("simulations", "both") and self.null_sims < 1:
-            bad("null_sims", f"must be >= 1 with --null {self.null}")
-        if self.null in ("scrambles", "both") and self.scrambles < 1:
-            bad("scrambles", f"must be >= 1 with --null {self.null}")
-        if self.fdr_method not in ("bh", "by"):
-            bad("fdr_method", f"must be 'bh' or 'by', not {self.fdr_method!r}")
-        if not 0 <= self.followup_threshold <= 1:
-            bad("followup_threshold", f"must be within [0, 1], not {self.followup_threshold}")
-        if int(self.followup_top) != self.followup_top or self.followup_top < 0:
-            bad("followup_top", f"must be an integer >= 0, not {self.followup_top}")
-        if self.quadrature not in QUADRATURE:
-            bad("quadrature", f"must be one of {', '.join(QUADRATURE)}, not {self.quadrature!r}")
-        if self.workers is not None and (int(self.workers) != self.workers or not 0 <= self.workers <= 1024):
-            bad("workers", f"must be an integer in 0..1024 (0: one per CPU), not {self.workers}")
-        return self
+from .options import MAX_NULL_SIMS, MAX_SCRAMBLES, TargetsOptions  # noqa: F401  (re-exported)
 
 
 @dataclass
