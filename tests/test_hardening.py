@@ -28,7 +28,7 @@ Hangs
                                          test_pulsars_file_fifo_refused_without_blocking,
                                          test_fitted_noise_table_fifo_refused_without_blocking
   null_sims = 1e12 ..................... test_huge_null_sims_refused_with_time_estimate,
-                                         test_run_file_and_command_refuse_nonpositive_max_time_and_huge_null_sims
+                                         test_run_file_refuses_nonpositive_max_time_and_huge_null_sims
 Wrong silent acceptance, misleading errors
   mjd in yr ............................ test_mjd_in_years_refused_as_implausible
   MJD range widened by a flag .......... test_mjd_range_flag_widens_the_plausible_dates,
@@ -40,7 +40,7 @@ Wrong silent acceptance, misleading errors
   stages = [] .......................... test_run_file_empty_stages_refused
   [limits] galaxy bad, passes --check .. test_run_file_bad_limits_galaxy_fails_check
   max_time = -10, NaN in JSON .......... test_followup_nonpositive_max_time_refused,
-                                         test_run_file_and_command_refuse_nonpositive_max_time_and_huge_null_sims,
+                                         test_run_file_refuses_nonpositive_max_time_and_huge_null_sims,
                                          test_followup_tiny_max_time_samples_and_writes_strict_json,
                                          test_json_outputs_write_null_for_values_that_are_not_numbers
   catalogue distance inf dropped ....... test_catalog_infinite_distance_refused_not_dropped
@@ -112,6 +112,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from cwsearch.cli import main as cli_main
 from cwsearch.core.errors import InputError
 from tests.test_bad_input import (check_user_error, noise, psr, res, run_cli, scan_argv, set_unit, set_value,
                                   snapshot, template, work)  # noqa: F401 (fixtures)
@@ -320,12 +321,8 @@ def _strict_json(path):
     return json.loads(Path(path).read_text(encoding="utf-8"), parse_constant=refuse)
 
 
-@pytest.mark.parametrize("where", ["command", "run-file"])
-def test_run_file_and_command_refuse_nonpositive_max_time_and_huge_null_sims(work, capsys, where):
-    if where == "command":
-        code, err = run_cli(_explicit_followup(work, "--max-time=-10"), capsys)
-        check_user_error(code, err, ["--max-time"])
-        return
+def test_run_file_refuses_nonpositive_max_time_and_huge_null_sims(work, capsys):
+    """The command-line forms: test_followup_nonpositive_max_time_refused, test_huge_null_sims_refused_*."""
     runfile = work / "run.toml"
     for section, line in (("followup", "max_time = -10"), ("scan", "null_sims = 1000000000000")):
         runfile.write_text(f'dataset = "data"\nout = "run"\n\n[{section}]\n{line}\n')
@@ -704,6 +701,22 @@ def test_control_characters_escaped_in_limits_galaxy_messages(work, capsys):
                          "120", "5"], capsys)
     check_user_error(code, err, ["--galaxy", "G\\x1b]0;owned\\x07"])
     assert "\x1b" not in err and "\x07" not in err
+
+
+def test_control_characters_escaped_in_the_hosts_ranking(work, capsys):
+    """Galaxy names from a catalogue are printed with their control characters escaped (an OSC title
+    sequence and a screen clear here), never raw."""
+    from tests.test_fuzz_readers import _scan_and_posterior
+
+    _scan_and_posterior(work / "run")
+    (work / "galaxies.csv").write_text("name,ra,dec,distance\nG\x1b]0;owned\x07\x1b[2J,10,20,40\nGAL002,200,-30,80\n")
+    capsys.readouterr()
+    code = cli_main(["hosts", "--out", str(work / "run"), "--catalog", str(work / "galaxies.csv"),
+                     "--observed-span", "10", "--no-plots"])
+    out = capsys.readouterr()
+    assert code == 0, out.err
+    assert "\x1b" not in out.out + out.err and "\x07" not in out.out + out.err
+    assert "G\\x1b]0;owned\\x07" in out.out
 
 
 def test_escape_text_leaves_printable_text_alone():
