@@ -64,7 +64,8 @@ Faults
                                          test_followup_and_limits_refuse_the_run_folder_of_another_dataset,
                                          test_stage_command_checks_the_results_when_dataset_json_is_gone,
                                          test_hosts_refuses_results_of_another_dataset,
-                                         test_stage_command_records_its_dataset
+                                         test_stage_command_records_its_dataset,
+                                         test_run_of_another_dataset_does_not_use_the_folders_earlier_results
   resume of an estimate-model scan ..... F test_kill_scan_then_resume_equals_uninterrupted (estimate model),
                                          F test_kill_during_noise_fit_then_resume_equals_uninterrupted,
                                          tests/test_noise_stage.py::
@@ -73,6 +74,7 @@ Security
   symlinks, FIFOs, devices followed .... the symlink/FIFO/device tests above
   ESC/OSC in names printed raw ......... test_control_characters_escaped_in_inspect_output,
                                          test_control_characters_escaped_in_limits_galaxy_messages,
+                                         test_control_characters_escaped_in_the_hosts_ranking,
                                          test_escape_text_leaves_printable_text_alone
   outputs 0600 whatever the umask ...... test_outputs_follow_the_umask
 The safety layer itself
@@ -507,6 +509,27 @@ def test_stage_command_checks_the_results_when_dataset_json_is_gone(work, capsys
                          "--max-iterations", "10", "--noise-model", "dataset"], capsys)
     check_user_error(code, err, ["scan_summary.json", "another dataset"])
     assert snapshot(work / "run") == before
+
+
+def test_run_of_another_dataset_does_not_use_the_folders_earlier_results(work, capsys):
+    """`cwsearch run` with dataset B into the run folder of dataset A, scan left out of B's stages: A's
+    finished scan must not feed B's follow-up (it is blocked, saying why), and A's scan is kept."""
+    base = 'dataset = "{data}"\nout = "run"\nstages = {stages}\n\n[noise]\nmodel = "dataset"\n' \
+           'red_components = 5\n\n[scan]\nnside = 1\nfmax = 3e-8\nno_plots = true\n\n' \
+           '[followup]\nfap_threshold = 1.0\nmax_iterations = 10\nwalkers = 18\ntemperatures = 2\nno_plots = true\n'
+    runfile = work / "run.toml"
+    runfile.write_text(base.format(data="data", stages='["scan"]'))
+    code, err = run_cli(["run", runfile, "--quiet"], capsys)
+    assert code == 0, err
+    scan_of_a = snapshot(work / "run" / "scan")
+    _dataset_b(work)
+    runfile.write_text(base.format(data="data_b", stages='["followup"]'))
+    code, err = run_cli(["run", runfile, "--quiet"], capsys)
+    stages = {s["stage"]: s for s in _strict_json(work / "run" / "summary.json")["stages"]}
+    assert "another dataset" in stages["scan"]["reason"]
+    assert stages["followup"]["status"] == "blocked"
+    assert not (work / "run" / "followup" / "posterior.ecsv").exists()
+    assert snapshot(work / "run" / "scan") == scan_of_a
 
 
 def test_hosts_refuses_results_of_another_dataset(work, capsys):
