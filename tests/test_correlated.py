@@ -517,3 +517,16 @@ def test_correction_matrix_equals_dense_inverse(kind):
         want = phi @ np.linalg.inv(np.eye(phi.shape[0]) + e @ phi)
     got = aw.correction_matrix()
     np.testing.assert_allclose(got, want, rtol=1e-8, atol=1e-8 * np.abs(want).max())
+
+
+def test_weighted_fourier_equals_dense():
+    """K_p⁻¹ F_p of the scan corrections and the likelihood against the dense G-projected inverse
+    G (GᵀKG)⁻¹ Gᵀ of each pulsar's own covariance (van Haasteren & Vallisneri 2014), K written out
+    by ``_dense`` with the common process switched off (log10 A = −30: φ below 1e-50 s²)."""
+    arr = _array(seed=4)
+    aw = ArrayWeighting(arr, SETTINGS, CommonProcess(-13.7, 13 / 3, 6))
+    dense = _Dense(arr, SETTINGS, CommonProcess(-30.0, 13 / 3, 6), np.eye(len(arr)))
+    for p, got in enumerate(aw.weighted_fourier()):
+        lo, hi = dense.offsets[p], dense.offsets[p + 1]
+        want = dense.inv[lo:hi, lo:hi] @ aw.fourier[p]
+        np.testing.assert_allclose(got, want, rtol=RTOL, atol=RTOL * np.abs(want).max())
