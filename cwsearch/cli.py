@@ -56,8 +56,9 @@ def _top_parser() -> argparse.ArgumentParser:
 def _command_parser(name: str, module) -> argparse.ArgumentParser:
     epilog = "example:\n" + getattr(module, "EXAMPLE", f"  cwsearch {name}")
     if name in BY_NAME:   # a stage command: its options are the run file's keys (one source: the Options fields)
-        epilog += (f"\n\nrun file: the stage's options above are the [{name}] keys of `cwsearch run`\n"
-                   "(dashes -> underscores; --no-NAME is NAME = false); runs/example.toml lists every key")
+        epilog += ("\n\nrun file: for `cwsearch run` these options are keys, dashes turned into underscores\n"
+                   f"(--no-NAME is NAME = false): the stage's in [{name}], the noise model's in [noise], --out and\n"
+                   "--seed at the top; runs/example.toml lists every key")
     parser = argparse.ArgumentParser(
         prog=f"cwsearch {name}",
         formatter_class=argparse.RawDescriptionHelpFormatter,
