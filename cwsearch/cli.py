@@ -57,8 +57,9 @@ def _command_parser(name: str, module) -> argparse.ArgumentParser:
     epilog = "example:\n" + getattr(module, "EXAMPLE", f"  cwsearch {name}")
     if name in BY_NAME:   # a stage command: its options are the run file's keys (one source: the Options fields)
         epilog += ("\n\nrun file: for `cwsearch run` these options are keys, dashes turned into underscores\n"
-                   f"(--no-NAME is NAME = false): the stage's in [{name}], the noise model's in [noise], --out and\n"
-                   "--seed at the top; runs/example.toml lists every key")
+                   f"(--no-NAME is NAME = false): the stage's in [{name}], the noise model's in [noise],\n"
+                   "--workers/--scheduler in [execution], --out, --seed and --mjd-range at the top;\n"
+                   "runs/example.toml lists every key")
     parser = argparse.ArgumentParser(
         prog=f"cwsearch {name}",
         formatter_class=argparse.RawDescriptionHelpFormatter,
