@@ -121,7 +121,8 @@ def pp_plot(rows, path, n_null):
 
     plt = pyplot()
     n = len(rows)
-    grid = np.linspace(0.0, 1.0, 201)
+    # linear and logarithmic spacing together: the log panel needs resolution down to 1e-3
+    grid = np.unique(np.concatenate([np.linspace(0.0, 1.0, 201), np.logspace(-3, 0, 301)]))
     lo = stats.binom.ppf(0.025, n, grid) / n
     hi = stats.binom.ppf(0.975, n, grid) / n
     fig, axes = plt.subplots(1, 2, figsize=(10, 4.4))
@@ -140,6 +141,7 @@ def pp_plot(rows, path, n_null):
             ax.set_xscale("log")
             ax.set_yscale("symlog", linthresh=1.0 / n)
             ax.set_xlim(1e-3, 1)
+            ax.set_ylim(0.0, 1.05)
     axes[0].legend(fontsize=7, loc="upper left")
     fig.suptitle(f"Loudest scan peak in {n} realistic noise-only datasets (wrong quoted errors, red noise in half "
                  "the pulsars, Hellings–Downs background)", fontsize=9)

@@ -183,7 +183,7 @@ def run_case(args):
                                   n_frequencies_default_grid=int(frequencies.size),
                                   extrapolated_full_grid_seconds=round(
                                       pk.seconds * frequencies.size / pick.size, 1),
-                                  engine=lim["engine"], median_h95=float(np.median(lim["bayes"])))
+                                  runner=lim["runner"], median_h95=float(np.median(lim["bayes"])))
         if args.compare_serial and (args.scheduler or args.workers > 1):
             t = time.perf_counter()
             serial = compute_limits(proj, ra, dec, method="bayes", progress=False, workers=1)
@@ -319,7 +319,7 @@ def main(argv=None):
 
     cluster = _local_cluster(args.local_cluster) if args.local_cluster else None
     scheduler = cluster.scheduler_address if cluster is not None else args.scheduler
-    results = {"cpus": os.cpu_count(), "engine": f"dask {scheduler}" if scheduler else f"{args.workers} workers",
+    results = {"cpus": os.cpu_count(), "runner": f"dask {scheduler}" if scheduler else f"{args.workers} workers",
                "cases": {}}
     try:
         for case in args.cases.split(","):
@@ -372,7 +372,7 @@ def _print_case(res):
         if key == "scan":
             extra = f", {r['n_frequencies']} frequencies x {r['n_pixels']} pixels"
         if key == "limits":
-            extra = (f", {r['n_pixels']} pixels x {r['n_frequencies']} frequencies on {r['engine']} "
+            extra = (f", {r['n_pixels']} pixels x {r['n_frequencies']} frequencies on {r['runner']} "
                      f"(default grid {r['n_frequencies_default_grid']} frequencies: "
                      f"~{r['extrapolated_full_grid_seconds']:.0f} s extrapolated)")
             if "speedup" in r:

@@ -187,6 +187,10 @@ def test_true_signal_is_the_injected_one(loud_pair):
     from cwsearch.stages.followup.plots import true_signals
 
     folder, with_signal, without = loud_pair
+    # the run's noise model is applied with Array.with_noise: the copy still finds the dataset's injection.json
+    same_data = with_signal.with_noise({p.name: p.noise for p in with_signal})
+    assert injected_signal(same_data) == injected_signal(folder) is not None
+    assert injected_signal(with_signal.with_residuals([q.residuals for q in without])) is None   # other data
     for s, p, q in zip(true_signals(with_signal, injected_signal(folder)), with_signal, without):
         diff = p.residuals - q.residuals
         np.testing.assert_allclose(s, diff, rtol=0, atol=1e-8 * np.abs(diff).max())

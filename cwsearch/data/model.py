@@ -199,8 +199,13 @@ class Array:
         return Array([p.with_residuals(r) for p, r in zip(self.pulsars, residuals)], self.reference_time)
 
     def with_noise(self, noise):
-        """A copy whose pulsars carry other noise models (``noise``: name -> :class:`PulsarNoise`)."""
-        return Array([p.with_noise(noise[p.name]) for p in self.pulsars], self.reference_time)
+        """A copy whose pulsars carry other noise models (``noise``: name -> :class:`PulsarNoise`). The data
+        are unchanged, so the copy keeps the dataset folder it was read from (``source``, where the plots
+        find ``injection.json``); :meth:`with_residuals` does not (other data)."""
+        out = Array([p.with_noise(noise[p.name]) for p in self.pulsars], self.reference_time)
+        if getattr(self, "source", None) is not None:
+            out.source = self.source
+        return out
 
     def __len__(self):
         return len(self.pulsars)

@@ -721,6 +721,10 @@ BACKGROUND_LABELS = {"uncorrelated": "uncorrelated common background (pulsars in
                      "none": "no common background (pulsar noise only)"}
 
 
+def _finite(x):
+    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+
+
 def background_comparison_view(summary):
     """Per candidate, the Bayes factor of binary versus background under each background model of the
     follow-up's ``background_comparison`` (docs/design.md §5b) as a small table, and the sentences saying
@@ -746,8 +750,12 @@ def background_comparison_view(summary):
             how = "importance reweighting of the posterior samples"
             if isinstance(ess, (int, float)) and n:
                 how += f" (importance ESS {ess:.0f} of {int(n)})"
-            unc = comp.get("reweighting_error")
-        text = f"{v:.2f}" + (f" ± {float(unc):.2f}" if isinstance(unc, (int, float)) and math.isfinite(unc) else "")
+            rw = comp.get("reweighting_error")
+            # ln B_other = ln B + ln mean(w): its error holds the sampled one and the reweighting one
+            unc = math.hypot(err, rw) if _finite(err) and _finite(rw) else (rw if _finite(rw) else None)
+            if _finite(rw):
+                how += f"; error: the sampled one and ±{rw:.2g} from the reweighting"
+        text = f"{v:.2f}" + (f" ± {float(unc):.2f}" if _finite(unc) else "")
         verdict = "binary preferred" if v > 0 else "background alone preferred"
         rows.append({"cells": [{"text": BACKGROUND_LABELS.get(k, k), "numeric": False, "sort": None},
                                {"text": text, "numeric": True, "sort": repr(v)},
@@ -778,6 +786,10 @@ def background_comparison_view(summary):
             else:
                 sentences.append(f"Here ln B = {hd:.2f} under the Hellings–Downs background and {unc:.2f} "
                                  "uncorrelated: neither prefers a binary.")
+            rw = comp.get("reweighting_error")
+            sentences.append(f"Difference (uncorrelated minus Hellings–Downs): {unc - hd:.2f}"
+                             + (f" ± {rw:.2g} (the sampled error is common to both and cancels)" if _finite(rw)
+                                else "") + ".")
     if comp.get("warning"):
         sentences.append("Warning: " + str(comp["warning"]) + ".")
     if comp.get("note") and len(values) < 2:

@@ -245,6 +245,15 @@ def residual_plot(path, array, signals, truth_signals=None, max_panels=MAX_RESID
             ax.plot(years, medians[int(i)] * ns, color="tab:blue", lw=1.3, zorder=3)
         if truth_signals is not None:
             ax.plot(years, truth_signals[int(i)] * ns, color="#e6007e", lw=1.1, ls="--", zorder=4)
+        # the y range follows the bulk of the residuals and the curves, not a few outlying TOAs
+        curves = [p.residuals * 0]
+        if s.size:
+            curves += [lo, hi]
+        if truth_signals is not None:
+            curves.append(truth_signals[int(i)])
+        top = max(float(np.percentile(np.abs(p.residuals), 99)), float(np.max(np.abs(np.concatenate(curves)))))
+        if top > 0:
+            ax.set_ylim(-1.25 * top * ns, 1.25 * top * ns)
         ax.set_title(p.name, fontsize=9)
         ax.tick_params(labelsize=7)
         ax.grid(alpha=0.3)
