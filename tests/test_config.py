@@ -287,7 +287,7 @@ def test_execution_section_and_the_old_engine_name(tmp_path, dataset_dir):
     from cwsearch.job.pipeline import runner_options
 
     with warnings.catch_warnings():
-        warnings.simplefilter("error")   # the new name warns about nothing
+        warnings.simplefilter("error", RunFileDeprecationWarning)   # the new name is not deprecated
         new = _parse('dataset = "data"\n[execution]\nworkers = 3\nscheduler = "tcp://h:8786"\n', tmp_path)
     assert new.execution == {"workers": 3, "scheduler": "tcp://h:8786"}
     with pytest.warns(RunFileDeprecationWarning, match=r"\[engine\] section is now called \[execution\]"):

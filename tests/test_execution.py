@@ -46,11 +46,11 @@ def test_same_answers_one_worker_two_workers_and_dask(small_problem):
 
     serial = _compute(small_problem, workers=1)
     two = _compute(small_problem, workers=2)
-    assert "2 local worker processes" in two["engine"]
+    assert "2 local worker processes" in two["runner"]
     _assert_same(serial, two)
     with LocalCluster(n_workers=1, threads_per_worker=2, processes=False, dashboard_address=":0") as cluster:
         dask = _compute(small_problem, scheduler=cluster.scheduler_address)
-    assert dask["engine"].startswith("Dask scheduler")
+    assert dask["runner"].startswith("Dask scheduler")
     _assert_same(serial, dask)
 
 

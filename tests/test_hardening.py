@@ -9,6 +9,93 @@ ranges checked are those stated in ``cwsearch.core.safeio``.
 
 All datasets are tiny invented ones (tests/conftest.py), inputs only, never
 check values.
+
+Audit: every case of issue 19 and the test that guards it (this file unless
+another is named; H = tests/test_hardening.py, B = tests/test_bad_input.py,
+Z = tests/test_fuzz_readers.py, F = tests/test_faults.py, D = tests/test_faults_disk.py)
+
+Tracebacks instead of one line
+  300-character pulsar name ............ test_long_pulsar_name_is_one_line_error
+  noise.ecsv -> /dev/zero .............. test_noise_table_symlink_to_dev_zero_refused,
+                                         test_device_refused_as_not_a_regular_file
+  sigma = 1e-200 ....................... test_sigma_underflow_refused
+  [noise] red_components = -1 .......... test_run_file_negative_red_components_refused_before_writing,
+                                         test_counts_have_upper_bounds
+  truncated / object-array checkpoint .. test_resume_damaged_checkpoint_says_rerun_without_resume,
+                                         Z test_checkpoint_reader_fuzz
+Hangs
+  noise.ecsv a named pipe .............. test_noise_table_fifo_refused_without_blocking,
+                                         test_pulsars_file_fifo_refused_without_blocking,
+                                         test_fitted_noise_table_fifo_refused_without_blocking
+  null_sims = 1e12 ..................... test_huge_null_sims_refused_with_time_estimate,
+                                         test_run_file_and_command_refuse_nonpositive_max_time_and_huge_null_sims
+Wrong silent acceptance, misleading errors
+  mjd in yr ............................ test_mjd_in_years_refused_as_implausible
+  MJD range widened by a flag .......... test_mjd_range_flag_widens_the_plausible_dates,
+                                         test_run_file_mjd_range_widens_the_plausible_dates
+  residual symlink outside the dataset . test_residual_symlink_outside_dataset_refused_unread
+                                         (legal: test_residual_symlink_inside_dataset_accepted)
+  residual = 1e300 ..................... test_huge_residual_refused, test_residual_a_million_sigma_away_refused
+  mjd = -1e9 (said --nside) ............ test_negative_mjd_names_file_row_column
+  stages = [] .......................... test_run_file_empty_stages_refused
+  [limits] galaxy bad, passes --check .. test_run_file_bad_limits_galaxy_fails_check
+  max_time = -10, NaN in JSON .......... test_followup_nonpositive_max_time_refused,
+                                         test_run_file_and_command_refuse_nonpositive_max_time_and_huge_null_sims,
+                                         test_followup_tiny_max_time_samples_and_writes_strict_json,
+                                         test_json_outputs_write_null_for_values_that_are_not_numbers
+  catalogue distance inf dropped ....... test_catalog_infinite_distance_refused_not_dropped
+  hosts: posterior without summary ..... test_hosts_refuses_posterior_without_summary
+  followup/hosts: scan without summary . test_followup_refuses_scan_without_summary,
+                                         test_hosts_refuses_scan_without_summary
+  simulate --overwrite deletes files ... test_simulate_overwrite_keeps_unrelated_files
+Legal input rejected
+  catalogue ra = 720.5 ................. test_catalog_ra_720_5_wraps
+  UTF-8 CSV with a byte-order mark ..... test_catalog_utf8_bom_csv_accepted
+Faults
+  kill -9 of limits --workers 2 ........ test_kill9_of_limits_with_two_workers_leaves_no_worker_processes,
+                                         test_kill9_of_main_process_leaves_no_worker_processes
+  .NAME.png.XXXX.part left behind ...... test_part_files_cleaned_when_the_run_folder_is_locked,
+                                         F test_kill_scan_then_resume_equals_uninterrupted (no .part after resume)
+  two scan --out SAME at once .......... test_two_scans_into_one_run_folder_at_once_the_second_is_refused,
+                                         test_stage_command_refuses_run_folder_locked_by_live_run
+  lock of another host taken as stale .. test_lock_naming_another_host_is_not_stale
+  followup B --out RUN_OF_A (hosts,
+  limits) .............................. test_stage_command_refuses_run_of_another_dataset,
+                                         test_followup_and_limits_refuse_the_run_folder_of_another_dataset,
+                                         test_stage_command_checks_the_results_when_dataset_json_is_gone,
+                                         test_hosts_refuses_results_of_another_dataset,
+                                         test_stage_command_records_its_dataset
+  resume of an estimate-model scan ..... F test_kill_scan_then_resume_equals_uninterrupted (estimate model),
+                                         F test_kill_during_noise_fit_then_resume_equals_uninterrupted,
+                                         tests/test_noise_stage.py::
+                                         test_estimate_refits_an_interrupted_fit_or_one_with_other_options_or_seed
+Security
+  symlinks, FIFOs, devices followed .... the symlink/FIFO/device tests above
+  ESC/OSC in names printed raw ......... test_control_characters_escaped_in_inspect_output,
+                                         test_control_characters_escaped_in_limits_galaxy_messages,
+                                         test_escape_text_leaves_printable_text_alone
+  outputs 0600 whatever the umask ...... test_outputs_follow_the_umask
+The safety layer itself
+  size cap with a clear message ........ test_size_cap_has_a_clear_message
+  counts with upper bounds ............. test_counts_have_upper_bounds, test_huge_null_sims_refused_with_time_estimate
+  fuzz of every reader (bytes, Unicode,
+  numeric extremes) .................... Z test_dataset_reader_fuzz (pulsars, residuals, noise.ecsv),
+                                         Z test_catalog_reader_fuzz (CSV, ECSV), Z test_run_file_fuzz,
+                                         Z test_run_folder_reader_fuzz (candidates, posterior, its summary),
+                                         Z test_noise_table_reader_fuzz, Z test_checkpoint_reader_fuzz
+What held before and must keep holding
+  YAML tags that would run code ........ Z test_yaml_python_tags_rejected_not_executed,
+                                         B test_bad_dataset[residuals-python-yaml-tag]
+  checkpoints never unpickle ........... Z test_numpy_loads_refuse_pickles, Z test_no_code_execution_or_unpickling_in_package
+  names cannot escape their folders .... B test_bad_dataset[pulsar-name-slash, -backslash, -dotdot],
+                                         test_candidate_name_cannot_leave_the_run_folder
+  data strings escaped in the report ... tests/test_report.py::test_strict_html5_parse, test_content_of_the_sections
+  full disk, read-only folder .......... F test_read_only_output_folder, F test_full_disk,
+                                         D test_unwritable_run_folder, D test_disk_fills_during_stage
+  kill -9 resumed to the same numbers .. F test_kill_* (scan, noise fit, limits, follow-up)
+  same numbers across thread counts .... tests/test_scan_engines.py::test_serial_threaded_processes_and_dask_agree
+  118 bad inputs refused cleanly ....... B test_bad_dataset, test_bad_scan_option, test_bad_run_file,
+                                         test_bad_catalog, test_bad_limits_input, test_bad_followup_input, ...
 """
 
 from __future__ import annotations
@@ -224,6 +311,47 @@ def test_followup_nonpositive_max_time_refused(work, capsys, value):
     code, err = run_cli(_explicit_followup(work, f"--max-time={value}"), capsys)
     check_user_error(code, err, ["--max-time"])
     assert not (work / "run").exists()
+
+
+def _strict_json(path):
+    """json.loads that refuses NaN and ±Infinity (not JSON: RFC 8259 has no such numbers)."""
+    def refuse(constant):
+        raise ValueError(f"{path}: {constant} is not JSON")
+    return json.loads(Path(path).read_text(encoding="utf-8"), parse_constant=refuse)
+
+
+@pytest.mark.parametrize("where", ["command", "run-file"])
+def test_run_file_and_command_refuse_nonpositive_max_time_and_huge_null_sims(work, capsys, where):
+    if where == "command":
+        code, err = run_cli(_explicit_followup(work, "--max-time=-10"), capsys)
+        check_user_error(code, err, ["--max-time"])
+        return
+    runfile = work / "run.toml"
+    for section, line in (("followup", "max_time = -10"), ("scan", "null_sims = 1000000000000")):
+        runfile.write_text(f'dataset = "data"\nout = "run"\n\n[{section}]\n{line}\n')
+        code, err = run_cli(["run", runfile, "--check"], capsys)
+        check_user_error(code, err, ["run.toml", "line 5", line.split(" ")[0]])
+    assert not (work / "run").exists()
+
+
+def test_followup_tiny_max_time_samples_and_writes_strict_json(work, capsys):
+    """A wall-time cap smaller than one step used to stop before the first iteration: exit 0, an empty
+    posterior and NaN in summary.json (not JSON). The cap now counts once there are samples, and a value
+    that is not a number is written as null."""
+    code, err = run_cli(_explicit_followup(work, "--max-time=1e-6", "--noise-model", "dataset"), capsys)
+    assert code == 0, err
+    summary = _strict_json(work / "run" / "followup" / "summary.json")
+    assert summary["iterations"] > 0
+    for path in (work / "run").rglob("*.json"):
+        _strict_json(path)
+
+
+def test_json_outputs_write_null_for_values_that_are_not_numbers(tmp_path):
+    from cwsearch.core.fileio import write_json_atomic
+
+    write_json_atomic(tmp_path / "a.json", {"x": float("nan"), "y": [np.inf, 1.5, np.float32(-np.inf)],
+                                            "z": np.array([np.nan, 2.0])})
+    assert _strict_json(tmp_path / "a.json") == {"x": None, "y": [None, 1.5, None], "z": [None, 2.0]}
 
 
 def test_catalog_infinite_distance_refused_not_dropped(tmp_path):
@@ -462,6 +590,84 @@ def test_kill9_of_main_process_leaves_no_worker_processes():
     for p in alive:
         os.kill(p, signal.SIGKILL)
     assert not alive, f"orphaned worker processes {alive}"
+
+
+def _children(pid):
+    """Process ids whose parent is ``pid`` (Linux /proc)."""
+    out = []
+    for task in Path(f"/proc/{pid}/task").glob("*"):
+        try:
+            out += [int(c) for c in (task / "children").read_text().split()]
+        except OSError:
+            pass
+    return out
+
+
+def _start(argv, cwd):
+    return subprocess.Popen([sys.executable, "-m", "cwsearch", *map(str, argv)], cwd=cwd,
+                            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+
+
+def _wait_for(condition, proc, what, timeout=120):
+    deadline = time.monotonic() + timeout
+    while not condition():
+        assert proc.poll() is None, f"the first process ended (exit {proc.returncode}) before {what}"
+        assert time.monotonic() < deadline, f"no {what} within {timeout} s"
+        time.sleep(0.05)
+
+
+def test_two_scans_into_one_run_folder_at_once_the_second_is_refused(work, capsys):
+    """Two `cwsearch scan --out SAME` at once: the second one refuses with one line naming the first's pid;
+    after the first is killed (kill -9) its stale lock is taken over and a scan runs."""
+    first = _start(scan_argv(work, "--null-sims", "100000", "--noise-model", "dataset"), work)
+    try:
+        _wait_for(lambda: (work / "run" / ".lock").exists(), first, "lock")
+        code, err = run_cli(scan_argv(work, "--noise-model", "dataset"), capsys)
+        check_user_error(code, err, ["another cwsearch run", f"pid {first.pid}"])
+    finally:
+        first.kill()
+        first.wait()
+    code, err = run_cli(scan_argv(work, "--noise-model", "dataset"), capsys)
+    assert code == 0, err
+    assert (work / "run" / "scan" / "scan_summary.json").is_file() and not (work / "run" / ".lock").exists()
+
+
+def test_kill9_of_limits_with_two_workers_leaves_no_worker_processes(work):
+    """`cwsearch limits --workers 2` killed with SIGKILL: its worker processes end too (watchdog)."""
+    argv = ["limits", work / "data", "--out", work / "run", "--nside", "2", "--fmax", "3e-8", "--no-plots", "--quiet",
+            "--workers", "2", "--red-components", "5", "--noise-model", "dataset"]
+    proc = _start(argv, work)
+    try:
+        _wait_for(lambda: len(_children(proc.pid)) >= 2, proc, "two worker processes")
+        workers = _children(proc.pid)
+    finally:
+        proc.send_signal(signal.SIGKILL)
+        proc.wait()
+    # liveness, not speed: the watchdog polls every 0.5 s; allow a generous minute on a loaded machine
+    deadline = time.monotonic() + 60
+    while time.monotonic() < deadline and not all(_gone(p) for p in workers):
+        time.sleep(0.2)
+    alive = [p for p in workers if not _gone(p)]
+    for p in alive:
+        os.kill(p, signal.SIGKILL)
+    assert not alive, f"orphaned worker processes {alive}"
+
+
+@pytest.mark.parametrize("command", ["hosts", "followup"])
+def test_candidate_name_cannot_leave_the_run_folder(work, capsys, command):
+    from tests.test_fuzz_readers import _scan_and_posterior
+
+    _scan_and_posterior(work / "run")
+    before = snapshot(work)
+    if command == "hosts":
+        argv = ["hosts", "--out", work / "run", "--catalog", work / "galaxies.csv", "--observed-span", "10",
+                "--quiet", "--no-plots", "--candidate", "../../outside"]
+    else:
+        argv = ["followup", work / "data", "--out", work / "run", "--quiet", "--red-components", "3",
+                "--max-iterations", "10", "--noise-model", "dataset", "--candidate", "../../outside"]
+    code, err = run_cli(argv, capsys)
+    check_user_error(code, err, ["--candidate"])
+    assert snapshot(work) == before
 
 
 # ------------------------------------------------------------------ security

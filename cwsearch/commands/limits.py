@@ -95,7 +95,7 @@ def run(args) -> int:
     lo, hi = summary["frequency_range"]
     print(f"95 % strain upper limits at {summary['n_frequencies']} frequencies {lo:.3e}-{hi:.3e} Hz x "
           f"{summary['n_pixels']} sky pixels (nside {summary['nside']}) in {summary['wall_time']:.1f} s "
-          f"on {summary['engine']}")
+          f"on {summary['runner']}")
     if summary.get("fmax_note"):
         print(f"  note: {summary['fmax_note']}")
     for line in method_lines(summary):

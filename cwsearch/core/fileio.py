@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import contextlib
 import json
+import math
 import os
 import tempfile
 from pathlib import Path
@@ -81,8 +82,25 @@ def write_bytes_atomic(target, data: bytes) -> None:
 
 
 def write_json_atomic(target, obj) -> None:
-    """Write ``obj`` as indented JSON to ``target`` atomically."""
-    write_text_atomic(target, json.dumps(obj, indent=2, sort_keys=False, default=_json_default) + "\n")
+    """Write ``obj`` as indented, strict JSON to ``target`` atomically: a float that is not finite (NaN,
+    ±inf: "no value") is written as ``null``, since JSON (RFC 8259) has no NaN and other tools refuse it."""
+    text = json.dumps(_finite_or_null(obj), indent=2, sort_keys=False, default=_json_default, allow_nan=False)
+    write_text_atomic(target, text + "\n")
+
+
+def _finite_or_null(obj):
+    """``obj`` with NumPy values made plain and every non-finite float replaced by None."""
+    if isinstance(obj, dict):
+        return {k: _finite_or_null(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_finite_or_null(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _finite_or_null(obj.tolist())
+    if isinstance(obj, np.generic):
+        obj = obj.item()
+    if isinstance(obj, float) and not math.isfinite(obj):
+        return None
+    return obj
 
 
 def write_table_atomic(target, table) -> None:

@@ -601,7 +601,8 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
     # (min_chain_taus τ)), in per cent, not iterations towards the cap (a run normally stops long before it)
     with progress_bar(total=100, desc=label, enabled=progress, unit="%") as bar:
         while n < settings.max_iterations:
-            if elapsed_before + time.monotonic() - start >= settings.max_time:
+            # the wall-time cap counts only once there are samples: a run always makes its first block
+            if n > 0 and elapsed_before + time.monotonic() - start >= settings.max_time:
                 stopped_by = "time"
                 break
             step = settings.check_every - n % settings.check_every

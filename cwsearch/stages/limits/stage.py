@@ -383,11 +383,11 @@ def compute_limits(proj, ra, dec, *, method="bayes", quadrature="standard", work
                       "grid": QUADRATURE[quadrature], "level": float(level)})
         weights.append(sl.stop - sl.start)
     with TaskRunner(workers=workers, scheduler=scheduler) as runner:
-        engine = runner.describe()
+        where = runner.describe()
         with progress_bar(total=n_rows, desc="limits (pixel x frequency)", enabled=progress, unit="px") as bar:
             results = runner.map(_limits_task, tasks, weights=weights, on_done=bar.update)
     scale = 2 * np.pi * proj.frequencies[None, :]
-    out = {"fe": fe, "engine": engine}
+    out = {"fe": fe, "runner": where}
     if want_bayes:
         x95 = np.concatenate([r["bayes"][0] for r in results]).reshape(n_pos, n_freq)
         out["bayes"] = x95 * scale
@@ -449,7 +449,7 @@ class LimitsComputation:
 
     ``limits`` holds the per-point 95 % strain limits of each method computed, shape
     (N_pix + N_galaxies, N_freq) (sky pixels first, then the galaxies' exact positions), the ``fe`` values
-    and the runner's description (``limits["engine"]``, from :func:`compute_limits`); ``averages`` the
+    and the runner's description (``limits["runner"]``, from :func:`compute_limits`); ``averages`` the
     sky-averaged limits per method, (N_freq,).
     """
 
@@ -654,7 +654,7 @@ def limits_summary(c: LimitsComputation, tables: LimitsTables) -> dict:
         "quadrature": c.quadrature,
         "sky_frequency": c.sky_frequency,
         "best_frequency": float(frequencies[best]),
-        "engine": res["engine"],
+        "runner": res["runner"],
         "noise_model": c.noise_description,
     }
     if c.fmax_note:
