@@ -19,7 +19,7 @@
   160 walkers, full evolution, pulsar term);
 * ``limits``: the Bayesian strain upper-limit map at nside 8 on the default
   grid (:func:`cwsearch.stages.limits.stage.compute_limits`), on the chosen
-  engine (``--workers N`` local processes, ``--scheduler ADDRESS`` a Dask
+  runner (``--workers N`` local processes, ``--scheduler ADDRESS`` a Dask
   cluster, ``--local-cluster N`` a Dask LocalCluster of N workers started
   here); by default only for (a).
 
@@ -99,7 +99,7 @@ def _array(n_psr, n_toa, seed=2026):
     return array, noise
 
 
-def _engine_kwargs(args):
+def _runner_kwargs(args):
     if args.scheduler:
         return {"scheduler": args.scheduler}
     return {"workers": args.workers}
@@ -128,7 +128,7 @@ def run_case(args):
 
     frequencies = frequency_grid(array)
     with _Peak() as pk, tempfile.TemporaryDirectory() as run_dir:
-        res = run_scan(array, run_dir, ScanOptions(nside=16, no_plots=True, **_scan_engine(args)), noise=noise,
+        res = run_scan(array, run_dir, ScanOptions(nside=16, no_plots=True, **_scan_runner(args)), noise=noise,
                        progress=False)
     split = {k: res.summary.get(k) for k in ("noise_build_seconds", "kernel_seconds", "trials_seconds",
                                              "candidates_seconds", "write_seconds")}
@@ -178,7 +178,7 @@ def run_case(args):
             t = time.perf_counter()
             proj = fstat.project(engine, frequencies[pick])
             proj_seconds = time.perf_counter() - t
-            lim = compute_limits(proj, ra, dec, method="bayes", progress=False, **_engine_kwargs(args))
+            lim = compute_limits(proj, ra, dec, method="bayes", progress=False, **_runner_kwargs(args))
         out["limits"] = pk.record(n_pixels=int(ra.size), n_frequencies=int(pick.size),
                                   n_frequencies_default_grid=int(frequencies.size),
                                   extrapolated_full_grid_seconds=round(
@@ -199,7 +199,7 @@ def run_case(args):
     print("RESULT " + json.dumps(out))
 
 
-def _scan_engine(args):
+def _scan_runner(args):
     """Engine options of the scan stage if it has them (frequency chunks through the task runner)."""
     from dataclasses import fields
 
@@ -207,7 +207,7 @@ def _scan_engine(args):
 
     names = {f.name for f in fields(ScanOptions)}
     out = {}
-    if not args.scan_on_engine:      # the scan target is for this machine: kernels threaded in-process
+    if not args.scan_on_runner:      # the scan target is for this machine: kernels threaded in-process
         return out
     if "workers" in names and args.workers:
         out["workers"] = args.workers
@@ -303,9 +303,10 @@ def main(argv=None):
     parser.add_argument("--limits-frequencies", type=int, default=8,
                         help="frequencies of the default grid in the limits map (spread over the band; the "
                              "full-grid time is extrapolated)")
-    parser.add_argument("--scan-on-engine", action="store_true",
-                        help="also send the scan's frequency chunks to the engine (default: the scan runs "
-                             "in this process with threaded kernels; the engine serves the limits map)")
+    parser.add_argument("--scan-on-runner", "--scan-on-engine", dest="scan_on_runner", action="store_true",
+                        help="also send the scan's frequency chunks to the runner (default: the scan runs in this "
+                             "process with threaded kernels; the runner serves the limits map); --scan-on-engine "
+                             "is its old name")
     parser.add_argument("--compare-serial", action="store_true",
                         help="with --workers/--scheduler/--local-cluster: also run the limits map serially, "
                              "report the speed-up and the largest relative difference")
@@ -332,8 +333,8 @@ def main(argv=None):
                 argv_case.append("--no-correlated")
             if args.compare_serial:
                 argv_case.append("--compare-serial")
-            if args.scan_on_engine:
-                argv_case.append("--scan-on-engine")
+            if args.scan_on_runner:
+                argv_case.append("--scan-on-runner")
             run = subprocess.run(argv_case, capture_output=True, text=True)
             lines = [ln for ln in run.stdout.splitlines() if ln.startswith("RESULT ")]
             if run.returncode or not lines:

@@ -23,6 +23,7 @@ import warnings
 from . import __version__
 from .core.errors import InputError
 from .core.safeio import escape_text
+from .stages import BY_NAME  # the registry imports only the stages' options (standard library)
 
 #: command name -> one-line summary (the module is cwsearch.commands.<name>)
 COMMANDS = {
@@ -54,11 +55,17 @@ def _top_parser() -> argparse.ArgumentParser:
 
 
 def _command_parser(name: str, module) -> argparse.ArgumentParser:
+    epilog = "example:\n" + getattr(module, "EXAMPLE", f"  cwsearch {name}")
+    if name in BY_NAME:   # a stage command: its options are the run file's keys (one source: the Options fields)
+        epilog += ("\n\nrun file: for `cwsearch run` these options are keys, dashes turned into underscores\n"
+                   f"(--no-NAME is NAME = false): the stage's in [{name}], the noise model's in [noise],\n"
+                   "--workers/--scheduler in [execution], --out, --seed and --mjd-range at the top;\n"
+                   "runs/example.toml lists every key")
     parser = argparse.ArgumentParser(
         prog=f"cwsearch {name}",
         formatter_class=argparse.RawDescriptionHelpFormatter,
         description=getattr(module, "DESCRIPTION", COMMANDS[name]),
-        epilog="example:\n" + getattr(module, "EXAMPLE", f"  cwsearch {name}"),
+        epilog=epilog,
     )
     module.add_arguments(parser)
     return parser

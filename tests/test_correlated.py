@@ -500,3 +500,33 @@ def test_woodbury_matrix_built_in_small_chunks_equals_dense(kind):
     assert aw.logdet() == pytest.approx(logdet, rel=RTOL)
     gd = dense.g.T @ dense.stack([p.residuals for p in arr])[:, 0]
     assert aw.data_norm() == pytest.approx(float(gd @ np.linalg.solve(dense.gcg, gd)), rel=RTOL)
+
+
+@pytest.mark.parametrize("kind", ["hellings-downs", "monopole"])
+def test_correction_matrix_equals_dense_inverse(kind):
+    """Ψ = (Φ⁻¹ + E)⁻¹, E = FᵀK⁻¹F (Woodbury identity, docs/design.md §5b), from numpy.linalg.inv
+    of the dense matrices; for the singular monopole Γ the equivalent Φ (I + E Φ)⁻¹ (push-through
+    identity). E block-diagonal from the per-pulsar engine's inner products of each Fourier basis."""
+    arr = _array(seed=12, n_pulsars=5)
+    aw = ArrayWeighting(arr, SETTINGS, CommonProcess(-13.8, 13 / 3, 4, kind))
+    phi = aw.dense_covariance_blocks()
+    e = scipy.linalg.block_diag(*[w.inner(fb) for w, fb in zip(aw.engine, aw.fourier)])
+    if kind == "hellings-downs":
+        want = np.linalg.inv(np.linalg.inv(phi) + e)
+    else:
+        want = phi @ np.linalg.inv(np.eye(phi.shape[0]) + e @ phi)
+    got = aw.correction_matrix()
+    np.testing.assert_allclose(got, want, rtol=1e-8, atol=1e-8 * np.abs(want).max())
+
+
+def test_weighted_fourier_equals_dense():
+    """K_p⁻¹ F_p of the scan corrections and the likelihood against the dense G-projected inverse
+    G (GᵀKG)⁻¹ Gᵀ of each pulsar's own covariance (van Haasteren & Vallisneri 2014), K written out
+    by ``_dense`` with the common process switched off (log10 A = −30: φ below 1e-50 s²)."""
+    arr = _array(seed=4)
+    aw = ArrayWeighting(arr, SETTINGS, CommonProcess(-13.7, 13 / 3, 6))
+    dense = _Dense(arr, SETTINGS, CommonProcess(-30.0, 13 / 3, 6), np.eye(len(arr)))
+    for p, got in enumerate(aw.weighted_fourier()):
+        lo, hi = dense.offsets[p], dense.offsets[p + 1]
+        want = dense.inv[lo:hi, lo:hi] @ aw.fourier[p]
+        np.testing.assert_allclose(got, want, rtol=RTOL, atol=RTOL * np.abs(want).max())

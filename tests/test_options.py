@@ -178,3 +178,25 @@ def test_choice_lists_agree_with_the_numerical_code():
     assert typing.get_args(type_hints(FollowupOptions)["evolution"]) == tuple(EVOLUTION_MODES)
     assert tuple(QUADRATURE) == QUADRATURE_NAMES
     assert set(RELATIONS) == set(RELATION_NAMES)
+
+
+#: top-level run-file keys that no command line sets, and why
+TOP_FILE_ONLY = {
+    "dataset": "the stage commands take it as their first argument (DATASET), not as an option",
+    "title": "a label of report.html, which only `cwsearch run` writes from the run file",
+    "stages": "which stages a run file runs; on the command line each stage is its own command",
+}
+
+
+def test_top_level_keys_are_stage_command_options():
+    """out, seed, mjd_range are --out, --seed, --mjd-range of every command that reads a dataset; the others
+    say why not (issue 15 §4: every run-file option is a command-line option where it makes sense)."""
+    from cwsearch.job.config import TOP_KEYS
+
+    for command in ("noise", "scan", "followup", "limits"):
+        actions = _actions(_parser(command))
+        for name in TOP_KEYS:
+            if name in TOP_FILE_ONLY:
+                assert name not in actions
+                continue
+            assert f"--{name.replace('_', '-')}" in actions[name].option_strings, (command, name)

@@ -78,16 +78,14 @@ def format_fit(summary) -> str:
 
 def run(args) -> int:
     # lazy: keeps `cwsearch COMMAND --help` fast
-    from ..core.errors import InputError
     from ..data.dataset import dataset_checksum
     from ..job.pipeline import stage_seed
     from ..stages.noise.stage import run_noise
 
     options = options_from_args(args)
-    if args.red_components < 0:
-        raise InputError("option --red-components: must be >= 0")
+    noise = build_options(NoiseSettings, args)   # checks --red-components (an integer in 0..1000)
     array = load_array(args)
-    result = run_noise(array, args.out, options, noise=NoiseSettings(red_components=args.red_components),
+    result = run_noise(array, args.out, options, noise=noise,
                        seed=stage_seed(args.seed, "noise"), progress=not args.quiet and not args.json,
                        dataset_checksum=dataset_checksum(args.dataset))
     summary = result.summary

@@ -238,10 +238,5 @@ def options_from_args(cls, args, *, exclude=(), **values):
     return cls(**values)
 
 
-def cli_defaults(parser) -> dict:
-    """dest -> default of every option of ``parser`` (what an empty command line gives)."""
-    return {a.dest: a.default for a in parser._actions if a.option_strings}
-
-
 __all__ = ["option", "OptionSpec", "option_specs", "add_options", "options_from_args", "choices_of",
-           "type_hints", "cli_defaults", "argument_group", "number_text", "CLI_ONLY", "FILE_ONLY"]
+           "type_hints", "argument_group", "number_text", "CLI_ONLY", "FILE_ONLY"]

@@ -106,7 +106,7 @@ class TaskRunner:
     engine = kind
 
     def describe(self) -> str:
-        """One line naming the engine, for logs and summaries."""
+        """One line naming where the tasks run, for logs and summaries."""
         if self.scheduler:
             n = len(self._client.scheduler_info().get("workers", {})) if self._client is not None else "?"
             return f"Dask scheduler {self.scheduler} ({n} workers)"
@@ -116,7 +116,7 @@ class TaskRunner:
 
     # ------------------------------------------------------------------ map
     def map(self, function, tasks, *, weights=None, on_done=None):
-        """``[function(t) for t in tasks]`` on the engine, in task order.
+        """``[function(t) for t in tasks]`` where this runner runs them, in task order.
 
         ``weights`` (one number per task, default 1) are passed to
         ``on_done`` as tasks finish.
@@ -264,7 +264,7 @@ def _connect(address, timeout=10.0):
 
 
 def run_tasks(function, tasks, *, workers=None, scheduler=None, retries=3, weights=None, on_done=None):
-    """One-shot :meth:`TaskRunner.map` (opens and closes the engine)."""
+    """One-shot :meth:`TaskRunner.map` (opens and closes the runner)."""
     with TaskRunner(workers=workers, scheduler=scheduler, retries=retries) as runner:
         return runner.map(function, tasks, weights=weights, on_done=on_done)
 

@@ -1,12 +1,15 @@
 """TOML run files: read, validate against the stage options, write back fully resolved.
 
-A run file names the dataset, the run folder, the seed, the stages to run
-and one section per stage. The keys of a stage section are the field names
-of that stage's frozen options dataclass (``cwsearch.stages.scan.stage.ScanOptions`` for
-``[scan]`` and so on), which are also the stage command's option names with
-dashes turned into underscores. The schema is *built from those dataclasses*
-(``dataclasses.fields`` and their type hints), so a new option in a stage is
-automatically a valid run-file key, with the same default.
+A run file names the dataset, the run folder, the seed, the stages to run,
+where the work runs (``[execution]``; the old name ``[engine]`` is still read,
+with a :class:`RunFileDeprecationWarning`) and one section per stage. The
+keys of a stage section are the field names of that stage's frozen options
+dataclass (``cwsearch.stages.scan.options.ScanOptions`` for ``[scan]`` and so
+on), which are also the stage command's option names with dashes turned into
+underscores. The schema is *built from those dataclasses* (their fields'
+option metadata, :func:`cwsearch.core.options.option_specs`, and type hints),
+so a new option in a stage is automatically a valid run-file key, with the
+same default and help; a field marked command-line only is not a key.
 
 Every problem (TOML syntax, unknown section or key, wrong type, missing
 dataset, bad [execution] section, a value the stage rejects) raises
@@ -67,8 +70,10 @@ PIPELINE_SET = {stage.name: frozenset(spec.name for spec in option_specs(stage.o
 ENGINE_KINDS = ("local", "dask")
 
 
-class RunFileDeprecationWarning(DeprecationWarning):
-    """A run file uses an old spelling that is still read (e.g. the ``[engine]`` section, now ``[execution]``)."""
+class RunFileDeprecationWarning(FutureWarning):
+    """A run file uses an old spelling that is still read (e.g. the ``[engine]`` section, now ``[execution]``).
+
+    A ``FutureWarning``, which Python shows by default: it is meant for the user who wrote the file."""
 
 #: largest run file read [bytes] (a run file is a few hundred bytes; this refuses a device or a data file)
 RUN_FILE_MAX_BYTES = 1 << 20

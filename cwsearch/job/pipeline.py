@@ -209,9 +209,15 @@ def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: C
         if spec.name not in config.stages:
             rec = read_record(stage_dir)
             if rec and rec.get("status") in DONE and rec.get("output_hash") == folder_hash(stage_dir):
-                records[spec.name] = rec  # earlier results stay usable downstream
-            reports.append(StageReport(spec.name, "off", reason="not in this run's stages"))
-            log(f"{label}: off (not in this run's stages)")
+                if (rec.get("inputs") or {}).get("dataset") == dataset_checksum:
+                    records[spec.name] = rec  # earlier results of this dataset stay usable downstream
+                    reason = "not in this run's stages"
+                else:   # results of another dataset (the same --out reused) must not feed this run's stages
+                    reason = "not in this run's stages; its results in the run folder are of another dataset"
+            else:
+                reason = "not in this run's stages"
+            reports.append(StageReport(spec.name, "off", reason=reason))
+            log(f"{label}: off ({reason})")
             continue
         reason = spec.available() if spec.available is not None else None
         if reason:

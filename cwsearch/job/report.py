@@ -462,9 +462,13 @@ def first_screen(run: _Run) -> dict:
         answers.append(("Which host?", text + "."))
     lim = head.get("best_limit")
     if lim:
-        answers.append(("What limits?", f"Sky-averaged 95 % strain upper limit {lim['strain_95']:.3g} at "
-                                        f"{lim['frequency'] * 1e9:.3g} nHz, the most sensitive frequency "
-                                        "(see Upper limits for every frequency and sky position)."))
+        text = (f"Sky-averaged 95 % strain upper limit {lim['strain_95']:.3g} at {lim['frequency'] * 1e9:.3g} nHz, "
+                "the most sensitive frequency (see Upper limits for every frequency and sky position)")
+        at_truth = _limit_at(_read_table(run.dir / "limits" / "frequency_limits.ecsv"), (truth or {}).get("frequency"))
+        if truth and truth.get("strain") is not None and truth.get("frequency") is not None:
+            text += (f" (truth: h0 = {truth['strain']:.3g} at {truth['frequency'] * 1e9:.3g} nHz"
+                     + (f", where the limit is {at_truth:.3g})" if at_truth is not None else ")"))
+        answers.append(("What limits?", text + "."))
     if truth:
         snr = truth.get("optimal_snr")
         answers.append(("Simulated data?", "Yes: the dataset holds injection.json; true values are listed beside "
@@ -914,19 +918,29 @@ def galaxy_limits_view(table):
                                       "table against frequency is galaxy_limits.ecsv)")
 
 
+def _limit_at(table, frequency):
+    """The sky-averaged 95 % strain limit at ``frequency`` [Hz], log-log interpolated in
+    ``frequency_limits.ecsv``; None outside its frequencies or without a table."""
+    if table is None or not len(table) or frequency is None or "strain_95" not in table.colnames:
+        return None
+    f = np.asarray(table["frequency"], dtype=float)
+    h = np.asarray(table["strain_95"], dtype=float)
+    ok = np.isfinite(f) & np.isfinite(h) & (f > 0) & (h > 0)
+    if not ok.any() or not f[ok].min() <= frequency <= f[ok].max():
+        return None
+    order = np.argsort(f[ok])
+    return float(10 ** np.interp(np.log10(frequency), np.log10(f[ok][order]), np.log10(h[ok][order])))
+
+
 def limits_truth_text(table, truth):
     """The injected strain beside the sky-averaged 95 % limit at the injected frequency (log-log
     interpolation of ``frequency_limits.ecsv``), or '' without a truth or a table."""
     if table is None or not len(table) or not truth or truth.get("strain") is None or truth.get("frequency") is None:
         return ""
-    f = np.asarray(table["frequency"], dtype=float)
-    h = np.asarray(table["strain_95"], dtype=float)
-    ok = np.isfinite(f) & np.isfinite(h) & (f > 0) & (h > 0)
     f0, h0 = float(truth["frequency"]), float(truth["strain"])
     text = f"Truth (injection.json): strain amplitude h0 = {h0:.3g} at {f0 * 1e9:.3g} nHz"
-    if ok.sum() >= 1 and f[ok].min() <= f0 <= f[ok].max():
-        order = np.argsort(f[ok])
-        limit = float(10 ** np.interp(np.log10(f0), np.log10(f[ok][order]), np.log10(h[ok][order])))
+    limit = _limit_at(table, f0)
+    if limit is not None:
         relation = "above" if h0 > limit else "below"
         text += (f"; the sky-averaged 95 % limit there is {limit:.3g}: the injected strain lies {relation} it "
                  "(a calibrated 95 % limit sits above a present signal in about 95 % of datasets)")
