@@ -250,7 +250,13 @@ def test_chirp_mass_limit_equals_the_galaxy_limit(tmp_path):
         k = idx[s]
         assert h[s] == pytest.approx(bayesian_limit(nv[s, k], mm[s, k], freqs[k]), rel=1e-9)
         assert strain_amplitude(mc[s], freqs[k], [50.0, 120.0][s]) == pytest.approx(h[s], rel=1e-9)
-    assert idx[0] == 5 and idx[1] == targeted.most_sensitive_index(mm[1:], freqs)[0]
+    # the automatic choice: the most sensitive bin at the centre of the target's nside-4 HEALPix pixel
+    from cwsearch.physics import sky
+
+    pix = sky.pixel_of(targeted.SENSITIVITY_NSIDE, ra[1:], dec[1:])
+    cra, cdec = sky.pixel_centres(targeted.SENSITIVITY_NSIDE)
+    _, mc_centre = engine.network(proj, *fstat.sky_patterns(proj, cra[pix], cdec[pix]))
+    assert idx[0] == 5 and idx[1] == targeted.most_sensitive_index(mc_centre, freqs)[0]
 
 
 def test_outside_band_targets_are_kept_but_not_tested(tmp_path):

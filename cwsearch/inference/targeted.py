@@ -438,45 +438,48 @@ def _limit_task(task):
     return bayes_rows(task["nvec"], task["mmat"], grid=task["grid"])[0]
 
 
+#: HEALPix resolution of the sky grid on which the most sensitive frequency of a band target is chosen
+SENSITIVITY_NSIDE = 4
+
+
 def target_limits(engine, proj, ra, dec, limit_index, distance_mpc, *, quadrature="standard", runner=None,
-                  chunk=256):
+                  chunk=1024):
     """95 % Bayesian strain limit and chirp-mass limit per target at frequency index ``limit_index``.
 
-    ``limit_index`` (S,): a grid index, or −1 for "the most sensitive frequency at this position"
-    (:func:`most_sensitive_index`). Returns ``(strain_95, chirp_mass_95 [Msun, observer frame], index)``.
-    The limit is the limits stage's galaxy limit: the posterior of h0 (uniform prior, angles
-    marginalised by quadrature) at the exact position (docs/design.md §9).
+    ``limit_index`` (S,): a grid index, or −1 for "the most sensitive frequency here": the bin minimising the
+    expected chirp-mass limit (:func:`most_sensitive_index`) at the centre of the target's HEALPix pixel of
+    nside :data:`SENSITIVITY_NSIDE` (the sensitivity changes slowly over the sky; N and M over the whole band
+    are formed for 192 pixel centres instead of every target). The limit itself is computed at the exact
+    position. Returns ``(strain_95, chirp_mass_95 [Msun, observer frame], index)``. The limit is the limits
+    stage's galaxy limit: the posterior of h0 (uniform prior, angles marginalised by quadrature) at the exact
+    position (docs/design.md §9).
     """
     n = len(ra)
+    ra, dec = np.asarray(ra, dtype=float), np.asarray(dec, dtype=float)
     index = np.asarray(limit_index, dtype=np.int64).copy()
+    auto = index < 0
+    if auto.any():
+        pra, pdec = sky.pixel_centres(SENSITIVITY_NSIDE)
+        fplus, fcross = fstat.sky_patterns(proj, pra, pdec)
+        _, mm = _network(engine, proj, fplus, fcross)
+        best = most_sensitive_index(mm, proj.frequencies)
+        index[auto] = best[sky.pixel_of(SENSITIVITY_NSIDE, ra[auto], dec[auto])]
     nvec = np.zeros((n, 4))
     mmat = np.zeros((n, 4, 4))
-    auto = np.flatnonzero(index < 0)
-    for a in range(0, auto.size, chunk):
-        rows = auto[a:a + chunk]
-        fplus, fcross = fstat.sky_patterns(proj, np.asarray(ra)[rows], np.asarray(dec)[rows])
-        nv, mm = _network(engine, proj, fplus, fcross)
-        k = most_sensitive_index(mm, proj.frequencies)
-        index[rows] = k
-        take = np.arange(rows.size)
-        nvec[rows], mmat[rows] = nv[take, k], mm[take, k]
-    for k in np.unique(index[index >= 0]):
+    for k in np.unique(index):
         rows = np.flatnonzero(index == k)
-        rows = rows[~np.isin(rows, auto)]
-        if not rows.size:
-            continue
         sub = fstat.Projections(proj.frequencies[k:k + 1], proj.x[:, k:k + 1], proj.y[:, k:k + 1],
                                 proj.z[:, k:k + 1], proj.positions, proj.z_scale)
-        for a in range(0, rows.size, 4 * chunk):
-            part = rows[a:a + 4 * chunk]
-            fplus, fcross = fstat.sky_patterns(sub, np.asarray(ra)[part], np.asarray(dec)[part])
+        for a in range(0, rows.size, chunk):
+            part = rows[a:a + chunk]
+            fplus, fcross = fstat.sky_patterns(sub, ra[part], dec[part])
             nv, mm = _network(engine, sub, fplus, fcross)
             nvec[part], mmat[part] = nv[:, 0], mm[:, 0]
     grid = QUADRATURE[quadrature]
     tasks = [{"nvec": nvec[a:a + 512], "mmat": mmat[a:a + 512], "grid": grid} for a in range(0, n, 512)]
     parts = runner.map(_limit_task, tasks) if runner is not None else [_limit_task(t) for t in tasks]
     x95 = np.concatenate(parts) if parts else np.zeros(0)
-    freq = proj.frequencies[np.clip(index, 0, None)]
+    freq = proj.frequencies[index]
     strain = x95 * 2 * np.pi * freq
     mc = np.asarray(chirp_mass_for_strain(strain, freq, np.asarray(distance_mpc, dtype=float)), dtype=float)
     return strain, np.atleast_1d(mc), index
@@ -492,5 +495,5 @@ __all__ = [
     "batch_window_maxima",
     "target_statistics", "simulated_window_maxima", "random_sky", "scrambled_window_maxima",
     "single_template_survival", "calibrated_p_values", "bonferroni", "holm", "benjamini_hochberg",
-    "benjamini_yekutieli", "most_sensitive_index", "target_limits", "sky_separation_deg",
+    "benjamini_yekutieli", "most_sensitive_index", "SENSITIVITY_NSIDE", "target_limits", "sky_separation_deg",
 ]

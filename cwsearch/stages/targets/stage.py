@@ -27,8 +27,8 @@ follow-up: ``followup_targets.ecsv`` with position and frequency window, and the
 
 **Limits.** Per target the 95 % chirp-mass upper limit of the limits stage's galaxy limits (Bayesian,
 uniform strain prior, exact position; :func:`cwsearch.inference.targeted.target_limits`) at the catalogue
-distance: at the bin nearest the predicted frequency for a period target, at the position's most
-sensitive frequency otherwise.
+distance: at the bin nearest the predicted frequency for a period target, otherwise at the most
+sensitive frequency of the target's nside-4 HEALPix pixel.
 
 Examples
 --------
