@@ -37,6 +37,9 @@ Wrong silent acceptance, misleading errors
                                          (legal: test_residual_symlink_inside_dataset_accepted)
   residual = 1e300 ..................... test_huge_residual_refused, test_residual_a_million_sigma_away_refused
   mjd = -1e9 (said --nside) ............ test_negative_mjd_names_file_row_column
+  (found here) injection.json a FIFO or
+  with text values: hang, traceback .... test_damaged_injection_json_refused_when_the_dataset_is_read,
+                                         Z test_dataset_reader_fuzz[injection.json]
   stages = [] .......................... test_run_file_empty_stages_refused
   [limits] galaxy bad, passes --check .. test_run_file_bad_limits_galaxy_fails_check
   max_time = -10, NaN in JSON .......... test_followup_nonpositive_max_time_refused,
@@ -262,6 +265,35 @@ def test_residual_symlink_outside_dataset_refused_unread(work, capsys, tmp_path_
     res(work).symlink_to("/etc/passwd")
     code, err = run_cli(scan_argv(work), capsys)
     check_user_error(code, err, ["SIMPSR02.ecsv", "outside"])
+
+
+def _injection(w):
+    return w / "data" / "injection.json"
+
+
+INJECTION_CASES = [
+    ("fifo", lambda w: os.mkfifo(_injection(w)), ["injection.json", "named pipe"]),
+    ("symlink-outside", lambda w: _injection(w).symlink_to("/etc/passwd"), ["injection.json", "outside"]),
+    ("not-json", lambda w: _injection(w).write_text("{binaries: }"), ["injection.json", "not valid JSON"]),
+    ("not-an-object", lambda w: _injection(w).write_text("[1, 2]"), ["injection.json", "JSON object"]),
+    ("binaries-not-a-list", lambda w: _injection(w).write_text('{"binaries": 5}'), ["binaries", "list"]),
+    ("ra-text", lambda w: _injection(w).write_text('{"binaries": [{"ra": "x", "dec": 1}]}'),
+     ["binaries[0].ra", "finite number"]),
+    ("strain-nan", lambda w: _injection(w).write_text('{"binaries": [{"ra": 1, "strain": NaN}]}'),
+     ["binaries[0].strain", "finite number"]),
+    ("true-noise-text", lambda w: _injection(w).write_text(
+        '{"true_noise": {"SIMPSR01": {"white": {"A": {"sigma_scale": "big"}}}}}'), ["true_noise.SIMPSR01.white.A"]),
+]
+
+
+@pytest.mark.parametrize("damage, expect", [c[1:] for c in INJECTION_CASES], ids=[c[0] for c in INJECTION_CASES])
+def test_damaged_injection_json_refused_when_the_dataset_is_read(work, capsys, damage, expect):
+    """A simulated dataset's injection.json (the truth the plots and the report show) is read when the
+    dataset is: a FIFO used to hang the scan's plots, a text value gave a traceback after the work."""
+    damage(work)
+    code, err = run_cli(scan_argv(work, "--noise-model", "dataset"), capsys)
+    check_user_error(code, err, expect)
+    assert not (work / "run").exists()
 
 
 def test_residual_symlink_inside_dataset_accepted(work):
