@@ -36,6 +36,7 @@ COMMANDS = {
     "followup": "parallel-tempered MCMC fit of candidates (Earth + pulsar term)",
     "limits": "95% strain upper limits vs frequency and sky; chirp-mass limits for galaxies",
     "hosts": "rank catalogue galaxies as possible hosts of a candidate",
+    "targets": "test every catalogue galaxy / periodic AGN at its sky position; calibrated p-values",
 }
 
 

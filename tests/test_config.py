@@ -321,3 +321,16 @@ def test_run_command_line_overrides_execution(tmp_path, dataset_dir):
     assert command.with_execution(cfg).execution == cfg.execution
     with pytest.raises(InputError, match="--workers"):
         command.with_execution(cfg, -1)
+
+
+def test_old_engine_section_warns_on_the_command_line(tmp_path, dataset_dir, capsys):
+    """`cwsearch run FILE --check` with the old [engine] section: one warning line on stderr (a FutureWarning,
+    shown by default), and the resolved file says [execution]. Common practice, no source."""
+    from cwsearch.cli import main
+
+    path = tmp_path / "old.toml"
+    path.write_text('dataset = "data"\n[engine]\nworkers = 2\n')
+    assert main(["run", str(path), "--check"]) == 0
+    captured = capsys.readouterr()
+    assert "cwsearch: warning:" in captured.err and "now called [execution]" in captured.err
+    assert "[execution]\nworkers = 2\n" in captured.out and "[engine]" not in captured.out

@@ -28,7 +28,7 @@ Hangs
                                          test_pulsars_file_fifo_refused_without_blocking,
                                          test_fitted_noise_table_fifo_refused_without_blocking
   null_sims = 1e12 ..................... test_huge_null_sims_refused_with_time_estimate,
-                                         test_run_file_and_command_refuse_nonpositive_max_time_and_huge_null_sims
+                                         test_run_file_refuses_nonpositive_max_time_and_huge_null_sims
 Wrong silent acceptance, misleading errors
   mjd in yr ............................ test_mjd_in_years_refused_as_implausible
   MJD range widened by a flag .......... test_mjd_range_flag_widens_the_plausible_dates,
@@ -40,7 +40,7 @@ Wrong silent acceptance, misleading errors
   stages = [] .......................... test_run_file_empty_stages_refused
   [limits] galaxy bad, passes --check .. test_run_file_bad_limits_galaxy_fails_check
   max_time = -10, NaN in JSON .......... test_followup_nonpositive_max_time_refused,
-                                         test_run_file_and_command_refuse_nonpositive_max_time_and_huge_null_sims,
+                                         test_run_file_refuses_nonpositive_max_time_and_huge_null_sims,
                                          test_followup_tiny_max_time_samples_and_writes_strict_json,
                                          test_json_outputs_write_null_for_values_that_are_not_numbers
   catalogue distance inf dropped ....... test_catalog_infinite_distance_refused_not_dropped
@@ -64,7 +64,8 @@ Faults
                                          test_followup_and_limits_refuse_the_run_folder_of_another_dataset,
                                          test_stage_command_checks_the_results_when_dataset_json_is_gone,
                                          test_hosts_refuses_results_of_another_dataset,
-                                         test_stage_command_records_its_dataset
+                                         test_stage_command_records_its_dataset,
+                                         test_run_of_another_dataset_does_not_use_the_folders_earlier_results
   resume of an estimate-model scan ..... F test_kill_scan_then_resume_equals_uninterrupted (estimate model),
                                          F test_kill_during_noise_fit_then_resume_equals_uninterrupted,
                                          tests/test_noise_stage.py::
@@ -73,6 +74,7 @@ Security
   symlinks, FIFOs, devices followed .... the symlink/FIFO/device tests above
   ESC/OSC in names printed raw ......... test_control_characters_escaped_in_inspect_output,
                                          test_control_characters_escaped_in_limits_galaxy_messages,
+                                         test_control_characters_escaped_in_the_hosts_ranking,
                                          test_escape_text_leaves_printable_text_alone
   outputs 0600 whatever the umask ...... test_outputs_follow_the_umask
 The safety layer itself
@@ -112,6 +114,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+from cwsearch.cli import main as cli_main
 from cwsearch.core.errors import InputError
 from tests.test_bad_input import (check_user_error, noise, psr, res, run_cli, scan_argv, set_unit, set_value,
                                   snapshot, template, work)  # noqa: F401 (fixtures)
@@ -320,12 +323,8 @@ def _strict_json(path):
     return json.loads(Path(path).read_text(encoding="utf-8"), parse_constant=refuse)
 
 
-@pytest.mark.parametrize("where", ["command", "run-file"])
-def test_run_file_and_command_refuse_nonpositive_max_time_and_huge_null_sims(work, capsys, where):
-    if where == "command":
-        code, err = run_cli(_explicit_followup(work, "--max-time=-10"), capsys)
-        check_user_error(code, err, ["--max-time"])
-        return
+def test_run_file_refuses_nonpositive_max_time_and_huge_null_sims(work, capsys):
+    """The command-line forms: test_followup_nonpositive_max_time_refused, test_huge_null_sims_refused_*."""
     runfile = work / "run.toml"
     for section, line in (("followup", "max_time = -10"), ("scan", "null_sims = 1000000000000")):
         runfile.write_text(f'dataset = "data"\nout = "run"\n\n[{section}]\n{line}\n')
@@ -510,6 +509,27 @@ def test_stage_command_checks_the_results_when_dataset_json_is_gone(work, capsys
                          "--max-iterations", "10", "--noise-model", "dataset"], capsys)
     check_user_error(code, err, ["scan_summary.json", "another dataset"])
     assert snapshot(work / "run") == before
+
+
+def test_run_of_another_dataset_does_not_use_the_folders_earlier_results(work, capsys):
+    """`cwsearch run` with dataset B into the run folder of dataset A, scan left out of B's stages: A's
+    finished scan must not feed B's follow-up (it is blocked, saying why), and A's scan is kept."""
+    base = 'dataset = "{data}"\nout = "run"\nstages = {stages}\n\n[noise]\nmodel = "dataset"\n' \
+           'red_components = 5\n\n[scan]\nnside = 1\nfmax = 3e-8\nno_plots = true\n\n' \
+           '[followup]\nfap_threshold = 1.0\nmax_iterations = 10\nwalkers = 18\ntemperatures = 2\nno_plots = true\n'
+    runfile = work / "run.toml"
+    runfile.write_text(base.format(data="data", stages='["scan"]'))
+    code, err = run_cli(["run", runfile, "--quiet"], capsys)
+    assert code == 0, err
+    scan_of_a = snapshot(work / "run" / "scan")
+    _dataset_b(work)
+    runfile.write_text(base.format(data="data_b", stages='["followup"]'))
+    code, err = run_cli(["run", runfile, "--quiet"], capsys)
+    stages = {s["stage"]: s for s in _strict_json(work / "run" / "summary.json")["stages"]}
+    assert "another dataset" in stages["scan"]["reason"]
+    assert stages["followup"]["status"] == "blocked"
+    assert not (work / "run" / "followup" / "posterior.ecsv").exists()
+    assert snapshot(work / "run" / "scan") == scan_of_a
 
 
 def test_hosts_refuses_results_of_another_dataset(work, capsys):
@@ -704,6 +724,22 @@ def test_control_characters_escaped_in_limits_galaxy_messages(work, capsys):
                          "120", "5"], capsys)
     check_user_error(code, err, ["--galaxy", "G\\x1b]0;owned\\x07"])
     assert "\x1b" not in err and "\x07" not in err
+
+
+def test_control_characters_escaped_in_the_hosts_ranking(work, capsys):
+    """Galaxy names from a catalogue are printed with their control characters escaped (an OSC title
+    sequence and a screen clear here), never raw."""
+    from tests.test_fuzz_readers import _scan_and_posterior
+
+    _scan_and_posterior(work / "run")
+    (work / "galaxies.csv").write_text("name,ra,dec,distance\nG\x1b]0;owned\x07\x1b[2J,10,20,40\nGAL002,200,-30,80\n")
+    capsys.readouterr()
+    code = cli_main(["hosts", "--out", str(work / "run"), "--catalog", str(work / "galaxies.csv"),
+                     "--observed-span", "10", "--no-plots"])
+    out = capsys.readouterr()
+    assert code == 0, out.err
+    assert "\x1b" not in out.out + out.err and "\x07" not in out.out + out.err
+    assert "G\\x1b]0;owned\\x07" in out.out
 
 
 def test_escape_text_leaves_printable_text_alone():

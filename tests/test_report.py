@@ -196,6 +196,7 @@ def test_content_of_the_sections(run_folder):
     assert "(truth ra 141.0°, dec -27.5°)" in text and "(truth 12 nHz)" in text
     assert "GALX0002, probability 0.7 from 2.1 effective posterior samples" in text
     assert "10 nHz" in text and "1e-14" in text  # most sensitive frequency and its limit
+    assert "(truth: h0 = 1.2e-14 at 12 nHz, where the limit is 1.2e-14)" in text  # the h ∝ f line, as below
     # warnings on the first screen: cold-chain swaps, few effective host samples
     first = html_text[html_text.index('<section id="headline">'):html_text.index('<section id="dataset">')]
     assert "cold-chain swap acceptance 0.0055" in first and "2.1 effective posterior samples" in first

@@ -70,8 +70,10 @@ PIPELINE_SET = {stage.name: frozenset(spec.name for spec in option_specs(stage.o
 ENGINE_KINDS = ("local", "dask")
 
 
-class RunFileDeprecationWarning(DeprecationWarning):
-    """A run file uses an old spelling that is still read (e.g. the ``[engine]`` section, now ``[execution]``)."""
+class RunFileDeprecationWarning(FutureWarning):
+    """A run file uses an old spelling that is still read (e.g. the ``[engine]`` section, now ``[execution]``).
+
+    A ``FutureWarning``, which Python shows by default: it is meant for the user who wrote the file."""
 
 #: largest run file read [bytes] (a run file is a few hundred bytes; this refuses a device or a data file)
 RUN_FILE_MAX_BYTES = 1 << 20
@@ -130,7 +132,8 @@ PIPELINE_KEYS = {
 }
 
 #: keys holding file paths (relative paths are relative to the run file's folder)
-PATH_KEYS = {"hosts": ("catalog", "sky_map"), "limits": ("catalog", "galaxies", "galaxy_catalog")}
+PATH_KEYS = {"hosts": ("catalog", "sky_map"), "limits": ("catalog", "galaxies", "galaxy_catalog"),
+             "targets": ("catalog",)}
 
 #: [execution]: where the work runs (the task runner, cwsearch.inference.execution), the same keys as the
 #: stage commands' --workers and --scheduler; never part of a stage's input hash

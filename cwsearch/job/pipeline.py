@@ -209,9 +209,15 @@ def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: C
         if spec.name not in config.stages:
             rec = read_record(stage_dir)
             if rec and rec.get("status") in DONE and rec.get("output_hash") == folder_hash(stage_dir):
-                records[spec.name] = rec  # earlier results stay usable downstream
-            reports.append(StageReport(spec.name, "off", reason="not in this run's stages"))
-            log(f"{label}: off (not in this run's stages)")
+                if (rec.get("inputs") or {}).get("dataset") == dataset_checksum:
+                    records[spec.name] = rec  # earlier results of this dataset stay usable downstream
+                    reason = "not in this run's stages"
+                else:   # results of another dataset (the same --out reused) must not feed this run's stages
+                    reason = "not in this run's stages; its results in the run folder are of another dataset"
+            else:
+                reason = "not in this run's stages"
+            reports.append(StageReport(spec.name, "off", reason=reason))
+            log(f"{label}: off ({reason})")
             continue
         reason = spec.available() if spec.available is not None else None
         if reason:
@@ -555,11 +561,19 @@ def _run_noise(ctx, stage):
     return dict(result.summary or {})
 
 
+def _targets_precheck(ctx):
+    """The targets stage needs a catalogue."""
+    if not getattr(ctx.options, "catalog", None):
+        raise NothingToDo("no target catalogue given ([targets] catalog)")
+
+
 #: what the pipeline adds around a stage, by stage name (every other stage is run as registered)
-_PRECHECKS = {"hosts": _hosts_precheck}          # checks that raise NothingToDo before the stage runs
+_PRECHECKS = {"hosts": _hosts_precheck,          # checks that raise NothingToDo before the stage runs
+              "targets": _targets_precheck}
 _CUSTOM_RUNS = {"followup": _run_followup,       # the follow-up picks its candidates from the scan's table
                 "noise": _run_noise}             # the noise stage fits only for the 'estimate' model
-_EXTRA_INPUTS = {"hosts": _hosts_inputs}         # more input-hash entries (the catalogue's checksum)
+_EXTRA_INPUTS = {"hosts": _hosts_inputs,         # more input-hash entries (the catalogue's checksum)
+                 "targets": _hosts_inputs}
 
 
 #: the old name of :func:`runner_options`

@@ -66,6 +66,7 @@ SECTIONS = (
     ("followup", "Follow-up: posterior and Bayes factor"),
     ("hosts", "Host galaxies"),
     ("limits", "Upper limits"),
+    ("targets", "Targeted searches of the catalogue"),
     ("cautions", "Cautions"),
     ("provenance", "Provenance"),
 )
@@ -128,6 +129,10 @@ CAPTIONS = {
     "strain_limits.png": "Upper limits: 95 % strain limit against GW frequency (sky average, best and worst sky position).",
     "sky_limits.png": "Upper limits: 95 % strain limit over the sky at the most sensitive frequency.",
     "galaxy_limits.png": "Upper limits: 95 % chirp-mass limit against GW frequency for the chosen galaxies.",
+    "pp_plot.png": "Targets: every target's p-value against its expectation under the null (uniform), with the "
+                   "95 % band of uniform order statistics and the Bonferroni 5 % line.",
+    "sky_targets.png": "Targets: the catalogue targets on the sky coloured by -log10 p-value; followed-up ones "
+                       "circled; stars are the pulsars.",
 }
 
 _CSS = """
@@ -318,7 +323,7 @@ class _Run:
         summary = _read_json(self.dir / "summary.json") or {}
         self.stages = {s["stage"]: s for s in summary.get("stages", []) if isinstance(s, dict)}
         self.records = {}
-        for stage in ("scan", "noise", "followup", "hosts", "limits"):
+        for stage in ("scan", "noise", "followup", "hosts", "limits", "targets"):
             rec = _read_json(self.dir / stage / ".stage.json")
             if rec:
                 self.records[stage] = rec
@@ -457,9 +462,13 @@ def first_screen(run: _Run) -> dict:
         answers.append(("Which host?", text + "."))
     lim = head.get("best_limit")
     if lim:
-        answers.append(("What limits?", f"Sky-averaged 95 % strain upper limit {lim['strain_95']:.3g} at "
-                                        f"{lim['frequency'] * 1e9:.3g} nHz, the most sensitive frequency "
-                                        "(see Upper limits for every frequency and sky position)."))
+        text = (f"Sky-averaged 95 % strain upper limit {lim['strain_95']:.3g} at {lim['frequency'] * 1e9:.3g} nHz, "
+                "the most sensitive frequency (see Upper limits for every frequency and sky position)")
+        at_truth = _limit_at(_read_table(run.dir / "limits" / "frequency_limits.ecsv"), (truth or {}).get("frequency"))
+        if truth and truth.get("strain") is not None and truth.get("frequency") is not None:
+            text += (f" (truth: h0 = {truth['strain']:.3g} at {truth['frequency'] * 1e9:.3g} nHz"
+                     + (f", where the limit is {at_truth:.3g})" if at_truth is not None else ")"))
+        answers.append(("What limits?", text + "."))
     if truth:
         snr = truth.get("optimal_snr")
         answers.append(("Simulated data?", "Yes: the dataset holds injection.json; true values are listed beside "
@@ -909,19 +918,29 @@ def galaxy_limits_view(table):
                                       "table against frequency is galaxy_limits.ecsv)")
 
 
+def _limit_at(table, frequency):
+    """The sky-averaged 95 % strain limit at ``frequency`` [Hz], log-log interpolated in
+    ``frequency_limits.ecsv``; None outside its frequencies or without a table."""
+    if table is None or not len(table) or frequency is None or "strain_95" not in table.colnames:
+        return None
+    f = np.asarray(table["frequency"], dtype=float)
+    h = np.asarray(table["strain_95"], dtype=float)
+    ok = np.isfinite(f) & np.isfinite(h) & (f > 0) & (h > 0)
+    if not ok.any() or not f[ok].min() <= frequency <= f[ok].max():
+        return None
+    order = np.argsort(f[ok])
+    return float(10 ** np.interp(np.log10(frequency), np.log10(f[ok][order]), np.log10(h[ok][order])))
+
+
 def limits_truth_text(table, truth):
     """The injected strain beside the sky-averaged 95 % limit at the injected frequency (log-log
     interpolation of ``frequency_limits.ecsv``), or '' without a truth or a table."""
     if table is None or not len(table) or not truth or truth.get("strain") is None or truth.get("frequency") is None:
         return ""
-    f = np.asarray(table["frequency"], dtype=float)
-    h = np.asarray(table["strain_95"], dtype=float)
-    ok = np.isfinite(f) & np.isfinite(h) & (f > 0) & (h > 0)
     f0, h0 = float(truth["frequency"]), float(truth["strain"])
     text = f"Truth (injection.json): strain amplitude h0 = {h0:.3g} at {f0 * 1e9:.3g} nHz"
-    if ok.sum() >= 1 and f[ok].min() <= f0 <= f[ok].max():
-        order = np.argsort(f[ok])
-        limit = float(10 ** np.interp(np.log10(f0), np.log10(f[ok][order]), np.log10(h[ok][order])))
+    limit = _limit_at(table, f0)
+    if limit is not None:
         relation = "above" if h0 > limit else "below"
         text += (f"; the sky-averaged 95 % limit there is {limit:.3g}: the injected strain lies {relation} it "
                  "(a calibrated 95 % limit sits above a present signal in about 95 % of datasets)")
@@ -971,6 +990,42 @@ def _limits(run: _Run):
     if g:
         s["tables"].append(g)
     s["figures"] = [_figure(p) for p in _images(run.dir / "limits")]
+    return s
+
+
+def _targeted(run: _Run):
+    """The targets stage: counts, corrections, the best targets and the two figures."""
+    s = _sec("targets", dict(SECTIONS)["targets"], notes=run.status_notes("targets"))
+    summ = _read_json(run.dir / "targets" / "targets_summary.json") or run.stage_summary("targets")
+    if summ.get("n_targets") is not None:
+        s["paragraphs"].append(
+            f"{summ.get('n_searched')} of {summ['n_targets']} catalogue targets tested at their own sky position "
+            f"({summ.get('n_period_targets')} in a window around the frequency of their catalogued period, "
+            f"{summ.get('n_band_targets')} over the whole band; {summ.get('n_outside_band')} with a period "
+            f"outside the band). p-values from {summ.get('p_value_from')}; Holm family-wise p < 0.05: "
+            f"{summ.get('n_family_below_0.05')}; false-discovery-rate q < 0.05: {summ.get('n_fdr_below_0.05')}.")
+        s["paragraphs"].append(
+            "Every target adds a trial: read the family-wise or FDR corrected value, not the per-target p-value. "
+            "The p-values assume the run's noise model; the catalogue's missing galaxies are not tested.")
+    for key, label, kind in (("frequency_convention", "period convention", "text"), ("null", "null", "text"),
+                             ("null_sims", "noise-only simulations", "int"), ("scrambles", "sky scrambles", "int"),
+                             ("fdr_method", "false-discovery-rate method", "text")):
+        if summ.get(key) not in (None, "", 0):
+            s["items"].append((label, fmt_number(summ[key], kind)))
+    if summ.get("followup"):
+        s["paragraphs"].append("Handed to the follow-up: " + ", ".join(f["name"] for f in summ["followup"]) + ".")
+    elif summ.get("n_targets") is not None:
+        s["paragraphs"].append(f"No target has a family-wise p-value below {summ.get('followup_threshold')}.")
+    tab = _read_table(run.dir / "targets" / "results.ecsv")
+    if tab is not None and len(tab):
+        cols = [c for c in ("rank", "name", "window", "fe", "best_frequency", "p_value", "p_family", "q_fdr",
+                            "distance", "chirp_mass_95") if c in tab.colnames]
+        with _extra_labels({"window": ("window", "", "text"), "best_frequency": ("loudest frequency", "Hz", "g4"),
+                            "p_value": ("p-value", "", "g2"), "p_family": ("family-wise p (Holm)", "", "g2"),
+                            "q_fdr": ("FDR q", "", "g2")}):
+            s["tables"].append(table_view(tab[tab["status"] == "searched"][:20], cols,
+                                          title="The 20 most significant targets (all in targets/results.ecsv)"))
+    s["figures"] = [_figure(p) for p in _images(run.dir / "targets")]
     return s
 
 
@@ -1029,7 +1084,7 @@ def _provenance(run: _Run):
 
 
 _BUILDERS = {"dataset": _dataset, "noise": _noise, "scan": _scan, "candidates": _candidates,
-             "followup": _followup, "hosts": _hosts, "limits": _limits, "cautions": _cautions,
+             "followup": _followup, "hosts": _hosts, "limits": _limits, "targets": _targeted, "cautions": _cautions,
              "provenance": _provenance}
 
 
