@@ -173,7 +173,7 @@ def test_stage_registry_is_in_pipeline_order():
     from cwsearch.job.config import STAGES as CONFIG_STAGES
     from cwsearch.stages import STAGES
 
-    assert [s.name for s in STAGES] == ["noise", "scan", "followup", "hosts", "limits"]
+    assert [s.name for s in STAGES] == ["noise", "scan", "followup", "hosts", "limits", "targets"]
     assert tuple(s.name for s in STAGES) == CONFIG_STAGES
 
 

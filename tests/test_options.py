@@ -26,11 +26,13 @@ CARRIERS = {
     "FollowupOptions": {"followup": None},
     "HostsOptions": {"hosts": None},
     "LimitsOptions": {"limits": None},
+    "TargetsOptions": {"targets": None},
     # the noise command always fits (model 'estimate'); --noise-model is on every command that uses a model
     "NoiseOptions": {"noise": {"exclude": {"model"}}, "scan": {"only": {"model"}}, "followup": {"only": {"model"}},
-                     "limits": {"only": {"model"}}},
+                     "limits": {"only": {"model"}}, "targets": {"only": {"model"}}},
     # the noise settings: on every command that uses a noise model; the noise command fits all but the basis
-    "NoiseSettings": {"scan": None, "followup": None, "limits": None, "noise": {"only": {"red_components"}}},
+    "NoiseSettings": {"scan": None, "followup": None, "limits": None, "targets": None,
+                      "noise": {"only": {"red_components"}}},
 }
 
 
@@ -122,9 +124,9 @@ def test_execution_keys_are_the_stage_commands_runner_options():
 def test_an_empty_command_line_gives_the_dataclass_defaults(section, cls):
     parser = argparse.ArgumentParser()
     add_options(parser, cls)
-    built = options_from_args(cls, parser.parse_args(["--catalog", "x.ecsv"] if cls.__name__ == "HostsOptions"
-                                                     else []))
-    expected = cls(catalog="x.ecsv") if cls.__name__ == "HostsOptions" else cls()
+    needs_catalog = cls.__name__ in ("HostsOptions", "TargetsOptions")   # required on the command line
+    built = options_from_args(cls, parser.parse_args(["--catalog", "x.ecsv"] if needs_catalog else []))
+    expected = cls(catalog="x.ecsv") if needs_catalog else cls()
     assert built == expected
     assert built.validate() == expected   # one contract: validate() returns the options
 

@@ -35,6 +35,8 @@ DEMO = {
     "hosts": {},
     # chirp-mass limits for two invented catalogue galaxies (a near one and a farther one)
     "limits": {"nside": 4, "select": ["SIMGAL-01187", "SIMGAL-00009"]},
+    # every catalogue galaxy tested at its own sky position
+    "targets": {"fmax": 1.0e-7, "null_sims": 50},
 }
 #: --quick overrides
 QUICK = {
@@ -44,6 +46,7 @@ QUICK = {
                  "max_temperatures": 4},
     "hosts": {},
     "limits": {"nside": 2, "fmax": 5.0e-8, "quadrature": "fast"},
+    "targets": {"fmax": 5.0e-8, "null_sims": 10, "no_limits": True},
 }
 
 
@@ -96,6 +99,8 @@ def demo_config(out, *, quick=False, seed=0):
     settings = demo_settings(quick)
     if catalog is not None:
         settings.setdefault("hosts", {})["catalog"] = str(catalog)
+        if "targets" in settings:
+            settings["targets"]["catalog"] = str(catalog)
         if settings.get("limits", {}).get("select"):
             settings["limits"]["catalog"] = str(catalog)
     else:

@@ -132,7 +132,8 @@ PIPELINE_KEYS = {
 }
 
 #: keys holding file paths (relative paths are relative to the run file's folder)
-PATH_KEYS = {"hosts": ("catalog", "sky_map"), "limits": ("catalog", "galaxies", "galaxy_catalog")}
+PATH_KEYS = {"hosts": ("catalog", "sky_map"), "limits": ("catalog", "galaxies", "galaxy_catalog"),
+             "targets": ("catalog",)}
 
 #: [execution]: where the work runs (the task runner, cwsearch.inference.execution), the same keys as the
 #: stage commands' --workers and --scheduler; never part of a stage's input hash

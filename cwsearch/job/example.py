@@ -47,7 +47,8 @@ HEADER = """\
 
 SECTION_TITLES = {"execution": "where the work runs (never changes a result)", "noise": "noise model (docs/design.md §5)",
                   "scan": "1. all-sky F-statistic scan", "followup": "2. follow-up of candidates",
-                  "hosts": "3. host galaxies", "limits": "4. upper limits"}
+                  "hosts": "3. host galaxies", "limits": "4. upper limits",
+                  "targets": "5. targeted searches of a catalogue (every row at its own sky position)"}
 
 #: (section, key) -> explanation written above a key that is not an options field (the top-level keys and
 #: the follow-up's selection keys); every options field's comment is its help text (cwsearch.core.options)
@@ -56,7 +57,7 @@ DOCS = {
     ('', 'out'): 'run folder; default: runs/<name of this file> next to this file',
     ('', 'seed'): 'random seed of the whole run; each stage gets its own seed derived from it (provenance.json '
                   'lists them)',
-    ('', 'stages'): 'stages to run, any of "noise", "scan", "followup", "hosts", "limits" (always run in this '
+    ('', 'stages'): 'stages to run, any of "noise", "scan", "followup", "hosts", "limits", "targets" (always run in this '
                     'order). A stage left out keeps its earlier results in the run folder, and later stages may '
                     'use them.',
     ('', 'title'): 'title shown at the top of report.html',
@@ -93,6 +94,7 @@ EXAMPLE_VALUES = {
     ("limits", "galaxy"): [["MYGAL-1", 150.0, -20.0, 25.0]],
     ("limits", "catalog"): "../catalogs/demo_galaxies.ecsv",
     ("limits", "select"): ["SIMGAL-01187", "SIMGAL-00009"],
+    ("targets", "catalog"): "../catalogs/demo_galaxies.ecsv",
 }
 
 
@@ -135,7 +137,7 @@ def example_toml() -> str:
         lines += ["", _rule(SECTION_TITLES.get(section, section)), f"[{section}]"]
         for name, key in keys.items():
             emit(section, name, key.default, key.doc)
-        if section in ("scan", "limits"):
+        if section in ("scan", "limits", "targets"):
             lines.append(f"# (the {section} stage's worker processes or Dask scheduler come from [execution])")
     return "\n".join(lines) + "\n"
 

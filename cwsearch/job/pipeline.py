@@ -561,11 +561,19 @@ def _run_noise(ctx, stage):
     return dict(result.summary or {})
 
 
+def _targets_precheck(ctx):
+    """The targets stage needs a catalogue."""
+    if not getattr(ctx.options, "catalog", None):
+        raise NothingToDo("no target catalogue given ([targets] catalog)")
+
+
 #: what the pipeline adds around a stage, by stage name (every other stage is run as registered)
-_PRECHECKS = {"hosts": _hosts_precheck}          # checks that raise NothingToDo before the stage runs
+_PRECHECKS = {"hosts": _hosts_precheck,          # checks that raise NothingToDo before the stage runs
+              "targets": _targets_precheck}
 _CUSTOM_RUNS = {"followup": _run_followup,       # the follow-up picks its candidates from the scan's table
                 "noise": _run_noise}             # the noise stage fits only for the 'estimate' model
-_EXTRA_INPUTS = {"hosts": _hosts_inputs}         # more input-hash entries (the catalogue's checksum)
+_EXTRA_INPUTS = {"hosts": _hosts_inputs,         # more input-hash entries (the catalogue's checksum)
+                 "targets": _hosts_inputs}
 
 
 #: the old name of :func:`runner_options`

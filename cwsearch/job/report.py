@@ -66,6 +66,7 @@ SECTIONS = (
     ("followup", "Follow-up: posterior and Bayes factor"),
     ("hosts", "Host galaxies"),
     ("limits", "Upper limits"),
+    ("targets", "Targeted searches of the catalogue"),
     ("cautions", "Cautions"),
     ("provenance", "Provenance"),
 )
@@ -118,7 +119,9 @@ CAPTIONS = {
     "corner.png": "Follow-up posterior: one- and two-dimensional marginals (dashed: 5 %, 50 %, 95 %).",
     "sky.png": "Follow-up: posterior sky position with its 50 % and 90 % credible regions.",
     "trace.png": "Follow-up: T = 1 chains of a few walkers (burn-in shaded), in physical units.",
-    "residuals.png": "Follow-up: timing residuals per pulsar with the fitted binary signal and its 90 % band.",
+    "residuals.png": "Follow-up: timing residuals per pulsar with the fitted binary signal (Earth + pulsar term; "
+                     "posterior median and 90 % band of 100 draws, after the timing-model fit); dashed magenta: "
+                     "the true signal when injection.json exists.",
     "hosts_sky.png": "Host galaxies: the binary's sky density with the catalogue galaxies.",
     "hosts_sky_zoom.png": "Host galaxies: zoom around the candidate, top hosts labelled.",
     "hosts_followup_sky.png": "Host galaxies: the follow-up posterior sky map with its 90 % credible region, the "
@@ -128,6 +131,10 @@ CAPTIONS = {
     "strain_limits.png": "Upper limits: 95 % strain limit against GW frequency (sky average, best and worst sky position).",
     "sky_limits.png": "Upper limits: 95 % strain limit over the sky at the most sensitive frequency.",
     "galaxy_limits.png": "Upper limits: 95 % chirp-mass limit against GW frequency for the chosen galaxies.",
+    "pp_plot.png": "Targets: every target's p-value against its expectation under the null (uniform), with the "
+                   "95 % band of uniform order statistics and the Bonferroni 5 % line.",
+    "sky_targets.png": "Targets: the catalogue targets on the sky coloured by -log10 p-value; followed-up ones "
+                       "circled; stars are the pulsars.",
 }
 
 _CSS = """
@@ -318,7 +325,7 @@ class _Run:
         summary = _read_json(self.dir / "summary.json") or {}
         self.stages = {s["stage"]: s for s in summary.get("stages", []) if isinstance(s, dict)}
         self.records = {}
-        for stage in ("scan", "noise", "followup", "hosts", "limits"):
+        for stage in ("scan", "noise", "followup", "hosts", "limits", "targets"):
             rec = _read_json(self.dir / stage / ".stage.json")
             if rec:
                 self.records[stage] = rec
@@ -988,6 +995,42 @@ def _limits(run: _Run):
     return s
 
 
+def _targeted(run: _Run):
+    """The targets stage: counts, corrections, the best targets and the two figures."""
+    s = _sec("targets", dict(SECTIONS)["targets"], notes=run.status_notes("targets"))
+    summ = _read_json(run.dir / "targets" / "targets_summary.json") or run.stage_summary("targets")
+    if summ.get("n_targets") is not None:
+        s["paragraphs"].append(
+            f"{summ.get('n_searched')} of {summ['n_targets']} catalogue targets tested at their own sky position "
+            f"({summ.get('n_period_targets')} in a window around the frequency of their catalogued period, "
+            f"{summ.get('n_band_targets')} over the whole band; {summ.get('n_outside_band')} with a period "
+            f"outside the band). p-values from {summ.get('p_value_from')}; Holm family-wise p < 0.05: "
+            f"{summ.get('n_family_below_0.05')}; false-discovery-rate q < 0.05: {summ.get('n_fdr_below_0.05')}.")
+        s["paragraphs"].append(
+            "Every target adds a trial: read the family-wise or FDR corrected value, not the per-target p-value. "
+            "The p-values assume the run's noise model; the catalogue's missing galaxies are not tested.")
+    for key, label, kind in (("frequency_convention", "period convention", "text"), ("null", "null", "text"),
+                             ("null_sims", "noise-only simulations", "int"), ("scrambles", "sky scrambles", "int"),
+                             ("fdr_method", "false-discovery-rate method", "text")):
+        if summ.get(key) not in (None, "", 0):
+            s["items"].append((label, fmt_number(summ[key], kind)))
+    if summ.get("followup"):
+        s["paragraphs"].append("Handed to the follow-up: " + ", ".join(f["name"] for f in summ["followup"]) + ".")
+    elif summ.get("n_targets") is not None:
+        s["paragraphs"].append(f"No target has a family-wise p-value below {summ.get('followup_threshold')}.")
+    tab = _read_table(run.dir / "targets" / "results.ecsv")
+    if tab is not None and len(tab):
+        cols = [c for c in ("rank", "name", "window", "fe", "best_frequency", "p_value", "p_family", "q_fdr",
+                            "distance", "chirp_mass_95") if c in tab.colnames]
+        with _extra_labels({"window": ("window", "", "text"), "best_frequency": ("loudest frequency", "Hz", "g4"),
+                            "p_value": ("p-value", "", "g2"), "p_family": ("family-wise p (Holm)", "", "g2"),
+                            "q_fdr": ("FDR q", "", "g2")}):
+            s["tables"].append(table_view(tab[tab["status"] == "searched"][:20], cols,
+                                          title="The 20 most significant targets (all in targets/results.ecsv)"))
+    s["figures"] = [_figure(p) for p in _images(run.dir / "targets")]
+    return s
+
+
 def run_cautions(run: _Run) -> list:
     """Cautions that depend on this run's numbers (added to the general ones)."""
     out = []
@@ -1043,7 +1086,7 @@ def _provenance(run: _Run):
 
 
 _BUILDERS = {"dataset": _dataset, "noise": _noise, "scan": _scan, "candidates": _candidates,
-             "followup": _followup, "hosts": _hosts, "limits": _limits, "cautions": _cautions,
+             "followup": _followup, "hosts": _hosts, "limits": _limits, "targets": _targeted, "cautions": _cautions,
              "provenance": _provenance}
 
 

@@ -627,7 +627,8 @@ def _fe_correlated_products(nq, mq, yp, yx, fplus, fcross, n_chunk, n_sets, fe_o
 
 
 def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, keep_map=True,
-                      map_dtype=np.float64, on_chunk=None, chunk_elements=8_000_000) -> fstat.SkyScan:
+                      map_dtype=np.float64, on_chunk=None, chunk_elements=8_000_000,
+                      on_block=None) -> fstat.SkyScan:
     """Fe over sky × frequency (× residual sets) with the correlated inner product.
 
     ``proj`` from :meth:`ArrayWeighting.projections` (X, Y of the weighted data),
@@ -639,6 +640,7 @@ def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, ke
     (pulsars × pulsars·frequencies) — and a numba
     kernel factors each corrected 4×4 M and evaluates ``Fe = ½ Nᵀ M⁺ N``.
     2Fe ~ χ²(4) in noise when C is the true covariance (Ellis, Siemens & Creighton 2012).
+    ``on_block(f0, fe)`` as in :func:`cwsearch.physics.fstat.fe_sky`.
     """
     fplus = np.ascontiguousarray(np.atleast_2d(fplus), dtype=float)
     fcross = np.ascontiguousarray(np.atleast_2d(fcross), dtype=float)
@@ -685,6 +687,8 @@ def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, ke
             fe_max[:, f0:f1] = np.take_along_axis(fe, idx[:, None, :], axis=1)[:, 0, :]
             if keep_map:
                 fe_map[:, f0:f1] = fe[0]
+            if on_block is not None:
+                on_block(f0, fe)
             if on_chunk is not None:
                 on_chunk(fc)
     return fstat.SkyScan(fe_map, fe_max, best)

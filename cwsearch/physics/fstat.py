@@ -453,7 +453,7 @@ class SkyScan:
 
 
 def fe_sky(proj: Projections, fplus, fcross, *, keep_map=True, map_dtype=np.float64, on_chunk=None,
-           chunk_elements=4_000_000) -> SkyScan:
+           chunk_elements=4_000_000, on_block=None) -> SkyScan:
     """Fe over sky × frequency (and over residual sets of :func:`project_batch`).
 
     The sums over pulsars for N (4 numbers) and M (9 distinct numbers) are
@@ -461,7 +461,9 @@ def fe_sky(proj: Projections, fplus, fcross, *, keep_map=True, map_dtype=np.floa
     times per-pulsar X, Y, Z (P, ·)); a parallel numba kernel then factors
     each 4×4 M once and evaluates ``Fe = ½ Nᵀ M⁺ N`` for every residual set.
     ``keep_map`` returns the full (S, F) map (single residual set only);
-    ``on_chunk(n)`` is called with the number of frequencies finished.
+    ``on_chunk(n)`` is called with the number of frequencies finished; ``on_block(f0, fe)`` receives each
+    chunk's Fe of every residual set, (B, S, n) from frequency index ``f0`` (the targets stage reduces the
+    maps of a batch of null simulations this way, with M factored once for all of them).
     """
     fplus = np.ascontiguousarray(np.atleast_2d(fplus), dtype=float)
     fcross = np.ascontiguousarray(np.atleast_2d(fcross), dtype=float)
@@ -495,6 +497,8 @@ def fe_sky(proj: Projections, fplus, fcross, *, keep_map=True, map_dtype=np.floa
         fe_max[:, f0:f1] = np.take_along_axis(fe, idx[:, None, :], axis=1)[:, 0, :]
         if keep_map:
             fe_map[:, f0:f1] = fe[0]
+        if on_block is not None:
+            on_block(f0, fe)
         if on_chunk is not None:
             on_chunk(fc)
     return SkyScan(fe_map, fe_max, best)

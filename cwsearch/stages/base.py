@@ -11,7 +11,7 @@ Examples
 --------
 >>> from cwsearch.stages import STAGES
 >>> [s.name for s in STAGES]
-['noise', 'scan', 'followup', 'hosts', 'limits']
+['noise', 'scan', 'followup', 'hosts', 'limits', 'targets']
 """
 
 from __future__ import annotations
