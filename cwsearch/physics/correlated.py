@@ -402,7 +402,7 @@ class ArrayWeighting:
         inv, info = lapack.dpotri(self._chol, lower=1)
         if info != 0:
             raise np.linalg.LinAlgError(f"inverting the array Woodbury matrix failed (info {info})")
-        x = inv.T                         # C-ordered view of S̃⁻¹ (Fortran lower triangle = its upper one)
+        x = np.asfortranarray(inv).T      # C-ordered view of S̃⁻¹ (Fortran lower triangle = its upper one)
         _mirror_upper(x)
         n_c = self.n_fourier
         lg = self._gamma_factor
