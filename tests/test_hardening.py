@@ -51,6 +51,9 @@ Wrong silent acceptance, misleading errors
   followup/hosts: scan without summary . test_followup_refuses_scan_without_summary,
                                          test_hosts_refuses_scan_without_summary
   simulate --overwrite deletes files ... test_simulate_overwrite_keeps_unrelated_files
+  (found here) simulate strain 1e300
+  wrote an unreadable dataset .......... test_simulate_never_writes_a_dataset_the_reader_refuses,
+                                         B test_bad_simulate[strain-unreadably-large]
 Legal input rejected
   catalogue ra = 720.5 ................. test_catalog_ra_720_5_wraps
   UTF-8 CSV with a byte-order mark ..... test_catalog_utf8_bom_csv_accepted
@@ -444,6 +447,20 @@ def test_simulate_overwrite_keeps_unrelated_files(work, capsys):
     (target / "my_notes.txt").unlink()
     code, err = run_cli(argv + ["--overwrite", "--seed", "5"], capsys)   # a pure dataset folder is replaced
     assert code == 0, err
+
+
+def test_simulate_never_writes_a_dataset_the_reader_refuses(tiny_array):
+    """The last check before `simulate` writes: residuals beyond the reader's bounds (|r| <= 1 s, <= 1e6
+    sigma, finite; cwsearch.core.safeio) are refused, so no command is left facing an unreadable dataset."""
+    from cwsearch.commands.simulate import check_readable_residuals
+
+    check_readable_residuals(tiny_array)   # a readable one passes
+    loud = tiny_array.with_residuals([np.where(np.arange(p.n_toas) == 3, 2.0, p.residuals) for p in tiny_array])
+    with pytest.raises(InputError, match="reach 2 s"):
+        check_readable_residuals(loud)
+    broken = tiny_array.with_residuals([np.full(p.n_toas, np.nan) for p in tiny_array])
+    with pytest.raises(InputError, match="not finite"):
+        check_readable_residuals(broken)
 
 
 # ------------------------------------------------------------------ legal input that was rejected
