@@ -236,6 +236,28 @@ def test_run_folder_reader_fuzz(tmp_path, which):
     check()
 
 
+def test_fe_sky_map_reader_fuzz(tmp_path):
+    """The reader of a user's Fe sky map (`hosts --sky-map FILE`) sees only InputError or success."""
+    import numpy as np
+    from astropy.table import Table
+
+    from cwsearch.stages.hosts.stage import _read_fe_map
+
+    target = tmp_path / "fe_map.ecsv"
+    table = Table({"pixel": np.arange(12), "fe": np.linspace(1.0, 12.0, 12), "frequency": np.full(12, 1e-8)})
+    table.meta["nside"] = 1
+    table.write(target, format="ascii.ecsv")
+    assert _read_fe_map(target, 1, 1e-8, explicit=True)[0] == 1   # the seed itself is a usable map
+
+    @FUZZ
+    @given(data=_mutations(target.read_bytes()))
+    def check(data):
+        target.write_bytes(data)
+        _loads_or_input_error(lambda: _read_fe_map(target, 1, 1e-8, explicit=True))
+
+    check()
+
+
 def test_noise_table_reader_fuzz(valid, tmp_path):
     """The fitted-noise-table reader (cwsearch.inference.noisefit.read_noise_table) sees only InputError or
     success (issue 19), whatever the bytes."""
