@@ -66,7 +66,7 @@ Faults
                                          test_stage_command_refuses_run_folder_locked_by_live_run
   lock of another host taken as stale .. test_lock_naming_another_host_is_not_stale
   followup B --out RUN_OF_A (hosts,
-  limits) .............................. test_stage_command_refuses_run_of_another_dataset,
+  limits; found here: noise too) ....... test_stage_command_refuses_run_of_another_dataset,
                                          test_followup_and_limits_refuse_the_run_folder_of_another_dataset,
                                          test_stage_command_checks_the_results_when_dataset_json_is_gone,
                                          test_hosts_refuses_results_of_another_dataset,
@@ -533,7 +533,8 @@ def _dataset_b(work):
 
 
 def test_followup_and_limits_refuse_the_run_folder_of_another_dataset(work, capsys):
-    """`cwsearch followup B --out RUN_OF_A` (and `limits`) would use dataset A's candidates: one line, exit 2."""
+    """`cwsearch followup B --out RUN_OF_A` (and `limits`) would use dataset A's candidates, `noise` would
+    replace A's noise model with B's: one line, exit 2."""
     code, err = run_cli(scan_argv(work, "--noise-model", "dataset"), capsys)
     assert code == 0, err
     data_b = _dataset_b(work)
@@ -543,7 +544,8 @@ def test_followup_and_limits_refuse_the_run_folder_of_another_dataset(work, caps
     limits = ["limits", data_b, "--out", work / "run", "--nside", "1", "--fmax", "2e-8", "--no-plots", "--quiet",
               "--workers", "1", "--red-components", "5", "--noise-model", "dataset"]
     scan_b = [data_b if a == work / "data" else a for a in scan_argv(work)]
-    for argv in (followup, limits, scan_b):
+    noise = ["noise", data_b, "--out", work / "run", "--quiet", "--no-plots"]
+    for argv in (followup, limits, scan_b, noise):
         code, err = run_cli(argv, capsys)
         check_user_error(code, err, ["run", "another dataset", "choose another --out"])
     assert snapshot(work / "run") == before
