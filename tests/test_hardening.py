@@ -51,6 +51,7 @@ Wrong silent acceptance, misleading errors
   followup/hosts: scan without summary . test_followup_refuses_scan_without_summary,
                                          test_hosts_refuses_scan_without_summary
   simulate --overwrite deletes files ... test_simulate_overwrite_keeps_unrelated_files
+  (found here) --out inside the dataset  test_run_folder_inside_the_dataset_refused
   (found here) simulate strain 1e300
   wrote an unreadable dataset .......... test_simulate_never_writes_a_dataset_the_reader_refuses,
                                          B test_bad_simulate[strain-unreadably-large]
@@ -598,6 +599,21 @@ def test_hosts_refuses_results_of_another_dataset(work, capsys):
                          "--quiet", "--no-plots"], capsys)
     check_user_error(code, err, ["followup", "summary.json", "another dataset", "bbbbbbbbbbbb"])
     assert snapshot(run) == before
+
+
+@pytest.mark.parametrize("out", ["data", "data/residuals/run"])
+def test_run_folder_inside_the_dataset_refused(work, capsys, out):
+    """`scan DATA --out DATA` mixed the results into the dataset (and a run folder in residuals/ would look
+    like unused data files); the stage commands and the run file refuse it."""
+    before = snapshot(work / "data")
+    argv = [work / out if a == work / "run" else a for a in scan_argv(work, "--noise-model", "dataset")]
+    code, err = run_cli(argv, capsys)
+    check_user_error(code, err, ["dataset folder", "choose another --out"])
+    runfile = work / "run.toml"
+    runfile.write_text(f'dataset = "data"\nout = "{out}"\n')
+    code, err = run_cli(["run", runfile, "--check"], capsys)
+    check_user_error(code, err, ["run.toml", "line 2", "dataset folder"])
+    assert snapshot(work / "data") == before
 
 
 def test_stage_command_records_its_dataset(work, capsys):
