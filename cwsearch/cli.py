@@ -23,7 +23,6 @@ import warnings
 from . import __version__
 from .core.errors import InputError
 from .core.safeio import escape_text
-from .stages import BY_NAME  # the registry imports only the stages' options (standard library)
 
 #: command name -> one-line summary (the module is cwsearch.commands.<name>)
 COMMANDS = {
@@ -55,6 +54,10 @@ def _top_parser() -> argparse.ArgumentParser:
 
 
 def _command_parser(name: str, module) -> argparse.ArgumentParser:
+    # lazy: the top-level `cwsearch --help` needs no registry (it is standard library only, but builds the
+    # stages' option dataclasses)
+    from .stages import BY_NAME
+
     epilog = "example:\n" + getattr(module, "EXAMPLE", f"  cwsearch {name}")
     if name in BY_NAME:   # a stage command: its options are the run file's keys (one source: the Options fields)
         epilog += ("\n\nrun file: for `cwsearch run` these options are keys, dashes turned into underscores\n"

@@ -294,6 +294,9 @@ SIMULATE_CASES = [
     ("chirp-mass-coalesces", ["--inject-strain", "1e-14", "--inject-frequency", "1e-7", "--inject-ra", "10",
                               "--inject-dec", "20", "--inject-chirp-mass", "1e11"], ["merges", "inside the data span"]),
     ("pulsars-zero", ["--pulsars", "0"], ["--pulsars"]),
+    # residual amplitude ~ h / (2 pi f) (common practice, no source): 1e300 at 1e-8 Hz is far beyond 1 s
+    ("strain-unreadably-large", ["--inject-strain", "1e300", "--inject-frequency", "1e-8", "--inject-ra", "10",
+                                 "--inject-dec", "20"], ["strain", "dataset reader"]),
     ("sigma-negative", ["--sigma=-1e-7"], ["--sigma"]),
     ("inject-dec-out-of-range", ["--inject-strain", "1e-14", "--inject-frequency", "1e-8", "--inject-ra", "10",
                                  "--inject-dec", "100"], ["dec"]),

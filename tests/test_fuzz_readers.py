@@ -51,6 +51,10 @@ def valid(tmp_path_factory):
 
     root = tmp_path_factory.mktemp("fuzz_valid")
     write_dataset(make_tiny_array(), root / "data")
+    (root / "data" / "injection.json").write_text(
+        '{"binaries": [{"ra": 10.0, "dec": 20.0, "gw_frequency": 1e-08, "strain": 1e-14, "chirp_mass": 1e9, '
+        '"pulsar_phases": {"SIMPSR01": 1.0}}], "reference_mjd": 53000.0, "background": null, '
+        '"true_noise": {"SIMPSR01": {"white": {"A": {"sigma_scale": 1.0, "sigma_added": 0.0}}, "red": null}}}\n')
     (root / "galaxies.csv").write_text("name,ra,dec,distance,k_abs_mag\nGAL001,10.0,20.0,40.0,-24.1\n"
                                        "GAL002,200.0,-30.0,80.0,-25.0\n")
     table = Table({"name": ["GAL001", "GAL002"], "ra": [10.0, 200.0], "dec": [20.0, -30.0],
@@ -137,12 +141,13 @@ def _first_residual(folder):
     return sorted((folder / "residuals").glob("*.ecsv"))[0]
 
 
-@pytest.mark.parametrize("which", ["pulsars.ecsv", "residuals/NAME.ecsv", "noise.ecsv"])
+@pytest.mark.parametrize("which", ["pulsars.ecsv", "residuals/NAME.ecsv", "noise.ecsv", "injection.json"])
 def test_dataset_reader_fuzz(valid, tmp_path, which):
     from cwsearch.data.dataset import read_dataset
 
     source = {"pulsars.ecsv": valid / "data" / "pulsars.ecsv", "noise.ecsv": valid / "data" / "noise.ecsv",
-              "residuals/NAME.ecsv": _first_residual(valid / "data")}[which]
+              "residuals/NAME.ecsv": _first_residual(valid / "data"),
+              "injection.json": valid / "data" / "injection.json"}[which]
     folder = _dataset_copy(valid, tmp_path)
     target = folder / source.relative_to(valid / "data")
 
@@ -227,6 +232,28 @@ def test_run_folder_reader_fuzz(tmp_path, which):
     def check(data):
         target.write_bytes(data)
         _loads_or_input_error(load)
+
+    check()
+
+
+def test_fe_sky_map_reader_fuzz(tmp_path):
+    """The reader of a user's Fe sky map (`hosts --sky-map FILE`) sees only InputError or success."""
+    import numpy as np
+    from astropy.table import Table
+
+    from cwsearch.stages.hosts.stage import _read_fe_map
+
+    target = tmp_path / "fe_map.ecsv"
+    table = Table({"pixel": np.arange(12), "fe": np.linspace(1.0, 12.0, 12), "frequency": np.full(12, 1e-8)})
+    table.meta["nside"] = 1
+    table.write(target, format="ascii.ecsv")
+    assert _read_fe_map(target, 1, 1e-8, explicit=True)[0] == 1   # the seed itself is a usable map
+
+    @FUZZ
+    @given(data=_mutations(target.read_bytes()))
+    def check(data):
+        target.write_bytes(data)
+        _loads_or_input_error(lambda: _read_fe_map(target, 1, 1e-8, explicit=True))
 
     check()
 

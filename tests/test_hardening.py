@@ -37,6 +37,9 @@ Wrong silent acceptance, misleading errors
                                          (legal: test_residual_symlink_inside_dataset_accepted)
   residual = 1e300 ..................... test_huge_residual_refused, test_residual_a_million_sigma_away_refused
   mjd = -1e9 (said --nside) ............ test_negative_mjd_names_file_row_column
+  (found here) injection.json a FIFO or
+  with text values: hang, traceback .... test_damaged_injection_json_refused_when_the_dataset_is_read,
+                                         Z test_dataset_reader_fuzz[injection.json]
   stages = [] .......................... test_run_file_empty_stages_refused
   [limits] galaxy bad, passes --check .. test_run_file_bad_limits_galaxy_fails_check
   max_time = -10, NaN in JSON .......... test_followup_nonpositive_max_time_refused,
@@ -48,6 +51,10 @@ Wrong silent acceptance, misleading errors
   followup/hosts: scan without summary . test_followup_refuses_scan_without_summary,
                                          test_hosts_refuses_scan_without_summary
   simulate --overwrite deletes files ... test_simulate_overwrite_keeps_unrelated_files
+  (found here) --out inside the dataset  test_run_folder_inside_the_dataset_refused
+  (found here) simulate strain 1e300
+  wrote an unreadable dataset .......... test_simulate_never_writes_a_dataset_the_reader_refuses,
+                                         B test_bad_simulate[strain-unreadably-large]
 Legal input rejected
   catalogue ra = 720.5 ................. test_catalog_ra_720_5_wraps
   UTF-8 CSV with a byte-order mark ..... test_catalog_utf8_bom_csv_accepted
@@ -60,7 +67,7 @@ Faults
                                          test_stage_command_refuses_run_folder_locked_by_live_run
   lock of another host taken as stale .. test_lock_naming_another_host_is_not_stale
   followup B --out RUN_OF_A (hosts,
-  limits) .............................. test_stage_command_refuses_run_of_another_dataset,
+  limits; found here: noise too) ....... test_stage_command_refuses_run_of_another_dataset,
                                          test_followup_and_limits_refuse_the_run_folder_of_another_dataset,
                                          test_stage_command_checks_the_results_when_dataset_json_is_gone,
                                          test_hosts_refuses_results_of_another_dataset,
@@ -84,7 +91,9 @@ The safety layer itself
   numeric extremes) .................... Z test_dataset_reader_fuzz (pulsars, residuals, noise.ecsv),
                                          Z test_catalog_reader_fuzz (CSV, ECSV), Z test_run_file_fuzz,
                                          Z test_run_folder_reader_fuzz (candidates, posterior, its summary),
-                                         Z test_noise_table_reader_fuzz, Z test_checkpoint_reader_fuzz
+                                         Z test_noise_table_reader_fuzz, Z test_checkpoint_reader_fuzz,
+                                         Z test_fe_sky_map_reader_fuzz (hosts --sky-map; found here: an
+                                         unusable map given by name was silently replaced by a Fisher blob)
 What held before and must keep holding
   YAML tags that would run code ........ Z test_yaml_python_tags_rejected_not_executed,
                                          B test_bad_dataset[residuals-python-yaml-tag]
@@ -264,6 +273,35 @@ def test_residual_symlink_outside_dataset_refused_unread(work, capsys, tmp_path_
     check_user_error(code, err, ["SIMPSR02.ecsv", "outside"])
 
 
+def _injection(w):
+    return w / "data" / "injection.json"
+
+
+INJECTION_CASES = [
+    ("fifo", lambda w: os.mkfifo(_injection(w)), ["injection.json", "named pipe"]),
+    ("symlink-outside", lambda w: _injection(w).symlink_to("/etc/passwd"), ["injection.json", "outside"]),
+    ("not-json", lambda w: _injection(w).write_text("{binaries: }"), ["injection.json", "not valid JSON"]),
+    ("not-an-object", lambda w: _injection(w).write_text("[1, 2]"), ["injection.json", "JSON object"]),
+    ("binaries-not-a-list", lambda w: _injection(w).write_text('{"binaries": 5}'), ["binaries", "list"]),
+    ("ra-text", lambda w: _injection(w).write_text('{"binaries": [{"ra": "x", "dec": 1}]}'),
+     ["binaries[0].ra", "finite number"]),
+    ("strain-nan", lambda w: _injection(w).write_text('{"binaries": [{"ra": 1, "strain": NaN}]}'),
+     ["binaries[0].strain", "finite number"]),
+    ("true-noise-text", lambda w: _injection(w).write_text(
+        '{"true_noise": {"SIMPSR01": {"white": {"A": {"sigma_scale": "big"}}}}}'), ["true_noise.SIMPSR01.white.A"]),
+]
+
+
+@pytest.mark.parametrize("damage, expect", [c[1:] for c in INJECTION_CASES], ids=[c[0] for c in INJECTION_CASES])
+def test_damaged_injection_json_refused_when_the_dataset_is_read(work, capsys, damage, expect):
+    """A simulated dataset's injection.json (the truth the plots and the report show) is read when the
+    dataset is: a FIFO used to hang the scan's plots, a text value gave a traceback after the work."""
+    damage(work)
+    code, err = run_cli(scan_argv(work, "--noise-model", "dataset"), capsys)
+    check_user_error(code, err, expect)
+    assert not (work / "run").exists()
+
+
 def test_residual_symlink_inside_dataset_accepted(work):
     from cwsearch.data.dataset import read_dataset
 
@@ -414,6 +452,20 @@ def test_simulate_overwrite_keeps_unrelated_files(work, capsys):
     assert code == 0, err
 
 
+def test_simulate_never_writes_a_dataset_the_reader_refuses(tiny_array):
+    """The last check before `simulate` writes: residuals beyond the reader's bounds (|r| <= 1 s, <= 1e6
+    sigma, finite; cwsearch.core.safeio) are refused, so no command is left facing an unreadable dataset."""
+    from cwsearch.commands.simulate import check_readable_residuals
+
+    check_readable_residuals(tiny_array)   # a readable one passes
+    loud = tiny_array.with_residuals([np.where(np.arange(p.n_toas) == 3, 2.0, p.residuals) for p in tiny_array])
+    with pytest.raises(InputError, match="reach 2 s"):
+        check_readable_residuals(loud)
+    broken = tiny_array.with_residuals([np.full(p.n_toas, np.nan) for p in tiny_array])
+    with pytest.raises(InputError, match="not finite"):
+        check_readable_residuals(broken)
+
+
 # ------------------------------------------------------------------ legal input that was rejected
 
 
@@ -482,7 +534,8 @@ def _dataset_b(work):
 
 
 def test_followup_and_limits_refuse_the_run_folder_of_another_dataset(work, capsys):
-    """`cwsearch followup B --out RUN_OF_A` (and `limits`) would use dataset A's candidates: one line, exit 2."""
+    """`cwsearch followup B --out RUN_OF_A` (and `limits`) would use dataset A's candidates, `noise` would
+    replace A's noise model with B's: one line, exit 2."""
     code, err = run_cli(scan_argv(work, "--noise-model", "dataset"), capsys)
     assert code == 0, err
     data_b = _dataset_b(work)
@@ -492,7 +545,8 @@ def test_followup_and_limits_refuse_the_run_folder_of_another_dataset(work, caps
     limits = ["limits", data_b, "--out", work / "run", "--nside", "1", "--fmax", "2e-8", "--no-plots", "--quiet",
               "--workers", "1", "--red-components", "5", "--noise-model", "dataset"]
     scan_b = [data_b if a == work / "data" else a for a in scan_argv(work)]
-    for argv in (followup, limits, scan_b):
+    noise = ["noise", data_b, "--out", work / "run", "--quiet", "--no-plots"]
+    for argv in (followup, limits, scan_b, noise):
         code, err = run_cli(argv, capsys)
         check_user_error(code, err, ["run", "another dataset", "choose another --out"])
     assert snapshot(work / "run") == before
@@ -545,6 +599,21 @@ def test_hosts_refuses_results_of_another_dataset(work, capsys):
                          "--quiet", "--no-plots"], capsys)
     check_user_error(code, err, ["followup", "summary.json", "another dataset", "bbbbbbbbbbbb"])
     assert snapshot(run) == before
+
+
+@pytest.mark.parametrize("out", ["data", "data/residuals/run"])
+def test_run_folder_inside_the_dataset_refused(work, capsys, out):
+    """`scan DATA --out DATA` mixed the results into the dataset (and a run folder in residuals/ would look
+    like unused data files); the stage commands and the run file refuse it."""
+    before = snapshot(work / "data")
+    argv = [work / out if a == work / "run" else a for a in scan_argv(work, "--noise-model", "dataset")]
+    code, err = run_cli(argv, capsys)
+    check_user_error(code, err, ["dataset folder", "choose another --out"])
+    runfile = work / "run.toml"
+    runfile.write_text(f'dataset = "data"\nout = "{out}"\n')
+    code, err = run_cli(["run", runfile, "--check"], capsys)
+    check_user_error(code, err, ["run.toml", "line 2", "dataset folder"])
+    assert snapshot(work / "data") == before
 
 
 def test_stage_command_records_its_dataset(work, capsys):

@@ -130,9 +130,10 @@ def run_folder_guard(run_dir, array=None, dataset=None):
     # lazy: keeps `cwsearch COMMAND --help` fast
     from ..data.dataset import dataset_checksum
     from ..job.pipeline import dataset_summary
-    from ..job.runfolder import stage_guard
+    from ..job.runfolder import check_out_of_dataset, stage_guard
 
     if dataset is None:
         return stage_guard(run_dir)
+    check_out_of_dataset(run_dir, dataset)
     checksum = dataset_checksum(dataset)
     return stage_guard(run_dir, checksum, dataset_record=lambda: dataset_summary(array, dataset, checksum))

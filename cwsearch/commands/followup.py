@@ -16,7 +16,7 @@ DESCRIPTION = (
     "Fit one circular binary (Earth + pulsar term, pulsar phases marginalised) to the top candidate(s) of "
     "RUN_DIR/scan/candidates.ecsv, an explicit target, or the whole sky, with a parallel-tempered ensemble "
     "sampler. Writes RUN_DIR/followup/: posterior.ecsv, summary.json (log Bayes factor signal vs noise by "
-    "thermodynamic integration), corner.png, sky.png, trace.png and a checkpoint for --resume."
+    "thermodynamic integration), corner.png, sky.png, trace.png, residuals.png and a checkpoint for --resume."
 )
 EXAMPLE = (
     "  cwsearch followup mydata --out runs/first\n"

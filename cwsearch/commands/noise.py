@@ -8,7 +8,7 @@ import json
 from ..core.options import add_options, options_from_args as build_options
 from ..physics.noise_settings import NoiseSettings
 from ..stages.noise.options import NoiseOptions
-from ._common import add_dataset_arguments, load_array
+from ._common import add_dataset_arguments, load_array, run_folder_guard
 
 DESCRIPTION = """\
 Fit the noise model from the residuals alone and write RUN_DIR/noise/:
@@ -85,9 +85,10 @@ def run(args) -> int:
     options = options_from_args(args)
     noise = build_options(NoiseSettings, args)   # checks --red-components (an integer in 0..1000)
     array = load_array(args)
-    result = run_noise(array, args.out, options, noise=noise,
-                       seed=stage_seed(args.seed, "noise"), progress=not args.quiet and not args.json,
-                       dataset_checksum=dataset_checksum(args.dataset))
+    with run_folder_guard(args.out, array, args.dataset):   # lock, .part clean-up, same dataset as the folder
+        result = run_noise(array, args.out, options, noise=noise,
+                           seed=stage_seed(args.seed, "noise"), progress=not args.quiet and not args.json,
+                           dataset_checksum=dataset_checksum(args.dataset))
     summary = result.summary
     if args.json:
         print(json.dumps(summary, indent=2))

@@ -137,6 +137,26 @@ def options_from_args(args) -> SimulateOptions:
     return SimulateOptions(**values)
 
 
+def check_readable_residuals(array):
+    """Refuse (InputError) a simulation whose residuals the dataset reader would refuse: finite, |residual|
+    at most MAX_RESIDUAL_SECONDS and at most MAX_RESIDUAL_OVER_SIGMA sigma (cwsearch.core.safeio), so that
+    `simulate` never writes a dataset that `inspect` and `scan` cannot read (e.g. a strain of 1e300)."""
+    # lazy: keeps `cwsearch COMMAND --help` fast
+    import numpy as np
+    from ..core.errors import InputError
+    from ..core.safeio import MAX_RESIDUAL_OVER_SIGMA, MAX_RESIDUAL_SECONDS
+
+    for p in array:
+        r = np.asarray(p.residuals, dtype=float)
+        worst = float(np.max(np.abs(r))) if r.size else 0.0
+        ratio = float(np.max(np.abs(r) / np.asarray(p.sigmas, dtype=float))) if r.size else 0.0
+        if not (np.all(np.isfinite(r)) and worst <= MAX_RESIDUAL_SECONDS and ratio <= MAX_RESIDUAL_OVER_SIGMA):
+            size = "are not finite numbers" if not np.all(np.isfinite(r)) else f"reach {worst:.3g} s ({ratio:.3g} sigma)"
+            raise InputError(f"the simulated residuals of pulsar {p.name} {size}; "
+                             f"the dataset reader accepts at most {MAX_RESIDUAL_SECONDS:g} s and "
+                             f"{MAX_RESIDUAL_OVER_SIGMA:g} sigma: lower the injected strain (or the noise)")
+
+
 def run(args) -> int:
     summary = simulate_dataset(args.outdir, options_from_args(args), seed=args.seed, overwrite=args.overwrite)
     if args.json:
@@ -175,6 +195,7 @@ def _check_options(o: SimulateOptions):
 def _binary_from_dict(spec: dict, where: str, pulsar_names):
     """Validate one binary given in user units (deg, Hz, Msun, Mpc, rad) -> keyword dict in model units."""
     # lazy: keeps `cwsearch COMMAND --help` fast
+    from ..core.safeio import MAX_RESIDUAL_SECONDS
     from ..physics import waveform
 
     unknown = set(spec) - _BINARY_KEYS - _DERIVED_KEYS
@@ -212,6 +233,12 @@ def _binary_from_dict(spec: dict, where: str, pulsar_names):
         if distance <= 0:
             raise InputError(f"luminosity_distance must be > 0 Mpc, not {distance}", file=where)
         strain = float(waveform.strain_amplitude(chirp_mass, freq, distance))
+    # the residual amplitude of a binary is of order h / (2 pi f) seconds (common practice, no source): one
+    # beyond the dataset reader's bound would write a dataset no command can read
+    if not math.isfinite(strain) or strain / (2 * math.pi * freq) > MAX_RESIDUAL_SECONDS:
+        raise InputError(f"strain {strain:g} at {freq:g} Hz gives residuals of about h/(2 pi f) = "
+                         f"{strain / (2 * math.pi * freq):.3g} s, above the {MAX_RESIDUAL_SECONDS:g} s the dataset "
+                         "reader accepts", file=where)
     evolution = spec.get("evolution", "full")
     if evolution not in waveform.EVOLUTION_MODES:
         raise InputError(f"evolution must be one of {', '.join(waveform.EVOLUTION_MODES)}, not {evolution!r}",
@@ -371,6 +398,7 @@ def simulate_dataset(outdir, options: SimulateOptions | None = None, *, seed=0, 
                                + ("" if o.noise_in_files else "; none of it is in the files the analysis reads")),
     }
     written = simulated if o.noise_in_files else simulated.with_noise({p.name: PulsarNoise() for p in simulated})
+    check_readable_residuals(written)
     write_dataset(written, outdir, injection=injection, overwrite=overwrite)
     return {"dataset": str(outdir), "n_pulsars": len(array), "n_toas": int(sum(p.n_toas for p in array)),
             "span_years": array.span / YEAR_SECONDS, **{k: injection[k] for k in

@@ -75,6 +75,7 @@ from ..core.fileio import write_json_atomic, write_table_atomic
 from ..core.safeio import (MAX_RESIDUAL_OVER_SIGMA, MAX_RESIDUAL_SECONDS, MJD_RANGE, SIGMA_RANGE, check_folder,
                            escape_text, is_regular_file, read_input_bytes)
 from .model import default_design_matrix, Array, DEFAULT_DESIGN_COLUMNS, Pulsar, PulsarNoise
+from .truth import INJECTION_FILE, read_injection_file
 
 PULSARS_FILE = "pulsars.ecsv"
 NOISE_FILE = "noise.ecsv"
@@ -141,6 +142,10 @@ def read_dataset(path, *, mjd_range=None) -> Array:
             raise InputError(f"residual file for pulsar {row['name']} (row {i + 1} of {PULSARS_FILE}) "
                              "is missing", file=rfile)
         residual_data[row["name"]] = _read_residual_table(rfile, folder, mjd_range)
+
+    injection = folder / INJECTION_FILE
+    if os.path.lexists(injection):   # the truth of a simulated dataset: checked now, not when a plot reads it
+        read_injection_file(injection, folder)
 
     noise_file = folder / NOISE_FILE
     noise = {row["name"]: PulsarNoise(red_log10_amplitude=row["red_log10_amplitude"],

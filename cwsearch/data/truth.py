@@ -28,11 +28,80 @@ from __future__ import annotations
 
 import json
 import math
+import os
 from pathlib import Path
 
 from ..core.constants import DAY_SECONDS
+from ..core.errors import InputError
+from ..core.safeio import escape_text, read_input_text
 
 INJECTION_FILE = "injection.json"
+
+
+#: numeric fields of an injected binary (finite numbers when present)
+BINARY_NUMBERS = ("ra", "dec", "gw_frequency", "chirp_mass", "strain", "luminosity_distance", "inclination",
+                  "polarization", "phase", "orbital_period_yr", "time_to_coalescence_yr", "optimal_snr")
+#: largest injection.json read [bytes]
+INJECTION_MAX_BYTES = 64 << 20
+
+
+def read_injection_file(path, root=None) -> dict:
+    """The content of an ``injection.json``, checked; InputError (naming the file and the entry) otherwise.
+
+    Read through :mod:`cwsearch.core.safeio` (a regular file inside ``root``, the dataset folder: never a
+    FIFO, a device or a link elsewhere; size cap). It must be a JSON object; ``binaries`` a list of objects
+    whose :data:`BINARY_NUMBERS` are finite numbers when present; ``reference_mjd`` a number or null;
+    ``background`` null or an object of numbers; ``true_noise`` an object per pulsar with ``white`` (per
+    backend ``sigma_scale``, ``sigma_added``) and ``red`` (null or ``log10_amplitude``, ``index``).
+    """
+    path = Path(path)
+
+    def bad(what):
+        raise InputError(f"{what}", file=path)
+
+    def number(value, where):
+        if isinstance(value, bool) or not isinstance(value, (int, float)) or not math.isfinite(value):
+            bad(f"entry {where} must be a finite number, not {str(value)[:40]!r}")
+
+    def numbers(obj, keys, where):
+        if not isinstance(obj, dict):
+            bad(f"entry {where} must be an object")
+        for k in keys:
+            if k in obj and obj[k] is not None:
+                number(obj[k], f"{where}.{k}")
+
+    text = read_input_text(path, root, what="injection file", max_bytes=INJECTION_MAX_BYTES)
+    try:
+        inj = json.loads(text)
+    except (ValueError, RecursionError) as exc:
+        bad(f"not valid JSON ({str(exc).splitlines()[0][:80]})")
+    if not isinstance(inj, dict):
+        bad("must be a JSON object")
+    binaries = inj.get("binaries", [])
+    if not isinstance(binaries, list):
+        bad("entry binaries must be a list")
+    for i, b in enumerate(binaries):
+        numbers(b, BINARY_NUMBERS, f"binaries[{i}]")
+        if isinstance(b.get("pulsar_phases"), dict):
+            for name, v in b["pulsar_phases"].items():
+                number(v, f"binaries[{i}].pulsar_phases.{escape_text(str(name))[:40]}")
+    if inj.get("reference_mjd") is not None:
+        number(inj["reference_mjd"], "reference_mjd")
+    if inj.get("background") is not None:
+        numbers(inj["background"], ("log10_amplitude", "index"), "background")
+    noise = inj.get("true_noise")
+    if noise is not None:
+        if not isinstance(noise, dict):
+            bad("entry true_noise must be an object")
+        for name, rec in noise.items():
+            where = f"true_noise.{escape_text(str(name))[:40]}"
+            if not isinstance(rec, dict) or not isinstance(rec.get("white", {}), dict):
+                bad(f"entry {where} must be an object with a 'white' object")
+            for backend, w in rec.get("white", {}).items():
+                numbers(w, ("sigma_scale", "sigma_added"), f"{where}.white.{escape_text(str(backend))[:40]}")
+            if rec.get("red") is not None:
+                numbers(rec["red"], ("log10_amplitude", "index"), f"{where}.red")
+    return inj
 
 
 def _read_injection(source):
@@ -41,17 +110,17 @@ def _read_injection(source):
     if not isinstance(folder, (str, Path)):
         return None, None   # an Array built in memory (not read from a folder): no injection.json to read
     folder = Path(folder)
-    if not (folder / INJECTION_FILE).is_file() and (folder / "dataset.json").is_file():
-        try:
-            folder = Path(json.loads((folder / "dataset.json").read_text(encoding="utf-8"))["path"])
-        except (OSError, ValueError, KeyError, TypeError):
+    if not os.path.lexists(folder / INJECTION_FILE) and (folder / "dataset.json").is_file():
+        try:   # a run folder: its dataset.json names the dataset folder
+            folder = Path(json.loads(read_input_text(folder / "dataset.json", folder, max_bytes=64 << 20))["path"])
+        except (InputError, ValueError, KeyError, TypeError, RecursionError):
             return None, None
+    if not os.path.lexists(folder / INJECTION_FILE):
+        return None, None
     try:
-        inj = json.loads((folder / INJECTION_FILE).read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return None, None
-    if not isinstance(inj, dict):
-        return None, None
+        inj = read_injection_file(folder / INJECTION_FILE, folder)
+    except InputError:
+        return None, None   # refused when the dataset was read; a truth that cannot be read is not shown
     try:
         first = inj["binaries"][0]
     except (KeyError, IndexError, TypeError):
@@ -115,4 +184,4 @@ def injected_binary(source):
     return out
 
 
-__all__ = ["injected_binary", "injected_signal", "injected_noise"]
+__all__ = ["injected_binary", "injected_signal", "injected_noise", "read_injection_file", "BINARY_NUMBERS"]

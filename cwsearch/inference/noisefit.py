@@ -797,7 +797,7 @@ def goodness_of_fit(array, noise_settings: NoiseSettings, lowfreq_components=4, 
 
 # ----------------------------------------------------------------- the whole fit
 def fit_noise(array, settings: FitSettings | None = None, bounds: FitBounds | None = None, *, seed=0,
-              dataset_checksum=None, common_likelihood=None) -> NoiseFit:
+              dataset_checksum=None, common_likelihood=None, runner=None) -> NoiseFit:
     """Fit white noise, per-pulsar red noise and (optionally) a common red process to ``array``.
 
     Parameters
@@ -808,12 +808,38 @@ def fit_noise(array, settings: FitSettings | None = None, bounds: FitBounds | No
     dataset_checksum : stored in the table so that it is only applied to the same dataset
     common_likelihood : ``factory(array_with_noise, red_components) -> callable(log10_amplitude, index)``;
         default :class:`UncorrelatedCommonLikelihood`
+    runner : :class:`cwsearch.inference.execution.TaskRunner` for the per-pulsar fits (one task per pulsar
+        and round; None: in this process). Each task gets its own random stream, drawn in this process
+        before the tasks are sent, so the numbers do not depend on where the tasks run.
 
     Warns (:class:`NoiseFitWarning`) for pulsars fitted white only, fits that
     did not converge, and failed checks. See the module docstring.
     """
     with _small_matrix_threads():
-        return _fit_noise(array, settings, bounds, seed, dataset_checksum, common_likelihood)
+        return _fit_noise(array, settings, bounds, seed, dataset_checksum, common_likelihood, runner)
+
+
+def _fit_pulsar_task(task):
+    """One pulsar's fit (:func:`_fit_one`) as a task for a worker: returns ``(fit, evaluations used)``."""
+    problem, settings, bounds, common_phi, red_allowed, seed, previous, final = task
+    with _small_matrix_threads():
+        before = problem.evaluations
+        fit = _fit_one(problem, settings, bounds, common_phi, red_allowed, np.random.default_rng(seed),
+                       previous=previous, final=final)
+        return fit, problem.evaluations - before
+
+
+def _fit_pulsars(problems, settings, bounds, common_phi, allowed, rng, runner, previous=None, final=True):
+    """Every pulsar's fit, in this process or on ``runner``; the same numbers either way."""
+    seeds = rng.integers(0, 2**63 - 1, size=len(problems))
+    previous = previous or [None] * len(problems)
+    tasks = [(pr, settings, bounds, common_phi, ok, int(sd), prev, final)
+             for pr, ok, sd, prev in zip(problems, allowed, seeds, previous)]
+    before = [pr.evaluations for pr in problems]
+    results = runner.map(_fit_pulsar_task, tasks) if runner is not None else [_fit_pulsar_task(t) for t in tasks]
+    for pr, start, (_, used) in zip(problems, before, results):
+        pr.evaluations = start + used        # a worker counted on its copy of the problem
+    return [fit for fit, _ in results]
 
 
 def _small_matrix_threads():
@@ -822,7 +848,7 @@ def _small_matrix_threads():
     return threadpool_limits(1, user_api="blas")
 
 
-def _fit_noise(array, settings, bounds, seed, dataset_checksum, common_likelihood):
+def _fit_noise(array, settings, bounds, seed, dataset_checksum, common_likelihood, runner=None):
     settings = settings or FitSettings()
     bounds = bounds or FitBounds()
     rng = seed if isinstance(seed, np.random.Generator) else np.random.default_rng(seed)
@@ -848,7 +874,7 @@ def _fit_noise(array, settings, bounds, seed, dataset_checksum, common_likelihoo
     common = None
     fits = None
     if settings.common and K > 0:
-        fits = [_fit_one(pr, settings, bounds, None, False, rng, final=False) for pr in problems]
+        fits = _fit_pulsars(problems, settings, bounds, None, [False] * len(problems), rng, runner, final=False)
         rounds = 1 + max(int(settings.iterations), 0)
         for it in range(rounds):
             like = factory(apply_noise_model(array, model_of(fits, None), check=False), K)
@@ -857,8 +883,8 @@ def _fit_noise(array, settings, bounds, seed, dataset_checksum, common_likelihoo
                                 max_iterations=settings.max_iterations, tolerance=settings.tolerance)
             evaluations += getattr(like, "evaluations", 0)
             cphi = common_phi(common)
-            fits = [_fit_one(pr, settings, bounds, cphi, ok, rng, previous=f if it else None, final=it == rounds - 1)
-                    for pr, ok, f in zip(problems, red_allowed, fits)]
+            fits = _fit_pulsars(problems, settings, bounds, cphi, red_allowed, rng, runner,
+                                previous=fits if it else None, final=it == rounds - 1)
         final_like = factory(apply_noise_model(array, model_of(fits, None), check=False), K)
         common.log_likelihood = _finite(final_like(common.log10_amplitude, common.index), common.log_likelihood)
         common.statistic = _finite(max(0.0, 2 * (common.log_likelihood -
@@ -870,7 +896,7 @@ def _fit_noise(array, settings, bounds, seed, dataset_checksum, common_likelihoo
         if not common.converged:
             warnings.warn("common red process: optimiser did not converge", NoiseFitWarning, stacklevel=2)
     else:
-        fits = [_fit_one(pr, settings, bounds, None, ok, rng) for pr, ok in zip(problems, red_allowed)]
+        fits = _fit_pulsars(problems, settings, bounds, None, red_allowed, rng, runner)
 
     cphi = common_phi(common)
     if settings.upper_limits:

@@ -119,7 +119,9 @@ CAPTIONS = {
     "corner.png": "Follow-up posterior: one- and two-dimensional marginals (dashed: 5 %, 50 %, 95 %).",
     "sky.png": "Follow-up: posterior sky position with its 50 % and 90 % credible regions.",
     "trace.png": "Follow-up: T = 1 chains of a few walkers (burn-in shaded), in physical units.",
-    "residuals.png": "Follow-up: timing residuals per pulsar with the fitted binary signal and its 90 % band.",
+    "residuals.png": "Follow-up: timing residuals per pulsar with the fitted binary signal (Earth + pulsar term; "
+                     "posterior median and 90 % band of 100 draws, after the timing-model fit); dashed magenta: "
+                     "the true signal when injection.json exists.",
     "hosts_sky.png": "Host galaxies: the binary's sky density with the catalogue galaxies.",
     "hosts_sky_zoom.png": "Host galaxies: zoom around the candidate, top hosts labelled.",
     "hosts_followup_sky.png": "Host galaxies: the follow-up posterior sky map with its 90 % credible region, the "

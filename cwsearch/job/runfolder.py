@@ -324,6 +324,15 @@ def check_results_dataset(run_dir, checksum):
             seen = theirs
 
 
+def check_out_of_dataset(run_dir, dataset, *, what="--out"):
+    """Refuse (InputError) a run folder that is the dataset folder or lies inside it: results written there
+    would mix with the data (and a folder inside residuals/ would be taken for unused data files)."""
+    run, data = Path(run_dir).resolve(), Path(dataset).resolve()
+    if run == data or data in run.parents:
+        raise InputError(f"the run folder is {'the' if run == data else 'inside the'} dataset folder {data}; "
+                         f"results must not be mixed with the data: choose another {what}", file=run_dir)
+
+
 def recorded_checksum(run_dir):
     """The dataset checksum a run folder records (``dataset.json`` or ``provenance.json``), or None."""
     for name, key in (("dataset.json", "checksum"), ("provenance.json", "dataset_checksum")):
@@ -395,7 +404,7 @@ def read_table(path):
         return None
 
 
-__all__ = ["STAGE_FILE", "DONE", "PACKAGES", "stage_seed", "canonical_hash", "file_checksum", "folder_hash",
+__all__ = ["check_out_of_dataset", "STAGE_FILE", "DONE", "PACKAGES", "stage_seed", "canonical_hash", "file_checksum", "folder_hash",
            "product_hash", "read_record", "record_is_current", "read_json", "read_table", "package_versions", "RunLock",
            "json_default", "utc_now", "cpu_count", "provenance_record", "LOCK_STALE_SECONDS", "clean_partial_files",
            "stage_guard", "recorded_checksum", "JSON_MAX_BYTES"]

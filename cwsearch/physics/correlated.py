@@ -41,7 +41,9 @@ What the module owns
   cross-pulsar 2×2 blocks ``W_pq = u_pᵀ Ψ_pq u_q``, ``u_p = F_pᵀK_p⁻¹[sin, cos]``
   (:meth:`ArrayWeighting.scan_corrections`), and :func:`fe_sky_correlated`,
   which subtracts ``Σ_pq F_p F_q W_pq`` from M for all pixels with one
-  matrix product per pattern pair. N comes from the projections of d̃, no
+  matrix product ``[F+; F×] W`` per chunk of frequencies (W for p ≤ q only,
+  the rest by W_ab(q, p) = W_ba(p, q); cost and fast paths: docs/design.md
+  §5b). N comes from the projections of d̃, no
   correction needed. With the true C, 2Fe ~ χ²(4) stays exact in noise.
   :func:`fp_correlated` uses the diagonal blocks ``Z_p − W_pp``: each term
   2F_p is still χ²(2) in noise and the mean of 2Fp stays 2 N_psr, but the
@@ -402,7 +404,7 @@ class ArrayWeighting:
         inv, info = lapack.dpotri(self._chol, lower=1)
         if info != 0:
             raise np.linalg.LinAlgError(f"inverting the array Woodbury matrix failed (info {info})")
-        x = inv.T                         # C-ordered view of S̃⁻¹ (Fortran lower triangle = its upper one)
+        x = np.asfortranarray(inv).T      # C-ordered view of S̃⁻¹ (Fortran lower triangle = its upper one)
         _mirror_upper(x)
         n_c = self.n_fourier
         lg = self._gamma_factor

@@ -76,7 +76,7 @@ class FollowupOptions:
     max_temperatures: int | None = option(None, "the ladder may grow to this many temperatures where neighbours "
                                                 "rarely swap (not set: 3 x temperatures, at most 40; equal to "
                                                 "temperatures keeps it fixed)", metavar="N", group=_SAMPLER)
-    no_plots: bool = option(False, "skip the corner, sky and trace plots (PNG)")
+    no_plots: bool = option(False, "skip the corner, sky, trace and residual plots (PNG)")
 
     def validate(self):
         evolution_modes = ("full", "pulsar-frequency", "monochromatic")  # the Literal above

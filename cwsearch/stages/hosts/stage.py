@@ -435,33 +435,55 @@ def _find_sky_map(scan_dir: Path, options):
     return found + others
 
 
-def _read_fe_map(path: Path, candidate_row: int, frequency: float):
-    """(nside, pixels, fe) from an Fe map table, or None if it is not a usable map for this candidate."""
+def _read_fe_map(path: Path, candidate_row: int, frequency: float, *, explicit=False):
+    """(nside, pixels, fe) from an Fe map table, or None if it is not a usable map for this candidate.
+
+    With ``explicit`` (the user named the file with ``--sky-map``) an unusable map is an InputError saying
+    why, never silently replaced by another localisation."""
+    def unusable(why):
+        if explicit:
+            raise InputError(f"not a usable Fe sky map for candidate {candidate_row}: {why} (--sky-map takes an "
+                             "ECSV table with columns pixel and fe)", file=path)
+        return None
+
     try:
         table = Table.read(read_input_text(path) + "\n", format="ascii.ecsv")
-    except Exception:
+    except InputError:
+        if explicit:
+            raise
         return None
+    except Exception as exc:   # astropy's parser raises many kinds; any of them means "not a table"
+        return unusable(f"not an ECSV table ({type(exc).__name__})")
     if "pixel" not in table.colnames or "fe" not in table.colnames or len(table) == 0:
-        return None
-    if "candidate" in table.colnames:
-        table = table[np.asarray(table["candidate"]) == candidate_row]
-        if len(table) == 0:
-            return None
-    f_map = table.meta.get("frequency")
-    if "frequency" in table.colnames:
-        f_map = float(np.median(np.asarray(table["frequency"], float)))
-    if f_map is not None and abs(float(f_map) - frequency) > 0.01 * frequency:
-        return None
-    pixels = np.asarray(table["pixel"], dtype=np.int64)
-    fe = np.asarray(table["fe"], dtype=float)
-    nside = table.meta.get("nside")
-    if nside is None:
-        npix = 12 * 4 ** math.ceil(math.log((pixels.max() + 1) / 12, 4)) if pixels.max() >= 12 else 12
-        nside = int(round(math.sqrt(npix / 12)))
-    good = np.isfinite(fe) & (pixels >= 0) & (pixels < 12 * int(nside) ** 2)
+        return unusable("no pixel and fe columns, or no rows")
+    try:
+        if "candidate" in table.colnames:
+            table = table[np.asarray(table["candidate"]) == candidate_row]
+            if len(table) == 0:
+                return unusable("no rows for this candidate")
+        f_map = table.meta.get("frequency")
+        if "frequency" in table.colnames:
+            f_map = float(np.median(np.asarray(table["frequency"], float)))
+        if f_map is not None and not abs(float(f_map) - frequency) <= 0.01 * frequency:
+            return unusable(f"made at {float(f_map):.4g} Hz, not at the candidate's {frequency:.4g} Hz")
+        pixels = np.asarray(table["pixel"], dtype=float)
+        fe = np.asarray(table["fe"], dtype=float)
+        if not np.all(np.isfinite(pixels)) or np.any(pixels != np.round(pixels)):
+            return unusable("pixel numbers that are not whole numbers")
+        pixels = pixels.astype(np.int64)
+        nside = table.meta.get("nside")
+        if nside is None:
+            npix = 12 * 4 ** math.ceil(math.log((pixels.max() + 1) / 12, 4)) if pixels.max() >= 12 else 12
+            nside = int(round(math.sqrt(npix / 12)))
+        nside = int(nside)
+        if not 1 <= nside <= 8192 or nside & (nside - 1):
+            return unusable(f"nside {nside} is not a power of two up to 8192")
+    except (TypeError, ValueError, OverflowError) as exc:
+        return unusable(f"malformed ({exc})")
+    good = np.isfinite(fe) & (pixels >= 0) & (pixels < 12 * nside ** 2)
     if not good.any():
-        return None
-    return int(nside), pixels[good], fe[good]
+        return unusable("no finite fe value on a valid pixel")
+    return nside, pixels[good], fe[good]
 
 
 def fe_sky_map(array, frequency, noise=None, nside=32):
@@ -518,7 +540,7 @@ def scan_localisation(run_dir, options, span_seconds, rng, n_samples=20000, *, a
     rho = math.sqrt(max(2 * fe - 4, 1.0))
     fe_map = None
     for p in _find_sky_map(scan_dir, options):
-        fe_map = _read_fe_map(p, row, f0)
+        fe_map = _read_fe_map(p, row, f0, explicit=bool(options.sky_map))
         if fe_map is not None:
             map_label = p.name
             break

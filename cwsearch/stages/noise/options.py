@@ -15,12 +15,17 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 from ...core.errors import InputError
-from ...core.options import option
+from ...core.options import CLI_ONLY, option
 
 #: the special values of ``model`` (anything else is a noise-table path)
 MODEL_CHOICES = ("estimate", "dataset")
 
 _FIT = "noise fit"
+_RUNNER = ("where the work runs is the run file's [execution] section (the same for every stage), not an "
+           "input of the fit")
+#: with ``workers`` not set, the per-pulsar fits go to local worker processes from this many TOAs in all
+#: (below it, starting the workers costs more than it saves)
+PARALLEL_FROM_TOAS = 20_000
 
 
 @dataclass(frozen=True)
@@ -71,6 +76,13 @@ class NoiseOptions:
     contour_points: int = option(16, "grid points per axis of the common-process likelihood plot", metavar="N",
                                  group=_FIT)
     no_plots: bool = option(False, "skip the noise-stage plots (PNG)", group=_FIT)
+    workers: int | None = option(None, "fit the pulsars in N local worker processes (not set: one per CPU "
+                                       f"from {PARALLEL_FROM_TOAS:,} TOAs in all, else in this process; the "
+                                       "numbers do not depend on it)",
+                                 metavar="N", group="execution", only=CLI_ONLY, why=_RUNNER)
+    scheduler: str | None = option(None, "send the per-pulsar fits to a running Dask scheduler, e.g. "
+                                         "tcp://10.0.0.5:8786", metavar="ADDRESS", group="execution",
+                                   only=CLI_ONLY, why=_RUNNER)
 
     def validate(self) -> "NoiseOptions":
         if not isinstance(self.model, str) or not self.model.strip():
@@ -85,6 +97,8 @@ class NoiseOptions:
             raise InputError("option --iterations: must be >= 0")
         if self.contour_points < 3:
             raise InputError("option --contour-points: must be >= 3")
+        if self.workers is not None and (int(self.workers) != self.workers or not 1 <= self.workers <= 1024):
+            raise InputError(f"option --workers: must be an integer in [1, 1024], not {self.workers}")
         if not 0.5 <= self.fixed_common_index <= 7.0:
             raise InputError("option --fixed-common-index: must be in [0.5, 7] (the fitted range)")
         return self
@@ -101,4 +115,4 @@ class NoiseOptions:
                            iterations=int(self.iterations), upper_limits=bool(self.upper_limits))
 
 
-__all__ = ["NoiseOptions", "MODEL_CHOICES"]
+__all__ = ["NoiseOptions", "MODEL_CHOICES", "PARALLEL_FROM_TOAS"]

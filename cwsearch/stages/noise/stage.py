@@ -41,9 +41,10 @@ from ...core.fileio import write_json_atomic, write_table_atomic
 from ...data.truth import injected_noise
 from ...inference.noisefit import (GOF_THRESHOLD, NoiseFitWarning, UncorrelatedCommonLikelihood,
                                    apply_noise_model, fit_common, fit_noise, noise_table)
+from ...inference.execution import TaskRunner, available_cpus
 from ...physics.noise import NoiseSettings
 from . import plots
-from .options import MODEL_CHOICES, NoiseOptions  # the options live beside (standard library only)
+from .options import MODEL_CHOICES, PARALLEL_FROM_TOAS, NoiseOptions  # the options live beside (standard library only)
 
 #: file names inside RUN_DIR/noise/
 TABLE_NAME = "noise_model.ecsv"
@@ -165,7 +166,7 @@ def run_noise(array, run_dir, options: NoiseOptions = NoiseOptions(), *, noise: 
               + (f", common process {used})" if settings.common else ")"), flush=True)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", NoiseFitWarning)
-        fit = fit_noise_checked(array, settings, seed, dataset_checksum, factory)
+        fit = fit_noise_checked(array, settings, seed, dataset_checksum, factory, options)
     messages = notes + [str(w.message) for w in caught if issubclass(w.category, NoiseFitWarning)]
     # re-emit, so that callers (and the command line) see them
     for m in messages:
@@ -216,11 +217,25 @@ def run_noise(array, run_dir, options: NoiseOptions = NoiseOptions(), *, noise: 
     return NoiseResult(fit, model, summary, files)
 
 
-def fit_noise_checked(array, settings, seed, dataset_checksum, factory):
-    """:func:`~cwsearch.inference.noisefit.fit_noise` after the array-level input checks of this stage."""
+def fit_noise_checked(array, settings, seed, dataset_checksum, factory, options: NoiseOptions | None = None):
+    """:func:`~cwsearch.inference.noisefit.fit_noise` after the array-level input checks of this stage, with
+    the per-pulsar fits on the task runner ``options`` asks for (:func:`fit_runner`)."""
     if len(array) == 0:
         raise InputError("the dataset has no pulsars to fit")
-    return fit_noise(array, settings, seed=seed, dataset_checksum=dataset_checksum, common_likelihood=factory)
+    with fit_runner(array, options) as runner:
+        return fit_noise(array, settings, seed=seed, dataset_checksum=dataset_checksum, common_likelihood=factory,
+                         runner=None if runner.kind == "serial" else runner)
+
+
+def fit_runner(array, options: NoiseOptions | None) -> TaskRunner:
+    """Where the per-pulsar fits run: ``options.scheduler`` (Dask), ``options.workers`` local processes, or,
+    with neither set, one process per CPU from :data:`PARALLEL_FROM_TOAS` TOAs in all (else this process)."""
+    scheduler = getattr(options, "scheduler", None)
+    workers = getattr(options, "workers", None)
+    if workers is None and not scheduler:
+        large = sum(p.n_toas for p in array) >= PARALLEL_FROM_TOAS
+        workers = min(available_cpus(), len(array)) if large else 1
+    return TaskRunner(workers=workers, scheduler=scheduler)
 
 
 def model_settings(model, noise: NoiseSettings | None, correlation: str) -> NoiseSettings:
@@ -303,5 +318,5 @@ def fit_summary(fit, options, dataset_checksum, correlation, messages, compariso
     }
 
 
-__all__ = ["NoiseOptions", "NoiseResult", "run_noise", "fit_fingerprint", "fit_summary", "model_settings", "common_correlation",
+__all__ = ["NoiseOptions", "NoiseResult", "run_noise", "fit_runner", "fit_fingerprint", "fit_summary", "model_settings", "common_correlation",
            "CorrelatedCommonLikelihood", "TABLE_NAME", "SUMMARY_NAME", "MODEL_CHOICES"]
