@@ -35,6 +35,7 @@ from __future__ import annotations
 import argparse
 import json
 import os
+import tempfile
 import time
 from dataclasses import replace
 from pathlib import Path
@@ -190,8 +191,8 @@ def calibration(args):
     # one planted binary, whole stage
     t1 = time.time()
     k = int(np.flatnonzero(np.isfinite(period) & inside)[0])
-    work = RESULTS / "targets_work"
-    work.mkdir(parents=True, exist_ok=True)
+    scratch = tempfile.TemporaryDirectory(prefix="cwsearch-bench-targets-")   # the stage's run folder: not kept
+    work = Path(scratch.name)
     Table({"name": [f"SIMGAL-B{i:05d}" for i in range(n)], "ra": np.degrees(ra) * u.deg, "dec": np.degrees(dec) * u.deg,
            "distance": rng.uniform(20, 300, n) * u.Mpc, "period": period * u.day,
            "period_err": 0.02 * period * u.day}).write(work / "catalog.ecsv", format="ascii.ecsv", overwrite=True)
@@ -213,6 +214,7 @@ def calibration(args):
                       "followed_up": bool(row["followed_up"]),
                       "followup": [f["name"] for f in res.summary["followup"]],
                       "stage_seconds": time.time() - t1}
+    scratch.cleanup()
     _plots(p_all, family_min, out)
     print(f"calibration: {args.datasets} noise-only datasets x {ok.size} targets ({out['period_targets']} with a "
           f"period window), {args.cal_null_sims} simulations as the null")
