@@ -303,3 +303,44 @@ def test_command_line(tmp_path, capsys):
                  str(tmp_path / "run2"), "--noise-model", "dataset", "--quiet"])
     err = capsys.readouterr().err
     assert code == 2 and "bad.csv" in err and "row 1" in err and "dec" in err and len(err.strip().splitlines()) == 1
+
+
+# ---------------------------------------------------------------- the follow-up of a target, sky bounded
+def test_follow_up_sky_cap_prior_is_uniform_on_the_cap():
+    """`cwsearch followup --sky-radius R` (how a target is handed over): prior draws lie on the cap and are
+    uniform on it — cos(separation) uniform in [cos R, 1], the area element of a sphere (common practice, no
+    source; KS, scipy.stats.kstest) — and the prior density is zero outside it."""
+    from cwsearch.inference.likelihood import Likelihood
+    from cwsearch.physics.sky import angular_separation
+    from cwsearch.stages.followup.stage import Prior
+
+    arr = simulated_array(invented_array(n_pulsars=4, years=8, seed=2, toas_per_pulsar=40), seed=3)
+    ra0, dec0, radius = 6.1, -1.2, np.radians(10.0)            # near ra = 0 and near the south pole
+    prior = Prior(Likelihood(arr, NOISE), (np.log10(1e-8), np.log10(2e-8)), sky_cap=(ra0, dec0, radius))
+    draws = prior.draw(np.random.default_rng(1), 3000)
+    sep = angular_separation(draws[:, 0], np.arcsin(draws[:, 1]), ra0, dec0)
+    assert np.all(sep <= radius * (1 + 1e-9))
+    assert stats.kstest(np.cos(sep), "uniform", args=(np.cos(radius), 1 - np.cos(radius))).pvalue > 1e-3
+    outside = draws[:5].copy()
+    outside[:, 0] = np.remainder(ra0 + np.pi, 2 * np.pi)
+    assert np.all(np.isneginf(prior(outside)))
+
+
+def test_follow_up_of_a_target_stays_on_its_sky_cap(tmp_path):
+    """A short follow-up with --sky-radius 8 at an invented target: every posterior sample within 8 deg of it,
+    and the summary states the sky prior."""
+    from cwsearch.physics.sky import angular_separation
+    from cwsearch.stages.followup.stage import FollowupOptions, run_followup
+
+    arr = simulated_array(invented_array(n_pulsars=6, years=10, seed=4, toas_per_pulsar=60), seed=5)
+    options = FollowupOptions(frequency=1.2e-8, ra=40.0, dec=20.0, sky_radius=8.0, walkers=18, temperatures=3,
+                              max_temperature=1e3, ess=50, max_iterations=120, adapt_iterations=40,
+                              checkpoint_every=100, max_temperatures=3, no_plots=True)
+    result = run_followup(arr, tmp_path, options, noise=NOISE, seed=1, progress=False)
+    post = Table.read(tmp_path / "followup" / "posterior.ecsv")
+    sep = np.degrees(angular_separation(np.radians(post["ra"]), np.radians(post["dec"]), np.radians(40.0),
+                                        np.radians(20.0)))
+    assert np.all(sep <= 8.0 + 1e-9)
+    assert "cap of 8 deg" in result.summary["model"]["sky_prior"]
+    with pytest.raises(InputError, match="--sky-radius"):
+        FollowupOptions(sky_radius=5.0).validate()

@@ -79,9 +79,10 @@ def run(args) -> int:
               f"{row['best_frequency']:11.4e} {row['p_value']:9.2e} {row['p_family']:9.2e} {row['q_fdr']:9.2e} "
               f"{_g(row['chirp_mass_95']):>11}")
     print(f"family-wise p < 0.05: {s['n_family_below_0.05']}; FDR q < 0.05: {s['n_fdr_below_0.05']}")
-    for f in s["followup"]:
+    for k, f in enumerate(s["followup"], start=1):
         print(f"follow up {escape_text(f['name'])}: cwsearch followup {escape_text(args.dataset)} --out "
-              f"{escape_text(str(args.out))} --frequency {f['frequency']:.6e} --ra {f['ra']:.4f} --dec {f['dec']:.4f}")
+              f"{escape_text(str(args.out))}/targets/followup_{k} --frequency {f['frequency']:.6e} --ra {f['ra']:.4f} --dec {f['dec']:.4f} "
+              f"--sky-radius {f['sky_radius']:g}")
     if not s["followup"]:
         print(f"no target below the follow-up threshold (family-wise p < {s['followup_threshold']:g})")
     print(f"outputs in {result.files['results'].rsplit('/', 1)[0]}")

@@ -44,6 +44,10 @@ class FollowupOptions:
                                only=CLI_ONLY, why=_PICKED)
     all_sky: bool = option(False, "no target: start from the prior over the whole band", group=_TARGET,
                            only=CLI_ONLY, why=_PICKED)
+    sky_radius: float | None = option(None, "bound the sky prior to a cap of this radius [deg] around --ra, --dec "
+                                            "(a targeted follow-up, e.g. of a catalogue target from cwsearch "
+                                            "targets; not set: the whole sky)", metavar="DEG", group=_TARGET,
+                                      only=CLI_ONLY, why=_PICKED)
     resume: bool = option(False, "continue from the checkpoint in the output folder", group=_SAMPLER,
                           only=CLI_ONLY, why="an interrupted run resumes by itself (the pipeline's skipping and "
                                              "the sampler checkpoint)")
@@ -93,6 +97,11 @@ class FollowupOptions:
         explicit = [v is not None for v in (self.frequency, self.ra, self.dec)]
         if any(explicit) and not all(explicit):
             raise InputError("an explicit target needs all of --frequency, --ra and --dec")
+        if self.sky_radius is not None:
+            if not all(explicit):
+                raise InputError("--sky-radius needs an explicit target (--frequency, --ra and --dec)")
+            if not (math.isfinite(self.sky_radius) and 0 < self.sky_radius <= 180):
+                raise InputError(f"--sky-radius must be within (0, 180] deg, not {self.sky_radius}")
         if self.ess <= 0 or self.max_iterations <= 0:
             raise InputError("--ess and --max-iterations must be positive")
         if self.max_time is not None and not (math.isfinite(self.max_time) and self.max_time > 0):

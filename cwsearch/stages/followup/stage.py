@@ -44,6 +44,7 @@ Examples
 
 from __future__ import annotations
 
+import math
 import os
 import time
 from dataclasses import asdict, dataclass, field, replace
@@ -105,9 +106,11 @@ class FollowupResult:
 class Prior:
     """The follow-up prior in sampler coordinates (see module docstring); vectorised."""
 
-    def __init__(self, likelihood, log10_frequency_range, uniform_strain=False):
+    def __init__(self, likelihood, log10_frequency_range, uniform_strain=False, sky_cap=None):
         self.likelihood = likelihood
         self.uniform_strain = uniform_strain
+        # (ra, dec, radius) [rad]: the sky prior is uniform on this cap instead of the whole sphere
+        self.sky_cap = None if sky_cap is None else tuple(float(v) for v in sky_cap)
         strain = (0.0, STRAIN_RANGE[1]) if uniform_strain else tuple(np.log10(STRAIN_RANGE))
         self.lower = np.array([0.0, -1.0, log10_frequency_range[0], np.log10(CHIRP_MASS_RANGE[0]), strain[0],
                                -1.0, 0.0, 0.0])
@@ -117,6 +120,8 @@ class Prior:
     def __call__(self, theta):
         theta = np.atleast_2d(theta)
         inside = np.all((theta >= self.lower) & (theta < self.upper), axis=1)
+        if self.sky_cap is not None:
+            inside &= self._in_cap(theta[:, 0], theta[:, 1])
         out = np.where(inside, 0.0, -np.inf)
         if inside.any():
             merge = self.likelihood.merges_within_data(10.0 ** theta[inside, 2], 10.0 ** theta[inside, 3])
@@ -125,11 +130,31 @@ class Prior:
             out[inside] = sub
         return out
 
+    def _in_cap(self, ra, sin_dec):
+        ra0, dec0, radius = self.sky_cap
+        cos_dec = np.sqrt(np.clip(1.0 - sin_dec**2, 0.0, None))
+        cos_sep = sin_dec * math.sin(dec0) + cos_dec * math.cos(dec0) * np.cos(ra - ra0)
+        return cos_sep >= math.cos(radius)
+
+    def _draw_cap(self, rng, size):
+        """(ra, sin dec) uniform on the sky cap: cos(separation) uniform in [cos r, 1], azimuth uniform,
+        rotated to the cap's centre."""
+        ra0, dec0, radius = self.sky_cap
+        cos_sep = rng.uniform(math.cos(radius), 1.0, size)
+        sin_sep = np.sqrt(np.clip(1.0 - cos_sep**2, 0.0, None))
+        azimuth = rng.uniform(0.0, 2 * np.pi, size)
+        sin_dec = np.clip(math.sin(dec0) * cos_sep + math.cos(dec0) * sin_sep * np.cos(azimuth), -1.0, 1.0)
+        ra = ra0 + np.arctan2(np.sin(azimuth) * sin_sep * math.cos(dec0),
+                              cos_sep - math.sin(dec0) * sin_dec)
+        return np.remainder(ra, 2 * np.pi), sin_dec
+
     def draw(self, rng, size):
         """Draws from the prior (rejecting merging binaries), shape (size, 8)."""
         out = np.empty((0, 8))
         for _ in range(200):
             x = rng.uniform(self.lower, self.upper, (2 * size, 8))
+            if self.sky_cap is not None:
+                x[:, 0], x[:, 1] = self._draw_cap(rng, 2 * size)
             out = np.vstack([out, x[np.isfinite(self(x))]])
             if out.shape[0] >= size:
                 return out[:size]
@@ -354,7 +379,10 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, 
         band = (np.log10(max(target.frequency - half, 0.5 / span)), np.log10(target.frequency + half))
     if band[0] >= band[1]:
         raise InputError("empty frequency band for the follow-up; check --max-frequency / --frequency")
-    prior = Prior(likelihood, band, uniform_strain=options.strain_prior == "uniform")
+    sky_cap = None
+    if getattr(options, "sky_radius", None) is not None and target.ra is not None:
+        sky_cap = (float(target.ra), float(target.dec), math.radians(float(options.sky_radius)))
+    prior = Prior(likelihood, band, uniform_strain=options.strain_prior == "uniform", sky_cap=sky_cap)
     init_seq, sampler_seq = seed_seq.spawn(2)
     rng = np.random.default_rng(init_seq)
     settings = sampling.SamplerSettings(
@@ -366,7 +394,7 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, 
     initial = initial_positions(prior, target, span, (options.temperatures, options.walkers), rng)
     fingerprint = {"target": [target.frequency, target.ra, target.dec], "band": list(band),
                    "pulsar_term": likelihood.pulsar_term, "evolution": likelihood.evolution,
-                   "strain_prior": options.strain_prior, "n_pulsars": len(array),
+                   "strain_prior": options.strain_prior, "n_pulsars": len(array), "sky_cap": sky_cap,
                    "phase_grid": likelihood.phase_grid}
     result = sampling.run_sampler(prior, likelihood.batch, initial, settings, seed=sampler_seq,
                                   checkpoint=folder / "checkpoint.npz", resume=options.resume,
@@ -418,6 +446,9 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, 
         "model": {"pulsar_term": likelihood.pulsar_term, "pulsar_phases": "marginalised" if likelihood.pulsar_term
                   else "none", "pulsar_distances": "catalogue values", "evolution": likelihood.evolution,
                   "strain_prior": options.strain_prior, "log10_frequency_band": list(band),
+                  "sky_prior": ("isotropic (the whole sky)" if sky_cap is None else
+                                f"uniform on a cap of {options.sky_radius:g} deg around ra = "
+                                f"{math.degrees(sky_cap[0]):.4f}, dec = {math.degrees(sky_cap[1]):.4f} deg"),
                   "chirp_mass_range": list(CHIRP_MASS_RANGE), "strain_range": list(STRAIN_RANGE)},
     }
     noise_model = getattr(likelihood, "noise_model", None)

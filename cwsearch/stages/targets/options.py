@@ -70,6 +70,9 @@ class TargetsOptions:
     followup_threshold: float = option(0.01, "hand targets with a family-wise (Holm) p-value below this to the "
                                              "follow-up", metavar="P", group=_P)
     followup_top: int = option(5, "at most this many targets go to the follow-up", metavar="N", group=_P)
+    followup_sky_radius: float = option(5.0, "the follow-up of a target bounds its sky prior to a cap of this "
+                                             "radius [deg] around it (cwsearch followup --sky-radius)",
+                                        metavar="DEG", group=_P)
     no_limits: bool = option(False, "skip the 95 % chirp-mass limits per target", group=_L)
     quadrature: Literal["fast", "standard", "fine"] = option("standard", "angle grid of the limits' quadrature",
                                                             group=_L)
@@ -113,6 +116,8 @@ class TargetsOptions:
             bad("fdr_method", f"must be 'bh' or 'by', not {self.fdr_method!r}")
         if not 0 <= self.followup_threshold <= 1:
             bad("followup_threshold", f"must be within [0, 1], not {self.followup_threshold}")
+        if not (math.isfinite(self.followup_sky_radius) and 0 < self.followup_sky_radius <= 180):
+            bad("followup_sky_radius", f"must be within (0, 180] deg, not {self.followup_sky_radius}")
         if int(self.followup_top) != self.followup_top or self.followup_top < 0:
             bad("followup_top", f"must be an integer >= 0, not {self.followup_top}")
         if self.quadrature not in QUADRATURE_NAMES:

@@ -257,7 +257,8 @@ def run_targets(array, run_dir, options: TargetsOptions = TargetsOptions(), *, n
         "followup_threshold": float(options.followup_threshold),
         "followup": [{"name": str(r["name"]), "ra": float(r["ra"]), "dec": float(r["dec"]),
                       "frequency": float(r["best_frequency"]), "frequency_low": float(r["frequency_low"]),
-                      "frequency_high": float(r["frequency_high"]), "p_family": float(r["p_family"])}
+                      "frequency_high": float(r["frequency_high"]), "p_family": float(r["p_family"]),
+                      "sky_radius": float(options.followup_sky_radius)}
                      for r in ftab],
         "noise_model": {**stage_noise_statement(array, noise), **engine.describe()},
         "seed": int(seed),
