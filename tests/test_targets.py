@@ -344,3 +344,57 @@ def test_follow_up_of_a_target_stays_on_its_sky_cap(tmp_path):
     assert "cap of 8 deg" in result.summary["model"]["sky_prior"]
     with pytest.raises(InputError, match="--sky-radius"):
         FollowupOptions(sky_radius=5.0).validate()
+
+
+def test_run_file_follows_up_the_handed_over_target(tmp_path):
+    """``[targets] follow_up = true``: the pipeline follows up the target the stage hands over, sky bounded to
+    its cap, into targets/followup_1, and records the Bayes factor in targets_summary.json."""
+    from cwsearch.job.config import load_config
+    from cwsearch.job.pipeline import run_pipeline
+    from cwsearch.physics.sky import angular_separation
+
+    rng = np.random.default_rng(31)
+    base = invented_array(n_pulsars=10, years=8, seed=32, toas_per_pulsar=70)
+    ra, dec, period = _catalogue(tmp_path / "cat.ecsv", 30, rng)
+    k = int(np.flatnonzero(np.isfinite(period))[0])
+    binary = Binary(ra=np.radians(ra[k]), dec=np.radians(dec[k]), gw_frequency=2 / (period[k] * DAY_SECONDS),
+                    chirp_mass=5e8, strain=1.0, evolution="monochromatic", pulsar_term=False)
+    signal = binary_residuals(base, binary)
+    scale = 12.0 / array_noise(base, NOISE).optimal_snr(signal)
+    noisy = simulated_array(base, seed=33, red=False)
+    write_dataset(noisy.with_residuals([p.residuals + scale * s for p, s in zip(noisy, signal)]), tmp_path / "data")
+    (tmp_path / "run.toml").write_text(f"""
+dataset = "data"
+out = "run"
+stages = ["targets"]
+[noise]
+model = "dataset"
+red_components = 6
+pulsar_red_noise = false
+[targets]
+catalog = "cat.ecsv"
+null_sims = 20
+no_limits = true
+no_plots = true
+follow_up = true
+followup_top = 1
+[followup]
+walkers = 18
+temperatures = 3
+max_temperature = 1000.0
+ess = 50.0
+max_iterations = 120
+adapt_iterations = 40
+max_temperatures = 3
+no_plots = true
+""")
+    result = run_pipeline(load_config(tmp_path / "run.toml"), quiet=True)
+    assert [s.status for s in result.stages if s.name == "targets"] == ["ran"]
+    summary = json.loads((tmp_path / "run" / "targets" / "targets_summary.json").read_text())
+    entry = summary["followup"][0]
+    assert entry["name"] == f"SIMGAL-T{k:04d}" and entry["folder"] == "followup_1"
+    assert isinstance(entry["log_bayes_factor"], float)
+    post = Table.read(tmp_path / "run" / "targets" / "followup_1" / "posterior.ecsv")
+    sep = np.degrees(angular_separation(np.radians(post["ra"]), np.radians(post["dec"]), np.radians(entry["ra"]),
+                                        np.radians(entry["dec"])))
+    assert np.all(sep <= entry["sky_radius"] + 1e-9)

@@ -61,7 +61,7 @@ from ..core.constants import YEAR_SECONDS
 from ..core.errors import InputError
 from ..core.fileio import write_json_atomic
 from ..data.dataset import dataset_checksum, read_dataset
-from ..stages import STAGES as REGISTRY
+from ..stages import BY_NAME, STAGES as REGISTRY
 from .config import RunConfig
 from .noisemodel import resolve_noise_model
 from .report import build_report, format_headline, headline_result
@@ -561,6 +561,41 @@ def _run_noise(ctx, stage):
     return dict(result.summary or {})
 
 
+def _run_targets(ctx, stage):
+    """The targets stage; with ``[targets] follow_up = true`` then the follow-up of every target it hands over,
+    its sky prior bounded to the cap of ``followup_sky_radius`` around the target and the frequency prior
+    around its loudest frequency, with the ``[followup]`` sampler settings, one folder each:
+    ``targets/followup_K`` (K = the order of ``targets_summary.json``'s ``followup`` list)."""
+    options = runner_options(ctx.options, ctx.config.execution)
+    result = stage.run(ctx.model_array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed, progress=ctx.progress)
+    summary = dict(result.summary or {})
+    chosen = summary.get("followup") or []
+    if not getattr(options, "follow_up", False) or not chosen:
+        return summary
+    follow = BY_NAME["followup"]
+    base = ctx.config.options.get("followup") or follow.options()
+    seeds = np.random.SeedSequence(ctx.seed).generate_state(len(chosen))
+    for k, (entry, seed) in enumerate(zip(chosen, seeds), start=1):
+        scratch = ctx.stage_dir / f".work_followup_{k}"
+        if scratch.exists():
+            shutil.rmtree(scratch)
+        opts = replace(base, candidate=None, top=1, all_sky=False, resume=False, frequency=entry["frequency"],
+                       ra=entry["ra"], dec=entry["dec"], sky_radius=entry["sky_radius"])
+        res = follow.run(ctx.model_array, scratch, opts, noise=ctx.noise, seed=int(seed), progress=ctx.progress)
+        final = ctx.stage_dir / f"followup_{k}"
+        if final.exists():
+            shutil.rmtree(final)
+        os.replace(scratch / "followup", final)
+        shutil.rmtree(scratch)
+        s = dict(getattr(res, "summary", {}) or {})
+        entry.update({"folder": f"followup_{k}", "log_bayes_factor": s.get("log_bayes_factor"),
+                      "log_bayes_factor_error": s.get("log_bayes_factor_error"),
+                      "bayes_factor_meaning": s.get("bayes_factor_meaning")})
+    summary["followup"] = chosen
+    write_json_atomic(ctx.stage_dir / "targets_summary.json", summary)
+    return summary
+
+
 def _targets_precheck(ctx):
     """The targets stage needs a catalogue."""
     if not getattr(ctx.options, "catalog", None):
@@ -571,6 +606,7 @@ def _targets_precheck(ctx):
 _PRECHECKS = {"hosts": _hosts_precheck,          # checks that raise NothingToDo before the stage runs
               "targets": _targets_precheck}
 _CUSTOM_RUNS = {"followup": _run_followup,       # the follow-up picks its candidates from the scan's table
+                "targets": _run_targets,         # then follows up the targets it hands over ([targets] follow_up)
                 "noise": _run_noise}             # the noise stage fits only for the 'estimate' model
 _EXTRA_INPUTS = {"hosts": _hosts_inputs,         # more input-hash entries (the catalogue's checksum)
                  "targets": _hosts_inputs}

@@ -1015,7 +1015,10 @@ def _targeted(run: _Run):
         if summ.get(key) not in (None, "", 0):
             s["items"].append((label, fmt_number(summ[key], kind)))
     if summ.get("followup"):
-        s["paragraphs"].append("Handed to the follow-up: " + ", ".join(f["name"] for f in summ["followup"]) + ".")
+        s["paragraphs"].append("Handed to the follow-up (sky bounded to a cap around the target): " + ", ".join(
+            f["name"] + (f" (ln Bayes factor {f['log_bayes_factor']:.1f} ± {f.get('log_bayes_factor_error') or 0:.1f}, "
+                         f"{f['folder']})" if isinstance(f.get("log_bayes_factor"), (int, float)) else "")
+            for f in summ["followup"]) + ".")
     elif summ.get("n_targets") is not None:
         s["paragraphs"].append(f"No target has a family-wise p-value below {summ.get('followup_threshold')}.")
     tab = _read_table(run.dir / "targets" / "results.ecsv")

@@ -19,7 +19,7 @@ from dataclasses import dataclass
 from typing import Literal
 
 from ...core.errors import InputError
-from ...core.options import CLI_ONLY, option
+from ...core.options import CLI_ONLY, FILE_ONLY, option
 
 #: the null of the p-values: noise-only simulations, sky scrambles, or both (simulations quoted)
 NULL_METHODS = ("simulations", "scrambles", "both")
@@ -73,6 +73,11 @@ class TargetsOptions:
     followup_sky_radius: float = option(5.0, "the follow-up of a target bounds its sky prior to a cap of this "
                                              "radius [deg] around it (cwsearch followup --sky-radius)",
                                         metavar="DEG", group=_P)
+    follow_up: bool = option(False, "in a run, follow up every target handed over (its sky bounded to the cap, "
+                                    "with the [followup] sampler settings; each takes minutes), into "
+                                    "targets/followup_K", group=_P, only=FILE_ONLY,
+                             why="the targets command prints the follow-up commands instead (a stage does not "
+                                 "run another stage; the pipeline does)")
     no_limits: bool = option(False, "skip the 95 % chirp-mass limits per target", group=_L)
     quadrature: Literal["fast", "standard", "fine"] = option("standard", "angle grid of the limits' quadrature",
                                                             group=_L)
