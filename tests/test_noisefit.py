@@ -351,3 +351,18 @@ def test_wrong_white_noise_truth_and_quoted_sigmas_kept():
             assert 0 <= values["sigma_added"] <= 0.5 * np.median(p.sigmas[p.backends == b])
         z = r / true_sigmas(p, truth)
         assert stats.kstest(z, "norm").pvalue > 1e-3      # drawn with the true sigmas (scipy.stats)
+
+
+def test_amplitude_upper_limit_equals_truncated_normal_quantile():
+    # A likelihood Gaussian in the amplitude A (mean mu, width s) with a prior uniform in A on [1e-18, 1e-11]
+    # gives a truncated-normal posterior: its 95 % quantile from scipy.stats.truncnorm is the reference.
+    from scipy import stats
+
+    from cwsearch.inference.noisefit import amplitude_upper_limit
+
+    # broad, reaching down to A = 0, narrow (a strongly detected process) and very narrow
+    for mu, s in ((1.0e-15, 3.0e-16), (0.0, 4.0e-16), (3.0e-14, 1.0e-15), (3.0e-14, 3.0e-17)):
+        lo, hi = 1e-18, 1e-11
+        ref = stats.truncnorm.ppf(0.95, (lo - mu) / s, (hi - mu) / s, loc=mu, scale=s)
+        got = amplitude_upper_limit(lambda la: -0.5 * ((10.0**la - mu) / s) ** 2, bounds=(-18.0, -11.0))
+        assert abs(got - np.log10(ref)) < 0.01, (mu, s, got, np.log10(ref))

@@ -721,7 +721,14 @@ def fit_common(log_likelihood, bounds: FitBounds | None = None, *, index=None, s
     if starts is None:
         starts = [(-14.5, 13 / 3), (-13.5, 3.0), (-15.5, 5.0)]
     starts = [np.asarray(s[:1] if fixed else s, dtype=float) for s in starts]
-    res = _minimise(fun, starts, pb, max_iterations, tolerance)
+    if fixed and not has_grad:
+        # one parameter and no analytic gradient (the correlated array likelihood, one Cholesky of
+        # size N_psr·2K per value): bounded Brent search on values alone, ~15 evaluations, instead of
+        # L-BFGS-B from several starts on finite-difference gradients (two values per step; measured
+        # 82 evaluations over the three common fits of the 50-pulsar bench array)
+        res = _brent_log10_amplitude(log_likelihood, float(index), amp_b, starts)
+    else:
+        res = _minimise(fun, starts, pb, max_iterations, tolerance)
     x = res.x if res is not None else starts[0]
     lnl = -res.fun if res is not None else -fun(x)[0]
     err, _ = _hessian_errors(lambda y: fun(y)[1], x, pb)
@@ -734,31 +741,70 @@ def fit_common(log_likelihood, bounds: FitBounds | None = None, *, index=None, s
                      converged=res is not None and bool(res.success))
 
 
+def _brent_log10_amplitude(log_likelihood, index, amp_bounds, starts, xatol=1e-4):
+    """Maximum of ``log_likelihood(log10 A, index)`` over ``amp_bounds`` by bounded Brent search
+    (``scipy.optimize.minimize_scalar``); the starts are kept when one of them is better (a flat or
+    multi-peaked profile). Returns an ``OptimizeResult`` with ``x`` (length 1), ``fun`` (−ln L), ``success``."""
+    def neg(la):
+        try:
+            v = log_likelihood(float(la), index)
+        except np.linalg.LinAlgError:
+            return 1e20
+        return -v if np.isfinite(v) else 1e20
+
+    out = optimize.minimize_scalar(neg, bounds=amp_bounds, method="bounded",
+                                   options={"xatol": xatol, "maxiter": 200})
+    best_x, best_f = float(out.x), float(out.fun)
+    for x0 in starts:
+        la = float(np.clip(x0[0], *amp_bounds))
+        f = neg(la)
+        if f < best_f - 1e-9:
+            best_x, best_f = la, f
+    return optimize.OptimizeResult(x=np.array([best_x]), fun=best_f, success=bool(out.success) and best_f < 1e20,
+                                   nfev=int(out.nfev) + len(starts))
+
+
 def amplitude_upper_limit(log_likelihood_of_log10_amplitude, bounds=(-18.0, -11.0), confidence=0.95,
-                          points=40) -> float:
+                          points=24, coarse_points=16) -> float:
     """``confidence`` quantile (log10) of the amplitude under a prior uniform in amplitude on ``10**bounds``.
 
-    Quadrature on a log10 grid (density ∝ L(A) · A · ln 10 per unit log10 A),
-    refined once over the region carrying the posterior mass.
+    ``coarse_points`` on a log10 grid over the bounds (posterior density per unit log10 A ∝ L(A) · A) find
+    where the posterior mass lies; then ``points`` on a grid *linear in A* over that range (where the
+    posterior density is L(A) itself, so a broad posterior reaching down to A = 0 is resolved as well as
+    a narrow one) give the quantile by trapezoidal quadrature. Checked against the truncated-normal
+    quantile of ``scipy.stats.truncnorm`` (tests/test_noisefit.py).
     """
     lo, hi = bounds
 
-    def quantile(grid):
-        lnl = np.array([log_likelihood_of_log10_amplitude(x) for x in grid])
-        logw = lnl + grid * _LN10
-        logw = np.where(np.isfinite(logw), logw, -np.inf)
-        w = np.exp(logw - logw.max())
-        cdf = np.concatenate([[0.0], np.cumsum(0.5 * (w[1:] + w[:-1]) * np.diff(grid))])
-        cdf /= cdf[-1]
-        return float(np.interp(confidence, cdf, grid)), w
+    def lnl_of(grid):
+        v = np.array([log_likelihood_of_log10_amplitude(x) for x in grid], dtype=float)
+        return np.where(np.isfinite(v), v, -np.inf)
 
-    coarse = np.linspace(lo, hi, points)
-    q, w = quantile(coarse)
-    keep = np.flatnonzero(w > 1e-8)
-    step = coarse[1] - coarse[0]
-    fine = np.linspace(max(lo, coarse[keep[0]] - step), min(hi, coarse[keep[-1]] + step), points)
-    q, _ = quantile(fine)
-    return q
+    coarse = np.linspace(lo, hi, coarse_points)
+    logw = lnl_of(coarse) + coarse * _LN10
+    if not np.isfinite(logw).any():
+        return float(hi)
+    keep = np.flatnonzero(logw - logw.max() > np.log(1e-8))
+    bottom = lo if keep[0] == 0 else coarse[keep[0] - 1]
+    top = hi if keep[-1] == coarse_points - 1 else coarse[keep[-1] + 1]
+    amplitudes = np.linspace(10.0**bottom, 10.0**top, points)
+    lnl = lnl_of(np.log10(amplitudes))
+    w = np.exp(lnl - lnl.max())
+    cdf = np.concatenate([[0.0], np.cumsum(0.5 * (w[1:] + w[:-1]) * np.diff(amplitudes))])
+    if not cdf[-1] > 0:
+        return float(top)
+    cdf /= cdf[-1]
+    # a narrow posterior (a strongly detected process) may sit in a few cells: refine once over them
+    inside = np.flatnonzero((cdf > 1e-4) & (cdf < 1 - 1e-4))
+    if inside.size < 20:
+        first = max(int(inside[0]) - 2 if inside.size else 0, 0)
+        last = min(int(inside[-1]) + 2 if inside.size else points - 1, points - 1)
+        amplitudes = np.linspace(amplitudes[first], amplitudes[last], points)
+        lnl = lnl_of(np.log10(np.maximum(amplitudes, 10.0**lo)))
+        w = np.exp(lnl - lnl.max())
+        cdf = np.concatenate([[0.0], np.cumsum(0.5 * (w[1:] + w[:-1]) * np.diff(amplitudes))])
+        cdf /= cdf[-1]
+    return float(np.log10(np.interp(confidence, cdf, amplitudes)))
 
 
 # ----------------------------------------------------------------- goodness of fit
