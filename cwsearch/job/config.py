@@ -513,9 +513,6 @@ def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunC
         out = (base / "runs" / stem).resolve() if base.name != "runs" else (base / stem).resolve()
     if values["seed"] < 0:
         fail("must be >= 0", None, "seed")
-    if out == dataset or dataset in out.parents:
-        fail(f"the run folder {out} is {'the' if out == dataset else 'inside the'} dataset folder: results must not "
-             "be mixed with the data; choose another out", None, "out" if values["out"] else "dataset")
     mjd_range = values["mjd_range"]
     if mjd_range is not None:
         if len(mjd_range) != 2 or not all(math.isfinite(v) for v in mjd_range) or not mjd_range[0] < mjd_range[1]:
@@ -569,6 +566,10 @@ def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunC
         if extra["followup"].get("max_candidates", 1) < 1:
             fail("must be >= 1", "followup", "max_candidates")
 
+    # after every key is known to be valid, so that a misspelt key is reported first
+    if out == dataset or dataset in out.parents:
+        fail(f"the run folder {out} is {'the' if out == dataset else 'inside the'} dataset folder: results must not "
+             "be mixed with the data; choose another out", None, "out" if values["out"] else "dataset")
     return RunConfig(path=path, dataset=dataset, out=out, seed=values["seed"], title=values["title"],
                      stages=stages, execution=execution, noise=noise, options=options, extra=extra, raw=raw,
                      mjd_range=mjd_range)
