@@ -684,15 +684,7 @@ def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, ke
                           zip(edges[:-1], edges[1:])))
             fe = np.empty((n_sets, n_sky, fc))
             _fe_correlated_products(nq, mq, prod[:n_sky], prod[n_sky:], fplus, fcross, fc, n_sets, fe)
-            idx = np.argmax(fe, axis=1)
-            best[:, f0:f1] = idx
-            fe_max[:, f0:f1] = np.take_along_axis(fe, idx[:, None, :], axis=1)[:, 0, :]
-            if keep_map:
-                fe_map[:, f0:f1] = fe[0]
-            if on_block is not None:
-                on_block(f0, fe)
-            if on_chunk is not None:
-                on_chunk(fc)
+            fstat.store_sky_block(fe, f0, f1, best, fe_max, fe_map if keep_map else None, on_block, on_chunk)
     return fstat.SkyScan(fe_map, fe_max, best)
 
 

@@ -492,16 +492,23 @@ def fe_sky(proj: Projections, fplus, fcross, *, keep_map=True, map_dtype=np.floa
         mq = pm @ zc
         fe = np.empty((n_sets, n_sky, fc))
         _fe_from_products(nq, mq, n_sky, fc, n_sets, fe)
-        idx = np.argmax(fe, axis=1)
-        best[:, f0:f1] = idx
-        fe_max[:, f0:f1] = np.take_along_axis(fe, idx[:, None, :], axis=1)[:, 0, :]
-        if keep_map:
-            fe_map[:, f0:f1] = fe[0]
-        if on_block is not None:
-            on_block(f0, fe)
-        if on_chunk is not None:
-            on_chunk(fc)
+        store_sky_block(fe, f0, f1, best, fe_max, fe_map if keep_map else None, on_block, on_chunk)
     return SkyScan(fe_map, fe_max, best)
+
+
+def store_sky_block(fe, f0, f1, best, fe_max, fe_map=None, on_block=None, on_chunk=None):
+    """Keep one frequency block ``f0:f1`` of an Fe sky scan ``fe`` (sets, pixels, frequencies): the best
+    pixel and its Fe per set and frequency, the first set's map when ``fe_map`` is given, then the
+    callbacks ``on_block(f0, fe)`` and ``on_chunk(n_frequencies)``. Shared by every Fe sky kernel."""
+    idx = np.argmax(fe, axis=1)
+    best[:, f0:f1] = idx
+    fe_max[:, f0:f1] = np.take_along_axis(fe, idx[:, None, :], axis=1)[:, 0, :]
+    if fe_map is not None:
+        fe_map[:, f0:f1] = fe[0]
+    if on_block is not None:
+        on_block(f0, fe)
+    if on_chunk is not None:
+        on_chunk(f1 - f0)
 
 
 def fe_statistic(proj: Projections, fplus, fcross):
@@ -636,7 +643,7 @@ def frequency_grid(array, fmin=None, fmax=None, oversample=2):
 
 
 __all__ = [
-    "Projections", "Z_RELATIVE_TOLERANCE", "ANCHOR_EVERY", "sine_cosine_basis", "uniform_step",
+    "Projections", "Z_RELATIVE_TOLERANCE", "ANCHOR_EVERY", "sine_cosine_basis", "uniform_step", "store_sky_block",
     "sine_cosine_matrix", "project", "project_batch", "SkyScan", "fe_sky", "fe_statistic",
     "fe_with_amplitudes", "network_vectors", "sky_patterns", "fp_statistic", "fp_degrees_of_freedom",
     "amplitudes_to_parameters", "parameters_to_amplitudes", "MAX_DEFAULT_FREQUENCY",
