@@ -230,8 +230,10 @@ def _mean_field_serial(fplus, fcross, strain, cos_inclination, psi, phase, dvec,
                         sweeps)
 
 
-#: mean-field sweeps stop once no pulsar's mean (cos χ, sin χ) moves by more than this
-MEAN_FIELD_TOLERANCE = 1e-7
+#: mean-field sweeps stop once no pulsar's mean (cos χ, sin χ) moves by more than this. The bound is
+#: stationary at its fixed point, so ln Λ errs by O(J δ²): measured |Δ ln Λ| ≤ 3e-6 against 1e-7 on the
+#: 20-pulsar bench array, with a quarter fewer sweeps
+MEAN_FIELD_TOLERANCE = 1e-5
 MEAN_FIELD_MAX_SWEEPS = 100
 
 
@@ -256,7 +258,9 @@ def mean_field_log_likelihood(fplus, fcross, strain, cos_inclination, polarizati
     n_w = fplus.shape[0]
     out = np.empty(n_w)
     sweeps = np.empty(n_w, dtype=np.int64)
-    kernel = _mean_field_parallel if fplus.size >= 20_000 else _mean_field_serial
+    # walkers are independent (no sum across them), so the threaded kernel gives the same numbers; one walker
+    # costs 0.3-1 ms (grid integrals of every pulsar, a few sweeps), far above the cost of starting threads
+    kernel = _mean_field_parallel if n_w >= 16 else _mean_field_serial
     kernel(fplus, np.ascontiguousarray(fcross, dtype=float), np.ascontiguousarray(strain, dtype=float),
            np.ascontiguousarray(cos_inclination, dtype=float), np.ascontiguousarray(polarization, dtype=float),
            np.ascontiguousarray(phase, dtype=float), np.ascontiguousarray(dvec), np.ascontiguousarray(gmat),
