@@ -55,3 +55,44 @@ def test_two_starts_give_the_same_posterior(tmp_path, loud_array):
     for s in runs:
         lo, hi = s["parameters"]["frequency"]["interval_90"]
         assert lo <= binary.gw_frequency <= hi
+
+
+def test_scan_start_draws_sky_and_frequency_from_the_tempered_fe_maps():
+    # With the scan's maps, the walkers at inverse temperature beta pick a pixel and a frequency bin with
+    # probability exp(beta Fe) / sum exp(beta Fe) (the tempered profile likelihood; Fe of Ellis, Siemens &
+    # Creighton 2012): checked against that closed form within 4 binomial standard errors
+    # (common practice, no source). The maps are invented inputs, not check values.
+    from astropy_healpix import HEALPix
+
+    from cwsearch.inference.likelihood import Likelihood
+    from cwsearch.stages.followup.stage import Prior, ScanStart, Target, initial_positions
+
+    array = invented_array(n_pulsars=3, years=10, seed=2, toas_per_pulsar=40, full_span=True)
+    likelihood = Likelihood(array, NoiseWeighting(array, WHITE))
+    nside = 4
+    fe_sky = np.zeros(12 * nside * nside)
+    peak_pixel = 37
+    fe_sky[peak_pixel] = 3.0
+    frequencies = np.arange(1, 40) / array.span
+    fe_spectrum = np.zeros(frequencies.size)
+    fe_spectrum[9] = 3.0                                  # 10 / T_span
+    start = ScanStart(fe_sky, nside, frequencies, fe_spectrum)
+    target = Target("t", 10 / array.span, 1.0, 0.2)
+    prior = Prior(likelihood, (np.log10(7.5 / array.span), np.log10(12.5 / array.span)))
+    betas = np.array([1.0, 1e-3])
+    walkers = 2000
+    pos = initial_positions(prior, target, array.span, (2, walkers), np.random.default_rng(5), scan_start=start,
+                            betas=betas)
+    hp = HEALPix(nside=nside, order="ring")
+    import astropy.units as u
+    for t, beta in enumerate(betas):
+        pixels = hp.lonlat_to_healpix(pos[t, :, 0] * u.rad, np.arcsin(pos[t, :, 1]) * u.rad)
+        expected = np.exp(beta * 3.0) / (np.exp(beta * 3.0) + fe_sky.size - 1)
+        got = np.mean(pixels == peak_pixel)
+        assert abs(got - expected) < 4 * np.sqrt(expected * (1 - expected) / walkers), (beta, got, expected)
+        # frequency: bins 8..12 / T_span lie in the band; bin 10 carries exp(beta Fe)
+        bins = np.rint(10.0 ** pos[t, :, 2] * array.span)
+        expected_f = np.exp(beta * 3.0) / (np.exp(beta * 3.0) + 4)
+        got_f = np.mean(bins == 10)
+        assert abs(got_f - expected_f) < 4 * np.sqrt(expected_f * (1 - expected_f) / walkers) + 0.02, (beta, got_f)
+    assert np.all(np.isfinite(prior(pos.reshape(-1, 8))))

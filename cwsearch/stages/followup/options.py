@@ -73,6 +73,12 @@ class FollowupOptions:
         "log-uniform", "strain prior: log-uniform for detection, uniform for upper limits", group=_MODEL)
     phase_grid: int = option(0, "points of the pulsar-phase marginalisation grid (0: chosen per pulsar, error "
                                 "< 1e-13)", metavar="K", group=_MODEL)
+    start: Literal["scan", "prior"] = option(
+        "scan", "where the walkers start: 'scan' draws each temperature's sky positions and frequencies from the "
+                "scan's Fe sky map and spectrum tempered by that temperature (exp(beta Fe), the profile "
+                "likelihood: hot chains broad, the cold chain near the peak), the other parameters from the "
+                "prior; 'prior' draws everything from the prior (also used when the scan left no map)",
+        group=_SAMPLER)
     checkpoint_every: int = option(100, "write the sampler checkpoint every this many iterations (a killed run "
                                         "resumes from it)", metavar="N", group=_SAMPLER)
     adapt_iterations: int = option(500, "adapt the temperature ladder during the first this many iterations",
@@ -86,6 +92,8 @@ class FollowupOptions:
         evolution_modes = ("full", "pulsar-frequency", "monochromatic")  # the Literal above
         if self.evolution not in evolution_modes:
             raise InputError(f"--evolution must be one of {', '.join(evolution_modes)}, not {self.evolution!r}")
+        if self.start not in ("scan", "prior"):
+            raise InputError(f"--start must be 'scan' or 'prior', not {self.start!r}")
         if self.strain_prior not in ("log-uniform", "uniform"):
             raise InputError("--strain-prior must be 'log-uniform' or 'uniform'")
         if self.walkers < 18 or self.walkers % 2:

@@ -53,6 +53,7 @@ from pathlib import Path
 import astropy.units as u
 import numpy as np
 from astropy.table import Table
+from astropy_healpix import HEALPix
 
 from ...core.candidates import candidate_row
 from ...core.constants import YEAR_SECONDS
@@ -64,7 +65,7 @@ from ...inference.likelihood import Likelihood
 from ...inference.noisefit import stage_noise_statement
 from ...inference.correlated_likelihood import likelihood_for, other_background, reweighted_log_bayes_factor
 from ...physics import fstat, waveform
-from ...data.healpix_fits import credible_area, posterior_sky_map, write_healpix_map
+from ...data.healpix_fits import credible_area, posterior_sky_map, read_healpix_map, write_healpix_map
 from ...physics.correlated import ArrayNoise
 from ...physics.noise import NoiseSettings
 from ...physics.sky import angular_separation, unit_vectors
@@ -162,7 +163,7 @@ class Prior:
                          "(chirp masses 1e7-1e11 Msun merge first); choose a lower frequency")
 
 
-def initial_positions(prior, target: Target, span, shape, rng):
+def initial_positions(prior, target: Target, span, shape, rng, *, scan_start=None, betas=None):
     """Walkers drawn from the prior, i.e. over the whole search window (the frequency window around
     the target, the whole sky, every strain and orientation), at every temperature.
 
@@ -170,15 +171,93 @@ def initial_positions(prior, target: Target, span, shape, rng):
     lets a short chain look converged while it has not explored the posterior (its spread and its
     autocorrelation time are then underestimated). ``target`` and ``span`` only set the window,
     through ``prior``.
+
+    With ``scan_start`` (:func:`read_scan_start`) and the ladder's inverse temperatures ``betas``, the
+    sky position and frequency of the walkers at inverse temperature β are drawn instead from the scan's
+    Fe sky map and Fe spectrum tempered by β: pixel and frequency bin with probability ∝ exp(β Fe), a
+    uniform point inside the pixel (astropy-healpix offsets) and a log-uniform frequency inside the bin.
+    Fe is the likelihood ratio maximised over the amplitude parameters (Ellis, Siemens & Creighton
+    2012), so this is the tempered profile likelihood: the hot chains start all over the window, the
+    cold chain where the data put the source; strain, orientation and chirp mass still come from the
+    prior. Positions outside the prior (window, cap) are drawn from the prior.
     """
     n = shape[0] * shape[1]
     pos = prior.draw(rng, n)
+    if scan_start is not None and betas is not None:
+        pos = pos.reshape(shape + (8,))
+        for t, beta in enumerate(np.asarray(betas, dtype=float)[:shape[0]]):
+            pos[t, :, :3] = _tempered_sky_and_frequency(scan_start, float(beta), shape[1], prior, rng)
+        pos = pos.reshape(n, 8)
+        outside = ~np.isfinite(prior(pos))
+        if outside.any():
+            pos[outside] = prior.draw(rng, int(outside.sum()))
     for _ in range(20):       # ptemcee cannot start where the likelihood is not finite
         bad = ~np.isfinite(prior.likelihood.batch(pos))
         if not bad.any():
             break
         pos[bad] = prior.draw(rng, int(bad.sum()))
     return pos.reshape(shape + (8,))
+
+
+@dataclass
+class ScanStart:
+    """What the walkers' start takes from a finished scan: the Fe sky map (maximum over frequency; HEALPix
+    RING, ``nside``) and the Fe spectrum (maximum over the sky per frequency)."""
+
+    fe_sky: np.ndarray
+    nside: int
+    frequencies: np.ndarray
+    fe_spectrum: np.ndarray
+
+
+def read_scan_start(run_dir):
+    """:class:`ScanStart` from ``run_dir/scan/`` (``fe_sky.fits`` column FE_MAX, ``spectrum.ecsv``), or None
+    when the scan wrote no sky map (Fp-only scan, no scan) or the files cannot be read."""
+    scan = Path(run_dir) / "scan"
+    sky_file = scan / "fe_sky.fits"
+    # only a finished scan's regular files of a sane size (a FIFO or a device would block the FITS reader)
+    if not ((scan / "scan_summary.json").is_file() and sky_file.is_file() and not sky_file.is_symlink()
+            and sky_file.stat().st_size < 512 * 2**20):
+        return None
+    try:
+        maps, header = read_healpix_map(sky_file)
+        spectrum = Table.read(read_input_text(scan / "spectrum.ecsv", Path(run_dir), what="scan spectrum") + "\n",
+                              format="ascii.ecsv")
+        fe_sky = np.asarray(maps["FE_MAX"], dtype=float)
+        nside = int(header["NSIDE"])
+        frequencies = np.asarray(spectrum["frequency"], dtype=float)
+        fe_spectrum = np.asarray(spectrum["fe_max"], dtype=float)
+    except Exception:   # a damaged map or spectrum: the walkers start from the prior (stated in the summary)
+        return None
+    if fe_sky.size != 12 * nside * nside or not np.isfinite(fe_sky).any() or not np.isfinite(fe_spectrum).any():
+        return None
+    return ScanStart(fe_sky, nside, frequencies, fe_spectrum)
+
+
+def _tempered_sky_and_frequency(start: ScanStart, beta, n, prior, rng):
+    """``n`` rows (ra, sin dec, log10 f) drawn ∝ exp(β Fe) from the scan's sky map and spectrum (within
+    the prior's frequency band; the whole band uniformly if the spectrum has no bin in it)."""
+    out = np.empty((n, 3))
+    weight = np.where(np.isfinite(start.fe_sky), beta * (start.fe_sky - np.nanmax(start.fe_sky)), -np.inf)
+    prob = np.exp(weight)
+    pixels = rng.choice(prob.size, size=n, p=prob / prob.sum())
+    hp = HEALPix(nside=start.nside, order="ring")
+    lon, lat = hp.healpix_to_lonlat(pixels, dx=rng.uniform(size=n), dy=rng.uniform(size=n))
+    out[:, 0] = np.mod(lon.to_value(u.rad), 2 * np.pi)
+    out[:, 1] = np.sin(lat.to_value(u.rad))
+    lo, hi = prior.lower[2], prior.upper[2]
+    logf = np.log10(start.frequencies)
+    inside = np.isfinite(start.fe_spectrum) & (logf >= lo) & (logf <= hi)
+    if inside.sum() < 1:
+        out[:, 2] = rng.uniform(lo, hi, n)
+        return out
+    centres = logf[inside]
+    fe = start.fe_spectrum[inside]
+    prob = np.exp(beta * (fe - fe.max()))
+    k = rng.choice(centres.size, size=n, p=prob / prob.sum())
+    half = 0.5 * np.median(np.diff(centres)) if centres.size > 1 else 0.5 * (hi - lo)
+    out[:, 2] = np.clip(centres[k] + rng.uniform(-half, half, n), lo, np.nextafter(hi, lo))
+    return out
 
 
 # ---------------------------------------------------------------- targets
@@ -369,7 +448,7 @@ def sky_summary(ra_deg, dec_deg, folder=None, nside=SKY_MAP_NSIDE):
     return out
 
 
-def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, other=None):
+def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, other=None, scan_start=None):
 
     span = array.span
     if target.frequency is None:
@@ -391,8 +470,15 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, 
         max_time=float("inf") if options.max_time is None else float(options.max_time),
         checkpoint_every=options.checkpoint_every, adapt_iterations=options.adapt_iterations,
         max_temperatures=options.max_temperatures)
-    initial = initial_positions(prior, target, span, (options.temperatures, options.walkers), rng)
+    ntemps = options.temperatures
+    betas = np.geomspace(1.0, 1.0 / options.max_temperature, ntemps) if ntemps > 1 else np.ones(1)
+    initial = initial_positions(prior, target, span, (options.temperatures, options.walkers), rng,
+                                scan_start=scan_start, betas=betas)
+    start_note = ("sky and frequency from the scan's Fe sky map and spectrum tempered by each chain's "
+                  "temperature (exp(beta Fe)); strain, orientation and chirp mass from the prior"
+                  if scan_start is not None else "walkers drawn from the prior (the whole search window)")
     fingerprint = {"target": [target.frequency, target.ra, target.dec], "band": list(band),
+                   "start": "scan" if scan_start is not None else "prior",
                    "pulsar_term": likelihood.pulsar_term, "evolution": likelihood.evolution,
                    "strain_prior": options.strain_prior, "n_pulsars": len(array), "sky_cap": sky_cap,
                    "phase_grid": likelihood.phase_grid}
@@ -433,7 +519,7 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, 
         "stopping_rule": {"ess": options.ess, "min_chain_taus": settings.min_chain_taus,
                           "tau_tolerance_per_check": settings.tau_tolerance, "tau_checks": settings.tau_checks,
                           "check_every": settings.check_every, "burn_in": "first quarter, at least the adaptation",
-                          "start": "walkers drawn from the prior (the whole search window)"},
+                          "start": start_note},
         "swap_acceptance": [float(x) if np.isfinite(x) else None for x in result.swap_acceptance],
         "swap_pairs": pairs,
         "min_swap_acceptance": settings.min_swap_acceptance,
@@ -515,11 +601,13 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
     other_noise = other_background(noise)
     other = likelihood_for(array, other_noise, **model) if other_noise is not None else None
     seqs = np.random.SeedSequence(seed).spawn(len(targets))
+    scan_start = read_scan_start(run_dir) if options.start == "scan" else None
     stage = run_dir / "followup"
     summaries, folders, runs = [], [], []
     for target, seq in zip(targets, seqs):
         folder = stage if len(targets) == 1 else stage / target.label
-        summary, result, table = _follow_one(likelihood, target, array, folder, options, seq, progress, other)
+        summary, result, table = _follow_one(likelihood, target, array, folder, options, seq, progress, other,
+                                             scan_start=scan_start)
         summary["seed"] = seed
         summary["noise_model"] = {**stage_noise_statement(array, noise), **summary.get("noise_model", {})}
         write_json_atomic(folder / "summary.json", summary)
@@ -546,4 +634,4 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
 
 
 __all__ = ["FollowupOptions", "FollowupResult", "run_followup", "Prior", "select_targets", "posterior_table",
-           "initial_positions", "Target", "OUTPUT_COLUMNS", "SAMPLE_COLUMNS"]
+           "initial_positions", "read_scan_start", "ScanStart", "Target", "OUTPUT_COLUMNS", "SAMPLE_COLUMNS"]
