@@ -530,3 +530,22 @@ def test_weighted_fourier_equals_dense():
         lo, hi = dense.offsets[p], dense.offsets[p + 1]
         want = dense.inv[lo:hi, lo:hi] @ aw.fourier[p]
         np.testing.assert_allclose(got, want, rtol=RTOL, atol=RTOL * np.abs(want).max())
+
+
+def test_large_factorisation_on_every_core_gives_the_same_numbers(monkeypatch):
+    # From THREADED_CHOLESKY_SIZE on, S~ is factorised with threaded BLAS; the numbers must not depend on it
+    # (common practice, no source): log det and (d|d)_C against the one-thread factorisation, 1e-12 relative.
+    from cwsearch.physics import correlated
+    from cwsearch.physics.correlated import ArrayWeighting, CommonProcess
+    from cwsearch.physics.noise import NoiseSettings
+    from cwsearch.physics.simulate import invented_array, simulated_array
+
+    arr = simulated_array(invented_array(n_pulsars=36, years=10, seed=8, toas_per_pulsar=40), seed=9,
+                          background_log10_amplitude=-14.0, background_components=30)
+    common = CommonProcess(-14.0, 13 / 3, 30, "hellings-downs")
+    threaded = ArrayWeighting(arr, NoiseSettings(red_components=30), common)
+    assert 36 * 60 >= correlated.THREADED_CHOLESKY_SIZE
+    monkeypatch.setattr(correlated, "THREADED_CHOLESKY_SIZE", 10**9)
+    single = ArrayWeighting(arr, NoiseSettings(red_components=30), common)
+    np.testing.assert_allclose(threaded.logdet(), single.logdet(), rtol=1e-12)
+    np.testing.assert_allclose(threaded.data_norm(), single.data_norm(), rtol=1e-12)

@@ -31,7 +31,10 @@ EXAMPLE = """\
 DEMO = {
     "noise": {},
     "scan": {"nside": 8, "oversample": 2, "fmax": 1.0e-7, "null_sims": 20},
-    "followup": {"fap_threshold": 0.01, "max_candidates": 1, "ess": 250.0, "temperatures": 8, "walkers": 24},
+    # the follow-up is capped at 10 minutes so that the demo ends in bounded time; a stop at the cap is a
+    # warning on the first screen (run `cwsearch followup` without --max-time for a converged posterior)
+    "followup": {"fap_threshold": 0.01, "max_candidates": 1, "ess": 250.0, "temperatures": 8, "walkers": 24,
+                 "max_time": 600.0},
     "hosts": {},
     # chirp-mass limits for two invented catalogue galaxies (a near one and a farther one)
     "limits": {"nside": 4, "select": ["SIMGAL-01187", "SIMGAL-00009"]},
