@@ -12,15 +12,16 @@ Run the whole job on the bundled INVENTED demo data: 20 pulsars (SIMPSR01..20)
 over 12.5 years with one injected supermassive black-hole binary, and an
 invented galaxy catalogue. Noise model (fitted from the residuals; every
 later stage uses it) -> scan -> follow-up of every candidate below the
-false-alarm threshold -> host ranking -> upper limits -> report.html, in
-a few minutes on a 2-core machine (the README gives the measured times; the
-first run compiles the numba kernels). Prints where the report is and the
-headline.
+false-alarm threshold -> host ranking -> upper limits -> targeted search of
+the catalogue -> report.html, in about 11 minutes on an idle 2-core machine
+(measured 11 min 7 s; the follow-up is capped at 10 minutes, and a stop at
+the cap is a warning in the headline; the first run also compiles the numba
+kernels). Prints where the report is and the headline.
 
 The settings used are written to OUT/run.toml; edit a copy of it and run
 'cwsearch run' to change anything. --quick uses a coarser sky, fewer
-frequencies and a shorter sampler run (same code path, about 25 s on an idle
-2-core machine, measured 22-27 s; the test suite runs it)."""
+frequencies and a shorter sampler run (same code path, about 1 minute on an
+idle 2-core machine, measured 50 s; the test suite runs it)."""
 
 EXAMPLE = """\
   cwsearch demo
