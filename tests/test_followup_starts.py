@@ -40,9 +40,10 @@ def test_two_starts_give_the_same_posterior(tmp_path, loud_array):
     runs = [run_followup(array, tmp_path / f"start{seed}", options, noise=WHITE, seed=seed, progress=False).summary
             for seed in (1, 2)]
     # the comparison means something only with some independent samples per run: the capped chains of this
-    # small test give ~20 (a cap of 3,000 iterations gave no more: the sky posterior of 8 pulsars is broad and
-    # mixes slowly, so its tau grows with the chain), enough to catch a run stuck in another mode
-    assert min(s["effective_sample_size"] for s in runs) >= 15
+    # small test gave 19 and 22 here (a cap of 3,000 iterations gave no more: the sky posterior of 8 pulsars is
+    # broad and mixes slowly, so its tau grows with the chain), enough to catch a run stuck in another mode;
+    # the floor of 10 leaves room for another CPU, whose last-bit differences give other chains
+    assert min(s["effective_sample_size"] for s in runs) >= 10
     for name in ("frequency", "ra", "dec", "strain"):
         medians, errors = [], []
         for s in runs:
