@@ -14,9 +14,9 @@ invented galaxy catalogue. Noise model (fitted from the residuals; every
 later stage uses it) -> scan -> follow-up of every candidate below the
 false-alarm threshold -> host ranking -> upper limits -> targeted search of
 the catalogue -> report.html, in about 11 minutes on an idle 2-core machine
-(measured 11 min 7 s; the follow-up is capped at 10 minutes, and a stop at
-the cap is a warning in the headline; the first run also compiles the numba
-kernels). Prints where the report is and the headline.
+(measured 11 min 7 s; the follow-up is capped at 1,800 iterations, about
+10 minutes, and a stop at the cap is a warning in the headline; the first
+run also compiles the numba kernels). Prints where the report is and the headline.
 
 The settings used are written to OUT/run.toml; edit a copy of it and run
 'cwsearch run' to change anything. --quick uses a coarser sky, fewer
@@ -32,10 +32,11 @@ EXAMPLE = """\
 DEMO = {
     "noise": {},
     "scan": {"nside": 8, "oversample": 2, "fmax": 1.0e-7, "null_sims": 20},
-    # the follow-up is capped at 10 minutes so that the demo ends in bounded time; a stop at the cap is a
-    # warning on the first screen (run `cwsearch followup` without --max-time for a converged posterior)
+    # the follow-up is capped at 1,800 iterations (about 10 minutes on 2 cores) so that the demo ends in
+    # bounded time; an iteration cap rather than a time cap keeps the numbers the same on every machine. A
+    # stop at the cap is a warning on the first screen (rerun `cwsearch followup` without it to converge)
     "followup": {"fap_threshold": 0.01, "max_candidates": 1, "ess": 250.0, "temperatures": 8, "walkers": 24,
-                 "max_time": 600.0},
+                 "max_iterations": 1800},
     "hosts": {},
     # chirp-mass limits for two invented catalogue galaxies (a near one and a farther one)
     "limits": {"nside": 4, "select": ["SIMGAL-01187", "SIMGAL-00009"]},
