@@ -131,6 +131,20 @@ class Prior:
             out[inside] = sub
         return out
 
+    #: sampler indices of ψ and Φ0: the pair the exact symmetry shifts together
+    SYMMETRIC_PAIR = (6, 7)
+
+    def exact_symmetry(self, positions, rng):
+        """Map, in place, a random half of the walkers in ``positions`` (..., dim) by
+        (ψ, Φ0) → (ψ + π/2, Φ0 + π/2) mod π. Both polarisations change sign under ψ → ψ + π/2
+        (the antenna patterns rotate by 2ψ) and again under Φ0 → Φ0 + π/2 (the gravitational-wave
+        phase 2Φ advances by π), Earth and pulsar term alike (the pulsar-term phase follows Φ0, or is
+        marginalised over a whole period), so the signal, and with the uniform priors on [0, π) the
+        posterior, are unchanged (docs/design.md §8). Used by :func:`cwsearch.inference.sampling.run_sampler`."""
+        flip = rng.random(positions.shape[:-1]) < 0.5
+        for j in self.SYMMETRIC_PAIR:
+            positions[..., j] = np.where(flip, (positions[..., j] + 0.5 * np.pi) % np.pi, positions[..., j])
+
     def _in_cap(self, ra, sin_dec):
         ra0, dec0, radius = self.sky_cap
         cos_dec = np.sqrt(np.clip(1.0 - sin_dec**2, 0.0, None))
