@@ -160,7 +160,7 @@ def main(argv=None):
     t_ref = min(reference)
     out["load_average_commands"] = _load()
     split_keys = ("read_seconds", "noise_build_seconds", "kernel_seconds", "trials_seconds",
-                  "candidates_seconds", "write_seconds", "plots_seconds", "seconds")
+                  "candidates_seconds", "goodness_of_fit_seconds", "write_seconds", "plots_seconds", "seconds")
     for label, (seconds, summary) in results.items():
         split = {k: summary.get(k) for k in split_keys}
         out[f"command_{label}_seconds"] = seconds

@@ -570,7 +570,9 @@ def run_scan(array, run_dir, options: ScanOptions = ScanOptions(), *, noise: Noi
     summary = _summary(options, array, noise, frequencies, n_pix, trials, candidates, null_fe, null_fp, want_fe,
                        seed, timings)
     summary["noise_model"] = {**stage_noise_statement(array, noise), **engine.describe()}  # source, values, engine
+    t = time.time()
     summary["goodness_of_fit"] = scan_goodness_of_fit(array, noise)
+    summary["goodness_of_fit_seconds"] = round(time.time() - t, 3)
     if engine.correlated:
         summary["fap_validity"] = (
             "with the correlated common process in the noise model, 2Fe ~ chi2(4) stays exact for one template "
