@@ -5,7 +5,10 @@ bench/_array.py) is written as a dataset folder; then, each in a fresh
 Python process and timed from outside (imports included), in this run:
 
 * ``cwsearch scan DATA --out RUN --fmax F --noise-model dataset
-  --common-log10-amplitude -14.6 --quiet --json`` (nside 16, 500 frequencies), with and without plots;
+  --common-log10-amplitude -14.6 --quiet --json`` (nside 16, 500 frequencies), with and without plots
+  (the Hellings–Downs common process, the default), and without plots with an uncorrelated common
+  process and with the reference's own model (``--no-pulsar-red-noise --common-correlation none``:
+  white noise and timing model only, the like-for-like comparison);
   the ``--json`` summary gives the split (read, noise build, kernel,
   trials, candidates, write, plots);
 * a plain numpy reference: the script one writes in an afternoon to do only
@@ -146,7 +149,13 @@ def main(argv=None):
               "--common-log10-amplitude", str(COMMON_LOG10_AMPLITUDE), "--quiet", "--json"]
     _timed(exe + common + ["--out", str(root / "warm"), "--no-plots"])        # numba cache, file cache
     results = {}
-    for label, extra in (("no_plots", ["--no-plots"]), ("plots", [])):
+    # white: the reference's own model (white noise + timing model: no red noise, no common process), the
+    # like-for-like comparison; uncorrelated: red noise + an uncorrelated common process (the model of the
+    # first version of this benchmark); no_plots / plots: red noise + the Hellings-Downs common process
+    variants = (("white_no_plots", ["--no-plots", "--no-pulsar-red-noise", "--common-correlation", "none"]),
+                ("uncorrelated_no_plots", ["--no-plots", "--common-correlation", "uncorrelated"]),
+                ("no_plots", ["--no-plots"]), ("plots", []))
+    for label, extra in variants:
         best = None
         for i in range(args.repeat):
             seconds, stdout = _timed(exe + common + ["--out", str(root / f"run-{label}-{i}")] + extra)
@@ -170,6 +179,8 @@ def main(argv=None):
               f"(ratio reference/command {t_ref / seconds:.2f}x); in-process split [s]: {parts}")
     out["reference_seconds"] = t_ref
     out["ratio_no_plots"] = t_ref / results["no_plots"][0]
+    out["ratio_white_no_plots"] = t_ref / results["white_no_plots"][0]
+    out["ratio_uncorrelated_no_plots"] = t_ref / results["uncorrelated_no_plots"][0]
     out["ratio_plots"] = t_ref / results["plots"][0]
     print(f"plain numpy white-noise reference: {t_ref:.2f} s; targets: command <= 1.3 s and >= 2.5x the "
           f"reference; load average {out['load_average_commands']} on {os.cpu_count()} CPUs (shared machine)")
