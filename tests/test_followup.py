@@ -59,7 +59,17 @@ def test_loud_injection_outputs(tmp_path, base_array):
     from astropy.table import Table
 
     table = Table.read(folder / "posterior.ecsv", format="ascii.ecsv")
-    assert tuple(table.colnames) == OUTPUT_COLUMNS + SAMPLE_COLUMNS
+    names = [p.name for p in array]
+    assert tuple(table.colnames) == (OUTPUT_COLUMNS + SAMPLE_COLUMNS + tuple(f"distance_{n}" for n in names)
+                                     + tuple(f"pulsar_phase_{n}" for n in names))
+    # marginalise-phase: distances at their catalogue values, pulsar phases drawn in [0, π) (the
+    # waveform's period in the orbital phase, DESIGN §4), every sample from the T = 1 chain
+    for p in array:
+        np.testing.assert_allclose(table[f"distance_{p.name}"], p.distance, rtol=1e-12)
+        phase = np.asarray(table[f"pulsar_phase_{p.name}"])
+        assert np.all((phase >= 0) & (phase < np.pi))
+    assert np.all(table["temperature"] == 0)
+    assert len(table.meta["noise_model_checksum"]) == 64
     assert str(table["ra"].unit) == "deg" and str(table["luminosity_distance"].unit) == "Mpc"
     # derived columns follow the published relations P = 2/f and h0(Mc, f, d_L) (Sesana & Vecchio 2010, Phys. Rev. D 81, 104008)
     np.testing.assert_allclose(table["orbital_period"], 2 / table["frequency"] / (365.25 * 86400), rtol=1e-12)

@@ -482,7 +482,7 @@ class CorrelatedLikelihood(Likelihood):
         """Straightforward ln Λ through :meth:`ArrayWeighting.inner` for one parameter vector
         (coherent pulsar phases from the distances). Tests and benchmarks."""
 
-        par = {k: float(v[0]) for k, v in self.physical(theta).items()}
+        par = {k: float(v[0]) for k, v in self.physical(theta).items() if k != "pulsar_distance"}
         signals = [waveform.residuals(p.toas, p.position, p.distance, reference_time=self.reference_time,
                                       evolution=self.evolution, pulsar_term=self.pulsar_term, **par)
                    for p in self.array]

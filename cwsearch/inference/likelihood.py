@@ -44,6 +44,7 @@ True
 
 from __future__ import annotations
 
+import copy
 from dataclasses import dataclass
 from math import factorial
 
@@ -51,13 +52,17 @@ import numpy as np
 from numba import njit, prange
 from scipy.special import jv
 
-from ..core.constants import SOLAR_MASS_SECONDS
+from ..core.constants import KPC_SECONDS, SOLAR_MASS_SECONDS
 from ..physics import waveform
 from ..physics.noise import NoiseSettings, NoiseWeighting
 
 PARAMETER_NAMES = ("ra", "sin_dec", "log10_frequency", "log10_chirp_mass", "log10_strain",
                    "cos_inclination", "polarization", "phase")
 UNIFORM_STRAIN_NAMES = PARAMETER_NAMES[:4] + ("strain",) + PARAMETER_NAMES[5:]
+#: how the follow-up treats pulsar distances (docs/design.md §7 "Pulsar distances"): each pulsar's
+#: pulsar-term phase marginalised on a grid with the distance at its catalogue value (default), or the
+#: distance sampled with its Gaussian prior and the pulsar-term phase coherent from it
+PULSAR_DISTANCE_MODES = ("marginalise-phase", "sample-distance")
 
 # Series for |u| < 1e-3 (u = κΔt, the fractional chirp): the phase factor
 # g(u) = (1 − (1−u)^(5/8)) / (5u/8) and the envelope (1−u)^(1/8), truncated after u^6
@@ -445,6 +450,94 @@ def _projection_batch(fplus, *args):
     kernel(fplus, *args)
 
 
+@njit(cache=True)
+def _projection_coherent_one(w, fplus, fcross, strain, cos_inclination, psi, phase, pulsar_phase, coherent, dvec,
+                             gmat, n_grid, out):
+    """ln Λ of walker w: pulsars with ``coherent[p]`` at their pulsar-term phase ``pulsar_phase[w, p]``
+    (from the sampled distance), the others with the phase marginalised as in :func:`_projection_one`."""
+    n_p = fplus.shape[1]
+    ci = cos_inclination[w]
+    c2p, s2p = np.cos(2 * psi[w]), np.sin(2 * psi[w])
+    c0, s0 = np.cos(2 * phase[w]), np.sin(2 * phase[w])
+    h = strain[w]
+    total = 0.0
+    for p in range(n_p):
+        fp, fx = fplus[w, p], fcross[w, p]
+        pa = (1 + ci * ci) * (fp * c2p + fx * s2p)
+        qa = 2 * ci * (fp * s2p - fx * c2p)
+        e1 = h * (pa * c0 - qa * s0)
+        e2 = h * (pa * s0 + qa * c0)
+        g = gmat[w, p]
+        dv = dvec[w, p]
+        earth = e1 * dv[0] + e2 * dv[1] - 0.5 * (e1 * e1 * g[0, 0] + 2 * e1 * e2 * g[0, 1] + e2 * e2 * g[1, 1])
+        if coherent[p]:
+            cp, sp = np.cos(2 * pulsar_phase[w, p]), np.sin(2 * pulsar_phase[w, p])
+            p1 = -h * (pa * cp - qa * sp)
+            p2 = -h * (pa * sp + qa * cp)
+            total += (earth + p1 * dv[2] + p2 * dv[3]
+                      - (e1 * p1 * g[0, 2] + e1 * p2 * g[0, 3] + e2 * p1 * g[1, 2] + e2 * p2 * g[1, 3])
+                      - 0.5 * (p1 * p1 * g[2, 2] + 2 * p1 * p2 * g[2, 3] + p2 * p2 * g[3, 3]))
+            continue
+        amp = h * np.sqrt(pa * pa + qa * qa)
+        v3 = e1 * g[0, 2] + e2 * g[1, 2]
+        v4 = e1 * g[0, 3] + e2 * g[1, 3]
+        a = amp * (v3 - dv[2])
+        b = amp * (v4 - dv[3])
+        c = -0.25 * amp * amp * (g[2, 2] - g[3, 3])
+        d = -0.5 * amp * amp * g[2, 3]
+        e = earth - 0.25 * amp * amp * (g[2, 2] + g[3, 3])
+        total += marginal_log_factor(a, b, c, d, e, n_grid)
+    out[w] = total
+
+
+@njit(cache=True, parallel=True)
+def _projection_coherent_parallel(fplus, fcross, strain, cos_inclination, psi, phase, pulsar_phase, coherent, dvec,
+                                  gmat, n_grid, out):
+    for w in prange(fplus.shape[0]):
+        _projection_coherent_one(w, fplus, fcross, strain, cos_inclination, psi, phase, pulsar_phase, coherent,
+                                 dvec, gmat, n_grid, out)
+
+
+@njit(cache=True)
+def _projection_coherent_serial(fplus, fcross, strain, cos_inclination, psi, phase, pulsar_phase, coherent, dvec,
+                                gmat, n_grid, out):
+    for w in range(fplus.shape[0]):
+        _projection_coherent_one(w, fplus, fcross, strain, cos_inclination, psi, phase, pulsar_phase, coherent,
+                                 dvec, gmat, n_grid, out)
+
+
+def free_pulsar_phases(distance_errors, omega_dot_p, gw_frequency):
+    """The pulsars whose pulsar-term phase is free (uniform) even when distances are sampled
+    (docs/design.md §7 "Pulsar distances"): ``σ_L (1 + Ω̂·p̂) > λ_gw = c / f``.
+
+    ``distance_errors`` [kpc] (P,), ``omega_dot_p`` (P,) or scalar, ``gw_frequency`` [Hz]. Then the
+    Gaussian distance prior spreads the pulsar term's GW phase ``2π f L (1+Ω̂·p̂)/c`` with a standard
+    deviation of at least 2π, and the wrapped phase distribution differs from uniform by at most
+    ``2 e^(−2π²) ≈ 5e-9`` (its first Fourier coefficient is ``e^(−σ²/2)``).
+
+    >>> free_pulsar_phases(np.array([0.1, 1e-6]), 0.0, 1e-8).tolist()      # 0.1 kpc ≫ λ ≈ 1 pc
+    [True, False]
+    """
+    spread = np.asarray(distance_errors, dtype=float) * KPC_SECONDS * (1.0 + np.asarray(omega_dot_p, dtype=float))
+    return spread > 1.0 / float(gw_frequency)
+
+
+def coherent_phase_offsets(gw_frequency, chirp_mass, delay, chirping=True):
+    """Pulsar-term orbital phase at the reference time minus Φ0 [rad], ``Φ(t0 − delay) − Φ0`` of the
+    leading-order chirp (docs/design.md §4), for arrays ``gw_frequency`` [Hz] (W,), ``chirp_mass``
+    [Msun] (W,) and ``delay = L (1 + Ω̂·p̂)/c`` [s] (W, P); ``−ω0 delay`` without evolution.
+    The vectorised form of :func:`cwsearch.physics.waveform.residual_basis`'s offset."""
+    omega0 = np.pi * np.asarray(gw_frequency, dtype=float)[:, None]
+    m53 = (np.asarray(chirp_mass, dtype=float) * SOLAR_MASS_SECONDS)[:, None] ** (5 / 3)
+    delay = np.asarray(delay, dtype=float)
+    if not chirping:
+        return -omega0 * delay
+    kd = 256.0 / 5.0 * m53 * omega0 ** (8 / 3) * delay
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = -omega0 ** (-5 / 3) * np.expm1(0.625 * np.log1p(kd)) / (32.0 * m53)
+    return np.where(m53 > 0, out, -omega0 * delay)
+
+
 # ---------------------------------------------------------------- interpolation nodes
 #: node counts of the interpolated shape path (Chebyshev points on the array's span)
 NODE_LEVELS = (16, 24, 32, 48, 64, 96, 128, 192, 256, 384, 512)
@@ -535,6 +628,10 @@ class Likelihood:
     Pulsar distances are held at their catalogue values; with the pulsar
     phases free they only set the pulsar-term frequency and amplitude in the
     evolving modes, which the ~10 % distance errors change little.
+    :meth:`with_sampled_distances` gives the same likelihood with some
+    pulsars' distances as extra sampler coordinates ``distance_NAME`` [kpc]
+    and their pulsar-term phases coherent from them (docs/design.md §7
+    "Pulsar distances").
     """
 
     def __init__(self, array, noise=None, *, pulsar_term=True, evolution="full", phase_grid=0,
@@ -554,6 +651,9 @@ class Likelihood:
         self.reference_time = array.reference_time
         self.positions = array.positions
         self.pulsar_distances = np.array([p.distance for p in array])
+        self.pulsar_distance_errors = np.array([p.distance_err for p in array])
+        #: indices of the pulsars whose distance is a sampler coordinate (none: every phase marginalised)
+        self.sampled_distances = np.zeros(0, dtype=int)
         self.light_times = array.light_travel_times
         self.last_offset = array.end - array.reference_time
         self._dt, self._inv_var, self._weighted_data, self._operator = [], [], [], []
@@ -624,9 +724,10 @@ class Likelihood:
         return out
 
     # -------------------------------------------------------------- fast batched path
-    def shape_batch(self, ra, dec, gw_frequency, chirp_mass):
+    def shape_batch(self, ra, dec, gw_frequency, chirp_mass, light_times=None):
         """Antenna patterns (W, P) and basis products ``dvec`` (W, P, 4), ``gmat`` (W, P, 4, 4)
-        for W shapes at once (the numba/BLAS fast path; see ``shape_path``)."""
+        for W shapes at once (the numba/BLAS fast path; see ``shape_path``); ``light_times``
+        (W, P) [s] replaces the catalogue distances' light-travel times."""
         ra, dec, f, mc = (np.atleast_1d(np.asarray(x, dtype=float)) for x in (ra, dec, gw_frequency, chirp_mass))
         n_w = ra.shape[0]
         fplus, fcross, odp = waveform.antenna_pattern(ra, dec, self.positions)
@@ -635,7 +736,7 @@ class Likelihood:
         kappa = 256.0 / 5.0 * mct ** (5 / 3) * omega0 ** (8 / 3)
         if self.evolution == "monochromatic":
             kappa = np.zeros_like(kappa)
-        delay = self.light_times[None, :] * (1.0 + odp)
+        delay = (self.light_times[None, :] if light_times is None else light_times) * (1.0 + odp)
         x_p0 = 1.0 + kappa[:, None] * delay
         omega_p = omega0[:, None] * x_p0 ** (-3 / 8)
         amp0 = 1.0 / (2.0 * omega0)
@@ -742,16 +843,92 @@ class Likelihood:
             gmat[:, p] = g
 
     def physical(self, theta):
-        """Sampler coordinates (W, 8) -> dict of physical arrays (rad, Hz, Msun, strain)."""
+        """Sampler coordinates (W, 8 [+ sampled distances]) -> dict of physical arrays (rad, Hz, Msun,
+        strain; ``pulsar_distance`` (W, P) [kpc]: the sampled ones, the catalogue value elsewhere)."""
         theta = np.atleast_2d(theta)
         strain = theta[:, 4] if self.uniform_strain else 10.0 ** theta[:, 4]
+        distance = np.repeat(self.pulsar_distances[None, :], theta.shape[0], axis=0)
+        if self.sampled_distances.size:
+            distance[:, self.sampled_distances] = theta[:, 8:8 + self.sampled_distances.size]
         return {"ra": theta[:, 0], "dec": np.arcsin(np.clip(theta[:, 1], -1, 1)),
                 "gw_frequency": 10.0 ** theta[:, 2], "chirp_mass": 10.0 ** theta[:, 3], "strain": strain,
                 "inclination": np.arccos(np.clip(theta[:, 5], -1, 1)), "polarization": theta[:, 6],
-                "phase": theta[:, 7]}
+                "phase": theta[:, 7], "pulsar_distance": distance}
+
+    # -------------------------------------------------------------- pulsar distances
+    @property
+    def pulsar_distance_mode(self):
+        return "sample-distance" if self.sampled_distances.size else "marginalise-phase"
+
+    def with_sampled_distances(self, sampled):
+        """A copy (sharing the noise engine and caches) in which the pulsars of the boolean mask
+        ``sampled`` (P,) have their distance as a sampler coordinate ``distance_NAME`` [kpc] after the
+        8 global ones, and a pulsar-term phase coherent from it; the others keep the catalogue
+        distance and a marginalised phase. Needs the pulsar term."""
+        idx = np.flatnonzero(np.asarray(sampled, dtype=bool))
+        if idx.size and not self.pulsar_term:
+            raise ValueError("sampled pulsar distances need the pulsar term")
+        like = copy.copy(self)
+        like.sampled_distances = idx
+        base = UNIFORM_STRAIN_NAMES if self.uniform_strain else PARAMETER_NAMES
+        like.names = base + tuple(f"distance_{self.array[int(p)].name}" for p in idx)
+        return like
+
+    def pulsar_phases(self, theta, par=None, products=None):
+        """Coherent pulsar-term orbital phases Φ(t0 − L(1+Ω̂·p̂)) [rad] (W, P) of ``theta`` from the
+        distances of :meth:`physical` (the model's value where a pulsar's distance is sampled)."""
+        par = self.physical(theta) if par is None else par
+        _, _, odp = waveform.antenna_pattern(par["ra"], par["dec"], self.positions)
+        delay = par["pulsar_distance"] * KPC_SECONDS * (1.0 + odp)
+        offsets = coherent_phase_offsets(par["gw_frequency"], par["chirp_mass"], delay,
+                                         chirping=self.evolution != "monochromatic")
+        return par["phase"][:, None] + offsets
+
+    def draw_pulsar_phases(self, theta, rng, grid=256):
+        """Pulsar-term orbital phases (W, P) [rad, in [0, π)] for posterior samples ``theta``: where
+        the phase is marginalised, one draw per sample from its conditional posterior given the
+        sample's other parameters, ``∝ exp ln Λ_p(Φ_p)`` on a ``grid``-point periodic grid over
+        [0, π) with a uniform offset inside the drawn cell; where the distance is sampled, the
+        coherent value. NaN without the pulsar term. ``rng``: a numpy Generator (seeded)."""
+        theta = np.atleast_2d(theta)
+        n_w = theta.shape[0]
+        if not self.pulsar_term:
+            return np.full((n_w, self.n_pulsars), np.nan)
+        par = self.physical(theta)
+        extra = {"light_times": par["pulsar_distance"] * KPC_SECONDS} if self.sampled_distances.size else {}
+        fplus, fcross, dvec, gmat = self.shape_batch(par["ra"], par["dec"], par["gw_frequency"], par["chirp_mass"],
+                                                     **extra)
+        ci = np.cos(par["inclination"])[:, None]
+        c2p, s2p = np.cos(2 * par["polarization"])[:, None], np.sin(2 * par["polarization"])[:, None]
+        c0, s0 = np.cos(2 * par["phase"])[:, None], np.sin(2 * par["phase"])[:, None]
+        h = par["strain"][:, None]
+        pa = (1 + ci**2) * (fplus * c2p + fcross * s2p)
+        qa = 2 * ci * (fplus * s2p - fcross * c2p)
+        e1, e2 = h * (pa * c0 - qa * s0), h * (pa * s0 + qa * c0)          # (W, P)
+        cells = (np.arange(grid) + 0.5) * (np.pi / grid)
+        cg, sg = np.cos(2 * cells), np.sin(2 * cells)
+        out = np.empty((n_w, self.n_pulsars))
+        for p in range(self.n_pulsars):
+            g, dv = gmat[:, p], dvec[:, p]
+            p1 = -h[:, :1] * (pa[:, p:p + 1] * cg - qa[:, p:p + 1] * sg)       # (W, grid)
+            p2 = -h[:, :1] * (pa[:, p:p + 1] * sg + qa[:, p:p + 1] * cg)
+            a1, a2 = e1[:, p:p + 1], e2[:, p:p + 1]
+            logl = (p1 * dv[:, 2:3] + p2 * dv[:, 3:4]
+                    - (a1 * p1 * g[:, 0, 2:3] + a1 * p2 * g[:, 0, 3:4] + a2 * p1 * g[:, 1, 2:3] + a2 * p2 * g[:, 1, 3:4])
+                    - 0.5 * (p1 * p1 * g[:, 2, 2:3] + 2 * p1 * p2 * g[:, 2, 3:4] + p2 * p2 * g[:, 3, 3:4]))
+            weights = np.exp(logl - logl.max(axis=1, keepdims=True))
+            cdf = np.cumsum(weights, axis=1)
+            pick = np.minimum((cdf < rng.uniform(size=(n_w, 1)) * cdf[:, -1:]).sum(axis=1), grid - 1)
+            out[:, p] = cells[pick] + (rng.uniform(size=n_w) - 0.5) * (np.pi / grid)
+        if self.sampled_distances.size:
+            out[:, self.sampled_distances] = self.pulsar_phases(theta, par)[:, self.sampled_distances]
+        return np.remainder(out, np.pi)
 
     def batch(self, theta):
-        """ln Λ for sampler coordinates ``theta`` (W, 8) — every shape parameter may differ."""
+        """ln Λ for sampler coordinates ``theta`` (W, 8 [+ sampled distances]) — every shape parameter may
+        differ."""
+        if self.sampled_distances.size:
+            return self._batch_sampled_distances(theta)
         par = self.physical(theta)
         fplus, fcross, dvec, gmat = self.shape_batch(par["ra"], par["dec"], par["gw_frequency"], par["chirp_mass"])
         out = np.empty(fplus.shape[0])
@@ -759,6 +936,19 @@ class Likelihood:
                           np.ascontiguousarray(np.atleast_2d(theta)[:, 5]),
                           np.ascontiguousarray(par["polarization"]), np.ascontiguousarray(par["phase"]),
                           dvec, gmat, self.pulsar_term, self.phase_grid, out)
+        return out
+
+    def _batch_sampled_distances(self, theta):
+        par = self.physical(theta)
+        fplus, fcross, dvec, gmat = self.shape_batch(par["ra"], par["dec"], par["gw_frequency"], par["chirp_mass"],
+                                                     light_times=par["pulsar_distance"] * KPC_SECONDS)
+        coherent = np.zeros(self.n_pulsars, dtype=np.bool_)
+        coherent[self.sampled_distances] = True
+        out = np.empty(fplus.shape[0])
+        kernel = _projection_coherent_parallel if fplus.size >= _PARALLEL_PROJECTIONS else _projection_coherent_serial
+        kernel(fplus, fcross, np.ascontiguousarray(par["strain"]), np.ascontiguousarray(np.atleast_2d(theta)[:, 5]),
+               np.ascontiguousarray(par["polarization"]), np.ascontiguousarray(par["phase"]),
+               np.ascontiguousarray(self.pulsar_phases(theta, par)), coherent, dvec, gmat, self.phase_grid, out)
         return out
 
     def merges_within_data(self, gw_frequency, chirp_mass):
@@ -771,16 +961,19 @@ class Likelihood:
         """Straightforward ln Λ (rebuilds every residual with :func:`waveform.residuals`
         and weights it through the noise engine) for one parameter vector; pulsar
         phases are then coherent (from the distances). Used by tests and benchmarks."""
-        par = {k: float(v[0]) for k, v in self.physical(theta).items()}
-        signals = [waveform.residuals(p.toas, p.position, p.distance, reference_time=self.reference_time,
+        physical = self.physical(theta)
+        distances = physical.pop("pulsar_distance")[0]
+        par = {k: float(v[0]) for k, v in physical.items()}
+        signals = [waveform.residuals(p.toas, p.position, float(d), reference_time=self.reference_time,
                                       evolution=self.evolution, pulsar_term=self.pulsar_term, **par)
-                   for p in self.array]
+                   for p, d in zip(self.array, distances)]
         ds, ss = self.engine.data_inner(signals)
         return ds - 0.5 * ss
 
 
 __all__ = [
-    "PARAMETER_NAMES", "UNIFORM_STRAIN_NAMES", "sincos", "marginal_log_factor", "NODE_LEVELS",
+    "PARAMETER_NAMES", "UNIFORM_STRAIN_NAMES", "PULSAR_DISTANCE_MODES", "free_pulsar_phases",
+    "coherent_phase_offsets", "sincos", "marginal_log_factor", "NODE_LEVELS",
     "NODE_TOLERANCE", "chebyshev_points", "interpolation_matrix", "largest_bandwidth", "ShapeCache",
     "Likelihood",
 ]

@@ -71,6 +71,12 @@ class FollowupOptions:
                                         "(--all-sky)", metavar="HZ", group=_TARGET)
     strain_prior: Literal["log-uniform", "uniform"] = option(
         "log-uniform", "strain prior: log-uniform for detection, uniform for upper limits", group=_MODEL)
+    pulsar_distances: Literal["marginalise-phase", "sample-distance"] = option(
+        "marginalise-phase", "pulsar distances: 'marginalise-phase' holds each distance at its catalogue value and "
+                             "marginalises the pulsar-term phase; 'sample-distance' samples each distance with a "
+                             "Gaussian prior (distance, distance_err; > 0) and makes the phase coherent from it, "
+                             "except for pulsars with distance_err x (1 + Omega.p) > one GW wavelength, whose phase "
+                             "stays free (listed in summary.json)", group=_MODEL)
     phase_grid: int = option(0, "points of the pulsar-phase marginalisation grid (0: chosen per pulsar, error "
                                 "< 1e-13)", metavar="K", group=_MODEL)
     start: Literal["scan", "prior"] = option(
@@ -94,6 +100,11 @@ class FollowupOptions:
             raise InputError(f"--evolution must be one of {', '.join(evolution_modes)}, not {self.evolution!r}")
         if self.start not in ("scan", "prior"):
             raise InputError(f"--start must be 'scan' or 'prior', not {self.start!r}")
+        if self.pulsar_distances not in ("marginalise-phase", "sample-distance"):
+            raise InputError(f"--pulsar-distances must be 'marginalise-phase' or 'sample-distance', not "
+                             f"{self.pulsar_distances!r}")
+        if self.pulsar_distances == "sample-distance" and self.earth_term_only:
+            raise InputError("--pulsar-distances sample-distance needs the pulsar term (drop --earth-term-only)")
         if self.strain_prior not in ("log-uniform", "uniform"):
             raise InputError("--strain-prior must be 'log-uniform' or 'uniform'")
         if self.walkers < 18 or self.walkers % 2:

@@ -44,6 +44,8 @@ Examples
 
 from __future__ import annotations
 
+import hashlib
+import json
 import math
 import os
 import time
@@ -54,6 +56,7 @@ import astropy.units as u
 import numpy as np
 from astropy.table import Table
 from astropy_healpix import HEALPix
+from scipy.special import log_ndtr
 
 from ...core.candidates import candidate_row
 from ...core.constants import YEAR_SECONDS
@@ -61,7 +64,7 @@ from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...core.safeio import read_input_text, require_finished
 from ...inference import sampling
-from ...inference.likelihood import Likelihood
+from ...inference.likelihood import Likelihood, free_pulsar_phases
 from ...inference.noisefit import stage_noise_statement
 from ...inference.correlated_likelihood import likelihood_for, other_background, reweighted_log_bayes_factor
 from ...physics import fstat, waveform
@@ -76,7 +79,7 @@ CHIRP_MASS_RANGE = (1e7, 1e11)
 OUTPUT_COLUMNS = ("ra", "dec", "frequency", "chirp_mass", "strain", "inclination", "polarization", "phase",
                   "luminosity_distance", "orbital_period")
 #: per-sample bookkeeping columns of ``posterior.ecsv`` after :data:`OUTPUT_COLUMNS`
-SAMPLE_COLUMNS = ("log_likelihood", "log_prior", "iteration", "walker")
+SAMPLE_COLUMNS = ("log_likelihood", "log_prior", "iteration", "walker", "temperature")
 
 
 @dataclass
@@ -118,12 +121,24 @@ class Prior:
         self.upper = np.array([2 * np.pi, 1.0, log10_frequency_range[1], np.log10(CHIRP_MASS_RANGE[1]), strain[1],
                                1.0, np.pi, np.pi])
 
+        # sampled pulsar distances [kpc] (docs/design.md §7 "Pulsar distances"): Gaussian, truncated at > 0
+        sampled = getattr(likelihood, "sampled_distances", np.zeros(0, dtype=int))
+        self.distance_mean = np.asarray(likelihood.pulsar_distances, dtype=float)[sampled] if sampled.size else \
+            np.zeros(0)
+        self.distance_sigma = np.asarray(likelihood.pulsar_distance_errors, dtype=float)[sampled] if sampled.size \
+            else np.zeros(0)
+        self.dim = 8 + self.distance_mean.size
+
     def __call__(self, theta):
         theta = np.atleast_2d(theta)
-        inside = np.all((theta >= self.lower) & (theta < self.upper), axis=1)
+        base = theta[:, :8]
+        inside = np.all((base >= self.lower) & (base < self.upper), axis=1)
         if self.sky_cap is not None:
             inside &= self._in_cap(theta[:, 0], theta[:, 1])
         out = np.where(inside, 0.0, -np.inf)
+        if self.dim > 8:
+            out = out + self._distance_log_prior(theta[:, 8:])
+            inside &= np.isfinite(out)
         if inside.any():
             merge = self.likelihood.merges_within_data(10.0 ** theta[inside, 2], 10.0 ** theta[inside, 3])
             sub = out[inside]
@@ -145,6 +160,13 @@ class Prior:
         for j in self.SYMMETRIC_PAIR:
             positions[..., j] = np.where(flip, (positions[..., j] + 0.5 * np.pi) % np.pi, positions[..., j])
 
+    def _distance_log_prior(self, distance):
+        """Σ_p ln N(L_p; distance, distance_err) truncated at L > 0 (normalised: minus ln Φ(μ/σ))."""
+        z = (distance - self.distance_mean) / self.distance_sigma
+        logp = -0.5 * z**2 - np.log(self.distance_sigma * math.sqrt(2 * math.pi)) - log_ndtr(
+            self.distance_mean / self.distance_sigma)
+        return np.where(np.all(distance > 0, axis=1), logp.sum(axis=1), -np.inf)
+
     def _in_cap(self, ra, sin_dec):
         ra0, dec0, radius = self.sky_cap
         cos_dec = np.sqrt(np.clip(1.0 - sin_dec**2, 0.0, None))
@@ -164,10 +186,13 @@ class Prior:
         return np.remainder(ra, 2 * np.pi), sin_dec
 
     def draw(self, rng, size):
-        """Draws from the prior (rejecting merging binaries), shape (size, 8)."""
-        out = np.empty((0, 8))
+        """Draws from the prior (rejecting merging binaries), shape (size, 8 + sampled distances)."""
+        out = np.empty((0, self.dim))
         for _ in range(200):
-            x = rng.uniform(self.lower, self.upper, (2 * size, 8))
+            x = np.empty((2 * size, self.dim))
+            x[:, :8] = rng.uniform(self.lower, self.upper, (2 * size, 8))
+            if self.dim > 8:
+                x[:, 8:] = rng.normal(self.distance_mean, self.distance_sigma, (2 * size, self.dim - 8))
             if self.sky_cap is not None:
                 x[:, 0], x[:, 1] = self._draw_cap(rng, 2 * size)
             out = np.vstack([out, x[np.isfinite(self(x))]])
@@ -197,11 +222,12 @@ def initial_positions(prior, target: Target, span, shape, rng, *, scan_start=Non
     """
     n = shape[0] * shape[1]
     pos = prior.draw(rng, n)
+    dim = pos.shape[1]
     if scan_start is not None and betas is not None:
-        pos = pos.reshape(shape + (8,))
+        pos = pos.reshape(shape + (dim,))
         for t, beta in enumerate(np.asarray(betas, dtype=float)[:shape[0]]):
             pos[t, :, :3] = _tempered_sky_and_frequency(scan_start, float(beta), shape[1], prior, rng)
-        pos = pos.reshape(n, 8)
+        pos = pos.reshape(n, dim)
         outside = ~np.isfinite(prior(pos))
         if outside.any():
             pos[outside] = prior.draw(rng, int(outside.sum()))
@@ -210,7 +236,7 @@ def initial_positions(prior, target: Target, span, shape, rng, *, scan_start=Non
         if not bad.any():
             break
         pos[bad] = prior.draw(rng, int(bad.sum()))
-    return pos.reshape(shape + (8,))
+    return pos.reshape(shape + (dim,))
 
 
 @dataclass
@@ -390,13 +416,16 @@ def posterior_table(likelihood, samples):
 
 def _with_sample_columns(table, details, result, tau):
     """``table`` plus the per-sample T=1 log-likelihood, log-prior (as the sampler saw it: 0 inside the
-    support, the priors being uniform in the sampler coordinates), 0-based chain iteration and walker
-    index; τ, ESS and the burn-in go into the table's metadata."""
+    support, the priors being uniform in the sampler coordinates, plus the sampled distances' Gaussian
+    log density), 0-based chain iteration, walker and temperature index (0: every posterior sample is
+    from the T = 1 chain); τ, ESS and the burn-in go into the table's metadata."""
     out = table.copy(copy_data=False)
     out["log_likelihood"] = details["log_likelihood"]
     out["log_prior"] = details["log_prior"]
     out["iteration"] = details["iteration"].astype(np.int64)
     out["walker"] = details["walker"].astype(np.int64)
+    out["temperature"] = np.zeros(len(out), dtype=np.int64)    # every sample is from the T = 1 chain
+    out.meta["temperature_index"] = "0 = the cold (T = 1) chain of the ladder, the only one the posterior uses"
     out.meta.update({"autocorrelation_time": tau, "effective_sample_size": float(result.ess),
                      "burn_in": int(result.burn_in), "iterations": int(result.iterations),
                      "thinning": int(np.max(np.diff(np.unique(details["iteration"])), initial=1)),
@@ -462,7 +491,77 @@ def sky_summary(ra_deg, dec_deg, folder=None, nside=SKY_MAP_NSIDE):
     return out
 
 
-def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, other=None, scan_start=None):
+def noise_model_checksum(statement) -> str:
+    """SHA-256 (hex) of a noise-model statement's canonical JSON (sorted keys, NaN as null)."""
+    text = json.dumps(statement, sort_keys=True, separators=(",", ":"), default=str, allow_nan=True)
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def _sampled_distance_likelihood(likelihood, array, target, band, options):
+    """``--pulsar-distances sample-distance``: the likelihood with every pulsar's distance sampled except
+    those whose pulsar-term phase stays free by :func:`cwsearch.inference.likelihood.free_pulsar_phases`
+    (σ_L (1 + Ω̂·p̂) > λ_gw at the band's highest frequency; Ω̂ at the target's position, or the
+    all-sky mean of 1 + Ω̂·p̂, which is 1, without one), and the statement for summary.json."""
+    f_top = 10.0 ** band[1]
+    if target.ra is not None:
+        _, _, odp = waveform.antenna_pattern(target.ra, target.dec, array.positions)
+        odp = np.asarray(odp, dtype=float).reshape(-1)
+        where = "at the target's position"
+    else:
+        odp = np.zeros(len(array))
+        where = "sky-averaged (1 + Omega.p has mean 1 over the sky)"
+    free = free_pulsar_phases(likelihood.pulsar_distance_errors, odp, f_top)
+    sampled = ~free
+    like = likelihood.with_sampled_distances(sampled)
+    dim = 8 + int(sampled.sum())
+    if options.walkers < 2 * dim + 2:
+        raise InputError(f"--walkers must be at least {2 * dim + 2} with {dim - 8} sampled pulsar distances "
+                         f"(ptemcee needs more than 2 x {dim} parameters); raise --walkers")
+    names = [p.name for p in array]
+    statement = {
+        "mode": "sample-distance",
+        "sampled": [names[i] for i in np.flatnonzero(sampled)],
+        "free_phase": [names[i] for i in np.flatnonzero(free)],
+        "rule": (f"a pulsar's pulsar-term phase is free (uniform, marginalised) when distance_err x (1 + Omega.p) > "
+                 f"lambda_gw = c / f, with f = {f_top:.4g} Hz (the band's top) and Omega.p {where}: the Gaussian "
+                 "distance prior then spreads the pulsar-term GW phase by >= 2 pi and its wrapped distribution is "
+                 "uniform to 5e-9; every other pulsar's distance is sampled (Gaussian prior distance +- distance_err, "
+                 "truncated at > 0) and its phase is coherent from it"),
+    }
+    return like, statement
+
+
+def _with_pulsar_columns(table, likelihood, samples, rng):
+    """``table`` plus, per pulsar NAME, ``distance_NAME`` [kpc] (sampled, or the catalogue value) and
+    ``pulsar_phase_NAME`` [rad] (coherent from the sampled distance, or drawn from its conditional
+    posterior: :meth:`cwsearch.inference.likelihood.Likelihood.draw_pulsar_phases`)."""
+    out = table.copy(copy_data=False)
+    par = likelihood.physical(samples)
+    names = [p.name for p in likelihood.array]
+    phases = likelihood.draw_pulsar_phases(samples, rng) if len(samples) else np.zeros((0, len(names)))
+    sampled = set(int(p) for p in likelihood.sampled_distances)
+    for p, name in enumerate(names):
+        out[f"distance_{name}"] = par["pulsar_distance"][:, p] * u.kpc
+    for p, name in enumerate(names):
+        out[f"pulsar_phase_{name}"] = phases[:, p] * u.rad
+    correlated = getattr(getattr(likelihood, "noise_model", None), "correlated", False)
+    out.meta["pulsar_columns"] = {
+        "distance_NAME": "sampled (Gaussian prior, truncated > 0)" if sampled else "catalogue value (held fixed)",
+        "sampled_distances": [names[p] for p in sorted(sampled)],
+        "pulsar_phase_NAME": (
+            "none: Earth term only (NaN)" if not likelihood.pulsar_term else
+            "orbital phase of the pulsar term at the reference time, in [0, pi) (the waveform has period pi); "
+            "for a sampled distance the coherent value Phi(t0 - L(1 + Omega.p)/c); otherwise one draw per sample "
+            "from the phase's conditional posterior given the sample's other parameters, on a 256-point grid "
+            "with a uniform offset inside the drawn cell (seeded from the run's seed)"
+            + ("; with the correlated background each pulsar's own term only (the cross-pulsar pulsar-term "
+               "coupling of the mean field left out)" if correlated else "")),
+    }
+    return out
+
+
+def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, other=None, scan_start=None,
+                noise_statement=None):
 
     span = array.span
     if target.frequency is None:
@@ -475,6 +574,9 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, 
     sky_cap = None
     if getattr(options, "sky_radius", None) is not None and target.ra is not None:
         sky_cap = (float(target.ra), float(target.dec), math.radians(float(options.sky_radius)))
+    distances = None
+    if getattr(options, "pulsar_distances", "marginalise-phase") == "sample-distance":
+        likelihood, distances = _sampled_distance_likelihood(likelihood, array, target, band, options)
     prior = Prior(likelihood, band, uniform_strain=options.strain_prior == "uniform", sky_cap=sky_cap)
     init_seq, sampler_seq = seed_seq.spawn(2)
     rng = np.random.default_rng(init_seq)
@@ -492,6 +594,8 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, 
                   "temperature (exp(beta Fe)); strain, orientation and chirp mass from the prior"
                   if scan_start is not None else "walkers drawn from the prior (the whole search window)")
     fingerprint = {"target": [target.frequency, target.ra, target.dec], "band": list(band),
+                   "pulsar_distances": likelihood.pulsar_distance_mode,
+                   "sampled_distances": [int(p) for p in likelihood.sampled_distances],
                    "start": "scan" if scan_start is not None else "prior",
                    "pulsar_term": likelihood.pulsar_term, "evolution": likelihood.evolution,
                    "strain_prior": options.strain_prior, "n_pulsars": len(array), "sky_cap": sky_cap,
@@ -504,7 +608,16 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, 
     table = posterior_table(likelihood, samples)
     names = list(likelihood.names)
     tau = dict(zip(names, map(float, result.autocorrelation_time)))
-    write_table_atomic(folder / "posterior.ecsv", _with_sample_columns(table, details, result, tau))
+    phase_seq = np.random.SeedSequence(seed_seq.entropy, spawn_key=tuple(seed_seq.spawn_key) + (7,))
+    posterior_file = _with_pulsar_columns(_with_sample_columns(table, details, result, tau), likelihood, samples,
+                                          np.random.default_rng(phase_seq))
+    model_obj = getattr(likelihood, "noise_model", None)
+    statement = {**(stage_noise_statement(array, None) if noise_statement is None else noise_statement),
+                 **(model_obj.describe() if model_obj is not None else {})}
+    posterior_file.meta["noise_model_checksum"] = noise_model_checksum(statement)
+    posterior_file.meta["noise_model_checksum_of"] = ("SHA-256 of the canonical JSON (sorted keys) of summary.json's "
+                                                      "noise_model entry")
+    write_table_atomic(folder / "posterior.ecsv", posterior_file)
     pairs = [[float(1 / a), float(1 / b)] for a, b in zip(result.betas[:-1], result.betas[1:])]
     comparison = _background_comparison(likelihood, other, result, details, samples, progress)
     summary = {
@@ -544,7 +657,8 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, 
         "likelihood_evaluations": result.evaluations,
         "wall_time": result.wall_time,
         "model": {"pulsar_term": likelihood.pulsar_term, "pulsar_phases": "marginalised" if likelihood.pulsar_term
-                  else "none", "pulsar_distances": "catalogue values", "evolution": likelihood.evolution,
+                  else "none", "pulsar_distances": "catalogue values" if distances is None else distances,
+                  "evolution": likelihood.evolution,
                   "strain_prior": options.strain_prior, "log10_frequency_band": list(band),
                   "sky_prior": ("isotropic (the whole sky)" if sky_cap is None else
                                 f"uniform on a cap of {options.sky_radius:g} deg around ra = "
@@ -614,6 +728,13 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
     likelihood = likelihood_for(array, noise, **model)
     other_noise = other_background(noise)
     other = likelihood_for(array, other_noise, **model) if other_noise is not None else None
+    skipped_comparison = False
+    if options.pulsar_distances == "sample-distance":
+        if getattr(getattr(likelihood, "noise_model", None), "correlated", False):
+            raise InputError("--pulsar-distances sample-distance works with a noise model without a correlated common "
+                             "process (the correlated likelihood marginalises the pulsar phases in mean field); use "
+                             "--pulsar-distances marginalise-phase")
+        skipped_comparison, other = other is not None, None
     seqs = np.random.SeedSequence(seed).spawn(len(targets))
     scan_start = read_scan_start(run_dir) if options.start == "scan" else None
     stage = run_dir / "followup"
@@ -621,8 +742,12 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
     for target, seq in zip(targets, seqs):
         folder = stage if len(targets) == 1 else stage / target.label
         summary, result, table = _follow_one(likelihood, target, array, folder, options, seq, progress, other,
-                                             scan_start=scan_start)
+                                             scan_start=scan_start, noise_statement=stage_noise_statement(array, noise))
         summary["seed"] = seed
+        if skipped_comparison:
+            summary["background_comparison"]["note"] = (
+                "not computed with --pulsar-distances sample-distance (the other background's likelihood is the "
+                "correlated one, which marginalises every pulsar phase)")
         summary["noise_model"] = {**stage_noise_statement(array, noise), **summary.get("noise_model", {})}
         write_json_atomic(folder / "summary.json", summary)
         if not options.no_plots:
