@@ -79,8 +79,11 @@ def _dense_inverse(engine, w):
     return g @ np.linalg.inv(g.T @ cov @ g) @ g.T
 
 
-def test_fast_scan_equals_dense_reference():
-    # reference: dense explicit inverse, every inner product and the 4x4 solve recomputed per pixel
+@pytest.mark.parametrize("toa_block", [512, 7])
+def test_fast_scan_equals_dense_reference(toa_block, monkeypatch):
+    # reference: dense explicit inverse, every inner product and the 4x4 solve recomputed per pixel;
+    # toa_block 7: the projections summed over several blocks of TOAs (40 TOAs: 6 blocks, a short last one)
+    monkeypatch.setattr(fstat, "PROJECTION_TOA_BLOCK", toa_block)
     arr = invented_array(n_pulsars=3, years=8, seed=7, toas_per_pulsar=40, red_noise_fraction=1.0)
     arr = arr.with_residuals(simulate_residuals(arr, 8))
     settings = NoiseSettings(red_components=8, common_log10_amplitude=-14.3)

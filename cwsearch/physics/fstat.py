@@ -168,36 +168,6 @@ def sine_cosine_matrix(toas, reference_time, frequencies, anchor_every=ANCHOR_EV
     return out
 
 
-@njit(cache=True, nogil=True)
-def _z_columns(w, u, n_freq, z):
-    """z[k] = ((s_k|s_k), (s_k|c_k), (c_k|c_k)) from whitened w (n, 2F), u (r, 2F); serial, GIL-free."""
-    n = w.shape[0]
-    r = u.shape[0]
-    block = 32
-    n_blocks = (n_freq + block - 1) // block
-    for b in range(n_blocks):
-        k0 = b * block
-        k1 = min(n_freq, k0 + block)
-        acc = np.zeros((k1 - k0, 3))
-        for i in range(n):
-            for k in range(k0, k1):
-                s = w[i, k]
-                c = w[i, n_freq + k]
-                acc[k - k0, 0] += s * s
-                acc[k - k0, 1] += s * c
-                acc[k - k0, 2] += c * c
-        for i in range(r):
-            for k in range(k0, k1):
-                s = u[i, k]
-                c = u[i, n_freq + k]
-                acc[k - k0, 0] -= s * s
-                acc[k - k0, 1] -= s * c
-                acc[k - k0, 2] -= c * c
-        for k in range(k0, k1):
-            for j in range(3):
-                z[k, j] = acc[k - k0, j]
-
-
 def _drop_null_directions(x, y, z, z_scale):
     """Zero the directions of Z below tolerance (and the X, Y components along them), in place."""
     tol = Z_RELATIVE_TOLERANCE * z_scale[:, None]
@@ -271,16 +241,70 @@ def _blas_threads(n):
             put(old)
 
 
+@njit(cache=True, nogil=True)
+def _weighted_trig_sums(basis, inverse_variance, n_freq, acc):
+    """acc[k] += Σ_i w_i (s_ik², s_ik c_ik, c_ik²) over the rows of one TOA block of ``basis`` (m, 2F)."""
+    for i in range(basis.shape[0]):
+        wi = inverse_variance[i]
+        for k in range(n_freq):
+            s = basis[i, k]
+            c = basis[i, n_freq + k]
+            acc[k, 0] += wi * s * s
+            acc[k, 1] += wi * s * c
+            acc[k, 2] += wi * c * c
+
+
+@njit(cache=True, nogil=True)
+def _subtract_low_rank(u, n_freq, z):
+    """z[k] −= Σ_r (u_rk², u_rk u_r,F+k, u_r,F+k²): the noise model's part of Z from the whitened basis u (r, 2F)."""
+    for r in range(u.shape[0]):
+        for k in range(n_freq):
+            s = u[r, k]
+            c = u[r, n_freq + k]
+            z[k, 0] -= s * s
+            z[k, 1] -= s * c
+            z[k, 2] -= c * c
+
+
+#: TOAs per block of the projections: the sines and cosines of one block of TOAs at every frequency
+#: (block × 2F doubles, 7.7 MB at 945 frequencies) are made, used and dropped, never all n × 2F at once
+PROJECTION_TOA_BLOCK = 512
+
+
 def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i, step=None):
+    """X, Y, Z of one pulsar at every frequency, in blocks of TOAs.
+
+    With the Woodbury form of the inner product (physics/noise.py) every term is a sum over TOAs:
+    ``Tᵀ N⁻¹ B`` (one GEMM per block), ``rᵀ N⁻¹ B`` and the weighted squares of B; the rank-r
+    correction ``(L⁻¹ Tᵀ N⁻¹ r)ᵀ (L⁻¹ Tᵀ N⁻¹ B)`` is applied once at the end
+    (:meth:`~cwsearch.physics.noise.PulsarWeighting.reduce`). The same sums as whitening the whole
+    n × 2F basis at once, in another order (equal to rounding; the scan's regression tests hold it to
+    1e-10), at a fraction of the memory and without streaming a large array through the caches twice."""
     n_freq = frequencies.size
-    basis = sine_cosine_matrix(w.pulsar.toas, t0, frequencies, step=step)
-    wb, ub = w.whiten(basis)                  # the one whitening GEMM for all frequencies
-    wr, ur = w.whiten(residual_set)           # (n, B), (r, B)
-    xy = wr.T @ wb - ur.T @ ub                # (B, 2F)
+    toas = w.pulsar.toas
+    inverse_variance = w.inverse_variance
+    weighted_t = w.weighted_basis_t                        # Tᵀ N⁻¹, shape (k, n)
+    rw = residual_set * inverse_variance[:, None]          # N⁻¹ r, (n, B)
+    v = np.zeros((weighted_t.shape[0], 2 * n_freq))
+    xy = np.zeros((residual_set.shape[1], 2 * n_freq))
+    zi = np.zeros((n_freq, 3))
+    if step is None:
+        step = uniform_step(frequencies)
+    for a in range(0, toas.size, PROJECTION_TOA_BLOCK):
+        b = min(toas.size, a + PROJECTION_TOA_BLOCK)
+        basis = sine_cosine_matrix(toas[a:b], t0, frequencies, step=step)
+        v += weighted_t[:, a:b] @ basis
+        xy += rw[a:b].T @ basis
+        _weighted_trig_sums(basis, inverse_variance[a:b], n_freq, zi)
+    ub = w.reduce(v)                                       # L⁻¹ Tᵀ N⁻¹ B, (r, 2F)
+    _, ur = w.whiten(residual_set)                         # (r, B)
+    xy -= ur.T @ ub
     x[:, i] = xy[:, :n_freq]
     y[:, i] = xy[:, n_freq:]
-    _z_columns(wb, np.ascontiguousarray(ub), n_freq, z[i])
-    z_scale[i] = 0.5 * float(np.sum(wb[:, 0] ** 2 + wb[:, n_freq] ** 2))
+    z_white = zi[0, 0] + zi[0, 2]                          # Σ w (s² + c²) of the first frequency
+    _subtract_low_rank(np.ascontiguousarray(ub), n_freq, zi)
+    z[i] = zi
+    z_scale[i] = 0.5 * float(z_white)
 
 
 def _project_core(engine, frequencies, residual_sets, on_pulsar=None, workers=None, step=None, z_scale_of=None):

@@ -151,10 +151,19 @@ class PulsarWeighting:
         """
         x = np.asarray(x, dtype=float)
         sig = self.white_sigmas if x.ndim == 1 else self.white_sigmas[:, None]
-        v = self._weighted_basis_t @ x
-        v = v / (self._scale if x.ndim == 1 else self._scale[:, None])
-        u = solve_triangular(self._chol, v, lower=True, check_finite=False)
-        return x / sig, u
+        return x / sig, self.reduce(self._weighted_basis_t @ x)
+
+    @property
+    def weighted_basis_t(self):
+        """``Tᵀ N⁻¹`` (k, n): the basis weighted by the white noise, as :meth:`reduce` expects its input."""
+        return self._weighted_basis_t
+
+    def reduce(self, weighted_products):
+        """``u = L⁻¹ (Tᵀ N⁻¹ x)`` from ``Tᵀ N⁻¹ x`` (k,) or (k, b) summed by the caller (e.g. over blocks of
+        TOAs), so that ``(x|y) = xᵀ N⁻¹ y − u_x·u_y`` as in :meth:`whiten`."""
+        v = np.asarray(weighted_products, dtype=float)
+        v = v / (self._scale if v.ndim == 1 else self._scale[:, None])
+        return solve_triangular(self._chol, v, lower=True, check_finite=False)
 
     def whitening_operator(self):
         """The linear maps of :meth:`whiten` as arrays: ``(1/σ (n,), U (k, n))`` with
