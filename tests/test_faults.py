@@ -214,12 +214,15 @@ LIMITS = {"nside": 2, "fmax": 3e-8, "oversample": 1, "no_plots": True}
 def test_kill_limits_keeps_scan_and_resumes(dataset, tmp_path, capsys):
     scan = dict(SCAN, null_sims=0)
     execution = {"workers": 1}
-    ref = run_file(tmp_path / "ref.toml", dataset, "ref", ["scan", "limits"], scan=scan, limits=LIMITS,
+    # nside 4 (192 pixels): enough rows that the stage is still running 0.3 s after it announces itself
+    # on any machine (at nside 2 a fast machine could finish within the old 1 s settle time)
+    limits = dict(LIMITS, nside=4)
+    ref = run_file(tmp_path / "ref.toml", dataset, "ref", ["scan", "limits"], scan=scan, limits=limits,
                    execution=execution)
     assert cli.main(["run", str(ref), "--quiet"]) == 0
-    killed = run_file(tmp_path / "killed.toml", dataset, "killed", ["scan", "limits"], scan=scan, limits=LIMITS,
+    killed = run_file(tmp_path / "killed.toml", dataset, "killed", ["scan", "limits"], scan=scan, limits=limits,
                       execution=execution)
-    kill_when(["run", killed], "limits: running", cwd=tmp_path, settle=1.0)
+    kill_when(["run", killed], "limits: running", cwd=tmp_path, settle=0.3)
     scan_after_kill = tree(tmp_path / "killed" / "scan")
     assert json.loads((tmp_path / "killed" / "scan" / STAGE_FILE).read_text())["status"] == "complete"
     assert_no_half_written(tmp_path / "killed")
