@@ -186,7 +186,7 @@ def test_example_run_file_validates():
     assert cfg.dataset.is_dir()
     # every key of every installed section is documented in the example (by name, in a comment or as a key)
     text = example.read_text()
-    for section in ("execution", "noise") + STAGES:
+    for section in ("execution", "rounds", "noise") + STAGES:
         keys = section_keys(section)
         if keys is None:
             continue

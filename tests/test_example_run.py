@@ -20,7 +20,7 @@ def test_example_file_is_generated():
         "runs/example.toml is out of date: python scripts/make_example_run.py"
 
 
-@pytest.mark.parametrize("section", ("", "execution", "noise") + tuple(STAGES))
+@pytest.mark.parametrize("section", ("", "execution", "rounds", "noise") + tuple(STAGES))
 def test_every_value_is_the_dataclass_default(section):
     data = tomllib.loads(EXAMPLE.read_text(encoding="utf-8"))
     keys = TOP_KEYS if section == "" else section_keys(section)

@@ -144,6 +144,22 @@ EXECUTION_KEYS = {
                                            "commands"),
 }
 
+#: [rounds]: subtract and rescan (cwsearch/job/rounds.py, docs/design.md §14): the detection rule that confirms a
+#: followed-up candidate and how many sources the pipeline confirms before it stops rescanning
+ROUNDS_KEYS = {
+    "max_sources": Key("max_sources", int, 3,
+                       "confirm at most this many sources: after each confirmed one its posterior-median signal is "
+                       "subtracted and the scan runs again on what is left (1: confirm and subtract one, no rescan)"),
+    "detection_fap": Key("detection_fap", float, 0.01,
+                         "detection rule, part 1: a followed-up candidate is confirmed only when its empirical "
+                         "false-alarm probability (from the scan's noise-only scans, [scan] null_sims) is below "
+                         "this; N noise-only scans resolve FAPs down to 1/(N + 1), so 0.01 needs null_sims >= 100"),
+    "detection_log_bayes_factor": Key("detection_log_bayes_factor", float, 5.0,
+                                      "detection rule, part 2: ... and its follow-up ln Bayes factor (binary + "
+                                      "background versus background) is above this (5: 'very strong' on the Kass "
+                                      "& Raftery 1995 scale, 2 ln B > 10)"),
+}
+
 #: the old [engine] section (read, with a RunFileDeprecationWarning, as [execution])
 ENGINE_KEYS = {
     "kind": Key("kind", str, "local", "'local' (worker processes on this machine) or 'dask' (a running scheduler)",
@@ -174,6 +190,8 @@ def section_keys(section):
     """All keys of a section, or ``None`` if its stage is not installed (then the section is not checked)."""
     if section == "execution":
         return dict(EXECUTION_KEYS)
+    if section == "rounds":
+        return dict(ROUNDS_KEYS)
     if section == "engine":   # the old name of [execution]
         return dict(ENGINE_KEYS)
     if section == "noise":
@@ -193,7 +211,7 @@ def section_keys(section):
     return keys
 
 
-SECTIONS = ("execution",) + tuple(dict.fromkeys(("noise",) + STAGES))
+SECTIONS = ("execution", "rounds") + tuple(dict.fromkeys(("noise",) + STAGES))
 #: old section names still read (with a RunFileDeprecationWarning) -> the section they now are
 OLD_SECTIONS = {"engine": "execution"}
 
@@ -339,6 +357,8 @@ class RunConfig:
     title: str = ""
     stages: tuple = STAGES
     execution: dict = field(default_factory=lambda: {"workers": 0, "scheduler": ""})
+    #: the ``[rounds]`` section: ``max_sources``, ``detection_fap``, ``detection_log_bayes_factor``
+    rounds: dict = field(default_factory=lambda: {k: key.default for k, key in ROUNDS_KEYS.items()})
     noise: object = None
     options: dict = field(default_factory=dict)
     extra: dict = field(default_factory=dict)
@@ -372,6 +392,7 @@ class RunConfig:
             "stages": list(self.stages),
             "mjd_range": None if self.mjd_range is None else list(self.mjd_range),
             "execution": dict(self.execution),
+            "rounds": dict(self.rounds),
             "noise": _dataclass_values(self.noise),
         }
         for stage in STAGES:
@@ -521,6 +542,7 @@ def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunC
 
     # ---- sections
     execution = _execution_section(data, fname, fail)
+    rounds = _rounds_section(data, fail)
 
     noise_values = _check_section("noise", data.get("noise", {}), section_keys("noise"), fail)
     settings_names = {f.name for f in dataclasses.fields(NoiseSettings)}
@@ -571,7 +593,7 @@ def parse_config(text: str, path=None, *, base=None, check_dataset=True) -> RunC
         fail(f"the run folder {out} is {'the' if out == dataset else 'inside the'} dataset folder: results must not "
              "be mixed with the data; choose another out", None, "out" if values["out"] else "dataset")
     return RunConfig(path=path, dataset=dataset, out=out, seed=values["seed"], title=values["title"],
-                     stages=stages, execution=execution, noise=noise, options=options, extra=extra, raw=raw,
+                     stages=stages, execution=execution, rounds=rounds, noise=noise, options=options, extra=extra, raw=raw,
                      mjd_range=mjd_range)
 
 
@@ -595,6 +617,16 @@ def _execution_section(data, fname, fail) -> dict:
     if execution["workers"] < 0:
         fail("must be >= 0 (0: one per CPU)", "execution", "workers")
     return execution
+
+
+def _rounds_section(data, fail) -> dict:
+    """The ``[rounds]`` section, defaults filled in, values checked."""
+    rounds = _check_section("rounds", data.get("rounds", {}), section_keys("rounds"), fail)
+    if not 1 <= rounds["max_sources"] <= 20:
+        fail("must be within 1-20", "rounds", "max_sources")
+    if not 0 < rounds["detection_fap"] <= 1:
+        fail("must be in (0, 1]", "rounds", "detection_fap")
+    return rounds
 
 
 def _field_names(stage):
@@ -765,4 +797,5 @@ def to_toml(data: dict, comments: dict | None = None) -> str:
 
 
 __all__ = ["RunConfig", "load_config", "parse_config", "to_toml", "toml_value", "section_keys",
-           "STAGES", "SECTIONS", "OLD_SECTIONS", "Key", "RunFileDeprecationWarning", "EXECUTION_KEYS"]
+           "STAGES", "SECTIONS", "OLD_SECTIONS", "Key", "RunFileDeprecationWarning", "EXECUTION_KEYS",
+           "ROUNDS_KEYS"]

@@ -47,6 +47,7 @@ HEADER = """\
 
 SECTION_TITLES = {"execution": "where the work runs (never changes a result)", "noise": "noise model (docs/design.md §5)",
                   "scan": "1. all-sky F-statistic scan", "followup": "2. follow-up of candidates",
+                  "rounds": "2b. subtract and rescan: the detection rule, more than one source (docs/design.md §14)",
                   "hosts": "3. host galaxies", "limits": "4. upper limits",
                   "targets": "5. targeted searches of a catalogue (every row at its own sky position)"}
 
@@ -130,7 +131,9 @@ def example_toml() -> str:
     for name, key in TOP_KEYS.items():
         default = None if key.required else key.default
         emit("", name, default)
-    for section in dict.fromkeys(("execution", "noise") + tuple(STAGES)):  # the noise stage shares [noise]
+    order = ("execution", "noise") + tuple(STAGES)
+    order = order[:order.index("followup") + 1] + ("rounds",) + order[order.index("followup") + 1:]
+    for section in dict.fromkeys(order):  # the noise stage shares [noise]; [rounds] follows [followup]
         keys = section_keys(section)
         if keys is None:
             continue

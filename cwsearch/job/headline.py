@@ -278,6 +278,13 @@ def headline_result(run_dir, reports=None) -> dict:
                                "it is noisy; follow up with more effective samples before quoting it")
             head["warnings"].append(f"host ranking: {host['warning']}")
         head["best_host"] = host
+    rounds = _read_json(run_dir / "rounds" / "rounds.json") or {}
+    if rounds.get("rounds"):
+        head["confirmed_sources"] = [{k: c.get(k) for k in ("source", "round", "frequency", "ra", "dec", "strain",
+                                                            "chirp_mass", "fap_empirical", "log_bayes_factor")}
+                                     for c in rounds.get("confirmed") or []]
+        head["rounds"] = {"n_rounds": rounds.get("n_rounds"), "stopped": rounds.get("stopped"),
+                          "detection_rule": rounds.get("detection_rule")}
     lim = _read_table(run_dir / "limits" / "frequency_limits.ecsv")
     if lim is not None and len(lim) and "strain_95" in lim.colnames:
         vals = np.asarray(lim["strain_95"], dtype=float)
@@ -332,6 +339,11 @@ def format_headline(head: dict) -> str:
                      f"threshold {cand.get('fap_threshold')}.")
     else:
         lines.append("No candidate (no scan result).")
+    if head.get("rounds"):
+        conf = head.get("confirmed_sources") or []
+        lines.append(f"Confirmed by the detection rule: {len(conf)} source(s)" + (": " + "; ".join(
+            f"f_gw = {c['frequency']:.4g} Hz (round {c['round']}, empirical FAP {c['fap_empirical']:.2g}, ln B "
+            f"{c['log_bayes_factor']:.1f})" for c in conf) if conf else "") + f" ({head['rounds']['stopped']}).")
     host = head.get("best_host")
     if host:
         line = f"Best host: {host['name']} with probability {host['probability']:.2f}"
@@ -341,7 +353,9 @@ def format_headline(head: dict) -> str:
     lim = head.get("best_limit")
     if lim:
         lines.append(f"Sky-averaged 95% strain upper limit: {lim['strain_95']:.3g} at {lim['frequency']:.4g} Hz "
-                     "(most sensitive frequency).")
+                     "(most sensitive frequency)" + (f", after subtracting the {len(head['confirmed_sources'])} "
+                                                     "confirmed source(s)" if head.get("confirmed_sources") else "")
+                     + ".")
     for w in head.get("warnings") or []:
         lines.append(f"WARNING: {w}.")
     return "\n".join(lines)

@@ -9,6 +9,8 @@ and fills its run folder (docs/design.md §11)::
       summary.json      the headline result (also printed by ``cwsearch run --json``)
       dataset.json      the dataset summary shown on the report
       scan/ followup/ hosts/ limits/    one folder per stage, each with .stage.json
+      rounds/           the subtract-and-rescan step (round 1 is scan/ + followup/; round K: rounds/round-K/)
+      confirmed_sources.ecsv   one row per source the detection rule confirmed (a copy of rounds/'s)
       report.html       one self-contained page
 
 Stage skipping. Each stage's *input hash* is the SHA-256 of: the stage name,
@@ -65,6 +67,7 @@ from ..stages import BY_NAME, STAGES as REGISTRY
 from .config import RunConfig
 from .noisemodel import resolve_noise_model
 from .report import build_report, format_headline, headline_result
+from .rounds import PRODUCTS as ROUND_PRODUCTS, read_subtracted_signal, run_rounds, subtracted_array
 from .runfolder import (DONE, STAGE_FILE, RunLock, canonical_hash, file_checksum, folder_hash, json_default,
                         package_versions, product_hash, provenance_record, read_json, read_record, read_table,
                         record_is_current, stage_seed, utc_now)
@@ -99,6 +102,12 @@ class StageSpec:
     #: glob patterns (relative to the stage folder) of the files later stages read; their hash, not the
     #: whole folder's (summaries hold wall times), is what a downstream stage's input hash includes
     products: tuple = ()
+    #: a pipeline step that is not a registry stage runs whenever this registry stage is in the run's stages
+    #: (the ``rounds`` step belongs to ``followup``)
+    part_of: str | None = None
+    #: stages whose records the runner hands over in ``ctx.upstream`` when they have one, without blocking
+    #: when they have none (what they change enters the input hash through ``extra_inputs``)
+    optional_upstream: tuple = ()
 
 
 @dataclass
@@ -206,7 +215,7 @@ def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: C
     for k, spec in enumerate(specs):
         stage_dir = run_dir / spec.name
         label = f"[{k + 1}/{len(specs)}] {spec.name}"
-        if spec.name not in config.stages:
+        if spec.name not in config.stages and (spec.part_of is None or spec.part_of not in config.stages):
             rec = read_record(stage_dir)
             if rec and rec.get("status") in DONE and rec.get("output_hash") == folder_hash(stage_dir):
                 if (rec.get("inputs") or {}).get("dataset") == dataset_checksum:
@@ -232,7 +241,8 @@ def run_stages(config: RunConfig, specs, *, dataset_checksum: str, load_array: C
             continue
         ctx = StageContext(config=config, run_dir=run_dir, stage_dir=stage_dir, name=spec.name,
                            seed=stage_seed(config.seed, spec.name), progress=progress,
-                           upstream={u: records[u] for u in spec.upstream}, _array_loader=load_array,
+                           upstream={u: records[u] for u in spec.upstream + tuple(spec.optional_upstream)
+                                     if u in records}, _array_loader=load_array,
                            dataset_checksum=dataset_checksum,
                            _noise_resolver=noise_resolver if spec.name != "noise" else None)
         stage_noise = noise
@@ -420,10 +430,103 @@ def dataset_summary(array, path, checksum) -> dict:
 
 # ---------------------------------------------------------------- the real stages
 def default_stages():
-    """One :class:`StageSpec` per entry of the stage registry :data:`cwsearch.stages.STAGES`, in order."""
-    return [StageSpec(stage.name, _stage_runner(stage), upstream=stage.upstream,
-                      extra_inputs=_EXTRA_INPUTS.get(stage.name), products=stage.products)
-            for stage in REGISTRY]
+    """One :class:`StageSpec` per entry of the stage registry :data:`cwsearch.stages.STAGES`, in order, and
+    the pipeline's own ``rounds`` step (subtract and rescan, :mod:`cwsearch.job.rounds`) after the follow-up;
+    the limits and targets stages read the data with the confirmed sources subtracted."""
+    specs = []
+    for stage in REGISTRY:
+        specs.append(StageSpec(stage.name, _stage_runner(stage), upstream=stage.upstream,
+                               extra_inputs=_EXTRA_INPUTS.get(stage.name), products=stage.products,
+                               optional_upstream=("rounds",) if stage.name in _SUBTRACTED else ()))
+        if stage.name == "followup":
+            specs.append(StageSpec("rounds", _run_rounds, upstream=("scan", "followup"), extra_inputs=_rounds_inputs,
+                                   products=ROUND_PRODUCTS, part_of="followup"))
+    return specs
+
+
+# ---------------------------------------------------------------- subtract and rescan (docs/design.md §14)
+def _rounds_inputs(ctx):
+    """What the rounds step's result depends on besides the scan's and follow-up's products: the [rounds]
+    rule, and the scan and follow-up options it reruns with."""
+    return {"rounds": dict(ctx.config.rounds), "scan": ctx.config.stage_config("scan"),
+            "followup": ctx.config.stage_config("followup")}
+
+
+def _run_rounds(ctx):
+    """The ``rounds`` step: the detection rule on round 1's follow-ups, then subtract and rescan
+    (:func:`cwsearch.job.rounds.run_rounds`); writes ``rounds/`` and ``RUN_DIR/confirmed_sources.ecsv``."""
+    return run_rounds(ctx, scan_stage=BY_NAME["scan"], followup_stage=BY_NAME["followup"],
+                      runner_options=runner_options, joint_followup=_joint_followup)
+
+
+def _joint_followup(ctx, sources):
+    """THE HOOK for the joint multi-source follow-up (issue 17, item 2; owned by another change): called by the
+    rounds step with ``sources`` (the confirmed sources, the rows of ``RUN_DIR/confirmed_sources.ecsv`` as
+    dicts: round, ra, dec [deg], frequency [Hz], chirp_mass [Msun], strain, inclination, polarization, phase
+    [rad], fap_empirical, log_bayes_factor, folder) whenever two or more sources are confirmed.
+
+    NOT IMPLEMENTED YET: it returns None (recorded as ``joint_followup: null`` in ``rounds/rounds.json``) and
+    the report lists each source from its own round's follow-up. The joint fit (one likelihood with the sum
+    of the signals) goes here; what it returns is recorded in ``rounds.json``."""
+    return None
+
+
+def _subtraction(ctx):
+    """``(n_confirmed, record)`` of the rounds step this stage sees (0, None without a confirmed source)."""
+    rec = ctx.upstream.get("rounds") or {}
+    n = int((rec.get("summary") or {}).get("n_confirmed") or 0)
+    return (n, rec) if rec.get("status") in DONE and n > 0 else (0, None)
+
+
+def _subtraction_inputs(ctx):
+    """Input-hash entry of a stage run on the data with the confirmed sources subtracted: the rounds step's
+    products (confirmed_sources.ecsv, subtracted_signal.ecsv); nothing when no source is confirmed (so the
+    hash is what it was before the rounds step existed)."""
+    n, rec = _subtraction(ctx)
+    return {"subtracted": rec.get("product_hash")} if n else {}
+
+
+def analysis_array(ctx):
+    """The data the limits and targets stages work on: the run's noise-model array, with the confirmed
+    sources' posterior-median signals subtracted when the rounds step confirmed any; and the statement
+    (None when nothing is subtracted)."""
+    n, rec = _subtraction(ctx)
+    if not n:
+        return ctx.model_array, None
+    signal = read_subtracted_signal(ctx.run_dir / "rounds" / "subtracted_signal.ecsv", ctx.model_array)
+    sources = (rec.get("summary") or {}).get("confirmed") or []
+    listed = "; ".join(f"source {s['source']} (round {s['round']}): f = {s['frequency']:.4g} Hz, ra = {s['ra']:.2f} "
+                       f"deg, dec = {s['dec']:.2f} deg, h0 = {s['strain']:.3g}" for s in sources)
+    note = {"n_subtracted": n, "sources": [{k: s.get(k) for k in ("source", "round", "frequency", "ra", "dec",
+                                                                   "strain", "chirp_mass", "folder")}
+                                           for s in sources],
+            "text": f"computed after subtracting {n} confirmed source(s): {listed} (posterior-median signals, "
+                    "rounds/subtracted_signal.ecsv)"}
+    return subtracted_array(ctx.model_array, signal), note
+
+
+def _with_subtraction_note(summary, note, path):
+    """The stage summary (and its file ``path``) with the statement of what was subtracted."""
+    if note is None:
+        return summary
+    summary = dict(summary)
+    summary["subtracted_sources"] = note
+    if Path(path).is_file():
+        on_disk = read_json(path) or {}
+        on_disk["subtracted_sources"] = note
+        write_json_atomic(path, on_disk)
+    return summary
+
+
+def _run_limits(ctx, stage):
+    """The limits stage on :func:`analysis_array` (the confirmed sources subtracted, stated in
+    ``limits_summary.json``: "limits computed after subtracting N confirmed source(s): ...")."""
+    array, note = analysis_array(ctx)
+    options = runner_options(ctx.options, ctx.config.execution)
+    result = stage.run(array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed, progress=ctx.progress)
+    if note is not None:
+        note = dict(note, text="limits " + note["text"])
+    return _with_subtraction_note(dict(result.summary or {}), note, ctx.stage_dir / "limits_summary.json")
 
 
 def _stage_runner(stage):
@@ -567,8 +670,11 @@ def _run_targets(ctx, stage):
     around its loudest frequency, with the ``[followup]`` sampler settings, one folder each:
     ``targets/followup_K`` (K = the order of ``targets_summary.json``'s ``followup`` list)."""
     options = runner_options(ctx.options, ctx.config.execution)
-    result = stage.run(ctx.model_array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed, progress=ctx.progress)
-    summary = dict(result.summary or {})
+    array, note = analysis_array(ctx)
+    result = stage.run(array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed, progress=ctx.progress)
+    if note is not None:
+        note = dict(note, text="targeted searches " + note["text"])
+    summary = _with_subtraction_note(dict(result.summary or {}), note, ctx.stage_dir / "targets_summary.json")
     chosen = summary.get("followup") or []
     if not getattr(options, "follow_up", False) or not chosen:
         return summary
@@ -581,7 +687,7 @@ def _run_targets(ctx, stage):
             shutil.rmtree(scratch)
         opts = replace(base, candidate=None, top=1, all_sky=False, resume=False, frequency=entry["frequency"],
                        ra=entry["ra"], dec=entry["dec"], sky_radius=entry["sky_radius"])
-        res = follow.run(ctx.model_array, scratch, opts, noise=ctx.noise, seed=int(seed), progress=ctx.progress)
+        res = follow.run(array, scratch, opts, noise=ctx.noise, seed=int(seed), progress=ctx.progress)
         final = ctx.stage_dir / f"followup_{k}"
         if final.exists():
             shutil.rmtree(final)
@@ -607,9 +713,13 @@ _PRECHECKS = {"hosts": _hosts_precheck,          # checks that raise NothingToDo
               "targets": _targets_precheck}
 _CUSTOM_RUNS = {"followup": _run_followup,       # the follow-up picks its candidates from the scan's table
                 "targets": _run_targets,         # then follows up the targets it hands over ([targets] follow_up)
+                "limits": _run_limits,           # on the data with the confirmed sources subtracted
                 "noise": _run_noise}             # the noise stage fits only for the 'estimate' model
 _EXTRA_INPUTS = {"hosts": _hosts_inputs,         # more input-hash entries (the catalogue's checksum)
-                 "targets": _hosts_inputs}
+                 "targets": lambda ctx: {**_hosts_inputs(ctx), **_subtraction_inputs(ctx)},
+                 "limits": _subtraction_inputs}  # ... and the subtracted signal of the confirmed sources
+#: the stages that work on the data with the confirmed sources subtracted (the rounds step's record)
+_SUBTRACTED = ("limits", "targets")
 
 
 #: the old name of :func:`runner_options`
@@ -618,4 +728,5 @@ engine_options = runner_options
 __all__ = ["run_pipeline", "run_stages", "StageSpec", "StageContext", "StageReport", "PipelineResult",
            "NothingToDo", "StageUnavailable", "headline_result", "format_headline", "stage_seed",
            "folder_hash", "product_hash", "canonical_hash", "default_stages", "package_versions",
-           "runner_options", "engine_options", "followup_rows", "read_record", "RunLock", "STAGE_FILE"]
+           "runner_options", "engine_options", "followup_rows", "read_record", "RunLock", "STAGE_FILE",
+           "analysis_array"]

@@ -64,6 +64,7 @@ SECTIONS = (
     ("scan", "Scan: spectrum and sky map"),
     ("candidates", "Candidates"),
     ("followup", "Follow-up: posterior and Bayes factor"),
+    ("rounds", "Rounds: detection rule, subtract and rescan"),
     ("hosts", "Host galaxies"),
     ("limits", "Upper limits"),
     ("targets", "Targeted searches of the catalogue"),
@@ -325,7 +326,7 @@ class _Run:
         summary = _read_json(self.dir / "summary.json") or {}
         self.stages = {s["stage"]: s for s in summary.get("stages", []) if isinstance(s, dict)}
         self.records = {}
-        for stage in ("scan", "noise", "followup", "hosts", "limits", "targets"):
+        for stage in ("scan", "noise", "followup", "rounds", "hosts", "limits", "targets"):
             rec = _read_json(self.dir / stage / ".stage.json")
             if rec:
                 self.records[stage] = rec
@@ -863,6 +864,76 @@ def _followup(run: _Run):
     return s
 
 
+def _rounds(run: _Run):
+    """The rounds step (docs/design.md §14): the rule, one row per round, the confirmed sources, the figures
+    (rounds.png and every rescan's scan and follow-up figures)."""
+    s = _sec("rounds", dict(SECTIONS)["rounds"], notes=run.status_notes("rounds"))
+    summ = _read_json(run.dir / "rounds" / "rounds.json") or run.stage_summary("rounds")
+    if not summ.get("rounds"):
+        s["figures"] = [_figure(p) for p in _images(run.dir / "rounds")]
+        return s
+    s["paragraphs"].append(f"Detection rule: {summ['detection_rule']}.")
+    s["paragraphs"].append(
+        f"{summ['n_confirmed']} source(s) confirmed in {summ['n_rounds']} round(s) (at most {summ['max_sources']}); "
+        f"stopped: {summ.get('stopped') or 'not recorded'}. Round 1 is the scan and follow-up above; round K > 1 "
+        "rescans the residuals after subtracting the K - 1 sources confirmed before it (rounds/round-K/). "
+        f"Empirical FAPs of every round from {summ.get('null_sims', 0)} noise-only scans "
+        f"({summ.get('null_source', 'scan/null_maxima.ecsv')}).")
+    if summ.get("n_confirmed"):
+        s["paragraphs"].append(
+            f"Subtracted: the {summ.get('subtraction', 'posterior-median signal')} of each confirmed source "
+            "(rounds/subtracted_signal.ecsv). A posterior-median signal is not the true one: some of the source's "
+            "power stays in the residuals (a rescan candidate within one frequency bin of a confirmed source is "
+            "taken as its remnant, not as a new source). The limits and the targeted searches use the "
+            "subtracted data.")
+    rows = []
+    for entry in summ["rounds"]:
+        cands = entry.get("candidates") or []
+        if not cands:
+            rows.append({"round": entry["round"], "subtracted": entry.get("subtracted_sources"),
+                         "candidate_frequency": None, "fe": None, "fap": None, "fap_empirical": None,
+                         "log_bayes_factor": None, "decision": entry.get("note") or "no candidate followed up",
+                         "folder": entry.get("scan")})
+        for c in cands:
+            rows.append({"round": entry["round"], "subtracted": entry.get("subtracted_sources"),
+                         "candidate_frequency": c.get("frequency"), "fe": c.get("fe"), "fap": c.get("fap"),
+                         "fap_empirical": c.get("fap_empirical"), "log_bayes_factor": c.get("log_bayes_factor"),
+                         "decision": c.get("decision", ""), "folder": c.get("folder")})
+    with _extra_labels({"round": ("round", "", "int"), "subtracted": ("sources subtracted before", "", "int"),
+                        "candidate_frequency": ("candidate frequency", "Hz", "g4"), "fe": ("Fe", "", "g4"),
+                        "fap": ("FAP (analytic)", "", "g2"), "decision": ("detection rule", "", "text"),
+                        "folder": ("folder", "", "text")}):
+        s["tables"].append(table_view(rows, title="Rounds (one row per followed-up candidate)"))
+    conf = summ.get("confirmed") or []
+    if conf:
+        srows = [{"source": c["source"], "round": c["round"], "frequency": c["frequency"], "ra": c["ra"],
+                  "dec": c["dec"], "chirp_mass": c["chirp_mass"], "strain": c["strain"],
+                  "fap_empirical": c["fap_empirical"], "log_bayes_factor": c["log_bayes_factor"],
+                  "signal_rms_ns": c.get("signal_rms_ns"), "folder": c["folder"]} for c in conf]
+        with _extra_labels({"source": ("source", "", "int"), "round": ("round", "", "int"),
+                            "frequency": ("frequency (median)", "Hz", "g4"), "ra": ("ra (median)", "deg", "f2"),
+                            "dec": ("dec (median)", "deg", "f2"), "signal_rms_ns": ("subtracted rms", "ns", "g3"),
+                            "folder": ("follow-up", "", "text")}):
+            s["tables"].append(table_view(srows, title="Confirmed sources (confirmed_sources.ecsv; posterior "
+                                                       "medians of each round's follow-up)"))
+        if len(conf) >= 2:
+            joint = summ.get("joint_followup")
+            s["paragraphs"].append("Joint follow-up of the confirmed sources: " + (
+                "not available yet; each source's parameters are from its own round's follow-up, with the sources "
+                "confirmed before it subtracted." if not joint else str(joint.get("text", joint))))
+    s["figures"] = [_figure(p, ("Rounds: loudest Fe over the sky per round, and the subtracted signal of the "
+                                "pulsars where it is largest." if p.name == "rounds.png" else
+                                f"{p.relative_to(run.dir / 'rounds').parts[0].replace('-', ' ')}: "
+                                + (CAPTIONS.get(p.name) or p.stem.replace('_', ' '))))
+                    for p in _images(run.dir / "rounds")]
+    return s
+
+
+def _subtraction_note(summ):
+    note = (summ or {}).get("subtracted_sources")
+    return [note["text"][0].upper() + note["text"][1:] + "."] if isinstance(note, dict) and note.get("text") else []
+
+
 def _hosts(run: _Run):
     s = _sec("hosts", dict(SECTIONS)["hosts"], notes=run.status_notes("hosts"))
     table = _read_table(run.dir / "hosts" / "ranking.ecsv")
@@ -958,6 +1029,7 @@ def _limits(run: _Run):
         s["paragraphs"].append(f"Most sensitive frequency {best['frequency'] * 1e9:.3g} nHz: sky-averaged 95 % strain "
                                f"upper limit {best['strain_95']:.3g}.")
     summ = _read_json(run.dir / "limits" / "limits_summary.json") or run.stage_summary("limits")
+    s["notes"].extend(_subtraction_note(summ))
     for key, label, kind in (("method", "method", "text"), ("n_frequencies", "frequencies", "int"),
                              ("nside", "HEALPix nside", "int"), ("quadrature", "quadrature", "text"),
                              ("sky_frequency", "sky map at frequency [Hz]", "g4")):
@@ -999,6 +1071,7 @@ def _targeted(run: _Run):
     """The targets stage: counts, corrections, the best targets and the two figures."""
     s = _sec("targets", dict(SECTIONS)["targets"], notes=run.status_notes("targets"))
     summ = _read_json(run.dir / "targets" / "targets_summary.json") or run.stage_summary("targets")
+    s["notes"].extend(_subtraction_note(summ))
     if summ.get("n_targets") is not None:
         s["paragraphs"].append(
             f"{summ.get('n_searched')} of {summ['n_targets']} catalogue targets tested at their own sky position "
@@ -1089,7 +1162,7 @@ def _provenance(run: _Run):
 
 
 _BUILDERS = {"dataset": _dataset, "noise": _noise, "scan": _scan, "candidates": _candidates,
-             "followup": _followup, "hosts": _hosts, "limits": _limits, "targets": _targeted, "cautions": _cautions,
+             "followup": _followup, "rounds": _rounds, "hosts": _hosts, "limits": _limits, "targets": _targeted, "cautions": _cautions,
              "provenance": _provenance}
 
 

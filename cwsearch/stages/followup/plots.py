@@ -6,7 +6,8 @@
 ``residuals.png``: per pulsar, the timing residuals with the binary signal of
 the posterior (Earth + pulsar term, :func:`cwsearch.physics.waveform.residuals`
 through its basis series): pointwise median and 90 % band of the signals of
-:data:`RESIDUAL_DRAWS` posterior draws. The likelihood marginalises the
+:data:`RESIDUAL_DRAWS` posterior draws (:mod:`cwsearch.inference.posterior_signal`, shared with the
+pipeline's subtract-and-rescan rounds). The likelihood marginalises the
 pulsar-term phases (docs/design.md §7), so each draw gets its pulsar phases
 drawn from their conditional posterior given the draw's eight parameters (each
 pulsar's own likelihood on a phase grid; for a Hellings–Downs background the
@@ -24,6 +25,7 @@ from ...core.constants import YEAR_SECONDS
 from ...data.truth import injected_binary, injected_signal
 from ...physics import sky, waveform
 from ...physics.simulate import postfit
+from ...inference.posterior_signal import RESIDUAL_DRAWS, signal_draws  # shared with the pipeline's rounds
 
 #: (posterior column, axis label, transform to the plotted unit)
 CORNER_COLUMNS = (("ra", "RA [deg]", None), ("dec", "Dec [deg]", None), ("frequency", "f [nHz]", "nHz"),
@@ -152,54 +154,8 @@ def trace_plot(path, chain, names, burn_in, max_walkers=8, truth=None):
     save_figure(fig, path)
 
 
-#: posterior draws behind the median signal and its 90 % band in ``residuals.png``
-RESIDUAL_DRAWS = 100
-#: points of the pulsar-phase grid the conditional pulsar phases are drawn on (the phase has period π)
-PHASE_POINTS = 64
 #: at most this many pulsar panels (the pulsars with the largest fitted signal first)
 MAX_RESIDUAL_PANELS = 20
-
-
-def _draw_pulsar_phases(coeffs_of, dvec, gmat, rng):
-    """One draw of a pulsar-term phase from exp(ln Λ_p(χ)) on a grid over [0, π) (uniform prior)."""
-    grid = (np.arange(PHASE_POINTS) + 0.5) * np.pi / PHASE_POINTS
-    c = coeffs_of(grid)                                   # (K, 4)
-    log_like = c @ dvec - 0.5 * np.einsum("ki,ij,kj->k", c, gmat, c)
-    w = np.exp(log_like - log_like.max())
-    k = rng.choice(PHASE_POINTS, p=w / w.sum())
-    return grid[k] + rng.uniform(-0.5, 0.5) * np.pi / PHASE_POINTS
-
-
-def signal_draws(likelihood, array, table, n_draws=RESIDUAL_DRAWS, seed=0):
-    """Binary signals [s] at every pulsar's TOAs for ``n_draws`` posterior samples of ``table``
-    (the follow-up posterior, degrees/Hz/Msun/rad): a list (one per pulsar) of arrays (draws, TOAs),
-    after the pulsar's timing-model fit. Pulsar phases as in the module docstring."""
-    rng = np.random.default_rng(seed)
-    n = len(table)
-    pick = rng.choice(n, size=min(n_draws, n), replace=False) if n else np.zeros(0, dtype=int)
-    col = {name: np.asarray(table[name], dtype=float)[pick] for name in
-           ("ra", "dec", "frequency", "chirp_mass", "strain", "inclination", "polarization", "phase")}
-    ra, dec = np.radians(col["ra"]), np.radians(col["dec"])
-    out = [np.empty((pick.size, p.n_toas)) for p in array]
-    if not pick.size:
-        return out
-    pulsar_term = bool(likelihood.pulsar_term)
-    # per-pulsar products (d|b_j), (b_i|b_j) of every draw at once: the sampler's batched path
-    fplus, fcross, dvec, gmat = likelihood.shape_batch(ra, dec, col["frequency"], col["chirp_mass"])
-    _, _, odp = waveform.antenna_pattern(ra, dec, array.positions)
-    for k in range(pick.size):
-        for i, p in enumerate(array):
-            basis, _ = waveform.residual_basis(p.toas, likelihood.reference_time, col["frequency"][k],
-                                               col["chirp_mass"][k], p.distance, odp[k, i], likelihood.evolution)
-
-            def coeffs_of(pulsar_phase, i=i):
-                return np.atleast_2d(waveform.basis_coefficients(
-                    col["strain"][k], col["inclination"][k], col["polarization"][k], col["phase"][k],
-                    pulsar_phase, fplus[k, i], fcross[k, i], pulsar_term))
-
-            chi = _draw_pulsar_phases(coeffs_of, dvec[k, i], gmat[k, i], rng) if pulsar_term else 0.0
-            out[i][k] = postfit(p, basis @ coeffs_of(chi)[0])
-    return out
 
 
 def true_signals(array, truth):
