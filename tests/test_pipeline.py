@@ -464,8 +464,10 @@ def test_quick_demo_end_to_end(tmp_path, capsys):
     out = tmp_path / "demo"
     assert main(["demo", "--quick", "--out", str(out), "--quiet", "--json"]) == 0
     summary = json.loads(capsys.readouterr().out)
-    assert [s["status"] for s in summary["stages"]] == ["ran"] * 6, summary["stages"]
+    # the six stages and the rounds step (no noise-only scans in --quick: nothing confirmed, round 1 only)
+    assert [s["status"] for s in summary["stages"]] == ["ran"] * 7, summary["stages"]
     head = summary["headline"]
+    assert head["rounds"]["n_rounds"] == 1 and head["confirmed_sources"] == []
     # the injection (injection.json): f_gw = 1.2e-8 Hz; the scan's frequency resolution is 1/(2 T_span)
     span = json.loads((out / "dataset.json").read_text())["span_yr"] * 3.15576e7
     assert head["candidate_found"] is True
@@ -489,7 +491,7 @@ def test_quick_demo_end_to_end(tmp_path, capsys):
     # a second run: nothing to do
     assert main(["demo", "--quick", "--out", str(out), "--quiet", "--json"]) == 0
     again = json.loads(capsys.readouterr().out)
-    assert [s["status"] for s in again["stages"]] == ["skipped"] * 6
+    assert [s["status"] for s in again["stages"]] == ["skipped"] * 7
     for h in (again["headline"], head):
         h.pop("stages")
     # exact on purpose: every stage was skipped, so the headline is read again from the same, unrewritten files

@@ -57,17 +57,19 @@ from pathlib import Path
 from typing import Callable
 
 import numpy as np
+from astropy.table import Table
 
 from .. import __version__
 from ..core.constants import YEAR_SECONDS
 from ..core.errors import InputError
-from ..core.fileio import write_json_atomic
+from ..core.fileio import write_json_atomic, write_table_atomic
 from ..data.dataset import dataset_checksum, read_dataset
 from ..stages import BY_NAME, STAGES as REGISTRY
 from .config import RunConfig
 from .noisemodel import resolve_noise_model
 from .report import build_report, format_headline, headline_result
-from .rounds import PRODUCTS as ROUND_PRODUCTS, read_subtracted_signal, run_rounds, subtracted_array
+from .rounds import (PRODUCTS as ROUND_PRODUCTS, kept_draw_columns, read_subtracted_signal, run_rounds,
+                     subtracted_array)
 from .runfolder import (DONE, STAGE_FILE, RunLock, canonical_hash, file_checksum, folder_hash, json_default,
                         package_versions, product_hash, provenance_record, read_json, read_record, read_table,
                         record_is_current, stage_seed, utc_now)
@@ -520,13 +522,61 @@ def _with_subtraction_note(summary, note, path):
 
 def _run_limits(ctx, stage):
     """The limits stage on :func:`analysis_array` (the confirmed sources subtracted, stated in
-    ``limits_summary.json``: "limits computed after subtracting N confirmed source(s): ...")."""
+    ``limits_summary.json``: "limits computed after subtracting N confirmed source(s): ..."), with the
+    subtraction error (:func:`_subtraction_error`)."""
     array, note = analysis_array(ctx)
     options = runner_options(ctx.options, ctx.config.execution)
     result = stage.run(array, ctx.run_dir, options, noise=ctx.noise, seed=ctx.seed, progress=ctx.progress)
     if note is not None:
         note = dict(note, text="limits " + note["text"])
+        note["subtraction_error"] = _subtraction_error(ctx, stage, options)
     return _with_subtraction_note(dict(result.summary or {}), note, ctx.stage_dir / "limits_summary.json")
+
+
+def _subtraction_error(ctx, stage, options):
+    """The limits' stated error from the subtraction (docs/design.md §14): the limits recomputed (same seed,
+    no plots) with each kept posterior draw of the confirmed signals subtracted instead of their median; per
+    frequency the sample standard deviation of those sky-averaged limits relative to the median-subtracted one.
+    Written to ``limits/subtraction_error.ecsv``; returns its summary."""
+    path = ctx.run_dir / "rounds" / "subtracted_signal.ecsv"
+    columns = kept_draw_columns(path)
+    main = read_table(ctx.stage_dir / "frequency_limits.ecsv")
+    if len(columns) < 2 or main is None or "strain_95" not in main.colnames:
+        return {"note": "not computed (fewer than two kept posterior draws)"}
+    limits = []
+    for column in columns:
+        scratch = ctx.stage_dir / f".work_{column}"
+        if scratch.exists():
+            shutil.rmtree(scratch)
+        draw_array = subtracted_array(ctx.model_array, read_subtracted_signal(path, ctx.model_array, column))
+        stage.run(draw_array, scratch, replace(options, no_plots=True, mcmc_check=None), noise=ctx.noise,
+                  seed=ctx.seed, progress=False)
+        table = read_table(scratch / "limits" / "frequency_limits.ecsv")
+        shutil.rmtree(scratch)
+        if table is None or len(table) != len(main):
+            return {"note": f"not computed (the limits with {column} subtracted could not be read)"}
+        limits.append(np.asarray(table["strain_95"], dtype=float))
+    limits = np.array(limits)
+    centre = np.asarray(main["strain_95"], dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        relative = np.std(limits, axis=0, ddof=1) / centre
+    out = Table()
+    out["frequency"] = main["frequency"]
+    out["strain_95"] = centre
+    for column, values in zip(columns, limits):
+        out[f"strain_95_{column}"] = values
+    out["relative_error"] = relative
+    out.meta["description"] = ("the subtraction error of the sky-averaged 95 % strain limits: the limits with each "
+                               "kept posterior draw of the confirmed signals subtracted instead of their median "
+                               "(rounds/subtracted_signal.ecsv draw_K), and their sample standard deviation "
+                               "relative to the median-subtracted limit")
+    write_table_atomic(ctx.stage_dir / "subtraction_error.ecsv", out)
+    finite = relative[np.isfinite(relative)]
+    return {"method": f"standard deviation of the sky-averaged limits over {len(columns)} posterior draws of the "
+                      "subtracted signal, relative to the limit with the posterior median subtracted",
+            "n_draws": len(columns), "file": "subtraction_error.ecsv",
+            "median_relative": float(np.median(finite)) if finite.size else None,
+            "max_relative": float(np.max(finite)) if finite.size else None}
 
 
 def _stage_runner(stage):

@@ -930,8 +930,16 @@ def _rounds(run: _Run):
 
 
 def _subtraction_note(summ):
+    """The statement of what the limits or targets stage subtracted (and the limits' subtraction error)."""
     note = (summ or {}).get("subtracted_sources")
-    return [note["text"][0].upper() + note["text"][1:] + "."] if isinstance(note, dict) and note.get("text") else []
+    if not isinstance(note, dict) or not note.get("text"):
+        return []
+    out = [note["text"][0].upper() + note["text"][1:] + "."]
+    err = note.get("subtraction_error") or {}
+    if err.get("median_relative") is not None:
+        out.append(f"Subtraction error of the limits ({err['method']}): median {100 * err['median_relative']:.2g} %, "
+                   f"largest {100 * err['max_relative']:.2g} % ({err.get('file')}).")
+    return out
 
 
 def _hosts(run: _Run):

@@ -51,12 +51,16 @@ from astropy.table import Table
 from ..core.errors import InputError
 from ..core.fileio import write_json_atomic, write_table_atomic
 from ..inference.correlated_likelihood import likelihood_for
-from ..inference.posterior_signal import RESIDUAL_DRAWS, median_signal
+from ..inference.posterior_signal import RESIDUAL_DRAWS, signal_draws
 from .runfolder import read_json, read_table
 
 #: the posterior columns of a confirmed source (confirmed_sources.ecsv), with their units
 SOURCE_COLUMNS = (("ra", "deg"), ("dec", "deg"), ("frequency", "Hz"), ("chirp_mass", "solMass"), ("strain", ""),
                   ("inclination", "rad"), ("polarization", "rad"), ("phase", "rad"))
+#: single posterior draws of the signal kept beside the median (columns draw_1 .. of subtracted_signal.ecsv): the
+#: limits stage is rerun with each subtracted instead of the median, and their spread is the limits' stated
+#: subtraction error (docs/design.md §14)
+KEPT_DRAWS = 8
 #: the files of RUN_DIR/rounds/ that later stages read (their hash enters the limits' and targets' inputs)
 PRODUCTS = ("confirmed_sources.ecsv", "subtracted_signal.ecsv")
 
@@ -125,9 +129,9 @@ def subtracted_array(array, signals):
     return out
 
 
-def read_subtracted_signal(path, array):
+def read_subtracted_signal(path, array, column="total"):
     """The summed subtracted signal per pulsar (list of arrays [s]) from ``subtracted_signal.ecsv``, checked
-    against ``array`` (pulsar names, TOA counts, MJDs to 1e-9 d)."""
+    against ``array`` (pulsar names, TOA counts, MJDs to 1e-9 d); ``column="draw_K"``: the K-th kept draw."""
     table = read_table(path)
     if table is None or not {"pulsar", "mjd", "total"} <= set(table.colnames):
         raise InputError("cannot read the subtracted signal of the confirmed sources (rerun with --force rounds)",
@@ -140,8 +144,14 @@ def read_subtracted_signal(path, array):
         if mjd.size != p.n_toas or not np.allclose(mjd, p.mjd, rtol=0, atol=1e-9):
             raise InputError(f"the subtracted signal does not match the TOAs of pulsar {p.name} (rerun with "
                              "--force rounds)", file=path)
-        out.append(np.asarray(table["total"], dtype=float)[rows])
+        out.append(np.asarray(table[column], dtype=float)[rows])
     return out
+
+
+def kept_draw_columns(path):
+    """The ``draw_K`` columns of ``subtracted_signal.ecsv`` (empty when none or unreadable)."""
+    table = read_table(path)
+    return [] if table is None else [c for c in table.colnames if c.startswith("draw_")]
 
 
 def _round_one(ctx, candidates, null_table):
@@ -247,6 +257,7 @@ def run_rounds(ctx, *, scan_stage, followup_stage, runner_options, joint_followu
                  phase_grid=followup_options.phase_grid, uniform_strain=followup_options.strain_prior == "uniform")
     rule = detection_rule_text(detection_fap, detection_lnb)
     rounds, confirmed, signals = [], [], []      # signals: per confirmed source, list (per pulsar) of arrays
+    kept = []                                    # per confirmed source, list (per pulsar) of (KEPT_DRAWS, TOAs)
     stopped = ""
     k = 1
     while True:
@@ -296,7 +307,8 @@ def run_rounds(ctx, *, scan_stage, followup_stage, runner_options, joint_followu
         folder = ctx.run_dir / decision["folder"]
         table = read_posterior(folder)
         like = likelihood_for(data, ctx.noise, **model)
-        signal = median_signal(like, data, table, n_draws=RESIDUAL_DRAWS, seed=int(seeds[2]))
+        draws = signal_draws(like, data, table, n_draws=RESIDUAL_DRAWS, seed=int(seeds[2]))
+        signal = [np.median(d, axis=0) if d.shape[0] else np.zeros(d.shape[1]) for d in draws]
         params = posterior_summary(table)
         source = {"source": len(confirmed) + 1, "round": k, "row": decision["row"],
                   **{name: params[name]["median"] for name, _ in SOURCE_COLUMNS},
@@ -307,6 +319,7 @@ def run_rounds(ctx, *, scan_stage, followup_stage, runner_options, joint_followu
         entry["confirmed_source"] = source["source"]
         confirmed.append(source)
         signals.append(signal)
+        kept.append([d[:KEPT_DRAWS] for d in draws])
         if len(confirmed) >= max_sources:
             stopped = f"round {k}: max_sources = {max_sources} sources confirmed"
             break
@@ -317,7 +330,7 @@ def run_rounds(ctx, *, scan_stage, followup_stage, runner_options, joint_followu
         joint = joint_followup(ctx, confirmed)
     _write_sources(stage_dir, ctx.run_dir, confirmed)
     if signals:
-        _write_signal(stage_dir / "subtracted_signal.ecsv", base, signals)
+        _write_signal(stage_dir / "subtracted_signal.ecsv", base, signals, kept)
     summary = {"detection_rule": rule, "detection_fap": detection_fap, "detection_log_bayes_factor": detection_lnb,
                "max_sources": max_sources, "fap_threshold": fap_threshold, "n_rounds": len(rounds),
                "n_confirmed": len(confirmed), "stopped": stopped, "rounds": rounds, "confirmed": confirmed,
@@ -359,7 +372,7 @@ def _write_sources(stage_dir, run_dir, confirmed):
     write_table_atomic(Path(run_dir) / "confirmed_sources.ecsv", table)
 
 
-def _write_signal(path, array, signals):
+def _write_signal(path, array, signals, kept=()):
     names, mjd, total = [], [], []
     per_source = [[] for _ in signals]
     for i, p in enumerate(array):
@@ -377,11 +390,17 @@ def _write_signal(path, array, signals):
         t[f"source_{j}"].unit = "s"
     t["total"] = np.concatenate(total)
     t["total"].unit = "s"
+    n_kept = min((d.shape[0] for source in kept for d in source), default=0)
+    for k in range(n_kept):   # one posterior draw of every source, summed: an alternative to the total
+        t[f"draw_{k + 1}"] = np.concatenate([sum(source[i][k] for source in kept) for i in range(len(array))])
+        t[f"draw_{k + 1}"].unit = "s"
     t.meta["description"] = ("signal subtracted from the residuals after each confirmed source (posterior-median "
-                             "signal per TOA, Earth + pulsar term, after the timing-model fit) and their sum [s]")
+                             "signal per TOA, Earth + pulsar term, after the timing-model fit) and their sum [s]; "
+                             "draw_K: the sum of one posterior draw of each source (for the limits' subtraction "
+                             "error)")
     write_table_atomic(path, t)
 
 
 __all__ = ["run_rounds", "detection_decision", "detection_rule_text", "empirical_fap_of", "posterior_summary",
            "read_posterior", "subtracted_array", "read_subtracted_signal", "sources_table", "SOURCE_COLUMNS",
-           "PRODUCTS"]
+           "PRODUCTS", "KEPT_DRAWS", "kept_draw_columns"]
