@@ -264,3 +264,34 @@ def test_command_line_overrides_the_rounds_section(tmp_path):
     assert with_rounds(cfg, args).rounds == {"max_sources": 1, "detection_fap": 0.01, "detection_log_bayes_factor": 8.0}
     with pytest.raises(InputError, match="--detection-fap"):
         with_rounds(cfg, parser.parse_args(["--detection-fap", "0"]))
+
+
+def test_posterior_signal_uses_the_posterior_files_pulsar_columns(base):
+    """A 'posterior' of identical rows at a binary, with its pulsar-term phases and distances as the
+    follow-up's posterior.ecsv columns (pulsar_phase_NAME, distance_NAME): every draw is the binary's signal
+    evaluated directly by cwsearch.physics.waveform.residuals (checked against the retarded-time evaluation in
+    tests/test_waveform.py) after the timing-model fit, to 1e-9 of its peak."""
+    from cwsearch.inference.likelihood import Likelihood
+    from cwsearch.inference.posterior_signal import median_signal, signal_draws
+    from cwsearch.physics.noise import NoiseWeighting
+    from cwsearch.physics.simulate import postfit
+
+    phases = list(np.random.default_rng(8).uniform(0, np.pi, len(base)))
+    binary = Binary(ra=2.0, dec=0.4, gw_frequency=7 / base.span, chirp_mass=4e8, strain=3e-14, inclination=0.8,
+                    polarization=0.6, phase=1.0, pulsar_phases=phases)
+    true = [postfit(p, s) for p, s in zip(base, binary_residuals(base, binary))]
+    n = 3
+    table = Table({"ra": [np.degrees(binary.ra)] * n, "dec": [np.degrees(binary.dec)] * n,
+                   "frequency": [binary.gw_frequency] * n, "chirp_mass": [binary.chirp_mass] * n,
+                   "strain": [binary.strain] * n, "inclination": [binary.inclination] * n,
+                   "polarization": [binary.polarization] * n, "phase": [binary.phase] * n})
+    for p, phase in zip(base, phases):
+        table[f"distance_{p.name}"] = [p.distance] * n
+        table[f"pulsar_phase_{p.name}"] = [phase] * n
+    like = Likelihood(base, NoiseWeighting(base, NOISE))
+    draws = signal_draws(like, base, table, n_draws=n, seed=2)
+    medians = median_signal(like, base, table, n_draws=n, seed=2)
+    for d, m, t in zip(draws, medians, true):
+        assert d.shape == (n, t.size)
+        np.testing.assert_allclose(d, np.broadcast_to(t, d.shape), rtol=0, atol=1e-9 * np.abs(t).max())
+        np.testing.assert_allclose(m, t, rtol=0, atol=1e-9 * np.abs(t).max())

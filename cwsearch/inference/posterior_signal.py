@@ -5,10 +5,13 @@ subtract-and-rescan rounds (``job/rounds.py``, docs/design.md §14), which subtr
 signal of a confirmed source from the residuals before the next scan.
 
 Each posterior draw is a full Earth + pulsar-term signal (:func:`cwsearch.physics.waveform.residual_basis`
-times :func:`cwsearch.physics.waveform.basis_coefficients`). The likelihood marginalises the pulsar-term
-phases (docs/design.md §7), so each draw gets its pulsar phases drawn from their conditional posterior given
-the draw's eight parameters: each pulsar's own likelihood on a grid of :data:`PHASE_POINTS` phases over
-[0, π) (uniform prior); for a Hellings–Downs background the cross-pulsar terms are left out of this one step.
+times :func:`cwsearch.physics.waveform.basis_coefficients`). When the posterior table carries every pulsar's
+``distance_NAME`` [kpc] and ``pulsar_phase_NAME`` [rad] (the follow-up's ``posterior.ecsv``: sampled or
+catalogue distances, coherent or conditionally drawn phases), each draw uses its own row's values. Otherwise
+(an older posterior file) the pulsar-term phases, which the likelihood marginalises (docs/design.md §7), are
+drawn here from their conditional posterior given the draw's eight parameters: each pulsar's own likelihood
+on a grid of :data:`PHASE_POINTS` phases over [0, π) (uniform prior), at the catalogue distances; for a
+Hellings–Downs background the cross-pulsar terms are left out of this one step.
 Every signal passes through the pulsar's timing-model fit (:func:`cwsearch.physics.simulate.postfit`), as
 the residuals did.
 
@@ -70,6 +73,24 @@ def signal_draws(likelihood, array, table, n_draws=RESIDUAL_DRAWS, seed=0):
     if not pick.size:
         return out
     pulsar_term = bool(likelihood.pulsar_term)
+    own = pulsar_term and all(f"pulsar_phase_{p.name}" in table.colnames and f"distance_{p.name}" in table.colnames
+                              for p in array)
+    if own:
+        own_phase = np.column_stack([np.asarray(table[f"pulsar_phase_{p.name}"], dtype=float)[pick] for p in array])
+        own_distance = np.column_stack([np.asarray(table[f"distance_{p.name}"], dtype=float)[pick] for p in array])
+        own = bool(np.all(np.isfinite(own_phase)) and np.all(own_distance > 0))
+    if own:
+        fp_all, fc_all, odp = waveform.antenna_pattern(ra, dec, array.positions)
+        for k in range(pick.size):
+            fp, fc = fp_all[k], fc_all[k]
+            for i, p in enumerate(array):
+                basis, _ = waveform.residual_basis(p.toas, likelihood.reference_time, col["frequency"][k],
+                                                   col["chirp_mass"][k], own_distance[k, i], odp[k, i],
+                                                   likelihood.evolution)
+                coeffs = waveform.basis_coefficients(col["strain"][k], col["inclination"][k], col["polarization"][k],
+                                                     col["phase"][k], own_phase[k, i], fp[i], fc[i], True)
+                out[i][k] = postfit(p, basis @ np.ravel(coeffs))
+        return out
     # per-pulsar products (d|b_j), (b_i|b_j) of every draw at once: the sampler's batched path
     fplus, fcross, dvec, gmat = likelihood.shape_batch(ra, dec, col["frequency"], col["chirp_mass"])
     _, _, odp = waveform.antenna_pattern(ra, dec, array.positions)

@@ -26,6 +26,14 @@ it from an empty folder. Because a downstream stage hashes its upstream
 *products*, re-running an upstream stage that produces the same products
 (same seed, same options) does not invalidate the rest.
 
+The rounds step. ``rounds`` (:mod:`cwsearch.job.rounds`, docs/design.md §14) is the pipeline's own step
+after the follow-up, on whenever the follow-up is in the run's stages: the detection rule, subtract and
+rescan. It hashes the scan's and follow-up's products, ``[rounds]`` and the scan and follow-up options; its
+products (``confirmed_sources.ecsv``, ``subtracted_signal.ecsv``) enter the input hashes of the limits and
+targets stages, which work on the data with the confirmed signals subtracted (:func:`analysis_array`), only
+when a source is confirmed. With two or more confirmed sources it calls :func:`_joint_followup`, the one
+place where the joint multi-source follow-up goes.
+
 Resume. ``.stage.json`` is removed before a stage starts and written only
 after the stage has finished (all files are written atomically), so a run
 killed at any moment leaves finished stages marked done and the interrupted
