@@ -233,7 +233,11 @@ def test_run_from_followup_posterior_writes_outputs(tmp_path, capsys):
 
     rng = np.random.default_rng(3)
     cat = write_catalogue(tmp_path / "c.csv", rng)
-    write_posterior(tmp_path / "run" / "followup" / "posterior.ecsv", synthetic_posterior(rng, n=3000))
+    posterior = synthetic_posterior(rng, n=3000)
+    write_posterior(tmp_path / "run" / "followup" / "posterior.ecsv", posterior)
+    from cwsearch.stages.followup.stage import sky_summary
+
+    sky = sky_summary(np.degrees(posterior.ra), np.degrees(posterior.dec), tmp_path / "run" / "followup")  # the map
     (tmp_path / "run" / "followup" / "summary.json").write_text(json.dumps(
         {"model": {"log10_frequency_band": [-8.1, -7.8], "chirp_mass_range": [1e7, 1e11],
                    "strain_range": [1e-18, 1e-11], "strain_prior": "log-uniform"}}))
@@ -248,7 +252,23 @@ def test_run_from_followup_posterior_writes_outputs(tmp_path, capsys):
                 "distance_consistency", "mass_consistency", "period_consistency", "coalescence_ok"):
         assert col in t.colnames
     assert t["name"][0] == "HOST"
+    # the follow-up's localisation map is used: each galaxy's credible level in posterior_sky.fits, checked
+    # against the map read back with astropy (definition: probability of all pixels at least as probable)
+    from astropy.io import fits as pyfits
+    from astropy_healpix import HEALPix
+    import astropy.units as u
+
+    with pyfits.open(tmp_path / "run" / "followup" / "posterior_sky.fits") as hdul:
+        prob = np.asarray(hdul[1].data["PROB"], dtype=float)
+        nside = int(hdul[1].header["NSIDE"])
+    pix = HEALPix(nside=nside, order="ring").lonlat_to_healpix(np.asarray(t["ra"]) * u.deg, np.asarray(t["dec"]) * u.deg)
+    want = [prob[prob >= prob[k]].sum() / prob.sum() if prob[k] > 0 else 1.0 for k in pix]
+    np.testing.assert_allclose(t["map_credible_level"], want, rtol=1e-9)
     summary = json.loads((tmp_path / "run" / "hosts" / "hosts_summary.json").read_text())
+    fmap = summary["candidates"][0]["followup_map"]
+    assert fmap["credible_area_50_deg2"] == pytest.approx(sky["credible_area_50_deg2"], rel=1e-9)
+    assert fmap["credible_area_90_deg2"] == pytest.approx(sky["credible_area_90_deg2"], rel=1e-9)
+    assert summary["candidates"][0]["implied_distance_mpc"]["median"] > 0
     assert summary["localisation"] == "posterior"
     prior = summary["candidates"][0]["search_prior"]
     assert prior["source"] == "follow-up summary.json"

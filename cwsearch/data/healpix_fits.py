@@ -96,4 +96,45 @@ def credible_area(probability, level=0.9) -> float:
     return float(n * 4 * np.pi / p.size * (180 / np.pi) ** 2)
 
 
-__all__ = ["write_healpix_map", "read_healpix_map", "posterior_sky_map", "credible_area"]
+def credible_levels(probability):
+    """Per pixel, the probability of the smallest credible region that contains it (the pixel's own and
+    every pixel at least as probable; 1 for empty pixels): a position is inside the X % region where
+    this is ≤ X/100."""
+    p = np.asarray(probability, dtype=float)
+    if p.sum() <= 0:
+        return np.ones_like(p)
+    ranked = np.sort(p)[::-1]
+    cum = np.cumsum(ranked) / p.sum()
+    # ties count together: the last position of the pixel's value in the ranking
+    out = cum[np.searchsorted(-ranked, -p, side="right") - 1]
+    return np.where(p > 0, out, 1.0)
+
+
+def read_probability_map(path):
+    """``(nside, probability per pixel summing to 1)`` of a posterior map written by the follow-up
+    (column ``PROB``), or None when ``path`` is not a regular file or not a usable map."""
+    from pathlib import Path
+
+    path = Path(path)
+    if not path.is_file() or path.is_symlink() or path.stat().st_size > 512 * 2**20:
+        return None
+    try:
+        maps, header = read_healpix_map(path)
+        prob = np.asarray(maps["PROB"], dtype=float)
+        nside = int(header.get("NSIDE") or round(np.sqrt(prob.size / 12)))
+    except (OSError, KeyError, ValueError, TypeError):
+        return None
+    if prob.size != 12 * nside ** 2 or not np.all(np.isfinite(prob)) or prob.min() < 0 or not prob.sum() > 0:
+        return None
+    return nside, prob / prob.sum()
+
+
+def probability_at(nside, probability, ra, dec):
+    """Credible level (:func:`credible_levels`) of the pixels holding positions ``ra``, ``dec`` [rad]."""
+    pix = np.asarray(HEALPix(nside=int(nside), order="ring").lonlat_to_healpix(
+        np.asarray(ra, dtype=float) * u.rad, np.asarray(dec, dtype=float) * u.rad))
+    return credible_levels(probability)[pix]
+
+
+__all__ = ["write_healpix_map", "read_healpix_map", "posterior_sky_map", "credible_area", "credible_levels",
+           "read_probability_map", "probability_at"]

@@ -196,6 +196,7 @@ def _source(targets, group) -> dict:
     sky = summary.get("sky")
     if sky:
         src["position"] = {"source": "posterior", "ra": sky["ra"], "dec": sky["dec"],
+                           "credible_area_50_deg2": sky.get("credible_area_50_deg2"),
                            "credible_area_90_deg2": sky.get("credible_area_90_deg2"),
                            "radius_90_deg": sky.get("radius_90_deg")}
     elif params.get("ra") and params.get("dec"):
@@ -296,13 +297,22 @@ def headline_result(run_dir, reports=None) -> dict:
     return head
 
 
+def areas_text(pos) -> str:
+    """'50 % / 90 % credible areas A / B deg²' (or just the 90 % one from an older summary)."""
+    a50, a90 = pos.get("credible_area_50_deg2"), pos.get("credible_area_90_deg2")
+    if a90 is None:
+        return ""
+    if a50 is None:
+        return f"90 % credible area {a90:.3g} deg²"
+    return f"50 % / 90 % credible areas {a50:.3g} / {a90:.3g} deg²"
+
+
 def _pos_text(pos) -> str:
     if not pos or pos.get("ra") is None:
         return ""
     text = f"ra = {pos['ra']:.1f}°, dec = {pos['dec']:.1f}°"
     if pos.get("source") == "posterior":
-        area = pos.get("credible_area_90_deg2")
-        text += " (posterior mean direction" + (f", 90 % credible area {area:.3g} deg²)" if area else ")")
+        text += " (posterior mean direction" + (f", {areas_text(pos)})" if areas_text(pos) else ")")
     else:
         text += " (scan pixel" + (f", nside {pos['nside']})" if pos.get("nside") else ")")
     return text
@@ -361,5 +371,5 @@ def format_headline(head: dict) -> str:
     return "\n".join(lines)
 
 
-__all__ = ["headline_result", "format_headline", "fap_text", "sampler_health", "merge_sources", "same_source",
+__all__ = ["headline_result", "areas_text", "format_headline", "fap_text", "sampler_health", "merge_sources", "same_source",
            "followup_targets", "COLD_SWAP_MIN", "PAIR_SWAP_MIN", "HOST_MIN_EFFECTIVE"]

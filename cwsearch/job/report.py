@@ -52,7 +52,7 @@ from markupsafe import escape
 from .. import __version__
 from ..core.fileio import write_text_atomic
 from ..data.truth import injected_noise
-from .headline import COLD_SWAP_MIN, PAIR_SWAP_MIN, followup_targets, format_headline, headline_result, merge_sources, sampler_health
+from .headline import COLD_SWAP_MIN, PAIR_SWAP_MIN, areas_text, followup_targets, format_headline, headline_result, merge_sources, sampler_health
 from .runfolder import read_json as _read_json
 from .runfolder import read_table as _read_table
 
@@ -434,8 +434,8 @@ def first_screen(run: _Run) -> dict:
         if pos.get("ra") is not None:
             where = f"ra {pos['ra']:.1f}°, dec {pos['dec']:.1f}°"
             if pos.get("source") == "posterior":
-                area = pos.get("credible_area_90_deg2")
-                where += " (posterior mean direction" + (f"; 90 % credible area {area:.3g} deg²)" if area else ")")
+                areas = areas_text(pos)
+                where += " (posterior mean direction" + (f"; {areas})" if areas else ")")
             else:
                 where += " (scan pixel; no follow-up posterior)"
             where += (f" (truth ra {truth['ra']:.1f}°, dec {truth['dec']:.1f}°)" if truth and "ra" in truth else "")
@@ -840,8 +840,10 @@ def _followup(run: _Run):
             if sky:
                 sub["paragraphs"].append(
                     f"Sky position: ra {sky['ra']:.2f}°, dec {sky['dec']:.2f}° (mean direction of the samples), "
-                    f"90 % of the samples within {sky['radius_90_deg']:.3g}° of it, 90 % credible area "
-                    f"{sky['credible_area_90_deg2']:.3g} deg² (HEALPix nside {sky['map_nside']}, "
+                    f"90 % of the samples within {sky['radius_90_deg']:.3g}° of it, "
+                    + (f"50 % credible area {sky['credible_area_50_deg2']:.3g} deg², "
+                       if sky.get("credible_area_50_deg2") is not None else "")
+                    + f"90 % credible area {sky['credible_area_90_deg2']:.3g} deg² (HEALPix nside {sky['map_nside']}, "
                     f"{sky['pixel_area_deg2']:.3g} deg² pixels; map in {sky.get('map_file', 'the run folder')})"
                     + _sky_truth_text(sky, run.truth) + ".")
             sub["paragraphs"].extend(bg_text)

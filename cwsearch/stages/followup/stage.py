@@ -455,8 +455,8 @@ SAMPLES_PER_PIXEL = 10
 
 def sky_summary(ra_deg, dec_deg, folder=None, nside=SKY_MAP_NSIDE):
     """Posterior sky position: the direction of the mean unit vector of the samples (immune to the
-    0/360° wrap), the radius around it holding 90 % of the samples, and the 90 % credible area [deg²]:
-    the smallest set of HEALPix pixels holding 90 % of the samples, at the finest nside (≤ ``nside``)
+    0/360° wrap), the radius around it holding 90 % of the samples, and the 50 % and 90 % credible areas
+    [deg²]: the smallest sets of HEALPix pixels holding 50 % and 90 % of the samples, at the finest nside (≤ ``nside``)
     whose occupied pixels hold :data:`SAMPLES_PER_PIXEL` samples on average (so a poorly sampled
     posterior gets a coarse map and an honest, large area). With ``folder`` the map is also written as
     ``posterior_sky.fits`` (HEALPix FITS)."""
@@ -477,11 +477,12 @@ def sky_summary(ra_deg, dec_deg, folder=None, nside=SKY_MAP_NSIDE):
         nside //= 2
     out = {"ra": float(np.degrees(ra0)), "dec": float(np.degrees(dec0)),
            "median_offset_deg": float(np.median(sep)), "radius_90_deg": float(np.percentile(sep, 90)),
+           "credible_area_50_deg2": credible_area(prob, 0.5),
            "credible_area_90_deg2": credible_area(prob, 0.9), "map_nside": int(nside),
            "pixel_area_deg2": float(4 * np.pi / prob.size * (180 / np.pi) ** 2),
            "n_samples": int(ra.size),
-           "method": "mean unit vector of the samples; 90 % area from the smallest set of HEALPix pixels "
-                     f"holding 90 % of the samples, at the finest nside with >= {SAMPLES_PER_PIXEL} samples per "
+           "method": "mean unit vector of the samples; 50 % and 90 % areas from the smallest sets of HEALPix "
+                     f"pixels holding 50 % and 90 % of the samples, at the finest nside with >= {SAMPLES_PER_PIXEL} samples per "
                      "occupied pixel"}
     if folder is not None:
         write_healpix_map(Path(folder) / "posterior_sky.fits", {"PROB": prob}, nside=nside,

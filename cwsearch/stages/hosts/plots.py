@@ -28,7 +28,7 @@ from pathlib import Path
 import numpy as np
 
 from ...core.plotting import pyplot, save_figure, sky_figure, sky_map
-from ...data.healpix_fits import posterior_sky_map, read_healpix_map
+from ...data.healpix_fits import posterior_sky_map, read_probability_map
 from ...physics import sky as sky_geometry
 from ...physics.relations import chirp_mass_log_density, LN10
 from ...physics.sky import unit_vectors
@@ -80,16 +80,9 @@ def followup_sky_map(res):
     ``posterior_sky.fits`` when it sits next to the posterior file, else a histogram of the samples at the
     finest nside (at most 64) whose occupied pixels hold at least 10 samples on average."""
     loc = res.localisation
-    fits_path = Path(loc.source).parent / "posterior_sky.fits" if loc.kind == "posterior" else None
-    if fits_path is not None and fits_path.is_file():
-        try:
-            maps, header = read_healpix_map(fits_path)
-            prob = np.asarray(maps["PROB"], dtype=float)
-            nside = int(header.get("NSIDE") or round(math.sqrt(prob.size / 12)))
-            if prob.size == 12 * nside ** 2 and prob.sum() > 0:
-                return nside, prob / prob.sum(), "follow-up posterior_sky.fits"
-        except (OSError, KeyError, ValueError, TypeError):
-            pass
+    found = read_probability_map(Path(loc.source).parent / "posterior_sky.fits") if loc.kind == "posterior" else None
+    if found is not None:
+        return found[0], found[1], "follow-up posterior_sky.fits"
     nside = 64      # coarsened until the occupied pixels hold >= 10 samples on average, as the follow-up's map
     prob = posterior_sky_map(loc.ra, loc.dec, nside)
     while nside > 1 and len(loc) / max(np.count_nonzero(prob), 1) < 10:

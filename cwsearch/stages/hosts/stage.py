@@ -88,6 +88,7 @@ from ...core.errors import InputError
 from ...core.safeio import escape_text, read_input_text, require_finished
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...data.catalog import read_catalog
+from ...data.healpix_fits import credible_area, probability_at, read_probability_map
 from ...data.truth import injected_binary
 from ...inference.noisefit import stage_noise_statement
 from ...physics import fstat
@@ -836,6 +837,13 @@ def rank_candidate(loc, catalog, model, options, rng, *, n_catalogue):
     table["log10_bh_mass"] = mu[order]
     table["mass_proxy"] = np.where(used[order] == "", "none", used[order])
     table["has_period"] = np.isfinite(galaxies.period[order])
+    # the follow-up's HEALPix localisation product, where there is one: each galaxy's credible level in it
+    followup_map = (read_probability_map(Path(loc.source).parent / "posterior_sky.fits")
+                    if loc.kind == "posterior" else None)
+    if followup_map is not None:
+        table["map_credible_level"] = probability_at(followup_map[0], followup_map[1],
+                                                     np.radians(np.asarray(table["ra"], dtype=float)),
+                                                     np.radians(np.asarray(table["dec"], dtype=float)))
     table.meta["description"] = ("Host-galaxy ranking: galaxies inside the 99% sky region, most probable first. "
                                  "log_bayes_factor is against an uncatalogued host; the five factors multiply to "
                                  "exp(log_bayes_factor). log10_bh_mass is the expected total black-hole mass.")
@@ -871,8 +879,21 @@ def rank_candidate(loc, catalog, model, options, rng, *, n_catalogue):
         "probability_in_listed_galaxies": float(np.nansum(p_gal[order])) if order.size else 0.0,
         "not_catalogued_coalescence_fraction": scores["coalescence_out"],
         "implied_distance_beyond_limit_fraction": float(np.mean(d_impl > model.distance_limit)),
+        "implied_distance_mpc": {"median": float(np.median(d_impl)),
+                                 "interval_90": [float(v) for v in np.percentile(d_impl, [5, 95])],
+                                 "source": "luminosity distance implied by each sample's strain, chirp mass and "
+                                           "frequency (enters distance_consistency)"},
         "best_host": best,
     }
+    if followup_map is not None:
+        nside_map, prob_map = followup_map
+        summary["followup_map"] = {
+            "file": str(Path(loc.source).parent / "posterior_sky.fits"), "nside": int(nside_map),
+            "credible_area_50_deg2": credible_area(prob_map, 0.5),
+            "credible_area_90_deg2": credible_area(prob_map, 0.9),
+            "n_listed_inside_90": int(np.count_nonzero(np.asarray(table["map_credible_level"]) <= 0.9)),
+            "use": "each listed galaxy's credible level in the map (map_credible_level); the sky factor itself "
+                   "uses a kernel density of the same samples (smoother than the map's pixels)"}
     if best is not None and best["n_effective"] < 20:
         summary["warning"] = (f"the best host rests on only {best['n_effective']:.0f} effective samples; "
                               "its probability is noisy (more posterior samples would help)")
