@@ -22,6 +22,7 @@ Examples
 from __future__ import annotations
 
 import io
+from pathlib import Path
 
 import astropy.units as u
 import numpy as np
@@ -113,8 +114,6 @@ def credible_levels(probability):
 def read_probability_map(path):
     """``(nside, probability per pixel summing to 1)`` of a posterior map written by the follow-up
     (column ``PROB``), or None when ``path`` is not a regular file or not a usable map."""
-    from pathlib import Path
-
     path = Path(path)
     if not path.is_file() or path.is_symlink() or path.stat().st_size > 512 * 2**20:
         return None
