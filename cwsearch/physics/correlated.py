@@ -82,7 +82,7 @@ from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, replace
 
 import numpy as np
-from numba import njit, prange
+from numba import njit
 from scipy.linalg import cho_solve, lapack, solve_triangular
 
 from . import fstat
@@ -103,6 +103,9 @@ def _cpu_count():
 
 #: the array Woodbury matrix S̃ is factorised on every core from this size (N_psr · 2K) up
 THREADED_CHOLESKY_SIZE = 2000
+
+#: frequencies per chunk of the cross-pulsar blocks W_pq(f) (:meth:`ArrayWeighting.scan_corrections`)
+TRIG_CHUNK = 64
 
 
 # ---------------------------------------------------------------- correlations
@@ -409,7 +412,10 @@ class ArrayWeighting:
         return self._psi
 
     def _correction_matrix(self):
-        inv, info = lapack.dpotri(self._chol, lower=1)
+        # the inverse of a large S̃ on every core, as its Cholesky factor (_factorise): 3000 x 3000 took
+        # 0.27 s on one thread and 0.15 s on two (idle 2-core machine); the small products after it on one
+        with fstat._blas_threads(_cpu_count() if self.rank >= THREADED_CHOLESKY_SIZE else 1):
+            inv, info = lapack.dpotri(self._chol, lower=1)
         if info != 0:
             raise np.linalg.LinAlgError(f"inverting the array Woodbury matrix failed (info {info})")
         x = np.asfortranarray(inv).T      # C-ordered view of S̃⁻¹ (Fortran lower triangle = its upper one)
@@ -419,11 +425,12 @@ class ArrayWeighting:
         n_psr, rank = lg.shape
         size = rank * n_c
         # Ψ = D̃ A S̃⁻¹ Aᵀ D̃ with A = L_Γ ⊗ I_2K and D̃ = I ⊗ diag(√φ): A acts on the slow (Γ-mode)
-        # index, so each product with A is one (P × r) @ (r × ·) matrix product; Aᵀ through A (A X)ᵀ (X symmetric)
-        y = (lg @ x.reshape(rank, n_c * size)).reshape(n_psr * n_c, size)            # A X
-        yt = np.ascontiguousarray(y.T)
+        # index, so A X is one (P × r) @ (r × ·) product and (A X) Aᵀ one batch of (P × r) @ (r × 2K)
+        # products, one per row (p, i) of A X viewed as (r, 2K): no transpose of the large matrix
+        y = (lg @ x.reshape(rank, n_c * size)).reshape(n_psr * n_c, rank, n_c)       # A X
+        del x, inv
+        psi = np.matmul(lg, y).reshape(n_psr * n_c, n_psr * n_c)                     # A X Aᵀ
         del y
-        psi = (lg @ yt.reshape(rank, n_c * n_psr * n_c)).reshape(n_psr * n_c, n_psr * n_c)   # A X Aᵀ
         root = np.tile(np.sqrt(self.fourier_variance), n_psr)
         psi *= root[:, None]
         psi *= root[None, :]
@@ -453,7 +460,18 @@ class ArrayWeighting:
         tilde = self.weighted_data(residuals)
         if tilde[0].ndim == 2:
             return fstat.project_batch(self.engine, frequencies, tilde, on_pulsar=on_pulsar)
-        return fstat.project(self.engine, frequencies, tilde, on_pulsar=on_pulsar)
+        # the same pass forms u_p = F_pᵀK_p⁻¹[sin | cos] from each pulsar's sines and cosines, kept for
+        # scan_corrections on these frequencies (the sines and cosines are made once)
+        frequencies = np.ascontiguousarray(frequencies, dtype=float)
+        kinv_fourier = self.weighted_fourier()
+        u = np.zeros((self.n_pulsars, self.n_fourier, 2 * frequencies.size))
+
+        def on_basis(p, start, stop, basis):
+            u[p] += kinv_fourier[p][start:stop].T @ basis
+
+        proj = fstat.project(self.engine, frequencies, tilde, on_pulsar=on_pulsar, on_basis=on_basis)
+        self._trig_products = (frequencies.tobytes(), u)
+        return proj
 
     def weighted_fourier(self):
         """``K_p⁻¹ F_p`` per pulsar (n_p, 2K), cached: then ``F_pᵀK_p⁻¹ x = (K_p⁻¹F_p)ᵀ x``."""
@@ -468,7 +486,12 @@ class ArrayWeighting:
         return self._kinv_fourier
 
     def trig_fourier_products(self, frequencies):
-        """``u_p = F_pᵀ K_p⁻¹ [sin | cos]`` of 2πf(t − t0) for every frequency: (P, 2K, 2F)."""
+        """``u_p = F_pᵀ K_p⁻¹ [sin | cos]`` of 2πf(t − t0) for every frequency: (P, 2K, 2F). Those of
+        the last :meth:`projections` are handed over (once) when the frequencies are the same."""
+        frequencies = np.ascontiguousarray(frequencies, dtype=float)
+        kept = self.__dict__.pop("_trig_products", None)
+        if kept is not None and kept[0] == frequencies.tobytes():
+            return kept[1]
         t0 = self.array.reference_time
         out = np.empty((self.n_pulsars, self.n_fourier, 2 * len(frequencies)))
         pairs = list(zip(self.engine, self.weighted_fourier()))
@@ -489,19 +512,25 @@ class ArrayWeighting:
         n_freq, n_psr, n_c = frequencies.size, self.n_pulsars, self.n_fourier
         u = np.ascontiguousarray(self.trig_fourier_products(frequencies))
         psi = self.correction_matrix()
-        out = np.empty((n_freq, 4, n_psr, n_psr))
+        # stored (P, P, 4, F), contiguous in frequency (where the kernel writes), returned as the (F, 4, P, P) view
+        store = np.empty((n_psr, n_psr, 4, n_freq))
 
         # W_ab(q, p) = W_ba(p, q): the blocks p ≤ q give the rest, so for each q only the rows
         # p ≤ q of Ψ_{·q} u_q are formed (half the products). One q per job, a job per core, each
         # with single-threaded BLAS and a GIL-free kernel; jobs write disjoint blocks of ``out``.
+        # Frequencies go in chunks of TRIG_CHUNK, so that each product (rows p ≤ q, chunk) stays in cache.
+        chunks = [(f0, min(n_freq, f0 + TRIG_CHUNK)) for f0 in range(0, n_freq, TRIG_CHUNK)]
+
         def column(q):
-            v = (psi[q * n_c:(q + 1) * n_c, :(q + 1) * n_c].T @ u[q]).reshape(q + 1, n_c, 2 * n_freq)
-            _pair_blocks(u, v, q, n_freq, out)
+            rows = psi[q * n_c:(q + 1) * n_c, :(q + 1) * n_c].T
+            for f0, f1 in chunks:
+                uq = np.concatenate([u[q, :, f0:f1], u[q, :, n_freq + f0:n_freq + f1]], axis=1)
+                _pair_blocks(u, (rows @ uq).reshape(q + 1, n_c, 2 * (f1 - f0)), q, f0, n_freq, store)
 
         workers = int(max(1, min(_cpu_count(), n_psr)))
         with fstat._blas_threads(1), ThreadPoolExecutor(max_workers=workers) as pool:
             list(pool.map(column, range(n_psr - 1, -1, -1)))          # largest first
-        return out
+        return store.transpose(3, 2, 0, 1)
 
     # -- simulation
     def draw_background(self, seed=0):
@@ -534,37 +563,42 @@ def _mirror_upper(x):
 
 
 @njit(cache=True, nogil=True)
-def _pair_blocks(u, v, q, n_freq, out):
-    """out[f, ab, p, q] = Σ_i u[p, i, a·F+f] v[p, i, b·F+f] for a, b ∈ (sin, cos) and p ≤ q
-    (``v`` holds the rows p ≤ q of Ψ_{·q} u_q), mirrored as out[f, ba, q, p]. Serial and
-    GIL-free: :meth:`ArrayWeighting.scan_corrections` runs one q per thread."""
+def _pair_blocks(u, v, q, f0, n_freq, store):
+    """store[p, q, ab, f0 + f] = Σ_i u[p, i, a·F + f0 + f] v[p, i, b·fc + f] for a, b ∈ (sin, cos) and
+    p ≤ q (``v`` (q + 1, 2K, 2·fc) holds the rows p ≤ q of Ψ_{·q} u_q on the fc frequencies from
+    ``f0``), mirrored as store[q, p, ba, ·]. Serial and GIL-free: :meth:`ArrayWeighting.scan_corrections`
+    runs one q per thread."""
     n_c = u.shape[1]
+    fc = v.shape[2] // 2
     for p in range(q + 1):
-        ss = np.zeros(n_freq)
-        sc = np.zeros(n_freq)
-        cs = np.zeros(n_freq)
-        cc = np.zeros(n_freq)
+        ss = np.zeros(fc)
+        sc = np.zeros(fc)
+        cs = np.zeros(fc)
+        cc = np.zeros(fc)
         for i in range(n_c):
             up = u[p, i]
             vp = v[p, i]
-            for f in range(n_freq):          # contiguous in f: vectorised
-                us = up[f]
-                uc = up[n_freq + f]
+            for f in range(fc):          # contiguous in f: vectorised
+                us = up[f0 + f]
+                uc = up[n_freq + f0 + f]
                 vs = vp[f]
-                vc = vp[n_freq + f]
+                vc = vp[fc + f]
                 ss[f] += us * vs
                 sc[f] += us * vc
                 cs[f] += uc * vs
                 cc[f] += uc * vc
-        for f in range(n_freq):
-            out[f, 0, p, q] = ss[f]
-            out[f, 1, p, q] = sc[f]
-            out[f, 2, p, q] = cs[f]
-            out[f, 3, p, q] = cc[f]
-            out[f, 0, q, p] = ss[f]
-            out[f, 1, q, p] = cs[f]
-            out[f, 2, q, p] = sc[f]
-            out[f, 3, q, p] = cc[f]
+        a = store[p, q]
+        b = store[q, p]
+        for f in range(fc):
+            g = f0 + f
+            a[0, g] = ss[f]
+            a[1, g] = sc[f]
+            a[2, g] = cs[f]
+            a[3, g] = cc[f]
+            b[0, g] = ss[f]
+            b[1, g] = cs[f]
+            b[2, g] = sc[f]
+            b[3, g] = cc[f]
 
 
 # ---------------------------------------------------------------- Fe, Fp
@@ -586,54 +620,92 @@ def correlated_network(proj: fstat.Projections, corrections, fplus, fcross):
     return nvec, mmat
 
 
-@njit(cache=True, parallel=True)
-def _fe_correlated_products(nq, mq, yp, yx, fplus, fcross, n_chunk, n_sets, fe_out):
-    """Fe for every pixel, frequency of the chunk and residual set: M from the per-pulsar
-    GEMM products ``mq`` minus the cross-pulsar rowsums of ``yp = F+ W``, ``yx = Fx W`` (blocks
-    ss, sc, cc; the (+, ×) cs form is F+ᵀ W_cs Fx = Fxᵀ W_sc F+, a rowsum of ``yx``)."""
-    n_sky, n_psr = fplus.shape
-    for s in prange(n_sky):
-        sp = n_sky + s
-        sx = 2 * n_sky + s
+@njit(cache=True, nogil=True)
+def _pattern_pairs(fplus, fcross, s0, s1, csym, canti):
+    """Pattern products of pixels ``s0:s1`` for the pulsar pairs p ≤ q (``csym``, (3·b, P(P+1)/2), row
+    blocks ++, +×, ××) and p < q (``canti``, (b, P(P−1)/2)), pairs in the order of
+    ``numpy.triu_indices``: ``csym = (F^i_p F^j_q + F^i_q F^j_p)`` (halved for p = q) and
+    ``canti = F+_p F×_q − F+_q F×_p``. Then ``Σ_pq F^i_p F^j_q X_pq = csym · X_{p≤q}`` for a symmetric
+    X and ``Σ_pq F+_p F×_q A_pq = canti · A_{p<q}`` for an antisymmetric A. Serial, GIL-free."""
+    n_psr = fplus.shape[1]
+    b = s1 - s0
+    for s in range(s0, s1):
+        r = s - s0
+        k = 0
+        a = 0
+        for p in range(n_psr):
+            fp = fplus[s, p]
+            fx = fcross[s, p]
+            csym[r, k] = fp * fp
+            csym[b + r, k] = fp * fx
+            csym[2 * b + r, k] = fx * fx
+            k += 1
+            for q in range(p + 1, n_psr):
+                gp = fplus[s, q]
+                gx = fcross[s, q]
+                csym[r, k] = 2.0 * fp * gp
+                csym[b + r, k] = fp * gx + gp * fx
+                csym[2 * b + r, k] = 2.0 * fx * gx
+                canti[r, a] = fp * gx - gp * fx
+                k += 1
+                a += 1
+
+
+@njit(cache=True, nogil=True)
+def _pack_blocks(corrections, z, f0, f1, bsym, banti):
+    """The per-pair right factors of the sky GEMM for the frequencies ``f0:f1``: ``bsym`` (P(P+1)/2, 3·Fc),
+    columns (ss | sc | cc) × frequency, holds −W_pq (the sc block symmetrised) for p < q and
+    Z_p − W_pp for p = q, so that ``csym @ bsym`` is the whole symmetric part of M; ``banti``
+    (P(P−1)/2, Fc) the antisymmetric part ½(W_sc(p, q) − W_sc(q, p)). Serial; frequency innermost
+    (contiguous in the layout of :meth:`ArrayWeighting.scan_corrections`)."""
+    n_psr = z.shape[0]
+    fc = f1 - f0
+    k = 0
+    a = 0
+    for p in range(n_psr):
+        for f in range(fc):
+            g = f0 + f
+            bsym[k, f] = z[p, g, 0] - corrections[g, 0, p, p]
+            bsym[k, fc + f] = z[p, g, 1] - corrections[g, 1, p, p]
+            bsym[k, 2 * fc + f] = z[p, g, 2] - corrections[g, 3, p, p]
+        k += 1
+        for q in range(p + 1, n_psr):
+            for f in range(fc):
+                g = f0 + f
+                sc = corrections[g, 1, p, q]
+                cs = corrections[g, 1, q, p]
+                bsym[k, f] = -corrections[g, 0, p, q]
+                bsym[k, fc + f] = -0.5 * (sc + cs)
+                bsym[k, 2 * fc + f] = -corrections[g, 3, p, q]
+                banti[a, f] = 0.5 * (sc - cs)
+            k += 1
+            a += 1
+
+
+@njit(cache=True, nogil=True)
+def _fe_pair_products(nq, g, ga, n_chunk, n_sets, fe_out):
+    """Fe for a block of b pixels, every frequency of the chunk and residual set, from the GEMM products
+    ``nq`` (2b, 2·B·Fc: rows F+ | F×, columns (set, X|Y, frequency)), ``g = csym @ bsym`` (3b, 3·Fc:
+    rows ++ | +× | ××, columns ss | sc | cc) and ``ga = canti @ banti`` (b, Fc): M's (+×) sc entry is
+    ``g − ga`` and its cs entry ``g + ga`` (:func:`_pattern_pairs`, :func:`_pack_blocks`). Serial, GIL-free."""
+    b = ga.shape[0]
+    for r in range(b):
+        rp = b + r
+        rx = 2 * b + r
         for f in range(n_chunk):
-            b3 = 3 * f * n_psr
-            pp_ss = pp_sc = pp_cc = 0.0
-            px_ss = px_sc = px_cs = px_cc = 0.0
-            xx_ss = xx_sc = xx_cc = 0.0
-            for q in range(n_psr):
-                fp = fplus[s, q]
-                fx = fcross[s, q]
-                y0 = yp[s, b3 + q]
-                y1 = yp[s, b3 + n_psr + q]
-                y3 = yp[s, b3 + 2 * n_psr + q]
-                x0 = yx[s, b3 + q]
-                x1 = yx[s, b3 + n_psr + q]
-                x3 = yx[s, b3 + 2 * n_psr + q]
-                pp_ss += y0 * fp
-                pp_sc += y1 * fp
-                pp_cc += y3 * fp
-                px_ss += y0 * fx
-                px_sc += y1 * fx
-                px_cs += x1 * fp
-                px_cc += y3 * fx
-                xx_ss += x0 * fx
-                xx_sc += x1 * fx
-                xx_cc += x3 * fx
-            m00 = mq[s, f] - pp_ss
-            m01 = mq[s, n_chunk + f] - pp_sc
-            m11 = mq[s, 2 * n_chunk + f] - pp_cc
-            m02 = mq[sp, f] - px_ss
-            m03 = mq[sp, n_chunk + f] - px_sc
-            m12 = mq[sp, n_chunk + f] - px_cs
-            m13 = mq[sp, 2 * n_chunk + f] - px_cc
-            m22 = mq[sx, f] - xx_ss
-            m23 = mq[sx, n_chunk + f] - xx_sc
-            m33 = mq[sx, 2 * n_chunk + f] - xx_cc
-            fac = factor4(m00, m01, m02, m03, m11, m12, m13, m22, m23, m33)
-            for b in range(n_sets):
-                cx = 2 * b * n_chunk + f
+            sc = g[rp, n_chunk + f]
+            anti = ga[r, f]
+            fac = factor4(g[r, f], g[r, n_chunk + f], g[rp, f], sc - anti, g[r, 2 * n_chunk + f], sc + anti,
+                          g[rp, 2 * n_chunk + f], g[rx, f], g[rx, n_chunk + f], g[rx, 2 * n_chunk + f])
+            for k in range(n_sets):
+                cx = 2 * k * n_chunk + f
                 cy = cx + n_chunk
-                fe_out[b, s, f] = 0.5 * quad4(fac, nq[s, cx], nq[s, cy], nq[sp, cx], nq[sp, cy])
+                fe_out[k, r, f] = 0.5 * quad4(fac, nq[r, cx], nq[r, cy], nq[rp, cx], nq[rp, cy])
+
+
+#: pixels per block of the correlated sky kernel (one block per job; a block's pair products are
+#: 4·b·P²/2 numbers, 10 MB for b = 256 at 50 pulsars)
+SKY_PIXEL_BLOCK = 256
 
 
 def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, keep_map=True,
@@ -643,56 +715,53 @@ def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, ke
 
     ``proj`` from :meth:`ArrayWeighting.projections` (X, Y of the weighted data),
     ``corrections`` from :meth:`ArrayWeighting.scan_corrections` on the same frequencies.
-    Per chunk of frequencies: the per-pulsar sums as in :func:`cwsearch.physics.fstat.fe_sky`,
-    then for the pattern pairs (+,+), (+,×), (×,×) the cross-pulsar part
-    ``rowsum((P_i W_ab) ∘ P_j)`` — two matrix products ``F+ W`` and ``Fx W`` (3 blocks each:
-    ss, sc, cc; W_cs(p, q) = W_sc(q, p) gives the fourth) of (pixels × pulsars) by
-    (pulsars × pulsars·frequencies) — and a numba
-    kernel factors each corrected 4×4 M and evaluates ``Fe = ½ Nᵀ M⁺ N``.
+    The ten distinct entries of each pixel's M = Σ_pq F^i_p F^j_q (δ_pq Z_p − W_pq) are sums over
+    pulsar *pairs*: with the pair products of the patterns (:func:`_pattern_pairs`: p ≤ q for the
+    symmetric parts, p < q for the antisymmetric part of the sc block) and the pairs' blocks of
+    Z − W (:func:`_pack_blocks`), M of every pixel and frequency is two matrix products
+    (pixels × P(P+1)/2) @ (P(P+1)/2 × 3 frequencies) and (pixels × P(P−1)/2) @ (P(P−1)/2 ×
+    frequencies), about 5 P² multiply-adds per pixel and frequency in large GEMMs (docs/design.md
+    §5b); a numba kernel factors each 4×4 M and evaluates ``Fe = ½ Nᵀ M⁺ N``. Pixel blocks of
+    :data:`SKY_PIXEL_BLOCK` run on one thread per core, each with single-threaded BLAS.
     2Fe ~ χ²(4) in noise when C is the true covariance (Ellis, Siemens & Creighton 2012).
     ``on_block(f0, fe)`` as in :func:`cwsearch.physics.fstat.fe_sky`.
     """
-    fplus = np.ascontiguousarray(np.atleast_2d(fplus), dtype=float)
-    fcross = np.ascontiguousarray(np.atleast_2d(fcross), dtype=float)
+    fplus, fcross, x, y = fstat.sky_inputs(proj, fplus, fcross, keep_map)
     n_sky, n_psr = fplus.shape
-    x, y = proj.x, proj.y
-    if x.ndim == 2:
-        x, y = x[None], y[None]
-    n_sets, n_data_psr, n_freq = x.shape
-    if n_data_psr != n_psr or corrections.shape != (n_freq, 4, n_psr, n_psr):
+    n_sets, _, n_freq = x.shape
+    if corrections.shape != (n_freq, 4, n_psr, n_psr):
         raise ValueError("patterns, projections and corrections disagree in pulsars or frequencies")
-    if keep_map and n_sets != 1:
-        raise ValueError("keep_map needs a single residual set")
-    pn = np.vstack([fplus, fcross])
-    pm = np.vstack([fplus * fplus, fplus * fcross, fcross * fcross])
-    per_freq = n_sky * (4 * n_sets + 9 + 6 * n_psr)
-    n_chunk = int(max(1, min(n_freq, chunk_elements // per_freq)))
-    fe_map = np.empty((n_sky, n_freq), dtype=map_dtype) if keep_map else None
-    fe_max = np.empty((n_sets, n_freq))
-    best = np.empty((n_sets, n_freq), dtype=np.int64)
-    # the pattern-by-W product (the bulk of the work) runs as row blocks on one thread per core, each
-    # with single-threaded BLAS: threaded BLAS was measured 1.5x slower than one thread on the shared,
-    # loaded machine (busy-waiting workers), while independent blocks still use every free core
-    patterns = np.vstack([fplus, fcross])
-    workers = int(max(1, min(_cpu_count(), patterns.shape[0] // 256)))
-    edges = np.linspace(0, patterns.shape[0], workers + 1).astype(int)
+    corrections = np.asarray(corrections, dtype=float)
+    z = np.ascontiguousarray(proj.z, dtype=float)
+    n_sym, n_anti = n_psr * (n_psr + 1) // 2, n_psr * (n_psr - 1) // 2
+    edges = list(range(0, n_sky, SKY_PIXEL_BLOCK)) + [n_sky]
+    blocks = list(zip(edges[:-1], edges[1:]))
+    workers = int(max(1, min(_cpu_count(), len(blocks))))
+    size = min(SKY_PIXEL_BLOCK, n_sky)
+    # per frequency: the packed blocks, the Fe values, the data and each running job's products
+    per_freq = 3 * n_sym + n_anti + n_sets * (n_sky + 2 * n_psr) + workers * size * (10 + 4 * n_sets)
+    n_chunk = int(max(1, min(n_freq, (chunk_elements - workers * size * (n_sym + n_anti)) // per_freq)))
+    fe_map, fe_max, best = fstat.sky_outputs(n_sky, n_sets, n_freq, keep_map, map_dtype)
     with fstat._blas_threads(1), ThreadPoolExecutor(max_workers=workers) as pool:
         for f0 in range(0, n_freq, n_chunk):
             f1 = min(n_freq, f0 + n_chunk)
             fc = f1 - f0
-            data = np.stack([x[:, :, f0:f1], y[:, :, f0:f1]], axis=1)
-            data = np.ascontiguousarray(data.transpose(2, 0, 1, 3)).reshape(n_psr, 2 * n_sets * fc)
-            zc = np.ascontiguousarray(proj.z[:, f0:f1, :].transpose(0, 2, 1)).reshape(n_psr, 3 * fc)
-            nq = pn @ data
-            mq = pm @ zc
-            w = np.ascontiguousarray(corrections[f0:f1][:, [0, 1, 3]].transpose(2, 0, 1, 3))
-            w = w.reshape(n_psr, fc * 3 * n_psr)
-            prod = np.empty((patterns.shape[0], w.shape[1]))          # [F+ W; Fx W]
-            list(pool.map(lambda b: np.matmul(patterns[b[0]:b[1]], w, out=prod[b[0]:b[1]]),
-                          zip(edges[:-1], edges[1:])))
+            data = fstat.chunk_data(x, y, f0, f1)
+            bsym = np.empty((n_sym, 3 * fc))
+            banti = np.empty((n_anti, fc))
+            _pack_blocks(corrections, z, f0, f1, bsym, banti)
             fe = np.empty((n_sets, n_sky, fc))
-            _fe_correlated_products(nq, mq, prod[:n_sky], prod[n_sky:], fplus, fcross, fc, n_sets, fe)
-            fstat.store_sky_block(fe, f0, f1, best, fe_max, fe_map if keep_map else None, on_block, on_chunk)
+
+            def job(block):
+                s0, s1 = block
+                csym = np.empty((3 * (s1 - s0), n_sym))
+                canti = np.empty((s1 - s0, n_anti))
+                _pattern_pairs(fplus, fcross, s0, s1, csym, canti)
+                nq = np.vstack([fplus[s0:s1], fcross[s0:s1]]) @ data
+                _fe_pair_products(nq, csym @ bsym, canti @ banti, fc, n_sets, fe[:, s0:s1])
+
+            list(pool.map(job, blocks))
+            fstat.store_sky_block(fe, f0, f1, best, fe_max, fe_map, on_block, on_chunk)
     return fstat.SkyScan(fe_map, fe_max, best)
 
 
@@ -719,7 +788,7 @@ def correlated_fe(weighting: ArrayWeighting, frequencies, fplus, fcross, **kwarg
 
 
 __all__ = ["CORRELATION_KINDS", "correlation_matrix", "correlation_factor", "CommonProcess", "ArrayWeighting",
-           "correlated_network", "fe_sky_correlated", "fp_correlated", "correlated_fe"]
+           "correlated_network", "SKY_PIXEL_BLOCK", "fe_sky_correlated", "fp_correlated", "correlated_fe"]
 
 
 # ---------------------------------------------------------------- the one engine choice

@@ -271,7 +271,7 @@ def _subtract_low_rank(u, n_freq, z):
 PROJECTION_TOA_BLOCK = 512
 
 
-def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i, step=None):
+def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i, step=None, on_basis=None):
     """X, Y, Z of one pulsar at every frequency, in blocks of TOAs.
 
     With the Woodbury form of the inner product (physics/noise.py) every term is a sum over TOAs:
@@ -293,6 +293,8 @@ def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i, step=
     for a in range(0, toas.size, PROJECTION_TOA_BLOCK):
         b = min(toas.size, a + PROJECTION_TOA_BLOCK)
         basis = sine_cosine_matrix(toas[a:b], t0, frequencies, step=step)
+        if on_basis is not None:
+            on_basis(i, a, b, basis)
         v += weighted_t[:, a:b] @ basis
         xy += rw[a:b].T @ basis
         _weighted_trig_sums(basis, inverse_variance[a:b], n_freq, zi)
@@ -307,7 +309,8 @@ def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i, step=
     z_scale[i] = 0.5 * float(z_white)
 
 
-def _project_core(engine, frequencies, residual_sets, on_pulsar=None, workers=None, step=None, z_scale_of=None):
+def _project_core(engine, frequencies, residual_sets, on_pulsar=None, workers=None, step=None, z_scale_of=None,
+                  on_basis=None):
     frequencies = np.ascontiguousarray(frequencies, dtype=float)
     n_psr, n_freq = len(engine), frequencies.size
     n_sets = residual_sets[0].shape[1]
@@ -319,13 +322,13 @@ def _project_core(engine, frequencies, residual_sets, on_pulsar=None, workers=No
     workers = min(n_psr, numba.get_num_threads() if workers is None else int(workers))
     if workers <= 1:
         for i, w in enumerate(engine):
-            _project_pulsar(w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i, step)
+            _project_pulsar(w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i, step, on_basis)
             if on_pulsar is not None:
                 on_pulsar(i)
     else:
         with _blas_threads(1), ThreadPoolExecutor(max_workers=workers) as pool:
-            jobs = {pool.submit(_project_pulsar, w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i, step): i
-                    for i, w in enumerate(engine)}
+            jobs = {pool.submit(_project_pulsar, w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i, step,
+                                on_basis): i for i, w in enumerate(engine)}
             for job in as_completed(jobs):
                 job.result()
                 if on_pulsar is not None:
@@ -336,7 +339,8 @@ def _project_core(engine, frequencies, residual_sets, on_pulsar=None, workers=No
     return frequencies, x, y, z, z_scale
 
 
-def project(engine, frequencies, residuals=None, *, on_pulsar=None, step=None, z_scale=None) -> Projections:
+def project(engine, frequencies, residuals=None, *, on_pulsar=None, step=None, z_scale=None,
+            on_basis=None) -> Projections:
     """Compute X, Y, Z for every pulsar and frequency through the noise-weighting engine.
 
     ``residuals`` (list of arrays) replaces the dataset residuals, e.g. for
@@ -352,22 +356,26 @@ def project(engine, frequencies, residuals=None, *, on_pulsar=None, step=None, z
     ``step`` and ``z_scale``: the spacing of the whole uniform grid and its
     white-noise scales (``project(engine, grid[:1]).z_scale``) when
     ``frequencies`` is a chunk of it, so that the chunk's numbers are those
-    of the whole grid.
+    of the whole grid. ``on_basis(i, start, stop, basis)`` receives each block of pulsar i's
+    ``[sin | cos]`` matrix (TOAs ``start:stop``, shape (stop − start, 2F), see
+    :data:`PROJECTION_TOA_BLOCK`) in its worker thread (with single-threaded BLAS), so that a caller
+    can contract other vectors with the same sines and cosines in the same pass.
     """
     sets = [np.asarray(w.pulsar.residuals if residuals is None else residuals[i], dtype=float)[:, None]
             for i, w in enumerate(engine)]
-    freqs, x, y, z, z_scale = _project_core(engine, frequencies, sets, on_pulsar, step=step, z_scale_of=z_scale)
+    freqs, x, y, z, z_scale = _project_core(engine, frequencies, sets, on_pulsar, step=step, z_scale_of=z_scale,
+                                            on_basis=on_basis)
     return Projections(freqs, x[0], y[0], z, engine.array.positions, z_scale)
 
 
-def project_batch(engine, frequencies, residual_sets, *, on_pulsar=None) -> Projections:
+def project_batch(engine, frequencies, residual_sets, *, on_pulsar=None, on_basis=None) -> Projections:
     """Projections of B residual sets at once: ``residual_sets[p]`` is an (n_p, B) array.
 
     Z is shared; ``x`` and ``y`` have shape (B, P, F). Used by null
-    simulations (same TOAs and noise model, new residuals).
+    simulations (same TOAs and noise model, new residuals). ``on_basis`` as in :func:`project`.
     """
     sets = [np.asarray(r, dtype=float).reshape(w.n_toas, -1) for w, r in zip(engine, residual_sets)]
-    freqs, x, y, z, z_scale = _project_core(engine, frequencies, sets, on_pulsar)
+    freqs, x, y, z, z_scale = _project_core(engine, frequencies, sets, on_pulsar, on_basis=on_basis)
     return Projections(freqs, x, y, z, engine.array.positions, z_scale)
 
 
@@ -489,35 +497,52 @@ def fe_sky(proj: Projections, fplus, fcross, *, keep_map=True, map_dtype=np.floa
     chunk's Fe of every residual set, (B, S, n) from frequency index ``f0`` (the targets stage reduces the
     maps of a batch of null simulations this way, with M factored once for all of them).
     """
-    fplus = np.ascontiguousarray(np.atleast_2d(fplus), dtype=float)
-    fcross = np.ascontiguousarray(np.atleast_2d(fcross), dtype=float)
+    fplus, fcross, x, y = sky_inputs(proj, fplus, fcross, keep_map)
     n_sky, n_psr = fplus.shape
-    x, y = proj.x, proj.y
-    if x.ndim == 2:
-        x, y = x[None], y[None]
-    n_sets, n_data_psr, n_freq = x.shape
-    if n_data_psr != n_psr:
-        raise ValueError(f"antenna patterns have {n_psr} pulsars, the projections {n_data_psr}")
-    if keep_map and n_sets != 1:
-        raise ValueError("keep_map needs a single residual set")
+    n_sets, _, n_freq = x.shape
     pn = np.vstack([fplus, fcross])
     pm = np.vstack([fplus * fplus, fplus * fcross, fcross * fcross])
     n_chunk = int(max(1, min(n_freq, chunk_elements // (n_sky * (4 * n_sets + 9)))))
-    fe_map = np.empty((n_sky, n_freq), dtype=map_dtype) if keep_map else None
-    fe_max = np.empty((n_sets, n_freq))
-    best = np.empty((n_sets, n_freq), dtype=np.int64)
+    fe_map, fe_max, best = sky_outputs(n_sky, n_sets, n_freq, keep_map, map_dtype)
     for f0 in range(0, n_freq, n_chunk):
         f1 = min(n_freq, f0 + n_chunk)
         fc = f1 - f0
-        data = np.stack([x[:, :, f0:f1], y[:, :, f0:f1]], axis=1)          # (B, 2, P, Fc)
-        data = np.ascontiguousarray(data.transpose(2, 0, 1, 3)).reshape(n_psr, 2 * n_sets * fc)
         zc = np.ascontiguousarray(proj.z[:, f0:f1, :].transpose(0, 2, 1)).reshape(n_psr, 3 * fc)
-        nq = pn @ data
+        nq = pn @ chunk_data(x, y, f0, f1)
         mq = pm @ zc
         fe = np.empty((n_sets, n_sky, fc))
         _fe_from_products(nq, mq, n_sky, fc, n_sets, fe)
-        store_sky_block(fe, f0, f1, best, fe_max, fe_map if keep_map else None, on_block, on_chunk)
+        store_sky_block(fe, f0, f1, best, fe_max, fe_map, on_block, on_chunk)
     return SkyScan(fe_map, fe_max, best)
+
+
+def sky_inputs(proj: Projections, fplus, fcross, keep_map):
+    """The checked inputs of an Fe sky kernel: C-contiguous patterns (S, P) and X, Y with a leading
+    residual-set axis (B, P, F). Shared by every Fe sky kernel."""
+    fplus = np.ascontiguousarray(np.atleast_2d(fplus), dtype=float)
+    fcross = np.ascontiguousarray(np.atleast_2d(fcross), dtype=float)
+    n_psr = fplus.shape[1]
+    x, y = proj.x, proj.y
+    if x.ndim == 2:
+        x, y = x[None], y[None]
+    if x.shape[1] != n_psr:
+        raise ValueError(f"antenna patterns have {n_psr} pulsars, the projections {x.shape[1]}")
+    if keep_map and x.shape[0] != 1:
+        raise ValueError("keep_map needs a single residual set")
+    return fplus, fcross, x, y
+
+
+def sky_outputs(n_sky, n_sets, n_freq, keep_map, map_dtype):
+    """Empty ``(fe_map or None, fe_max, best_pixel)`` of a sky scan (see :class:`SkyScan`)."""
+    fe_map = np.empty((n_sky, n_freq), dtype=map_dtype) if keep_map else None
+    return fe_map, np.empty((n_sets, n_freq)), np.empty((n_sets, n_freq), dtype=np.int64)
+
+
+def chunk_data(x, y, f0, f1):
+    """X, Y (B, P, F) of the frequencies ``f0:f1`` as one (P, 2·B·Fc) matrix, columns (set, X|Y,
+    frequency): the right factor of the pattern product ``[F+; Fx] @ data`` that gives N."""
+    data = np.stack([x[:, :, f0:f1], y[:, :, f0:f1]], axis=1)          # (B, 2, P, Fc)
+    return np.ascontiguousarray(data.transpose(2, 0, 1, 3)).reshape(x.shape[1], -1)
 
 
 def store_sky_block(fe, f0, f1, best, fe_max, fe_map=None, on_block=None, on_chunk=None):
@@ -668,6 +693,7 @@ def frequency_grid(array, fmin=None, fmax=None, oversample=2):
 
 __all__ = [
     "Projections", "Z_RELATIVE_TOLERANCE", "ANCHOR_EVERY", "sine_cosine_basis", "uniform_step", "store_sky_block",
+    "sky_inputs", "sky_outputs", "chunk_data",
     "sine_cosine_matrix", "project", "project_batch", "SkyScan", "fe_sky", "fe_statistic",
     "fe_with_amplitudes", "network_vectors", "sky_patterns", "fp_statistic", "fp_degrees_of_freedom",
     "amplitudes_to_parameters", "parameters_to_amplitudes", "MAX_DEFAULT_FREQUENCY",
