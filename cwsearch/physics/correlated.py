@@ -412,10 +412,10 @@ class ArrayWeighting:
         return self._psi
 
     def _correction_matrix(self):
-        # the inverse of a large S̃ on every core, as its Cholesky factor (_factorise): 3000 x 3000 took
-        # 0.27 s on one thread and 0.15 s on two (idle 2-core machine); the small products after it on one
-        with fstat._blas_threads(_cpu_count() if self.rank >= THREADED_CHOLESKY_SIZE else 1):
-            inv, info = lapack.dpotri(self._chol, lower=1)
+        # one thread (the caller's BLAS setting): threaded dpotri at 3000 x 3000 took 0.15 s against 0.27 s
+        # on an idle 2-core machine but 1-3.4 s against 0.6 s at load 6 (busy-waiting workers);
+        # :meth:`projections` runs it beside the per-pulsar projections instead
+        inv, info = lapack.dpotri(self._chol, lower=1)
         if info != 0:
             raise np.linalg.LinAlgError(f"inverting the array Woodbury matrix failed (info {info})")
         x = np.asfortranarray(inv).T      # C-ordered view of S̃⁻¹ (Fortran lower triangle = its upper one)
@@ -464,13 +464,20 @@ class ArrayWeighting:
         # scan_corrections on these frequencies (the sines and cosines are made once)
         frequencies = np.ascontiguousarray(frequencies, dtype=float)
         kinv_fourier = self.weighted_fourier()
-        u = np.zeros((self.n_pulsars, self.n_fourier, 2 * frequencies.size))
+        u_t = np.zeros((self.n_pulsars, 2 * frequencies.size, self.n_fourier))
 
-        def on_basis(p, start, stop, basis):
-            u[p] += kinv_fourier[p][start:stop].T @ basis
+        def on_basis(p, start, stop, basis):            # one block of TOAs of pulsar p
+            u_t[p] += basis.T @ kinv_fourier[p][start:stop]
 
-        proj = fstat.project(self.engine, frequencies, tilde, on_pulsar=on_pulsar, on_basis=on_basis)
-        self._trig_products = (frequencies.tobytes(), u)
+        # Ψ, which every scan statistic of the data needs next, is the one serial step (one dpotri):
+        # it runs in a thread of its own beside the per-pulsar projection threads, all on one-thread
+        # BLAS (set here, once, for both: the setting is process-wide)
+        with fstat._blas_threads(1), ThreadPoolExecutor(max_workers=1) as side:
+            pending = side.submit(self._correction_matrix) if self._psi is None else None
+            proj = fstat.project(self.engine, frequencies, tilde, on_pulsar=on_pulsar, on_basis=on_basis)
+            if pending is not None:
+                self._psi = pending.result()
+        self._trig_products = (frequencies.tobytes(), u_t)
         return proj
 
     def weighted_fourier(self):
@@ -486,19 +493,25 @@ class ArrayWeighting:
         return self._kinv_fourier
 
     def trig_fourier_products(self, frequencies):
-        """``u_p = F_pᵀ K_p⁻¹ [sin | cos]`` of 2πf(t − t0) for every frequency: (P, 2K, 2F). Those of
-        the last :meth:`projections` are handed over (once) when the frequencies are the same."""
+        """``u_p = F_pᵀ K_p⁻¹ [sin | cos]`` of 2πf(t − t0) for every frequency: (P, 2K, 2F) (a view of
+        :meth:`_trig_products_t`)."""
+        return self._trig_products_t(frequencies).transpose(0, 2, 1)
+
+    def _trig_products_t(self, frequencies):
+        """``u_p`` transposed, (P, 2F, 2K): sines of every frequency, then cosines, each row one
+        frequency's 2K coefficients. Those of the last :meth:`projections` are handed over (once)
+        when the frequencies are the same."""
         frequencies = np.ascontiguousarray(frequencies, dtype=float)
         kept = self.__dict__.pop("_trig_products", None)
         if kept is not None and kept[0] == frequencies.tobytes():
             return kept[1]
         t0 = self.array.reference_time
-        out = np.empty((self.n_pulsars, self.n_fourier, 2 * len(frequencies)))
+        out = np.empty((self.n_pulsars, 2 * len(frequencies), self.n_fourier))
         pairs = list(zip(self.engine, self.weighted_fourier()))
 
         def one(p):                  # one pulsar per thread, single-threaded BLAS (as fstat.project)
             w, kf = pairs[p]
-            out[p] = kf.T @ fstat.sine_cosine_matrix(w.pulsar.toas, t0, frequencies)
+            np.matmul(fstat.sine_cosine_matrix(w.pulsar.toas, t0, frequencies).T, kf, out=out[p])
 
         with fstat._blas_threads(1), ThreadPoolExecutor(max_workers=int(max(1, min(_cpu_count(), len(pairs))))) as pool:
             list(pool.map(one, range(len(pairs))))
@@ -507,25 +520,25 @@ class ArrayWeighting:
     def scan_corrections(self, frequencies):
         """Cross-pulsar 2×2 blocks ``W_pq(f) = u_pᵀ Ψ_pq u_q`` for every frequency, shape
         (F, 4, P, P) with the second axis (ss, sc, cs, cc): ``W[f, 1, p, q] = (sin_p u)ᵀ Ψ_pq (cos_q u)``.
-        Then ``(sin_p|cos_q)_C = δ_pq Z_p,sc − W[f, 1, p, q]`` (sines, cosines of pulsar p)."""
+        Then ``(sin_p|cos_q)_C = δ_pq Z_p,sc − W[f, 1, p, q]`` (sines, cosines of pulsar p). The array
+        is a view of a (P, P, 4, F) one, contiguous in frequency."""
         frequencies = np.asarray(frequencies, dtype=float)
         n_freq, n_psr, n_c = frequencies.size, self.n_pulsars, self.n_fourier
-        u = np.ascontiguousarray(self.trig_fourier_products(frequencies))
+        u_t = self._trig_products_t(frequencies)
         psi = self.correction_matrix()
-        # stored (P, P, 4, F), contiguous in frequency (where the kernel writes), returned as the (F, 4, P, P) view
         store = np.empty((n_psr, n_psr, 4, n_freq))
 
         # W_ab(q, p) = W_ba(p, q): the blocks p ≤ q give the rest, so for each q only the rows
         # p ≤ q of Ψ_{·q} u_q are formed (half the products). One q per job, a job per core, each
-        # with single-threaded BLAS and a GIL-free kernel; jobs write disjoint blocks of ``out``.
-        # Frequencies go in chunks of TRIG_CHUNK, so that each product (rows p ≤ q, chunk) stays in cache.
+        # with single-threaded BLAS and a GIL-free kernel; jobs write disjoint blocks of ``store``.
+        # Frequencies go in chunks of TRIG_CHUNK, so that each product (chunk, rows p ≤ q) stays in cache.
         chunks = [(f0, min(n_freq, f0 + TRIG_CHUNK)) for f0 in range(0, n_freq, TRIG_CHUNK)]
 
         def column(q):
-            rows = psi[q * n_c:(q + 1) * n_c, :(q + 1) * n_c].T
+            rows = psi[q * n_c:(q + 1) * n_c, :(q + 1) * n_c]                 # Ψ_{q, p ≤ q}
             for f0, f1 in chunks:
-                uq = np.concatenate([u[q, :, f0:f1], u[q, :, n_freq + f0:n_freq + f1]], axis=1)
-                _pair_blocks(u, (rows @ uq).reshape(q + 1, n_c, 2 * (f1 - f0)), q, f0, n_freq, store)
+                uq = np.concatenate([u_t[q, f0:f1], u_t[q, n_freq + f0:n_freq + f1]])   # (2 fc, 2K)
+                _pair_blocks(u_t, uq @ rows, q, f0, n_freq, store)
 
         workers = int(max(1, min(_cpu_count(), n_psr)))
         with fstat._blas_threads(1), ThreadPoolExecutor(max_workers=workers) as pool:
@@ -562,43 +575,42 @@ def _mirror_upper(x):
                     x[j, i] = x[i, j]
 
 
-@njit(cache=True, nogil=True)
-def _pair_blocks(u, v, q, f0, n_freq, store):
-    """store[p, q, ab, f0 + f] = Σ_i u[p, i, a·F + f0 + f] v[p, i, b·fc + f] for a, b ∈ (sin, cos) and
-    p ≤ q (``v`` (q + 1, 2K, 2·fc) holds the rows p ≤ q of Ψ_{·q} u_q on the fc frequencies from
-    ``f0``), mirrored as store[q, p, ba, ·]. Serial and GIL-free: :meth:`ArrayWeighting.scan_corrections`
-    runs one q per thread."""
-    n_c = u.shape[1]
-    fc = v.shape[2] // 2
+@njit(cache=True, nogil=True, fastmath=True)
+def _pair_blocks(u_t, v_t, q, f0, n_freq, store):
+    """store[p, q, ab, f0 + f] = Σ_i u_t[p, a·F + f0 + f, i] v_t[b·fc + f, p·2K + i] for a, b ∈ (sin, cos)
+    and p ≤ q (``v_t`` (2·fc, (q + 1)·2K) holds (Ψ_{p ≤ q, q} u_q)ᵀ on the fc frequencies from ``f0``),
+    mirrored as store[q, p, ba, ·]. Serial and GIL-free: :meth:`ArrayWeighting.scan_corrections`
+    runs one q per thread. ``fastmath``: the sums over the 2K coefficients are vectorised (their
+    order of addition is free; rounding-level differences only)."""
+    n_c = u_t.shape[2]
+    fc = v_t.shape[0] // 2
     for p in range(q + 1):
-        ss = np.zeros(fc)
-        sc = np.zeros(fc)
-        cs = np.zeros(fc)
-        cc = np.zeros(fc)
-        for i in range(n_c):
-            up = u[p, i]
-            vp = v[p, i]
-            for f in range(fc):          # contiguous in f: vectorised
-                us = up[f0 + f]
-                uc = up[n_freq + f0 + f]
-                vs = vp[f]
-                vc = vp[fc + f]
-                ss[f] += us * vs
-                sc[f] += us * vc
-                cs[f] += uc * vs
-                cc[f] += uc * vc
         a = store[p, q]
         b = store[q, p]
+        o = p * n_c
         for f in range(fc):
+            us = u_t[p, f0 + f]
+            uc = u_t[p, n_freq + f0 + f]
+            vs = v_t[f]
+            vc = v_t[fc + f]
+            ss = 0.0
+            sc = 0.0
+            cs = 0.0
+            cc = 0.0
+            for i in range(n_c):
+                ss += us[i] * vs[o + i]
+                sc += us[i] * vc[o + i]
+                cs += uc[i] * vs[o + i]
+                cc += uc[i] * vc[o + i]
             g = f0 + f
-            a[0, g] = ss[f]
-            a[1, g] = sc[f]
-            a[2, g] = cs[f]
-            a[3, g] = cc[f]
-            b[0, g] = ss[f]
-            b[1, g] = cs[f]
-            b[2, g] = sc[f]
-            b[3, g] = cc[f]
+            a[0, g] = ss
+            a[1, g] = sc
+            a[2, g] = cs
+            a[3, g] = cc
+            b[0, g] = ss
+            b[1, g] = cs
+            b[2, g] = sc
+            b[3, g] = cc
 
 
 # ---------------------------------------------------------------- Fe, Fp
