@@ -250,6 +250,48 @@ def test_identity_correlation_reproduces_per_pulsar_engine():
     assert np.abs(off).max() <= 1e-12 * np.abs(corr).max()
 
 
+def test_pair_gemm_sky_kernel_equals_the_direct_quadratic_forms(monkeypatch):
+    """Regression guard of the scan kernel's algebra (docs/design.md §5b), 9 pulsars so that every pair
+    sum has many terms: W_pq(f) of scan_corrections (frequency chunks, one q per thread) against
+    u_pᵀ Ψ_pq u_q written out with numpy.einsum from Ψ and u; the pulsar-pair GEMM sky kernel
+    (several pixel blocks, frequency chunks and residual sets) against ½ Nᵀ M⁻¹ N with M and N of the
+    direct per-pixel einsum form (correlated_network) and numpy.linalg.solve, to 1e-10 relative
+    (rounding only; common practice, no source)."""
+    from cwsearch.physics import correlated
+
+    monkeypatch.setattr(correlated, "TRIG_CHUNK", 3)
+    monkeypatch.setattr(correlated, "SKY_PIXEL_BLOCK", 7)
+    arr = _array(seed=17, n_pulsars=9)
+    aw = ArrayWeighting(arr, SETTINGS, CommonProcess(-13.6, 13 / 3, 6))
+    freqs = np.linspace(2.6e-9, 2.9e-8, 8)
+    rng = np.random.default_rng(5)
+    ra, dec = rng.uniform(0, 2 * np.pi, 23), np.arcsin(rng.uniform(-1, 1, 23))
+    fplus, fcross, _ = waveform.antenna_pattern(ra, dec, arr.positions)
+    proj = aw.projections(freqs)
+    corr = aw.scan_corrections(freqs)
+    u_ = aw.trig_fourier_products(freqs)                                  # (P, 2K, 2F)
+    n_psr, n_c = len(arr), aw.n_fourier
+    psi = aw.correction_matrix().reshape(n_psr, n_c, n_psr, n_c)
+    n_f = freqs.size
+    for ab, (a, b) in enumerate([(0, 0), (0, 1), (1, 0), (1, 1)]):
+        want = np.einsum("pif,piqj,qjf->fpq", u_[:, :, a * n_f:(a + 1) * n_f], psi, u_[:, :, b * n_f:(b + 1) * n_f])
+        np.testing.assert_allclose(corr[:, ab], want, rtol=1e-10, atol=1e-10 * np.abs(want).max())
+    nvec, mmat = correlated_network(proj, corr, fplus, fcross)
+    want = 0.5 * np.einsum("sfi,sfi->sf", nvec, np.linalg.solve(mmat, nvec[..., None])[..., 0])
+    got = fe_sky_correlated(proj, corr, fplus, fcross, chunk_elements=2000)
+    np.testing.assert_allclose(got.fe_map, want, rtol=1e-10)
+    np.testing.assert_array_equal(got.best_pixel[0], np.argmax(want, axis=0))
+    # a batch of residual sets shares M: each set's Fe equals the same direct form with its own N
+    sets = [np.column_stack([p.residuals, rng.normal(size=p.n_toas) * 3e-7]) for p in arr]
+    batch = aw.projections(freqs, sets)
+    scan = fe_sky_correlated(batch, corr, fplus, fcross, keep_map=False, chunk_elements=2000)
+    for k in range(2):
+        one = fstat.Projections(freqs, batch.x[k], batch.y[k], batch.z, batch.positions, batch.z_scale)
+        n_k, m_k = correlated_network(one, corr, fplus, fcross)
+        fe_k = 0.5 * np.einsum("sfi,sfi->sf", n_k, np.linalg.solve(m_k, n_k[..., None])[..., 0])
+        np.testing.assert_allclose(scan.fe_max[k], fe_k.max(axis=0), rtol=1e-10)
+
+
 def test_fe_null_distribution_chi2_4():
     """2Fe ~ χ²(4) in noise drawn from the true correlated C (Ellis, Siemens & Creighton 2012);
     Kolmogorov–Smirnov test against scipy.stats.chi2(4), fixed seed."""

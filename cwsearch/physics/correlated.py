@@ -105,7 +105,7 @@ def _cpu_count():
 THREADED_CHOLESKY_SIZE = 2000
 
 #: frequencies per chunk of the cross-pulsar blocks W_pq(f) (:meth:`ArrayWeighting.scan_corrections`)
-TRIG_CHUNK = 64
+TRIG_CHUNK = 128
 
 
 # ---------------------------------------------------------------- correlations
