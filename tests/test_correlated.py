@@ -49,7 +49,7 @@ def _array(seed=3, n_pulsars=4, n_toas=(44, 52, 38, 57, 48), red=True, design=Tr
         ra, dec = rng.uniform(0, 2 * np.pi), np.arcsin(rng.uniform(-1, 1))
         pulsars.append(Pulsar(f"T{i}", ra=ra, dec=dec, distance=rng.uniform(0.5, 2.0), distance_err=0.1, mjd=mjd,
                               residuals=rng.normal(size=n) * 3e-7, sigmas=rng.uniform(0.5, 1.5, n) * sigma,
-                              backends=backends, extra_design=extra,
+                              backends=backends, noise=noise, extra_design=extra,
                               extra_design_names=("design_a",) if extra is not None else ()))
     return Array(pulsars)
 
@@ -252,8 +252,8 @@ def test_identity_correlation_reproduces_per_pulsar_engine():
 
 def test_pair_gemm_sky_kernel_equals_the_direct_quadratic_forms(monkeypatch):
     """Regression guard of the scan kernel's algebra (docs/design.md §5b), 9 pulsars so that every pair
-    sum has many terms: W_pq(f) of scan_corrections (frequency chunks, one q per thread) against
-    u_pᵀ Ψ_pq u_q written out with numpy.einsum from Ψ and u; the pulsar-pair GEMM sky kernel
+    sum has many terms: W_pq(f) of scan_corrections (frequency chunks, one q per thread, u_p from the
+    projection pass) against u_pᵀ Ψ_pq u_q written out with numpy.einsum from Ψ and u_p = (K_p⁻¹F_p)ᵀ[sin | cos]; the pulsar-pair GEMM sky kernel
     (several pixel blocks, frequency chunks and residual sets) against ½ Nᵀ M⁻¹ N with M and N of the
     direct per-pixel einsum form (correlated_network) and numpy.linalg.solve, to 1e-10 relative
     (rounding only; common practice, no source)."""
@@ -262,7 +262,10 @@ def test_pair_gemm_sky_kernel_equals_the_direct_quadratic_forms(monkeypatch):
     monkeypatch.setattr(correlated, "TRIG_CHUNK", 3)
     monkeypatch.setattr(correlated, "SKY_PIXEL_BLOCK", 7)
     arr = _array(seed=17, n_pulsars=9)
-    aw = ArrayWeighting(arr, SETTINGS, CommonProcess(-13.6, 13 / 3, 6))
+    aw = ArrayWeighting(arr, SETTINGS, CommonProcess(-13.6, 13 / 3, 5))
+    # pulsars with red noise on the common frequencies take u_p from the projection's own sums, the others
+    # from K_p⁻¹F_p; both kinds are here (trig_fourier_products below always takes the second)
+    assert {off is None for off in aw._fourier_offset} == {True, False}
     freqs = np.linspace(2.6e-9, 2.9e-8, 8)
     rng = np.random.default_rng(5)
     ra, dec = rng.uniform(0, 2 * np.pi, 23), np.arcsin(rng.uniform(-1, 1, 23))

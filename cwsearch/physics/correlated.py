@@ -252,6 +252,13 @@ class ArrayWeighting:
             data[a] = wf.T @ wd - uf.T @ ud
             data_norm += float(wd @ wd - ud @ ud)
             logdet += w.logdet()
+        # where F_p is a block of columns of the per-pulsar basis T_p (the same Fourier frequencies in the
+        # per-pulsar red-noise prior): the offset, so that F_pᵀN⁻¹x is a row block of T_pᵀN⁻¹x; else None
+        self._fourier_offset = []
+        for w, fb in zip(self.engine, self.fourier):
+            off = w.n_timing
+            inside = w.basis.shape[1] >= off + n_c and np.array_equal(w.basis[:, off:off + n_c], fb)
+            self._fourier_offset.append(off if inside else None)
         self._fourier_blocks = blocks      # F_pᵀ K_p⁻¹ F_p
         self._data_fourier = data          # F_pᵀ K_p⁻¹ d_p
         self._data_norm_k = data_norm      # Σ (d_p|d_p)_K
@@ -260,7 +267,8 @@ class ArrayWeighting:
 
     def _shared_parts(self):
         keep = ("settings", "engine", "correlation", "_gamma_factor", "n_fourier", "fourier", "_fourier_white",
-                "_fourier_blocks", "_data_fourier", "_data_norm_k", "_logdet_k", "frequencies", "_kinv_fourier")
+                "_fourier_blocks", "_data_fourier", "_data_norm_k", "_logdet_k", "frequencies", "_kinv_fourier",
+                "_fourier_offset")
         return {k: self.__dict__[k] for k in keep}
 
     # -- parts that depend on (log10 A, γ)
@@ -460,21 +468,32 @@ class ArrayWeighting:
         tilde = self.weighted_data(residuals)
         if tilde[0].ndim == 2:
             return fstat.project_batch(self.engine, frequencies, tilde, on_pulsar=on_pulsar)
-        # the same pass forms u_p = F_pᵀK_p⁻¹[sin | cos] from each pulsar's sines and cosines, kept for
-        # scan_corrections on these frequencies (the sines and cosines are made once)
+        # the same pass forms u_p = F_pᵀK_p⁻¹[sin | cos], kept for scan_corrections on these frequencies:
+        # where F_p is a block of T_p's columns, u_p = (F_pᵀN⁻¹[sin | cos]) − (L⁻¹T_pᵀN⁻¹F_p)ᵀ (L⁻¹T_pᵀN⁻¹[sin | cos])
+        # from the projection's own sums (a (2K × k) @ (k × 2F) product); elsewhere (K_p⁻¹F_p)ᵀ times each
+        # block of sines and cosines
         frequencies = np.ascontiguousarray(frequencies, dtype=float)
-        kinv_fourier = self.weighted_fourier()
-        u_t = np.zeros((self.n_pulsars, 2 * frequencies.size, self.n_fourier))
+        n_c = self.n_fourier
+        u_t = np.zeros((self.n_pulsars, 2 * frequencies.size, n_c))
+        offsets = self._fourier_offset
+        kinv_fourier = self.weighted_fourier() if any(off is None for off in offsets) else None
 
         def on_basis(p, start, stop, basis):            # one block of TOAs of pulsar p
-            u_t[p] += basis.T @ kinv_fourier[p][start:stop]
+            if offsets[p] is None:
+                u_t[p] += basis.T @ kinv_fourier[p][start:stop]
+
+        def on_reduced(p, v, u_basis):
+            off = offsets[p]
+            if off is not None:
+                u_t[p] = (v[off:off + n_c] - self._fourier_white[p].T @ u_basis).T
 
         # Ψ, which every scan statistic of the data needs next, is the one serial step (one dpotri):
         # it runs in a thread of its own beside the per-pulsar projection threads, all on one-thread
         # BLAS (set here, once, for both: the setting is process-wide)
         with fstat._blas_threads(1), ThreadPoolExecutor(max_workers=1) as side:
             pending = side.submit(self._correction_matrix) if self._psi is None else None
-            proj = fstat.project(self.engine, frequencies, tilde, on_pulsar=on_pulsar, on_basis=on_basis)
+            proj = fstat.project(self.engine, frequencies, tilde, on_pulsar=on_pulsar, on_basis=on_basis,
+                                 on_reduced=on_reduced)
             if pending is not None:
                 self._psi = pending.result()
         self._trig_products = (frequencies.tobytes(), u_t)

@@ -271,7 +271,7 @@ def _subtract_low_rank(u, n_freq, z):
 PROJECTION_TOA_BLOCK = 512
 
 
-def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i, step=None, on_basis=None):
+def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i, step=None, on_basis=None, on_reduced=None):
     """X, Y, Z of one pulsar at every frequency, in blocks of TOAs.
 
     With the Woodbury form of the inner product (physics/noise.py) every term is a sum over TOAs:
@@ -299,6 +299,8 @@ def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i, step=
         xy += rw[a:b].T @ basis
         _weighted_trig_sums(basis, inverse_variance[a:b], n_freq, zi)
     ub = w.reduce(v)                                       # L⁻¹ Tᵀ N⁻¹ B, (r, 2F)
+    if on_reduced is not None:
+        on_reduced(i, v, ub)
     _, ur = w.whiten(residual_set)                         # (r, B)
     xy -= ur.T @ ub
     x[:, i] = xy[:, :n_freq]
@@ -310,7 +312,7 @@ def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i, step=
 
 
 def _project_core(engine, frequencies, residual_sets, on_pulsar=None, workers=None, step=None, z_scale_of=None,
-                  on_basis=None):
+                  on_basis=None, on_reduced=None):
     frequencies = np.ascontiguousarray(frequencies, dtype=float)
     n_psr, n_freq = len(engine), frequencies.size
     n_sets = residual_sets[0].shape[1]
@@ -322,13 +324,13 @@ def _project_core(engine, frequencies, residual_sets, on_pulsar=None, workers=No
     workers = min(n_psr, numba.get_num_threads() if workers is None else int(workers))
     if workers <= 1:
         for i, w in enumerate(engine):
-            _project_pulsar(w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i, step, on_basis)
+            _project_pulsar(w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i, step, on_basis, on_reduced)
             if on_pulsar is not None:
                 on_pulsar(i)
     else:
         with _blas_threads(1), ThreadPoolExecutor(max_workers=workers) as pool:
             jobs = {pool.submit(_project_pulsar, w, t0, frequencies, residual_sets[i], x, y, z, z_scale, i, step,
-                                on_basis): i for i, w in enumerate(engine)}
+                                on_basis, on_reduced): i for i, w in enumerate(engine)}
             for job in as_completed(jobs):
                 job.result()
                 if on_pulsar is not None:
@@ -340,7 +342,7 @@ def _project_core(engine, frequencies, residual_sets, on_pulsar=None, workers=No
 
 
 def project(engine, frequencies, residuals=None, *, on_pulsar=None, step=None, z_scale=None,
-            on_basis=None) -> Projections:
+            on_basis=None, on_reduced=None) -> Projections:
     """Compute X, Y, Z for every pulsar and frequency through the noise-weighting engine.
 
     ``residuals`` (list of arrays) replaces the dataset residuals, e.g. for
@@ -359,12 +361,16 @@ def project(engine, frequencies, residuals=None, *, on_pulsar=None, step=None, z
     of the whole grid. ``on_basis(i, start, stop, basis)`` receives each block of pulsar i's
     ``[sin | cos]`` matrix (TOAs ``start:stop``, shape (stop − start, 2F), see
     :data:`PROJECTION_TOA_BLOCK`) in its worker thread (with single-threaded BLAS), so that a caller
-    can contract other vectors with the same sines and cosines in the same pass.
+    can contract other vectors with the same sines and cosines in the same pass; ``on_reduced(i, v, u)``
+    receives pulsar i's sums ``v = Tᵀ N⁻¹ [sin | cos]`` (k, 2F) over all TOAs and their reduction
+    ``u = L⁻¹ v`` (:meth:`~cwsearch.physics.noise.PulsarWeighting.reduce`), so that
+    ``(b|sin, cos) = bᵀN⁻¹[sin | cos] − u_bᵀ u`` for any b, and for a column b of T the first term
+    is a row of v.
     """
     sets = [np.asarray(w.pulsar.residuals if residuals is None else residuals[i], dtype=float)[:, None]
             for i, w in enumerate(engine)]
     freqs, x, y, z, z_scale = _project_core(engine, frequencies, sets, on_pulsar, step=step, z_scale_of=z_scale,
-                                            on_basis=on_basis)
+                                            on_basis=on_basis, on_reduced=on_reduced)
     return Projections(freqs, x[0], y[0], z, engine.array.positions, z_scale)
 
 
