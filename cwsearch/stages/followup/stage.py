@@ -492,9 +492,17 @@ def sky_summary(ra_deg, dec_deg, folder=None, nside=SKY_MAP_NSIDE):
     return out
 
 
+#: entries of a noise-model statement that say where the model came from, not what it is (the table's path,
+#: whether a fitted table was reused, the file's own checksum with its provenance), left out of the checksum:
+#: the same model reached by another run folder or by a resumed run has the same checksum
+_NOT_THE_MODEL = frozenset({"table", "table_checksum", "reused", "meaning", "notes"})
+
+
 def noise_model_checksum(statement) -> str:
-    """SHA-256 (hex) of a noise-model statement's canonical JSON (sorted keys, NaN as null)."""
-    text = json.dumps(statement, sort_keys=True, separators=(",", ":"), default=str, allow_nan=True)
+    """SHA-256 (hex) of a noise-model statement's canonical JSON (sorted keys, NaN as null), without the
+    entries of :data:`_NOT_THE_MODEL`."""
+    model = {k: v for k, v in dict(statement).items() if k not in _NOT_THE_MODEL}
+    text = json.dumps(model, sort_keys=True, separators=(",", ":"), default=str, allow_nan=True)
     return hashlib.sha256(text.encode()).hexdigest()
 
 
@@ -617,7 +625,8 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, 
                  **(model_obj.describe() if model_obj is not None else {})}
     posterior_file.meta["noise_model_checksum"] = noise_model_checksum(statement)
     posterior_file.meta["noise_model_checksum_of"] = ("SHA-256 of the canonical JSON (sorted keys) of summary.json's "
-                                                      "noise_model entry")
+                                                      "noise_model entry without its table path, table checksum, "
+                                                      "reuse flag, meaning and notes (the model's values only)")
     write_table_atomic(folder / "posterior.ecsv", posterior_file)
     pairs = [[float(1 / a), float(1 / b)] for a, b in zip(result.betas[:-1], result.betas[1:])]
     comparison = _background_comparison(likelihood, other, result, details, samples, progress)
