@@ -52,7 +52,7 @@ def _binaries(base, snrs):
 
 
 def _run_file(tmp_path, base, snrs, *, stages, extra="", name="run", data="data", fap_threshold=0.01,
-              iterations=2000):
+              iterations=2000, plots=False):
     binaries, signals = _binaries(base, snrs)
     noisy = simulated_array(base, seed=43, red=False)
     residuals = [p.residuals + sum(s[i] for s in signals) for i, p in enumerate(noisy)]
@@ -74,7 +74,7 @@ pulsar_red_noise = false
 nside = 4
 fmax = 6.0e-8
 null_sims = 30
-no_plots = true
+no_plots = {"false" if plots else "true"}
 [followup]
 walkers = 20
 temperatures = 4
@@ -85,12 +85,12 @@ adapt_iterations = 60
 max_temperatures = 4
 max_candidates = 1
 fap_threshold = {fap_threshold}
-no_plots = true
+no_plots = {"false" if plots else "true"}
 [limits]
 nside = 2
 fmax = 6.0e-8
 quadrature = "fast"
-no_plots = true
+no_plots = {"false" if plots else "true"}
 [rounds]
 detection_fap = 0.05
 {extra}""")
@@ -160,7 +160,7 @@ def test_two_binaries_are_confirmed_in_two_rounds_and_no_third(tmp_path, base):
 def test_noise_only_confirms_nothing_and_stops_after_round_one(tmp_path, base):
     """Noise only (the best scan peak followed up anyway: [followup] fap_threshold = 1): the detection rule
     confirms nothing, the loop stops after round 1, confirmed_sources.ecsv has no row."""
-    path, _ = _run_file(tmp_path, base, (0.0, 0.0), stages=["scan", "followup"], fap_threshold=1.0)
+    path, _ = _run_file(tmp_path, base, (0.0, 0.0), stages=["scan", "followup"], fap_threshold=1.0, plots=True)
     result = run_pipeline(load_config(path), quiet=True)
     run = tmp_path / "run"
     rounds = json.loads((run / "rounds" / "rounds.json").read_text())
@@ -173,6 +173,18 @@ def test_noise_only_confirms_nothing_and_stops_after_round_one(tmp_path, base):
     assert len(Table.read(run / "confirmed_sources.ecsv", format="ascii.ecsv")) == 0
     assert not (run / "rounds" / "subtracted_signal.ecsv").exists()
     assert result.headline["confirmed_sources"] == []
+    # the report (html5lib, strict WHATWG parsing): the rounds section and every figure of the run folder
+    import base64
+
+    import html5lib
+    from test_report import PNG_SIGNATURE, parse
+
+    html5lib.HTMLParser(strict=True).parse((run / "report.html").read_text(encoding="utf-8"))
+    page = parse(run / "report.html")
+    assert "rounds" in page.sections and "0 source(s) confirmed in 1 round(s)" in page.joined
+    pngs = [p for p in run.rglob("*.png") if not any(part.startswith(".") for part in p.relative_to(run).parts)]
+    assert (run / "rounds" / "rounds.png") in pngs and len(page.images) == len(pngs)
+    assert all(base64.b64decode(src.split(",", 1)[1]).startswith(PNG_SIGNATURE) for src in page.images)
 
 
 def test_limits_after_subtracting_a_loud_injection_agree_with_the_limits_without_it(tmp_path, base):

@@ -39,7 +39,6 @@ def rounds_figure(path, run_dir, rounds, confirmed, array, signals):
         ax.axvline(src["frequency"] * 1e9, color="0.3", ls=":", lw=1.0)
         ax.annotate(f"source {src['source']}", (src["frequency"] * 1e9, 1.0), xycoords=("data", "axes fraction"),
                     xytext=(3, -12), textcoords="offset points", fontsize=8, color="0.25")
-    ax.set_xscale("log")
     ax.set_xlabel("GW frequency [nHz]")
     ax.set_ylabel("loudest Fe over the sky")
     ax.set_title(f"Subtract and rescan: {len(rounds)} round(s), {len(confirmed)} confirmed source(s) "
