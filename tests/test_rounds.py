@@ -256,9 +256,10 @@ def test_sources_table_without_sources_has_the_columns():
 def test_rounds_section_is_checked(tmp_path):
     (tmp_path / "d").mkdir()
     cfg = parse_config('dataset = "d"\n[rounds]\nmax_sources = 2\ndetection_fap = 0.05\n', path=tmp_path / "r.toml")
-    assert cfg.rounds == {"max_sources": 2, "detection_fap": 0.05, "detection_log_bayes_factor": 5.0}
+    assert cfg.rounds == {"max_sources": 2, "detection_fap": 0.05, "detection_log_bayes_factor": 5.0,
+                          "subtraction_draws": 8}
     for bad, key in (("max_sources = 0", "max_sources"), ("detection_fap = 1.5", "detection_fap"),
-                     ("max_source = 2", "max_source")):
+                     ("subtraction_draws = -1", "subtraction_draws"), ("max_source = 2", "max_source")):
         with pytest.raises(InputError, match=rf"\[rounds\] {key}"):
             parse_config(f'dataset = "d"\n[rounds]\n{bad}\n', path=tmp_path / "r.toml")
 
@@ -273,7 +274,8 @@ def test_command_line_overrides_the_rounds_section(tmp_path):
     parser = argparse.ArgumentParser()
     add_output_arguments(parser)
     args = parser.parse_args(["--max-sources", "1", "--detection-log-bayes-factor", "8"])
-    assert with_rounds(cfg, args).rounds == {"max_sources": 1, "detection_fap": 0.01, "detection_log_bayes_factor": 8.0}
+    assert with_rounds(cfg, args).rounds == {"max_sources": 1, "detection_fap": 0.01, "detection_log_bayes_factor": 8.0,
+                                             "subtraction_draws": 8}
     with pytest.raises(InputError, match="--detection-fap"):
         with_rounds(cfg, parser.parse_args(["--detection-fap", "0"]))
 

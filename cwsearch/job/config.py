@@ -158,6 +158,10 @@ ROUNDS_KEYS = {
                                       "detection rule, part 2: ... and its follow-up ln Bayes factor (binary + "
                                       "background versus background) is above this (5: 'very strong' on the Kass "
                                       "& Raftery 1995 scale, 2 ln B > 10)"),
+    "subtraction_draws": Key("subtraction_draws", int, 8,
+                             "single posterior draws of the subtracted signal kept for the limits' stated "
+                             "subtraction error: the limits are recomputed with each subtracted instead of the "
+                             "median (each costs one more limits computation; 0 or 1: no subtraction error)"),
 }
 
 #: the old [engine] section (read, with a RunFileDeprecationWarning, as [execution])
@@ -626,6 +630,8 @@ def _rounds_section(data, fail) -> dict:
         fail("must be within 1-20", "rounds", "max_sources")
     if not 0 < rounds["detection_fap"] <= 1:
         fail("must be in (0, 1]", "rounds", "detection_fap")
+    if not 0 <= rounds["subtraction_draws"] <= 100:
+        fail("must be within 0-100", "rounds", "subtraction_draws")
     return rounds
 
 

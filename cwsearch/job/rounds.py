@@ -57,9 +57,9 @@ from .runfolder import read_json, read_table
 #: the posterior columns of a confirmed source (confirmed_sources.ecsv), with their units
 SOURCE_COLUMNS = (("ra", "deg"), ("dec", "deg"), ("frequency", "Hz"), ("chirp_mass", "solMass"), ("strain", ""),
                   ("inclination", "rad"), ("polarization", "rad"), ("phase", "rad"))
-#: single posterior draws of the signal kept beside the median (columns draw_1 .. of subtracted_signal.ecsv): the
-#: limits stage is rerun with each subtracted instead of the median, and their spread is the limits' stated
-#: subtraction error (docs/design.md §14)
+#: default of ``[rounds] subtraction_draws``: single posterior draws of the signal kept beside the median
+#: (columns draw_1 .. of subtracted_signal.ecsv); the limits stage is rerun with each subtracted instead of the
+#: median, and their spread is the limits' stated subtraction error (docs/design.md §14)
 KEPT_DRAWS = 8
 #: the files of RUN_DIR/rounds/ that later stages read (their hash enters the limits' and targets' inputs)
 PRODUCTS = ("confirmed_sources.ecsv", "subtracted_signal.ecsv")
@@ -243,6 +243,7 @@ def run_rounds(ctx, *, scan_stage, followup_stage, runner_options, joint_followu
     max_sources = int(settings["max_sources"])
     detection_fap = float(settings["detection_fap"])
     detection_lnb = float(settings["detection_log_bayes_factor"])
+    n_kept = int(settings.get("subtraction_draws", KEPT_DRAWS))
     fap_threshold = float((ctx.config.extra.get("followup") or {}).get("fap_threshold", 0.01))
     stage_dir = Path(ctx.stage_dir)
     if not ctx.resuming:
@@ -319,7 +320,7 @@ def run_rounds(ctx, *, scan_stage, followup_stage, runner_options, joint_followu
         entry["confirmed_source"] = source["source"]
         confirmed.append(source)
         signals.append(signal)
-        kept.append([d[:KEPT_DRAWS] for d in draws])
+        kept.append([d[:n_kept] for d in draws])
         if len(confirmed) >= max_sources:
             stopped = f"round {k}: max_sources = {max_sources} sources confirmed"
             break
