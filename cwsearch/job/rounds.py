@@ -337,8 +337,9 @@ def run_rounds(ctx, *, scan_stage, followup_stage, runner_options, joint_followu
                "n_confirmed": len(confirmed), "stopped": stopped, "rounds": rounds, "confirmed": confirmed,
                "null_sims": 0 if null_table is None else len(null_table),
                "null_source": "scan/null_maxima.ecsv (round 1's noise-only scans, used by every round)",
-               "subtraction": ("posterior-median signal per TOA (Earth + pulsar term, pulsar phases drawn from their "
-                               f"conditional posterior; {RESIDUAL_DRAWS} posterior draws; after the timing-model "
+               "subtraction": ("posterior-median signal per TOA (Earth + pulsar term with the posterior file's "
+                               "pulsar-term phases and distances, or phases drawn from their conditional posterior "
+                               f"for a file without them; {RESIDUAL_DRAWS} posterior draws; after the timing-model "
                                "fit)"),
                "joint_followup": joint}
     if not followup_options.no_plots:
