@@ -22,8 +22,8 @@ from numba import njit, prange
 
 from ..physics import fstat, waveform
 from ..physics.correlated import ArrayNoise, ArrayWeighting, CommonProcess, _engine_with_residuals, array_noise
-from .likelihood import (Likelihood, _PARALLEL_BASIS, _basis_parallel, _basis_serial, _grid_size, _gram_parallel,
-                         _gram_serial, _projection_batch, interpolation_matrix)
+from .likelihood import (Likelihood, _PARALLEL_BASIS, _basis_parallel, _basis_serial, _earth_weights, _grid_size,
+                         _gram_parallel, _gram_serial, _phase_coefficients, _projection_batch, interpolation_matrix)
 
 
 # ---------------------------------------------------------------- likelihood
@@ -148,38 +148,17 @@ def _grid_moments(a, b, c, d, e, out):
 
 
 @njit(cache=True)
-def _mean_field_one(w, fplus, fcross, strain, cos_inclination, psi, phase, dvec, gmat, cross, max_sweeps, tol, out,
-                    sweeps):
-    """ln Λ of walker w: per-pulsar factors as in the uncorrelated kernel, coupled by
-    ``½ Σ_{p≠q} u_pᵀ J_pq u_q`` (u = (cosχ, sinχ), J_pq = a_p a_q Ω_pq) in mean field."""
-    n_p = fplus.shape[1]
-    ci = cos_inclination[w]
-    c2p, s2p = np.cos(2 * psi[w]), np.sin(2 * psi[w])
-    c0, s0 = np.cos(2 * phase[w]), np.sin(2 * phase[w])
-    h = strain[w]
-    coef = np.empty((n_p, 5))
-    amp = np.empty(n_p)
+def _mean_field_core(coef, amp, cross, max_sweeps, tol):
+    """Mean-field ln Z of phase units coupled pairwise: unit i's own factor is
+    ``exp(a cosχ + b sinχ + c cos2χ + d sin2χ + e)`` (``coef[i]`` = (a, b, c, d, e)), the coupling
+    ``½ Σ_{i≠j} u_iᵀ J_ij u_j`` with ``J_ij = amp_i amp_j cross[i, j]`` (zero diagonal); returns
+    (ln Z bound, sweeps). The units are pulsars for one source, (source, pulsar) pairs for several
+    (:mod:`cwsearch.inference.multisource`)."""
+    n_p = coef.shape[0]
     mu = np.zeros((n_p, 2))
     lnz = np.empty(n_p)
     tmp = np.empty(2)
     for p in range(n_p):
-        fp, fx = fplus[w, p], fcross[w, p]
-        pa = (1 + ci * ci) * (fp * c2p + fx * s2p)
-        qa = 2 * ci * (fp * s2p - fx * c2p)
-        e1 = h * (pa * c0 - qa * s0)
-        e2 = h * (pa * s0 + qa * c0)
-        g = gmat[w, p]
-        dv = dvec[w, p]
-        earth = e1 * dv[0] + e2 * dv[1] - 0.5 * (e1 * e1 * g[0, 0] + 2 * e1 * e2 * g[0, 1] + e2 * e2 * g[1, 1])
-        am = h * np.sqrt(pa * pa + qa * qa)
-        amp[p] = am
-        v3 = e1 * g[0, 2] + e2 * g[1, 2]
-        v4 = e1 * g[0, 3] + e2 * g[1, 3]
-        coef[p, 0] = am * (v3 - dv[2])
-        coef[p, 1] = am * (v4 - dv[3])
-        coef[p, 2] = -0.25 * am * am * (g[2, 2] - g[3, 3])
-        coef[p, 3] = -0.5 * am * am * g[2, 3]
-        coef[p, 4] = earth - 0.25 * am * am * (g[2, 2] + g[3, 3])
         lnz[p] = _grid_moments(coef[p, 0], coef[p, 1], coef[p, 2], coef[p, 3], coef[p, 4], tmp)
         mu[p, 0] = tmp[0]
         mu[p, 1] = tmp[1]
@@ -193,7 +172,7 @@ def _mean_field_one(w, fplus, fcross, strain, cos_inclination, psi, phase, dvec,
             for q in range(n_p):
                 if q != p:
                     jq = amp[p] * amp[q]
-                    x = cross[w, p, q]
+                    x = cross[p, q]
                     ha += jq * (x[0, 0] * mu[q, 0] + x[0, 1] * mu[q, 1])
                     hb += jq * (x[1, 0] * mu[q, 0] + x[1, 1] * mu[q, 1])
             lnz[p] = _grid_moments(coef[p, 0] + ha, coef[p, 1] + hb, coef[p, 2], coef[p, 3], coef[p, 4], tmp)
@@ -207,11 +186,28 @@ def _mean_field_one(w, fplus, fcross, strain, cos_inclination, psi, phase, dvec,
         total += lnz[p]
         for q in range(n_p):
             if q != p:
-                x = cross[w, p, q]
+                x = cross[p, q]
                 total -= 0.5 * amp[p] * amp[q] * (mu[p, 0] * (x[0, 0] * mu[q, 0] + x[0, 1] * mu[q, 1])
                                                   + mu[p, 1] * (x[1, 0] * mu[q, 0] + x[1, 1] * mu[q, 1]))
-    out[w] = total
-    sweeps[w] = n_sweep
+    return total, n_sweep
+
+
+@njit(cache=True)
+def _mean_field_one(w, fplus, fcross, strain, cos_inclination, psi, phase, dvec, gmat, cross, max_sweeps, tol, out,
+                    sweeps):
+    """ln Λ of walker w: per-pulsar factors as in the uncorrelated kernel, coupled by
+    ``½ Σ_{p≠q} u_pᵀ J_pq u_q`` (u = (cosχ, sinχ), J_pq = a_p a_q Ω_pq) in mean field."""
+    n_p = fplus.shape[1]
+    ci = cos_inclination[w]
+    c2p, s2p = np.cos(2 * psi[w]), np.sin(2 * psi[w])
+    c0, s0 = np.cos(2 * phase[w]), np.sin(2 * phase[w])
+    h = strain[w]
+    coef = np.empty((n_p, 5))
+    amp = np.empty(n_p)
+    for p in range(n_p):
+        e1, e2, amp[p] = _earth_weights(fplus[w, p], fcross[w, p], h, ci, c2p, s2p, c0, s0)
+        _phase_coefficients(e1, e2, amp[p], dvec[w, p], gmat[w, p], coef[p])
+    out[w], sweeps[w] = _mean_field_core(coef, amp, cross[w], max_sweeps, tol)
 
 
 @njit(cache=True, parallel=True)

@@ -399,6 +399,31 @@ def marginal_log_factor(a, b, c, d, e, n_grid):
     return e + shift + np.log(total / k)
 
 
+@njit(cache=True, inline="always")
+def _earth_weights(fp, fx, h, ci, c2p, s2p, c0, s0):
+    """Earth-term weights (e1, e2) of one source in one pulsar and the pulsar-term amplitude
+    ``h √(P² + Q²)`` (as :func:`cwsearch.physics.waveform.basis_coefficients`)."""
+    pa = (1 + ci * ci) * (fp * c2p + fx * s2p)
+    qa = 2 * ci * (fp * s2p - fx * c2p)
+    return h * (pa * c0 - qa * s0), h * (pa * s0 + qa * c0), h * np.sqrt(pa * pa + qa * qa)
+
+
+@njit(cache=True, inline="always")
+def _phase_coefficients(e1, e2, amp, dv, g, out):
+    """One source in one pulsar: ln Λ_p = a cosχ + b sinχ + c cos2χ + d sin2χ + e in its pulsar-term
+    phase χ (pulsar-term weights −amp (cos χ, sin χ)), from its Earth weights, ``dv`` = (d|b_j) and
+    ``g`` = (b_i|b_j); (a, b, c, d, e) into ``out``; returns the Earth-only part of e."""
+    earth = e1 * dv[0] + e2 * dv[1] - 0.5 * (e1 * e1 * g[0, 0] + 2 * e1 * e2 * g[0, 1] + e2 * e2 * g[1, 1])
+    v3 = e1 * g[0, 2] + e2 * g[1, 2]
+    v4 = e1 * g[0, 3] + e2 * g[1, 3]
+    out[0] = amp * (v3 - dv[2])
+    out[1] = amp * (v4 - dv[3])
+    out[2] = -0.25 * amp * amp * (g[2, 2] - g[3, 3])
+    out[3] = -0.5 * amp * amp * g[2, 3]
+    out[4] = earth - 0.25 * amp * amp * (g[2, 2] + g[3, 3])
+    return earth
+
+
 @njit(cache=True)
 def _projection_one(w, fplus, fcross, strain, cos_inclination, psi, phase, dvec, gmat, pulsar_term, n_grid, out):
     """ln Λ of walker w with pulsar phases marginalised (or Earth term only)."""
@@ -408,27 +433,14 @@ def _projection_one(w, fplus, fcross, strain, cos_inclination, psi, phase, dvec,
     c0, s0 = np.cos(2 * phase[w]), np.sin(2 * phase[w])
     h = strain[w]
     total = 0.0
+    coef = np.empty(5)
     for p in range(n_p):
-        fp, fx = fplus[w, p], fcross[w, p]
-        pa = (1 + ci * ci) * (fp * c2p + fx * s2p)
-        qa = 2 * ci * (fp * s2p - fx * c2p)
-        e1 = h * (pa * c0 - qa * s0)
-        e2 = h * (pa * s0 + qa * c0)
-        g = gmat[w, p]
-        dv = dvec[w, p]
-        earth = e1 * dv[0] + e2 * dv[1] - 0.5 * (e1 * e1 * g[0, 0] + 2 * e1 * e2 * g[0, 1] + e2 * e2 * g[1, 1])
+        e1, e2, amp = _earth_weights(fplus[w, p], fcross[w, p], h, ci, c2p, s2p, c0, s0)
+        earth = _phase_coefficients(e1, e2, amp, dvec[w, p], gmat[w, p], coef)
         if not pulsar_term:
             total += earth
             continue
-        amp = h * np.sqrt(pa * pa + qa * qa)
-        v3 = e1 * g[0, 2] + e2 * g[1, 2]
-        v4 = e1 * g[0, 3] + e2 * g[1, 3]
-        a = amp * (v3 - dv[2])
-        b = amp * (v4 - dv[3])
-        c = -0.25 * amp * amp * (g[2, 2] - g[3, 3])
-        d = -0.5 * amp * amp * g[2, 3]
-        e = earth - 0.25 * amp * amp * (g[2, 2] + g[3, 3])
-        total += marginal_log_factor(a, b, c, d, e, n_grid)
+        total += marginal_log_factor(coef[0], coef[1], coef[2], coef[3], coef[4], n_grid)
     out[w] = total
 
 
@@ -728,21 +740,9 @@ class Likelihood:
         """Antenna patterns (W, P) and basis products ``dvec`` (W, P, 4), ``gmat`` (W, P, 4, 4)
         for W shapes at once (the numba/BLAS fast path; see ``shape_path``); ``light_times``
         (W, P) [s] replaces the catalogue distances' light-travel times."""
-        ra, dec, f, mc = (np.atleast_1d(np.asarray(x, dtype=float)) for x in (ra, dec, gw_frequency, chirp_mass))
-        n_w = ra.shape[0]
-        fplus, fcross, odp = waveform.antenna_pattern(ra, dec, self.positions)
-        omega0 = np.pi * f
-        mct = mc * SOLAR_MASS_SECONDS
-        kappa = 256.0 / 5.0 * mct ** (5 / 3) * omega0 ** (8 / 3)
-        if self.evolution == "monochromatic":
-            kappa = np.zeros_like(kappa)
-        delay = (self.light_times[None, :] if light_times is None else light_times) * (1.0 + odp)
-        x_p0 = 1.0 + kappa[:, None] * delay
-        omega_p = omega0[:, None] * x_p0 ** (-3 / 8)
-        amp0 = 1.0 / (2.0 * omega0)
-        amp_p = amp0[:, None] * x_p0 ** (1 / 8)
-        kappa_e = kappa if self.evolution == "full" else np.zeros_like(kappa)
-        kappa_p = kappa_e[:, None] / x_p0
+        fplus, fcross, terms = self.shape_terms(ra, dec, gw_frequency, chirp_mass, light_times)
+        omega0, kappa_e, amp0, omega_p, kappa_p, amp_p = terms
+        n_w = omega0.shape[0]
         # monochromatic: the pulsar-term series equal the Earth-term ones, compute two columns
         same = self.evolution == "monochromatic"
         ncol = 4 if (self.pulsar_term and not same) else 2
@@ -767,6 +767,28 @@ class Likelihood:
             gmat[:, :, :2, 2:] = gmat[:, :, :2, :2]
             gmat[:, :, 2:, :2] = gmat[:, :, :2, :2]
         return fplus, fcross, dvec, gmat
+
+    def shape_terms(self, ra, dec, gw_frequency, chirp_mass, light_times=None):
+        """Antenna patterns (W, P) and the per-walker terms of the basis series: Earth-term
+        ``omega0``, ``kappa_e``, ``amp0`` (W,) and pulsar-term ``omega_p``, ``kappa_p``, ``amp_p``
+        (W, P) (angular orbital frequency [rad/s], chirp rate κ [1/s], envelope [s]) for the
+        basis kernels, from (ra, dec [rad], frequency [Hz], chirp mass [Msun]); ``light_times``
+        (W, P) [s] replaces the catalogue distances' light-travel times."""
+        ra, dec, f, mc = (np.atleast_1d(np.asarray(x, dtype=float)) for x in (ra, dec, gw_frequency, chirp_mass))
+        fplus, fcross, odp = waveform.antenna_pattern(ra, dec, self.positions)
+        omega0 = np.pi * f
+        mct = mc * SOLAR_MASS_SECONDS
+        kappa = 256.0 / 5.0 * mct ** (5 / 3) * omega0 ** (8 / 3)
+        if self.evolution == "monochromatic":
+            kappa = np.zeros_like(kappa)
+        delay = (self.light_times[None, :] if light_times is None else light_times) * (1.0 + odp)
+        x_p0 = 1.0 + kappa[:, None] * delay
+        omega_p = omega0[:, None] * x_p0 ** (-3 / 8)
+        amp0 = 1.0 / (2.0 * omega0)
+        amp_p = amp0[:, None] * x_p0 ** (1 / 8)
+        kappa_e = kappa if self.evolution == "full" else np.zeros_like(kappa)
+        kappa_p = kappa_e[:, None] / x_p0
+        return fplus, fcross, (omega0, kappa_e, amp0, omega_p, kappa_p, amp_p)
 
     def _node_count(self, omega0, kappa_e):
         """Chebyshev nodes each walker needs (0: direct path): the highest GW angular frequency
