@@ -96,8 +96,8 @@ def test_two_sources_equal_dense_quadrature(small_array):
     """K = 2, per-pulsar noise: ln Λ = Σ_p ln (1/π²) ∫∫ exp((d|s) − ½(s|s)) dΦ1 dΦ2 with the dense
     covariance (scipy.linalg) and scipy.integrate.dblquad over both pulsar phases, to 1e-6."""
     arr = small_array
-    binaries = [Binary(**{**SOURCES[0].__dict__, "strain": 6e-14}),
-                Binary(**{**SOURCES[1].__dict__, "gw_frequency": 1.55e-8, "strain": 5e-14})]
+    binaries = [Binary(**{**SOURCES[0].__dict__, "strain": 4e-14}),
+                Binary(**{**SOURCES[1].__dict__, "gw_frequency": 1.55e-8, "strain": 3e-14})]
     joint = MultiSourceLikelihood(Likelihood(arr, NOISE), 2)
     theta = np.array([_theta(binaries[0]) + _theta(binaries[1])])
     got = float(joint.batch(theta)[0])

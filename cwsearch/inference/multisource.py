@@ -20,10 +20,12 @@ Pulsar phases (K per pulsar, uniform, marginalised):
   grid or Laplace), the others on periodic trapezoid grids (exponential
   convergence for smooth periodic integrands) sized by the single-source
   rule from their amplitudes plus couplings. For K = 2 that is one
-  single-source marginal per outer grid point. Beyond :data:`OUTER_GRID_LIMIT`
-  grid points (amplitudes of ≳ 10⁴ nats, only hot chains far from any
-  posterior) Laplace's method at the joint maximum replaces the grid
-  (relative error of order 1/amplitude).
+  single-source marginal per outer grid point (points that cannot come
+  within :data:`PRUNE_NATS` of the largest term are skipped). When every
+  source's amplitude in the pulsar exceeds :data:`LAPLACE_AMPLITUDE` nats
+  (loud trial signals, mostly in the hot chains) Laplace's method summed
+  over the local maxima replaces the grids, and for the innermost source
+  alone when only it is that loud (error ~ 1/(8 amplitude) nats per phase).
 * **Correlated background.** The cross-pulsar products couple the phases of
   every (source, pulsar) pair; as in the single-source
   :class:`~cwsearch.inference.correlated_likelihood.CorrelatedLikelihood`
@@ -61,13 +63,14 @@ from numba import njit, prange
 from ..physics import fstat, waveform
 from .correlated_likelihood import (MEAN_FIELD_MAX_SWEEPS, MEAN_FIELD_TOLERANCE, CorrelatedLikelihood,
                                     _mean_field_core, correlated_terms, earth_coefficients)
-from .likelihood import (_PARALLEL_BASIS, Likelihood, _basis_parallel, _basis_serial, _grid_size, _phase_coefficients,
-                         marginal_log_factor)
+from .likelihood import (_PARALLEL_BASIS, Likelihood, _basis_parallel, _basis_serial, _grid_size, _laplace_log_mean,
+                         _phase_coefficients, marginal_log_factor)
 
-#: outer grid points per source above which the per-pulsar K-phase integral is done by Laplace's method
-OUTER_GRID_LIMIT = 600
+#: amplitude [nats] (linear + coupling + quadratic terms) above which, for every source of a pulsar, the
+#: K-phase integral is done by Laplace's method (error ~ 1/(8 amplitude) per phase: below 1e-3 nats)
+LAPLACE_AMPLITUDE = 100.0
 #: walkers × pulsars from which the marginalisation kernel runs on every core
-_PARALLEL_UNITS = 2000
+_PARALLEL_UNITS = 200
 
 
 def source_names(names, n_sources):
@@ -93,67 +96,187 @@ def _coupling_field(k, chi_c, chi_s, coup, n, out):
 
 
 @njit(cache=True)
-def _best_phase(a, b, c, d):
-    """The maximum of a cosχ + b sinχ + c cos2χ + d sin2χ: a 64-point grid refined by Newton steps."""
+def _phase_maxima(a, b, c, d, out):
+    """The (at most two) local maxima of a cosχ + b sinχ + c cos2χ + d sin2χ, from a 64-point grid
+    refined by Newton steps, into ``out``; returns how many."""
     n = 64
     step = 2.0 * np.pi / n
-    best, x = -np.inf, 0.0
+    vals = np.empty(n)
     for m in range(n):
         t = m * step
+        vals[m] = a * np.cos(t) + b * np.sin(t) + c * np.cos(2 * t) + d * np.sin(2 * t)
+    found = 0
+    for m in range(n):
+        if vals[m] >= vals[(m - 1) % n] and vals[m] > vals[(m + 1) % n] and found < out.shape[0]:
+            t1 = m * step
+            x = t1
+            for _ in range(40):
+                d1 = -a * np.sin(x) + b * np.cos(x) - 2 * c * np.sin(2 * x) + 2 * d * np.cos(2 * x)
+                d2 = -a * np.cos(x) - b * np.sin(x) - 4 * c * np.cos(2 * x) - 4 * d * np.sin(2 * x)
+                if d2 >= 0:
+                    break
+                dx = max(-step, min(step, -d1 / d2))
+                x += dx
+                if abs(dx) < 1e-14:
+                    break
+            out[found] = x
+            found += 1
+    if found == 0:               # a constant function
+        out[0] = 0.0
+        found = 1
+    return found
+
+
+@njit(cache=True)
+def _best_phase(a, b, c, d):
+    """The global maximum of a cosχ + b sinχ + c cos2χ + d sin2χ."""
+    cand = np.empty(2)
+    n = _phase_maxima(a, b, c, d, cand)
+    best, x = -np.inf, 0.0
+    for i in range(n):
+        t = cand[i]
         f = a * np.cos(t) + b * np.sin(t) + c * np.cos(2 * t) + d * np.sin(2 * t)
         if f > best:
             best, x = f, t
-    for _ in range(40):
-        d1 = -a * np.sin(x) + b * np.cos(x) - 2 * c * np.sin(2 * x) + 2 * d * np.cos(2 * x)
-        d2 = -a * np.cos(x) - b * np.sin(x) - 4 * c * np.cos(2 * x) - 4 * d * np.sin(2 * x)
-        if d2 >= 0:
-            break
-        dx = max(-step, min(step, -d1 / d2))
-        x += dx
-        if abs(dx) < 1e-14:
-            break
     return x
 
 
 @njit(cache=True)
-def _joint_laplace(lin, quad, const, coup):
-    """ln (2π)^-K ∫ exp(F) dχ by Laplace's method at the maximum of F (coordinate ascent from each
-    source's own best phase; one mode), F = const + Σ_k [lin_k·u_k + quad_k·(cos2χ_k, sin2χ_k)]
-    + Σ_{k<l} u_kᵀ coup[k, l] u_l."""
+def _laplace_at(chi, lin, quad, const, coup, tmp_c, tmp_s, field):
+    """Coordinate ascent of F from ``chi`` (changed in place) to a local maximum; returns ln of Laplace's
+    (2π)^-K ∫ exp(F) dχ over that peak."""
     n = lin.shape[0]
-    chi = np.empty(n)
-    cc = np.empty(n)
-    ss = np.empty(n)
-    field = np.empty(2)
     for k in range(n):
-        chi[k] = _best_phase(lin[k, 0], lin[k, 1], quad[k, 0], quad[k, 1])
-        cc[k], ss[k] = np.cos(chi[k]), np.sin(chi[k])
-    for _ in range(200):
-        change = 0.0
-        for k in range(n):
-            _coupling_field(k, cc, ss, coup, n, field)
-            x = _best_phase(lin[k, 0] + field[0], lin[k, 1] + field[1], quad[k, 0], quad[k, 1])
-            change = max(change, abs(np.sin(0.5 * (x - chi[k]))))
-            chi[k], cc[k], ss[k] = x, np.cos(x), np.sin(x)
-        if change < 1e-12:
-            break
-    value = const
+        tmp_c[k], tmp_s[k] = np.cos(chi[k]), np.sin(chi[k])
+    grad = np.empty(n)
     hess = np.zeros((n, n))
+    for sweep in range(100):
+        if sweep < 3:            # coordinate ascent into a basin, then Newton steps on all phases at once
+            for k in range(n):
+                _coupling_field(k, tmp_c, tmp_s, coup, n, field)
+                x = _best_phase(lin[k, 0] + field[0], lin[k, 1] + field[1], quad[k, 0], quad[k, 1])
+                chi[k], tmp_c[k], tmp_s[k] = x, np.cos(x), np.sin(x)
+            continue
+        _gradient_hessian(chi, tmp_c, tmp_s, lin, quad, coup, field, grad, hess)
+        if np.all(np.linalg.eigvalsh(hess) < 0):
+            step = -np.linalg.solve(hess, grad)
+        else:                    # not concave here: a gradient step of bounded size
+            step = grad / max(1.0, np.abs(grad).max()) * 0.1
+        biggest = np.abs(step).max()
+        if biggest > 0.3:
+            step *= 0.3 / biggest
+        for k in range(n):
+            chi[k] += step[k]
+            tmp_c[k], tmp_s[k] = np.cos(chi[k]), np.sin(chi[k])
+        if biggest < 1e-11:
+            break
+    _gradient_hessian(chi, tmp_c, tmp_s, lin, quad, coup, field, grad, hess)
+    value = const
     for k in range(n):
-        _coupling_field(k, cc, ss, coup, n, field)
-        value += lin[k, 0] * cc[k] + lin[k, 1] * ss[k] + quad[k, 0] * np.cos(2 * chi[k]) \
-            + quad[k, 1] * np.sin(2 * chi[k]) + 0.5 * (field[0] * cc[k] + field[1] * ss[k])
+        _coupling_field(k, tmp_c, tmp_s, coup, n, field)
+        c2, s2 = np.cos(2 * chi[k]), np.sin(2 * chi[k])
+        value += lin[k, 0] * tmp_c[k] + lin[k, 1] * tmp_s[k] + quad[k, 0] * c2 + quad[k, 1] * s2 \
+            + 0.5 * (field[0] * tmp_c[k] + field[1] * tmp_s[k])
+    sign, logdet = np.linalg.slogdet(-hess)
+    if sign <= 0:          # not a strict maximum (a flat direction): the peak value without a width
+        return value - n * np.log(2 * np.pi)
+    return value - 0.5 * n * np.log(2 * np.pi) - 0.5 * logdet
+
+
+@njit(cache=True)
+def _gradient_hessian(chi, tmp_c, tmp_s, lin, quad, coup, field, grad, hess):
+    """Gradient and Hessian of F in the phases at ``chi`` (cos, sin in ``tmp_c``, ``tmp_s``)."""
+    n = lin.shape[0]
+    for k in range(n):
+        _coupling_field(k, tmp_c, tmp_s, coup, n, field)
+        c2, s2 = np.cos(2 * chi[k]), np.sin(2 * chi[k])
         a, b = lin[k, 0] + field[0], lin[k, 1] + field[1]
-        hess[k, k] = -a * cc[k] - b * ss[k] - 4 * quad[k, 0] * np.cos(2 * chi[k]) - 4 * quad[k, 1] * np.sin(2 * chi[k])
+        grad[k] = -a * tmp_s[k] + b * tmp_c[k] - 2 * quad[k, 0] * s2 + 2 * quad[k, 1] * c2
+        hess[k, k] = -a * tmp_c[k] - b * tmp_s[k] - 4 * quad[k, 0] * c2 - 4 * quad[k, 1] * s2
         for m in range(k + 1, n):
             x = coup[k, m]       # ∂²/∂χ_k∂χ_m of u_kᵀ C u_m = u_k'ᵀ C u_m', u' = (−sin, cos)
-            v = (ss[k] * (x[0, 0] * ss[m] - x[0, 1] * cc[m]) - cc[k] * (x[1, 0] * ss[m] - x[1, 1] * cc[m]))
+            v = (tmp_s[k] * (x[0, 0] * tmp_s[m] - x[0, 1] * tmp_c[m])
+                 - tmp_c[k] * (x[1, 0] * tmp_s[m] - x[1, 1] * tmp_c[m]))
             hess[k, m] = v
             hess[m, k] = v
-    sign, logdet = np.linalg.slogdet(-hess)
-    if sign <= 0:          # not a strict maximum (flat direction): no Laplace width, the peak value alone
-        return value - n * np.log(2 * np.pi)
-    return value + 0.5 * n * np.log(2 * np.pi) - 0.5 * logdet - n * np.log(2 * np.pi)
+
+
+@njit(cache=True)
+def _joint_laplace(lin, quad, const, coup):
+    """ln (2π)^-K ∫ exp(F) dχ by Laplace's method summed over the distinct local maxima of F, found by
+    coordinate ascent from every combination of the sources' own maxima (at most 2^K starts),
+    F = const + Σ_k [lin_k·u_k + quad_k·(cos2χ_k, sin2χ_k)] + Σ_{k<l} u_kᵀ coup[k, l] u_l."""
+    n = lin.shape[0]
+    own = np.empty((n, 2))
+    n_own = np.empty(n, dtype=np.int64)
+    for k in range(n):
+        n_own[k] = _phase_maxima(lin[k, 0], lin[k, 1], quad[k, 0], quad[k, 1], own[k])
+    n_start = 1
+    for k in range(n):
+        n_start *= n_own[k]
+    peaks = np.empty((n_start, n))
+    logs = np.empty(n_start)
+    chi = np.empty(n)
+    tmp_c, tmp_s, field = np.empty(n), np.empty(n), np.empty(2)
+    found = 0
+    for start in range(n_start):
+        rest = start
+        for k in range(n):
+            chi[k] = own[k, rest % n_own[k]]
+            rest //= n_own[k]
+        lap = _laplace_at(chi, lin, quad, const, coup, tmp_c, tmp_s, field)
+        same = False
+        for j in range(found):
+            dist = 0.0
+            for k in range(n):
+                dist = max(dist, abs(np.sin(0.5 * (chi[k] - peaks[j, k]))))
+            if dist < 1e-6:
+                same = True
+                break
+        if not same:
+            peaks[found] = chi
+            logs[found] = lap
+            found += 1
+    top = logs[:found].max()
+    return top + np.log(np.sum(np.exp(logs[:found] - top)))
+
+
+@njit(cache=True, inline="always")
+def _outer_point(point, inner, counts, lin, quad, coup, cc, ss, field):
+    """Outer grid point ``point`` (an odometer over the outer sources' grids): sets their (cos, sin),
+    returns the outer part of F and leaves the inner source's coupling field in ``field``."""
+    n = lin.shape[0]
+    rest = point
+    for k in range(n):
+        if k != inner:
+            t = 2.0 * np.pi * (rest % counts[k]) / counts[k]
+            rest //= counts[k]
+            cc[k], ss[k] = np.cos(t), np.sin(t)
+    value = 0.0
+    for k in range(n):
+        if k == inner:
+            continue
+        value += lin[k, 0] * cc[k] + lin[k, 1] * ss[k] + quad[k, 0] * (cc[k] * cc[k] - ss[k] * ss[k]) \
+            + quad[k, 1] * (2.0 * cc[k] * ss[k])
+        for m in range(k + 1, n):
+            if m != inner:
+                x = coup[k, m]
+                value += cc[k] * (x[0, 0] * cc[m] + x[0, 1] * ss[m]) + ss[k] * (x[1, 0] * cc[m] + x[1, 1] * ss[m])
+    _coupling_field(inner, cc, ss, coup, n, field)
+    return value
+
+
+@njit(cache=True, inline="always")
+def _inner_log_factor(a, b, c, d, n_grid, laplace):
+    """The innermost phase: the single-source marginal, or its Laplace form for a loud source."""
+    if laplace:
+        return _laplace_log_mean(a, b, c, d)
+    return marginal_log_factor(a, b, c, d, 0.0, n_grid)
+
+
+#: outer grid points whose upper bound (outer part + |inner linear| + |inner quadratic|) lies this many
+#: nats below a value already found are left out (each below e^-40 of the sum)
+PRUNE_NATS = 40.0
 
 
 @njit(cache=True)
@@ -164,8 +287,11 @@ def joint_log_factor(lin, quad, const, coup, n_grid):
     K = 1 is :func:`~cwsearch.inference.likelihood.marginal_log_factor`. Otherwise the source with
     the largest amplitude is integrated innermost by that function and the others on periodic
     trapezoid grids, each sized by the single-source rule from ``|lin_k| + Σ_m |coup_km|`` and
-    ``|quad_k|`` (or ``n_grid`` points when > 0); sizes beyond :data:`OUTER_GRID_LIMIT` switch to
-    :func:`_joint_laplace`.
+    ``|quad_k|`` (or ``n_grid`` points when > 0); outer points that cannot come within
+    :data:`PRUNE_NATS` of a value already found are skipped. When every source's amplitude exceeds
+    :data:`LAPLACE_AMPLITUDE` (and ``n_grid`` ≤ 0), Laplace's method over all local maxima
+    (:func:`_joint_laplace`) replaces the grids; when only the inner one does, Laplace's method
+    replaces its marginal.
     """
     n = lin.shape[0]
     if n == 1:
@@ -178,48 +304,41 @@ def joint_log_factor(lin, quad, const, coup, n_grid):
                 x = coup[min(k, m), max(k, m)]
                 r1 += np.sqrt(x[0, 0] ** 2 + x[0, 1] ** 2 + x[1, 0] ** 2 + x[1, 1] ** 2)
         size[k] = r1 + np.sqrt(quad[k, 0] ** 2 + quad[k, 1] ** 2)
+    if n_grid <= 0 and size.min() > LAPLACE_AMPLITUDE:
+        return _joint_laplace(lin, quad, const, coup)
     inner = int(np.argmax(size))
     counts = np.empty(n, dtype=np.int64)
+    n_points = 1
     for k in range(n):
         if k == inner:
             counts[k] = 1
-            continue
-        r1 = size[k] - np.sqrt(quad[k, 0] ** 2 + quad[k, 1] ** 2)
-        r2 = np.sqrt(quad[k, 0] ** 2 + quad[k, 1] ** 2)
-        counts[k] = n_grid if n_grid > 0 else _grid_size(r1) + 2 * _grid_size(r2)
-        if n_grid <= 0 and counts[k] > OUTER_GRID_LIMIT:
-            return _joint_laplace(lin, quad, const, coup)
-    cc = np.zeros(n)
-    ss = np.zeros(n)
-    index = np.zeros(n, dtype=np.int64)
-    field = np.empty(2)
-    total = 0.0
-    top = -np.inf
-    n_points = 1
-    for k in range(n):
+        else:
+            r2 = np.sqrt(quad[k, 0] ** 2 + quad[k, 1] ** 2)
+            counts[k] = n_grid if n_grid > 0 else _grid_size(size[k] - r2) + 2 * _grid_size(r2)
         n_points *= counts[k]
+    cc, ss = np.zeros(n), np.zeros(n)
+    field = np.empty(2)
+    q_in = np.sqrt(quad[inner, 0] ** 2 + quad[inner, 1] ** 2)
+    # pass 1: the point of the largest upper bound; its value is a floor for the sum's largest term
+    best_bound, best_point = -np.inf, 0
     for point in range(n_points):
-        rest = point                      # odometer over the outer grids
-        for k in range(n):
-            if k != inner:
-                index[k] = rest % counts[k]
-                rest //= counts[k]
-                t = 2.0 * np.pi * index[k] / counts[k]
-                cc[k], ss[k] = np.cos(t), np.sin(t)
-        value = 0.0
-        for k in range(n):
-            if k == inner:
-                continue
-            value += lin[k, 0] * cc[k] + lin[k, 1] * ss[k] + quad[k, 0] * (cc[k] * cc[k] - ss[k] * ss[k]) \
-                + quad[k, 1] * (2.0 * cc[k] * ss[k])
-            for m in range(k + 1, n):
-                if m != inner:
-                    x = coup[k, m]
-                    value += cc[k] * (x[0, 0] * cc[m] + x[0, 1] * ss[m]) + ss[k] * (x[1, 0] * cc[m] + x[1, 1] * ss[m])
-        _coupling_field(inner, cc, ss, coup, n, field)
-        value += marginal_log_factor(lin[inner, 0] + field[0], lin[inner, 1] + field[1], quad[inner, 0],
-                                     quad[inner, 1], 0.0, n_grid)
-        if value > top:                   # streaming log-sum-exp
+        outer = _outer_point(point, inner, counts, lin, quad, coup, cc, ss, field)
+        bound = outer + np.sqrt((lin[inner, 0] + field[0]) ** 2 + (lin[inner, 1] + field[1]) ** 2) + q_in
+        if bound > best_bound:
+            best_bound, best_point = bound, point
+    outer = _outer_point(best_point, inner, counts, lin, quad, coup, cc, ss, field)
+    laplace = n_grid <= 0 and size[inner] > LAPLACE_AMPLITUDE
+    floor = outer + _inner_log_factor(lin[inner, 0] + field[0], lin[inner, 1] + field[1], quad[inner, 0],
+                                      quad[inner, 1], n_grid, laplace) - PRUNE_NATS
+    # pass 2: every point that can reach above the floor (streaming log-sum-exp)
+    total, top = 0.0, -np.inf
+    for point in range(n_points):
+        outer = _outer_point(point, inner, counts, lin, quad, coup, cc, ss, field)
+        lin0, lin1 = lin[inner, 0] + field[0], lin[inner, 1] + field[1]
+        if outer + np.sqrt(lin0 * lin0 + lin1 * lin1) + q_in < floor:
+            continue
+        value = outer + _inner_log_factor(lin0, lin1, quad[inner, 0], quad[inner, 1], n_grid, laplace)
+        if value > top:
             total = total * np.exp(top - value) + 1.0
             top = value
         else:
@@ -507,4 +626,4 @@ class MultiSourceLikelihood:
         return ds - 0.5 * ss
 
 
-__all__ = ["OUTER_GRID_LIMIT", "source_names", "joint_log_factor", "MultiSourceLikelihood"]
+__all__ = ["LAPLACE_AMPLITUDE", "PRUNE_NATS", "source_names", "joint_log_factor", "MultiSourceLikelihood"]

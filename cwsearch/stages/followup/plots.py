@@ -18,6 +18,8 @@ the true signal is drawn too (dashed magenta).
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 
 from ...core.plotting import pyplot, save_figure, sky_map
@@ -254,7 +256,20 @@ def plot_followup(folder, table, result, likelihood, array, target, sky=None):
                       true_signals(array, injected_signal(array)))
 
 
+def plot_joint(folder, tables, truths=None):
+    """Joint follow-up: ``corner_source_K.png`` per source (its block of the joint posterior, the other
+    sources marginalised), truth in magenta where the injection falls in the source's window; returns the
+    file names."""
+    names = []
+    for k, table in enumerate(tables):
+        name = f"corner_source_{k + 1}.png"
+        corner_plot(Path(folder) / name, table, (truths or [None] * len(tables))[k])
+        names.append(name)
+    return names
+
+
 __all__ = [
     "CORNER_COLUMNS", "TRACE_UNITS", "corner_plot", "credible_levels", "sky_posterior", "trace_plot",
     "plot_followup", "RESIDUAL_DRAWS", "signal_draws", "true_signals", "residual_plot",
+    "plot_joint",
 ]
