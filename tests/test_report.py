@@ -395,3 +395,46 @@ def test_noise_figures_overplot_the_true_noise(monkeypatch):
     assert np.allclose(points.get_offsets(), [[-14.5, 13 / 3]], rtol=1e-12)
     for fig in figures:
         pyplot().close(fig)
+
+
+def test_joint_section_lists_every_source(run_folder, tmp_path):
+    """The joint follow-up section (followup/joint/summary.json): one subsection per source with its
+    joint-posterior table and corner plot; strict html5lib parse; the joint figures are not repeated in the
+    follow-up section; the truth column only for the source whose frequency window holds the injection."""
+    import html5lib
+
+    run = tmp_path / "run"
+    shutil.copytree(run_folder, run)
+    joint = run / "followup" / "joint"
+    joint.mkdir()
+    _png(joint / "corner_source_1.png", 11)
+    _png(joint / "corner_source_2.png", 12)
+    par = {"frequency": {"median": 1.2e-8, "interval_90": [1.19e-8, 1.21e-8], "unit": "Hz"},
+           "strain": {"median": 1.3e-14, "interval_90": [1.0e-14, 1.6e-14], "unit": ""}}
+    par2 = {"frequency": {"median": 3.1e-8, "interval_90": [3.05e-8, 3.15e-8], "unit": "Hz"},
+            "strain": {"median": 7.5e-15, "interval_90": [5e-15, 9e-15], "unit": ""}}
+    (joint / "summary.json").write_text(json.dumps({
+        "n_sources": 2, "log_bayes_factor": 81.5, "log_bayes_factor_error": 2.5, "effective_sample_size": 1100.0,
+        "n_samples": 3000, "iterations": 4000, "walkers": 34, "stopped_by": "converged", "wall_time": 700.0,
+        "swap_acceptance": [0.3, 0.4], "temperatures": [1.0, 3.0, 9.0],
+        "model": {"pulsar_phases": "marginalised exactly, K phases per pulsar", "sky_prior": "isotropic"},
+        "sources": [{"source": 1, "round": 1, "start": {"frequency": 1.2e-8, "ra": 141.0, "dec": -27.0},
+                     "log10_frequency_band": [-7.95, -7.9], "parameters": par,
+                     "sky": {"ra": 140.5, "dec": -27.8, "radius_90_deg": 4.0, "credible_area_90_deg2": 60.0}},
+                    {"source": 2, "round": 2, "start": {"frequency": 3.1e-8, "ra": 20.0, "dec": 10.0},
+                     "log10_frequency_band": [-7.52, -7.49], "parameters": par2,
+                     "sky": {"ra": 21.0, "dec": 11.0, "radius_90_deg": 9.0, "credible_area_90_deg2": 250.0}}]}))
+    text = build_report(run).read_text(encoding="utf-8")
+    doc = html5lib.HTMLParser(strict=True, namespaceHTMLElements=False).parse(text)
+    section = next(s for s in doc.iter("section") if s.get("id") == "joint")
+    words = " ".join(section.itertext())
+    assert "2 confirmed source(s) sampled together" in words and "81.50 ± 2.50" in words
+    assert "source 1 (round 1)" in words and "source 2 (round 2)" in words
+    assert "31" in words and "7.5e-15" in words            # source 2's frequency in nHz and its strain
+    assert len(section.findall(".//img")) == 2
+    followup = next(s for s in doc.iter("section") if s.get("id") == "followup")
+    assert len(followup.findall(".//img")) == 2             # candidate_1's corner and trace only
+    tables = section.findall(".//table")
+    heads = [" ".join(t.find("thead").itertext()) for t in tables]
+    # 10**-7.95 = 1.12e-8 <= 1.2e-8 (injection) <= 10**-7.9 = 1.26e-8: source 1 gets the truth column
+    assert sum("truth (injection.json)" in h for h in heads) == 1

@@ -65,6 +65,7 @@ SECTIONS = (
     ("candidates", "Candidates"),
     ("followup", "Follow-up: posterior and Bayes factor"),
     ("rounds", "Rounds: detection rule, subtract and rescan"),
+    ("joint", "Joint follow-up: every confirmed source in one fit"),
     ("hosts", "Host galaxies"),
     ("limits", "Upper limits"),
     ("targets", "Targeted searches of the catalogue"),
@@ -862,7 +863,66 @@ def _followup(run: _Run):
             sub["figures"] = [_figure(p) for p in imgs]
             shown.update(imgs)
             s["subsections"].append(sub)
-    s["figures"] = [_figure(p) for p in _images(stage) if p not in shown]
+    joint = stage / "joint"          # the joint follow-up's figures are in its own section
+    s["figures"] = [_figure(p) for p in _images(stage) if p not in shown and joint not in p.parents]
+    return s
+
+
+def _joint(run: _Run):
+    """The joint follow-up (``followup/joint/summary.json``): each confirmed source's parameters from the
+    joint posterior, the joint Bayes factor, the sampler's health and one corner plot per source."""
+    s = _sec("joint", dict(SECTIONS)["joint"])
+    folder = run.dir / "followup" / "joint"
+    summary = _read_json(folder / "summary.json")
+    if not isinstance(summary, dict) or not isinstance(summary.get("sources"), list):
+        s["notes"].append("No joint follow-up in this run (it runs once the rounds have confirmed sources).")
+        return s
+    sources = [e for e in summary["sources"] if isinstance(e, dict)]
+    bf, err = summary.get("log_bayes_factor"), summary.get("log_bayes_factor_error")
+    s["paragraphs"].append(
+        f"{len(sources)} confirmed source(s) sampled together: one likelihood for the sum of their signals "
+        "(Earth and pulsar terms) in the run's noise model; "
+        + (f"ln Bayes factor ({summary.get('bayes_factor_meaning', 'signals versus noise')}) = {bf:.2f}"
+           + (f" ± {err:.2f}" if err is not None else "") + "." if bf is not None else "no Bayes factor."))
+    model = summary.get("model") or {}
+    if model.get("pulsar_phases"):
+        s["paragraphs"].append(f"Pulsar-term phases: {model['pulsar_phases']}; sky prior: "
+                               f"{model.get('sky_prior', '–')}; frequency prior: {model.get('frequency_prior', '–')}.")
+    s["notes"] = [f"Sampler: {h}." for h in sampler_health(summary)] + list(summary.get("warnings") or [])
+    for key, label, kind in (("effective_sample_size", "effective samples", "f0"),
+                             ("n_samples", "posterior samples", "int"), ("iterations", "iterations", "int"),
+                             ("walkers", "walkers per temperature", "int"), ("stopped_by", "stopped by", "text"),
+                             ("wall_time", "wall time [s]", "f0")):
+        if summary.get(key) not in (None, ""):
+            s["items"].append((label, fmt_number(summary[key], kind)))
+    for entry in sources:
+        k = entry.get("source")
+        band = entry.get("log10_frequency_band") or [None, None]
+        truth = run.truth if (run.truth and band[0] is not None and run.truth.get("frequency")
+                              and 10 ** band[0] <= run.truth["frequency"] <= 10 ** band[1]) else None
+        sub = {"title": f"source {k}" + (f" (round {entry['round']})" if entry.get("round") is not None else ""),
+               "notes": [], "paragraphs": [], "tables": [], "items": [], "figures": []}
+        start = entry.get("start") or {}
+        if start.get("frequency") is not None:
+            sub["paragraphs"].append(f"Round estimate: f = {start['frequency']:.4g} Hz, ra {start.get('ra', 0):.2f}°, "
+                                     f"dec {start.get('dec', 0):.2f}°.")
+        sky = entry.get("sky")
+        if sky:
+            sub["paragraphs"].append(
+                f"Sky position: ra {sky['ra']:.2f}°, dec {sky['dec']:.2f}°, 90 % of the samples within "
+                f"{sky['radius_90_deg']:.3g}°, 90 % credible area {sky['credible_area_90_deg2']:.3g} deg²"
+                + _sky_truth_text(sky, truth) + ".")
+        table = _parameter_table(entry, truth or {})
+        if table:
+            table["title"] = f"Source {k}: joint-posterior medians and 90 % intervals"
+            sub["tables"].append(table)
+        png = folder / f"corner_source_{k}.png"
+        if png.is_file():
+            sub["figures"].append(_figure(png, f"Joint follow-up, source {k}: one- and two-dimensional marginals of "
+                                               "its parameters, the other sources marginalised (dashed: 5 %, "
+                                               "50 %, 95 %; magenta: truth from injection.json)"))
+        s["subsections"].append(sub)
+    s["tables"] = [_health_table(summary)]
     return s
 
 
@@ -1172,7 +1232,8 @@ def _provenance(run: _Run):
 
 
 _BUILDERS = {"dataset": _dataset, "noise": _noise, "scan": _scan, "candidates": _candidates,
-             "followup": _followup, "rounds": _rounds, "hosts": _hosts, "limits": _limits, "targets": _targeted, "cautions": _cautions,
+             "followup": _followup, "rounds": _rounds, "joint": _joint, "hosts": _hosts, "limits": _limits,
+             "targets": _targeted, "cautions": _cautions,
              "provenance": _provenance}
 
 
