@@ -127,6 +127,13 @@ def test_two_binaries_are_confirmed_in_two_rounds_and_no_third(tmp_path, base):
         for name, value in (("frequency", binary.gw_frequency), ("ra", np.degrees(binary.ra)),
                             ("dec", np.degrees(binary.dec)), ("strain", binary.strain)):
             assert _inside(summary, name, value), (folder, name, value, summary["parameters"][name])
+    # the joint follow-up of both confirmed sources (rounds/joint/): each truth inside its joint 90 % interval
+    assert rounds["joint_followup"]["n_sources"] == 2 and rounds["joint_followup"]["folder"] == "rounds/joint"
+    joint = json.loads((run / "rounds" / "joint" / "summary.json").read_text())
+    for entry, binary in zip(joint["sources"], (loud, moderate)):
+        for name, value in (("frequency", binary.gw_frequency), ("ra", np.degrees(binary.ra)),
+                            ("dec", np.degrees(binary.dec)), ("strain", binary.strain)):
+            assert _inside(entry, name, value), ("joint", entry["source"], name, value, entry["parameters"][name])
     assert (run / "rounds" / "round-2" / "scan" / "candidates.ecsv").is_file()
     assert (run / "rounds" / "round-3" / "scan" / "candidates.ecsv").is_file()
     assert not (run / "rounds" / "round-3" / "followup").exists()
@@ -148,6 +155,7 @@ def test_two_binaries_are_confirmed_in_two_rounds_and_no_third(tmp_path, base):
     text = (run / "report.html").read_text(encoding="utf-8")
     html5lib.HTMLParser(strict=True).parse(text)
     assert "2 source(s) confirmed in 3 round(s)" in text and "Confirmed sources" in text
+    assert "2 confirmed source(s) sampled together" in text          # the report's joint section
     from cwsearch.job.pipeline import format_headline
 
     assert format_headline(result.headline).count("Confirmed by the detection rule: 2 source(s)") == 1

@@ -470,15 +470,34 @@ def _run_rounds(ctx):
 
 
 def _joint_followup(ctx, sources):
-    """THE HOOK for the joint multi-source follow-up (issue 17, item 2; owned by another change): called by the
-    rounds step with ``sources`` (the confirmed sources, the rows of ``RUN_DIR/confirmed_sources.ecsv`` as
-    dicts: round, ra, dec [deg], frequency [Hz], chirp_mass [Msun], strain, inclination, polarization, phase
-    [rad], fap_empirical, log_bayes_factor, folder) whenever two or more sources are confirmed.
+    """The joint follow-up of the confirmed sources (issue 17, item 2), called by the rounds step with
+    ``sources`` (the rows of ``RUN_DIR/confirmed_sources.ecsv`` as dicts: round, ra, dec [deg], frequency
+    [Hz], chirp_mass [Msun], strain, inclination, polarization, phase [rad], ...) whenever two or more
+    sources are confirmed: :func:`cwsearch.stages.followup.joint.run_joint_followup` with the
+    ``[followup]`` options on the run's noise-model data, into ``RUN_DIR/rounds/joint/`` (inside the rounds
+    step's folder, so the follow-up stage's own products and hashes stay as they were). Returns what
+    ``rounds/rounds.json`` records (``joint_followup``)."""
+    # lazy: the follow-up stage's computation module, loaded only when two sources are confirmed
+    from ..stages.followup.joint import run_joint_followup
 
-    NOT IMPLEMENTED YET: it returns None (recorded as ``joint_followup: null`` in ``rounds/rounds.json``) and
-    the report lists each source from its own round's follow-up. The joint fit (one likelihood with the sum
-    of the signals) goes here; what it returns is recorded in ``rounds.json``."""
-    return None
+    options = ctx.config.options.get("followup") or BY_NAME["followup"].options()
+    options = replace(options, resume=False, candidate=None, top=1)
+    seed = int(np.random.SeedSequence([int(ctx.seed), 17]).generate_state(1)[0])   # the rounds seed, key 17
+    folder = Path(ctx.stage_dir) / "joint"
+    result = run_joint_followup(ctx.model_array, ctx.run_dir, list(sources), options, noise=ctx.noise, seed=seed,
+                                progress=ctx.progress, folder=folder)
+    s = result.summary
+    bf = s["log_bayes_factor"]
+    text = (f"{s['n_sources']} sources in one fit ({folder.relative_to(ctx.run_dir)}/; ln B = "
+            + (f"{bf:.2f}" if bf is not None else "–") + f", {s['effective_sample_size']:.0f} effective samples, "
+            f"stopped by {s['stopped_by']}); each source's joint-posterior parameters are in the section "
+            "'Joint follow-up'.")
+    return {"text": text, "folder": str(folder.relative_to(ctx.run_dir)), "n_sources": s["n_sources"],
+            "log_bayes_factor": s["log_bayes_factor"], "log_bayes_factor_error": s["log_bayes_factor_error"],
+            "effective_sample_size": s["effective_sample_size"], "stopped_by": s["stopped_by"],
+            "sources": [{"source": e["source"], "round": e["round"],
+                         **{k: e["parameters"][k]["median"] for k in ("frequency", "ra", "dec", "strain")
+                            if k in e["parameters"]}} for e in s["sources"]]}
 
 
 def _subtraction(ctx):

@@ -869,10 +869,12 @@ def _followup(run: _Run):
 
 
 def _joint(run: _Run):
-    """The joint follow-up (``followup/joint/summary.json``): each confirmed source's parameters from the
+    """The joint follow-up (``rounds/joint/summary.json`` in a pipeline run, ``followup/joint/`` when run on
+    its own): each confirmed source's parameters from the
     joint posterior, the joint Bayes factor, the sampler's health and one corner plot per source."""
     s = _sec("joint", dict(SECTIONS)["joint"])
-    folder = run.dir / "followup" / "joint"
+    folder = next((f for f in (run.dir / "rounds" / "joint", run.dir / "followup" / "joint")
+                   if (f / "summary.json").is_file()), run.dir / "followup" / "joint")
     summary = _read_json(folder / "summary.json")
     if not isinstance(summary, dict) or not isinstance(summary.get("sources"), list):
         s["notes"].append("No joint follow-up in this run (it runs once the rounds have confirmed sources).")
@@ -932,7 +934,7 @@ def _rounds(run: _Run):
     s = _sec("rounds", dict(SECTIONS)["rounds"], notes=run.status_notes("rounds"))
     summ = _read_json(run.dir / "rounds" / "rounds.json") or run.stage_summary("rounds")
     if not summ.get("rounds"):
-        s["figures"] = [_figure(p) for p in _images(run.dir / "rounds")]
+        s["figures"] = [_figure(p) for p in _images(run.dir / "rounds") if run.dir / "rounds" / "joint" not in p.parents]
         return s
     s["paragraphs"].append(f"Detection rule: {summ['detection_rule']}.")
     s["paragraphs"].append(
@@ -987,7 +989,7 @@ def _rounds(run: _Run):
                                 "pulsars where it is largest." if p.name == "rounds.png" else
                                 f"{p.relative_to(run.dir / 'rounds').parts[0].replace('-', ' ')}: "
                                 + (CAPTIONS.get(p.name) or p.stem.replace('_', ' '))))
-                    for p in _images(run.dir / "rounds")]
+                    for p in _images(run.dir / "rounds") if run.dir / "rounds" / "joint" not in p.parents]
     return s
 
 

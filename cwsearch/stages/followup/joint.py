@@ -54,6 +54,7 @@ from astropy.table import Table
 from ...core.errors import InputError
 from ...core.fileio import write_json_atomic, write_table_atomic
 from ...core.safeio import read_input_text
+from ...data.truth import injected_binary
 from ...inference import sampling
 from ...inference.correlated_likelihood import likelihood_for
 from ...inference.multisource import MultiSourceLikelihood
@@ -156,6 +157,18 @@ def sources_from_table(table, path=None) -> list[ConfirmedSource]:
         rnd = int(table["round"][r]) if "round" in table.colnames else r + 1
         out.append(ConfirmedSource(round=rnd, row=r + 1, **values))
     return out
+
+
+def sources_from_rows(rows) -> list[ConfirmedSource]:
+    """:class:`ConfirmedSource` per dict with the keys of ``confirmed_sources.ecsv`` (ra, dec [deg],
+    frequency [Hz], ...; None for an unknown value; other keys ignored), e.g. the pipeline's rounds."""
+    table = Table()
+    for name, default, _ in _COLUMNS:
+        if any(name in r for r in rows):
+            values = [np.nan if r.get(name) is None else r.get(name) for r in rows]
+            table[name] = np.array(values, dtype=float) * default
+    table["round"] = [int(r.get("round") or k + 1) for k, r in enumerate(rows)]
+    return sources_from_table(table)
 
 
 def frequency_windows(sources, span, bins):
@@ -268,8 +281,6 @@ def parameter_table(per_source, sources):
 
 def _truths(run_dir, array, windows):
     """The injected binary (data/truth.py) given to the source whose frequency window holds it."""
-    from ...data.truth import injected_binary
-
     out = [None] * len(windows)
     try:
         truth = injected_binary(array) or injected_binary(run_dir)
@@ -284,14 +295,15 @@ def _truths(run_dir, array, windows):
 
 # ---------------------------------------------------------------- the stage entry
 def run_joint_followup(array, run_dir, sources=None, options: FollowupOptions = FollowupOptions(), *,
-                       noise=None, seed=0, progress=True) -> JointResult:
+                       noise=None, seed=0, progress=True, folder=None) -> JointResult:
     """Sample all confirmed sources at once and write ``run_dir/followup/joint/`` (module docstring).
 
     ``sources``: a list of :class:`ConfirmedSource` (or dicts of its fields), an astropy Table with
     the columns of ``confirmed_sources.ecsv``, or None to read ``run_dir/confirmed_sources.ecsv``.
     ``options``: the follow-up's (sampler settings, model, ``frequency_window``, ``no_plots``);
     ``noise``: the run's :class:`~cwsearch.physics.noise.NoiseSettings` or
-    :class:`~cwsearch.physics.correlated.ArrayNoise`.
+    :class:`~cwsearch.physics.correlated.ArrayNoise`; ``folder``: where to write (default
+    ``run_dir/followup/joint``; the pipeline's rounds step uses ``RUN_DIR/rounds/joint``).
     """
     options.validate()
     run_dir = Path(run_dir)
@@ -300,12 +312,12 @@ def run_joint_followup(array, run_dir, sources=None, options: FollowupOptions = 
         sources = read_confirmed_sources(run_dir)
     elif isinstance(sources, Table):
         sources = sources_from_table(sources)
-    else:
-        sources = [s if isinstance(s, ConfirmedSource) else ConfirmedSource(**s) for s in sources]
+    elif sources and not isinstance(sources[0], ConfirmedSource):
+        sources = sources_from_rows(sources)
     if not sources:
         raise InputError("no confirmed sources to follow up jointly")
     n_src = len(sources)
-    folder = run_dir / FOLDER
+    folder = run_dir / FOLDER if folder is None else Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     started = time.monotonic()
     model = dict(pulsar_term=not options.earth_term_only, evolution=options.evolution,
@@ -393,6 +405,6 @@ def run_joint_followup(array, run_dir, sources=None, options: FollowupOptions = 
     return JointResult(summary=summary, folder=folder, run=result, table=table)
 
 
-__all__ = ["CONFIRMED_FILE", "ConfirmedSource", "JointResult", "read_confirmed_sources", "sources_from_table",
+__all__ = ["CONFIRMED_FILE", "ConfirmedSource", "JointResult", "read_confirmed_sources", "sources_from_table", "sources_from_rows",
            "frequency_windows", "JointPrior", "joint_initial_positions", "joint_posterior_table",
            "parameter_table", "run_joint_followup"]
