@@ -734,9 +734,12 @@ def _fe_pair_products(nq, g, ga, n_chunk, n_sets, fe_out):
                 fe_out[k, r, f] = 0.5 * quad4(fac, nq[r, cx], nq[r, cy], nq[rp, cx], nq[rp, cy])
 
 
-#: pixels per block of the correlated sky kernel (one block per job; a block's pair products are
-#: 4·b·P²/2 numbers, 10 MB for b = 256 at 50 pulsars)
+#: at most this many pixels per block of the correlated sky kernel (one block per job)
 SKY_PIXEL_BLOCK = 256
+
+#: at most this many pattern-pair products per block (b · (3 P(P+1)/2 + P(P−1)/2) doubles, 16 MB): 256
+#: pixels at 50 pulsars, 77 at 116
+PAIR_BLOCK_ELEMENTS = 2**21
 
 
 def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, keep_map=True,
@@ -765,13 +768,14 @@ def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, ke
     corrections = np.asarray(corrections, dtype=float)
     z = np.ascontiguousarray(proj.z, dtype=float)
     n_sym, n_anti = n_psr * (n_psr + 1) // 2, n_psr * (n_psr - 1) // 2
-    edges = list(range(0, n_sky, SKY_PIXEL_BLOCK)) + [n_sky]
+    size = int(min(n_sky, max(1, min(SKY_PIXEL_BLOCK, PAIR_BLOCK_ELEMENTS // (3 * n_sym + n_anti)))))
+    edges = list(range(0, n_sky, size)) + [n_sky]
     blocks = list(zip(edges[:-1], edges[1:]))
     workers = int(max(1, min(_cpu_count(), len(blocks))))
-    size = min(SKY_PIXEL_BLOCK, n_sky)
-    # per frequency: the packed blocks, the Fe values, the data and each running job's products
+    # per frequency: the packed blocks, the Fe values, the data and each running job's products (the jobs'
+    # pattern pairs, at most PAIR_BLOCK_ELEMENTS each, come on top)
     per_freq = 3 * n_sym + n_anti + n_sets * (n_sky + 2 * n_psr) + workers * size * (10 + 4 * n_sets)
-    n_chunk = int(max(1, min(n_freq, (chunk_elements - workers * size * (n_sym + n_anti)) // per_freq)))
+    n_chunk = int(max(1, min(n_freq, chunk_elements // per_freq)))
     fe_map, fe_max, best = fstat.sky_outputs(n_sky, n_sets, n_freq, keep_map, map_dtype)
     with fstat._blas_threads(1), ThreadPoolExecutor(max_workers=workers) as pool:
         for f0 in range(0, n_freq, n_chunk):
