@@ -236,6 +236,43 @@ def test_run_folder_reader_fuzz(tmp_path, which):
     check()
 
 
+@pytest.mark.parametrize("which", ["posterior", "subtracted-signal"])
+def test_rounds_reader_fuzz(tmp_path, which):
+    """The readers of the subtract-and-rescan step (a round's follow-up posterior; rounds/subtracted_signal.ecsv,
+    which the limits and targets stages subtract) see only InputError or success."""
+    import numpy as np
+
+    from cwsearch.job.rounds import _write_signal, read_posterior, read_subtracted_signal
+    from cwsearch.physics.simulate import invented_array
+
+    run = tmp_path / "run"
+    _scan_and_posterior(run)
+    post = run / "followup" / "posterior.ecsv"
+    from astropy.table import Table
+
+    table = Table.read(post, format="ascii.ecsv")
+    for name in ("inclination", "polarization", "phase"):
+        table[name] = np.linspace(0.1, 1.0, len(table))
+    table.write(post, format="ascii.ecsv", overwrite=True)
+    array = invented_array(n_pulsars=2, years=3, seed=1, toas_per_pulsar=8)
+    signal = run / "rounds" / "subtracted_signal.ecsv"
+    signal.parent.mkdir(parents=True)
+    one = [np.full(p.n_toas, 1e-7) for p in array]
+    _write_signal(signal, array, [one], [[np.stack([s, 2 * s]) for s in one]])
+    assert read_subtracted_signal(signal, array, "draw_2")[0][0] == 2e-7 and len(read_posterior(post.parent)) == 12
+    target, load = {"posterior": (post, lambda: read_posterior(post.parent)),
+                    "subtracted-signal": (signal, lambda: (read_subtracted_signal(signal, array),
+                                                           read_subtracted_signal(signal, array, "draw_1")))}[which]
+
+    @FUZZ
+    @given(data=_mutations(target.read_bytes()))
+    def check(data):
+        target.write_bytes(data)
+        _loads_or_input_error(load)
+
+    check()
+
+
 def test_fe_sky_map_reader_fuzz(tmp_path):
     """The reader of a user's Fe sky map (`hosts --sky-map FILE`) sees only InputError or success."""
     import numpy as np

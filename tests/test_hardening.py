@@ -91,6 +91,7 @@ The safety layer itself
   numeric extremes) .................... Z test_dataset_reader_fuzz (pulsars, residuals, noise.ecsv),
                                          Z test_catalog_reader_fuzz (CSV, ECSV), Z test_run_file_fuzz,
                                          Z test_run_folder_reader_fuzz (candidates, posterior, its summary),
+                                         Z test_rounds_reader_fuzz (a round's posterior, subtracted_signal.ecsv),
                                          Z test_noise_table_reader_fuzz, Z test_checkpoint_reader_fuzz,
                                          Z test_fe_sky_map_reader_fuzz (hosts --sky-map; found here: an
                                          unusable map given by name was silently replaced by a Fisher blob)

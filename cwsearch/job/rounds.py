@@ -116,8 +116,19 @@ def read_posterior(folder) -> Table:
     """A follow-up's ``posterior.ecsv`` (our own run folder's file; an unreadable one is an InputError)."""
     path = Path(folder) / "posterior.ecsv"
     table = read_table(path)
-    if table is None or any(name not in table.colnames for name, _ in SOURCE_COLUMNS):
+    if table is None:
         raise InputError("cannot read the follow-up posterior (rerun with --force followup)", file=path)
+    for name, _ in SOURCE_COLUMNS:
+        if name not in table.colnames:
+            raise InputError("missing column (rerun with --force followup)", file=path, column=name)
+        try:
+            values = np.asarray(table[name], dtype=float)
+        except (TypeError, ValueError):
+            raise InputError("not a number (rerun with --force followup)", file=path, column=name) from None
+        if values.ndim != 1:
+            raise InputError("not one number per row (rerun with --force followup)", file=path, column=name)
+    if len(table) == 0:
+        raise InputError("the posterior has no samples (rerun with --force followup)", file=path)
     return table
 
 
@@ -136,15 +147,26 @@ def read_subtracted_signal(path, array, column="total"):
     if table is None or not {"pulsar", "mjd", "total"} <= set(table.colnames):
         raise InputError("cannot read the subtracted signal of the confirmed sources (rerun with --force rounds)",
                          file=path)
-    names = np.asarray(table["pulsar"]).astype(str)
+    if column not in table.colnames:
+        raise InputError("missing column (rerun with --force rounds)", file=path, column=column)
+    try:
+        names = np.asarray(table["pulsar"]).astype(str)
+        mjd_all = np.asarray(table["mjd"], dtype=float)
+        values = np.asarray(table[column], dtype=float)
+    except (TypeError, ValueError):
+        raise InputError("a column is not what it should be (pulsar names, numbers; rerun with --force rounds)",
+                         file=path) from None
+    if values.ndim != 1 or mjd_all.ndim != 1 or names.ndim != 1 or not np.all(np.isfinite(values)):
+        raise InputError("the signal must be one finite number per row (rerun with --force rounds)", file=path,
+                         column=column)
     out = []
     for p in array:
         rows = names == p.name
-        mjd = np.asarray(table["mjd"], dtype=float)[rows]
+        mjd = mjd_all[rows]
         if mjd.size != p.n_toas or not np.allclose(mjd, p.mjd, rtol=0, atol=1e-9):
             raise InputError(f"the subtracted signal does not match the TOAs of pulsar {p.name} (rerun with "
                              "--force rounds)", file=path)
-        out.append(np.asarray(table[column], dtype=float)[rows])
+        out.append(values[rows])
     return out
 
 
