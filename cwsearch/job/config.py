@@ -158,6 +158,9 @@ ROUNDS_KEYS = {
                                       "detection rule, part 2: ... and its follow-up ln Bayes factor (binary + "
                                       "background versus background) is above this (5: 'very strong' on the Kass "
                                       "& Raftery 1995 scale, 2 ln B > 10)"),
+    "joint_followup": Key("joint_followup", bool, True,
+                          "with two or more confirmed sources, sample them all at once (the joint follow-up, "
+                          "rounds/joint/; the [followup] sampler settings; 8 parameters per source)"),
     "subtraction_draws": Key("subtraction_draws", int, 8,
                              "single posterior draws of the subtracted signal kept for the limits' stated "
                              "subtraction error: the limits are recomputed with each subtracted instead of the "

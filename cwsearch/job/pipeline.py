@@ -32,7 +32,7 @@ rescan. It hashes the scan's and follow-up's products, ``[rounds]`` and the scan
 products (``confirmed_sources.ecsv``, ``subtracted_signal.ecsv``) enter the input hashes of the limits and
 targets stages, which work on the data with the confirmed signals subtracted (:func:`analysis_array`), only
 when a source is confirmed. With two or more confirmed sources it calls :func:`_joint_followup`, the one
-place where the joint multi-source follow-up goes.
+place where the joint multi-source follow-up runs (into ``rounds/joint/``).
 
 Resume. ``.stage.json`` is removed before a stage starts and written only
 after the stage has finished (all files are written atomically), so a run
@@ -476,7 +476,9 @@ def _joint_followup(ctx, sources):
     sources are confirmed: :func:`cwsearch.stages.followup.joint.run_joint_followup` with the
     ``[followup]`` options on the run's noise-model data, into ``RUN_DIR/rounds/joint/`` (inside the rounds
     step's folder, so the follow-up stage's own products and hashes stay as they were). Returns what
-    ``rounds/rounds.json`` records (``joint_followup``)."""
+    ``rounds/rounds.json`` records (``joint_followup``); None when ``[rounds] joint_followup = false``."""
+    if not ctx.config.rounds.get("joint_followup", True):
+        return None
     # lazy: the follow-up stage's computation module, loaded only when two sources are confirmed
     from ..stages.followup.joint import run_joint_followup
 

@@ -983,8 +983,9 @@ def _rounds(run: _Run):
         if len(conf) >= 2:
             joint = summ.get("joint_followup")
             s["paragraphs"].append("Joint follow-up of the confirmed sources: " + (
-                "not available yet; each source's parameters are from its own round's follow-up, with the sources "
-                "confirmed before it subtracted." if not joint else str(joint.get("text", joint))))
+                "not run ([rounds] joint_followup = false); each source's parameters are from its own round's "
+                "follow-up, with the sources confirmed before it subtracted." if not joint else
+                str(joint.get("text", joint)) + "."))
     s["figures"] = [_figure(p, ("Rounds: loudest Fe over the sky per round, and the subtracted signal of the "
                                 "pulsars where it is largest." if p.name == "rounds.png" else
                                 f"{p.relative_to(run.dir / 'rounds').parts[0].replace('-', ' ')}: "
