@@ -12,8 +12,8 @@ to the followed-up candidates, best first:
 A candidate within one frequency bin (1/T_span) of an already confirmed source is that source's remnant
 (subtracting a posterior-median signal leaves some of its power) and is skipped. At most one source is
 confirmed per round. The confirmed source's posterior-median signal at every TOA (Earth + pulsar term,
-pulsar phases drawn from their conditional posterior, after the timing-model fit:
-:func:`cwsearch.inference.posterior_signal.median_signal`) is subtracted from the residuals, and round
+each posterior row's pulsar-term phases and distances, after the timing-model fit:
+:func:`cwsearch.inference.posterior_signal.signal_draws`) is subtracted from the residuals, and round
 K + 1 scans what is left (``rounds/round-K/scan/``), follows up its best candidate that is not a remnant,
 whose analytic FAP is below ``[followup] fap_threshold`` and whose empirical FAP could pass the rule
 (``rounds/round-K/followup/``), and applies the rule again, until no candidate passes or
@@ -27,7 +27,9 @@ the rule stays conservative.)
 Files (``RUN_DIR/rounds/``): ``rounds.json`` (the rule, one entry per round: candidate, FAPs, ln B,
 decision, folders), ``confirmed_sources.ecsv`` (one row per confirmed source; copied to
 ``RUN_DIR/confirmed_sources.ecsv``), ``subtracted_signal.ecsv`` (per pulsar and TOA: each confirmed
-source's subtracted signal and their sum [s]; only when a source is confirmed) and ``rounds.png``.
+source's subtracted signal and their sum [s], and sums of single posterior draws for the limits'
+subtraction error; only when a source is confirmed), ``rounds.png`` and, with two or more confirmed sources,
+``joint/`` (the joint follow-up, through the pipeline's hook).
 
 Examples
 --------
