@@ -9,8 +9,8 @@ Prints, all measured in this run:
     process's maximum resident set (``resource.ru_maxrss``).
 (b) all-sky Fe scan of the bench array (50 pulsars × 1,000 TOAs, 3072 pixels,
     500 frequencies): the per-pulsar scan without a common process (reference) and
-    the correlated scan (weighted data, projections with Ψ formed beside them, cross-pulsar
-    corrections, sky kernel), and their ratio (target ≤ 3), in wall time and in CPU seconds
+    the correlated scan (weighted data, projections, Ψ and the cross-pulsar corrections,
+    sky kernel), and their ratio (target ≤ 3), in wall time and in CPU seconds
     of the process; ``--rounds`` interleaved rounds (default 2), best of each.
 (c) full-shape ln-likelihood evaluations/s of :class:`CorrelatedLikelihood` on a
     20-pulsar × 200-TOA array (batches of 160 walkers), against the uncorrelated
@@ -136,7 +136,7 @@ def bench_scan(k_common=None, rounds=2):
         t_build = min(t_build, time.perf_counter() - t)
         c = time.process_time()
         t = time.perf_counter()
-        proj_c = aw2.projections(frequencies)          # Ψ is formed beside the projection threads
+        proj_c = aw2.projections(frequencies)
         t_proj = min(t_proj, time.perf_counter() - t)
         t = time.perf_counter()
         corr = aw2.scan_corrections(frequencies)
@@ -152,7 +152,7 @@ def bench_scan(k_common=None, rounds=2):
     print(f"    per-pulsar noise, no common process: {t_plain:.2f} s (reference)")
     print(f"    correlated (Hellings-Downs, common K = {k_common}; K where the background falls below 1 % of the "
           f"best pulsar's white level: {needed}): {t_corr_total:.2f} s = projections of d~ "
-          f"{t_proj:.2f} + cross-pulsar blocks W_pq(f) {t_corr:.2f} + sky kernel {t_sky:.2f}; "
+          f"{t_proj:.2f} + Psi and cross-pulsar blocks W_pq(f) {t_corr:.2f} + sky kernel {t_sky:.2f}; "
           f"engine build {t_build:.2f} s")
     print(f"    ratio correlated / reference: {t_corr_total / t_plain:.2f} (target <= 3); "
           f"including the engine build {(t_corr_total + t_build) / t_plain:.2f}")

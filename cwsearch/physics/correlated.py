@@ -104,9 +104,6 @@ def _cpu_count():
 #: the array Woodbury matrix S̃ is factorised on every core from this size (N_psr · 2K) up
 THREADED_CHOLESKY_SIZE = 2000
 
-#: rows and columns per block of S̃⁻¹ = R⁻ᵀR⁻¹ (:meth:`ArrayWeighting.correction_matrix`)
-INVERSE_BLOCK = 256
-
 #: frequencies per chunk of the cross-pulsar blocks W_pq(f) (:meth:`ArrayWeighting.scan_corrections`)
 TRIG_CHUNK = 128
 
@@ -423,59 +420,30 @@ class ArrayWeighting:
         return self._psi
 
     def _correction_matrix(self):
+        # one thread (the caller's BLAS setting): threaded dpotri at 3000 x 3000 took 0.15 s against 0.27 s
+        # on an idle 2-core machine but 1-3.4 s against 0.6 s at load 6 (busy-waiting workers); R⁻¹ by
+        # dtrtri and R⁻ᵀR⁻¹ in column blocks on two Python threads was tried: 0.8-5 s against dpotri's
+        # 0.5 s at load 6
+        inv, info = lapack.dpotri(self._chol, lower=1)
+        if info != 0:
+            raise np.linalg.LinAlgError(f"inverting the array Woodbury matrix failed (info {info})")
+        x = np.asfortranarray(inv).T      # C-ordered view of S̃⁻¹ (Fortran lower triangle = its upper one)
+        _mirror_upper(x)
         n_c = self.n_fourier
         lg = self._gamma_factor
         n_psr, rank = lg.shape
         size = rank * n_c
-        # S̃⁻¹ = R⁻ᵀR⁻¹ from the Cholesky factor R: R⁻¹ by LAPACK (one thread), then R⁻ᵀR⁻¹ in column blocks
-        # on one thread per core, each with single-threaded BLAS (the caller's setting): threaded dpotri at
-        # 3000 x 3000 took 0.15 s against 0.27 s on an idle 2-core machine but 1-3.4 s against 0.6 s at
-        # load 6 (busy-waiting workers); :meth:`projections` runs this beside the per-pulsar projections
-        rinv, info = lapack.dtrtri(self._chol, lower=1)
-        if info != 0:
-            raise np.linalg.LinAlgError(f"inverting the array Woodbury matrix failed (info {info})")
-        x = np.empty((size, size))
-        edges = list(range(0, size, INVERSE_BLOCK)) + [size]
-
-        def column_block(j):
-            # X[:j1, J] = (R⁻¹)[j0:, :j1]ᵀ (R⁻¹)[j0:, J]: rows of R⁻¹ above j0 vanish in block J; its mirror
-            j0, j1 = edges[j], edges[j + 1]
-            blk = rinv[j0:, :j1].T @ rinv[j0:, j0:j1]
-            x[:j0, j0:j1] = blk[:j0]
-            x[j0:j1, :j0] = blk[:j0].T
-            diag = blk[j0:]
-            x[j0:j1, j0:j1] = 0.5 * (diag + diag.T)
-
         # Ψ = D̃ A S̃⁻¹ Aᵀ D̃ with A = L_Γ ⊗ I_2K and D̃ = I ⊗ diag(√φ): A acts on the slow (Γ-mode)
-        # index, so A X is a (P × r) @ (r × ·) product and (A X) Aᵀ a batch of (P × r) @ (r × 2K)
+        # index, so A X is one (P × r) @ (r × ·) product and (A X) Aᵀ one batch of (P × r) @ (r × 2K)
         # products, one per row (p, i) of A X viewed as (r, 2K): no transpose of the large matrix
-        y = np.empty((n_psr * n_c, rank, n_c))
-        psi = np.empty((n_psr * n_c, n_psr, n_c))
-        flat_x, flat_y = x.reshape(rank, n_c * size), y.reshape(n_psr, n_c * size)
-        workers = int(max(1, min(_cpu_count(), len(edges) - 1)))
-        cuts = np.linspace(0, n_c * size, 2 * workers + 1).astype(int)
-        rows = np.linspace(0, n_psr * n_c, 2 * workers + 1).astype(int)
+        y = (lg @ x.reshape(rank, n_c * size)).reshape(n_psr * n_c, rank, n_c)       # A X
+        del x, inv
+        psi = np.matmul(lg, y).reshape(n_psr * n_c, n_psr * n_c)                     # A X Aᵀ
+        del y
         root = np.tile(np.sqrt(self.fourier_variance), n_psr)
-
-        def a_x(k):
-            np.matmul(lg, flat_x[:, cuts[k]:cuts[k + 1]], out=flat_y[:, cuts[k]:cuts[k + 1]])
-
-        def x_a(k):
-            r0, r1 = rows[k], rows[k + 1]
-            np.matmul(lg, y[r0:r1], out=psi[r0:r1])
-            block = psi[r0:r1].reshape(r1 - r0, n_psr * n_c)
-            block *= root[r0:r1, None]
-            block *= root[None, :]
-
-        with ThreadPoolExecutor(max_workers=workers) as pool:
-            # column block j costs ∝ (size − j0)·j1: the dearest first
-            order = sorted(range(len(edges) - 1), key=lambda j: -(size - edges[j]) * edges[j + 1])
-            list(pool.map(column_block, order))
-            del rinv
-            list(pool.map(a_x, range(len(cuts) - 1)))
-            del x
-            list(pool.map(x_a, range(len(rows) - 1)))
-        return psi.reshape(n_psr * n_c, n_psr * n_c)
+        psi *= root[:, None]
+        psi *= root[None, :]
+        return psi
 
     def logdet(self) -> float:
         """ln det(Gᵀ C G), the covariance projected off every pulsar's timing model."""
@@ -520,15 +488,10 @@ class ArrayWeighting:
             if off is not None:
                 u_t[p] = (v[off:off + n_c] - self._fourier_white[p].T @ u_basis).T
 
-        # Ψ, which every scan statistic of the data needs next, is the one serial step (one dpotri):
-        # it runs in a thread of its own beside the per-pulsar projection threads, all on one-thread
-        # BLAS (set here, once, for both: the setting is process-wide)
-        with fstat._blas_threads(1), ThreadPoolExecutor(max_workers=1) as side:
-            pending = side.submit(self._correction_matrix) if self._psi is None else None
-            proj = fstat.project(self.engine, frequencies, tilde, on_pulsar=on_pulsar, on_basis=on_basis,
-                                 on_reduced=on_reduced)
-            if pending is not None:
-                self._psi = pending.result()
+        # (Ψ is not formed beside the projection threads: with two more BLAS threads on the 2-core machine
+        # the projections and Ψ together took 2-3.6 s against 1.2-1.5 s one after the other, at load 4)
+        proj = fstat.project(self.engine, frequencies, tilde, on_pulsar=on_pulsar, on_basis=on_basis,
+                             on_reduced=on_reduced)
         self._trig_products = (frequencies.tobytes(), u_t)
         return proj
 
@@ -613,6 +576,18 @@ class ArrayWeighting:
     def dense_covariance_blocks(self):
         """Φ as a dense (P·2K)² matrix (tests and diagnostics only)."""
         return np.kron(self.correlation, np.diag(self.fourier_variance))
+
+
+@njit(cache=True)
+def _mirror_upper(x):
+    """Copy the upper triangle of the square C-ordered ``x`` onto its lower one, in place (blocked)."""
+    n = x.shape[0]
+    step = 64
+    for i0 in range(0, n, step):
+        for j0 in range(i0, n, step):
+            for i in range(i0, min(i0 + step, n)):
+                for j in range(max(j0, i + 1), min(j0 + step, n)):
+                    x[j, i] = x[i, j]
 
 
 @njit(cache=True, nogil=True, fastmath=True)
