@@ -147,23 +147,48 @@ def test_joint_log_factor_against_brute_force_grid():
         assert joint_log_factor(lin, quad, 0.7, coup, 0) == pytest.approx(want, rel=1e-9, abs=1e-9)
 
 
+def _grid_log_mean(lin, quad, const, coup, n):
+    """ln of the mean of exp(F) on an n × n periodic grid (numpy, row by row)."""
+    x = 2 * np.pi * np.arange(n) / n
+    cb, sb = np.cos(x), np.sin(x)
+    own_b = lin[1, 0] * cb + lin[1, 1] * sb + quad[1, 0] * np.cos(2 * x) + quad[1, 1] * np.sin(2 * x)
+    rows = []
+    for a in x:
+        ca, sa = np.cos(a), np.sin(a)
+        f = (const + lin[0, 0] * ca + lin[0, 1] * sa + quad[0, 0] * np.cos(2 * a) + quad[0, 1] * np.sin(2 * a)
+             + own_b + ca * (coup[0, 1, 0, 0] * cb + coup[0, 1, 0, 1] * sb)
+             + sa * (coup[0, 1, 1, 0] * cb + coup[0, 1, 1, 1] * sb))
+        top = f.max()
+        rows.append((top, np.log(np.mean(np.exp(f - top)))))
+    tops = np.array([r[0] for r in rows])
+    logs = np.array([r[1] for r in rows])
+    top = tops.max()
+    return top + np.log(np.mean(np.exp(tops - top + logs)))
+
+
 def test_joint_laplace_regime_close_to_grid():
-    """Very peaked integrand (amplitudes of ~3000 nats, beyond the outer-grid limit): Laplace's method
-    at the joint maximum against a fine brute-force grid (numpy), to 1e-3 relative of the amplitude."""
-    lin = np.array([[2500.0, -1500.0], [900.0, 2000.0]])
-    quad = np.array([[-300.0, 100.0], [50.0, -200.0]])
+    """Very peaked integrand (amplitudes of ~3e4 nats, beyond LAPLACE_AMPLITUDE): Laplace's method over
+    the local maxima against a fine brute-force grid (numpy; 4000 points per phase, about four per peak
+    width 1/√amplitude), to 1e-4 relative of the amplitude."""
+    lin = 10 * np.array([[2500.0, -1500.0], [900.0, 2000.0]])
+    quad = 10 * np.array([[-300.0, 100.0], [50.0, -200.0]])
     coup = np.zeros((2, 2, 2, 2))
-    coup[0, 1] = [[400.0, -100.0], [50.0, 300.0]]
-    x = np.linspace(0, 2 * np.pi, 3000, endpoint=False)
-    a, b = np.meshgrid(x, x, indexing="ij")
-    f = (lin[0, 0] * np.cos(a) + lin[0, 1] * np.sin(a) + quad[0, 0] * np.cos(2 * a) + quad[0, 1] * np.sin(2 * a)
-         + lin[1, 0] * np.cos(b) + lin[1, 1] * np.sin(b) + quad[1, 0] * np.cos(2 * b) + quad[1, 1] * np.sin(2 * b)
-         + np.cos(a) * (coup[0, 1, 0, 0] * np.cos(b) + coup[0, 1, 0, 1] * np.sin(b))
-         + np.sin(a) * (coup[0, 1, 1, 0] * np.cos(b) + coup[0, 1, 1, 1] * np.sin(b)))
-    top = f.max()
-    want = top + np.log(np.mean(np.exp(f - top)))
+    coup[0, 1] = 10 * np.array([[400.0, -100.0], [50.0, 300.0]])
+    want = _grid_log_mean(lin, quad, 0.0, coup, 4000)
     got = joint_log_factor(lin, quad, 0.0, coup, 0)
-    assert abs(got - want) < 1e-3 * top
+    assert abs(got - want) < 1e-4 * np.abs(lin).sum()
+
+
+def test_flat_peak_of_a_moderate_amplitude():
+    """A pulsar of the demo bench where the loud source's linear and quadratic terms nearly cancel at the
+    peak (amplitude ~175 nats, a flat maximum): an earlier Laplace shortcut gave 342 nats instead of 0.2.
+    Against the dense grid (numpy), to 1e-9."""
+    lin = np.array([[-64.43040474668541, -120.94051644448248], [1.8894474879793761, -2.166515229708859]])
+    quad = np.array([[20.520437425566904, -30.06441858995222], [0.01296469995384619, 0.0633181921649516]])
+    coup = np.zeros((2, 2, 2, 2))
+    coup[0, 1] = [[-0.1372720969313973, 0.7357797348976823], [-0.6748906383583679, 0.543862957260382]]
+    want = _grid_log_mean(lin, quad, -1.0, coup, 600)
+    assert joint_log_factor(lin, quad, -1.0, coup, 0) == pytest.approx(want, rel=1e-9, abs=1e-9)
 
 
 @pytest.mark.parametrize("path", ["nodes", "direct"])

@@ -23,9 +23,9 @@ Pulsar phases (K per pulsar, uniform, marginalised):
   single-source marginal per outer grid point (points that cannot come
   within :data:`PRUNE_NATS` of the largest term are skipped). When every
   source's amplitude in the pulsar exceeds :data:`LAPLACE_AMPLITUDE` nats
-  (loud trial signals, mostly in the hot chains) Laplace's method summed
-  over the local maxima replaces the grids, and for the innermost source
-  alone when only it is that loud (error ~ 1/(8 amplitude) nats per phase).
+  (2·10⁴, the single-source marginal's threshold: loud trial signals of hot
+  chains) Laplace's method summed over the local maxima replaces the grids
+  (relative error of order 1/amplitude).
 * **Correlated background.** The cross-pulsar products couple the phases of
   every (source, pulsar) pair; as in the single-source
   :class:`~cwsearch.inference.correlated_likelihood.CorrelatedLikelihood`
@@ -63,12 +63,14 @@ from numba import njit, prange
 from ..physics import fstat, waveform
 from .correlated_likelihood import (MEAN_FIELD_MAX_SWEEPS, MEAN_FIELD_TOLERANCE, CorrelatedLikelihood,
                                     _mean_field_core, correlated_terms, earth_coefficients)
-from .likelihood import (_PARALLEL_BASIS, Likelihood, _basis_parallel, _basis_serial, _grid_size, _laplace_log_mean,
+from .likelihood import (_LAPLACE_ABOVE, _PARALLEL_BASIS, Likelihood, _basis_parallel, _basis_serial, _grid_size,
                          _phase_coefficients, marginal_log_factor)
 
 #: amplitude [nats] (linear + coupling + quadratic terms) above which, for every source of a pulsar, the
-#: K-phase integral is done by Laplace's method (error ~ 1/(8 amplitude) per phase: below 1e-3 nats)
-LAPLACE_AMPLITUDE = 100.0
+#: K-phase integral is done by Laplace's method: the single-source marginal's threshold (2e4 nats, far outside
+#: any posterior; relative error of order 1/amplitude). Below it, a moderate amplitude can still have a flat
+#: peak (linear and quadratic terms cancelling), where Laplace's method errs by far more than 1/amplitude
+LAPLACE_AMPLITUDE = _LAPLACE_ABOVE
 #: walkers × pulsars from which the marginalisation kernel runs on every core
 _PARALLEL_UNITS = 200
 
@@ -266,14 +268,6 @@ def _outer_point(point, inner, counts, lin, quad, coup, cc, ss, field):
     return value
 
 
-@njit(cache=True, inline="always")
-def _inner_log_factor(a, b, c, d, n_grid, laplace):
-    """The innermost phase: the single-source marginal, or its Laplace form for a loud source."""
-    if laplace:
-        return _laplace_log_mean(a, b, c, d)
-    return marginal_log_factor(a, b, c, d, 0.0, n_grid)
-
-
 #: outer grid points whose upper bound (outer part + |inner linear| + |inner quadratic|) lies this many
 #: nats below a value already found are left out (each below e^-40 of the sum)
 PRUNE_NATS = 40.0
@@ -290,8 +284,7 @@ def joint_log_factor(lin, quad, const, coup, n_grid):
     ``|quad_k|`` (or ``n_grid`` points when > 0); outer points that cannot come within
     :data:`PRUNE_NATS` of a value already found are skipped. When every source's amplitude exceeds
     :data:`LAPLACE_AMPLITUDE` (and ``n_grid`` ≤ 0), Laplace's method over all local maxima
-    (:func:`_joint_laplace`) replaces the grids; when only the inner one does, Laplace's method
-    replaces its marginal.
+    (:func:`_joint_laplace`) replaces the grids.
     """
     n = lin.shape[0]
     if n == 1:
@@ -327,9 +320,8 @@ def joint_log_factor(lin, quad, const, coup, n_grid):
         if bound > best_bound:
             best_bound, best_point = bound, point
     outer = _outer_point(best_point, inner, counts, lin, quad, coup, cc, ss, field)
-    laplace = n_grid <= 0 and size[inner] > LAPLACE_AMPLITUDE
-    floor = outer + _inner_log_factor(lin[inner, 0] + field[0], lin[inner, 1] + field[1], quad[inner, 0],
-                                      quad[inner, 1], n_grid, laplace) - PRUNE_NATS
+    floor = outer + marginal_log_factor(lin[inner, 0] + field[0], lin[inner, 1] + field[1], quad[inner, 0],
+                                        quad[inner, 1], 0.0, n_grid) - PRUNE_NATS
     # pass 2: every point that can reach above the floor (streaming log-sum-exp)
     total, top = 0.0, -np.inf
     for point in range(n_points):
@@ -337,7 +329,7 @@ def joint_log_factor(lin, quad, const, coup, n_grid):
         lin0, lin1 = lin[inner, 0] + field[0], lin[inner, 1] + field[1]
         if outer + np.sqrt(lin0 * lin0 + lin1 * lin1) + q_in < floor:
             continue
-        value = outer + _inner_log_factor(lin0, lin1, quad[inner, 0], quad[inner, 1], n_grid, laplace)
+        value = outer + marginal_log_factor(lin0, lin1, quad[inner, 0], quad[inner, 1], 0.0, n_grid)
         if value > top:
             total = total * np.exp(top - value) + 1.0
             top = value
