@@ -43,11 +43,11 @@ def test_two_injected_sources_recovered_jointly(tmp_path):
         b.strain *= snr / engine.optimal_snr(simulate.binary_residuals(base, b))
     data = base.with_residuals(simulate_residuals(base, seed=62, binaries=binaries))
     run = tmp_path / "run"
-    # the rounds' estimates, slightly off the truth (as single-source follow-ups would give)
-    _write_sources(run, [(1, math.degrees(b.ra) + 2, math.degrees(b.dec) - 1, b.gw_frequency * 1.01, b.strain * 1.2)
+    # the rounds' estimates, slightly off the truth (as single-source follow-ups would give: 0.03 bins in frequency)
+    _write_sources(run, [(1, math.degrees(b.ra) + 2, math.degrees(b.dec) - 1, b.gw_frequency * 1.003, b.strain * 1.2)
                          for b in binaries])
-    options = FollowupOptions(walkers=34, temperatures=3, ess=100, max_iterations=500, adapt_iterations=100,
-                              checkpoint_every=10_000)
+    options = FollowupOptions(walkers=34, temperatures=2, max_temperature=30.0, ess=100, max_iterations=800,
+                              adapt_iterations=100, checkpoint_every=10_000)
     result = run_joint_followup(data, run, None, options, noise=NOISE, seed=7, progress=False)
     summary = result.summary
     assert summary["n_sources"] == 2 and len(summary["sources"]) == 2

@@ -23,9 +23,11 @@ Pulsar phases (K per pulsar, uniform, marginalised):
   single-source marginal per outer grid point (points that cannot come
   within :data:`PRUNE_NATS` of the largest term are skipped). When every
   source's amplitude in the pulsar exceeds :data:`LAPLACE_AMPLITUDE` nats
-  (2·10⁴, the single-source marginal's threshold: loud trial signals of hot
-  chains) Laplace's method summed over the local maxima replaces the grids
-  (relative error of order 1/amplitude).
+  (loud trial signals of hot chains) Laplace's method summed over the local
+  maxima replaces the grids, where the first neglected term of its
+  expansion (2 amplitude/λ², λ the smallest curvature at a peak) is below
+  :data:`LAPLACE_ERROR` nats or :data:`LAPLACE_RELATIVE_ERROR` of the
+  amplitude; flat peaks stay on the grids.
 * **Correlated background.** The cross-pulsar products couple the phases of
   every (source, pulsar) pair; as in the single-source
   :class:`~cwsearch.inference.correlated_likelihood.CorrelatedLikelihood`
@@ -63,14 +65,18 @@ from numba import njit, prange
 from ..physics import fstat, waveform
 from .correlated_likelihood import (MEAN_FIELD_MAX_SWEEPS, MEAN_FIELD_TOLERANCE, CorrelatedLikelihood,
                                     _mean_field_core, correlated_terms, earth_coefficients)
-from .likelihood import (_LAPLACE_ABOVE, _PARALLEL_BASIS, Likelihood, _basis_parallel, _basis_serial, _grid_size,
+from .likelihood import (_PARALLEL_BASIS, Likelihood, _basis_parallel, _basis_serial, _grid_size,
                          _phase_coefficients, marginal_log_factor)
 
 #: amplitude [nats] (linear + coupling + quadratic terms) above which, for every source of a pulsar, the
-#: K-phase integral is done by Laplace's method: the single-source marginal's threshold (2e4 nats, far outside
-#: any posterior; relative error of order 1/amplitude). Below it, a moderate amplitude can still have a flat
-#: peak (linear and quadratic terms cancelling), where Laplace's method errs by far more than 1/amplitude
-LAPLACE_AMPLITUDE = _LAPLACE_ABOVE
+#: K-phase integral may be done by Laplace's method (trial signals thousands of nats from any posterior) ...
+LAPLACE_AMPLITUDE = 1000.0
+#: ... and only where the first neglected term of Laplace's expansion, 2 amplitude / λ² (λ the smallest
+#: curvature at a peak), is below this many nats; a flat peak goes to the grids
+LAPLACE_ERROR = 0.02
+#: ... or below this fraction of the amplitude (1e5 nats and more from any posterior: 1 nat at 1e5 nats
+#: changes a hot chain's tempered likelihood by less than its own Monte-Carlo noise)
+LAPLACE_RELATIVE_ERROR = 1e-5
 #: walkers × pulsars from which the marginalisation kernel runs on every core
 _PARALLEL_UNITS = 200
 
@@ -179,10 +185,11 @@ def _laplace_at(chi, lin, quad, const, coup, tmp_c, tmp_s, field):
         c2, s2 = np.cos(2 * chi[k]), np.sin(2 * chi[k])
         value += lin[k, 0] * tmp_c[k] + lin[k, 1] * tmp_s[k] + quad[k, 0] * c2 + quad[k, 1] * s2 \
             + 0.5 * (field[0] * tmp_c[k] + field[1] * tmp_s[k])
+    curvature = np.linalg.eigvalsh(-hess).min()
+    if curvature <= 0:     # not a strict maximum (a flat direction): no Laplace value
+        return value - n * np.log(2 * np.pi), 0.0
     sign, logdet = np.linalg.slogdet(-hess)
-    if sign <= 0:          # not a strict maximum (a flat direction): the peak value without a width
-        return value - n * np.log(2 * np.pi)
-    return value - 0.5 * n * np.log(2 * np.pi) - 0.5 * logdet
+    return value - 0.5 * n * np.log(2 * np.pi) - 0.5 * logdet, curvature
 
 
 @njit(cache=True)
@@ -204,10 +211,12 @@ def _gradient_hessian(chi, tmp_c, tmp_s, lin, quad, coup, field, grad, hess):
 
 
 @njit(cache=True)
-def _joint_laplace(lin, quad, const, coup):
+def _joint_laplace(lin, quad, const, coup, amplitude):
     """ln (2π)^-K ∫ exp(F) dχ by Laplace's method summed over the distinct local maxima of F, found by
     coordinate ascent from every combination of the sources' own maxima (at most 2^K starts),
-    F = const + Σ_k [lin_k·u_k + quad_k·(cos2χ_k, sin2χ_k)] + Σ_{k<l} u_kᵀ coup[k, l] u_l."""
+    F = const + Σ_k [lin_k·u_k + quad_k·(cos2χ_k, sin2χ_k)] + Σ_{k<l} u_kᵀ coup[k, l] u_l; and the
+    size of the first neglected term of the expansion, ``2 amplitude / λ²`` (λ the smallest curvature
+    −H at a peak; F's fourth derivatives are at most 16 × amplitude), the largest over the peaks."""
     n = lin.shape[0]
     own = np.empty((n, 2))
     n_own = np.empty(n, dtype=np.int64)
@@ -221,12 +230,14 @@ def _joint_laplace(lin, quad, const, coup):
     chi = np.empty(n)
     tmp_c, tmp_s, field = np.empty(n), np.empty(n), np.empty(2)
     found = 0
+    worst = 0.0
     for start in range(n_start):
         rest = start
         for k in range(n):
             chi[k] = own[k, rest % n_own[k]]
             rest //= n_own[k]
-        lap = _laplace_at(chi, lin, quad, const, coup, tmp_c, tmp_s, field)
+        lap, curvature = _laplace_at(chi, lin, quad, const, coup, tmp_c, tmp_s, field)
+        worst = max(worst, 2.0 * amplitude / curvature ** 2 if curvature > 0 else np.inf)
         same = False
         for j in range(found):
             dist = 0.0
@@ -240,7 +251,7 @@ def _joint_laplace(lin, quad, const, coup):
             logs[found] = lap
             found += 1
     top = logs[:found].max()
-    return top + np.log(np.sum(np.exp(logs[:found] - top)))
+    return top + np.log(np.sum(np.exp(logs[:found] - top))), worst
 
 
 @njit(cache=True, inline="always")
@@ -284,7 +295,8 @@ def joint_log_factor(lin, quad, const, coup, n_grid):
     ``|quad_k|`` (or ``n_grid`` points when > 0); outer points that cannot come within
     :data:`PRUNE_NATS` of a value already found are skipped. When every source's amplitude exceeds
     :data:`LAPLACE_AMPLITUDE` (and ``n_grid`` ≤ 0), Laplace's method over all local maxima
-    (:func:`_joint_laplace`) replaces the grids.
+    (:func:`_joint_laplace`) replaces the grids where its estimated error is below
+    :data:`LAPLACE_ERROR` nats.
     """
     n = lin.shape[0]
     if n == 1:
@@ -298,7 +310,9 @@ def joint_log_factor(lin, quad, const, coup, n_grid):
                 r1 += np.sqrt(x[0, 0] ** 2 + x[0, 1] ** 2 + x[1, 0] ** 2 + x[1, 1] ** 2)
         size[k] = r1 + np.sqrt(quad[k, 0] ** 2 + quad[k, 1] ** 2)
     if n_grid <= 0 and size.min() > LAPLACE_AMPLITUDE:
-        return _joint_laplace(lin, quad, const, coup)
+        value, error = _joint_laplace(lin, quad, const, coup, size.max())
+        if error <= max(LAPLACE_ERROR, LAPLACE_RELATIVE_ERROR * size.max()):
+            return value
     inner = int(np.argmax(size))
     counts = np.empty(n, dtype=np.int64)
     n_points = 1
@@ -618,4 +632,4 @@ class MultiSourceLikelihood:
         return ds - 0.5 * ss
 
 
-__all__ = ["LAPLACE_AMPLITUDE", "PRUNE_NATS", "source_names", "joint_log_factor", "MultiSourceLikelihood"]
+__all__ = ["LAPLACE_AMPLITUDE", "LAPLACE_ERROR", "PRUNE_NATS", "source_names", "joint_log_factor", "MultiSourceLikelihood"]
