@@ -153,9 +153,18 @@ def _mean_field_core(coef, amp, cross, max_sweeps, tol):
     ``exp(a cosχ + b sinχ + c cos2χ + d sin2χ + e)`` (``coef[i]`` = (a, b, c, d, e)), the coupling
     ``½ Σ_{i≠j} u_iᵀ J_ij u_j`` with ``J_ij = amp_i amp_j cross[i, j]`` (zero diagonal); returns
     (ln Z bound, sweeps). The units are pulsars for one source, (source, pulsar) pairs for several
-    (:mod:`cwsearch.inference.multisource`)."""
+    (:mod:`cwsearch.inference.multisource`).
+
+    The value is the variational bound of the product distribution actually reached,
+    ``Σ_i [ln Z_i(h_i) − h_i·μ_i] + ½ Σ_{i≠j} μ_iᵀ J_ij μ_j`` with ``h_i`` the field unit i was last
+    updated with and ``μ_i`` its moments (Jensen's inequality: a lower bound for any fields). At the
+    fixed point ``h_i = Σ_j J_ij μ_j`` and it is the usual mean-field value; when the sweeps stop before
+    convergence (very strong coupling: huge strains, where every pulsar term can cancel its Earth term)
+    it stays a bound. The fixed-point formula alone, evaluated off the fixed point, was measured
+    1,270 nats above the uncorrelated likelihood at log10 h0 = −11.6 on the demo data."""
     n_p = coef.shape[0]
     mu = np.zeros((n_p, 2))
+    field = np.zeros((n_p, 2))
     lnz = np.empty(n_p)
     tmp = np.empty(2)
     for p in range(n_p):
@@ -176,6 +185,8 @@ def _mean_field_core(coef, amp, cross, max_sweeps, tol):
                     ha += jq * (x[0, 0] * mu[q, 0] + x[0, 1] * mu[q, 1])
                     hb += jq * (x[1, 0] * mu[q, 0] + x[1, 1] * mu[q, 1])
             lnz[p] = _grid_moments(coef[p, 0] + ha, coef[p, 1] + hb, coef[p, 2], coef[p, 3], coef[p, 4], tmp)
+            field[p, 0] = ha
+            field[p, 1] = hb
             change = max(change, abs(tmp[0] - mu[p, 0]), abs(tmp[1] - mu[p, 1]))
             mu[p, 0] = tmp[0]
             mu[p, 1] = tmp[1]
@@ -183,11 +194,11 @@ def _mean_field_core(coef, amp, cross, max_sweeps, tol):
             break
     total = 0.0
     for p in range(n_p):
-        total += lnz[p]
+        total += lnz[p] - (field[p, 0] * mu[p, 0] + field[p, 1] * mu[p, 1])
         for q in range(n_p):
             if q != p:
                 x = cross[p, q]
-                total -= 0.5 * amp[p] * amp[q] * (mu[p, 0] * (x[0, 0] * mu[q, 0] + x[0, 1] * mu[q, 1])
+                total += 0.5 * amp[p] * amp[q] * (mu[p, 0] * (x[0, 0] * mu[q, 0] + x[0, 1] * mu[q, 1])
                                                   + mu[p, 1] * (x[1, 0] * mu[q, 0] + x[1, 1] * mu[q, 1]))
     return total, n_sweep
 
