@@ -15,11 +15,10 @@ later stage uses it) -> scan -> follow-up of every candidate below the
 false-alarm threshold -> subtract and rescan (a candidate the detection
 rule confirms is subtracted and the residuals scanned again) -> host
 ranking -> upper limits on what is left -> targeted search of the
-catalogue -> report.html, in about 11 minutes on an idle 2-core machine
-(measured 11 min 7 s before subtract and rescan, which adds about 2-3
-minutes: the demo binary is confirmed, the residuals rescanned and the
-limits computed 8 more times for their subtraction error; the follow-up is capped at 1,800 iterations, about
-10 minutes, and a stop at the cap is a warning in the headline; the first
+catalogue -> report.html, in about 10 minutes on a 2-core machine
+(measured 10 min 0 s: the follow-up, capped at 1,800 iterations, 7 min; the
+limits, computed on what is left and 8 more times for their subtraction
+error, 2.3 min; a stop at the cap is a warning in the headline; the first
 run also compiles the numba kernels). Prints where the report is and the headline.
 
 The settings used are written to OUT/run.toml; edit a copy of it and run
