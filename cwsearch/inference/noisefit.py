@@ -90,7 +90,6 @@ from __future__ import annotations
 import hashlib
 import os
 import warnings
-from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field, asdict
 from pathlib import Path
 
@@ -104,7 +103,8 @@ from ..core.errors import InputError
 from ..core.fileio import write_table_atomic
 from ..data.dataset import _numeric, _read_table, _require_columns, _text
 from ..data.model import PulsarNoise
-from ..physics.noise import (NoiseSettings, PulsarLikelihood, PulsarWeighting, fourier_basis, powerlaw_variance)
+from ..physics.noise import (NoiseSettings, PulsarLikelihood, PulsarWeighting, fourier_basis, per_pulsar_threads,
+                             powerlaw_variance)
 
 #: Likelihood-ratio threshold 2 Δln L for claiming red noise in a pulsar.
 RED_NOISE_THRESHOLD = 9.0
@@ -848,15 +848,7 @@ def goodness_of_fit(array, noise_settings: NoiseSettings, lowfreq_components=4, 
         return check_pulsar(PulsarWeighting(pulsar, array.start, array.span, noise_settings), lowfreq_components,
                             threshold)
 
-    pulsars = list(array)
-    cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
-    workers = max(1, min(len(pulsars), cpus if workers is None else int(workers)))
-    with threadpool_limits(1, user_api="blas"):
-        if workers == 1:
-            checks = [one(p) for p in pulsars]
-        else:
-            with ThreadPoolExecutor(max_workers=workers) as pool:
-                checks = list(pool.map(one, pulsars))
+    checks = per_pulsar_threads(one, array, workers)
     return checks, check_array(checks, threshold)
 
 

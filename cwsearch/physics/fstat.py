@@ -301,7 +301,7 @@ def _project_pulsar(w, t0, frequencies, residual_set, x, y, z, z_scale, i, step=
     ub = w.reduce(v)                                       # L⁻¹ Tᵀ N⁻¹ B, (r, 2F)
     if on_reduced is not None:
         on_reduced(i, v, ub)
-    _, ur = w.whiten(residual_set)                         # (r, B)
+    ur = w.reduce(weighted_t @ residual_set)               # L⁻¹ Tᵀ N⁻¹ r, (r, B)
     xy -= ur.T @ ub
     x[:, i] = xy[:, :n_freq]
     y[:, i] = xy[:, n_freq:]

@@ -313,20 +313,26 @@ def single_threaded_blas():
     return threadpool_limits(1, user_api="blas")
 
 
-def _build_pulsars(array, settings, workers=None):
-    """One :class:`PulsarWeighting` per pulsar, built one pulsar per thread with single-threaded BLAS.
+def per_pulsar_threads(func, pulsars, workers=None):
+    """``[func(p) for p in pulsars]``, one pulsar per thread (``workers``: default one per CPU), each on
+    single-threaded BLAS (:func:`single_threaded_blas`).
 
-    Each pulsar's build is independent and runs the same operations whatever
-    the number of threads, so the result does not depend on it.
+    Each call is independent and runs the same operations whatever the number of threads, so the
+    results do not depend on it.
     """
-    pulsars = list(array)
+    pulsars = list(pulsars)
     cpus = len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1)
     workers = min(len(pulsars), cpus if workers is None else int(workers))
     with single_threaded_blas():
         if workers <= 1:
-            return [PulsarWeighting(p, array.start, array.span, settings) for p in pulsars]
+            return [func(p) for p in pulsars]
         with ThreadPoolExecutor(max_workers=workers) as pool:
-            return list(pool.map(lambda p: PulsarWeighting(p, array.start, array.span, settings), pulsars))
+            return list(pool.map(func, pulsars))
+
+
+def _build_pulsars(array, settings, workers=None):
+    """One :class:`PulsarWeighting` per pulsar, built by :func:`per_pulsar_threads`."""
+    return per_pulsar_threads(lambda p: PulsarWeighting(p, array.start, array.span, settings), array, workers)
 
 
 # ----------------------------------------------------------------- noise estimation
@@ -418,5 +424,5 @@ class PulsarLikelihood:
 
 __all__ = [
     "NoiseSettings", "MAX_RED_COMPONENTS", "fourier_frequencies", "fourier_basis", "powerlaw_variance", "hellings_downs",
-    "PulsarWeighting", "NoiseWeighting", "PulsarLikelihood",
+    "PulsarWeighting", "NoiseWeighting", "PulsarLikelihood", "per_pulsar_threads",
 ]
