@@ -158,9 +158,10 @@ def assert_same_numbers(got: Path, want: Path):
 # ------------------------------------------------------------------ scan (deterministic: same numbers)
 
 def test_kill_scan_then_resume_equals_uninterrupted(dataset, tmp_path, capsys):
-    # enough null simulations that the kill lands inside them (with the imports at module top the stage no
-    # longer spends seconds importing astropy.table after them)
-    scan = dict(SCAN, null_sims=1000)
+    # enough null simulations that the kill lands inside them on a fast machine: 1000 took 0.33 s on an
+    # idle 2-core machine once the kernels were compiled, so a 0.3 s settle could miss them (CI did);
+    # 5000 take ~1.7 s there and the kill comes 0.05 s after their progress bar appears
+    scan = dict(SCAN, null_sims=5000)
     # the default (estimate) noise model: the run fits the noise first, and the resumed run reuses that
     # finished fit (same options and seed); recomputed numbers compared to 1e-9 relative (stated tolerance)
     ref = run_file(tmp_path / "ref.toml", dataset, "ref", ["scan"], scan=scan)
@@ -168,7 +169,7 @@ def test_kill_scan_then_resume_equals_uninterrupted(dataset, tmp_path, capsys):
     killed = run_file(tmp_path / "killed.toml", dataset, "killed", ["scan"], scan=scan)
     inputs = tree(dataset)
 
-    kill_when(["run", killed], "null simulations:", cwd=tmp_path)
+    kill_when(["run", killed], "null simulations:", cwd=tmp_path, settle=0.05)
     assert_no_half_written(tmp_path / "killed")
     record = json.loads((tmp_path / "killed" / "scan" / STAGE_FILE).read_text())
     assert record["status"] == "running"  # the record says the stage did not finish
