@@ -438,3 +438,54 @@ def test_joint_section_lists_every_source(run_folder, tmp_path):
     heads = [" ".join(t.find("thead").itertext()) for t in tables]
     # 10**-7.95 = 1.12e-8 <= 1.2e-8 (injection) <= 10**-7.9 = 1.26e-8: source 1 gets the truth column
     assert sum("truth (injection.json)" in h for h in heads) == 1
+
+
+def test_rounds_section_lists_each_confirmed_sources_best_host(run_folder, tmp_path):
+    """The rounds section's host table (rounds/rounds.json ``confirmed``): the round-1 source's best host read
+    from the hosts stage's hosts_summary.json (its candidate label), a later round's and the joint follow-up's
+    from the entries the rounds step recorded, a recorded error as a note; strict html5lib parse. The numbers
+    are invented (no check value): the table must show what the files say."""
+    import html5lib
+
+    run = tmp_path / "run"
+    shutil.copytree(run_folder, run)
+    (run / "hosts" / "hosts_summary.json").write_text(json.dumps({"candidates": [
+        {"candidate": "candidate_1", "best_host": {"name": "GALX0002", "probability": 0.7},
+         "probability_not_in_catalogue": 0.125}]}))
+    (run / "rounds").mkdir()
+    source = {"ra": 141.0, "dec": -27.5, "frequency": 1.2e-8, "chirp_mass": 1e9, "strain": 1e-14,
+              "fap_empirical": 0.01, "log_bayes_factor": 30.0}
+    confirmed = [
+        {**source, "source": 1, "round": 1, "folder": "followup/candidate_1",
+         "hosts": {"folder": "hosts", "candidate": "candidate_1", "note": "ranked by the hosts stage"}},
+        {**source, "source": 2, "round": 2, "folder": "rounds/round-2/followup",
+         "hosts": {"folder": "rounds/round-2/hosts", "best_host": "GALR0007", "best_host_probability": 0.4375,
+                   "probability_not_in_catalogue": 0.3125},
+         "joint_hosts": {"folder": "rounds/joint/source-2/hosts", "best_host": "GALR0008",
+                         "best_host_probability": 0.5625, "probability_not_in_catalogue": 0.1875}},
+        {**source, "source": 3, "round": 3, "folder": "rounds/round-3/followup",
+         "hosts": {"folder": "rounds/round-3/hosts", "error": "no catalogue galaxy lies within the distance limit"}}]
+    rounds = {"detection_rule": "a rule", "n_confirmed": 3, "n_rounds": 4, "max_sources": 3, "stopped": "round 3",
+              "rounds": [{"round": k, "subtracted_sources": k - 1, "candidates": []} for k in (1, 2, 3)],
+              "confirmed": confirmed, "joint_followup": None}
+    (run / "rounds" / "rounds.json").write_text(json.dumps(rounds))
+    text = build_report(run).read_text(encoding="utf-8")
+    doc = html5lib.HTMLParser(strict=True, namespaceHTMLElements=False).parse(text)
+    section = next(s for s in doc.iter("section") if s.get("id") == "rounds")
+    titles = [" ".join(h.itertext()) for h in section.iter("h3")]
+    k = next(i for i, t in enumerate(titles) if t.startswith("Host galaxies of the confirmed sources"))
+    table = section.findall(".//table")[k]
+    heads = [" ".join(th.itertext()) for th in table.find("thead").iter("th")]
+    assert heads[:7] == ["source", "round", "posterior", "best host", "P(best host)", "P(host not in catalogue)",
+                         "ranking"]
+    rows = [[" ".join(td.itertext()).strip() for td in tr.iter("td")] for tr in table.find("tbody").iter("tr")]
+    assert [r[:4] for r in rows] == [["1", "1", "its round's follow-up", "GALX0002"],
+                                     ["2", "2", "its round's follow-up", "GALR0007"],
+                                     ["2", "2", "joint follow-up", "GALR0008"],
+                                     ["3", "3", "its round's follow-up", "–"]]
+    # probabilities to three significant figures ("g3"): 0.7, 0.125 from hosts_summary.json; 0.4375 -> 0.438
+    assert [r[4:7] for r in rows[:3]] == [["0.7", "0.125", "hosts"], ["0.438", "0.312", "rounds/round-2/hosts"],
+                                          ["0.562", "0.188", "rounds/joint/source-2/hosts"]]
+    assert "distance limit" in rows[3][7]
+    words = " ".join(section.itertext())
+    assert "rounds/round-K/hosts/" in words and "not an identification" in words

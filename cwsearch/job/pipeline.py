@@ -457,16 +457,42 @@ def default_stages():
 # ---------------------------------------------------------------- subtract and rescan (docs/design.md §14)
 def _rounds_inputs(ctx):
     """What the rounds step's result depends on besides the scan's and follow-up's products: the [rounds]
-    rule, and the scan and follow-up options it reruns with."""
-    return {"rounds": dict(ctx.config.rounds), "scan": ctx.config.stage_config("scan"),
-            "followup": ctx.config.stage_config("followup")}
+    rule, and the scan and follow-up options it reruns with; when it ranks hosts (:func:`_ranks_hosts`) also
+    the [hosts] options and the catalogue's checksum (without, the hash is what it was before)."""
+    inputs = {"rounds": dict(ctx.config.rounds), "scan": ctx.config.stage_config("scan"),
+              "followup": ctx.config.stage_config("followup")}
+    if _ranks_hosts(ctx):
+        catalog = ctx.config.options["hosts"].catalog     # the hosts stage's catalogue, not this step's options
+        inputs["hosts"] = {"options": ctx.config.stage_config("hosts"),
+                           "catalog": file_checksum(catalog) if Path(catalog).is_file() else None}
+    return inputs
+
+
+def _ranks_hosts(ctx) -> bool:
+    """Whether the rounds step ranks hosts of its later sources: the hosts stage is in the run's stages and
+    ``[hosts] catalog`` is set (the same condition under which the hosts stage ranks the round-1 source)."""
+    options = ctx.config.options.get("hosts")
+    return "hosts" in ctx.config.stages and bool(getattr(options, "catalog", None))
+
+
+def _rank_hosts(ctx, folder, seed):
+    """The hosts stage's own ranking (:func:`cwsearch.stages.hosts.stage.run_hosts`, the ``[hosts]``
+    options) of the follow-up posterior in ``folder/followup/`` into ``folder/hosts/``, called by the rounds
+    step for a later round's source (``folder`` = ``rounds/round-K``) and by :func:`_joint_followup` for a
+    joint-follow-up source (``rounds/joint/source-J``). Returns the ranking's summary (hosts_summary.json)."""
+    options = replace(runner_options(ctx.config.options["hosts"], ctx.config.execution), candidate=None)
+    result = BY_NAME["hosts"].run(ctx.model_array, folder, options, noise=ctx.noise, seed=int(seed),
+                                  progress=ctx.progress)
+    return dict(result.summary or {})
 
 
 def _run_rounds(ctx):
     """The ``rounds`` step: the detection rule on round 1's follow-ups, then subtract and rescan
-    (:func:`cwsearch.job.rounds.run_rounds`); writes ``rounds/`` and ``RUN_DIR/confirmed_sources.ecsv``."""
+    (:func:`cwsearch.job.rounds.run_rounds`); writes ``rounds/`` and ``RUN_DIR/confirmed_sources.ecsv``;
+    with a host ranking in the run, the hosts of the sources confirmed after round 1 (:func:`_rank_hosts`)."""
     return run_rounds(ctx, scan_stage=BY_NAME["scan"], followup_stage=BY_NAME["followup"],
-                      runner_options=runner_options, joint_followup=_joint_followup)
+                      runner_options=runner_options, joint_followup=_joint_followup,
+                      rank_hosts=_rank_hosts if _ranks_hosts(ctx) else None)
 
 
 def _joint_followup(ctx, sources):
@@ -494,12 +520,47 @@ def _joint_followup(ctx, sources):
             + (f"{bf:.2f}" if bf is not None else "–") + f", {s['effective_sample_size']:.0f} effective samples, "
             f"stopped by {s['stopped_by']}); each source's joint-posterior parameters are in the section "
             "'Joint follow-up'.")
+    entries = [{"source": e["source"], "round": e["round"],
+                **{k: e["parameters"][k]["median"] for k in ("frequency", "ra", "dec", "strain")
+                   if k in e["parameters"]}} for e in s["sources"]]
+    if _ranks_hosts(ctx):
+        for entry, e in zip(entries, s["sources"]):
+            entry["hosts"] = _joint_source_hosts(ctx, result, e, seed)
     return {"text": text, "folder": str(folder.relative_to(ctx.run_dir)), "n_sources": s["n_sources"],
             "log_bayes_factor": s["log_bayes_factor"], "log_bayes_factor_error": s["log_bayes_factor_error"],
             "effective_sample_size": s["effective_sample_size"], "stopped_by": s["stopped_by"],
-            "sources": [{"source": e["source"], "round": e["round"],
-                         **{k: e["parameters"][k]["median"] for k in ("frequency", "ra", "dec", "strain")
-                            if k in e["parameters"]}} for e in s["sources"]]}
+            "sources": entries}
+
+
+def _joint_source_hosts(ctx, result, entry, joint_seed):
+    """The host ranking of joint-follow-up source J (``entry``: its item of the joint summary's ``sources``):
+    its block of the joint posterior (``sJ_`` columns, unprefixed: the single-source posterior's columns) in
+    ``rounds/joint/source-J/followup/posterior.ecsv`` with a ``summary.json`` stating its prior (the joint
+    prior of source J is the single-source one on its frequency window), then :func:`_rank_hosts` into
+    ``rounds/joint/source-J/hosts/``; returns :func:`cwsearch.job.rounds.hosts_entry`'s record (an
+    ``error`` entry for a user error)."""
+    # lazy: the follow-up stage's computation module (already loaded by the joint follow-up)
+    from ..stages.followup.joint import source_table
+    from ..stages.followup.stage import CHIRP_MASS_RANGE, STRAIN_RANGE
+    from .rounds import hosts_entry
+
+    k = int(entry["source"])
+    folder = Path(result.folder) / f"source-{k}"
+    rel = os.path.relpath(folder / "hosts", ctx.run_dir)
+    model = dict(result.summary.get("model") or {})
+    prior = {"log10_frequency_band": list(entry["log10_frequency_band"]), "strain_prior": model.get("strain_prior"),
+             "chirp_mass_range": list(CHIRP_MASS_RANGE), "strain_range": list(STRAIN_RANGE)}
+    write_table_atomic(folder / "followup" / "posterior.ecsv", source_table(result.table, k))
+    write_json_atomic(folder / "followup" / "summary.json", {
+        "source": k, "round": entry.get("round"), "model": prior,
+        "what": f"source {k}'s block (s{k}_ columns) of the joint follow-up's posterior (../../posterior.ecsv), "
+                "for its host ranking (../hosts/)"})
+    seed = int(np.random.SeedSequence([int(joint_seed), k]).generate_state(1)[0])
+    try:
+        summary = _rank_hosts(ctx, folder, seed)
+    except InputError as exc:
+        return {"folder": rel, "error": str(exc)}
+    return hosts_entry(summary, rel)
 
 
 def _subtraction(ctx):

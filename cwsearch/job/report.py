@@ -923,6 +923,9 @@ def _joint(run: _Run):
             sub["figures"].append(_figure(png, f"Joint follow-up, source {k}: one- and two-dimensional marginals of "
                                                "its parameters, the other sources marginalised (dashed: 5 %, "
                                                "50 %, 95 %; magenta: truth from injection.json)"))
+        for png in _images(folder / f"source-{k}" / "hosts"):   # its host ranking on its joint-posterior block
+            sub["figures"].append(_figure(png, f"Joint follow-up, source {k}: "
+                                               + (CAPTIONS.get(png.name) or png.stem.replace("_", " "))))
         s["subsections"].append(sub)
     s["tables"] = [_health_table(summary)]
     return s
@@ -980,6 +983,16 @@ def _rounds(run: _Run):
                             "folder": ("follow-up", "", "text")}):
             s["tables"].append(table_view(srows, title="Confirmed sources (confirmed_sources.ecsv; posterior "
                                                        "medians of each round's follow-up)"))
+        hosts = rounds_hosts_view(run.dir, conf)
+        if hosts is not None:
+            s["tables"].append(hosts)
+            s["paragraphs"].append(
+                "Host galaxies of every confirmed source: the hosts stage's ranking (the catalogue's galaxies "
+                "weighted by the source's follow-up posterior in sky, distance and chirp mass, with the "
+                "probability that the host is not in the catalogue) on the posterior of the round that confirmed "
+                "it (round 1: hosts/; round K: rounds/round-K/hosts/) and, after a joint follow-up, on the "
+                "source's block of the joint posterior (rounds/joint/source-J/hosts/). "
+                "A host association is a probability under the stated priors, not an identification.")
         if len(conf) >= 2:
             joint = summ.get("joint_followup")
             s["paragraphs"].append("Joint follow-up of the confirmed sources: " + (
@@ -992,6 +1005,51 @@ def _rounds(run: _Run):
                                 + (CAPTIONS.get(p.name) or p.stem.replace('_', ' '))))
                     for p in _images(run.dir / "rounds") if run.dir / "rounds" / "joint" not in p.parents]
     return s
+
+
+def _hosts_record(run_dir, entry):
+    """One confirmed source's host ranking as the report shows it: ``entry`` (rounds.json's ``hosts`` or
+    ``joint_hosts`` of the source) with, for the round-1 source (ranked by the hosts stage, only its folder and
+    candidate label recorded), the best host and probabilities of that candidate in ``hosts/hosts_summary.json``."""
+    if not isinstance(entry, dict):
+        return None
+    if entry.get("note") and entry.get("folder"):
+        summary = _read_json(Path(run_dir) / entry["folder"] / "hosts_summary.json")
+        found = [c for c in (summary or {}).get("candidates") or []
+                 if isinstance(c, dict) and c.get("candidate") == entry.get("candidate")]
+        if not found:
+            return dict(entry, error="the hosts stage has no ranking of this source (not run or no result)")
+        from .rounds import hosts_entry   # the record the rounds step keeps of its own rankings
+
+        return hosts_entry(found[0], entry["folder"])
+    return entry
+
+
+def rounds_hosts_view(run_dir, confirmed):
+    """The rounds section's table of each confirmed source's best host (rounds.json ``confirmed``: per source
+    ``hosts`` and, after a joint follow-up, ``joint_hosts``); None when no source was ranked."""
+    rows = []
+    for c in confirmed:
+        for key, what in (("hosts", "its round's follow-up"), ("joint_hosts", "joint follow-up")):
+            rec = _hosts_record(run_dir, c.get(key))
+            if rec is None:
+                continue
+            name = rec.get("best_host")
+            rows.append({"source": c.get("source"), "round": c.get("round"), "posterior": what,
+                         "best_host": name if name else ("–" if rec.get("error") else
+                                                         "no catalogue galaxy in the 99 % sky region"),
+                         "best_host_probability": rec.get("best_host_probability"),
+                         "probability_not_in_catalogue": rec.get("probability_not_in_catalogue"),
+                         "hosts_folder": rec.get("folder"), "note": rec.get("error") or ""})
+    if not rows:
+        return None
+    with _extra_labels({"source": ("source", "", "int"), "round": ("round", "", "int"),
+                        "posterior": ("posterior", "", "text"), "best_host": ("best host", "", "text"),
+                        "best_host_probability": ("P(best host)", "", "g3"),
+                        "probability_not_in_catalogue": ("P(host not in catalogue)", "", "g3"),
+                        "hosts_folder": ("ranking", "", "text"), "note": ("note", "", "text")}):
+        return table_view(rows, title="Host galaxies of the confirmed sources (best host and its probability; "
+                                      "confirmed_sources.ecsv, full rankings in each folder's ranking.ecsv)")
 
 
 def _subtraction_note(summ):
@@ -1277,5 +1335,5 @@ def build_report(run_dir) -> Path:
 
 __all__ = ["build_report", "render_report", "embed_png", "table_view", "fmt_number", "first_screen",
            "headline_result", "format_headline",
-           "galaxy_limits_view", "limits_truth_text", "noise_pulsar_view", "background_comparison_view", "BACKGROUND_LABELS", "SECTIONS", "GENERAL_CAUTIONS",
+           "galaxy_limits_view", "limits_truth_text", "rounds_hosts_view", "noise_pulsar_view", "background_comparison_view", "BACKGROUND_LABELS", "SECTIONS", "GENERAL_CAUTIONS",
            "LABELS", "CAPTIONS"]

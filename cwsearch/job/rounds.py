@@ -31,6 +31,16 @@ source's subtracted signal and their sum [s], and sums of single posterior draws
 subtraction error; only when a source is confirmed), ``rounds.png`` and, with two or more confirmed sources,
 ``joint/`` (the joint follow-up, through the pipeline's hook).
 
+Hosts of the later sources. When the run ranks host galaxies (a ``[hosts] catalog`` and the hosts stage in
+the run's stages), the pipeline passes ``rank_hosts`` and :func:`rank_confirmed_hosts` ranks the catalogue's
+galaxies as hosts of every source confirmed in round K >= 2 with the hosts stage's own function, on that
+round's follow-up posterior, into ``round-K/hosts/`` (the hosts stage's file names), and of each source of
+the joint follow-up on its block of the joint posterior, into ``joint/source-J/hosts/``. The round-1 source
+is ranked by the hosts stage itself (``hosts/``). ``confirmed_sources.ecsv`` then has the columns
+``best_host``, ``best_host_probability``, ``probability_not_in_catalogue``, ``hosts_folder`` (blank for
+the round-1 source, whose ranking is the hosts stage's) and, after a joint follow-up, the same four
+prefixed ``joint_``.
+
 Examples
 --------
 >>> detection_decision(0.004, 7.5, detection_fap=0.01, detection_log_bayes_factor=5.0)
@@ -255,13 +265,15 @@ def _clear(stage_dir, keep=(".stage.json",)):
             child.unlink()
 
 
-def run_rounds(ctx, *, scan_stage, followup_stage, runner_options, joint_followup=None) -> dict:
+def run_rounds(ctx, *, scan_stage, followup_stage, runner_options, joint_followup=None, rank_hosts=None) -> dict:
     """The subtract-and-rescan loop (module docstring) into ``ctx.stage_dir`` (``RUN_DIR/rounds``).
 
     ``scan_stage``/``followup_stage``: the registry's :class:`~cwsearch.stages.base.Stage` entries (the
     pipeline passes them, so this module imports no stage); ``runner_options(options, execution)`` fills in
     the task-runner settings; ``joint_followup(ctx, sources)`` is called when two or more sources are
-    confirmed. Returns the step's summary (also ``rounds.json``).
+    confirmed; ``rank_hosts(ctx, folder, seed)`` (None: the run ranks no hosts) ranks host galaxies of the
+    posterior ``folder/followup/posterior.ecsv`` into ``folder/hosts/`` (:func:`rank_confirmed_hosts`).
+    Returns the step's summary (also ``rounds.json``).
     """
     settings = dict(ctx.config.rounds)
     max_sources = int(settings["max_sources"])
@@ -353,6 +365,8 @@ def run_rounds(ctx, *, scan_stage, followup_stage, runner_options, joint_followu
     joint = None
     if len(confirmed) >= 2 and joint_followup is not None:
         joint = joint_followup(ctx, confirmed)
+    if rank_hosts is not None:
+        rank_confirmed_hosts(ctx, confirmed, joint, rank_hosts)
     _write_sources(stage_dir, ctx.run_dir, confirmed)
     if signals:
         _write_signal(stage_dir / "subtracted_signal.ecsv", base, signals, kept)
@@ -365,7 +379,11 @@ def run_rounds(ctx, *, scan_stage, followup_stage, runner_options, joint_followu
                                "pulsar-term phases and distances, or phases drawn from their conditional posterior "
                                f"for a file without them; {RESIDUAL_DRAWS} posterior draws; after the timing-model "
                                "fit)"),
-               "joint_followup": joint}
+               "joint_followup": joint,
+               "hosts": (None if rank_hosts is None else
+                         "host galaxies ranked for every source confirmed in round K >= 2 (rounds/round-K/hosts/) "
+                         "and for each joint-follow-up source (rounds/joint/source-J/hosts/); the round-1 source's "
+                         "ranking is the hosts stage's (hosts/)")}
     if not followup_options.no_plots:
         # lazy: matplotlib is loaded only when plots are drawn
         from .rounds_plots import rounds_figure
@@ -375,8 +393,79 @@ def run_rounds(ctx, *, scan_stage, followup_stage, runner_options, joint_followu
     return summary
 
 
+def hosts_seed(run_seed, round_k) -> int:
+    """The seed of the host ranking of the source confirmed in round ``round_k`` (the fourth word of that
+    round's ``SeedSequence([run_seed, round_k])``, whose first three seed its scan, follow-up and subtraction)."""
+    return int(np.random.SeedSequence([int(run_seed), int(round_k)]).generate_state(4)[3])
+
+
+def hosts_entry(summary, folder) -> dict:
+    """What ``rounds.json`` and ``confirmed_sources.ecsv`` keep of one host ranking: ``summary`` is its
+    ``hosts_summary.json`` (the first candidate's figures) or one candidate's entry of it; ``folder`` relative
+    to the run folder."""
+    first = (summary.get("candidates") or [summary])[0] or {}
+    best = first.get("best_host") or {}
+    return {"folder": folder, "best_host": best.get("name"), "best_host_probability": best.get("probability"),
+            "probability_not_in_catalogue": first.get("probability_not_in_catalogue"),
+            "n_galaxies_in_99_region": first.get("n_galaxies_in_99_region"),
+            "sky_area_90_deg2": first.get("sky_area_90_deg2")}
+
+
+def round_one_hosts(source_folder) -> dict:
+    """Where the hosts stage ranks the round-1 source followed up in ``source_folder`` (``followup`` or
+    ``followup/candidate_K``, relative to the run folder): ``hosts/``, as the candidate labelled ``followup``
+    or ``candidate_K`` in its ``hosts_summary.json``."""
+    return {"folder": "hosts", "candidate": Path(source_folder).name, "note": "ranked by the hosts stage"}
+
+
+def _ranked(rank_hosts, ctx, folder, seed):
+    """One host ranking into ``folder/hosts/`` as :func:`hosts_entry`; a user error (e.g. a catalogue without
+    a galaxy within its distance limit) is recorded in the entry as ``error`` instead of failing the step (the
+    hosts stage reports the same error for round 1)."""
+    rel = os.path.relpath(Path(folder) / "hosts", ctx.run_dir)
+    try:
+        summary = rank_hosts(ctx, Path(folder), seed)
+    except InputError as exc:
+        return {"folder": rel, "error": str(exc)}
+    return hosts_entry(summary or {}, rel)
+
+
+def rank_confirmed_hosts(ctx, confirmed, joint, rank_hosts):
+    """Host rankings of the confirmed sources (module docstring), into each source dict of ``confirmed``:
+    ``hosts`` (its round's ranking; for the round-1 source only the hosts stage's folder) and, when the joint
+    follow-up ranked its sources (the pipeline's hook puts ``hosts`` into each entry of ``joint["sources"]``),
+    ``joint_hosts``."""
+    for source in confirmed:
+        if int(source["round"]) == 1:
+            source["hosts"] = round_one_hosts(source["folder"])
+            continue
+        round_dir = (Path(ctx.run_dir) / source["folder"]).parent   # rounds/round-K (its followup/ inside)
+        source["hosts"] = _ranked(rank_hosts, ctx, round_dir, hosts_seed(ctx.seed, source["round"]))
+    entries = (joint or {}).get("sources") or []
+    for source, entry in zip(confirmed, entries):
+        if isinstance(entry, dict) and entry.get("hosts"):
+            source["joint_hosts"] = entry["hosts"]
+
+
+#: the host columns of confirmed_sources.ecsv (with a host ranking): (column, key of the entry, unit)
+HOST_COLUMNS = (("best_host", "best_host", None), ("best_host_probability", "best_host_probability", ""),
+                ("probability_not_in_catalogue", "probability_not_in_catalogue", ""),
+                ("hosts_folder", "folder", None))
+
+
+def _host_columns(t, confirmed, key, prefix=""):
+    """Add the :data:`HOST_COLUMNS` of entry ``key`` (``hosts``/``joint_hosts``) of each source to ``t``."""
+    for column, name, unit in HOST_COLUMNS:
+        values = [(s.get(key) or {}).get(name) for s in confirmed]
+        if unit is None:     # text: blank where the source has no such ranking
+            t[prefix + column] = np.array([v if isinstance(v, str) else "" for v in values], dtype=str)
+        else:
+            t[prefix + column] = np.array([v if v is not None else np.nan for v in values], dtype=float)
+
+
 def sources_table(confirmed) -> Table:
-    """``confirmed_sources.ecsv``: one row per confirmed source (posterior medians; degrees, Hz, Msun, rad)."""
+    """``confirmed_sources.ecsv``: one row per confirmed source (posterior medians; degrees, Hz, Msun, rad), with
+    the host columns (:data:`HOST_COLUMNS`) when the sources were ranked as hosts."""
     t = Table()
     t["source"] = np.array([s["source"] for s in confirmed], dtype=np.int64)
     t["round"] = np.array([s["round"] for s in confirmed], dtype=np.int64)
@@ -387,8 +476,17 @@ def sources_table(confirmed) -> Table:
     t["fap_empirical"] = np.array([s["fap_empirical"] for s in confirmed], dtype=float)
     t["log_bayes_factor"] = np.array([s["log_bayes_factor"] for s in confirmed], dtype=float)
     t["folder"] = np.array([s["folder"] for s in confirmed], dtype=str) if confirmed else np.array([], dtype=str)
-    t.meta["description"] = ("sources confirmed by cwsearch's subtract-and-rescan rounds: posterior medians of "
-                             "each round's follow-up (folder, relative to the run folder); ra, dec in degrees")
+    description = ("sources confirmed by cwsearch's subtract-and-rescan rounds: posterior medians of each round's "
+                   "follow-up (folder, relative to the run folder); ra, dec in degrees")
+    if any("hosts" in s for s in confirmed):
+        _host_columns(t, confirmed, "hosts")
+        description += ("; best_host, best_host_probability, probability_not_in_catalogue: the host ranking of "
+                        "the source's round in hosts_folder (blank for the round-1 source: its ranking is the "
+                        "hosts stage's, hosts_folder)")
+    if any("joint_hosts" in s for s in confirmed):
+        _host_columns(t, confirmed, "joint_hosts", "joint_")
+        description += "; joint_*: the same from the source's block of the joint follow-up's posterior"
+    t.meta["description"] = description
     return t
 
 
@@ -429,4 +527,5 @@ def _write_signal(path, array, signals, kept=()):
 
 __all__ = ["run_rounds", "detection_decision", "detection_rule_text", "empirical_fap_of", "posterior_summary",
            "read_posterior", "subtracted_array", "read_subtracted_signal", "sources_table", "SOURCE_COLUMNS",
-           "PRODUCTS", "KEPT_DRAWS", "kept_draw_columns"]
+           "PRODUCTS", "KEPT_DRAWS", "kept_draw_columns", "rank_confirmed_hosts", "hosts_entry", "hosts_seed",
+           "round_one_hosts", "HOST_COLUMNS"]
