@@ -97,6 +97,25 @@ detection_fap = 0.05
     return path, binaries
 
 
+def _host_catalogue(path, binaries, n_population=40):
+    """An invented catalogue: INVENTED-A, INVENTED-B, ... at each binary's position and at the luminosity
+    distance its strain implies, and a population kept 30 deg away from every binary (no mass proxy)."""
+    from cwsearch.physics.sky import angular_separation
+    from cwsearch.physics.waveform import luminosity_distance_for_strain
+
+    rows = [(f"INVENTED-{chr(65 + k)}", np.degrees(b.ra), np.degrees(b.dec),
+             float(luminosity_distance_for_strain(b.strain, b.chirp_mass, b.gw_frequency)))
+            for k, b in enumerate(binaries)]
+    far = max(r[3] for r in rows)
+    rng = np.random.default_rng(61)
+    while len(rows) < len(binaries) + n_population:
+        ra, dec = rng.uniform(0, 2 * np.pi), np.arcsin(rng.uniform(-1, 1))
+        if all(angular_separation(ra, dec, b.ra, b.dec) > np.radians(30) for b in binaries):
+            rows.append((f"POP{len(rows)}", np.degrees(ra), np.degrees(dec), float(rng.uniform(0.05, 2) * far)))
+    path.write_text("name,ra,dec,distance\n" + "".join(f"{n},{r:.6f},{d:.6f},{s:.6g}\n" for n, r, d, s in rows))
+    return path
+
+
 def _inside(summary, name, value):
     lo, hi = summary["parameters"][name]["interval_90"]
     return lo <= value <= hi
@@ -109,8 +128,11 @@ def test_two_binaries_are_confirmed_in_two_rounds_and_no_third(tmp_path, base):
     # the joint follow-up of the two is left out here: with these sampler settings it took 475 s at load 10
     # (tests/test_followup_joint.py checks it on its own, 45 s); its call from the rounds step is
     # test_joint_followup_is_called_with_the_confirmed_sources
-    path, (loud, moderate) = _run_file(tmp_path, base, (20.0, 12.0), stages=["scan", "followup"], iterations=4000,
-                                       extra="joint_followup = false\n")
+    binaries, _ = _binaries(base, (20.0, 12.0))
+    catalogue = _host_catalogue(tmp_path / "galaxies.csv", binaries)
+    path, (loud, moderate) = _run_file(tmp_path, base, (20.0, 12.0), stages=["scan", "followup", "hosts"],
+                                       iterations=4000, extra=("joint_followup = false\n[hosts]\n"
+                                                               f'catalog = "{catalogue}"\nno_plots = true\n'))
     result = run_pipeline(load_config(path), quiet=True)
     run = tmp_path / "run"
     assert {s.name: s.status for s in result.stages}["rounds"] == "ran"
@@ -144,6 +166,25 @@ def test_two_binaries_are_confirmed_in_two_rounds_and_no_third(tmp_path, base):
         assert name in table.colnames and str(table[name].unit or "") == unit
     assert {"fap_empirical", "log_bayes_factor", "folder"} <= set(table.colnames)
     assert (run / "rounds" / "confirmed_sources.ecsv").read_text() == (run / "confirmed_sources.ecsv").read_text()
+    # host ranking: the round-1 source by the hosts stage (hosts/), the round-2 source by the rounds step on round
+    # 2's posterior (rounds/round-2/hosts/, the hosts stage's file names). The population of the invented
+    # catalogue is kept 30 deg from both binaries, so the galaxy at the round-2 binary's position and distance
+    # ranking first there checks which posterior was used (a behaviour check; the ranking's own checks:
+    # tests/test_hosts.py). Round 1's rough posterior (180 samples, 90 % radius 36 deg, centred 18 deg from the
+    # binary in the first run) ranked a population galaxy near its centre first and INVENTED-A second, so of
+    # round 1 only: INVENTED-A is listed, INVENTED-B (147 deg away) is not its best host.
+    stage_hosts = json.loads((run / "hosts" / "hosts_summary.json").read_text())
+    round_hosts = json.loads((run / "rounds" / "round-2" / "hosts" / "hosts_summary.json").read_text())
+    assert (run / "rounds" / "round-2" / "hosts" / "ranking.ecsv").is_file()
+    assert round_hosts["best_host"]["name"] == "INVENTED-B" and stage_hosts["best_host"]["name"] != "INVENTED-B"
+    assert "INVENTED-A" in list(Table.read(run / "hosts" / "ranking.ecsv", format="ascii.ecsv")["name"])
+    assert list(table["hosts_folder"]) == ["hosts", "rounds/round-2/hosts"]
+    assert table["best_host"][1] == "INVENTED-B"
+    assert table["best_host_probability"][1] == pytest.approx(round_hosts["best_host"]["probability"], rel=1e-12)
+    p_out = float(table["probability_not_in_catalogue"][1])
+    # fact of probability: the best host and "not in the catalogue" are disjoint alternatives, sum <= 1
+    assert p_out == pytest.approx(round_hosts["probability_not_in_catalogue"], rel=1e-12)
+    assert 0 <= p_out and table["best_host_probability"][1] + p_out <= 1 + 1e-12
     # the subtracted signal: per pulsar and TOA, one column per source, their sum
     signal = Table.read(run / "rounds" / "subtracted_signal.ecsv", format="ascii.ecsv")
     assert len(signal) == sum(p.n_toas for p in base)
@@ -154,6 +195,7 @@ def test_two_binaries_are_confirmed_in_two_rounds_and_no_third(tmp_path, base):
     text = (run / "report.html").read_text(encoding="utf-8")
     html5lib.HTMLParser(strict=True).parse(text)
     assert "2 source(s) confirmed in 3 round(s)" in text and "Confirmed sources" in text
+    assert "Host galaxies of the confirmed sources" in text and "INVENTED-B" in text
     assert "not run ([rounds] joint_followup = false)" in text
     from cwsearch.job.pipeline import format_headline
 
@@ -161,7 +203,7 @@ def test_two_binaries_are_confirmed_in_two_rounds_and_no_third(tmp_path, base):
     # a second run: every step up to date
     again = run_pipeline(load_config(path), quiet=True)
     assert {s.name: s.status for s in again.stages if s.status != "off"} == \
-        {"scan": "skipped", "followup": "skipped", "rounds": "skipped"}
+        {"scan": "skipped", "followup": "skipped", "rounds": "skipped", "hosts": "skipped"}
 
 
 def test_noise_only_confirms_nothing_and_stops_after_round_one(tmp_path, base):

@@ -32,7 +32,9 @@ rescan. It hashes the scan's and follow-up's products, ``[rounds]`` and the scan
 products (``confirmed_sources.ecsv``, ``subtracted_signal.ecsv``) enter the input hashes of the limits and
 targets stages, which work on the data with the confirmed signals subtracted (:func:`analysis_array`), only
 when a source is confirmed. With two or more confirmed sources it calls :func:`_joint_followup`, the one
-place where the joint multi-source follow-up runs (into ``rounds/joint/``).
+place where the joint multi-source follow-up runs (into ``rounds/joint/``). When the run ranks hosts (the
+hosts stage in its stages, ``[hosts] catalog``), the step ranks the sources it confirms after round 1 with the
+hosts stage's own run (:func:`_rank_hosts`), and the ``[hosts]`` options and catalogue enter its input hash.
 
 Resume. ``.stage.json`` is removed before a stage starts and written only
 after the stage has finished (all files are written atomically), so a run
@@ -479,10 +481,13 @@ def _rank_hosts(ctx, folder, seed):
     """The hosts stage's own ranking (:func:`cwsearch.stages.hosts.stage.run_hosts`, the ``[hosts]``
     options) of the follow-up posterior in ``folder/followup/`` into ``folder/hosts/``, called by the rounds
     step for a later round's source (``folder`` = ``rounds/round-K``) and by :func:`_joint_followup` for a
-    joint-follow-up source (``rounds/joint/source-J``). Returns the ranking's summary (hosts_summary.json)."""
+    joint-follow-up source (``rounds/joint/source-J``). The array handed over is the run's noise-model data
+    without the dataset's truth (as the rounds' rescans get it): the injected binary of ``injection.json`` is
+    the first one, not necessarily this source, so the plots mark no truth. Returns the ranking's summary
+    (hosts_summary.json)."""
     options = replace(runner_options(ctx.config.options["hosts"], ctx.config.execution), candidate=None)
-    result = BY_NAME["hosts"].run(ctx.model_array, folder, options, noise=ctx.noise, seed=int(seed),
-                                  progress=ctx.progress)
+    array = subtracted_array(ctx.model_array, [np.zeros(p.n_toas) for p in ctx.model_array])
+    result = BY_NAME["hosts"].run(array, folder, options, noise=ctx.noise, seed=int(seed), progress=ctx.progress)
     return dict(result.summary or {})
 
 
