@@ -1019,7 +1019,8 @@ def _hosts_record(run_dir, entry):
                  if isinstance(c, dict) and c.get("candidate") == entry.get("candidate")]
         if not found:
             return dict(entry, error="the hosts stage has no ranking of this source (not run or no result)")
-        from .rounds import hosts_entry   # the record the rounds step keeps of its own rankings
+        # lazy: rounds.py loads the likelihood code; hosts_entry is the record the rounds step keeps of its rankings
+        from .rounds import hosts_entry
 
         return hosts_entry(found[0], entry["folder"])
     return entry
