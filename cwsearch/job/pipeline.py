@@ -78,8 +78,8 @@ from ..stages import BY_NAME, STAGES as REGISTRY
 from .config import RunConfig
 from .noisemodel import resolve_noise_model
 from .report import build_report, format_headline, headline_result
-from .rounds import (PRODUCTS as ROUND_PRODUCTS, kept_draw_columns, read_subtracted_signal, run_rounds,
-                     subtracted_array)
+from .rounds import (PRODUCTS as ROUND_PRODUCTS, hosts_entry, kept_draw_columns, read_subtracted_signal,
+                     run_rounds, subtracted_array)
 from .runfolder import (DONE, STAGE_FILE, RunLock, canonical_hash, file_checksum, folder_hash, json_default,
                         package_versions, product_hash, provenance_record, read_json, read_record, read_table,
                         record_is_current, stage_seed, utc_now)
@@ -547,7 +547,6 @@ def _joint_source_hosts(ctx, result, entry, joint_seed):
     # lazy: the follow-up stage's computation module (already loaded by the joint follow-up)
     from ..stages.followup.joint import source_table
     from ..stages.followup.stage import CHIRP_MASS_RANGE, STRAIN_RANGE
-    from .rounds import hosts_entry
 
     k = int(entry["source"])
     folder = Path(result.folder) / f"source-{k}"
