@@ -10,7 +10,8 @@ Prints, all measured in this run:
 (b) all-sky Fe scan of the bench array (50 pulsars × 1,000 TOAs, 3072 pixels,
     500 frequencies): the per-pulsar scan without a common process (reference) and
     the correlated scan (weighted data, projections, Ψ and the cross-pulsar corrections,
-    sky kernel), and their ratio (target ≤ 3), in wall time and in CPU seconds
+    sky kernel, with the pixel sums in single precision as the scan stage runs it; the double-precision
+    kernel and the difference are printed beside), and their ratio (target ≤ 3), in wall time and in CPU seconds
     of the process; ``--rounds`` interleaved rounds (default 2), best of each.
 (c) full-shape ln-likelihood evaluations/s of :class:`CorrelatedLikelihood` on a
     20-pulsar × 200-TOA array (batches of 160 walkers), against the uncorrelated
@@ -117,13 +118,14 @@ def bench_scan(k_common=None, rounds=2):
     aw = ArrayWeighting(array, settings, common)
     # warm-up (numba compilation or cache load)
     small = aw.projections(frequencies[:4])
-    fe_sky_correlated(small, aw.scan_corrections(frequencies[:4]), fplus[:8], fcross[:8])
+    for single in (True, False):
+        fe_sky_correlated(small, aw.scan_corrections(frequencies[:4]), fplus[:8], fcross[:8], single_precision=single)
     fstat.fe_sky(fstat.project(engine, frequencies[:4]), fplus[:8], fcross[:8])
 
     # interleaved rounds (reference, then correlated), each figure its best round: the load of the shared
     # machine changes within seconds. CPU seconds of the process (all threads) beside the wall times: on a
     # machine loaded past its cores their ratio says more than the wall-time ratio
-    t_plain = t_build = t_proj = t_corr = t_sky = c_plain = c_corr = np.inf
+    t_plain = t_build = t_proj = t_corr = t_sky = t_sky_double = c_plain = c_corr = np.inf
     for _ in range(rounds):
         t, c = time.perf_counter(), time.process_time()
         proj = fstat.project(engine, frequencies)
@@ -142,10 +144,18 @@ def bench_scan(k_common=None, rounds=2):
         corr = aw2.scan_corrections(frequencies)
         t_corr = min(t_corr, time.perf_counter() - t)
         t = time.perf_counter()
-        fe_sky_correlated(proj_c, corr, fplus, fcross, map_dtype=np.float32)
+        # the scan stage's path (ArrayNoise.fe_sky): pair sums in single precision, maxima in double
+        single = fe_sky_correlated(proj_c, corr, fplus, fcross, map_dtype=np.float32, single_precision=True)
         t_sky = min(t_sky, time.perf_counter() - t)
         c_corr = min(c_corr, time.process_time() - c)
+        t = time.perf_counter()
+        double = fe_sky_correlated(proj_c, corr, fplus, fcross, map_dtype=np.float32)
+        t_sky_double = min(t_sky_double, time.perf_counter() - t)
         del aw2, proj_c, corr
+    kept = double.fe_map > 0
+    map_error = float(np.max(np.abs(single.fe_map.astype(float) - double.fe_map)[kept] / double.fe_map[kept]))
+    kept = double.fe_max > 0
+    max_error = float(np.max(np.abs(single.fe_max - double.fe_max)[kept] / double.fe_max[kept]))
     t_corr_total = t_proj + t_corr + t_sky
     print(f"(b) Fe sky scan, {len(array)} pulsars x {array[0].n_toas} TOAs, {ra.size} pixels x "
           f"{frequencies.size} frequencies:")
@@ -154,13 +164,17 @@ def bench_scan(k_common=None, rounds=2):
           f"best pulsar's white level: {needed}): {t_corr_total:.2f} s = projections of d~ "
           f"{t_proj:.2f} + Psi and cross-pulsar blocks W_pq(f) {t_corr:.2f} + sky kernel {t_sky:.2f}; "
           f"engine build {t_build:.2f} s")
+    print(f"    sky kernel in double precision throughout: {t_sky_double:.2f} s; single-precision pair sums: map "
+          f"values within {map_error:.1e} relative of it, per-frequency maxima within {max_error:.1e}")
     print(f"    ratio correlated / reference: {t_corr_total / t_plain:.2f} (target <= 3); "
           f"including the engine build {(t_corr_total + t_build) / t_plain:.2f}")
     print(f"    CPU seconds (all threads, best of {rounds} rounds): correlated {c_corr:.2f} against {c_plain:.2f} "
           f"(ratio {c_corr / c_plain:.2f})")
     return {"common_components": k_common, "components_needed": needed, "reference_seconds": t_plain,
             "correlated_seconds": t_corr_total, "projections_seconds": t_proj, "corrections_seconds": t_corr,
-            "sky_kernel_seconds": t_sky, "engine_build_seconds": t_build, "ratio": t_corr_total / t_plain,
+            "sky_kernel_seconds": t_sky, "sky_kernel_double_seconds": t_sky_double,
+            "single_precision_map_relative_error": map_error, "single_precision_max_relative_error": max_error,
+            "engine_build_seconds": t_build, "ratio": t_corr_total / t_plain,
             "ratio_with_build": (t_corr_total + t_build) / t_plain, "reference_cpu_seconds": c_plain,
             "correlated_cpu_seconds": c_corr, "cpu_ratio": c_corr / c_plain, "rounds": rounds,
             "load_average": os.getloadavg()[0]}

@@ -296,6 +296,57 @@ def test_pair_gemm_sky_kernel_equals_the_direct_quadratic_forms(monkeypatch):
         np.testing.assert_allclose(scan.fe_max[k], fe_k.max(axis=0), rtol=1e-10)
 
 
+def test_single_precision_sky_sums_and_exact_maxima(monkeypatch):
+    """The scan stage's default path (ArrayNoise.fe_sky): the pixel sums in float32. Float32 carries 24
+    significand bits (IEEE 754: unit roundoff 6e-8), so sums of a few hundred pair terms stay within
+    ~1e-5 relative (the bound asserted; a rounding-error fact, common practice, no source); the per-frequency
+    maxima are recomputed in float64 and must equal the double-precision kernel's to 1e-10 relative, at the
+    same pixel. Several pixel blocks, frequency chunks and two residual sets."""
+    from cwsearch.physics import correlated
+
+    monkeypatch.setattr(correlated, "SKY_PIXEL_BLOCK", 7)
+    arr = _array(seed=17, n_pulsars=9)
+    aw = ArrayWeighting(arr, SETTINGS, CommonProcess(-13.6, 13 / 3, 5))
+    freqs = np.linspace(2.6e-9, 2.9e-8, 8)
+    rng = np.random.default_rng(6)
+    ra, dec = rng.uniform(0, 2 * np.pi, 40), np.arcsin(rng.uniform(-1, 1, 40))
+    fplus, fcross, _ = waveform.antenna_pattern(ra, dec, arr.positions)
+    proj = aw.projections(freqs)
+    corr = aw.scan_corrections(freqs)
+    double = fe_sky_correlated(proj, corr, fplus, fcross, chunk_elements=3000)
+    single = fe_sky_correlated(proj, corr, fplus, fcross, chunk_elements=3000, single_precision=True)
+    np.testing.assert_allclose(single.fe_map, double.fe_map, rtol=1e-5)
+    assert np.abs(single.fe_map - double.fe_map).max() > 0          # the float32 path did run
+    np.testing.assert_allclose(single.fe_max, double.fe_max, rtol=1e-10)
+    np.testing.assert_array_equal(single.best_pixel, double.best_pixel)
+    sets = [np.column_stack([p.residuals, rng.normal(size=p.n_toas) * 3e-7]) for p in arr]
+    batch = aw.projections(freqs, sets)
+    want = fe_sky_correlated(batch, corr, fplus, fcross, keep_map=False, chunk_elements=3000)
+    got = fe_sky_correlated(batch, corr, fplus, fcross, keep_map=False, chunk_elements=3000, single_precision=True)
+    np.testing.assert_allclose(got.fe_max, want.fe_max, rtol=1e-10)
+    # the BLAS thread counts are restored once every overlapping thread-count context has closed,
+    # also when the contexts are opened and closed on different threads (common practice, no source)
+    import threading
+
+    from cwsearch.physics import fstat
+
+    before = [int(get()) for get, _ in fstat._blas_functions()]
+    opened, release = threading.Event(), threading.Event()
+
+    def hold():
+        with fstat._blas_threads(1):
+            opened.set()
+            release.wait(10)
+
+    worker = threading.Thread(target=hold)
+    worker.start()
+    opened.wait(10)
+    with fstat._blas_threads(1):
+        release.set()
+        worker.join()
+    assert [int(get()) for get, _ in fstat._blas_functions()] == before
+
+
 def test_fe_null_distribution_chi2_4():
     """2Fe ~ χ²(4) in noise drawn from the true correlated C (Ellis, Siemens & Creighton 2012);
     Kolmogorov–Smirnov test against scipy.stats.chi2(4), fixed seed."""

@@ -415,15 +415,15 @@ class ArrayWeighting:
         """Ψ = L S̃⁻¹ Lᵀ = (Φ⁻¹ + FᵀK⁻¹F)⁻¹ (the cross-pulsar correction of C⁻¹ in the stacked
         Fourier space), shape (P·2K, P·2K), ordered (pulsar, coefficient). Cached."""
         if self._psi is None:
-            with fstat._blas_threads(1):
+            # every core for a large inverse, as for its Cholesky (_factorise): at 3000 x 3000 dpotri took
+            # 0.17 s on two threads against 0.32 s on one (idle 2-core machine, bench.correlated); forming it
+            # on a background thread beside the projections instead gained nothing (the projections use
+            # both cores), and threaded BLAS is slower only on a machine loaded far beyond its cores
+            with fstat._blas_threads(_cpu_count() if self.rank >= THREADED_CHOLESKY_SIZE else 1):
                 self._psi = self._correction_matrix()
         return self._psi
 
     def _correction_matrix(self):
-        # one thread (the caller's BLAS setting): threaded dpotri at 3000 x 3000 took 0.15 s against 0.27 s
-        # on an idle 2-core machine but 1-3.4 s against 0.6 s at load 6 (busy-waiting workers); R⁻¹ by
-        # dtrtri and R⁻ᵀR⁻¹ in column blocks on two Python threads was tried: 0.8-5 s against dpotri's
-        # 0.5 s at load 6
         inv, info = lapack.dpotri(self._chol, lower=1)
         if info != 0:
             raise np.linalg.LinAlgError(f"inverting the array Woodbury matrix failed (info {info})")
@@ -730,6 +730,79 @@ def _fe_pair_products(nq, g, ga, n_chunk, n_sets, fe_out):
                 fe_out[k, r, f] = 0.5 * quad4(fac, nq[r, cx], nq[r, cy], nq[rp, cx], nq[rp, cy])
 
 
+@njit(cache=True, nogil=True)
+def _fe_exact_at(fplus, fcross, s, f, fc, bsym, banti, data, k):
+    """Fe of pixel ``s``, chunk frequency ``f`` and residual set ``k`` from the double-precision
+    packed blocks (``bsym``, ``banti`` of :func:`_pack_blocks`) and the chunk's data (:func:`fstat.chunk_data`):
+    the pair sums of :func:`_pattern_pairs` taken for one pixel, in float64."""
+    n_psr = fplus.shape[1]
+    m00 = m01 = m02 = msc = m11 = m13 = m22 = m23 = m33 = anti = 0.0
+    n0 = n1 = n2 = n3 = 0.0
+    cx = 2 * k * fc + f
+    cy = cx + fc
+    i = 0
+    a = 0
+    for p in range(n_psr):
+        fp = fplus[s, p]
+        fx = fcross[s, p]
+        n0 += fp * data[p, cx]
+        n1 += fp * data[p, cy]
+        n2 += fx * data[p, cx]
+        n3 += fx * data[p, cy]
+        for q in range(p, n_psr):
+            gp = fplus[s, q]
+            gx = fcross[s, q]
+            if q == p:
+                cpp, cpx, cxx = fp * fp, fp * fx, fx * fx
+            else:
+                cpp, cpx, cxx = 2.0 * fp * gp, fp * gx + gp * fx, 2.0 * fx * gx
+                anti += (fp * gx - gp * fx) * banti[a, f]
+                a += 1
+            bss = bsym[i, f]
+            bsc = bsym[i, fc + f]
+            bcc = bsym[i, 2 * fc + f]
+            m00 += cpp * bss
+            m01 += cpp * bsc
+            m11 += cpp * bcc
+            m02 += cpx * bss
+            msc += cpx * bsc
+            m13 += cpx * bcc
+            m22 += cxx * bss
+            m23 += cxx * bsc
+            m33 += cxx * bcc
+            i += 1
+    fac = factor4(m00, m01, m02, msc - anti, m11, msc + anti, m13, m22, m23, m33)
+    return 0.5 * quad4(fac, n0, n1, n2, n3)
+
+
+@njit(cache=True, nogil=True)
+def _refine_best(fplus, fcross, fe, bsym, banti, data, fc, n_sets):
+    """Replace, per residual set and chunk frequency, the single-precision Fe of the loudest pixel by its
+    double-precision value (:func:`_fe_exact_at`), until the loudest pixel is one already recomputed (at
+    most 8 pixels): the kept maxima ``fe_max`` are then double-precision values."""
+    n_sky = fe.shape[1]
+    done = np.empty(8, dtype=np.int64)
+    for k in range(n_sets):
+        for f in range(fc):
+            n_done = 0
+            while n_done < 8:
+                best = 0
+                top = fe[k, 0, f]
+                for s in range(1, n_sky):
+                    if fe[k, s, f] > top:
+                        top = fe[k, s, f]
+                        best = s
+                seen = False
+                for j in range(n_done):
+                    if done[j] == best:
+                        seen = True
+                if seen:
+                    break
+                fe[k, best, f] = _fe_exact_at(fplus, fcross, best, f, fc, bsym, banti, data, k)
+                done[n_done] = best
+                n_done += 1
+
+
 #: at most this many pixels per block of the correlated sky kernel (one block per job)
 SKY_PIXEL_BLOCK = 256
 
@@ -740,7 +813,7 @@ PAIR_BLOCK_ELEMENTS = 2**21
 
 def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, keep_map=True,
                       map_dtype=np.float64, on_chunk=None, chunk_elements=8_000_000,
-                      on_block=None) -> fstat.SkyScan:
+                      on_block=None, single_precision=False) -> fstat.SkyScan:
     """Fe over sky × frequency (× residual sets) with the correlated inner product.
 
     ``proj`` from :meth:`ArrayWeighting.projections` (X, Y of the weighted data),
@@ -755,6 +828,13 @@ def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, ke
     :data:`SKY_PIXEL_BLOCK` run on one thread per core, each with single-threaded BLAS.
     2Fe ~ χ²(4) in noise when C is the true covariance (Ellis, Siemens & Creighton 2012).
     ``on_block(f0, fe)`` as in :func:`cwsearch.physics.fstat.fe_sky`.
+
+    ``single_precision``: the two pair GEMMs in float32 (half the time; the blocks Z − W are formed in
+    float64 first, so the cancellation between Z and W at low frequencies is exact). The map's values are
+    then accurate to about 1e-6 relative (measured: at most 8.7e-7 on the bench array of 50 pulsars, 3072
+    pixels, 500 frequencies, docs/design.md §5b), and the loudest pixel of each frequency and residual set
+    is recomputed in float64 (:func:`_refine_best`), so ``fe_max`` (candidates, null simulations) holds
+    double-precision values.
     """
     fplus, fcross, x, y = fstat.sky_inputs(proj, fplus, fcross, keep_map)
     n_sky, n_psr = fplus.shape
@@ -781,17 +861,23 @@ def fe_sky_correlated(proj: fstat.Projections, corrections, fplus, fcross, *, ke
             bsym = np.empty((n_sym, 3 * fc))
             banti = np.empty((n_anti, fc))
             _pack_blocks(corrections, z, f0, f1, bsym, banti)
+            rsym, ranti = (bsym.astype(np.float32), banti.astype(np.float32)) if single_precision else (bsym, banti)
             fe = np.empty((n_sets, n_sky, fc))
 
             def job(block):
                 s0, s1 = block
-                csym = np.empty((3 * (s1 - s0), n_sym))
-                canti = np.empty((s1 - s0, n_anti))
+                csym = np.empty((3 * (s1 - s0), n_sym), dtype=rsym.dtype)
+                canti = np.empty((s1 - s0, n_anti), dtype=rsym.dtype)
                 _pattern_pairs(fplus, fcross, s0, s1, csym, canti)
                 nq = np.vstack([fplus[s0:s1], fcross[s0:s1]]) @ data
-                _fe_pair_products(nq, csym @ bsym, canti @ banti, fc, n_sets, fe[:, s0:s1])
+                g, ga = csym @ rsym, canti @ ranti
+                if single_precision:
+                    g, ga = g.astype(float), ga.astype(float)
+                _fe_pair_products(nq, g, ga, fc, n_sets, fe[:, s0:s1])
 
             list(pool.map(job, blocks))
+            if single_precision:
+                _refine_best(fplus, fcross, fe, bsym, banti, data, fc, n_sets)
             fstat.store_sky_block(fe, f0, f1, best, fe_max, fe_map, on_block, on_chunk)
     return fstat.SkyScan(fe_map, fe_max, best)
 
@@ -962,11 +1048,15 @@ class ArrayNoise:
             self._corrections[key] = self.weighting.scan_corrections(frequencies)
         return self._corrections[key]
 
-    def fe_sky(self, proj, fplus, fcross, **kwargs) -> fstat.SkyScan:
+    def fe_sky(self, proj, fplus, fcross, *, single_precision=True, **kwargs) -> fstat.SkyScan:
         """Fe over sky × frequency (× residual sets): :func:`cwsearch.physics.fstat.fe_sky` or
-        :func:`fe_sky_correlated`."""
+        :func:`fe_sky_correlated`. With a correlated model the pixel sums run in single precision by
+        default (``single_precision``: map values to ~1e-6 relative, the per-frequency maxima ``fe_max``
+        recomputed in double precision; see :func:`fe_sky_correlated`); the per-pulsar kernel is always
+        double precision."""
         if self.correlated:
-            return fe_sky_correlated(proj, self.corrections(proj.frequencies), fplus, fcross, **kwargs)
+            return fe_sky_correlated(proj, self.corrections(proj.frequencies), fplus, fcross,
+                                     single_precision=single_precision, **kwargs)
         return fstat.fe_sky(proj, fplus, fcross, **kwargs)
 
     def network(self, proj, fplus, fcross):

@@ -47,6 +47,7 @@ import contextlib
 import ctypes
 import re
 import sys
+import threading
 from concurrent.futures import as_completed, ThreadPoolExecutor
 from dataclasses import dataclass
 
@@ -222,6 +223,11 @@ def _blas_functions():
     return found
 
 
+#: [contexts open, the thread counts to restore when the last one closes] of :func:`_blas_threads`
+_BLAS_STATE = [0, []]
+_BLAS_LOCK = threading.Lock()
+
+
 @contextlib.contextmanager
 def _blas_threads(n):
     """Temporarily set the OpenBLAS thread count of numpy/scipy (no-op where it cannot be found).
@@ -229,16 +235,27 @@ def _blas_threads(n):
     :func:`project` runs one pulsar per thread; letting each skinny whitening
     product spawn BLAS threads as well oversubscribes the cores, which costs
     a factor of several on a busy machine (measured in bench.scan).
+
+    The count is global to each library, so contexts may overlap in time (contexts opened on
+    several threads, such as a job pool's beside its caller's):
+    the counts before the first open context are restored when the last one closes, and while
+    several are open the most recent request holds.
     """
-    handles = []
-    for get, put in _blas_functions():
-        handles.append((put, int(get())))
-        put(int(n))
+    with _BLAS_LOCK:
+        functions = _blas_functions()
+        if _BLAS_STATE[0] == 0:
+            _BLAS_STATE[1] = [(put, int(get())) for get, put in functions]
+        _BLAS_STATE[0] += 1
+        for _, put in functions:
+            put(int(n))
     try:
         yield
     finally:
-        for put, old in handles:
-            put(old)
+        with _BLAS_LOCK:
+            _BLAS_STATE[0] -= 1
+            if _BLAS_STATE[0] == 0:
+                for put, old in _BLAS_STATE[1]:
+                    put(old)
 
 
 @njit(cache=True, nogil=True)
