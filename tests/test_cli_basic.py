@@ -60,6 +60,18 @@ def test_help_imports_no_numba_or_matplotlib(tmp_path):
     assert out.stdout.strip() == "[]"
 
 
+def test_scan_stage_imports_no_scipy_stats_optimize_or_matplotlib(tmp_path):
+    """The whole-command time of ``cwsearch scan`` (issue 18): its stage loads neither scipy.stats nor
+    scipy.optimize (0.4 s of imports together) nor matplotlib (plots import it when they are made)."""
+    code = ("import sys\nimport cwsearch.commands.scan, cwsearch.stages.scan.stage\n"
+            "print(sorted(m for m in ('scipy.stats', 'scipy.optimize', 'matplotlib') if m in sys.modules))\n")
+    env = dict(os.environ, PYTHONPATH=str(REPO))
+    out = subprocess.run([sys.executable, "-c", code], cwd=tmp_path, env=env, capture_output=True, text=True,
+                         timeout=120)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "[]"
+
+
 def test_command_help_shows_example(capsys):
     assert cli.main(["simulate", "--help"]) == 0
     text = capsys.readouterr().out

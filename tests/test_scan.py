@@ -83,6 +83,29 @@ def test_local_maxima_and_merging():
     assert list(keep) == [0, 2]
 
 
+def test_local_maxima_equal_the_definition_with_ties_and_threshold():
+    """Against the definition, pair by pair (a point is a maximum when no HEALPix neighbour, astropy-healpix,
+    at the same or an adjacent frequency bin, and no adjacent bin of its own pixel, is larger; common
+    practice, no source), on a coarse integer map full of ties, with and without a threshold."""
+    from cwsearch.physics import sky
+
+    nside = 2
+    neighbours = sky.pixel_neighbours(nside)
+    fe = np.random.default_rng(3).integers(0, 4, size=(sky.n_pixels(nside), 7)).astype(float)
+    for threshold in (-np.inf, 2.0):
+        expected = []
+        for s in range(fe.shape[0]):
+            for f in range(fe.shape[1]):
+                if fe[s, f] < threshold:
+                    continue
+                around = [(s, g) for g in (f - 1, f + 1)] + [(int(n), g) for n in neighbours[s] if n >= 0
+                                                              for g in (f - 1, f, f + 1)]
+                if all(not (0 <= g < fe.shape[1]) or fe[n, g] <= fe[s, f] for n, g in around):
+                    expected.append((s, f))
+        pix, fidx = scan.local_maxima(fe, neighbours, threshold)
+        assert list(zip(pix.tolist(), fidx.tolist())) == expected
+
+
 def test_empirical_fap_estimator():
     # (1 + #{null >= x}) / (1 + N) (common practice for Monte Carlo p-values, no source)
     null = np.array([1.0, 2.0, 3.0, 4.0])

@@ -55,6 +55,7 @@ from pathlib import Path
 
 import numpy as np
 from astropy.table import Table
+from numba import njit, prange
 from scipy.special import chdtrc, chdtri    # the chi-squared tails scipy.stats.chi2 uses, without its import
 
 from ...core.errors import InputError
@@ -407,34 +408,46 @@ def _null_task(task):
 
 
 # ---------------------------------------------------------------- candidates
-def local_maxima(fe, neighbours, threshold=-np.inf, chunk=200_000):
+def local_maxima(fe, neighbours, threshold=-np.inf):
     """(pixel, frequency index) pairs where Fe ≥ ``threshold`` and ≥ every neighbour in sky × frequency.
 
     Neighbours: the 8 HEALPix neighbours (``neighbours`` (N_pix, 8), −1 for
     none) and the pixel itself, at the same and the adjacent frequency bins.
-    Ties all count as maxima (they are merged later).
+    Ties all count as maxima (they are merged later). Pairs in row-major order (pixel, then frequency).
     """
-    fe = np.asarray(fe)
-    n_freq = fe.shape[1]
-    pix, fidx = np.nonzero(fe >= threshold) if np.isfinite(threshold) else np.indices(fe.shape).reshape(2, -1)
-    keep = np.ones(pix.size, dtype=bool)
-    nb_all = np.asarray(neighbours)
-    for start in range(0, pix.size, chunk):
-        s, f = pix[start:start + chunk], fidx[start:start + chunk]
-        value = fe[s, f]
-        ok = np.ones(s.size, dtype=bool)
-        nb = nb_all[s]
-        valid_nb = nb >= 0
-        nb = np.where(valid_nb, nb, 0)
-        for df in (-1, 0, 1):
-            g = np.clip(f + df, 0, n_freq - 1)
-            inside = (f + df >= 0) & (f + df < n_freq)
-            if df != 0:
-                ok &= ~(inside & (fe[s, g] > value))
-            other = fe[nb, g[:, None]]
-            ok &= ~np.any(valid_nb & inside[:, None] & (other > value[:, None]), axis=1)
-        keep[start:start + chunk] = ok
-    return pix[keep], fidx[keep]
+    fe = np.ascontiguousarray(fe)
+    nb = np.ascontiguousarray(neighbours, dtype=np.int64)
+    mask = np.zeros(fe.shape, dtype=np.bool_)
+    _local_maxima_kernel(fe, nb, float(threshold), bool(np.isfinite(threshold)), mask)
+    pix, fidx = np.nonzero(mask)
+    return pix, fidx
+
+
+@njit(cache=True, parallel=True)
+def _local_maxima_kernel(fe, neighbours, threshold, use_threshold, mask):
+    """``mask[s, f]`` = Fe at (s, f) is ≥ the threshold (when used) and no neighbour is larger (numba)."""
+    n_pix, n_freq = fe.shape
+    for s in prange(n_pix):
+        for f in range(n_freq):
+            value = fe[s, f]
+            if use_threshold and not value >= threshold:
+                continue
+            ok = True
+            for df in range(-1, 2):
+                g = f + df
+                if g < 0 or g >= n_freq:
+                    continue
+                if df != 0 and fe[s, g] > value:
+                    ok = False
+                    break
+                for k in range(neighbours.shape[1]):
+                    other = neighbours[s, k]
+                    if other >= 0 and fe[other, g] > value:
+                        ok = False
+                        break
+                if not ok:
+                    break
+            mask[s, f] = ok
 
 
 def merge_peaks(values, frequencies, ra, dec, frequency_window, merge_angle, limit):
