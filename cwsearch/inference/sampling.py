@@ -41,6 +41,15 @@
   autocorrelation time of the parameters involved (measured: τ of ψ 450
   iterations without, see docs/design.md §8). Its random numbers come from
   the run's seed and the iteration number, so a resumed run repeats them.
+* **Mode-jump moves** (:func:`mode_jump_step`). With a ``mode_jump`` proposal (for the follow-up: a
+  :class:`cwsearch.inference.modejump.SkyFrequencyProposal` built from the scan's Fe maps), every
+  ``mode_jump_every`` iterations every walker at every temperature proposes new values of the proposal's
+  columns (sky position and frequency) drawn from q independently of where it is, the other parameters
+  held fixed, and accepts with the independence Metropolis–Hastings probability ``min(1, exp(β ΔlnL + Δlnπ)
+  q(x) / q(x'))`` (Hastings 1970; Tierney 1994; from memory): one vectorised likelihood call for all
+  walkers. It joins sky and frequency modes that stretch moves and swaps cross only rarely. Its random
+  numbers come from the run's seed and the iteration number (own stream), so a resumed run repeats them;
+  the acceptance per temperature (since the last ladder change) is reported (docs/design.md §8).
 * **Ladder.** ptemcee adapts the temperatures during the adaptation phase
   towards equal swap acceptance of adjacent pairs (Vousden, Farr & Mandel
   2016). At its end, every adjacent pair whose swap acceptance (over the
@@ -252,7 +261,7 @@ def thermodynamic_log_evidence(betas, mean_logl, stderr=None):
 
 
 # ---------------------------------------------------------------- run driver
-CHECKPOINT_FORMAT = 3   # checkpoints of other formats are refused on resume (3: exact symmetry moves)
+CHECKPOINT_FORMAT = 4   # checkpoints of other formats are refused on resume (3: exact symmetry moves, 4: mode jumps)
 
 
 @dataclass(frozen=True)
@@ -274,13 +283,15 @@ class SamplerSettings:
     min_swap_acceptance: float = 0.05    # adjacent pairs below this get temperatures inserted
     ladder_rounds: int = 3               # at most this many insertion rounds after the first adaptation
     max_temperatures: int | None = None  # None: 3 x temperatures, at most 40
+    mode_jump_every: int = 10            # a mode-jump move after every this many iterations (with a proposal)
 
     def fingerprint(self):
         """Settings that a resumed run must share with its checkpoint."""
         return {"walkers": self.walkers, "temperatures": self.temperatures,
                 "max_temperature": self.max_temperature, "adapt_iterations": self.adapt_end(),
                 "min_swap_acceptance": self.min_swap_acceptance, "ladder_rounds": self.ladder_rounds,
-                "max_temperatures": self.temperature_limit(), "format": CHECKPOINT_FORMAT}
+                "max_temperatures": self.temperature_limit(), "mode_jump_every": int(self.mode_jump_every),
+                "format": CHECKPOINT_FORMAT}
 
     def adapt_end(self) -> int:
         return int(self.adapt_iterations)
@@ -317,6 +328,9 @@ class SamplerResult:
     adaptation_end: int = 0        # iteration at which the final ladder adaptation ended
     ladder_history: list = field(default_factory=list)
     waiting_for: str = ""          # the unmet part of the stopping rule at the last check ("" when converged)
+    # per temperature (β = 1 first), over the moves since the last ladder change; None without mode jumps
+    mode_jump_acceptance: np.ndarray | None = None
+    mode_jump_proposals: np.ndarray | None = None  # per temperature, proposals counted in the acceptance
 
     def chain_taus(self):
         """Length of the chain after burn-in in units of each parameter's τ."""
@@ -497,9 +511,42 @@ def _resized(array, rows, width=None, fill=0.0):
     return out
 
 
+def mode_jump_step(positions, log_posterior, log_likelihood, betas, proposal, pool, rng):
+    """One independence Metropolis–Hastings move of every walker, in place; returns the accepted (T, W) mask.
+
+    ``positions`` (T, W, dim), ``log_posterior`` = β lnL + ln π and ``log_likelihood`` (T, W) are the
+    sampler's own state arrays (updated where accepted); ``betas`` (T,) the ladder; ``proposal`` has
+    ``columns``, ``draw(rng, n)`` and ``log_density(values)``; ``pool`` a :class:`VectorisedPool` (one
+    call for all T·W proposals). Walker k at temperature t proposes x' = x with the proposal's columns
+    replaced by a draw from q, and accepts with probability
+    ``min(1, exp(β_t [lnL(x') − lnL(x)] + ln π(x') − ln π(x)) · q(x) / q(x'))`` (independence sampler:
+    Hastings 1970, Tierney 1994; from memory), which keeps the tempered posterior L^β π invariant."""
+    ntemps, nwalkers, dim = positions.shape
+    cols = list(proposal.columns)
+    current = positions.reshape(-1, dim)
+    trial = current.copy()
+    trial[:, cols] = proposal.draw(rng, current.shape[0])
+    log_u = np.log(rng.random(current.shape[0]))
+    evaluated = pool.map(None, trial)
+    new_logl = np.fromiter((r[0] for r in evaluated), float, count=len(evaluated))
+    new_logp = np.fromiter((r[1] for r in evaluated), float, count=len(evaluated))
+    beta = np.repeat(np.asarray(betas, dtype=float), nwalkers)
+    old_logl = log_likelihood.reshape(-1)
+    old_logp = log_posterior.reshape(-1) - beta * old_logl
+    with np.errstate(invalid="ignore", over="ignore"):
+        log_ratio = (beta * (new_logl - old_logl) + new_logp - old_logp
+                     + proposal.log_density(current[:, cols]) - proposal.log_density(trial[:, cols]))
+    accept = np.isfinite(new_logp) & (log_u < np.nan_to_num(log_ratio, nan=-np.inf))
+    accept = accept.reshape(ntemps, nwalkers)
+    positions[accept] = trial.reshape(ntemps, nwalkers, dim)[accept]
+    log_likelihood[accept] = new_logl.reshape(ntemps, nwalkers)[accept]
+    log_posterior[accept] = (beta * new_logl + new_logp).reshape(ntemps, nwalkers)[accept]
+    return accept
+
+
 def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *, seed=0,
                 checkpoint=None, resume=False, fingerprint=None, progress=True, callback=None,
-                label="follow-up", symmetry="prior"):
+                label="follow-up", symmetry="prior", mode_jump=None):
     """Run ptemcee until the stopping rule is met or a cap; returns a :class:`SamplerResult`.
 
     Parameters
@@ -517,13 +564,17 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
         callable ``symmetry(positions, rng)`` that maps, in place, the walkers of ``positions``
         (temperatures, walkers, dim) chosen with ``rng`` by a map leaving prior and likelihood exactly
         unchanged (see the module docstring)
+    mode_jump : None, or a proposal (``columns``, ``draw(rng, n)``, ``log_density(values)``, ``describe()``,
+        e.g. :class:`cwsearch.inference.modejump.SkyFrequencyProposal`) for the mode-jump move
+        (:func:`mode_jump_step`) after every ``settings.mode_jump_every`` iterations
     """
     pt = load_ptemcee()
     initial = np.asarray(initial, dtype=float)
     ntemps, nwalkers, dim = initial.shape
     if (ntemps, nwalkers) != (settings.temperatures, settings.walkers):
         raise ValueError("initial positions do not match the sampler settings")
-    ident = json.dumps({"sampler": settings.fingerprint(), "dim": dim, "model": fingerprint}, sort_keys=True,
+    ident = json.dumps({"sampler": settings.fingerprint(), "dim": dim, "model": fingerprint,
+                        "mode_jump": None if mode_jump is None else mode_jump.describe()}, sort_keys=True,
                        default=str)
     seq = seed if isinstance(seed, np.random.SeedSequence) else np.random.SeedSequence(seed)
     random = np.random.RandomState(np.random.MT19937(seq))
@@ -531,6 +582,8 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
     if isinstance(symmetry, str) and symmetry == "prior":
         symmetry = getattr(log_prior, "exact_symmetry", None)
     symmetry_key = tuple(seq.spawn_key) + (0x5933,)     # the moves' own stream: seed + iteration number
+    jump_key = tuple(seq.spawn_key) + (0x4A4D,)         # the mode jumps' own stream, likewise
+    jump_every = max(int(settings.mode_jump_every), 1)
 
     def make_sampler(ladder):
         return pt.Sampler(nwalkers, dim, _unused, _unused, betas=ladder, pool=pool, random=random,
@@ -543,6 +596,7 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
     logp_t1 = np.zeros((capacity, nwalkers))
     mean_logl = np.zeros((capacity, ntemps))
     ratios = np.full((capacity, max(ntemps - 1, 0)), np.nan)
+    jump_proposed, jump_accepted = np.zeros(ntemps), np.zeros(ntemps)   # since the last ladder change
     n = 0
     elapsed_before = 0.0
     p0 = initial
@@ -588,6 +642,7 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
         ladder_history = ck["ladder_history"]
         ladder_note = ck["ladder_note"]
         tau_history = [row for row in ck["tau_history"]]
+        jump_proposed, jump_accepted = ck["mode_jump_proposed"], ck["mode_jump_accepted"]
         p0 = None
 
     def state():
@@ -604,7 +659,8 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
                 "adapt_end": np.array(adapt_end), "ladder_rounds": np.array(rounds),
                 "ladder_done": np.array(ladder_done), "ladder_from": np.array(ladder_from),
                 "ladder_history": np.array(json.dumps(ladder_history)), "ladder_note": np.array(ladder_note),
-                "tau_history": np.array(tau_history, dtype=float).reshape(len(tau_history), 2 * dim)}
+                "tau_history": np.array(tau_history, dtype=float).reshape(len(tau_history), 2 * dim),
+                "mode_jump_proposed": jump_proposed, "mode_jump_accepted": jump_accepted}
 
     def pair_acceptance(lo, hi):
         rows = ratios[max(lo, 0):hi]
@@ -638,6 +694,12 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
                     # moves them; their stored likelihoods and priors stay right because the map is exact
                     symmetry(p, np.random.default_rng(np.random.SeedSequence(seq.entropy,
                                                                              spawn_key=symmetry_key + (n,))))
+                if mode_jump is not None and (n + 1) % jump_every == 0:
+                    # likewise in place, on the state arrays (positions, log posterior, log likelihood)
+                    moved = mode_jump_step(p, logpost, logl, sampler.betas, mode_jump, pool, np.random.default_rng(
+                        np.random.SeedSequence(seq.entropy, spawn_key=jump_key + (n,))))
+                    jump_proposed += nwalkers
+                    jump_accepted += moved.sum(axis=1)
                 if n >= chain.shape[0]:
                     grow = 2 * chain.shape[0]
                     chain, logl_t1, logp_t1 = _resized(chain, grow), _resized(logl_t1, grow), _resized(logp_t1, grow)
@@ -677,6 +739,7 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
                     ntemps = new_betas.size
                     mean_logl = _resized(mean_logl, mean_logl.shape[0], ntemps, fill=np.nan)
                     ratios = _resized(ratios, ratios.shape[0], ntemps - 1, fill=np.nan)
+                    jump_proposed, jump_accepted = np.zeros(ntemps), np.zeros(ntemps)
                     rounds += 1
                     adapt_start, adapt_end, ladder_from = n, n + settings.adapt_end(), n
                     tau_history = []
@@ -734,7 +797,9 @@ def run_sampler(log_prior, log_likelihood, initial, settings: SamplerSettings, *
                          log_evidence_error=ln_z_err, wall_time=elapsed_before + time.monotonic() - start,
                          stopped_by=stopped_by, evaluations=pool.evaluations, log_prior=logp_t1[:n],
                          converged=converged, warnings=warnings, adaptation_end=int(adapt_end),
-                         ladder_history=ladder_history, waiting_for="" if converged else waiting)
+                         ladder_history=ladder_history, waiting_for="" if converged else waiting,
+                         mode_jump_acceptance=None if mode_jump is None else jump_accepted / np.maximum(jump_proposed, 1),
+                         mode_jump_proposals=None if mode_jump is None else jump_proposed.copy())
 
 
 def rule_progress(ess, tau, n, burn, settings) -> float:
@@ -844,6 +909,12 @@ def _checked_checkpoint(npz, ident, nwalkers, dim, max_temps, path) -> dict:
     if tau.dtype.kind not in "fiu" or tau.ndim != 2 or tau.shape[1] != 2 * dim or tau.shape[0] > 10 ** 6:
         bad("'tau_history' has the wrong shape")
     out["tau_history"] = tau.astype(float)
+    for name in ("mode_jump_proposed", "mode_jump_accepted"):
+        out[name] = numbers(name, (t,))
+        if np.any(out[name] < 0):
+            bad(f"{name!r} holds negative counts")
+    if np.any(out["mode_jump_accepted"] > out["mode_jump_proposed"]):
+        bad("'mode_jump_accepted' exceeds 'mode_jump_proposed'")
     return out
 
 
@@ -858,5 +929,5 @@ def _checkpoint_file(path):
     return fh
 
 
-__all__ = ["rule_progress", "load_ptemcee", "VectorisedPool", "integrated_time", "ensemble_time", "stationary", "drift_free", "tau_change", "extended_ladder",
+__all__ = ["rule_progress", "load_ptemcee", "VectorisedPool", "mode_jump_step", "integrated_time", "ensemble_time", "stationary", "drift_free", "tau_change", "extended_ladder",
            "thermodynamic_log_evidence", "SamplerSettings", "SamplerResult", "run_sampler"]

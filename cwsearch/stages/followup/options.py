@@ -85,6 +85,13 @@ class FollowupOptions:
                 "likelihood: hot chains broad, the cold chain near the peak), the other parameters from the "
                 "prior; 'prior' draws everything from the prior (also used when the scan left no map)",
         group=_SAMPLER)
+    mode_jumps: bool = option(
+        True, "every 10 iterations, propose each walker a new sky position and frequency drawn from the scan's "
+              "Fe sky map and spectrum (80 %, exp(Fe / 2)) or uniformly (20 %), accepted by Metropolis-Hastings, "
+              "to move between sky and frequency modes (needs the scan's maps; otherwise off)",
+        cli_help="no mode-jump moves between sky and frequency modes (on by default when the scan left its Fe "
+                 "sky map: every 10 iterations each walker proposes a sky position and frequency drawn from the "
+                 "scan's Fe maps, accepted by Metropolis-Hastings)", group=_SAMPLER)
     checkpoint_every: int = option(100, "write the sampler checkpoint every this many iterations (a killed run "
                                         "resumes from it)", metavar="N", group=_SAMPLER)
     adapt_iterations: int = option(500, "adapt the temperature ladder during the first this many iterations",

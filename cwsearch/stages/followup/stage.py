@@ -65,6 +65,7 @@ from ...core.fileio import write_json_atomic, write_table_atomic
 from ...core.safeio import read_input_text, require_finished
 from ...inference import sampling
 from ...inference.likelihood import Likelihood, free_pulsar_phases
+from ...inference.modejump import SkyFrequencyProposal
 from ...inference.noisefit import stage_noise_statement
 from ...inference.correlated_likelihood import likelihood_for, other_background, reweighted_log_bayes_factor
 from ...physics import fstat, waveform
@@ -298,6 +299,28 @@ def _tempered_sky_and_frequency(start: ScanStart, beta, n, prior, rng):
     half = 0.5 * np.median(np.diff(centres)) if centres.size > 1 else 0.5 * (hi - lo)
     out[:, 2] = np.clip(centres[k] + rng.uniform(-half, half, n), lo, np.nextafter(hi, lo))
     return out
+
+
+#: the mode-jump proposal (docs/design.md §8): q_Fe ∝ exp(β_q Fe) per pixel and per frequency bin, and the
+#: weight ε of the uniform part of the mixture (1 − ε) q_Fe + ε q_uniform
+MODE_JUMP_FE_TEMPERING = 0.5
+MODE_JUMP_UNIFORM_FRACTION = 0.2
+
+
+def mode_jump_proposal(start: ScanStart, prior, beta_q=MODE_JUMP_FE_TEMPERING,
+                       uniform_fraction=MODE_JUMP_UNIFORM_FRACTION):
+    """The mode-jump move's proposal over (ra, sin dec, log10 f) from the scan's Fe maps: a product of the
+    sky part ∝ exp(β_q Fe_sky) per HEALPix pixel (Fe maximised over frequency) and the frequency part ∝
+    exp(β_q Fe_spectrum) per scan frequency bin (Fe maximised over the sky) within the prior's band, mixed
+    with ε of the uniform density over the sphere and the band (:class:`SkyFrequencyProposal`). The
+    scan stores only these two maxima, not Fe per (pixel, frequency), hence the product."""
+    freqs = np.asarray(start.frequencies, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        centres = np.where(freqs > 0, np.log10(np.where(freqs > 0, freqs, 1.0)), np.nan)
+    return SkyFrequencyProposal(beta_q * np.asarray(start.fe_sky, dtype=float), start.nside,
+                                log10_band=(prior.lower[2], prior.upper[2]), log10_centres=centres,
+                                frequency_log_weight=beta_q * np.asarray(start.fe_spectrum, dtype=float),
+                                uniform_fraction=uniform_fraction, columns=(0, 1, 2))
 
 
 # ---------------------------------------------------------------- targets
@@ -570,7 +593,7 @@ def _with_pulsar_columns(table, likelihood, samples, rng):
 
 
 def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, other=None, scan_start=None,
-                noise_statement=None):
+                noise_statement=None, scan_maps=None):
 
     span = array.span
     if target.frequency is None:
@@ -609,9 +632,12 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, 
                    "pulsar_term": likelihood.pulsar_term, "evolution": likelihood.evolution,
                    "strain_prior": options.strain_prior, "n_pulsars": len(array), "sky_cap": sky_cap,
                    "phase_grid": likelihood.phase_grid}
+    use_jumps = bool(getattr(options, "mode_jumps", True)) and scan_maps is not None
+    jump = mode_jump_proposal(scan_maps, prior) if use_jumps else None
+    fingerprint["mode_jumps"] = use_jumps
     result = sampling.run_sampler(prior, likelihood.batch, initial, settings, seed=sampler_seq,
                                   checkpoint=folder / "checkpoint.npz", resume=options.resume,
-                                  fingerprint=fingerprint, progress=progress, label=target.label)
+                                  fingerprint=fingerprint, progress=progress, label=target.label, mode_jump=jump)
     details = result.sample_details()
     samples = details["samples"]
     table = posterior_table(likelihood, samples)
@@ -662,6 +688,7 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, 
         "min_swap_acceptance": settings.min_swap_acceptance,
         "ladder_history": result.ladder_history,
         "acceptance": [float(x) for x in np.nan_to_num(result.acceptance)],
+        "mode_jump": _mode_jump_summary(jump, result, settings, options),
         "temperatures": [float(1 / b) for b in result.betas],
         "max_log_likelihood": float(result.log_likelihood.max()) if result.iterations else None,
         "likelihood_evaluations": result.evaluations,
@@ -682,6 +709,24 @@ def _follow_one(likelihood, target, array, folder, options, seed_seq, progress, 
             summary["model"]["pulsar_phases"] = ("marginalised (pulsar-term cross terms of different pulsars "
                                                  "in variational mean field)")
     return summary, result, table
+
+
+def _mode_jump_summary(jump, result, settings, options):
+    """summary.json's ``mode_jump`` entry: on or off (and why), the proposal, and the acceptance per temperature."""
+    if jump is None:
+        why = ("turned off (mode_jumps = false / --no-mode-jumps)" if not getattr(options, "mode_jumps", True) else
+               "no scan sky map (scan/fe_sky.fits) to build the proposal from")
+        return {"used": False, "note": why}
+    return {"used": True, "every": int(settings.mode_jump_every),
+            "proposal": {**jump.describe(), "fe_tempering": MODE_JUMP_FE_TEMPERING,
+                         "meaning": "(1 - uniform_fraction) x exp(fe_tempering Fe_sky) per HEALPix pixel x "
+                                    "exp(fe_tempering Fe_spectrum) per scan frequency bin + uniform_fraction x "
+                                    "uniform over the sphere and the band; (ra, sin dec) uniform within a "
+                                    "pixel, log10 f uniform within a bin"},
+            "acceptance": [float(x) for x in result.mode_jump_acceptance],
+            "proposals": [int(x) for x in result.mode_jump_proposals],
+            "acceptance_meaning": "fraction of accepted mode-jump proposals per temperature (T = 1 first), "
+                                  "since the last change of the ladder"}
 
 
 def _background_comparison(likelihood, other, result, details, samples, progress):
@@ -746,13 +791,15 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
                              "--pulsar-distances marginalise-phase")
         skipped_comparison, other = other is not None, None
     seqs = np.random.SeedSequence(seed).spawn(len(targets))
-    scan_start = read_scan_start(run_dir) if options.start == "scan" else None
+    scan_maps = read_scan_start(run_dir) if options.start == "scan" or options.mode_jumps else None
+    scan_start = scan_maps if options.start == "scan" else None
     stage = run_dir / "followup"
     summaries, folders, runs = [], [], []
     for target, seq in zip(targets, seqs):
         folder = stage if len(targets) == 1 else stage / target.label
         summary, result, table = _follow_one(likelihood, target, array, folder, options, seq, progress, other,
-                                             scan_start=scan_start, noise_statement=stage_noise_statement(array, noise))
+                                             scan_start=scan_start, noise_statement=stage_noise_statement(array, noise),
+                                             scan_maps=scan_maps)
         summary["seed"] = seed
         if skipped_comparison:
             summary["background_comparison"]["note"] = (
@@ -783,4 +830,4 @@ def run_followup(array, run_dir, options: FollowupOptions = FollowupOptions(), *
 
 
 __all__ = ["FollowupOptions", "FollowupResult", "run_followup", "Prior", "select_targets", "posterior_table",
-           "initial_positions", "read_scan_start", "ScanStart", "Target", "OUTPUT_COLUMNS", "SAMPLE_COLUMNS"]
+           "initial_positions", "read_scan_start", "ScanStart", "mode_jump_proposal", "Target", "OUTPUT_COLUMNS", "SAMPLE_COLUMNS"]
