@@ -243,6 +243,62 @@ def _mixture_cdf(h, mu, inv_sd, logq0, coef, weight, active, n_active):
 
 
 @njit(cache=True)
+def _solve_components(mu, sd, logq0, logw, lz, level, rel_grid, weight, inv_sd, coef, active, table_row):
+    """The ``level`` quantile (in x) of the truncated-normal mixture of components ``mu, sd, logq0, logw``
+    (log evidence ``lz`` = logsumexp(logw)); fills ``table_row`` (K, 2) with the CDF at ``x95 × rel_grid``
+    and its derivative in log x. ``weight``, ``inv_sd``, ``coef`` (normalised weights, 1/sd, weight/Q0)
+    and ``active`` (the components kept, their count returned) are left for the caller.
+    Returns ``(x95, n_active, density at x95)``."""
+    n_nodes = mu.shape[0]
+    n_active = 0
+    hi = 0.0
+    total = 0.0
+    for j in range(n_nodes):
+        weight[j] = math.exp(logw[j] - lz)
+        if weight[j] > 1e-14:
+            active[n_active] = j
+            n_active += 1
+            total += weight[j]
+            top = mu[j] + 9.0 * sd[j]
+            if top > hi:
+                hi = top
+    for k in range(n_active):
+        j = active[k]
+        weight[j] /= total
+        inv_sd[j] = 1.0 / sd[j]
+        coef[j] = weight[j] * math.exp(-logq0[j]) if logq0[j] > -600.0 else 0.0
+    lo = 0.0
+    # safeguarded Newton on CDF(x) = level, started below the root (monotone convergence)
+    x = 0.0
+    for k in range(n_active):
+        j = active[k]
+        x += weight[j] * (max(mu[j], 0.0) + 1.645 * sd[j])
+    x = min(max(x, 1e-3 * hi), 0.5 * hi)
+    density = 0.0
+    for _ in range(200):
+        cdf, pdf = _mixture_cdf(x, mu, inv_sd, logq0, coef, weight, active, n_active)
+        density = pdf
+        g = cdf - level
+        if g > 0.0:
+            hi = x
+        else:
+            lo = x
+        new = x - g / pdf if pdf > 0.0 else 0.5 * (lo + hi)
+        if not (new > lo and new < hi):
+            new = 0.5 * (lo + hi)
+        if abs(new - x) <= 1e-11 * abs(x) or hi - lo <= 1e-12 * hi:
+            x = new
+            break
+        x = new
+    for k in range(rel_grid.shape[0]):
+        h = x * rel_grid[k]
+        cdf, pdf = _mixture_cdf(h, mu, inv_sd, logq0, coef, weight, active, n_active)
+        table_row[k, 0] = min(max(cdf, 0.0), 1.0)
+        table_row[k, 1] = h * pdf
+    return x, n_active, density
+
+
+@njit(cache=True)
 def _bayes_rows(nvec, mmat, u, w, level, rel_grid, x95, logz, table):
     """Bayesian limit (in x = h0/(2πf)) per row of (N, M).
 
@@ -269,50 +325,8 @@ def _bayes_rows(nvec, mmat, u, w, level, rel_grid, x95, logz, table):
                 table[r, k, 0] = 0.0
                 table[r, k, 1] = 0.0
             continue
-        n_active = 0
-        hi = 0.0
-        total = 0.0
-        for j in range(n_nodes):
-            weight[j] = math.exp(logw[j] - lz)
-            if weight[j] > 1e-14:
-                active[n_active] = j
-                n_active += 1
-                total += weight[j]
-                top = mu[j] + 9.0 * sd[j]
-                if top > hi:
-                    hi = top
-        for k in range(n_active):
-            j = active[k]
-            weight[j] /= total
-            inv_sd[j] = 1.0 / sd[j]
-            coef[j] = weight[j] * math.exp(-logq0[j]) if logq0[j] > -600.0 else 0.0
-        lo = 0.0
-        # safeguarded Newton on CDF(x) = level, started below the root (monotone convergence)
-        x = 0.0
-        for k in range(n_active):
-            j = active[k]
-            x += weight[j] * (max(mu[j], 0.0) + 1.645 * sd[j])
-        x = min(max(x, 1e-3 * hi), 0.5 * hi)
-        for _ in range(200):
-            cdf, pdf = _mixture_cdf(x, mu, inv_sd, logq0, coef, weight, active, n_active)
-            g = cdf - level
-            if g > 0.0:
-                hi = x
-            else:
-                lo = x
-            new = x - g / pdf if pdf > 0.0 else 0.5 * (lo + hi)
-            if not (new > lo and new < hi):
-                new = 0.5 * (lo + hi)
-            if abs(new - x) <= 1e-11 * abs(x) or hi - lo <= 1e-12 * hi:
-                x = new
-                break
-            x = new
-        x95[r] = x
-        for k in range(rel_grid.shape[0]):
-            h = x * rel_grid[k]
-            cdf, pdf = _mixture_cdf(h, mu, inv_sd, logq0, coef, weight, active, n_active)
-            table[r, k, 0] = min(max(cdf, 0.0), 1.0)
-            table[r, k, 1] = h * pdf
+        x95[r], _, _ = _solve_components(mu, sd, logq0, logw, lz, level, rel_grid, weight, inv_sd, coef, active,
+                                         table[r])
 
 
 # ----------------------------------------------------------------------------- frequentist kernel

@@ -79,7 +79,8 @@ from ...physics import fstat, sky
 from ...physics.fstat import default_max_frequency, frequency_grid, parameters_to_amplitudes
 from ...physics.correlated import array_noise
 from ...physics.noise import NoiseSettings
-from ...physics.waveform import chirp_mass_for_strain
+from ...physics.waveform import antenna_pattern, chirp_mass_for_strain
+from ...inference.pulsar_term_limits import DEFAULT_DRAWS, distance_draws, pulsar_term_rows
 from .options import Galaxy, LimitsOptions, METHODS, parse_galaxies  # the options live beside (standard library)
 
 
@@ -325,7 +326,14 @@ class LimitsResult:
 
 
 def _limits_task(task):
-    """Worker entry point: limits for a chunk of (N, M) rows. Pure function of its input."""
+    """Worker entry point: limits for a chunk of (N, M) rows, or (``pulsar_term``) the pulsar-term limits
+    of a block of sky positions at every frequency. Pure function of its input."""
+    if task.get("pulsar_term"):
+        proj = fstat.Projections(task["frequencies"], task["x"], task["y"], task["z"], None)
+        return {"pulsar_term": pulsar_term_rows(proj, task["fplus"], task["fcross"], task["odp"], task["distances"],
+                                                task["uniform"], task["distance_errors"],
+                                                corrections=task["corrections"], level=task["level"],
+                                                grid=task["grid"])}
     out = {}
     if task["bayes"]:
         x95, logz, table = bayes_rows(task["nvec"], task["mmat"], level=task["level"], grid=task["grid"])
@@ -342,8 +350,29 @@ def _network_dof(mmat):
     return np.sum(eig > 1e-10 * np.maximum(top, 1e-300), axis=-1).astype(np.int64)
 
 
+def _pulsar_term_tasks(proj, fplus, fcross, odp, array, draws, seed, noise, quadrature, level):
+    """The pulsar-term tasks (blocks of sky positions at every frequency) and their weights."""
+    distances, uniform = distance_draws([p.distance for p in array], [p.distance_err for p in array], draws, seed)
+    errors = np.array([p.distance_err for p in array])
+    corrections = None
+    if noise is not None and noise.correlated:
+        corrections = np.ascontiguousarray(noise.corrections(proj.frequencies))
+    n_pos, n_freq = fplus.shape[0], proj.frequencies.size
+    per_task = max(1, ROWS_PER_TASK // (n_freq * max(1, draws // 8)))
+    tasks, weights = [], []
+    for s0 in range(0, n_pos, per_task):
+        s1 = min(n_pos, s0 + per_task)
+        tasks.append({"pulsar_term": True, "frequencies": proj.frequencies, "x": proj.x, "y": proj.y, "z": proj.z,
+                      "fplus": fplus[s0:s1], "fcross": fcross[s0:s1], "odp": odp[s0:s1], "distances": distances,
+                      "uniform": uniform, "distance_errors": errors, "corrections": corrections,
+                      "grid": QUADRATURE[quadrature], "level": float(level)})
+        weights.append((s1 - s0) * n_freq * draws)
+    return tasks, weights
+
+
 def compute_limits(proj, ra, dec, *, method="bayes", quadrature="standard", workers=1, scheduler=None,
-                   progress=False, level=LEVEL, noise=None):
+                   progress=False, level=LEVEL, noise=None, pulsar_term=False, pulsar_term_draws=DEFAULT_DRAWS,
+                   seed=0, array=None):
     """Per-position limits from projections at every frequency of ``proj``.
 
     Parameters
@@ -355,6 +384,11 @@ def compute_limits(proj, ra, dec, *, method="bayes", quadrature="standard", work
         (None: per-pulsar projections); with a correlated common process N and M carry
         the cross-pulsar terms (:func:`cwsearch.physics.correlated.correlated_network`).
     workers, scheduler : the task runner (:class:`cwsearch.inference.execution.TaskRunner`)
+    pulsar_term, pulsar_term_draws, seed, array : the Bayesian limit with the pulsar term, pulsar
+        distances of ``array`` marginalised by ``pulsar_term_draws`` draws from the stream ``seed``
+        (:mod:`cwsearch.inference.pulsar_term_limits`); the Earth-term one is then kept as
+        ``bayes_earth_term`` (and its ``_x``, ``_log_evidence``, ``_table``), with ``bayes_mc_error``
+        (strain) and ``bayes_ess`` (effective draws). The frequentist limit stays Earth-term.
 
     Returns a dict of (S, F) arrays in strain: ``bayes`` (h95), ``bayes_log_evidence``,
     ``bayes_table`` (S, F, K, 2) in units of x; ``frequentist``, ``frequentist_p0``,
@@ -362,7 +396,7 @@ def compute_limits(proj, ra, dec, *, method="bayes", quadrature="standard", work
     """
     want_bayes = method in ("bayes", "both")
     want_freq = method in ("frequentist", "both")
-    fplus, fcross = fstat.sky_patterns(proj, np.asarray(ra), np.asarray(dec))
+    fplus, fcross, odp = antenna_pattern(np.atleast_1d(ra), np.atleast_1d(dec), proj.positions)
     if noise is None:
         nvec, mmat = fstat.network_vectors(proj, fplus, fcross)
         fe = fstat.fe_statistic(proj, fplus, fcross)
@@ -382,10 +416,21 @@ def compute_limits(proj, ra, dec, *, method="bayes", quadrature="standard", work
                       "dof": rows_dof[sl].copy(), "bayes": want_bayes, "frequentist": want_freq,
                       "grid": QUADRATURE[quadrature], "level": float(level)})
         weights.append(sl.stop - sl.start)
+    pt_tasks = []
+    if pulsar_term and want_bayes:
+        if array is None:
+            raise ValueError("the pulsar-term limit needs the array (pulsar distances)")
+        pt_tasks, pt_weights = _pulsar_term_tasks(proj, fplus, fcross, odp, array, int(pulsar_term_draws), seed,
+                                                  noise, quadrature, level)
+        tasks += pt_tasks
+        weights += pt_weights
+    n_earth = len(tasks) - len(pt_tasks)
     with TaskRunner(workers=workers, scheduler=scheduler) as runner:
         where = runner.describe()
-        with progress_bar(total=n_rows, desc="limits (pixel x frequency)", enabled=progress, unit="px") as bar:
+        with progress_bar(total=sum(weights), desc="limits (pixel x frequency)", enabled=progress,
+                          unit="px") as bar:
             results = runner.map(_limits_task, tasks, weights=weights, on_done=bar.update)
+    pt_results, results = results[n_earth:], results[:n_earth]
     scale = 2 * np.pi * proj.frequencies[None, :]
     out = {"fe": fe, "runner": where}
     if want_bayes:
@@ -401,6 +446,17 @@ def compute_limits(proj, ra, dec, *, method="bayes", quadrature="standard", work
         out["frequentist_scale"] = np.concatenate([r["frequentist"][2] for r in results]).reshape(n_pos, n_freq)
         out["frequentist_table"] = np.concatenate([r["frequentist"][3] for r in results]).reshape(
             n_pos, n_freq, -1, 2)
+    if pt_results:
+        for key in ("bayes", "bayes_x", "bayes_log_evidence", "bayes_table"):
+            out[key.replace("bayes", "bayes_earth_term", 1)] = out[key]
+        x95, logz, err, ess, table = (np.concatenate([r["pulsar_term"][k] for r in pt_results]) for k in range(5))
+        out["bayes"] = x95 * scale
+        out["bayes_x"] = x95
+        out["bayes_log_evidence"] = logz
+        out["bayes_table"] = table
+        out["bayes_mc_error"] = err * scale
+        out["bayes_ess"] = ess
+        out["pulsar_term"] = {"draws": int(pulsar_term_draws), "seed": int(seed)}
     return out
 
 
