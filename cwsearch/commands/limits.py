@@ -71,6 +71,16 @@ def method_lines(summary) -> list:
         if empty:
             text += (f"; {empty} of {summary.get('n_pixels', '?')} pixels have an empty limit: observed Fe below "
                      "the noise-only 95 % range")
+        if method == "bayes":
+            pt = summary.get("pulsar_term")
+            if pt:
+                err = pt.get("mc_error_relative_median")
+                text += (f"; Earth + pulsar term, {pt['draws']} distance draws, Monte Carlo error median "
+                         + (f"{100 * err:.1f} %" if err is not None else "n/a"))
+                et = summary.get("bayes_earth_term", {}).get("strain_95_at_best_frequency")
+                text += f"; Earth term only {_fmt(et)}"
+            elif summary.get("limit"):
+                text += f"; {summary['limit']}"
         lines.append(text + ")")
     return lines
 

@@ -50,7 +50,7 @@ from .upper_limits import LEVEL, QUADRATURE, RELATIVE_GRID, _mixture_cdf, _mixtu
     _solve_components, angle_grid
 
 #: default number of distance draws (docs/design.md §9: Monte Carlo error of the limit below ~2 %)
-DEFAULT_DRAWS = 32
+DEFAULT_DRAWS = 256
 
 
 # ----------------------------------------------------------------------------- distance draws

@@ -27,6 +27,8 @@ METHODS = ("bayes", "frequentist", "both")
 QUADRATURE_NAMES = ("fast", "standard", "fine")
 #: most local worker processes
 MAX_WORKERS = 1024
+#: default distance draws of --pulsar-term (cwsearch.inference.pulsar_term_limits.DEFAULT_DRAWS)
+PULSAR_TERM_DRAWS = 256
 
 _G = "limits"
 _RUNNER = ("where the work runs is the run file's [execution] section (the same for every stage), not an "
@@ -106,6 +108,10 @@ class LimitsOptions:
         Pixel at which to compare the quadrature limit with the sampler (at the sky frequency).
     quadrature : ``"fast"``, ``"standard"`` or ``"fine"``
         Angle-grid size of the Bayesian quadrature (see ``stage.QUADRATURE``).
+    pulsar_term : bool
+        Bayesian limit with the pulsar term (distances marginalised; docs/design.md §9).
+    pulsar_term_draws : int
+        Monte Carlo draws of the pulsar distances for ``pulsar_term``.
     no_plots : bool
         Skip the PNG plots.
     """
@@ -139,6 +145,11 @@ class LimitsOptions:
     quadrature: Literal["fast", "standard", "fine"] = option(
         "standard", "angle-grid size of the Bayesian quadrature: fast, standard (~0.3 % worst case) or fine",
         group=_G)
+    pulsar_term: bool = option(False, "Bayesian limit with the pulsar term: pulsar distances marginalised over "
+                                      "their priors by Monte Carlo (exact per draw; monochromatic approximation); "
+                                      "costs about --pulsar-term-draws times the Earth-term limit", group=_G)
+    pulsar_term_draws: int = option(PULSAR_TERM_DRAWS, "distance draws of --pulsar-term (its Monte Carlo error "
+                                                       "falls as 1/sqrt(N))", metavar="N", group=_G)
     no_plots: bool = option(False, "skip the PNG plots", group=_G)
 
     def validate(self):
@@ -170,9 +181,13 @@ class LimitsOptions:
             bad("select", "needs --catalog FILE")
         if self.workers is not None and self.workers > MAX_WORKERS:
             bad("workers", f"at most {MAX_WORKERS}, not {self.workers}")
+        if not (isinstance(self.pulsar_term_draws, numbers.Integral) and 2 <= self.pulsar_term_draws <= 100_000):
+            bad("pulsar_term_draws", f"must be an integer between 2 and 100000, not {self.pulsar_term_draws}")
+        if self.pulsar_term and self.method == "frequentist":
+            bad("pulsar_term", "is a Bayesian limit; use --method bayes or both")
         parse_galaxies(self.galaxy)   # a bad galaxy is refused now (and by `run --check`), not mid-run
         return self
 
 
 __all__ = ["LimitsOptions", "Galaxy", "parse_galaxies", "check_galaxy", "METHODS", "QUADRATURE_NAMES",
-           "MAX_WORKERS"]
+           "MAX_WORKERS", "PULSAR_TERM_DRAWS"]

@@ -468,6 +468,11 @@ def _sky_averages(res, frequencies, n_pix, level=LEVEL):
         out["bayes"] = np.array([
             sky_averaged_bayes(res["bayes_x"][:n_pix, f], res["bayes_log_evidence"][:n_pix, f],
                                res["bayes_table"][:n_pix, f], level) for f in range(len(frequencies))]) * scale
+    if "bayes_earth_term" in res:
+        out["bayes_earth_term"] = np.array([
+            sky_averaged_bayes(res["bayes_earth_term_x"][:n_pix, f], res["bayes_earth_term_log_evidence"][:n_pix, f],
+                               res["bayes_earth_term_table"][:n_pix, f], level)
+            for f in range(len(frequencies))]) * scale
     if "frequentist" in res:
         out["frequentist"] = np.array([
             sky_averaged_frequentist(res["frequentist_scale"][:n_pix, f], res["frequentist_p0"][:n_pix, f],
@@ -620,7 +625,9 @@ def compute_stage_limits(array, options: LimitsOptions = LimitsOptions(), *, noi
     computed = "frequentist" if options.method == "frequentist" else "both"
     res = compute_limits(proj, ra, dec, method=computed, quadrature=options.quadrature,
                          workers=None if not options.workers else int(options.workers),
-                         scheduler=options.scheduler or None, progress=progress, noise=engine)
+                         scheduler=options.scheduler or None, progress=progress, noise=engine,
+                         pulsar_term=bool(options.pulsar_term), pulsar_term_draws=int(options.pulsar_term_draws),
+                         seed=seed, array=array)
     averages = _sky_averages(res, frequencies, n_pix)
     primary = "frequentist" if options.method == "frequentist" else "bayes"
     if requested_sky_index is not None:
@@ -655,7 +662,11 @@ def limits_tables(c: LimitsComputation) -> LimitsTables:
         ftab["strain_95_frequentist"] = c.averages["frequentist"]
         ftab["strain_95_frequentist_best"] = _positive_min(pf)
         ftab["strain_95_frequentist_worst"] = pf.max(axis=0)
+    if "bayes_earth_term" in c.averages:
+        ftab["strain_95_earth_term"] = c.averages["bayes_earth_term"]
+        ftab["strain_95_mc_error_median"] = np.median(res["bayes_mc_error"][:n_pix], axis=0)
     ftab["fe_max"] = res["fe"][:n_pix].max(axis=0)
+    ftab.meta.update(_limit_statement(c))
     ftab.meta.update({"method": primary, "level": LEVEL, "nside": c.nside,
                       "sky_average": "posterior (bayes) or detection probability (frequentist) averaged over "
                                     "equal-area pixels, i.e. a uniformly distributed sky position"})
@@ -667,7 +678,11 @@ def limits_tables(c: LimitsComputation) -> LimitsTables:
     stab["strain_95"] = pixel_limits[:, c.sky_index]
     if c.method == "both":
         stab["strain_95_frequentist"] = res["frequentist"][:n_pix, c.sky_index]
+    if "bayes_earth_term" in res:
+        stab["strain_95_mc_error"] = res["bayes_mc_error"][:n_pix, c.sky_index]
+        stab["strain_95_earth_term"] = res["bayes_earth_term"][:n_pix, c.sky_index]
     stab["fe"] = res["fe"][:n_pix, c.sky_index]
+    stab.meta.update(_limit_statement(c))
     stab.meta.update({"frequency": c.sky_frequency, "frequency_unit": "Hz", "method": primary, "nside": c.nside,
                       "order": "ring"})
 
@@ -692,8 +707,30 @@ def limits_tables(c: LimitsComputation) -> LimitsTables:
             gtab["chirp_mass_95_frequentist"].unit = u.solMass
         gtab["ra"].unit, gtab["dec"].unit, gtab["distance"].unit = u.deg, u.deg, u.Mpc
         gtab["frequency"].unit, gtab["chirp_mass_95"].unit = u.Hz, u.solMass
+        gtab.meta.update(_limit_statement(c))
         gtab.meta.update({"method": primary, "position": "exact galaxy position"})
     return LimitsTables(ftab, stab, gtab)
+
+
+def _limit_statement(c: LimitsComputation) -> dict:
+    """Which limit the ``strain_95`` columns hold (table metadata and summary): Earth term only, or Earth +
+    pulsar term with its draws and Monte Carlo error."""
+    res = c.limits
+    if "pulsar_term" not in res or c.primary != "bayes":
+        return {"limit": "Earth term only"}
+    n_pix = c.n_pixels
+    rel = res["bayes_mc_error"][:n_pix] / res["bayes"][:n_pix]
+    rel = rel[np.isfinite(rel)]
+    pt = res["pulsar_term"]
+    return {"limit": "Earth + pulsar term",
+            "pulsar_term": {"draws": pt["draws"], "seed": pt["seed"],
+                            "distances": "Gaussian (distance, distance_err) truncated at > 0; uniform phase where "
+                                         "distance_err (1 + cos) > GW wavelength",
+                            "approximation": "no frequency evolution: pulsar term at the Earth-term frequency "
+                                             "(needs df/dt x L(1+Omega.p)/c < 1/T_span)",
+                            "mc_error_relative_median": _finite_or_none(np.median(rel)) if rel.size else None,
+                            "mc_error_relative_max": _finite_or_none(np.max(rel)) if rel.size else None,
+                            "frequentist": "Earth term only"}}
 
 
 def limits_summary(c: LimitsComputation, tables: LimitsTables) -> dict:
@@ -713,9 +750,10 @@ def limits_summary(c: LimitsComputation, tables: LimitsTables) -> dict:
         "runner": res["runner"],
         "noise_model": c.noise_description,
     }
+    summary.update(_limit_statement(c))
     if c.fmax_note:
         summary["fmax_note"] = c.fmax_note
-    for method in ("bayes", "frequentist"):
+    for method in ("bayes", "bayes_earth_term", "frequentist"):
         if method in c.averages:
             summary[method] = {"strain_95_at_best_frequency": _finite_or_none(c.averages[method][best]),
                                "strain_95_min": _finite_or_none(np.nanmin(c.averages[method])),
