@@ -386,3 +386,32 @@ def test_empty_frequentist_limit_is_not_the_best_sky_position(network):
     summary["frequentist"] = {"strain_95_at_best_frequency": 2e-15, "best_pixel_strain_95": None,
                               "pixels_with_empty_limit": 2}
     assert "none with a positive limit" in method_lines(summary)[0]
+
+
+def test_command_line_pulsar_term_limit(dataset_dir, tmp_path, capsys):
+    """``--pulsar-term``: the table and summary say which limit it is, the Earth-term limit stays beside
+    it, and the pulsar-term limit is finite and positive wherever the Earth-term one is."""
+    from astropy.table import Table
+
+    from cwsearch.cli import main
+
+    out = tmp_path / "run"
+    code = main(["limits", str(dataset_dir), "--out", str(out), "--nside", "1", "--fmax", "1.2e-8",
+                 "--workers", "1", "--quadrature", "fast", "--quiet", "--no-plots", "--pulsar-term",
+                 "--pulsar-term-draws", "8", "--method", "bayes"])
+    text = capsys.readouterr().out
+    assert code == 0, text
+    summary = json.loads((out / "limits" / "limits_summary.json").read_text())
+    assert summary["pulsar_term"]
+    rows = [p for p in (out / "limits").glob("*.ecsv")]
+    assert rows
+    for path in rows:
+        table = Table.read(path, format="ascii.ecsv")
+        if "strain_95_earth_term" in table.colnames:
+            earth = np.asarray(table["strain_95_earth_term"], float)
+            both = np.asarray(table["strain_95"], float)
+            good = np.isfinite(earth) & (earth > 0)
+            assert good.any() and np.all(np.isfinite(both[good]) & (both[good] > 0))
+            break
+    else:
+        raise AssertionError("no limits table carries the Earth-term column beside the pulsar-term one")
