@@ -150,10 +150,16 @@ def _one(task):
     likelihood = Likelihood(data, noise)
     prior = followup.Prior(likelihood, band)
     settings = _sampler_settings(args)
-    initial = followup.initial_positions(prior, followup.Target("bench", None, None, None), array.span,
-                                         (settings.temperatures, settings.walkers), np.random.default_rng(init_seq))
     t0 = time.time()
-    result = sampling.run_sampler(prior, likelihood.batch, initial, settings, seed=run_seq, progress=False)
+    scan_start = _scan_maps(data, noise, band, args) if (args.start == "scan" or args.mode_jumps) else None
+    betas = (np.geomspace(1.0, 1.0 / settings.max_temperature, settings.temperatures) if settings.temperatures > 1
+             else np.ones(1))
+    initial = followup.initial_positions(prior, followup.Target("bench", None, None, None), array.span,
+                                         (settings.temperatures, settings.walkers), np.random.default_rng(init_seq),
+                                         scan_start=scan_start if args.start == "scan" else None, betas=betas)
+    jump = followup.mode_jump_proposal(scan_start, prior) if args.mode_jumps else None
+    result = sampling.run_sampler(prior, likelihood.batch, initial, settings, seed=run_seq, progress=False,
+                                  mode_jump=jump)
     record.update({"log_bayes_factor": float(result.log_evidence), "log_bayes_factor_error":
                    float(result.log_evidence_error), "iterations": int(result.iterations),
                    "burn_in": int(result.burn_in), "converged": bool(result.converged),
@@ -177,6 +183,27 @@ def _one(task):
         record.update({"sky_searched_probability": level, "sky_searched_area_deg2": area, "sky_nside": nside,
                        "sky_searched_probability_plain": plain, "sky_samples": int(sky.shape[0])})
     return record
+
+
+def _scan_maps(data, noise, band, args):
+    """What the follow-up stage takes from a finished scan (:class:`~cwsearch.stages.followup.stage.ScanStart`),
+    computed on this injection's data with the scan stage's own Fe kernel at its default resolution
+    (nside ``--scan-nside``, frequency step 1/(2 T_span)); only frequencies inside the follow-up band (and
+    one step beyond each edge) are scanned, so the sky map is the Fe maximum over the band, where the
+    stage's is the maximum over its whole scan (the same here, with one source and white noise, up to
+    noise peaks elsewhere in the spectrum)."""
+    from cwsearch.physics.fstat import frequency_grid
+    from cwsearch.physics.noise import NoiseWeighting
+    from cwsearch.stages.followup.stage import ScanStart
+    from cwsearch.stages.scan.stage import fe_map, sky_grid
+
+    step = 0.5 / data.span
+    lo, hi = 10 ** band[0], 10 ** band[1]
+    grid = frequency_grid(data, fmin=max(lo - step, 1.0 / data.span), fmax=hi + step, oversample=2)
+    _, _, fplus, fcross = sky_grid(data, args.scan_nside)
+    result, _ = fe_map(NoiseWeighting(data, noise), grid, fplus, fcross)
+    fe = np.asarray(result.fe_map, dtype=float)
+    return ScanStart(fe.max(axis=1), args.scan_nside, grid, fe.max(axis=0))
 
 
 # ------------------------------------------------------------------ bookkeeping
@@ -313,6 +340,12 @@ def main(argv=None):
     parser.add_argument("--adapt-iterations", type=int, default=500)
     parser.add_argument("--max-iterations", type=int, default=20000)
     parser.add_argument("--max-seconds", type=float, default=float("inf"), help="wall-time cap per run")
+    parser.add_argument("--start", choices=("scan", "prior"), default="scan",
+                        help="walkers' start as in the follow-up stage: 'scan' (default, the stage's default) draws "
+                             "sky and frequency from the injection's Fe maps tempered per chain; 'prior' from the prior")
+    parser.add_argument("--no-mode-jumps", dest="mode_jumps", action="store_false",
+                        help="no mode-jump moves (on by default, as in the follow-up stage)")
+    parser.add_argument("--scan-nside", type=int, default=16, help="HEALPix nside of the Fe maps (default 16)")
     parser.add_argument("--summarise", action="store_true", help="only rebuild the summary from the records")
     args = parser.parse_args(argv)
     args.out.mkdir(parents=True, exist_ok=True)
