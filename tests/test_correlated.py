@@ -566,6 +566,38 @@ def test_mean_field_stays_a_bound_when_the_sweeps_do_not_converge():
     assert _mean_field_core(coef, amp, cross, 100, 1e-12)[0] > exact - 1.0     # and still a useful bound
 
 
+def test_phase_integral_and_moments_at_large_amplitudes():
+    """The one-pulsar phase integral ``(1/2π)∫ exp(a cosχ + b sinχ + c cos2χ + d sin2χ + e) dχ`` and the
+    mean of (cos χ, sin χ), which the mean-field sweeps use, at the amplitudes of hot chains (up to 3e6,
+    where the kernel sums the grid only where the integrand matters). Checks: (1) first harmonic only,
+    the closed forms ln I0(r) and the mean I1(r)/I0(r) along (a, b) (Abramowitz & Stegun 9.6.19 and
+    9.6.18, from memory), with ``scipy.special.i0e``/``i1e``; (2) both harmonics, with conflicting
+    maxima, a plain numpy sum over the same periodic grid shifted by its own maximum."""
+    from cwsearch.inference.correlated_likelihood import _grid_moments
+    from cwsearch.inference.likelihood import _grid_size
+
+    rng = np.random.default_rng(41)
+    out = np.empty(2)
+    for r in (0.5, 3.0, 40.0, 300.0, 4e3, 5e4, 7e5, 3e6):
+        angle = rng.uniform(0, 2 * np.pi)
+        value = _grid_moments(r * np.cos(angle), r * np.sin(angle), 0.0, 0.0, 0.7, out)
+        assert value == pytest.approx(0.7 + r + np.log(scipy.special.i0e(r)), rel=1e-12, abs=1e-12)
+        mean = scipy.special.i1e(r) / scipy.special.i0e(r)
+        assert out == pytest.approx([mean * np.cos(angle), mean * np.sin(angle)], abs=1e-11)
+    for _ in range(400):
+        scale = 10 ** rng.uniform(0, 6.5)
+        a, b = rng.normal(size=2) * scale
+        c, d = rng.normal(size=2) * scale * 10 ** rng.uniform(-3, 0.5)
+        k = _grid_size(np.hypot(a, b)) + 2 * _grid_size(np.hypot(c, d))
+        chi = 2 * np.pi * np.arange(k) / k
+        f = a * np.cos(chi) + b * np.sin(chi) + c * np.cos(2 * chi) + d * np.sin(2 * chi)
+        w = np.exp(f - f.max())
+        value = _grid_moments(a, b, c, d, -1.3, out)
+        assert value == pytest.approx(-1.3 + f.max() + np.log(w.mean()), rel=1e-13, abs=1e-10)
+        assert out == pytest.approx([(w * np.cos(chi)).sum() / w.sum(), (w * np.sin(chi)).sum() / w.sum()],
+                                    abs=1e-10)
+
+
 def test_uncorrelated_likelihood_reproduces_per_pulsar_likelihood():
     """Γ = identity: the correlated likelihood (mean field with zero coupling) equals the existing
     per-pulsar likelihood with the common process in each Fourier prior (consistency check)."""
